@@ -1,0 +1,208 @@
+{% import "macros.sql" as m %}
+{% set check_lit = check.name | literal %}
+{% set life = lifecycle %}
+{% set peak = "greatest" if check.direction == "up" else "least" %}
+-- ── stage 6 · lifecycle ────────────────────────────────────────────────────────────────────
+-- A breach opens an alert for its series unless one is open; more breaches update it. An open alert
+-- closes as 'recovered' after {{ life.recover_after }} healthy windows in a row, or as 'expired' once the series
+-- has had no window for {{ life.expire_after | interval }} (between two windows, or before the watermark).
+-- All in data time, one pass over every series' new windows in order.
+CREATE OR REPLACE TEMP TABLE open_alerts AS
+SELECT *
+FROM alerts
+WHERE check_name = {{ check_lit }} AND status = 'open';
+
+CREATE OR REPLACE TEMP TABLE steps AS
+WITH relevant AS (
+    SELECT DISTINCT key, split_value FROM judged WHERE breach
+    UNION
+    SELECT key, split_value FROM open_alerts
+),
+ordered AS (
+    SELECT
+        j.key, j.key_text, j.split_value, j.seq, j.window_start, j.window_end, j.value, j.threshold,
+        j.bad, j.sessions, j.breach,
+        j.threshold IS NOT NULL AND NOT j.breach AS healthy,
+        coalesce(lag(j.window_end) OVER (PARTITION BY j.key, j.split_value ORDER BY j.seq), l.last_end) AS prev_end,
+        o.alert_id IS NOT NULL AS carried,
+        coalesce(o.healthy_streak, 0) AS streak0
+    FROM judged AS j
+    SEMI JOIN relevant AS r ON {{ m.same_series("j", "r") }}
+    LEFT JOIN series_last AS l ON l.key = j.key
+    LEFT JOIN open_alerts AS o ON {{ m.same_series("j", "o") }}
+),
+stretched AS (
+    -- stretch n: the windows after the n-th breach of this run, up to and including the next breach
+    SELECT
+        *,
+        coalesce(prev_end + {{ life.expire_after | interval }} < window_end, false) AS gap,
+        coalesce(count(*) FILTER (WHERE breach) OVER (
+            PARTITION BY key, split_value ORDER BY seq ROWS BETWEEN UNBOUNDED PRECEDING AND 1 PRECEDING
+        ), 0) AS stretch
+    FROM ordered
+),
+counted AS (
+    SELECT
+        *,
+        coalesce(count(*) FILTER (WHERE healthy) OVER within, 0)
+            + CASE WHEN stretch = 0 THEN streak0 ELSE 0 END AS healthy_before,
+        coalesce(bool_or(gap) OVER within, false) AS gap_before,
+        stretch > 0 OR carried AS breached_before
+    FROM stretched
+    WINDOW within AS (
+        PARTITION BY key, split_value, stretch ORDER BY seq ROWS BETWEEN UNBOUNDED PRECEDING AND 1 PRECEDING
+    )
+),
+flagged AS (
+    SELECT *, breached_before AND NOT gap_before AND healthy_before < {{ life.recover_after }} AS open_at
+    FROM counted
+)
+SELECT
+    *,
+    open_at AND gap AS expires_here,
+    open_at AND NOT gap AND healthy AND healthy_before + 1 >= {{ life.recover_after }} AS recovers_here,
+    breach AND NOT (open_at AND NOT gap) AS opens_here,
+    breach AND open_at AND NOT gap AS continues_here
+FROM flagged;
+
+CREATE OR REPLACE TEMP TABLE episode_steps AS
+SELECT
+    *,
+    -- episode 0 is the alert already open before this run
+    sum(opens_here::INTEGER) OVER (PARTITION BY key, split_value ORDER BY seq ROWS UNBOUNDED PRECEDING) AS episode,
+    coalesce(sum(opens_here::INTEGER) OVER (
+        PARTITION BY key, split_value ORDER BY seq ROWS BETWEEN UNBOUNDED PRECEDING AND 1 PRECEDING
+    ), 0) AS episode_before
+FROM steps;
+
+CREATE OR REPLACE TEMP TABLE episodes AS
+WITH breaches AS (
+    SELECT
+        key, any_value(key_text) AS key_text, split_value, episode,
+        min(window_end) FILTER (WHERE opens_here) AS opened_at,
+        arg_min(threshold, seq) FILTER (WHERE opens_here) AS open_threshold,
+        count(*) AS breach_windows,
+        sum(coalesce(bad, sessions)) AS affected_sessions,
+        {{ "max" if check.direction == "up" else "min" }}(value) AS peak_value,
+        max(window_end) AS last_breach_at,
+        max(seq) AS last_breach_seq
+    FROM episode_steps
+    WHERE breach
+    GROUP BY key, split_value, episode
+),
+closes AS (
+    SELECT
+        key, split_value, episode_before AS episode,
+        CASE WHEN expires_here THEN prev_end + {{ life.expire_after | interval }} ELSE window_end END AS closed_at,
+        CASE WHEN expires_here THEN 'expired' ELSE 'recovered' END AS close_reason,
+        CASE WHEN expires_here THEN NULL ELSE value END AS close_value,
+        threshold AS close_threshold
+    FROM episode_steps
+    WHERE expires_here OR recovers_here
+),
+all_episodes AS (
+    SELECT key, split_value, episode FROM breaches
+    UNION
+    SELECT key, split_value, 0 FROM open_alerts
+),
+series_end AS (
+    SELECT s.key, s.split_value, coalesce(max(j.window_end), max(l.last_end)) AS last_window_end
+    FROM all_episodes AS s
+    LEFT JOIN judged AS j ON {{ m.same_series("j", "s") }}
+    LEFT JOIN series_last AS l ON l.key = s.key
+    GROUP BY s.key, s.split_value
+),
+healthy_tail AS (
+    -- healthy windows after the last breach of a series: the streak an open alert carries on
+    SELECT e.key, e.split_value, count(*) FILTER (WHERE e.healthy AND e.seq > coalesce(b.last_seq, -1)) AS n
+    FROM episode_steps AS e
+    LEFT JOIN (SELECT key, split_value, max(last_breach_seq) AS last_seq FROM breaches GROUP BY ALL) AS b
+        ON {{ m.same_series("e", "b") }}
+    GROUP BY e.key, e.split_value
+),
+merged AS (
+    SELECT
+        a.key, a.split_value, a.episode,
+        coalesce(o.alert_id, NULL) AS prior_alert_id,
+        coalesce(b.key_text, o.key_text) AS key_text,
+        coalesce(o.opened_at, b.opened_at) AS opened_at,
+        coalesce(o.threshold, b.open_threshold) AS threshold,
+        coalesce(o.breach_windows, 0) + coalesce(b.breach_windows, 0) AS breach_windows,
+        coalesce(o.affected_sessions, 0) + coalesce(b.affected_sessions, 0) AS affected_sessions,
+        {{ peak }}(o.peak_value, b.peak_value) AS peak_value,
+        coalesce(b.last_breach_at, o.last_breach_at) AS last_breach_at,
+        o.first_run_id,
+        c.closed_at, c.close_reason, c.close_value, c.close_threshold,
+        CASE
+            WHEN b.episode IS NULL THEN o.healthy_streak + coalesce(t.n, 0)
+            ELSE coalesce(t.n, 0)
+        END AS healthy_streak,
+        e.last_window_end,
+        b.episode IS NOT NULL OR c.episode IS NOT NULL OR t.n > 0 AS touched
+    FROM all_episodes AS a
+    LEFT JOIN breaches AS b ON {{ m.same_series("a", "b") }} AND a.episode = b.episode
+    LEFT JOIN open_alerts AS o ON {{ m.same_series("a", "o") }} AND a.episode = 0
+    LEFT JOIN closes AS c ON {{ m.same_series("a", "c") }} AND a.episode = c.episode
+    LEFT JOIN healthy_tail AS t ON {{ m.same_series("a", "t") }}
+    LEFT JOIN series_end AS e ON {{ m.same_series("a", "e") }}
+)
+SELECT
+    *,
+    -- an alert still open whose series has been silent past expire_after at the watermark expires
+    closed_at IS NULL
+        AND last_window_end + {{ life.expire_after | interval }} < (SELECT current FROM clock) AS expires_at_watermark
+FROM merged;
+
+CREATE OR REPLACE TEMP TABLE alert_rows AS
+SELECT
+    coalesce(prior_alert_id, substr(md5(to_json({
+        'check': {{ check_lit }}, 'key': key, 'split': split_value, 'opened_at': opened_at
+    })::VARCHAR), 1, 16)) AS alert_id,
+    {{ check_lit }} AS check_name,
+    {{ check.severity | literal }} AS severity,
+    key,
+    key_text,
+    split_value,
+    CASE WHEN closed_at IS NOT NULL OR expires_at_watermark THEN 'closed' ELSE 'open' END AS status,
+    CASE WHEN closed_at IS NOT NULL THEN close_reason WHEN expires_at_watermark THEN 'expired' END AS close_reason,
+    opened_at,
+    last_breach_at,
+    CASE
+        WHEN closed_at IS NOT NULL THEN closed_at
+        WHEN expires_at_watermark THEN last_window_end + {{ life.expire_after | interval }}
+    END AS closed_at,
+    breach_windows,
+    affected_sessions,
+    peak_value,
+    threshold,
+    substr(md5(to_json({'check': {{ check_lit }}, 'key': key, 'split': split_value})::VARCHAR), 1, 16) AS fingerprint,
+    coalesce(first_run_id, $run_id) AS first_run_id,
+    $run_id AS last_run_id,
+    CASE WHEN closed_at IS NULL AND NOT expires_at_watermark THEN healthy_streak END AS healthy_streak,
+    episode,
+    touched OR expires_at_watermark AS touched,
+    close_value,
+    close_threshold
+FROM episodes;
+
+CREATE OR REPLACE TEMP TABLE event_rows AS
+WITH breach_events AS (
+    SELECT
+        s.key, s.split_value, s.episode, s.window_end AS occurred_at,
+        CASE WHEN s.opens_here THEN 'opened' ELSE 'updated' END AS event,
+        s.value, s.threshold,
+        coalesce(o.affected_sessions, 0) + sum(coalesce(s.bad, s.sessions)) OVER (
+            PARTITION BY s.key, s.split_value, s.episode ORDER BY s.seq ROWS UNBOUNDED PRECEDING
+        ) AS affected_sessions,
+        s.seq
+    FROM episode_steps AS s
+    LEFT JOIN open_alerts AS o ON {{ m.same_series("s", "o") }} AND s.episode = 0
+    WHERE s.breach
+)
+SELECT a.alert_id, $run_id AS run_id, e.occurred_at, e.event, e.value, e.threshold, e.affected_sessions
+FROM breach_events AS e
+JOIN alert_rows AS a ON {{ m.same_series("e", "a") }} AND e.episode = a.episode
+UNION ALL
+SELECT alert_id, $run_id, closed_at, 'closed', close_value, close_threshold, affected_sessions
+FROM alert_rows
+WHERE status = 'closed';

@@ -1,0 +1,58 @@
+{% set check_lit = check.name | literal %}
+-- ── stage 7 · persist ──────────────────────────────────────────────────────────────────────
+-- Everything below commits in the run's one transaction, with the files read and the run record.
+INSERT INTO windows BY NAME
+SELECT
+    {{ check_lit }} AS check_name, key, key_text, split_value, seq, window_start, window_end,
+    sessions, bad, value, baseline, history_windows, threshold, breach, $run_id AS run_id
+FROM judged;
+
+DELETE FROM key_state
+WHERE check_name = {{ check_lit }} AND key IN (SELECT key FROM key_windows);
+
+INSERT INTO key_state BY NAME
+SELECT {{ check_lit }} AS check_name, key, max(seq) AS last_seq, max(window_end) AS last_end
+FROM key_windows
+GROUP BY key;
+
+DELETE FROM carry WHERE check_name = {{ check_lit }};
+
+INSERT INTO carry BY NAME
+SELECT {{ check_lit }} AS check_name, * FROM carry_next;
+
+DELETE FROM alerts
+WHERE alert_id IN (SELECT alert_id FROM alert_rows WHERE touched);
+
+INSERT INTO alerts BY NAME
+SELECT * EXCLUDE (episode, touched, close_value, close_threshold)
+FROM alert_rows
+WHERE touched;
+
+INSERT INTO alert_events BY NAME
+SELECT * FROM event_rows;
+
+DELETE FROM check_state WHERE check_name = {{ check_lit }};
+
+INSERT INTO check_state BY NAME
+SELECT {{ check_lit }} AS check_name, current AS watermark, $definition AS definition_hash, $run_id AS last_run_id
+FROM clock;
+
+INSERT INTO files_read BY NAME
+SELECT {{ check_lit }} AS check_name, f.path, f.size, f.modified_at, $run_id AS run_id,
+       coalesce(n.rows, 0) AS rows
+FROM (SELECT unnest($manifest, recursive := true)) AS f
+LEFT JOIN (SELECT source_file, count(*) AS rows FROM scanned GROUP BY source_file) AS n
+    ON n.source_file = f.path;
+
+INSERT INTO run_checks BY NAME
+SELECT
+    $run_id AS run_id, {{ check_lit }} AS check_name,
+    len($manifest) AS files_read,
+    c.rows_read, c.rows_invalid, c.rows_excluded, c.rows_filtered, c.duplicate_rows,
+    (SELECT late_rows FROM window_counts) AS late_rows,
+    (SELECT count(*) FROM judged) AS windows_written,
+    (SELECT count(*) FROM judged WHERE breach) AS breach_windows,
+    (SELECT count(*) FROM event_rows WHERE event = 'opened') AS alerts_opened,
+    (SELECT count(*) FROM event_rows WHERE event = 'closed') AS alerts_closed,
+    (SELECT current FROM clock) AS watermark
+FROM scan_counts AS c;

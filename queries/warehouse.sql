@@ -1,0 +1,125 @@
+-- The warehouse: one DuckDB file that analysts query directly. Created if missing; never dropped.
+CREATE TABLE IF NOT EXISTS runs (
+    run_id BIGINT PRIMARY KEY,
+    started_at TIMESTAMP,            -- wall clock: the only place it is used
+    finished_at TIMESTAMP,
+    status VARCHAR,                  -- 'ok' | 'failed'
+    checks VARCHAR[],
+    full_refresh BOOLEAN,
+    files_read BIGINT,
+    rows_read BIGINT,
+    rows_excluded BIGINT,
+    duplicate_rows BIGINT,
+    late_rows BIGINT,
+    invalid_rows BIGINT,
+    windows_written BIGINT,
+    alerts_opened BIGINT,
+    alerts_closed BIGINT,
+    error VARCHAR
+);
+
+CREATE TABLE IF NOT EXISTS run_checks (
+    run_id BIGINT,
+    check_name VARCHAR,
+    files_read BIGINT,
+    rows_read BIGINT,
+    rows_invalid BIGINT,
+    rows_excluded BIGINT,
+    rows_filtered BIGINT,
+    duplicate_rows BIGINT,
+    late_rows BIGINT,
+    windows_written BIGINT,
+    breach_windows BIGINT,
+    alerts_opened BIGINT,
+    alerts_closed BIGINT,
+    watermark TIMESTAMP,
+    rounds INTEGER,
+    PRIMARY KEY (run_id, check_name)
+);
+
+CREATE TABLE IF NOT EXISTS files_read (
+    check_name VARCHAR,
+    path VARCHAR,
+    size BIGINT,
+    modified_at TIMESTAMP,
+    run_id BIGINT,
+    rows BIGINT,
+    PRIMARY KEY (check_name, path)
+);
+
+CREATE TABLE IF NOT EXISTS check_state (
+    check_name VARCHAR,
+    watermark TIMESTAMP,
+    definition_hash VARCHAR,
+    last_run_id BIGINT
+);
+
+CREATE TABLE IF NOT EXISTS key_state (
+    check_name VARCHAR,
+    key MAP(VARCHAR, VARCHAR),
+    last_seq BIGINT,
+    last_end TIMESTAMP
+);
+
+CREATE TABLE IF NOT EXISTS carry (
+    check_name VARCHAR,
+    key MAP(VARCHAR, VARCHAR),
+    key_text VARCHAR,
+    event_time TIMESTAMP,
+    session_id VARCHAR,
+    is_bad BOOLEAN,
+    split_value VARCHAR,
+    num DOUBLE,
+    den DOUBLE,
+    x DOUBLE
+);
+
+CREATE TABLE IF NOT EXISTS windows (
+    check_name VARCHAR,
+    key MAP(VARCHAR, VARCHAR),
+    key_text VARCHAR,
+    split_value VARCHAR,
+    seq BIGINT,
+    window_start TIMESTAMP,
+    window_end TIMESTAMP,
+    sessions BIGINT,
+    bad BIGINT,
+    value DOUBLE,
+    baseline DOUBLE,
+    history_windows BIGINT,
+    threshold DOUBLE,
+    breach BOOLEAN,
+    run_id BIGINT
+);
+
+CREATE TABLE IF NOT EXISTS alerts (
+    alert_id VARCHAR,
+    check_name VARCHAR,
+    severity VARCHAR,
+    key MAP(VARCHAR, VARCHAR),
+    key_text VARCHAR,
+    split_value VARCHAR,
+    status VARCHAR,                  -- 'open' | 'closed'
+    close_reason VARCHAR,            -- 'recovered' | 'expired' | 'check removed' | NULL
+    opened_at TIMESTAMP,             -- data time of the first breaching window's end
+    last_breach_at TIMESTAMP,
+    closed_at TIMESTAMP,
+    breach_windows BIGINT,
+    affected_sessions BIGINT,
+    peak_value DOUBLE,
+    threshold DOUBLE,
+    fingerprint VARCHAR,
+    first_run_id BIGINT,
+    last_run_id BIGINT,
+    healthy_streak BIGINT
+);
+
+CREATE TABLE IF NOT EXISTS alert_events (
+    alert_id VARCHAR,
+    run_id BIGINT,
+    occurred_at TIMESTAMP,
+    event VARCHAR,                   -- 'opened' | 'updated' | 'closed'
+    value DOUBLE,
+    threshold DOUBLE,
+    affected_sessions BIGINT
+);

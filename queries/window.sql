@@ -1,0 +1,133 @@
+{% set check_lit = check.name | literal %}
+-- ── stage 2 · window ───────────────────────────────────────────────────────────────────────
+{% if window.kind == "count" %}
+-- Count windows: each {{ window.sessions }} sessions of a series in (event_time, session_id) order; a
+-- window that is not full {{ window.max_wait | interval }} after its first session closes as it is once the
+-- watermark has passed that moment. Partial windows are carried to the next run.
+{% else %}
+-- Time windows of {{ window.every | interval }}, aligned to the epoch; a window closes once the watermark
+-- passes its end + {{ window.lateness | interval }}. Sessions for a window already closed are late.
+{% endif %}
+CREATE OR REPLACE TEMP TABLE series_last AS
+SELECT key, last_seq, last_end
+FROM key_state
+WHERE check_name = {{ check_lit }};
+
+CREATE OR REPLACE TEMP TABLE pooled AS
+{% if window.kind == "count" %}
+SELECT
+    p.*,
+    row_number() OVER (PARTITION BY p.key ORDER BY p.event_time, p.session_id) - 1 AS i,
+    -- lim: position of the last session within max_wait of this one
+    count(*) OVER (
+        PARTITION BY p.key ORDER BY p.event_time
+        RANGE BETWEEN UNBOUNDED PRECEDING AND {{ window.max_wait | interval }} FOLLOWING
+    ) - 1 AS lim
+FROM (
+    SELECT key, key_text, event_time, session_id, is_bad, split_value, num, den, x, false AS late
+    FROM carry
+    WHERE check_name = {{ check_lit }}
+    UNION ALL
+    -- late: earlier than the end of a window already closed for the series; it joins the open window
+    SELECT a.key, a.key_text, a.event_time, a.session_id, a.is_bad, a.split_value, a.num, a.den, a.x,
+           coalesce(a.event_time < s.last_end, false) AS late
+    FROM arrivals AS a
+    LEFT JOIN series_last AS s ON s.key = a.key
+) AS p;
+
+-- Cuts: window starts that cannot fill; each either times out (the watermark has passed
+-- start + max_wait: the window closes with the sessions it has) or stays open and is carried.
+CREATE OR REPLACE TEMP TABLE cuts AS
+SELECT key, i, lim, event_time + {{ window.max_wait | interval }} < (SELECT current FROM clock) AS times_out
+FROM pooled
+WHERE lim < i + {{ window.sessions }} - 1;
+
+-- Runs of full windows per series, from the start of the pool to the first cut on the run's
+-- stride; after a cut that times out the next run starts behind it. One step per cut, all series at once.
+CREATE OR REPLACE TEMP TABLE runs_of_windows AS
+WITH RECURSIVE seg(key, o, a, a_lim, closes) AS (
+    SELECT key, 0::BIGINT, min(i), arg_min(lim, i), arg_min(times_out, i)
+    FROM cuts
+    WHERE i % {{ window.sessions }} = 0
+    GROUP BY key
+    UNION ALL
+    SELECT c.key, s.a_lim + 1, min(c.i), arg_min(c.lim, c.i), arg_min(c.times_out, c.i)
+    FROM seg AS s
+    JOIN cuts AS c ON c.key = s.key AND c.i > s.a_lim AND (c.i - s.a_lim - 1) % {{ window.sessions }} = 0
+    WHERE s.closes
+    GROUP BY c.key, s.a_lim
+)
+SELECT key, o, a, a_lim, closes FROM seg
+UNION ALL
+-- after the last cut that timed out, or where a series has no cut on its stride: full windows to the end
+SELECT key, o, NULL, NULL, NULL
+FROM (
+    SELECT p.key, coalesce(max(s.a_lim) + 1, 0) AS o, count(s.key) AS n_cuts,
+           arg_max(s.closes, s.o) AS last_closes
+    FROM (SELECT DISTINCT key FROM pooled) AS p
+    LEFT JOIN seg AS s ON s.key = p.key
+    GROUP BY p.key
+)
+WHERE n_cuts = 0 OR last_closes;
+
+-- Each pooled session's window, named by the position of its first session (NULL: still open).
+CREATE OR REPLACE TEMP TABLE placed AS
+SELECT
+    p.*,
+    CASE
+        WHEN r.a IS NULL OR p.i < r.a THEN r.o + (p.i - r.o) // {{ window.sessions }} * {{ window.sessions }}
+        WHEN r.closes AND p.i <= r.a_lim THEN r.a
+    END AS w0
+FROM pooled AS p
+ASOF JOIN runs_of_windows AS r ON p.key = r.key AND p.i >= r.o;
+
+CREATE OR REPLACE TEMP TABLE window_sessions AS
+SELECT
+    p.* EXCLUDE (i, lim, w0),
+    coalesce(s.last_seq, 0) + dense_rank() OVER (PARTITION BY p.key ORDER BY p.w0) AS seq,
+    min(p.event_time) OVER (PARTITION BY p.key, p.w0) AS window_start,
+    max(p.event_time) OVER (PARTITION BY p.key, p.w0) AS window_end
+FROM placed AS p
+LEFT JOIN series_last AS s ON s.key = p.key
+WHERE p.w0 IS NOT NULL;
+
+CREATE OR REPLACE TEMP TABLE carry_next AS
+SELECT key, key_text, event_time, session_id, is_bad, split_value, num, den, x
+FROM placed
+WHERE w0 IS NULL;
+
+CREATE OR REPLACE TEMP TABLE window_counts AS
+SELECT count(*) FILTER (WHERE late) AS late_rows FROM pooled;
+{% else %}
+{% set width = (window.every.total_seconds() * 1000000) | int %}
+SELECT
+    p.*,
+    epoch_us(p.event_time) // {{ width }} AS seq,
+    make_timestamp(epoch_us(p.event_time) // {{ width }} * {{ width }}) AS window_start,
+    make_timestamp(epoch_us(p.event_time) // {{ width }} * {{ width }} + {{ width }}) AS window_end
+FROM (
+    SELECT key, key_text, event_time, session_id, is_bad, split_value, num, den, x
+    FROM carry
+    WHERE check_name = {{ check_lit }}
+    UNION ALL
+    SELECT key, key_text, event_time, session_id, is_bad, split_value, num, den, x
+    FROM arrivals
+) AS p;
+
+-- Late: the session's window had already closed at the previous watermark. Counted, not windowed.
+CREATE OR REPLACE TEMP TABLE window_counts AS
+SELECT count(*) AS late_rows
+FROM pooled
+WHERE window_end + {{ window.lateness | interval }} < (SELECT previous FROM clock);
+
+CREATE OR REPLACE TEMP TABLE window_sessions AS
+SELECT *
+FROM pooled
+WHERE window_end + {{ window.lateness | interval }} < (SELECT current FROM clock)
+  AND NOT coalesce(window_end + {{ window.lateness | interval }} < (SELECT previous FROM clock), false);
+
+CREATE OR REPLACE TEMP TABLE carry_next AS
+SELECT key, key_text, event_time, session_id, is_bad, split_value, num, den, x
+FROM pooled
+WHERE NOT (window_end + {{ window.lateness | interval }} < (SELECT current FROM clock));
+{% endif %}

@@ -1,0 +1,128 @@
+"""Compiling a check into the SQL a run executes, stage by stage, from the templates in ``queries/``.
+
+The compiler only returns text; :mod:`toolkit.runner` only executes what it returns, and
+``plimsoll compile`` prints the same text. A stage's statements after a ``-- @repeat`` line form the
+loop that settles breach verdicts (see ``baseline.sql``).
+"""
+
+from __future__ import annotations
+
+import hashlib
+from dataclasses import dataclass, field
+from importlib.resources import files
+from pathlib import Path
+
+import duckdb
+import jinja2
+
+from .model import Check
+from .sqltext import interval, quote_ident, quote_literal
+
+STAGES = ("scan", "window", "measure", "baseline", "breach", "lifecycle", "persist")
+REPEAT_MARK = "-- @repeat"
+
+
+@dataclass(frozen=True)
+class Statement:
+    """One SQL statement and the named parameters (``$files`` …) it takes."""
+
+    sql: str
+    params: frozenset[str]
+
+
+@dataclass(frozen=True)
+class Stage:
+    """One template's SQL: statements run once, then statements repeated until verdicts settle."""
+
+    name: str
+    text: str
+    once: tuple[Statement, ...]
+    repeat: tuple[Statement, ...] = ()
+
+
+@dataclass(frozen=True)
+class CompiledCheck:
+    """All the SQL of one check, in order, with a hash that changes when the computation does."""
+
+    check: str
+    stages: tuple[Stage, ...]
+    definition_hash: str = field(default="")
+
+    @property
+    def sql(self) -> str:
+        """The whole script as ``plimsoll compile`` shows it."""
+        header = (
+            f"-- Plimsoll check {self.check}: compiled SQL, executed by `plimsoll run` as shown.\n"
+            "-- Parameters: $files (new Parquet files), $manifest (their size and time), $run_id,\n"
+            "-- $definition (hash of this script). Statements after '@repeat' run until no breach flag changes.\n"
+        )
+        return header + "\n".join(stage.text.rstrip() + "\n" for stage in self.stages)
+
+
+def template_folder() -> Path:
+    """The installed templates (``toolkit.queries``), whichever way the package was installed."""
+    return Path(str(files("toolkit.queries")))
+
+
+def environment() -> jinja2.Environment:
+    env = jinja2.Environment(
+        loader=jinja2.FileSystemLoader(str(template_folder())),
+        undefined=jinja2.StrictUndefined,
+        trim_blocks=True,
+        lstrip_blocks=True,
+        keep_trailing_newline=True,
+        autoescape=False,
+    )
+    env.filters["ident"] = quote_ident
+    env.filters["literal"] = quote_literal
+    env.filters["interval"] = interval
+    return env
+
+
+_ENV: jinja2.Environment | None = None
+
+
+def _env() -> jinja2.Environment:
+    global _ENV
+    if _ENV is None:
+        _ENV = environment()
+    return _ENV
+
+
+def compile_check(check: Check) -> CompiledCheck:
+    """Render every stage template for ``check``."""
+    context = {
+        "check": check,
+        "source": check.source,
+        "measure": check.measure,
+        "window": check.window,
+        "baseline": check.baseline,
+        "guard": check.guard,
+        "lifecycle": check.lifecycle,
+    }
+    stages = tuple(_stage(name, _env().get_template(f"{name}.sql").render(context)) for name in STAGES)
+    digest = hashlib.sha256("\n".join(s.text for s in stages).encode()).hexdigest()[:16]
+    return CompiledCheck(check.name, stages, digest)
+
+
+def _stage(name: str, text: str) -> Stage:
+    text = "\n".join(line.rstrip() for line in text.splitlines()).strip("\n") + "\n"
+    lines = text.splitlines(keepends=True)
+    mark = next((i for i, line in enumerate(lines) if line.lstrip().startswith(REPEAT_MARK)), None)
+    once_text = "".join(lines if mark is None else lines[:mark])
+    repeat_text = "" if mark is None else "".join(lines[mark:])
+    return Stage(name, text, _statements(once_text), _statements(repeat_text))
+
+
+def _statements(sql: str) -> tuple[Statement, ...]:
+    """Split on statement boundaries with DuckDB's own parser (literals may hold semicolons)."""
+    if not sql.strip():
+        return ()
+    con = duckdb.connect()
+    try:
+        parts = con.extract_statements(sql)
+        return tuple(
+            Statement(p.query.strip(), frozenset(p.named_parameters)) for p in parts if p.query.strip()
+        )
+    finally:
+        con.close()

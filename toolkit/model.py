@@ -1,0 +1,126 @@
+"""The typed form of a project: what validation produces and what the compiler consumes.
+
+Nothing here reads files or builds SQL; a model is only ever made by :mod:`toolkit.project`, which
+guarantees that every expression in it was parsed and checked against the source's columns.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from datetime import timedelta
+from pathlib import Path
+
+
+@dataclass(frozen=True)
+class Expr:
+    """A user's SQL expression: as written, and as regenerated from its checked parse tree."""
+
+    text: str
+    sql: str
+    columns: tuple[str, ...]
+
+    def __str__(self) -> str:
+        return self.sql
+
+
+@dataclass(frozen=True)
+class Source:
+    """A table of sessions in the lake."""
+
+    name: str
+    path: str
+    session_id: str
+    event_time: str
+    exclude: Expr | None
+    columns: dict[str, str] = field(default_factory=dict, hash=False, compare=False)
+
+
+@dataclass(frozen=True)
+class Measure:
+    """What a window's value is: a rate of bad sessions, a ratio of sums, or a quantile."""
+
+    kind: str
+    bad: Expr | None = None
+    split: str | None = None
+    numerator: Expr | None = None
+    denominator: Expr | None = None
+    of: Expr | None = None
+    q: float | None = None
+
+
+@dataclass(frozen=True)
+class Window:
+    """Count windows (``sessions``, ``max_wait``) or time windows (``every``, ``lateness``)."""
+
+    sessions: int | None = None
+    max_wait: timedelta | None = None
+    every: timedelta | None = None
+    lateness: timedelta = timedelta(0)
+
+    @property
+    def kind(self) -> str:
+        return "count" if self.sessions is not None else "time"
+
+
+@dataclass(frozen=True)
+class Baseline:
+    """How a window's threshold follows from the series' earlier, non-breaching windows."""
+
+    method: str
+    history: int
+    min_history: int
+    q: float | None = None
+    factor: float = 1.0
+    floor: float | None = None
+    sigmas: float | None = None
+    confidence: float | None = None
+
+
+@dataclass(frozen=True)
+class Guard:
+    """Windows too small to be trusted never breach."""
+
+    min_sessions: int = 1
+    min_bad: int = 0
+
+
+@dataclass(frozen=True)
+class Lifecycle:
+    """When an open alert closes."""
+
+    recover_after: int = 2
+    expire_after: timedelta = timedelta(days=7)
+
+
+@dataclass(frozen=True)
+class Check:
+    """One check file, validated."""
+
+    name: str
+    about: str
+    source: Source
+    where: Expr | None
+    by: tuple[str, ...]
+    measure: Measure
+    direction: str
+    window: Window
+    baseline: Baseline
+    guard: Guard
+    lifecycle: Lifecycle
+    severity: str
+    file: str
+    line: int
+
+
+@dataclass(frozen=True)
+class Project:
+    """A loaded ``plimsoll.yml`` with its sources and checks."""
+
+    file: Path
+    root: Path
+    warehouse: Path
+    checks_dir: Path
+    sources: dict[str, Source]
+    checks: dict[str, Check]
+    memory_limit: str | None = None
+    threads: int | None = None

@@ -1,0 +1,418 @@
+"""Loading and validating ``plimsoll.yml`` and the check files it points at.
+
+Validation collects every problem it can find before failing, each as ``file:line: message``; a
+project that loads is a :class:`~toolkit.model.Project` whose expressions were all parsed, checked
+against their source's Parquet schema and bound by DuckDB to the right type.
+"""
+
+from __future__ import annotations
+
+import difflib
+import re
+from datetime import timedelta
+from pathlib import Path
+from typing import Any
+
+import duckdb
+
+from . import lake
+from .expressions import ExpressionError, parse_expression, unknown_column
+from .model import Baseline, Check, Expr, Guard, Lifecycle, Measure, Project, Source, Window
+from .problems import Problem, ProjectInvalid, display_path
+from .registry import BASELINES, DIRECTIONS, MEASURES, SEVERITIES, Key
+from .yamlsource import KeyPath, Located, dotted, load
+
+PROJECT_KEYS = (
+    Key("warehouse", "text", "the DuckDB file holding windows, alerts, runs and state", True),
+    Key("checks", "text", "folder of check files (*.yml)", False, "checks/"),
+    Key("sources", "mapping", "named session tables in the lake", True),
+    Key("memory_limit", "text", "DuckDB memory limit for runs, e.g. 2GB"),
+    Key("threads", "int", "DuckDB threads for runs (default: all cores)", minimum=1),
+)
+SOURCE_KEYS = (
+    Key("path", "text", "folder, glob or file of Parquet; hive partitions are read", True),
+    Key("session_id", "column", "unique per session: duplicates are counted once", True),
+    Key("event_time", "column", "the data time that orders sessions and closes windows", True),
+    Key("exclude", "expr", "SQL boolean: matching sessions never count (crawlers, tests)"),
+)
+CHECK_KEYS = (
+    Key("check", "name", "unique check name, [a-z][a-z0-9_]*", True),
+    Key("about", "text", "one sentence on what the check finds", False, ""),
+    Key("source", "text", "a source named in plimsoll.yml", True),
+    Key("where", "expr", "SQL boolean: only these sessions enter the check"),
+    Key("by", "columns", "the series key: zero or more source columns", False, []),
+    Key("measure", "mapping", "what each window's value is", True),
+    Key("direction", "choice", "up: alert when higher than the threshold; down: when lower", False, "up", DIRECTIONS),
+    Key("window", "mapping", "how sessions are grouped into windows", True),
+    Key("baseline", "mapping", "how each window's threshold is derived from history", True),
+    Key("guard", "mapping", "windows too small never breach"),
+    Key("lifecycle", "mapping", "when an open alert closes"),
+    Key("severity", "choice", "carried on alerts", False, "medium", SEVERITIES),
+)
+MEASURE_KEYS = (Key("kind", "choice", "rate | ratio | quantile", True, choices=tuple(MEASURES)),)
+WINDOW_KEYS = (
+    Key("sessions", "int", "count window: every N sessions of one series", minimum=1),
+    Key("max_wait", "duration", "count window: a partial window older than this closes as it is"),
+    Key("every", "duration", "time window: its length, aligned to the epoch"),
+    Key("lateness", "duration", "time window: how long after its end a window waits for late sessions", False, "0s"),
+)
+BASELINE_KEYS = (Key("method", "choice", "how the threshold is derived", True, choices=tuple(BASELINES)),)
+GUARD_KEYS = (
+    Key("min_sessions", "int", "windows with fewer sessions never breach", False, 1, minimum=0),
+    Key("min_bad", "int", "rate: windows with fewer bad sessions never breach", False, 0, minimum=0),
+)
+LIFECYCLE_KEYS = (
+    Key("recover_after", "int", "this many healthy windows in a row close an open alert", False, 2, minimum=1),
+    Key("expire_after", "duration", "no window at all for this long closes an open alert", False, "7d"),
+)
+
+_NAME = re.compile(r"^[a-z][a-z0-9_]*$")
+_DURATION = re.compile(r"^(?:(\d+)w)?(?:(\d+)d)?(?:(\d+)h)?(?:(\d+)m)?(?:(\d+)s)?$")
+_NUMERIC = re.compile(
+    r"^(TINYINT|SMALLINT|INTEGER|BIGINT|HUGEINT|UTINYINT|USMALLINT|UINTEGER|UBIGINT|UHUGEINT|FLOAT|"
+    r"DOUBLE|DECIMAL(\(\d+,\s*\d+\))?)$"
+)
+_TIMES = re.compile(r"^(TIMESTAMP|TIMESTAMP_S|TIMESTAMP_MS|TIMESTAMP_NS|TIMESTAMP WITH TIME ZONE|DATE)$")
+
+
+def parse_duration(text: Any) -> timedelta:
+    """``90m``, ``2h``, ``3d``, ``1w``, ``1h30m``: a whole number of seconds or more."""
+    match = _DURATION.match(str(text).strip()) if isinstance(text, (str, int)) else None
+    if not match or not str(text).strip() or not any(match.groups()):
+        raise ValueError(f"bad duration {text!r}: write a number and a unit, e.g. 90m, 2h, 3d, 1w")
+    weeks, days, hours, minutes, seconds = (int(g or 0) for g in match.groups())
+    return timedelta(weeks=weeks, days=days, hours=hours, minutes=minutes, seconds=seconds)
+
+
+class _Section:
+    """Validation of one YAML mapping against its key table, collecting problems with lines."""
+
+    def __init__(self, doc: Located, path: KeyPath, value: Any, keys: tuple[Key, ...], problems: list[Problem]):
+        self.doc, self.path, self.keys, self.problems = doc, path, {k.name: k for k in keys}, problems
+        self.values: dict[str, Any] = {}
+        if not isinstance(value, dict):
+            self.error(path, f"'{dotted(path) or 'file'}' must be a mapping of keys, not {_kind(value)}")
+            value = {}
+        self.raw = value
+        for name in value:
+            if name not in self.keys:
+                self.unknown(name)
+
+    def unknown(self, name: str) -> None:
+        close = difflib.get_close_matches(name, list(self.keys), n=1, cutoff=0.6)
+        hint = f" (did you mean '{close[0]}'?)" if close else ""
+        where = f" in {dotted(self.path)}" if self.path else ""
+        self.error((*self.path, name), f"unknown key '{name}'{where}{hint}")
+
+    def error(self, path: KeyPath, message: str) -> None:
+        self.problems.append(Problem(self.doc.file, self.doc.line(path), message))
+
+    def get(self, name: str) -> Any:
+        """The typed value of ``name``, its default, or None after recording a problem."""
+        key = self.keys[name]
+        path = (*self.path, name)
+        if name not in self.raw or self.raw[name] is None:
+            if key.required:
+                where = f" in {dotted(self.path)}" if self.path else ""
+                self.error(self.path, f"missing key '{name}'{where}")
+                return None
+            return _typed(key, key.default) if key.default is not None else None
+        try:
+            return _typed(key, self.raw[name])
+        except ValueError as err:
+            self.error(path, f"{dotted(path)}: {err}")
+            return None
+
+
+def _kind(value: Any) -> str:
+    return {dict: "a mapping", list: "a list", str: "text", bool: "true/false", int: "a number",
+            float: "a number"}.get(type(value), type(value).__name__)
+
+
+def _typed(key: Key, value: Any) -> Any:
+    t = key.type
+    if t in ("text", "name", "column", "expr", "choice"):
+        if isinstance(value, bool) or not isinstance(value, (str, int, float)):
+            raise ValueError(f"expected text, got {_kind(value)}")
+        value = str(value)
+        if t == "name" and not _NAME.match(value):
+            raise ValueError(f"'{value}' is not a valid name: use [a-z][a-z0-9_]*")
+        if t == "choice" and value not in key.choices:
+            close = difflib.get_close_matches(value, key.choices, n=1)
+            hint = f" (did you mean '{close[0]}'?)" if close else ""
+            raise ValueError(f"'{value}' is not one of {', '.join(key.choices)}{hint}")
+        return value
+    if t == "int":
+        if isinstance(value, bool) or not isinstance(value, int):
+            raise ValueError(f"expected a whole number, got {_kind(value)} {value!r}")
+        if key.minimum is not None and value < key.minimum:
+            raise ValueError(f"must be at least {int(key.minimum)}, got {value}")
+        return value
+    if t in ("number", "fraction"):
+        if isinstance(value, bool) or not isinstance(value, (int, float)):
+            raise ValueError(f"expected a number, got {_kind(value)} {value!r}")
+        value = float(value)
+        if t == "fraction" and not 0 < value < 1:
+            raise ValueError(f"must be between 0 and 1 (exclusive), got {value}")
+        if key.minimum is not None and value < key.minimum:
+            raise ValueError(f"must be at least {key.minimum}, got {value}")
+        return value
+    if t == "duration":
+        return parse_duration(value)
+    if t == "columns":
+        if isinstance(value, str):
+            value = [value]
+        if not isinstance(value, list) or not all(isinstance(v, str) for v in value):
+            raise ValueError("expected a list of column names")
+        if len(set(value)) != len(value):
+            raise ValueError("a column is listed twice")
+        return list(value)
+    if t == "mapping":
+        if not isinstance(value, dict):
+            raise ValueError(f"expected a mapping of keys, got {_kind(value)}")
+        return value
+    raise AssertionError(f"unknown key type {t}")
+
+
+class _Binder:
+    """Checks expressions and columns against a source's schema, using DuckDB to bind types."""
+
+    def __init__(self, con: duckdb.DuckDBPyConnection, source: Source):
+        self.con, self.source = con, source
+        self.table = lake.schema_table(con, source.name, source.columns) if source.columns else None
+
+    def column(self, section: _Section, name: str | None, key: str) -> str | None:
+        if name is None:
+            return None
+        if name not in self.source.columns:
+            section.error((*section.path, key), f"{dotted((*section.path, key))}: "
+                          f"{unknown_column(name, self.source.columns)} in source '{self.source.name}'")
+            return None
+        return name
+
+    def expr(self, section: _Section, text: str | None, key: str, want: str) -> Expr | None:
+        if text is None:
+            return None
+        path = (*section.path, key)
+        try:
+            parsed = parse_expression(text, self.source.columns)
+        except ExpressionError as err:
+            section.error(path, f"{dotted(path)}: {err}")
+            return None
+        if self.table is None:
+            return parsed
+        try:
+            row = self.con.execute(f"DESCRIBE SELECT {parsed.sql} AS v FROM {self.table}").fetchone()
+        except duckdb.Error as err:
+            first = str(err).strip().splitlines()[0]
+            section.error(path, f"{dotted(path)}: DuckDB cannot use this expression: {first}")
+            return None
+        kind = str(row[1]) if row else "?"
+        if want == "boolean" and kind != "BOOLEAN":
+            section.error(path, f"{dotted(path)}: must be true/false per session, but is {kind}")
+            return None
+        if want == "number" and not _NUMERIC.match(kind):
+            section.error(path, f"{dotted(path)}: must be a number per session, but is {kind}")
+            return None
+        return parsed
+
+
+def load_project(path: Path | str = "plimsoll.yml", check_schema: bool = True) -> Project:
+    """Load and validate a project; raise :class:`ProjectInvalid` listing every problem."""
+    file = Path(path)
+    shown = display_path(file)
+    if not file.is_file():
+        raise ProjectInvalid([Problem(shown, 0, "project file not found")])
+    root = file.resolve().parent
+    problems: list[Problem] = []
+    doc, found = load(file, shown)
+    problems += found
+    if doc is None:
+        raise ProjectInvalid(problems)
+    top = _Section(doc, (), doc.data if doc.data is not None else {}, PROJECT_KEYS, problems)
+    warehouse, checks_dir = top.get("warehouse"), top.get("checks")
+    memory_limit, threads = top.get("memory_limit"), top.get("threads")
+    con = duckdb.connect()
+    sources = _load_sources(doc, top.get("sources") or {}, root, con, problems, check_schema)
+    checks: dict[str, Check] = {}
+    folder = (root / (checks_dir or "checks/")).resolve()
+    if checks_dir is not None and not folder.is_dir():
+        top.error(("checks",), f"checks folder '{checks_dir}' does not exist")
+    elif folder.is_dir():
+        checks = _load_checks(folder, sources, con, problems)
+    con.close()
+    if problems:
+        raise ProjectInvalid(problems)
+    return Project(
+        file=file.resolve(), root=root, warehouse=(root / warehouse).resolve(), checks_dir=folder,
+        sources=sources, checks=checks, memory_limit=memory_limit, threads=threads,
+    )
+
+
+def _load_sources(doc: Located, raw: dict[str, Any], root: Path, con: duckdb.DuckDBPyConnection,
+                  problems: list[Problem], check_schema: bool) -> dict[str, Source]:
+    sources: dict[str, Source] = {}
+    if not raw:
+        problems.append(Problem(doc.file, doc.line(("sources",)), "at least one source is needed"))
+    for name, body in raw.items():
+        section = _Section(doc, ("sources", name), body, SOURCE_KEYS, problems)
+        if not _NAME.match(name):
+            section.error(section.path, f"source name '{name}' is not valid: use [a-z][a-z0-9_]*")
+        where = section.get("path")
+        session_id, event_time, exclude = section.get("session_id"), section.get("event_time"), section.get("exclude")
+        if where is None:
+            continue
+        location = where if "://" in where else str((root / where))
+        columns: dict[str, str] = {}
+        if check_schema:
+            files = [f.path for f in lake.list_files(location)]
+            if not files:
+                section.error((*section.path, "path"), f"source '{name}': no Parquet files at '{where}'")
+                continue
+            try:
+                columns = lake.read_schema(con, files)
+            except duckdb.Error as err:
+                first = str(err).strip().splitlines()[0]
+                section.error((*section.path, "path"), f"source '{name}': cannot read Parquet schema: {first}")
+                continue
+        source = Source(name, location, session_id or "", event_time or "", None, columns)
+        binder = _Binder(con, source)
+        if check_schema:
+            binder.column(section, session_id, "session_id")
+            if binder.column(section, event_time, "event_time") and not _TIMES.match(columns[event_time]):
+                section.error((*section.path, "event_time"),
+                              f"sources.{name}.event_time: column '{event_time}' is {columns[event_time]}, not a timestamp")
+        excl = binder.expr(section, exclude, "exclude", "boolean")
+        sources[name] = Source(name, location, session_id or "", event_time or "", excl, columns)
+    return sources
+
+
+def _load_checks(folder: Path, sources: dict[str, Source], con: duckdb.DuckDBPyConnection,
+                 problems: list[Problem]) -> dict[str, Check]:
+    checks: dict[str, Check] = {}
+    first_seen: dict[str, str] = {}
+    for file in sorted([*folder.glob("*.yml"), *folder.glob("*.yaml")]):
+        shown = display_path(file)
+        doc, found = load(file, shown)
+        problems += found
+        if doc is None:
+            continue
+        check = _load_check(doc, sources, con, problems)
+        if check is None:
+            continue
+        if check.name in checks:
+            problems.append(Problem(shown, doc.line(("check",)),
+                                    f"duplicate check name '{check.name}' (also in {first_seen[check.name]})"))
+            continue
+        checks[check.name] = check
+        first_seen[check.name] = f"{shown}:{check.line}"
+    return checks
+
+
+def _load_check(doc: Located, sources: dict[str, Source], con: duckdb.DuckDBPyConnection,
+                problems: list[Problem]) -> Check | None:
+    before = len(problems)
+    top = _Section(doc, (), doc.data if doc.data is not None else {}, CHECK_KEYS, problems)
+    name, source_name = top.get("check"), top.get("source")
+    source = sources.get(source_name) if source_name else None
+    if source_name is not None and source is None:
+        close = difflib.get_close_matches(source_name, list(sources), n=1)
+        hint = f" (did you mean '{close[0]}'?)" if close else ""
+        top.error(("source",), f"unknown source '{source_name}'{hint}")
+    binder = _Binder(con, source) if source is not None else None
+    where = binder.expr(top, top.get("where"), "where", "boolean") if binder else None
+    by = top.get("by") or []
+    if binder:
+        for index, column in enumerate(by):
+            if column not in source.columns:
+                top.error(("by", index), f"by: {unknown_column(column, source.columns)} in source '{source.name}'")
+    measure = _measure(doc, top.get("measure"), binder, problems)
+    window = _window(doc, top.get("window"), problems)
+    baseline = _baseline(doc, top.get("baseline"), measure, problems)
+    guard_s = _Section(doc, ("guard",), top.get("guard") or {}, GUARD_KEYS, problems)
+    guard = Guard(guard_s.get("min_sessions"), guard_s.get("min_bad"))
+    if measure is not None and measure.kind != "rate" and "min_bad" in guard_s.raw:
+        guard_s.error(("guard", "min_bad"), f"guard.min_bad applies to rate measures, not {measure.kind}")
+    life_s = _Section(doc, ("lifecycle",), top.get("lifecycle") or {}, LIFECYCLE_KEYS, problems)
+    lifecycle = Lifecycle(life_s.get("recover_after"), life_s.get("expire_after"))
+    if measure is not None and measure.split and set(by) & {measure.split}:
+        top.error(("measure", "split"), f"measure.split: '{measure.split}' is already in 'by'")
+    if len(problems) > before or None in (name, source, measure, window, baseline):
+        return None
+    return Check(
+        name=name, about=top.get("about"), source=source, where=where, by=tuple(by), measure=measure,
+        direction=top.get("direction"), window=window, baseline=baseline, guard=guard,
+        lifecycle=lifecycle, severity=top.get("severity"), file=doc.file, line=doc.line(("check",)),
+    )
+
+
+def _measure(doc: Located, raw: Any, binder: _Binder | None, problems: list[Problem]) -> Measure | None:
+    if raw is None:
+        return None
+    kind_name = raw.get("kind") if isinstance(raw, dict) else None
+    kind = MEASURES.get(kind_name) if isinstance(kind_name, str) else None
+    section = _Section(doc, ("measure",), raw, MEASURE_KEYS + (kind.keys if kind else ()), problems)
+    if section.get("kind") is None or kind is None:
+        return None
+    values: dict[str, Any] = {"kind": kind.name}
+    for key in kind.keys:
+        value = section.get(key.name)
+        if binder is None:
+            continue
+        if key.type == "expr":
+            want = "boolean" if key.name == "bad" else "number"
+            value = binder.expr(section, value, key.name, want)
+        elif key.type == "column":
+            value = binder.column(section, value, key.name)
+        values[key.name] = value
+    if any(values.get(k.name) is None for k in kind.keys if k.required):
+        return None
+    return Measure(**values)
+
+
+def _window(doc: Located, raw: Any, problems: list[Problem]) -> Window | None:
+    if raw is None:
+        return None
+    section = _Section(doc, ("window",), raw, WINDOW_KEYS, problems)
+    given = set(section.raw)
+    if "sessions" in given and "every" in given:
+        section.error(("window", "every"), "window: give either 'sessions' (count window) or 'every' (time window), not both")
+        return None
+    if "sessions" in given:
+        if "lateness" in given:
+            section.error(("window", "lateness"), "window.lateness applies to time windows ('every'), not count windows")
+        sessions, max_wait = section.get("sessions"), section.get("max_wait")
+        if "max_wait" not in given:
+            section.error(("window",), "missing key 'max_wait' in window: a count window needs it so quiet series still close")
+        return Window(sessions=sessions, max_wait=max_wait) if sessions and max_wait else None
+    if "every" in given:
+        if "max_wait" in given:
+            section.error(("window", "max_wait"), "window.max_wait applies to count windows ('sessions'), not time windows")
+        every, lateness = section.get("every"), section.get("lateness")
+        if every is not None and every.total_seconds() <= 0:
+            section.error(("window", "every"), "window.every must be longer than 0s")
+            return None
+        return Window(every=every, lateness=lateness) if every and lateness is not None else None
+    section.error(("window",), "window needs 'sessions' (count window) or 'every' (time window)")
+    return None
+
+
+def _baseline(doc: Located, raw: Any, measure: Measure | None, problems: list[Problem]) -> Baseline | None:
+    if raw is None:
+        return None
+    method_name = raw.get("method") if isinstance(raw, dict) else None
+    method = BASELINES.get(method_name) if isinstance(method_name, str) else None
+    section = _Section(doc, ("baseline",), raw, BASELINE_KEYS + (method.keys if method else ()), problems)
+    if section.get("method") is None or method is None:
+        return None
+    values = {key.name: section.get(key.name) for key in method.keys}
+    if method.rate_only and measure is not None and measure.kind != "rate":
+        section.error(("baseline", "method"), f"baseline.method: {method.name} applies to rate measures, not {measure.kind}")
+        return None
+    if values.get("history") and values.get("min_history") and values["min_history"] > values["history"]:
+        section.error(("baseline", "min_history"),
+                      f"baseline.min_history ({values['min_history']}) cannot exceed history ({values['history']})")
+        return None
+    if any(values.get(k.name) is None for k in method.keys if k.required):
+        return None
+    return Baseline(method=method.name, **{k: v for k, v in values.items() if v is not None})

@@ -1,0 +1,88 @@
+"""Measure kinds and baseline methods, each defined once as data.
+
+The same rows drive validation (which keys a kind takes), the compiler (which template macro renders
+it), ``plimsoll keys`` and the README's reference, so adding a method is adding a row and a macro.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Any
+
+
+@dataclass(frozen=True)
+class Key:
+    """One YAML key: its type, whether it is required, its default, and what it means."""
+
+    name: str
+    type: str  # text | name | int | number | fraction | bool | duration | expr | column | columns | choice
+    doc: str
+    required: bool = False
+    default: Any = None
+    choices: tuple[str, ...] = ()
+    minimum: float | None = None
+
+
+@dataclass(frozen=True)
+class Kind:
+    """A measure kind or a baseline method: its keys, its macro in the stage template, its meaning."""
+
+    name: str
+    description: str
+    keys: tuple[Key, ...]
+    rate_only: bool = False
+
+
+MEASURES: dict[str, Kind] = {
+    k.name: k
+    for k in (
+        Kind(
+            "rate",
+            "share of the window's sessions that are bad: bad ÷ sessions",
+            (
+                Key("bad", "expr", "SQL boolean over source columns: which sessions count as bad", True),
+                Key("split", "column", "one series per value of this column among bad sessions"),
+            ),
+        ),
+        Kind(
+            "ratio",
+            "ratio of sums over the window's sessions: Σ numerator ÷ Σ denominator",
+            (
+                Key("numerator", "expr", "SQL numeric expression summed over sessions", True),
+                Key("denominator", "expr", "SQL numeric expression summed over sessions", True),
+            ),
+        ),
+        Kind(
+            "quantile",
+            "quantile_cont of a per-session value over the window (NULL values left out)",
+            (
+                Key("of", "expr", "SQL numeric expression per session", True),
+                Key("q", "fraction", "the quantile, between 0 and 1", True),
+            ),
+        ),
+    )
+}
+
+_HISTORY = (
+    Key("history", "int", "how many earlier non-breaching windows of the series", True, minimum=1),
+    Key("min_history", "int", "fewer earlier windows than this: no verdict yet", True, minimum=1),
+)
+
+BASELINES: dict[str, Kind] = {
+    k.name: k
+    for k in (
+        Kind(
+            "rolling_percentile",
+            "threshold = max(floor, factor × quantile_cont(q) of the series' earlier window values)",
+            (
+                Key("q", "fraction", "quantile of earlier windows' values", True),
+                *_HISTORY,
+                Key("factor", "number", "multiplier on the quantile (below 1 for direction down)", False, 1.0, minimum=0),
+                Key("floor", "number", "up: the threshold is never below this; down: never above it"),
+            ),
+        ),
+    )
+}
+
+SEVERITIES = ("high", "medium", "low")
+DIRECTIONS = ("up", "down")
