@@ -60,9 +60,11 @@ def _refuse_comments(text: str) -> None:
 
 
 def _refuse_shapes(tree: exp.Expression) -> None:
+    if isinstance(tree, exp.Alias):
+        raise ExpressionError(f"not valid SQL: unexpected text after '{tree.this.sql()}'")
     if not isinstance(tree, exp.Condition) or isinstance(tree, (exp.Query, exp.Subquery)):
         kind = type(tree).__name__.upper()
-        raise ExpressionError(f"must be an expression over the source's columns, not a {kind} statement")
+        raise ExpressionError(f"must be an expression over the source's columns, not a statement ({kind})")
     for node in tree.walk():
         if isinstance(node, (exp.Query, exp.Subquery, exp.Table, exp.Exists)):
             raise ExpressionError("subqueries and table references are not allowed")

@@ -314,6 +314,7 @@ def _load_check(doc: Located, sources: dict[str, Source], con: duckdb.DuckDBPyCo
     before = len(problems)
     top = _Section(doc, (), doc.data if doc.data is not None else {}, CHECK_KEYS, problems)
     name, source_name = top.get("check"), top.get("source")
+    about, direction, severity = top.get("about"), top.get("direction"), top.get("severity")
     source = sources.get(source_name) if source_name else None
     if source_name is not None and source is None:
         close = difflib.get_close_matches(source_name, list(sources), n=1)
@@ -340,9 +341,9 @@ def _load_check(doc: Located, sources: dict[str, Source], con: duckdb.DuckDBPyCo
     if len(problems) > before or None in (name, source, measure, window, baseline):
         return None
     return Check(
-        name=name, about=top.get("about"), source=source, where=where, by=tuple(by), measure=measure,
-        direction=top.get("direction"), window=window, baseline=baseline, guard=guard,
-        lifecycle=lifecycle, severity=top.get("severity"), file=doc.file, line=doc.line(("check",)),
+        name=name, about=about, source=source, where=where, by=tuple(by), measure=measure,
+        direction=direction, window=window, baseline=baseline, guard=guard,
+        lifecycle=lifecycle, severity=severity, file=doc.file, line=doc.line(("check",)),
     )
 
 

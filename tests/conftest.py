@@ -1,0 +1,40 @@
+"""Shared fixtures: temp projects over the small committed lake in tests/fixtures/lake."""
+
+from __future__ import annotations
+
+import textwrap
+from pathlib import Path
+
+import pytest
+
+FIXTURE_LAKE = Path(__file__).parent / "fixtures" / "lake"
+
+PROJECT = """\
+warehouse: warehouse.duckdb
+checks: checks/
+sources:
+  sessions:
+    path: {lake}
+    session_id: session_id
+    event_time: ended_at
+    exclude: is_bot
+"""
+
+
+def write_project(folder: Path, checks: dict[str, str], project: str | None = None,
+                  lake: Path = FIXTURE_LAKE) -> Path:
+    """A project in ``folder`` with the given check files (name -> YAML text)."""
+    (folder / "checks").mkdir(parents=True, exist_ok=True)
+    text = project if project is not None else PROJECT.format(lake=lake)
+    (folder / "plimsoll.yml").write_text(textwrap.dedent(text), encoding="utf-8")
+    for name, body in checks.items():
+        (folder / "checks" / name).write_text(textwrap.dedent(body), encoding="utf-8")
+    return folder / "plimsoll.yml"
+
+
+@pytest.fixture
+def make_project(tmp_path: Path):
+    def make(checks: dict[str, str], project: str | None = None, lake: Path = FIXTURE_LAKE) -> Path:
+        return write_project(tmp_path, checks, project, lake)
+
+    return make

@@ -1,0 +1,184 @@
+"""Malformed projects and checks: each is refused with file:line and a message that says what to fix.
+
+Every case asserts the line number and the words of the message, and that validation wrote nothing.
+"""
+
+from __future__ import annotations
+
+import textwrap
+from pathlib import Path
+
+import pytest
+from click.testing import CliRunner
+
+from toolkit.cli import main
+from toolkit.problems import ProjectInvalid
+from toolkit.project import load_project, parse_duration
+
+GOOD = """\
+check: title_errors
+about: A title fails.
+source: sessions
+by: [site, title_id]
+measure:
+  kind: rate
+  bad: error_code IS NOT NULL
+  split: error_code
+window:
+  sessions: 50
+  max_wait: 3h
+baseline:
+  method: rolling_percentile
+  q: 0.9
+  history: 20
+  min_history: 3
+  factor: 1.5
+  floor: 0.05
+guard:
+  min_sessions: 20
+  min_bad: 3
+severity: high
+"""
+
+
+def variant(old: str, new: str) -> str:
+    assert old in GOOD, old
+    return GOOD.replace(old, new, 1)
+
+
+# (case id, check file text, expected line, expected words in the message)
+CHECK_CASES = [
+    ("yaml-syntax", GOOD.replace("by: [site, title_id]", "by: [site, title_id"), 5, "YAML syntax"),
+    ("unknown-key-top", variant("severity: high", "severty: high"), 22, "unknown key 'severty' (did you mean 'severity'?)"),
+    ("unknown-key-nested", variant("  factor: 1.5", "  facter: 1.5"), 17, "unknown key 'facter' in baseline (did you mean 'factor'?)"),
+    ("missing-check-name", variant("check: title_errors\n", ""), 1, "missing key 'check'"),
+    ("missing-measure-key", variant("  bad: error_code IS NOT NULL\n", ""), 5, "missing key 'bad' in measure"),
+    ("missing-window", variant("window:\n  sessions: 50\n  max_wait: 3h\n", ""), 1, "missing key 'window'"),
+    ("wrong-type-int", variant("  history: 20", "  history: twenty"), 15, "baseline.history: expected a whole number"),
+    ("wrong-type-number", variant("  factor: 1.5", "  factor: [1, 2]"), 17, "baseline.factor: expected a number"),
+    ("wrong-type-by", variant("by: [site, title_id]", "by: {site: 1}"), 4, "by: expected a list of column names"),
+    ("fraction-range", variant("  q: 0.9", "  q: 90"), 14, "baseline.q: must be between 0 and 1"),
+    ("bad-duration-unit", variant("  max_wait: 3h", "  max_wait: 3 days"), 11, "bad duration '3 days'"),
+    ("bad-duration-word", variant("  max_wait: 3h", "  max_wait: soon"), 11, "bad duration 'soon'"),
+    ("unknown-source", variant("source: sessions", "source: session"), 3, "unknown source 'session' (did you mean 'sessions'?)"),
+    ("unknown-column-by", variant("by: [site, title_id]", "by: [site, titel_id]"), 4, "unknown column 'titel_id' (did you mean 'title_id'?)"),
+    ("unknown-column-split", variant("  split: error_code", "  split: err_code"), 8, "unknown column 'err_code'"),
+    ("unknown-column-expr", variant("  bad: error_code IS NOT NULL", "  bad: eror_code IS NOT NULL"), 7, "unknown column 'eror_code' (did you mean 'error_code'?)"),
+    ("second-statement", variant("  bad: error_code IS NOT NULL", "  bad: \"error_code IS NOT NULL; DROP TABLE alerts\""), 7, "single expression"),
+    ("subquery", variant("  bad: error_code IS NOT NULL", "  bad: error_code IN (SELECT alert_id FROM alerts)"), 7, "subqueries and table references are not allowed"),
+    ("hidden-comment", variant("  bad: error_code IS NOT NULL", "  bad: \"error_code IS NOT NULL /* OR true */\""), 7, "comments are not allowed"),
+    ("line-comment", variant("  bad: error_code IS NOT NULL", "  bad: \"error_code IS NULL -- x\""), 7, "comments are not allowed"),
+    ("not-boolean", variant("  bad: error_code IS NOT NULL", "  bad: play_ms + 1"), 7, "must be true/false per session, but is BIGINT"),
+    ("aggregate", variant("  bad: error_code IS NOT NULL", "  bad: count(*) > 1"), 7, "aggregate and window functions are not allowed"),
+    ("clock", variant("  bad: error_code IS NOT NULL", "  bad: ended_at > now()"), 7, "now() is not allowed"),
+    ("bad-sql", variant("  bad: error_code IS NOT NULL", "  bad: error_code IS"), 7, "not valid SQL"),
+    ("where-unknown-column", variant("by: [site, title_id]", "where: titleid IS NOT NULL\nby: [site, title_id]"), 4, "where: unknown column 'titleid'"),
+    ("bad-name", variant("check: title_errors", "check: Title-Errors"), 1, "is not a valid name"),
+    ("bad-choice", variant("severity: high", "severity: urgent"), 22, "'urgent' is not one of high, medium, low"),
+    ("bad-kind", variant("  kind: rate", "  kind: rat"), 6, "'rat' is not one of rate, ratio, quantile (did you mean 'rate'?)"),
+    ("bad-method", variant("  method: rolling_percentile", "  method: rolling_mean"), 13, "is not one of rolling_percentile"),
+    ("both-windows", variant("  max_wait: 3h", "  max_wait: 3h\n  every: 1h"), 12, "either 'sessions' (count window) or 'every'"),
+    ("count-window-without-wait", variant("  max_wait: 3h\n", ""), 9, "missing key 'max_wait' in window"),
+    ("min-history-above-history", variant("  min_history: 3", "  min_history: 30"), 16, "min_history (30) cannot exceed history (20)"),
+    ("min-bad-on-ratio", variant(
+        "  kind: rate\n  bad: error_code IS NOT NULL\n  split: error_code",
+        "  kind: ratio\n  numerator: rebuffer_ms\n  denominator: play_ms"), 21, "guard.min_bad applies to rate measures"),
+    ("split-in-by", variant("  split: error_code", "  split: site"), 8, "'site' is already in 'by'"),
+    ("duplicate-key", variant("severity: high", "severity: high\nseverity: low"), 23, "duplicate key 'severity'"),
+    ("not-a-mapping", "- just\n- a list\n", 1, "must be a mapping"),
+    ("quantile-needs-number", variant(
+        "  kind: rate\n  bad: error_code IS NOT NULL\n  split: error_code",
+        "  kind: quantile\n  of: site\n  q: 0.9").replace("  min_bad: 3\n", ""), 7, "must be a number per session, but is VARCHAR"),
+]
+
+
+@pytest.mark.parametrize("text,line,words", [c[1:] for c in CHECK_CASES], ids=[c[0] for c in CHECK_CASES])
+def test_malformed_check_is_refused_with_its_line(make_project, text: str, line: int, words: str) -> None:
+    project = make_project({"title_errors.yml": text})
+    with pytest.raises(ProjectInvalid) as caught:
+        load_project(project)
+    messages = [str(p) for p in caught.value.problems]
+    expected_prefix = f"checks/title_errors.yml:{line}:"
+    assert any(m.endswith(words) or words in m for m in messages if expected_prefix in m), messages
+    assert not (project.parent / "warehouse.duckdb").exists()
+
+
+def test_the_good_check_loads(make_project) -> None:
+    project = load_project(make_project({"title_errors.yml": GOOD}))
+    check = project.checks["title_errors"]
+    assert check.by == ("site", "title_id") and check.measure.split == "error_code"
+    assert check.measure.bad.sql == 'NOT "error_code" IS NULL'
+
+
+def test_duplicate_check_names_name_both_files(make_project) -> None:
+    project = make_project({"a.yml": GOOD, "b.yml": GOOD})
+    with pytest.raises(ProjectInvalid) as caught:
+        load_project(project)
+    (problem,) = caught.value.problems
+    folder = project.parent / "checks"
+    assert str(problem) == f"{folder}/b.yml:1: duplicate check name 'title_errors' (also in {folder}/a.yml:1)"
+
+
+def test_every_problem_is_reported_at_once(make_project) -> None:
+    text = variant("severity: high", "severity: urgent").replace("  history: 20", "  history: x")
+    with pytest.raises(ProjectInvalid) as caught:
+        load_project(make_project({"title_errors.yml": text}))
+    lines = sorted(p.line for p in caught.value.problems)
+    assert lines == [15, 22]
+
+
+PROJECT_CASES = [
+    ("project-unknown-key", "warehouse: w.duckdb\nchecks: checks/\nwarehose: x\nsources:\n  sessions:\n    path: {lake}\n    session_id: session_id\n    event_time: ended_at\n", 3, "unknown key 'warehose' (did you mean 'warehouse'?)"),
+    ("project-missing-warehouse", "checks: checks/\nsources:\n  sessions:\n    path: {lake}\n    session_id: session_id\n    event_time: ended_at\n", 1, "missing key 'warehouse'"),
+    ("source-missing-event-time", "warehouse: w.duckdb\nsources:\n  sessions:\n    path: {lake}\n    session_id: session_id\n", 3, "missing key 'event_time' in sources.sessions"),
+    ("source-unknown-column", "warehouse: w.duckdb\nsources:\n  sessions:\n    path: {lake}\n    session_id: sessionid\n    event_time: ended_at\n", 5, "unknown column 'sessionid' (did you mean 'session_id'?)"),
+    ("source-event-time-not-time", "warehouse: w.duckdb\nsources:\n  sessions:\n    path: {lake}\n    session_id: session_id\n    event_time: site\n", 6, "is VARCHAR, not a timestamp"),
+    ("source-no-files", "warehouse: w.duckdb\nsources:\n  sessions:\n    path: nowhere/\n    session_id: session_id\n    event_time: ended_at\n", 4, "no Parquet files at 'nowhere/'"),
+    ("source-bad-exclude", "warehouse: w.duckdb\nsources:\n  sessions:\n    path: {lake}\n    session_id: session_id\n    event_time: ended_at\n    exclude: is_bot; DROP TABLE runs\n", 7, "single expression"),
+    ("checks-folder-missing", "warehouse: w.duckdb\nchecks: elsewhere/\nsources:\n  sessions:\n    path: {lake}\n    session_id: session_id\n    event_time: ended_at\n", 2, "checks folder 'elsewhere/' does not exist"),
+]
+
+
+@pytest.mark.parametrize("text,line,words", [c[1:] for c in PROJECT_CASES], ids=[c[0] for c in PROJECT_CASES])
+def test_malformed_project_is_refused_with_its_line(make_project, text: str, line: int, words: str) -> None:
+    from conftest import FIXTURE_LAKE
+
+    project = make_project({}, project=text.format(lake=FIXTURE_LAKE))
+    with pytest.raises(ProjectInvalid) as caught:
+        load_project(project)
+    messages = [str(p) for p in caught.value.problems]
+    assert any(m.startswith(f"{project}:{line}:") and words in m for m in messages), messages
+
+
+def test_validate_command_exits_2_with_file_and_line(make_project, tmp_path: Path) -> None:
+    project = make_project({"title_errors.yml": variant("  history: 20", "  history: twenty")})
+    result = CliRunner().invoke(main, ["validate", "-p", str(project)])
+    assert result.exit_code == 2, result.output
+    assert "title_errors.yml:15: baseline.history: expected a whole number" in result.output
+    assert not (tmp_path / "warehouse.duckdb").exists()
+
+
+def test_validate_command_accepts_a_good_project(make_project) -> None:
+    project = make_project({"title_errors.yml": GOOD})
+    result = CliRunner().invoke(main, ["validate", "-p", str(project)])
+    assert result.exit_code == 0, result.output
+    assert "1 checks" in result.output
+
+
+@pytest.mark.parametrize("text,seconds", [("90m", 5400), ("2h", 7200), ("3d", 259200), ("1w", 604800),
+                                          ("1h30m", 5400), ("45s", 45)])
+def test_durations(text: str, seconds: int) -> None:
+    assert parse_duration(text).total_seconds() == seconds
+
+
+@pytest.mark.parametrize("text", ["", "3", "3 d", "h", "1.5h", "-2h", "3days", "2h1d"])
+def test_bad_durations(text: str) -> None:
+    with pytest.raises(ValueError, match="bad duration"):
+        parse_duration(text)
+
+
+def test_country_codes_that_look_like_booleans_stay_text(make_project) -> None:
+    text = variant("where: ", "where: ") if "where: " in GOOD else GOOD
+    text = text.replace("by: [site, title_id]", "where: country <> 'NO'\nby: [site, title_id]")
+    project = load_project(make_project({"title_errors.yml": textwrap.dedent(text)}))
+    assert project.checks["title_errors"].where.sql == "\"country\" <> 'NO'"

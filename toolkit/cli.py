@@ -1,0 +1,133 @@
+"""The ``plimsoll`` command: a thin layer that parses options, calls the library, reports errors.
+
+No SQL and no YAML logic lives here; every command's work is one call into the toolkit.
+"""
+
+from __future__ import annotations
+
+import sys
+from collections.abc import Callable
+from datetime import datetime
+from functools import wraps
+from pathlib import Path
+from typing import Any
+
+import click
+
+from . import __version__
+from .compiler import compile_check
+from .outputs import alerts_json, alerts_table, list_alerts
+from .problems import PlimsollError, ProjectInvalid
+from .project import load_project
+from .runner import run as run_checks
+from .runner import select_checks
+
+project_option = click.option(
+    "-p", "--project", "project_file", default="plimsoll.yml", show_default=True,
+    type=click.Path(dir_okay=False, path_type=Path), help="The project file.",
+)
+
+
+def reports_errors(fn: Callable[..., Any]) -> Callable[..., Any]:
+    """Turn library errors into their message on stderr and the error's exit code."""
+
+    @wraps(fn)
+    def wrapper(*args: Any, **kwargs: Any) -> Any:
+        try:
+            return fn(*args, **kwargs)
+        except PlimsollError as err:
+            for line in str(err).splitlines() or [type(err).__name__]:
+                click.echo(line, err=True)
+            sys.exit(err.exit_code)
+        except FileNotFoundError as err:
+            click.echo(str(err), err=True)
+            sys.exit(1)
+
+    return wrapper
+
+
+def _progress(stream_is_tty: bool) -> Callable[[str], None]:
+    def say(message: str) -> None:
+        stamp = datetime.now().strftime("%H:%M:%S")
+        click.echo(f"\r\033[K{message}" if stream_is_tty else f"{stamp} {message}", err=True,
+                   nl=not stream_is_tty)
+
+    return say
+
+
+@click.group(context_settings={"help_option_names": ["-h", "--help"]})
+@click.version_option(__version__, prog_name="plimsoll")
+def main() -> None:
+    """Plimsoll: checks over a playback-session lake, compiled to DuckDB SQL."""
+
+
+@main.command()
+@project_option
+@reports_errors
+def validate(project_file: Path) -> None:
+    """Load the project and every check; print file:line: message per problem."""
+    project = load_project(project_file)
+    click.echo(f"{project_file}: {len(project.checks)} checks, {len(project.sources)} sources: ok")
+
+
+@main.command()
+@click.argument("check")
+@project_option
+@reports_errors
+def compile(check: str, project_file: Path) -> None:
+    """Print the SQL that a run executes for CHECK."""
+    project = load_project(project_file)
+    (chosen,) = select_checks(project, [check])
+    click.echo(compile_check(chosen).sql, nl=False)
+
+
+@main.command()
+@project_option
+@click.option("--check", "checks", multiple=True, help="Run only this check (repeatable).")
+@click.option("--full-refresh", is_flag=True, help="Forget these checks' state and read the whole lake again.")
+@reports_errors
+def run(project_file: Path, checks: tuple[str, ...], full_refresh: bool) -> None:
+    """One incremental run over the files not yet read."""
+    project = load_project(project_file)
+    result = run_checks(project, list(checks), full_refresh, _progress(sys.stderr.isatty()))
+    if sys.stderr.isatty():
+        click.echo("", err=True)
+    click.echo(
+        f"run {result.run_id}: {result.files_read} new files, "
+        f"{sum(c.windows_written for c in result.checks)} windows, "
+        f"{result.alerts_opened} alerts opened, {sum(c.alerts_closed for c in result.checks)} closed"
+    )
+
+
+@main.command()
+@project_option
+@click.option("--status", type=click.Choice(["open", "closed", "all"]), default="all", show_default=True)
+@click.option("--check", "checks", multiple=True, help="Only alerts of this check (repeatable).")
+@click.option("--since", type=click.DateTime(), default=None, help="Only alerts opened at or after this data time.")
+@click.option("--json", "as_json", is_flag=True, help="JSON for scripts.")
+@reports_errors
+def alerts(project_file: Path, status: str, checks: tuple[str, ...], since: datetime | None, as_json: bool) -> None:
+    """List alerts, open ones first."""
+    project = load_project(project_file, check_schema=False)
+    found = list_alerts(project, status, checks, since)
+    click.echo(alerts_json(found) if as_json else alerts_table(found))
+
+
+@main.command()
+@click.option("--workdir", default="plimsoll-demo", show_default=True,
+              type=click.Path(file_okay=False, path_type=Path), help="Where to build the demo.")
+@click.option("--sessions", default=2_000_000, show_default=True, type=click.IntRange(min=10_000))
+@click.option("--seed", default=7, show_default=True, type=int)
+@reports_errors
+def demo(workdir: Path, sessions: int, seed: int) -> None:
+    """Build Fernhill Broadcasting's demo lake, run every catalogue check, print what was found."""
+    from .demo import build_and_run, summary
+
+    outcome = build_and_run(workdir, sessions, seed, _progress(sys.stderr.isatty()))
+    if sys.stderr.isatty():
+        click.echo("", err=True)
+    click.echo(summary(outcome))
+
+
+if __name__ == "__main__":  # pragma: no cover
+    main()

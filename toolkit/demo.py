@@ -1,0 +1,179 @@
+"""The demo: Fernhill Broadcasting's lake, the standard catalogue run over it, and what it found.
+
+``plimsoll demo`` builds everything in a work folder it owns (marked by a ``.plimsoll-demo`` file),
+so running it again rebuilds rather than mixing two lakes.
+"""
+
+from __future__ import annotations
+
+import shutil
+import time
+from dataclasses import dataclass, field
+from datetime import timedelta
+from importlib.resources import files
+from pathlib import Path
+from typing import Any
+
+from .outputs import alerts_from
+from .problems import PlimsollError
+from .project import load_project
+from .runner import RunResult, run
+from .warehouse import connect
+from .warehouse_demo.generate import Label, build_lake
+
+MARKER = ".plimsoll-demo"
+DECOY_SLACK = timedelta(days=1)
+
+PROJECT_YML = """\
+# Fernhill Broadcasting: the demo project written by `plimsoll demo`.
+warehouse: warehouse.duckdb
+checks: checks/
+sources:
+  sessions:
+    path: lake/sessions/
+    session_id: session_id
+    event_time: ended_at
+    # crawlers start sessions too; some say so, others only show it in their user agent
+    exclude: is_bot OR regexp_matches(user_agent, '(?i)(bot|crawler|spider)')
+"""
+
+
+@dataclass
+class Match:
+    alert: dict[str, Any]
+    label: Label | None
+
+
+@dataclass
+class DemoOutcome:
+    workdir: Path
+    sessions: int
+    seconds_lake: float
+    seconds_run: float
+    result: RunResult
+    labels: list[Label]
+    matches: list[Match] = field(default_factory=list)
+
+    @property
+    def found(self) -> list[Label]:
+        return [lab for lab in self.labels if lab.kind == "incident" and any(m.label is lab for m in self.matches)]
+
+    @property
+    def missed(self) -> list[Label]:
+        return [lab for lab in self.labels if lab.kind == "incident" and lab not in self.found]
+
+    @property
+    def decoys_hit(self) -> list[Match]:
+        return [m for m in self.matches if m.label is not None and m.label.kind == "decoy"]
+
+    @property
+    def unlabelled(self) -> list[Match]:
+        return [m for m in self.matches if m.label is None]
+
+
+def catalogue_folder() -> Path:
+    return Path(str(files("toolkit.catalogue")))
+
+
+def prepare_workdir(workdir: Path) -> None:
+    """Make ``workdir`` an empty demo folder; refuse to clear a folder the demo did not create."""
+    workdir = Path(workdir)
+    if workdir.exists() and any(workdir.iterdir()) and not (workdir / MARKER).exists():
+        raise PlimsollError(f"{workdir}: folder is not empty and was not made by `plimsoll demo`; "
+                            "choose another --workdir")
+    if workdir.exists():
+        shutil.rmtree(workdir)
+    workdir.mkdir(parents=True)
+    (workdir / MARKER).write_text("built by plimsoll demo; `plimsoll demo` may delete this folder\n")
+
+
+def write_project(workdir: Path) -> Path:
+    (workdir / "plimsoll.yml").write_text(PROJECT_YML, encoding="utf-8")
+    target = workdir / "checks"
+    target.mkdir(exist_ok=True)
+    for item in sorted(catalogue_folder().iterdir()):
+        if item.name.endswith(".yml"):
+            shutil.copyfile(item, target / item.name)
+    return workdir / "plimsoll.yml"
+
+
+def build_and_run(workdir: Path, sessions: int = 2_000_000, seed: int = 7,
+                  progress: Any = None) -> DemoOutcome:
+    say = progress or (lambda _: None)
+    workdir = Path(workdir)
+    prepare_workdir(workdir)
+    say(f"demo: generating {sessions:,} sessions")
+    t0 = time.perf_counter()
+    labels = build_lake(workdir, sessions=sessions, seed=seed)
+    t1 = time.perf_counter()
+    project = load_project(write_project(workdir))
+    result = run(project, progress=say)
+    t2 = time.perf_counter()
+    outcome = DemoOutcome(workdir, sessions, t1 - t0, t2 - t1, result, labels)
+    con = connect(project, read_only=True)
+    try:
+        outcome.matches = [Match(a, match_label(a, labels)) for a in alerts_from(con)]
+    finally:
+        con.close()
+    return outcome
+
+
+def key_pairs(text: str) -> dict[str, str]:
+    """``"cdn=birch, country=DE"`` as a mapping."""
+    pairs = {}
+    for part in filter(None, (p.strip() for p in text.split(","))):
+        name, _, value = part.partition("=")
+        pairs[name.strip()] = value.strip()
+    return pairs
+
+
+def label_matches(alert: dict[str, Any], label: Label) -> bool:
+    """Same check (a decoy's '*' is any), every labelled key pair present, opened in the span."""
+    if label.check not in ("*", alert["check_name"]):
+        return False
+    have = key_pairs(alert["key_text"] or "")
+    if any(have.get(k) != v for k, v in key_pairs(label.key).items()):
+        return False
+    end = label.end + (DECOY_SLACK if label.kind == "decoy" else timedelta(0))
+    return label.start <= alert["opened_at"] <= end
+
+
+def match_label(alert: dict[str, Any], labels: list[Label]) -> Label | None:
+    return next((lab for lab in labels if label_matches(alert, lab)), None)
+
+
+def summary(outcome: DemoOutcome) -> str:
+    """What a new user reads after `plimsoll demo`: each alert, and the score against the labels."""
+    o = outcome
+    incidents = [lab for lab in o.labels if lab.kind == "incident"]
+    lines = [
+        f"Fernhill Broadcasting demo in {o.workdir}/",
+        f"  lake: {o.sessions:,} sessions generated in {o.seconds_lake:.1f} s; "
+        f"run {o.result.run_id}: {len(o.result.checks)} checks over {o.result.files_read} files "
+        f"in {o.seconds_run:.1f} s",
+        "",
+        f"Alerts ({len(o.matches)}):",
+    ]
+    for m in sorted(o.matches, key=lambda m: (m.alert["opened_at"], m.alert["check_name"])):
+        a = m.alert
+        verdict = ("labelled incident" if m.label and m.label.kind == "incident"
+                   else "DECOY (should not alert)" if m.label else "not labelled")
+        split = f" [{a['split_value']}]" if a["split_value"] else ""
+        lines.append(
+            f"  {a['opened_at']:%Y-%m-%d %H:%M}  {a['check_name']:<24} {a['key_text']}{split}: "
+            f"{a['affected_sessions']:,} sessions affected over {a['breach_windows']} windows, "
+            f"{a['status']}{' (' + a['close_reason'] + ')' if a['close_reason'] else ''} - {verdict}"
+        )
+    lines += [
+        "",
+        f"Labelled incidents found: {len(o.found)} of {len(incidents)}"
+        + ("" if not o.missed else "; missed: " + "; ".join(f"{m.check} {m.key}" for m in o.missed)),
+        f"Decoys alerted: {len(o.decoys_hit)}; alerts matching no label: {len(o.unlabelled)}",
+        "",
+        "Query the warehouse straight away, for example:",
+        f"  duckdb {o.workdir / 'warehouse.duckdb'} \"SELECT check_name, key_text, opened_at, "
+        "affected_sessions FROM alerts ORDER BY opened_at\"",
+    ]
+    return "\n".join(lines)
+
+

@@ -1,0 +1,71 @@
+"""Reading results back for people and scripts: alert listings as a table or JSON.
+
+Listings carry keys and counts only, never a session or viewer identifier.
+"""
+
+from __future__ import annotations
+
+import json
+from datetime import datetime
+from typing import Any
+
+import duckdb
+
+from . import warehouse
+from .model import Project
+
+ALERT_COLUMNS = ("alert_id", "status", "severity", "check_name", "key_text", "split_value", "opened_at",
+                 "last_breach_at", "closed_at", "close_reason", "breach_windows", "affected_sessions",
+                 "peak_value", "threshold", "fingerprint")
+
+
+def list_alerts(project: Project, status: str = "all", checks: tuple[str, ...] = (),
+                since: datetime | None = None) -> list[dict[str, Any]]:
+    """Alerts, open ones first, newest first; filtered by status, check names and opening time."""
+    con = warehouse.connect(project, read_only=True)
+    try:
+        return alerts_from(con, status, checks, since)
+    finally:
+        con.close()
+
+
+def alerts_from(con: duckdb.DuckDBPyConnection, status: str = "all", checks: tuple[str, ...] = (),
+                since: datetime | None = None) -> list[dict[str, Any]]:
+    cols = ", ".join(ALERT_COLUMNS)
+    rows = con.execute(
+        f"""
+        SELECT {cols} FROM alerts
+        WHERE ($status = 'all' OR status = $status)
+          AND (len($checks) = 0 OR list_contains($checks, check_name))
+          AND ($since IS NULL OR opened_at >= $since)
+        ORDER BY status = 'open' DESC, opened_at DESC, check_name, key_text, split_value
+        """,
+        {"status": status, "checks": list(checks), "since": since},
+    ).fetchall()
+    return [dict(zip(ALERT_COLUMNS, row)) for row in rows]
+
+
+def alerts_json(alerts: list[dict[str, Any]]) -> str:
+    def encode(value: Any) -> Any:
+        return value.isoformat(sep=" ") if isinstance(value, datetime) else value
+
+    return json.dumps([{k: encode(v) for k, v in a.items()} for a in alerts], indent=2, ensure_ascii=False)
+
+
+def alerts_table(alerts: list[dict[str, Any]]) -> str:
+    """A fixed-width table for a terminal."""
+    if not alerts:
+        return "no alerts"
+    head = ("status", "severity", "check", "key", "split", "opened", "windows", "affected")
+    body = [
+        (
+            a["status"] if a["status"] == "open" else f"closed ({a['close_reason']})",
+            a["severity"], a["check_name"], a["key_text"] or "(all)", a["split_value"] or "",
+            a["opened_at"].strftime("%Y-%m-%d %H:%M"), str(a["breach_windows"]), str(a["affected_sessions"]),
+        )
+        for a in alerts
+    ]
+    widths = [max(len(str(r[i])) for r in (head, *body)) for i in range(len(head))]
+    lines = ["  ".join(str(c).ljust(w) for c, w in zip(row, widths)).rstrip() for row in (head, *body)]
+    lines.insert(1, "  ".join("-" * w for w in widths))
+    return "\n".join(lines)
