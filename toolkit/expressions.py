@@ -32,8 +32,10 @@ class ExpressionError(ValueError):
     """Why an expression was refused, in words a user can act on."""
 
 
-def parse_expression(text: str, columns: dict[str, str]) -> Expr:
-    """Check ``text`` as one expression over ``columns`` and return it with regenerated SQL."""
+def parse_expression(text: str, columns: dict[str, str] | None) -> Expr:
+    """Check ``text`` as one expression over ``columns`` and return it with regenerated SQL.
+
+    ``columns=None`` skips the column check (commands that only read the warehouse)."""
     if not isinstance(text, str) or not text.strip():
         raise ExpressionError("expected a SQL expression, got nothing")
     _refuse_comments(text)
@@ -94,8 +96,10 @@ def _function_name(node: exp.Expression) -> str:
     return type(node).__name__.lower()
 
 
-def _check_columns(tree: exp.Expression, columns: dict[str, str]) -> list[str]:
+def _check_columns(tree: exp.Expression, columns: dict[str, str] | None) -> list[str]:
     used: list[str] = []
+    if columns is None:
+        return sorted({c.name for c in tree.find_all(exp.Column)})
     by_lower = {name.lower(): name for name in columns}
     lambda_args = {
         arg.name for node in tree.find_all(exp.Lambda) for arg in node.expressions

@@ -182,8 +182,8 @@ class _Binder:
         self.table = lake.schema_table(con, source.name, source.columns) if source.columns else None
 
     def column(self, section: _Section, name: str | None, key: str) -> str | None:
-        if name is None:
-            return None
+        if name is None or not self.source.columns:
+            return name
         if name not in self.source.columns:
             section.error((*section.path, key), f"{dotted((*section.path, key))}: "
                           f"{unknown_column(name, self.source.columns)} in source '{self.source.name}'")
@@ -195,7 +195,7 @@ class _Binder:
             return None
         path = (*section.path, key)
         try:
-            parsed = parse_expression(text, self.source.columns)
+            parsed = parse_expression(text, self.source.columns or None)
         except ExpressionError as err:
             section.error(path, f"{dotted(path)}: {err}")
             return None
@@ -323,7 +323,7 @@ def _load_check(doc: Located, sources: dict[str, Source], con: duckdb.DuckDBPyCo
     binder = _Binder(con, source) if source is not None else None
     where = binder.expr(top, top.get("where"), "where", "boolean") if binder else None
     by = top.get("by") or []
-    if binder:
+    if binder and source.columns:
         for index, column in enumerate(by):
             if column not in source.columns:
                 top.error(("by", index), f"by: {unknown_column(column, source.columns)} in source '{source.name}'")

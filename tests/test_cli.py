@@ -1,0 +1,105 @@
+"""The command line over a temp project on the fixture lake: every command, its exits and output."""
+
+from __future__ import annotations
+
+import json
+import re
+from pathlib import Path
+
+import duckdb
+import pytest
+from click.testing import CliRunner
+
+from toolkit.cli import main
+from toolkit.project import CHECK_KEYS, PROJECT_KEYS, SOURCE_KEYS
+from toolkit.registry import BASELINES, MEASURES
+
+GOLDEN = Path(__file__).parent / "golden"
+README = Path(__file__).parent.parent / "README.md"
+
+
+@pytest.fixture
+def project(make_project) -> Path:
+    return make_project({"startup.yml": (GOLDEN / "startup_p90_by_site.yml").read_text()})
+
+
+def invoke(*args: str):
+    return CliRunner().invoke(main, list(args), catch_exceptions=False)
+
+
+@pytest.mark.parametrize("command", ["validate", "compile", "run", "alerts", "demo"])
+def test_every_command_has_help(command: str) -> None:
+    result = invoke(command, "--help")
+    assert result.exit_code == 0, result.output
+    assert "Usage:" in result.output
+
+
+def test_compile_prints_the_stages(project: Path) -> None:
+    result = invoke("compile", "startup_p90_by_site", "-p", str(project))
+    assert result.exit_code == 0, result.output
+    stages = re.findall(r"stage (\d) · (\w+)", result.output)
+    assert [s[1] for s in stages] == ["scan", "window", "measure", "baseline", "breach", "lifecycle", "persist"]
+    assert "quantile_cont(x, 0.9)" in result.output
+
+
+def test_compile_unknown_check_exits_2(project: Path) -> None:
+    result = invoke("compile", "nope", "-p", str(project))
+    assert result.exit_code == 2
+    assert "no check named 'nope'" in result.output
+
+
+def test_run_then_run_again_adds_nothing(project: Path) -> None:
+    first = invoke("run", "-p", str(project))
+    assert first.exit_code == 0, first.output
+    assert "run 1: 2 new files" in first.output
+    con = duckdb.connect(str(project.parent / "warehouse.duckdb"), read_only=True)
+    before = {t: con.execute(f"SELECT count(*) FROM {t}").fetchone()[0] for t in ("windows", "alerts", "alert_events")}
+    con.close()
+    second = invoke("run", "-p", str(project))
+    assert second.exit_code == 0, second.output
+    assert "run 2: 0 new files, 0 windows, 0 alerts opened" in second.output
+    con = duckdb.connect(str(project.parent / "warehouse.duckdb"), read_only=True)
+    after = {t: con.execute(f"SELECT count(*) FROM {t}").fetchone()[0] for t in ("windows", "alerts", "alert_events")}
+    runs = con.execute("SELECT run_id, status, files_read FROM runs ORDER BY run_id").fetchall()
+    assert after == before and before["windows"] > 0
+    assert runs == [(1, "ok", 2), (2, "ok", 0)]
+
+
+def test_alerts_table_and_json(project: Path) -> None:
+    invoke("run", "-p", str(project))
+    table = invoke("alerts", "-p", str(project))
+    assert table.exit_code == 0, table.output
+    assert table.output.splitlines()[0].split() == ["status", "severity", "check", "key", "split", "opened",
+                                                    "windows", "affected"]
+    assert "site=kids" in table.output
+    data = json.loads(invoke("alerts", "--json", "-p", str(project)).output)
+    assert {a["check_name"] for a in data} == {"startup_p90_by_site"}
+    assert all(set(a) >= {"alert_id", "status", "key_text", "opened_at", "affected_sessions"} for a in data)
+    assert "session_id" not in json.dumps(data)
+    opened = json.loads(invoke("alerts", "--json", "--status", "open", "-p", str(project)).output)
+    assert all(a["status"] == "open" for a in opened)
+
+
+def test_alerts_before_any_run_says_so(project: Path) -> None:
+    result = invoke("alerts", "-p", str(project))
+    assert result.exit_code == 1
+    assert "no warehouse yet" in result.output
+
+
+def test_run_on_broken_project_exits_2_and_writes_nothing(make_project, tmp_path: Path) -> None:
+    text = (GOLDEN / "startup_p90_by_site.yml").read_text().replace("q: 0.9", "q: 9")
+    project = make_project({"startup.yml": text})
+    result = invoke("run", "-p", str(project))
+    assert result.exit_code == 2
+    assert "startup.yml:" in result.output and "must be between 0 and 1" in result.output
+    assert not (tmp_path / "warehouse.duckdb").exists()
+
+
+def test_every_yaml_key_is_documented_in_the_readme() -> None:
+    readme = README.read_text()
+    keys = [k.name for k in (*PROJECT_KEYS, *SOURCE_KEYS, *CHECK_KEYS)]
+    keys += [k.name for kind in (*MEASURES.values(), *BASELINES.values()) for k in kind.keys]
+    keys += list(MEASURES) + list(BASELINES) + ["sessions", "max_wait", "every", "lateness",
+                                                 "min_sessions", "min_bad", "recover_after", "expire_after"]
+    missing = [k for k in keys if f"`{k}`" not in readme]
+    assert not missing, f"README does not document: {missing}"
