@@ -10,15 +10,42 @@
 --   threshold = {% if b.floor is not none %}least({{ b.floor }}, {% endif %}{{ b.factor }} × baseline{% if b.floor is not none %}){% endif %}
 {% endif %}
 {% endif %}
+{% if measure.split %}
+-- A split value first seen after its key's first window has the key's earlier windows as history,
+-- each with value 0: it had no bad sessions in them.
+{% endif %}
 -- Earlier windows that did not breach can only enter a window's history in order, so the verdicts
 -- of a series are found by repeating this stage and the next until no breach flag changes; each
 -- round settles at least one more window of every series still changing, all series at once.
 CREATE OR REPLACE TEMP TABLE history AS
-SELECT w.key, w.split_value, w.seq, w.value, w.sessions, w.bad
-FROM windows AS w
-SEMI JOIN (SELECT DISTINCT key, split_value FROM new_windows) AS n
-    ON w.key = n.key AND w.split_value IS NOT DISTINCT FROM n.split_value
-WHERE w.check_name = {{ check_lit }} AND NOT w.breach AND w.value IS NOT NULL
+WITH earlier AS (
+    SELECT w.key, w.split_value, w.seq, w.key_window, w.value, w.breach
+    FROM windows AS w
+    SEMI JOIN (SELECT DISTINCT key, split_value FROM new_windows) AS n
+        ON w.key = n.key AND w.split_value IS NOT DISTINCT FROM n.split_value
+    WHERE w.check_name = {{ check_lit }}
+){% if measure.split %},
+first_seen AS (
+    SELECT key, split_value, min(key_window) AS first_window
+    FROM (SELECT key, split_value, key_window FROM earlier
+          UNION ALL SELECT key, split_value, key_window FROM new_windows)
+    GROUP BY key, split_value
+),
+quiet AS (
+    -- a split value first seen in its key's n-th window had none in the n-1 before: 0 each
+    SELECT f.key, f.split_value, -r.range AS seq, 0.0::DOUBLE AS value
+    FROM first_seen AS f,
+    LATERAL range(1, least(f.first_window, {{ b.history + 1 }})) AS r
+){% endif %}
+
+SELECT key, split_value, seq, value
+FROM (
+    SELECT key, split_value, seq, value FROM earlier WHERE NOT breach AND value IS NOT NULL
+{% if measure.split %}
+    UNION ALL
+    SELECT key, split_value, seq, value FROM quiet
+{% endif %}
+)
 QUALIFY row_number() OVER (PARTITION BY key, split_value ORDER BY seq DESC) <= {{ b.history }};
 
 CREATE OR REPLACE TEMP TABLE judged AS

@@ -28,7 +28,7 @@ ordered AS (
         coalesce(o.healthy_streak, 0) AS streak0
     FROM judged AS j
     SEMI JOIN relevant AS r ON {{ m.same_series("j", "r") }}
-    LEFT JOIN series_last AS l ON l.key = j.key
+    LEFT JOIN key_state AS l ON l.check_name = {{ check_lit }} AND l.key = j.key
     LEFT JOIN open_alerts AS o ON {{ m.same_series("j", "o") }}
 ),
 stretched AS (
@@ -109,7 +109,7 @@ series_end AS (
     SELECT s.key, s.split_value, coalesce(max(j.window_end), max(l.last_end)) AS last_window_end
     FROM all_episodes AS s
     LEFT JOIN judged AS j ON {{ m.same_series("j", "s") }}
-    LEFT JOIN series_last AS l ON l.key = s.key
+    LEFT JOIN key_state AS l ON l.check_name = {{ check_lit }} AND l.key = s.key
     GROUP BY s.key, s.split_value
 ),
 healthy_tail AS (

@@ -1,3 +1,4 @@
+{% import "macros.sql" as m %}
 {% set check_lit = check.name | literal %}
 -- ── stage 3 · measure ──────────────────────────────────────────────────────────────────────
 {% if measure.kind == "rate" %}
@@ -9,10 +10,10 @@
 {% else %}
 -- quantile_cont({{ measure.of.sql }}, {{ measure.q }}) over the window's sessions (NULL values left out).
 {% endif %}
-CREATE OR REPLACE TEMP TABLE key_windows AS
+CREATE OR REPLACE TEMP TABLE key_window_stats AS
 SELECT
-    key,
-    any_value(key_text) AS key_text,
+    {{ m.to_map("key", check.by) }} AS key,
+    {{ m.key_text("key", check.by) }} AS key_text,
     seq,
     min(window_start) AS window_start,
     max(window_end) AS window_end,
@@ -30,13 +31,21 @@ SELECT
 FROM window_sessions
 GROUP BY key, seq;
 
+-- key_window: the ordinal of the window among all of its key's windows, across runs
+CREATE OR REPLACE TEMP TABLE key_windows AS
+SELECT
+    w.*,
+    coalesce(s.windows, 0) + row_number() OVER (PARTITION BY w.key ORDER BY w.seq) AS key_window
+FROM key_window_stats AS w
+LEFT JOIN key_state AS s ON s.check_name = {{ check_lit }} AND s.key = w.key;
+
 CREATE OR REPLACE TEMP TABLE new_windows AS
 {% if measure.kind == "rate" and measure.split %}
 WITH bad_by_value AS (
-    SELECT key, seq, split_value, count(*) AS bad
+    SELECT {{ m.to_map("key", check.by) }} AS key, seq, split_value, count(*) AS bad
     FROM window_sessions
     WHERE is_bad
-    GROUP BY key, seq, split_value
+    GROUP BY ALL
 ),
 known AS (
     -- each split value of a key, from the first window it was seen in (earlier runs: seq 0)
@@ -52,7 +61,7 @@ known AS (
     GROUP BY key, split_value
 )
 SELECT
-    w.key, w.key_text, k.split_value, w.seq, w.window_start, w.window_end, w.sessions,
+    w.key, w.key_text, k.split_value, w.seq, w.key_window, w.window_start, w.window_end, w.sessions,
     coalesce(b.bad, 0) AS bad,
     coalesce(b.bad, 0) / w.sessions AS value
 FROM key_windows AS w
@@ -60,6 +69,6 @@ JOIN known AS k ON k.key = w.key AND w.seq >= k.since
 LEFT JOIN bad_by_value AS b
     ON b.key = w.key AND b.seq = w.seq AND b.split_value IS NOT DISTINCT FROM k.split_value;
 {% else %}
-SELECT key, key_text, NULL::VARCHAR AS split_value, seq, window_start, window_end, sessions, bad, value
+SELECT key, key_text, NULL::VARCHAR AS split_value, seq, key_window, window_start, window_end, sessions, bad, value
 FROM key_windows;
 {% endif %}

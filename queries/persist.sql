@@ -3,7 +3,7 @@
 -- Everything below commits in the run's one transaction, with the files read and the run record.
 INSERT INTO windows BY NAME
 SELECT
-    {{ check_lit }} AS check_name, key, key_text, split_value, seq, window_start, window_end,
+    {{ check_lit }} AS check_name, key, key_text, split_value, seq, key_window, window_start, window_end,
     sessions, bad, value, baseline, history_windows, threshold, breach, $run_id AS run_id
 FROM judged;
 
@@ -11,7 +11,8 @@ DELETE FROM key_state
 WHERE check_name = {{ check_lit }} AND key IN (SELECT key FROM key_windows);
 
 INSERT INTO key_state BY NAME
-SELECT {{ check_lit }} AS check_name, key, max(seq) AS last_seq, max(window_end) AS last_end
+SELECT {{ check_lit }} AS check_name, key, max(seq) AS last_seq, max(window_end) AS last_end,
+       max(key_window) AS windows
 FROM key_windows
 GROUP BY key;
 

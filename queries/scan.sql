@@ -8,8 +8,7 @@ SELECT
     {{ source.event_time | ident }}::TIMESTAMP AS event_time,
     {% if source.exclude %}coalesce({{ source.exclude.sql }}, false){% else %}false{% endif %} AS excluded,
     {% if check.where %}coalesce({{ check.where.sql }}, false){% else %}true{% endif %} AS selected,
-    {{ m.key_map(check.by) }} AS key,
-    {{ m.key_text(check.by) }} AS key_text,
+    {{ m.key_struct(check.by) }} AS key,
 {% if measure.kind == "rate" %}
     coalesce({{ measure.bad.sql }}, false) AS is_bad,
     {% if measure.split %}{{ measure.split | ident }}::VARCHAR{% else %}NULL::VARCHAR{% endif %} AS split_value,
@@ -40,10 +39,23 @@ SELECT
 FROM (SELECT (SELECT watermark FROM check_state WHERE check_name = {{ check.name | literal }}) AS watermark) AS prior;
 
 -- One copy of each session id: the earliest, then by file name, so every run keeps the same one.
+CREATE OR REPLACE TEMP TABLE repeated_ids AS
+SELECT session_id
+FROM scanned
+WHERE session_id IS NOT NULL AND event_time IS NOT NULL
+GROUP BY session_id
+HAVING count(*) > 1;
+
 CREATE OR REPLACE TEMP TABLE firsts AS
 SELECT *
 FROM scanned
 WHERE session_id IS NOT NULL AND event_time IS NOT NULL
+  AND session_id NOT IN (SELECT session_id FROM repeated_ids)
+UNION ALL
+SELECT *
+FROM scanned
+WHERE event_time IS NOT NULL
+  AND session_id IN (SELECT session_id FROM repeated_ids)
 QUALIFY row_number() OVER (PARTITION BY session_id ORDER BY event_time, source_file) = 1;
 
 CREATE OR REPLACE TEMP TABLE arrivals AS

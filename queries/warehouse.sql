@@ -58,7 +58,8 @@ CREATE TABLE IF NOT EXISTS key_state (
     check_name VARCHAR,
     key MAP(VARCHAR, VARCHAR),
     last_seq BIGINT,
-    last_end TIMESTAMP
+    last_end TIMESTAMP,
+    windows BIGINT                   -- how many windows the key has closed
 );
 
 CREATE TABLE IF NOT EXISTS carry (
@@ -79,7 +80,8 @@ CREATE TABLE IF NOT EXISTS windows (
     key MAP(VARCHAR, VARCHAR),
     key_text VARCHAR,
     split_value VARCHAR,
-    seq BIGINT,
+    seq BIGINT,                      -- order within the series (time windows: epoch bucket number)
+    key_window BIGINT,               -- ordinal among the key's windows, 1, 2, 3 …
     window_start TIMESTAMP,
     window_end TIMESTAMP,
     sessions BIGINT,

@@ -1,3 +1,4 @@
+{% import "macros.sql" as m %}
 {% set check_lit = check.name | literal %}
 -- ── stage 2 · window ───────────────────────────────────────────────────────────────────────
 {% if window.kind == "count" %}
@@ -9,7 +10,7 @@
 -- passes its end + {{ window.lateness | interval }}. Sessions for a window already closed are late.
 {% endif %}
 CREATE OR REPLACE TEMP TABLE series_last AS
-SELECT key, last_seq, last_end
+SELECT {{ m.from_map("key", check.by) }} AS key, last_seq, last_end
 FROM key_state
 WHERE check_name = {{ check_lit }};
 
@@ -17,30 +18,34 @@ CREATE OR REPLACE TEMP TABLE pooled AS
 {% if window.kind == "count" %}
 SELECT
     p.*,
-    row_number() OVER (PARTITION BY p.key ORDER BY p.event_time, p.session_id) - 1 AS i,
-    -- lim: position of the last session within max_wait of this one
-    count(*) OVER (
-        PARTITION BY p.key ORDER BY p.event_time
-        RANGE BETWEEN UNBOUNDED PRECEDING AND {{ window.max_wait | interval }} FOLLOWING
-    ) - 1 AS lim
+    row_number() OVER in_order - 1 AS i,
+    -- a window starting here cannot fill: fewer than N sessions left, or the N-th is too late
+    coalesce(lead(p.event_time, {{ window.sessions - 1 }}) OVER in_order > p.event_time + {{ window.max_wait | interval }}, true) AS is_cut
 FROM (
-    SELECT key, key_text, event_time, session_id, is_bad, split_value, num, den, x, false AS late
+    SELECT {{ m.from_map("key", check.by) }} AS key, event_time, session_id, is_bad, split_value,
+           num, den, x, false AS late
     FROM carry
     WHERE check_name = {{ check_lit }}
     UNION ALL
     -- late: earlier than the end of a window already closed for the series; it joins the open window
-    SELECT a.key, a.key_text, a.event_time, a.session_id, a.is_bad, a.split_value, a.num, a.den, a.x,
+    SELECT a.key, a.event_time, a.session_id, a.is_bad, a.split_value, a.num, a.den, a.x,
            coalesce(a.event_time < s.last_end, false) AS late
     FROM arrivals AS a
     LEFT JOIN series_last AS s ON s.key = a.key
-) AS p;
+) AS p
+WINDOW in_order AS (PARTITION BY p.key ORDER BY p.event_time, p.session_id);
 
 -- Cuts: window starts that cannot fill; each either times out (the watermark has passed
--- start + max_wait: the window closes with the sessions it has) or stays open and is carried.
+-- start + max_wait: the window closes with the sessions within max_wait of its start, up to
+-- position lim) or stays open and is carried.
 CREATE OR REPLACE TEMP TABLE cuts AS
-SELECT key, i, lim, event_time + {{ window.max_wait | interval }} < (SELECT current FROM clock) AS times_out
-FROM pooled
-WHERE lim < i + {{ window.sessions }} - 1;
+WITH last_at AS (
+    SELECT key, event_time, max(i) AS last_i FROM pooled GROUP BY key, event_time
+)
+SELECT c.key, c.i, t.last_i AS lim,
+       c.event_time + {{ window.max_wait | interval }} < (SELECT current FROM clock) AS times_out
+FROM (SELECT key, i, event_time FROM pooled WHERE is_cut) AS c
+ASOF JOIN last_at AS t ON t.key = c.key AND t.event_time <= c.event_time + {{ window.max_wait | interval }};
 
 -- Runs of full windows per series, from the start of the pool to the first cut on the run's
 -- stride; after a cut that times out the next run starts behind it. One step per cut, all series at once.
@@ -81,18 +86,25 @@ SELECT
 FROM pooled AS p
 ASOF JOIN runs_of_windows AS r ON p.key = r.key AND p.i >= r.o;
 
-CREATE OR REPLACE TEMP TABLE window_sessions AS
+CREATE OR REPLACE TEMP TABLE closed_windows AS
 SELECT
-    p.* EXCLUDE (i, lim, w0),
-    coalesce(s.last_seq, 0) + dense_rank() OVER (PARTITION BY p.key ORDER BY p.w0) AS seq,
-    min(p.event_time) OVER (PARTITION BY p.key, p.w0) AS window_start,
-    max(p.event_time) OVER (PARTITION BY p.key, p.w0) AS window_end
+    w.key, w.w0, w.window_start, w.window_end,
+    coalesce(s.last_seq, 0) + row_number() OVER (PARTITION BY w.key ORDER BY w.w0) AS seq
+FROM (
+    SELECT key, w0, min(event_time) AS window_start, max(event_time) AS window_end
+    FROM placed
+    WHERE w0 IS NOT NULL
+    GROUP BY key, w0
+) AS w
+LEFT JOIN series_last AS s ON s.key = w.key;
+
+CREATE OR REPLACE TEMP TABLE window_sessions AS
+SELECT p.* EXCLUDE (i, is_cut, w0), w.seq, w.window_start, w.window_end
 FROM placed AS p
-LEFT JOIN series_last AS s ON s.key = p.key
-WHERE p.w0 IS NOT NULL;
+JOIN closed_windows AS w ON w.key = p.key AND w.w0 = p.w0;
 
 CREATE OR REPLACE TEMP TABLE carry_next AS
-SELECT key, key_text, event_time, session_id, is_bad, split_value, num, den, x
+SELECT {{ m.to_map("key", check.by) }} AS key, {{ m.key_text("key", check.by) }} AS key_text, event_time, session_id, is_bad, split_value, num, den, x
 FROM placed
 WHERE w0 IS NULL;
 
@@ -106,11 +118,12 @@ SELECT
     make_timestamp(epoch_us(p.event_time) // {{ width }} * {{ width }}) AS window_start,
     make_timestamp(epoch_us(p.event_time) // {{ width }} * {{ width }} + {{ width }}) AS window_end
 FROM (
-    SELECT key, key_text, event_time, session_id, is_bad, split_value, num, den, x
+    SELECT {{ m.from_map("key", check.by) }} AS key, event_time, session_id, is_bad, split_value,
+           num, den, x
     FROM carry
     WHERE check_name = {{ check_lit }}
     UNION ALL
-    SELECT key, key_text, event_time, session_id, is_bad, split_value, num, den, x
+    SELECT key, event_time, session_id, is_bad, split_value, num, den, x
     FROM arrivals
 ) AS p;
 
@@ -127,7 +140,7 @@ WHERE window_end + {{ window.lateness | interval }} < (SELECT current FROM clock
   AND NOT coalesce(window_end + {{ window.lateness | interval }} < (SELECT previous FROM clock), false);
 
 CREATE OR REPLACE TEMP TABLE carry_next AS
-SELECT key, key_text, event_time, session_id, is_bad, split_value, num, den, x
+SELECT {{ m.to_map("key", check.by) }} AS key, {{ m.key_text("key", check.by) }} AS key_text, event_time, session_id, is_bad, split_value, num, den, x
 FROM pooled
 WHERE NOT (window_end + {{ window.lateness | interval }} < (SELECT current FROM clock));
 {% endif %}

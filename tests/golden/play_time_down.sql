@@ -10,8 +10,7 @@ SELECT
     "ended_at"::TIMESTAMP AS event_time,
 coalesce("is_bot", false) AS excluded,
 true AS selected,
-    MAP {'cdn': "cdn"::VARCHAR} AS key,
-    'cdn=' || coalesce("cdn"::VARCHAR, '<null>') AS key_text,
+    {'cdn': "cdn"::VARCHAR} AS key,
     NULL::BOOLEAN AS is_bad,
     NULL::VARCHAR AS split_value,
     ("play_ms")::DOUBLE AS num,
@@ -28,10 +27,23 @@ SELECT
 FROM (SELECT (SELECT watermark FROM check_state WHERE check_name = 'play_time_down') AS watermark) AS prior;
 
 -- One copy of each session id: the earliest, then by file name, so every run keeps the same one.
+CREATE OR REPLACE TEMP TABLE repeated_ids AS
+SELECT session_id
+FROM scanned
+WHERE session_id IS NOT NULL AND event_time IS NOT NULL
+GROUP BY session_id
+HAVING count(*) > 1;
+
 CREATE OR REPLACE TEMP TABLE firsts AS
 SELECT *
 FROM scanned
 WHERE session_id IS NOT NULL AND event_time IS NOT NULL
+  AND session_id NOT IN (SELECT session_id FROM repeated_ids)
+UNION ALL
+SELECT *
+FROM scanned
+WHERE event_time IS NOT NULL
+  AND session_id IN (SELECT session_id FROM repeated_ids)
 QUALIFY row_number() OVER (PARTITION BY session_id ORDER BY event_time, source_file) = 1;
 
 CREATE OR REPLACE TEMP TABLE arrivals AS
@@ -55,37 +67,41 @@ FROM firsts;
 -- window that is not full INTERVAL 12 HOUR after its first session closes as it is once the
 -- watermark has passed that moment. Partial windows are carried to the next run.
 CREATE OR REPLACE TEMP TABLE series_last AS
-SELECT key, last_seq, last_end
+SELECT {'cdn': key['cdn']} AS key, last_seq, last_end
 FROM key_state
 WHERE check_name = 'play_time_down';
 
 CREATE OR REPLACE TEMP TABLE pooled AS
 SELECT
     p.*,
-    row_number() OVER (PARTITION BY p.key ORDER BY p.event_time, p.session_id) - 1 AS i,
-    -- lim: position of the last session within max_wait of this one
-    count(*) OVER (
-        PARTITION BY p.key ORDER BY p.event_time
-        RANGE BETWEEN UNBOUNDED PRECEDING AND INTERVAL 12 HOUR FOLLOWING
-    ) - 1 AS lim
+    row_number() OVER in_order - 1 AS i,
+    -- a window starting here cannot fill: fewer than N sessions left, or the N-th is too late
+    coalesce(lead(p.event_time, 39) OVER in_order > p.event_time + INTERVAL 12 HOUR, true) AS is_cut
 FROM (
-    SELECT key, key_text, event_time, session_id, is_bad, split_value, num, den, x, false AS late
+    SELECT {'cdn': key['cdn']} AS key, event_time, session_id, is_bad, split_value,
+           num, den, x, false AS late
     FROM carry
     WHERE check_name = 'play_time_down'
     UNION ALL
     -- late: earlier than the end of a window already closed for the series; it joins the open window
-    SELECT a.key, a.key_text, a.event_time, a.session_id, a.is_bad, a.split_value, a.num, a.den, a.x,
+    SELECT a.key, a.event_time, a.session_id, a.is_bad, a.split_value, a.num, a.den, a.x,
            coalesce(a.event_time < s.last_end, false) AS late
     FROM arrivals AS a
     LEFT JOIN series_last AS s ON s.key = a.key
-) AS p;
+) AS p
+WINDOW in_order AS (PARTITION BY p.key ORDER BY p.event_time, p.session_id);
 
 -- Cuts: window starts that cannot fill; each either times out (the watermark has passed
--- start + max_wait: the window closes with the sessions it has) or stays open and is carried.
+-- start + max_wait: the window closes with the sessions within max_wait of its start, up to
+-- position lim) or stays open and is carried.
 CREATE OR REPLACE TEMP TABLE cuts AS
-SELECT key, i, lim, event_time + INTERVAL 12 HOUR < (SELECT current FROM clock) AS times_out
-FROM pooled
-WHERE lim < i + 40 - 1;
+WITH last_at AS (
+    SELECT key, event_time, max(i) AS last_i FROM pooled GROUP BY key, event_time
+)
+SELECT c.key, c.i, t.last_i AS lim,
+       c.event_time + INTERVAL 12 HOUR < (SELECT current FROM clock) AS times_out
+FROM (SELECT key, i, event_time FROM pooled WHERE is_cut) AS c
+ASOF JOIN last_at AS t ON t.key = c.key AND t.event_time <= c.event_time + INTERVAL 12 HOUR;
 
 -- Runs of full windows per series, from the start of the pool to the first cut on the run's
 -- stride; after a cut that times out the next run starts behind it. One step per cut, all series at once.
@@ -126,18 +142,25 @@ SELECT
 FROM pooled AS p
 ASOF JOIN runs_of_windows AS r ON p.key = r.key AND p.i >= r.o;
 
-CREATE OR REPLACE TEMP TABLE window_sessions AS
+CREATE OR REPLACE TEMP TABLE closed_windows AS
 SELECT
-    p.* EXCLUDE (i, lim, w0),
-    coalesce(s.last_seq, 0) + dense_rank() OVER (PARTITION BY p.key ORDER BY p.w0) AS seq,
-    min(p.event_time) OVER (PARTITION BY p.key, p.w0) AS window_start,
-    max(p.event_time) OVER (PARTITION BY p.key, p.w0) AS window_end
+    w.key, w.w0, w.window_start, w.window_end,
+    coalesce(s.last_seq, 0) + row_number() OVER (PARTITION BY w.key ORDER BY w.w0) AS seq
+FROM (
+    SELECT key, w0, min(event_time) AS window_start, max(event_time) AS window_end
+    FROM placed
+    WHERE w0 IS NOT NULL
+    GROUP BY key, w0
+) AS w
+LEFT JOIN series_last AS s ON s.key = w.key;
+
+CREATE OR REPLACE TEMP TABLE window_sessions AS
+SELECT p.* EXCLUDE (i, is_cut, w0), w.seq, w.window_start, w.window_end
 FROM placed AS p
-LEFT JOIN series_last AS s ON s.key = p.key
-WHERE p.w0 IS NOT NULL;
+JOIN closed_windows AS w ON w.key = p.key AND w.w0 = p.w0;
 
 CREATE OR REPLACE TEMP TABLE carry_next AS
-SELECT key, key_text, event_time, session_id, is_bad, split_value, num, den, x
+SELECT MAP {'cdn': struct_extract(key, 'cdn')} AS key, 'cdn=' || coalesce(struct_extract(key, 'cdn'), '<null>') AS key_text, event_time, session_id, is_bad, split_value, num, den, x
 FROM placed
 WHERE w0 IS NULL;
 
@@ -146,10 +169,10 @@ SELECT count(*) FILTER (WHERE late) AS late_rows FROM pooled;
 
 -- ── stage 3 · measure ──────────────────────────────────────────────────────────────────────
 -- ratio of sums = Σ ("play_ms") ÷ Σ (1); NULL when the denominator is 0.
-CREATE OR REPLACE TEMP TABLE key_windows AS
+CREATE OR REPLACE TEMP TABLE key_window_stats AS
 SELECT
-    key,
-    any_value(key_text) AS key_text,
+    MAP {'cdn': struct_extract(key, 'cdn')} AS key,
+    'cdn=' || coalesce(struct_extract(key, 'cdn'), '<null>') AS key_text,
     seq,
     min(window_start) AS window_start,
     max(window_end) AS window_end,
@@ -159,8 +182,16 @@ SELECT
 FROM window_sessions
 GROUP BY key, seq;
 
+-- key_window: the ordinal of the window among all of its key's windows, across runs
+CREATE OR REPLACE TEMP TABLE key_windows AS
+SELECT
+    w.*,
+    coalesce(s.windows, 0) + row_number() OVER (PARTITION BY w.key ORDER BY w.seq) AS key_window
+FROM key_window_stats AS w
+LEFT JOIN key_state AS s ON s.check_name = 'play_time_down' AND s.key = w.key;
+
 CREATE OR REPLACE TEMP TABLE new_windows AS
-SELECT key, key_text, NULL::VARCHAR AS split_value, seq, window_start, window_end, sessions, bad, value
+SELECT key, key_text, NULL::VARCHAR AS split_value, seq, key_window, window_start, window_end, sessions, bad, value
 FROM key_windows;
 
 -- ── stage 4 · baseline ─────────────────────────────────────────────────────────────────────
@@ -170,11 +201,17 @@ FROM key_windows;
 -- of a series are found by repeating this stage and the next until no breach flag changes; each
 -- round settles at least one more window of every series still changing, all series at once.
 CREATE OR REPLACE TEMP TABLE history AS
-SELECT w.key, w.split_value, w.seq, w.value, w.sessions, w.bad
-FROM windows AS w
-SEMI JOIN (SELECT DISTINCT key, split_value FROM new_windows) AS n
-    ON w.key = n.key AND w.split_value IS NOT DISTINCT FROM n.split_value
-WHERE w.check_name = 'play_time_down' AND NOT w.breach AND w.value IS NOT NULL
+WITH earlier AS (
+    SELECT w.key, w.split_value, w.seq, w.key_window, w.value, w.breach
+    FROM windows AS w
+    SEMI JOIN (SELECT DISTINCT key, split_value FROM new_windows) AS n
+        ON w.key = n.key AND w.split_value IS NOT DISTINCT FROM n.split_value
+    WHERE w.check_name = 'play_time_down'
+)
+SELECT key, split_value, seq, value
+FROM (
+    SELECT key, split_value, seq, value FROM earlier WHERE NOT breach AND value IS NOT NULL
+)
 QUALIFY row_number() OVER (PARTITION BY key, split_value ORDER BY seq DESC) <= 10;
 
 CREATE OR REPLACE TEMP TABLE judged AS
@@ -285,7 +322,7 @@ ordered AS (
         coalesce(o.healthy_streak, 0) AS streak0
     FROM judged AS j
     SEMI JOIN relevant AS r ON j.key = r.key AND j.split_value IS NOT DISTINCT FROM r.split_value
-    LEFT JOIN series_last AS l ON l.key = j.key
+    LEFT JOIN key_state AS l ON l.check_name = 'play_time_down' AND l.key = j.key
     LEFT JOIN open_alerts AS o ON j.key = o.key AND j.split_value IS NOT DISTINCT FROM o.split_value
 ),
 stretched AS (
@@ -366,7 +403,7 @@ series_end AS (
     SELECT s.key, s.split_value, coalesce(max(j.window_end), max(l.last_end)) AS last_window_end
     FROM all_episodes AS s
     LEFT JOIN judged AS j ON j.key = s.key AND j.split_value IS NOT DISTINCT FROM s.split_value
-    LEFT JOIN series_last AS l ON l.key = s.key
+    LEFT JOIN key_state AS l ON l.check_name = 'play_time_down' AND l.key = s.key
     GROUP BY s.key, s.split_value
 ),
 healthy_tail AS (
@@ -468,7 +505,7 @@ WHERE status = 'closed';
 -- Everything below commits in the run's one transaction, with the files read and the run record.
 INSERT INTO windows BY NAME
 SELECT
-    'play_time_down' AS check_name, key, key_text, split_value, seq, window_start, window_end,
+    'play_time_down' AS check_name, key, key_text, split_value, seq, key_window, window_start, window_end,
     sessions, bad, value, baseline, history_windows, threshold, breach, $run_id AS run_id
 FROM judged;
 
@@ -476,7 +513,8 @@ DELETE FROM key_state
 WHERE check_name = 'play_time_down' AND key IN (SELECT key FROM key_windows);
 
 INSERT INTO key_state BY NAME
-SELECT 'play_time_down' AS check_name, key, max(seq) AS last_seq, max(window_end) AS last_end
+SELECT 'play_time_down' AS check_name, key, max(seq) AS last_seq, max(window_end) AS last_end,
+       max(key_window) AS windows
 FROM key_windows
 GROUP BY key;
 

@@ -10,8 +10,7 @@ SELECT
     "ended_at"::TIMESTAMP AS event_time,
 coalesce("is_bot", false) AS excluded,
 coalesce(NOT "startup_ms" IS NULL, false) AS selected,
-    MAP {'site': "site"::VARCHAR} AS key,
-    'site=' || coalesce("site"::VARCHAR, '<null>') AS key_text,
+    {'site': "site"::VARCHAR} AS key,
     NULL::BOOLEAN AS is_bad,
     NULL::VARCHAR AS split_value,
     NULL::DOUBLE AS num,
@@ -28,10 +27,23 @@ SELECT
 FROM (SELECT (SELECT watermark FROM check_state WHERE check_name = 'startup_p90_by_site') AS watermark) AS prior;
 
 -- One copy of each session id: the earliest, then by file name, so every run keeps the same one.
+CREATE OR REPLACE TEMP TABLE repeated_ids AS
+SELECT session_id
+FROM scanned
+WHERE session_id IS NOT NULL AND event_time IS NOT NULL
+GROUP BY session_id
+HAVING count(*) > 1;
+
 CREATE OR REPLACE TEMP TABLE firsts AS
 SELECT *
 FROM scanned
 WHERE session_id IS NOT NULL AND event_time IS NOT NULL
+  AND session_id NOT IN (SELECT session_id FROM repeated_ids)
+UNION ALL
+SELECT *
+FROM scanned
+WHERE event_time IS NOT NULL
+  AND session_id IN (SELECT session_id FROM repeated_ids)
 QUALIFY row_number() OVER (PARTITION BY session_id ORDER BY event_time, source_file) = 1;
 
 CREATE OR REPLACE TEMP TABLE arrivals AS
@@ -54,7 +66,7 @@ FROM firsts;
 -- Time windows of INTERVAL 2 HOUR, aligned to the epoch; a window closes once the watermark
 -- passes its end + INTERVAL 15 MINUTE. Sessions for a window already closed are late.
 CREATE OR REPLACE TEMP TABLE series_last AS
-SELECT key, last_seq, last_end
+SELECT {'site': key['site']} AS key, last_seq, last_end
 FROM key_state
 WHERE check_name = 'startup_p90_by_site';
 
@@ -65,11 +77,12 @@ SELECT
     make_timestamp(epoch_us(p.event_time) // 7200000000 * 7200000000) AS window_start,
     make_timestamp(epoch_us(p.event_time) // 7200000000 * 7200000000 + 7200000000) AS window_end
 FROM (
-    SELECT key, key_text, event_time, session_id, is_bad, split_value, num, den, x
+    SELECT {'site': key['site']} AS key, event_time, session_id, is_bad, split_value,
+           num, den, x
     FROM carry
     WHERE check_name = 'startup_p90_by_site'
     UNION ALL
-    SELECT key, key_text, event_time, session_id, is_bad, split_value, num, den, x
+    SELECT key, event_time, session_id, is_bad, split_value, num, den, x
     FROM arrivals
 ) AS p;
 
@@ -86,16 +99,16 @@ WHERE window_end + INTERVAL 15 MINUTE < (SELECT current FROM clock)
   AND NOT coalesce(window_end + INTERVAL 15 MINUTE < (SELECT previous FROM clock), false);
 
 CREATE OR REPLACE TEMP TABLE carry_next AS
-SELECT key, key_text, event_time, session_id, is_bad, split_value, num, den, x
+SELECT MAP {'site': struct_extract(key, 'site')} AS key, 'site=' || coalesce(struct_extract(key, 'site'), '<null>') AS key_text, event_time, session_id, is_bad, split_value, num, den, x
 FROM pooled
 WHERE NOT (window_end + INTERVAL 15 MINUTE < (SELECT current FROM clock));
 
 -- ── stage 3 · measure ──────────────────────────────────────────────────────────────────────
 -- quantile_cont("startup_ms", 0.9) over the window's sessions (NULL values left out).
-CREATE OR REPLACE TEMP TABLE key_windows AS
+CREATE OR REPLACE TEMP TABLE key_window_stats AS
 SELECT
-    key,
-    any_value(key_text) AS key_text,
+    MAP {'site': struct_extract(key, 'site')} AS key,
+    'site=' || coalesce(struct_extract(key, 'site'), '<null>') AS key_text,
     seq,
     min(window_start) AS window_start,
     max(window_end) AS window_end,
@@ -105,8 +118,16 @@ SELECT
 FROM window_sessions
 GROUP BY key, seq;
 
+-- key_window: the ordinal of the window among all of its key's windows, across runs
+CREATE OR REPLACE TEMP TABLE key_windows AS
+SELECT
+    w.*,
+    coalesce(s.windows, 0) + row_number() OVER (PARTITION BY w.key ORDER BY w.seq) AS key_window
+FROM key_window_stats AS w
+LEFT JOIN key_state AS s ON s.check_name = 'startup_p90_by_site' AND s.key = w.key;
+
 CREATE OR REPLACE TEMP TABLE new_windows AS
-SELECT key, key_text, NULL::VARCHAR AS split_value, seq, window_start, window_end, sessions, bad, value
+SELECT key, key_text, NULL::VARCHAR AS split_value, seq, key_window, window_start, window_end, sessions, bad, value
 FROM key_windows;
 
 -- ── stage 4 · baseline ─────────────────────────────────────────────────────────────────────
@@ -116,11 +137,17 @@ FROM key_windows;
 -- of a series are found by repeating this stage and the next until no breach flag changes; each
 -- round settles at least one more window of every series still changing, all series at once.
 CREATE OR REPLACE TEMP TABLE history AS
-SELECT w.key, w.split_value, w.seq, w.value, w.sessions, w.bad
-FROM windows AS w
-SEMI JOIN (SELECT DISTINCT key, split_value FROM new_windows) AS n
-    ON w.key = n.key AND w.split_value IS NOT DISTINCT FROM n.split_value
-WHERE w.check_name = 'startup_p90_by_site' AND NOT w.breach AND w.value IS NOT NULL
+WITH earlier AS (
+    SELECT w.key, w.split_value, w.seq, w.key_window, w.value, w.breach
+    FROM windows AS w
+    SEMI JOIN (SELECT DISTINCT key, split_value FROM new_windows) AS n
+        ON w.key = n.key AND w.split_value IS NOT DISTINCT FROM n.split_value
+    WHERE w.check_name = 'startup_p90_by_site'
+)
+SELECT key, split_value, seq, value
+FROM (
+    SELECT key, split_value, seq, value FROM earlier WHERE NOT breach AND value IS NOT NULL
+)
 QUALIFY row_number() OVER (PARTITION BY key, split_value ORDER BY seq DESC) <= 8;
 
 CREATE OR REPLACE TEMP TABLE judged AS
@@ -231,7 +258,7 @@ ordered AS (
         coalesce(o.healthy_streak, 0) AS streak0
     FROM judged AS j
     SEMI JOIN relevant AS r ON j.key = r.key AND j.split_value IS NOT DISTINCT FROM r.split_value
-    LEFT JOIN series_last AS l ON l.key = j.key
+    LEFT JOIN key_state AS l ON l.check_name = 'startup_p90_by_site' AND l.key = j.key
     LEFT JOIN open_alerts AS o ON j.key = o.key AND j.split_value IS NOT DISTINCT FROM o.split_value
 ),
 stretched AS (
@@ -312,7 +339,7 @@ series_end AS (
     SELECT s.key, s.split_value, coalesce(max(j.window_end), max(l.last_end)) AS last_window_end
     FROM all_episodes AS s
     LEFT JOIN judged AS j ON j.key = s.key AND j.split_value IS NOT DISTINCT FROM s.split_value
-    LEFT JOIN series_last AS l ON l.key = s.key
+    LEFT JOIN key_state AS l ON l.check_name = 'startup_p90_by_site' AND l.key = s.key
     GROUP BY s.key, s.split_value
 ),
 healthy_tail AS (
@@ -414,7 +441,7 @@ WHERE status = 'closed';
 -- Everything below commits in the run's one transaction, with the files read and the run record.
 INSERT INTO windows BY NAME
 SELECT
-    'startup_p90_by_site' AS check_name, key, key_text, split_value, seq, window_start, window_end,
+    'startup_p90_by_site' AS check_name, key, key_text, split_value, seq, key_window, window_start, window_end,
     sessions, bad, value, baseline, history_windows, threshold, breach, $run_id AS run_id
 FROM judged;
 
@@ -422,7 +449,8 @@ DELETE FROM key_state
 WHERE check_name = 'startup_p90_by_site' AND key IN (SELECT key FROM key_windows);
 
 INSERT INTO key_state BY NAME
-SELECT 'startup_p90_by_site' AS check_name, key, max(seq) AS last_seq, max(window_end) AS last_end
+SELECT 'startup_p90_by_site' AS check_name, key, max(seq) AS last_seq, max(window_end) AS last_end,
+       max(key_window) AS windows
 FROM key_windows
 GROUP BY key;
 
