@@ -95,13 +95,13 @@ WINDOW in_order AS (PARTITION BY p.key ORDER BY p.event_time, p.session_id);
 -- start + max_wait: the window closes with the sessions within max_wait of its start, up to
 -- position lim) or stays open and is carried.
 CREATE OR REPLACE TEMP TABLE cuts AS
-WITH last_at AS (
-    SELECT key, event_time, max(i) AS last_i FROM pooled GROUP BY key, event_time
-)
-SELECT c.key, c.i, t.last_i AS lim,
+SELECT c.key, c.i, t.i AS lim,
        c.event_time + INTERVAL 6 HOUR < (SELECT current FROM clock) AS times_out
 FROM (SELECT key, i, event_time FROM pooled WHERE is_cut) AS c
-ASOF JOIN last_at AS t ON t.key = c.key AND t.event_time <= c.event_time + INTERVAL 6 HOUR;
+-- the last session (by time, then position) no later than max_wait after the cut's first one
+ASOF JOIN (SELECT key, i, epoch_us(event_time)::HUGEINT * 1000000000000 + i AS at FROM pooled) AS t
+    ON t.key = c.key
+   AND t.at <= epoch_us(c.event_time + INTERVAL 6 HOUR)::HUGEINT * 1000000000000 + 999999999999;
 
 -- Runs of full windows per series, from the start of the pool to the first cut on the run's
 -- stride; after a cut that times out the next run starts behind it. One step per cut, all series at once.
@@ -133,6 +133,10 @@ WHERE n_cuts = 0 OR last_closes;
 
 -- Each pooled session's window, named by the position of its first session (NULL: still open).
 CREATE OR REPLACE TEMP TABLE placed AS
+WITH spans AS (
+    SELECT *, coalesce(lead(o) OVER (PARTITION BY key ORDER BY o), 9223372036854775807) AS next_o
+    FROM runs_of_windows
+)
 SELECT
     p.*,
     CASE
@@ -140,7 +144,7 @@ SELECT
         WHEN r.closes AND p.i <= r.a_lim THEN r.a
     END AS w0
 FROM pooled AS p
-ASOF JOIN runs_of_windows AS r ON p.key = r.key AND p.i >= r.o;
+JOIN spans AS r ON p.key = r.key AND p.i >= r.o AND p.i < r.next_o;
 
 CREATE OR REPLACE TEMP TABLE closed_windows AS
 SELECT
