@@ -42,8 +42,7 @@ INSERT INTO files_read BY NAME
 SELECT {{ check_lit }} AS check_name, f.path, f.size, f.modified_at, $run_id AS run_id,
        coalesce(n.rows, 0) AS rows
 FROM (SELECT unnest($manifest, recursive := true)) AS f
-LEFT JOIN (SELECT source_file, count(*) AS rows FROM scanned GROUP BY source_file) AS n
-    ON n.source_file = f.path;
+LEFT JOIN lake_file_rows AS n ON n.path = f.path;
 
 INSERT INTO run_checks BY NAME
 SELECT

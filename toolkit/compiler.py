@@ -18,7 +18,8 @@ import jinja2
 from .model import Check
 from .sqltext import interval, quote_ident, quote_literal
 
-STAGES = ("scan", "window", "measure", "baseline", "breach", "lifecycle", "persist")
+STAGES = ("source", "scan", "window", "measure", "baseline", "breach", "lifecycle", "persist")
+CHECK_STAGES = STAGES[1:]
 REPEAT_MARK = "-- @repeat"
 
 
@@ -89,8 +90,28 @@ def _env() -> jinja2.Environment:
     return _ENV
 
 
+def columns_read(checks: list[Check]) -> list[str]:
+    """The source columns a set of checks reads, in first-use order (the scan projects only these)."""
+    seen: list[str] = []
+    for check in checks:
+        m = check.measure
+        exprs = [e for e in (check.where, m.bad, m.numerator, m.denominator, m.of) if e is not None]
+        names = [*check.by, *([m.split] if m.split else []), *(c for e in exprs for c in e.columns)]
+        seen += [n for n in names if n not in seen]
+    return seen
+
+
+def compile_source(checks: list[Check]) -> Stage:
+    """The shared first stage: read the new files of one source once for all of ``checks``."""
+    sources = {c.source.name for c in checks}
+    if len(sources) != 1:
+        raise ValueError(f"one source at a time, not {sorted(sources)}")
+    text = _env().get_template("source.sql").render(source=checks[0].source, columns=columns_read(checks))
+    return _stage("source", text)
+
+
 def compile_check(check: Check) -> CompiledCheck:
-    """Render every stage template for ``check``."""
+    """Render every stage template for ``check`` (its source stage reading only its own columns)."""
     context = {
         "check": check,
         "source": check.source,
@@ -100,7 +121,9 @@ def compile_check(check: Check) -> CompiledCheck:
         "guard": check.guard,
         "lifecycle": check.lifecycle,
     }
-    stages = tuple(_stage(name, _env().get_template(f"{name}.sql").render(context)) for name in STAGES)
+    stages = (compile_source([check]),) + tuple(
+        _stage(name, _env().get_template(f"{name}.sql").render(context)) for name in CHECK_STAGES
+    )
     digest = hashlib.sha256("\n".join(s.text for s in stages).encode()).hexdigest()[:16]
     return CompiledCheck(check.name, stages, digest)
 

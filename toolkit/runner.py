@@ -15,7 +15,7 @@ from typing import Any
 import duckdb
 
 from . import lake, warehouse
-from .compiler import CompiledCheck, Statement, compile_check
+from .compiler import CompiledCheck, Statement, compile_check, compile_source
 from .model import Check, Project
 from .problems import DataError, PlimsollError
 
@@ -83,14 +83,20 @@ def _run(con: duckdb.DuckDBPyConnection, project: Project, checks: list[Check],
     try:
         if full_refresh:
             _forget(con, [c.name for c in checks])
-        for check, sql in zip(checks, compiled):
-            if check.source.name not in listings:
-                listings[check.source.name] = lake.list_files(check.source.path)
-            progress(f"check {check.name}: reading")
-            result.checks.append(_run_check(con, check, sql, listings[check.source.name], run_id))
-            done = result.checks[-1]
-            progress(f"check {check.name}: {done.files_read} files, {done.windows_written} windows, "
-                     f"{done.alerts_opened} alerts opened, {done.alerts_closed} closed")
+        for group in _groups(con, checks, compiled, listings):
+            new_files = group[0][2]
+            if new_files:
+                progress(f"source {group[0][0].source.name}: reading {len(new_files)} new files "
+                         f"for {len(group)} checks")
+                source_stage = compile_source([check for check, _, _ in group])
+                params = _params(new_files, run_id, "")
+                for statement in source_stage.once:
+                    _execute(con, group[0][0], "source", statement, params)
+            for check, sql, files in group:
+                result.checks.append(_run_check(con, check, sql, files, run_id))
+                done = result.checks[-1]
+                progress(f"check {check.name}: {done.files_read} files, {done.windows_written} windows, "
+                         f"{done.alerts_opened} alerts opened, {done.alerts_closed} closed")
         _record(con, run_id, started, [c.name for c in checks], full_refresh, "ok", None)
         con.execute("COMMIT")
     except BaseException as err:
@@ -107,22 +113,38 @@ def _run(con: duckdb.DuckDBPyConnection, project: Project, checks: list[Check],
     return result
 
 
+def _groups(con: duckdb.DuckDBPyConnection, checks: list[Check], compiled: list[CompiledCheck],
+            listings: dict[str, list[lake.LakeFile]]) -> list[list[tuple[Check, CompiledCheck, list[lake.LakeFile]]]]:
+    """Checks of one source with the same new files, so the files are read once for all of them."""
+    groups: dict[tuple[str, tuple[str, ...]], list[tuple[Check, CompiledCheck, list[lake.LakeFile]]]] = {}
+    for check, sql in zip(checks, compiled):
+        if check.source.name not in listings:
+            listings[check.source.name] = lake.list_files(check.source.path)
+        seen = {row[0] for row in con.execute(
+            "SELECT path FROM files_read WHERE check_name = $c", {"c": check.name}).fetchall()}
+        new = [f for f in listings[check.source.name] if f.path not in seen]
+        groups.setdefault((check.source.name, tuple(f.path for f in new)), []).append((check, sql, new))
+    return list(groups.values())
+
+
+def _params(files: list[lake.LakeFile], run_id: int, definition: str) -> dict[str, Any]:
+    return {
+        "files": [f.path for f in files],
+        "manifest": [{"path": f.path, "size": f.size, "modified_at": f.modified_at} for f in files],
+        "run_id": run_id,
+        "definition": definition,
+    }
+
+
 def _run_check(con: duckdb.DuckDBPyConnection, check: Check, sql: CompiledCheck,
-               listing: list[lake.LakeFile], run_id: int) -> CheckResult:
-    seen = {row[0] for row in con.execute(
-        "SELECT path FROM files_read WHERE check_name = $c", {"c": check.name}).fetchall()}
-    new = [f for f in listing if f.path not in seen]
+               new: list[lake.LakeFile], run_id: int) -> CheckResult:
+    """A check's own stages, after its source stage has read ``new`` into ``lake_sessions``."""
     result = CheckResult(check.name, files_read=len(new))
     if not new:
         return result
-    params: dict[str, Any] = {
-        "files": [f.path for f in new],
-        "manifest": [{"path": f.path, "size": f.size, "modified_at": f.modified_at} for f in new],
-        "run_id": run_id,
-        "definition": sql.definition_hash,
-    }
+    params = _params(new, run_id, sql.definition_hash)
     loop: list[tuple[str, Statement]] = []
-    for stage in sql.stages:
+    for stage in sql.stages[1:]:
         for statement in stage.once:
             _execute(con, check, stage.name, statement, params)
         loop += [(stage.name, s) for s in stage.repeat]

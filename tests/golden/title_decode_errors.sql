@@ -1,66 +1,85 @@
 -- Plimsoll check title_decode_errors: compiled SQL, executed by `plimsoll run` as shown.
 -- Parameters: $files (new Parquet files), $manifest (their size and time), $run_id,
 -- $definition (hash of this script). Statements after '@repeat' run until no breach flag changes.
--- ── stage 1 · scan ─────────────────────────────────────────────────────────────────────────
--- The sessions of the files this run has not read before ($files), each session id once.
--- Rows without a session id or event time are counted and skipped; excluded sessions never count.
-CREATE OR REPLACE TEMP TABLE scanned AS
+-- ── stage 0 · source ───────────────────────────────────────────────────────────────────────
+-- Source sessions: the sessions of the files not read before ($files), read once for
+-- every check that reads the same files, each session id once. Rows without a session id or event
+-- time are counted and skipped; excluded sessions never count.
+CREATE OR REPLACE TEMP TABLE lake_rows AS
 SELECT
-    "session_id"::VARCHAR AS session_id,
-    "ended_at"::TIMESTAMP AS event_time,
-coalesce("is_bot", false) AS excluded,
-true AS selected,
+    "session_id"::VARCHAR AS __session_id,
+    "ended_at"::TIMESTAMP AS __event_time,
+coalesce("is_bot", false) AS __excluded,
+    "site",
+    "title_id",
+    "error_code",
+    "error_code",
+    filename AS __file
+FROM read_parquet($files, hive_partitioning = true, union_by_name = true, filename = true);
+
+-- One copy of each session id: the earliest, then by file name, so every run keeps the same one.
+CREATE OR REPLACE TEMP TABLE repeated_ids AS
+SELECT __session_id
+FROM lake_rows
+WHERE __session_id IS NOT NULL AND __event_time IS NOT NULL
+GROUP BY __session_id
+HAVING count(*) > 1;
+
+CREATE OR REPLACE TEMP TABLE lake_sessions AS
+SELECT *
+FROM lake_rows
+WHERE __session_id IS NOT NULL AND __event_time IS NOT NULL
+  AND __session_id NOT IN (SELECT __session_id FROM repeated_ids)
+UNION ALL
+SELECT *
+FROM lake_rows
+WHERE __event_time IS NOT NULL
+  AND __session_id IN (SELECT __session_id FROM repeated_ids)
+QUALIFY row_number() OVER (PARTITION BY __session_id ORDER BY __event_time, __file) = 1;
+
+CREATE OR REPLACE TEMP TABLE lake_counts AS
+SELECT
+    count(*) AS rows_read,
+    count(*) FILTER (WHERE __session_id IS NULL OR __event_time IS NULL) AS rows_invalid,
+    count(*) FILTER (WHERE __session_id IS NOT NULL AND __event_time IS NOT NULL)
+        - (SELECT count(*) FROM lake_sessions) AS duplicate_rows,
+    (SELECT count(*) FROM lake_sessions WHERE __excluded) AS rows_excluded,
+    max(__event_time) AS latest
+FROM lake_rows;
+
+CREATE OR REPLACE TEMP TABLE lake_file_rows AS
+SELECT __file AS path, count(*) AS rows
+FROM lake_rows
+GROUP BY __file;
+
+-- ── stage 1 · scan ─────────────────────────────────────────────────────────────────────────
+-- The check's sessions: not excluded; its key and measure inputs.
+CREATE OR REPLACE TEMP TABLE arrivals AS
+SELECT
+    __session_id AS session_id,
+    __event_time AS event_time,
     {'site': "site"::VARCHAR, 'title_id': "title_id"::VARCHAR} AS key,
     coalesce(NOT "error_code" IS NULL, false) AS is_bad,
 "error_code"::VARCHAR AS split_value,
     NULL::DOUBLE AS num,
     NULL::DOUBLE AS den,
-    NULL::DOUBLE AS x,
-    filename AS source_file
-FROM read_parquet($files, hive_partitioning = true, union_by_name = true, filename = true);
+    NULL::DOUBLE AS x
+FROM lake_sessions
+WHERE NOT __excluded;
 
 -- The watermark: the largest event time read by this check so far, this run's files included.
 CREATE OR REPLACE TEMP TABLE clock AS
 SELECT
     prior.watermark AS previous,
-    greatest(prior.watermark, (SELECT max(event_time) FROM scanned)) AS current
+    greatest(prior.watermark, (SELECT latest FROM lake_counts)) AS current
 FROM (SELECT (SELECT watermark FROM check_state WHERE check_name = 'title_decode_errors') AS watermark) AS prior;
-
--- One copy of each session id: the earliest, then by file name, so every run keeps the same one.
-CREATE OR REPLACE TEMP TABLE repeated_ids AS
-SELECT session_id
-FROM scanned
-WHERE session_id IS NOT NULL AND event_time IS NOT NULL
-GROUP BY session_id
-HAVING count(*) > 1;
-
-CREATE OR REPLACE TEMP TABLE firsts AS
-SELECT *
-FROM scanned
-WHERE session_id IS NOT NULL AND event_time IS NOT NULL
-  AND session_id NOT IN (SELECT session_id FROM repeated_ids)
-UNION ALL
-SELECT *
-FROM scanned
-WHERE event_time IS NOT NULL
-  AND session_id IN (SELECT session_id FROM repeated_ids)
-QUALIFY row_number() OVER (PARTITION BY session_id ORDER BY event_time, source_file) = 1;
-
-CREATE OR REPLACE TEMP TABLE arrivals AS
-SELECT * EXCLUDE (excluded, selected, source_file)
-FROM firsts
-WHERE NOT excluded AND selected;
 
 CREATE OR REPLACE TEMP TABLE scan_counts AS
 SELECT
-    (SELECT count(*) FROM scanned) AS rows_read,
-    (SELECT count(*) FROM scanned WHERE session_id IS NULL OR event_time IS NULL) AS rows_invalid,
-    (SELECT count(*) FROM scanned WHERE session_id IS NOT NULL AND event_time IS NOT NULL)
-        - count(*) AS duplicate_rows,
-    count(*) FILTER (WHERE excluded) AS rows_excluded,
-    count(*) FILTER (WHERE NOT excluded AND NOT selected) AS rows_filtered,
-    count(*) FILTER (WHERE NOT excluded AND selected) AS rows_kept
-FROM firsts;
+    c.rows_read, c.rows_invalid, c.duplicate_rows, c.rows_excluded,
+    (SELECT count(*) FROM lake_sessions WHERE NOT __excluded) - (SELECT count(*) FROM arrivals) AS rows_filtered,
+    (SELECT count(*) FROM arrivals) AS rows_kept
+FROM lake_counts AS c;
 
 -- ── stage 2 · window ───────────────────────────────────────────────────────────────────────
 -- Count windows: each 30 sessions of a series in (event_time, session_id) order; a
@@ -592,8 +611,7 @@ INSERT INTO files_read BY NAME
 SELECT 'title_decode_errors' AS check_name, f.path, f.size, f.modified_at, $run_id AS run_id,
        coalesce(n.rows, 0) AS rows
 FROM (SELECT unnest($manifest, recursive := true)) AS f
-LEFT JOIN (SELECT source_file, count(*) AS rows FROM scanned GROUP BY source_file) AS n
-    ON n.source_file = f.path;
+LEFT JOIN lake_file_rows AS n ON n.path = f.path;
 
 INSERT INTO run_checks BY NAME
 SELECT
