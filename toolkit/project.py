@@ -266,14 +266,19 @@ def _load_sources(doc: Located, raw: dict[str, Any], root: Path, con: duckdb.Duc
         columns: dict[str, str] = {}
         if check_schema:
             files = [f.path for f in lake.list_files(location)]
+            unreadable = None
             if not files:
-                section.error((*section.path, "path"), f"source '{name}': no Parquet files at '{where}'")
-                continue
-            try:
-                columns = lake.read_schema(con, files)
-            except duckdb.Error as err:
-                first = str(err).strip().splitlines()[0]
-                section.error((*section.path, "path"), f"source '{name}': cannot read Parquet schema: {first}")
+                unreadable = f"source '{name}': no Parquet files at '{where}'"
+            else:
+                try:
+                    columns = lake.read_schema(con, files)
+                except duckdb.Error as err:
+                    first = str(err).strip().splitlines()[0]
+                    unreadable = f"source '{name}': cannot read Parquet schema: {first}"
+            if unreadable:
+                # keep the source, without columns, so its checks report only their own problems
+                section.error((*section.path, "path"), unreadable)
+                sources[name] = Source(name, location, session_id or "", event_time or "", None, {})
                 continue
         source = Source(name, location, session_id or "", event_time or "", None, columns)
         binder = _Binder(con, source)

@@ -40,9 +40,12 @@ class RunResult:
     checks: list[CheckResult] = field(default_factory=list)
     error: str | None = None
 
+    distinct_files: int = 0
+
     @property
     def files_read(self) -> int:
-        return sum(c.files_read for c in self.checks)
+        """Distinct files read by any check in this run."""
+        return self.distinct_files
 
     @property
     def alerts_opened(self) -> int:
@@ -79,6 +82,9 @@ def _run(con: duckdb.DuckDBPyConnection, project: Project, checks: list[Check],
     started = _now()
     listings: dict[str, list[lake.LakeFile]] = {}
     result = RunResult(run_id, "ok")
+    # what each source scan of this run read: the run record counts rows once per scan
+    con.execute("CREATE OR REPLACE TEMP TABLE run_scans (rows_read BIGINT, rows_invalid BIGINT, "
+                "duplicate_rows BIGINT, rows_excluded BIGINT)")
     con.execute("BEGIN TRANSACTION")
     try:
         if full_refresh:
@@ -91,13 +97,17 @@ def _run(con: duckdb.DuckDBPyConnection, project: Project, checks: list[Check],
                 source_stage = compile_source([check for check, _, _ in group])
                 params = _params(new_files, run_id, "")
                 for statement in source_stage.once:
-                    _execute(con, group[0][0], "source", statement, params)
+                    _execute(con, f"source {group[0][0].source.name}", "source", statement, params)
+                con.execute("INSERT INTO run_scans SELECT rows_read, rows_invalid, duplicate_rows, "
+                            "rows_excluded FROM lake_counts")
             for check, sql, files in group:
                 result.checks.append(_run_check(con, check, sql, files, run_id))
                 done = result.checks[-1]
                 progress(f"check {check.name}: {done.files_read} files, {done.windows_written} windows, "
                          f"{done.alerts_opened} alerts opened, {done.alerts_closed} closed")
         _record(con, run_id, started, [c.name for c in checks], full_refresh, "ok", None)
+        result.distinct_files = int(con.execute(
+            "SELECT count(DISTINCT path) FROM files_read WHERE run_id = $r", {"r": run_id}).fetchone()[0])
         con.execute("COMMIT")
     except BaseException as err:
         con.execute("ROLLBACK")
@@ -146,7 +156,7 @@ def _run_check(con: duckdb.DuckDBPyConnection, check: Check, sql: CompiledCheck,
     loop: list[tuple[str, Statement]] = []
     for stage in sql.stages[1:]:
         for statement in stage.once:
-            _execute(con, check, stage.name, statement, params)
+            _execute(con, f"check {check.name}", stage.name, statement, params)
         loop += [(stage.name, s) for s in stage.repeat]
         if stage.name == "breach" and loop:
             result.rounds = _settle(con, check, loop, params)
@@ -167,20 +177,20 @@ def _settle(con: duckdb.DuckDBPyConnection, check: Check, loop: list[tuple[str, 
     for rounds in range(1, windows + 2):
         changing = None
         for stage, statement in loop:
-            changing = _execute(con, check, stage, statement, params)
+            changing = _execute(con, f"check {check.name}", stage, statement, params)
         if not changing or changing[0] == 0:
             return rounds
     raise DataError(f"check {check.name}: verdicts did not settle after {windows + 1} rounds")
 
 
-def _execute(con: duckdb.DuckDBPyConnection, check: Check, stage: str, statement: Statement,
+def _execute(con: duckdb.DuckDBPyConnection, who: str, stage: str, statement: Statement,
              params: dict[str, Any]) -> tuple | None:
     wanted = {k: params[k] for k in statement.params}
     try:
         cursor = con.execute(statement.sql, wanted) if wanted else con.execute(statement.sql)
         return cursor.fetchone() if cursor.description else None
     except duckdb.Error as err:
-        raise DataError(f"check {check.name}, stage {stage}: {_engine_message(err)}") from err
+        raise DataError(f"{who}, stage {stage}: {_engine_message(err)}") from err
 
 
 def _forget(con: duckdb.DuckDBPyConnection, names: list[str]) -> None:
@@ -197,11 +207,17 @@ def _record(con: duckdb.DuckDBPyConnection, run_id: int, started: datetime, name
         """
         INSERT INTO runs
         SELECT $run_id, $started, $finished, $status, $checks, $full_refresh,
-               coalesce(sum(files_read), 0), coalesce(sum(rows_read), 0), coalesce(sum(rows_excluded), 0),
-               coalesce(sum(duplicate_rows), 0), coalesce(sum(late_rows), 0), coalesce(sum(rows_invalid), 0),
-               coalesce(sum(windows_written), 0), coalesce(sum(alerts_opened), 0),
-               coalesce(sum(alerts_closed), 0), $error
-        FROM run_checks WHERE run_id = $run_id
+               (SELECT count(DISTINCT path) FROM files_read WHERE run_id = $run_id),
+               s.rows_read, s.rows_excluded, s.duplicate_rows, c.late_rows, s.rows_invalid,
+               c.windows_written, c.alerts_opened, c.alerts_closed, $error
+        FROM (SELECT coalesce(sum(rows_read), 0) AS rows_read, coalesce(sum(rows_excluded), 0) AS rows_excluded,
+                     coalesce(sum(duplicate_rows), 0) AS duplicate_rows,
+                     coalesce(sum(rows_invalid), 0) AS rows_invalid
+              FROM run_scans) AS s,
+             (SELECT coalesce(sum(late_rows), 0) AS late_rows, coalesce(sum(windows_written), 0) AS windows_written,
+                     coalesce(sum(alerts_opened), 0) AS alerts_opened,
+                     coalesce(sum(alerts_closed), 0) AS alerts_closed
+              FROM run_checks WHERE run_id = $run_id) AS c
         """,
         {"run_id": run_id, "started": started, "finished": _now(), "status": status, "checks": names,
          "full_refresh": full_refresh, "error": error},
