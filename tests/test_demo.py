@@ -1,0 +1,84 @@
+"""End to end: `plimsoll demo` at its default size finds every labelled incident and no decoy, and a
+second `plimsoll run` over the same lake adds nothing."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import duckdb
+import pytest
+from click.testing import CliRunner
+
+from toolkit.cli import main
+from toolkit.demo import label_matches
+from toolkit.outputs import alerts_from
+from toolkit.warehouse_demo.generate import read_labels
+
+TABLES = ("windows", "alerts", "alert_events", "carry", "files_read", "key_state", "check_state")
+
+
+@pytest.fixture(scope="module")
+def demo(tmp_path_factory: pytest.TempPathFactory) -> tuple[Path, str]:
+    workdir = tmp_path_factory.mktemp("demo") / "fernhill"
+    result = CliRunner().invoke(main, ["demo", "--workdir", str(workdir)], catch_exceptions=False)
+    assert result.exit_code == 0, result.output
+    return workdir, result.output
+
+
+def snapshot(workdir: Path) -> dict[str, list]:
+    con = duckdb.connect(str(workdir / "warehouse.duckdb"), read_only=True)
+    try:
+        return {t: con.execute(f"SELECT * FROM {t} ORDER BY ALL").fetchall() for t in TABLES}
+    finally:
+        con.close()
+
+
+@pytest.mark.slow
+def test_demo_finds_every_incident_and_no_decoy(demo: tuple[Path, str]) -> None:
+    workdir, output = demo
+    labels = read_labels(workdir / "labels.csv")
+    incidents = [lab for lab in labels if lab.kind == "incident"]
+    decoys = [lab for lab in labels if lab.kind == "decoy"]
+    assert len(incidents) == 4 and len(decoys) == 2
+    con = duckdb.connect(str(workdir / "warehouse.duckdb"), read_only=True)
+    alerts = alerts_from(con)
+    con.close()
+    for incident in incidents:
+        hits = [a for a in alerts if label_matches(a, incident)]
+        assert hits, f"no alert for {incident}"
+        assert all(incident.start <= a["opened_at"] <= incident.end for a in hits)
+    for decoy in decoys:
+        assert not [a for a in alerts if label_matches(a, decoy)], decoy
+    assert "Labelled incidents found: 4 of 4" in output
+    assert "Decoys alerted: 0" in output
+
+
+@pytest.mark.slow
+def test_running_again_adds_nothing(demo: tuple[Path, str]) -> None:
+    workdir, _ = demo
+    before = snapshot(workdir)
+    result = CliRunner().invoke(main, ["run", "-p", str(workdir / "plimsoll.yml")], catch_exceptions=False)
+    assert result.exit_code == 0, result.output
+    assert "0 new files, 0 windows, 0 alerts opened" in result.output
+    assert snapshot(workdir) == before
+
+
+@pytest.mark.slow
+def test_demo_output_names_keys_and_counts_only(demo: tuple[Path, str]) -> None:
+    workdir, output = demo
+    assert "cdn=birch, country=DE" in output
+    assert "sessions affected" in output
+    con = duckdb.connect(str(workdir / "warehouse.duckdb"), read_only=True)
+    viewers = {r[0] for r in con.execute(
+        f"SELECT DISTINCT viewer_id FROM read_parquet('{workdir}/lake/sessions/**/*.parquet')").fetchall()}
+    con.close()
+    assert not any(v in output for v in list(viewers)[:2000])
+
+
+@pytest.mark.slow
+def test_demo_refuses_a_folder_it_did_not_make(tmp_path: Path) -> None:
+    (tmp_path / "precious.txt").write_text("keep me")
+    result = CliRunner().invoke(main, ["demo", "--workdir", str(tmp_path)])
+    assert result.exit_code == 1
+    assert "was not made by `plimsoll demo`" in result.output
+    assert (tmp_path / "precious.txt").read_text() == "keep me"
