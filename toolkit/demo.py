@@ -161,7 +161,8 @@ def summary(outcome: DemoOutcome) -> str:
         split = f" [{a['split_value']}]" if a["split_value"] else ""
         lines.append(
             f"  {a['opened_at']:%Y-%m-%d %H:%M}  {a['check_name']:<24} {a['key_text']}{split}: "
-            f"{a['affected_sessions']:,} sessions affected over {a['breach_windows']} windows, "
+            f"{a['affected_sessions']:,} sessions affected over {a['breach_windows']} "
+            f"window{'s' if a['breach_windows'] != 1 else ''}, "
             f"{a['status']}{' (' + a['close_reason'] + ')' if a['close_reason'] else ''} - {verdict}"
         )
     lines += [
