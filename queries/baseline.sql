@@ -19,7 +19,7 @@
 -- round settles at least one more window of every series still changing, all series at once.
 CREATE OR REPLACE TEMP TABLE history AS
 WITH earlier AS (
-    SELECT w.key, w.split_value, w.seq, w.key_window, w.value, w.breach
+    SELECT w.key, w.split_value, w.seq, w.key_window, w.value, w.sessions, w.bad, w.breach
     FROM windows AS w
     SEMI JOIN (SELECT DISTINCT key, split_value FROM new_windows) AS n
         ON w.key = n.key AND w.split_value IS NOT DISTINCT FROM n.split_value
@@ -32,18 +32,21 @@ first_seen AS (
     GROUP BY key, split_value
 ),
 quiet AS (
-    -- a split value first seen in its key's n-th window had none in the n-1 before: 0 each
-    SELECT f.key, f.split_value, -r.range AS seq, 0.0::DOUBLE AS value
-    FROM first_seen AS f,
-    LATERAL range(1, least(f.first_window, {{ b.history + 1 }})) AS r
+    -- a split value first seen in its key's n-th window had no bad session in the n-1 before
+    SELECT f.key, f.split_value, k.seq, 0.0::DOUBLE AS value, k.sessions, 0::BIGINT AS bad
+    FROM first_seen AS f
+    JOIN (SELECT key, key_window, seq, sessions FROM key_windows WHERE check_name = {{ check_lit }}
+          UNION ALL SELECT key, key_window, seq, sessions FROM new_key_windows) AS k
+        ON k.key = f.key AND k.key_window < f.first_window
+        AND k.key_window >= f.first_window - {{ b.history }}
 ){% endif %}
 
-SELECT key, split_value, seq, value
+SELECT key, split_value, seq, value, sessions, bad
 FROM (
-    SELECT key, split_value, seq, value FROM earlier WHERE NOT breach AND value IS NOT NULL
+    SELECT key, split_value, seq, value, sessions, bad FROM earlier WHERE NOT breach AND value IS NOT NULL
 {% if measure.split %}
     UNION ALL
-    SELECT key, split_value, seq, value FROM quiet
+    SELECT key, split_value, seq, value, sessions, bad FROM quiet
 {% endif %}
 )
 QUALIFY row_number() OVER (PARTITION BY key, split_value ORDER BY seq DESC) <= {{ b.history }};
@@ -63,11 +66,11 @@ WITH moving AS (
     SELECT DISTINCT key, split_value FROM judged WHERE changed
 ),
 series_rows AS (
-    SELECT h.key, h.split_value, h.seq, h.value, false AS is_new, true AS eligible
+    SELECT h.key, h.split_value, h.seq, h.value, h.sessions, h.bad, false AS is_new, true AS eligible
     FROM history AS h
     SEMI JOIN moving AS s ON h.key = s.key AND h.split_value IS NOT DISTINCT FROM s.split_value
     UNION ALL
-    SELECT j.key, j.split_value, j.seq, j.value, true, NOT j.breach AND j.value IS NOT NULL
+    SELECT j.key, j.split_value, j.seq, j.value, j.sessions, j.bad, true, NOT j.breach AND j.value IS NOT NULL
     FROM judged AS j
     SEMI JOIN moving AS s ON j.key = s.key AND j.split_value IS NOT DISTINCT FROM s.split_value
 ),
@@ -85,6 +88,9 @@ framed AS (
         key, split_value, seq, is_new,
 {% if b.method == "rolling_percentile" %}
         quantile_cont(value, {{ b.q }}) FILTER (WHERE eligible) OVER earlier AS baseline,
+{% elif b.method == "p_chart" %}
+        sum(bad) FILTER (WHERE eligible) OVER earlier
+            / nullif(sum(sessions) FILTER (WHERE eligible) OVER earlier, 0) AS baseline,
 {% endif %}
         count(*) FILTER (WHERE eligible) OVER earlier AS history_windows
     FROM numbered

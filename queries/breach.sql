@@ -1,8 +1,14 @@
+{% import "macros.sql" as m %}
 {% set b = baseline %}
 {% set g = guard %}
 -- ── stage 5 · breach ───────────────────────────────────────────────────────────────────────
 -- A window breaches when it has a threshold, its value is {{ "above" if check.direction == "up" else "below" }} it, and it passes the guard
 -- (at least {{ g.min_sessions }} sessions{% if measure.kind == "rate" %} and {{ g.min_bad }} bad{% endif %}); every other window with a threshold is healthy.
+{% if b.confidence %}
+-- confidence {{ b.confidence }}: it also needs the {{ "lower" if check.direction == "up" else "upper" }} end of its Wilson score interval (Wilson 1927)
+-- at that two-sided confidence (z = {{ z_for(b.confidence) }}) beyond the threshold, so a small noisy window cannot:
+--   bound = (p̂ + z²/2n {{ "−" if check.direction == "up" else "+" }} z·√(p̂(1−p̂)/n + z²/4n²)) / (1 + z²/n),  p̂ = bad / sessions
+{% endif %}
 -- @repeat (with stage 4): until no breach flag changes
 CREATE OR REPLACE TEMP TABLE decided AS
 SELECT
@@ -14,6 +20,14 @@ SELECT
 {% if measure.kind == "rate" %}
         AND bad >= {{ g.min_bad }}
 {% endif %}
+{% if b.confidence %}
+{% set z = z_for(b.confidence) %}
+{% if check.direction == "up" %}
+        AND {{ m.wilson_lower("bad", "sessions", z) }} > threshold
+{% else %}
+        AND {{ m.wilson_upper("bad", "sessions", z) }} < threshold
+{% endif %}
+{% endif %}
     , false) AS breach
 FROM (
     SELECT
@@ -22,6 +36,10 @@ FROM (
 {% if b.method == "rolling_percentile" %}
 {% set raw = b.factor ~ " * v.baseline" %}
             {% if b.floor is none %}{{ raw }}{% elif check.direction == "up" %}greatest({{ b.floor }}, {{ raw }}){% else %}least({{ b.floor }}, {{ raw }}){% endif %}
+
+{% elif b.method == "p_chart" %}
+{% set spread = b.sigmas ~ " * sqrt(v.baseline * (1 - v.baseline) / j.sessions)" %}
+            {% if check.direction == "up" %}v.baseline + {{ spread }}{% else %}greatest(0.0, v.baseline - {{ spread }}){% endif %}
 
 {% endif %}
         END AS threshold

@@ -18,3 +18,11 @@
 {% macro same_series(a, b) -%}
 {{ a }}.key = {{ b }}.key AND {{ a }}.split_value IS NOT DISTINCT FROM {{ b }}.split_value
 {%- endmacro %}
+{#- Wilson (1927) score interval for x of n at normal quantile z:
+    (p̂ + z²/2n ∓ z·√(p̂(1−p̂)/n + z²/4n²)) / (1 + z²/n), p̂ = x/n. -#}
+{% macro wilson_lower(x, n, z) -%}
+greatest(0.0, (({{ x }}) / ({{ n }}) + ({{ z }}) ^ 2 / (2 * ({{ n }})) - ({{ z }}) * sqrt((({{ x }}) / ({{ n }})) * (1 - ({{ x }}) / ({{ n }})) / ({{ n }}) + ({{ z }}) ^ 2 / (4 * ({{ n }}) ^ 2))) / (1 + ({{ z }}) ^ 2 / ({{ n }})))
+{%- endmacro %}
+{% macro wilson_upper(x, n, z) -%}
+least(1.0, (({{ x }}) / ({{ n }}) + ({{ z }}) ^ 2 / (2 * ({{ n }})) + ({{ z }}) * sqrt((({{ x }}) / ({{ n }})) * (1 - ({{ x }}) / ({{ n }})) / ({{ n }}) + ({{ z }}) ^ 2 / (4 * ({{ n }}) ^ 2))) / (1 + ({{ z }}) ^ 2 / ({{ n }})))
+{%- endmacro %}

@@ -32,7 +32,7 @@ FROM window_sessions
 GROUP BY key, seq;
 
 -- key_window: the ordinal of the window among all of its key's windows, across runs
-CREATE OR REPLACE TEMP TABLE key_windows AS
+CREATE OR REPLACE TEMP TABLE new_key_windows AS
 SELECT
     w.*,
     coalesce(s.windows, 0) + row_number() OVER (PARTITION BY w.key ORDER BY w.seq) AS key_window
@@ -53,7 +53,7 @@ known AS (
     FROM (
         SELECT key, split_value, 0 AS since
         FROM windows
-        WHERE check_name = {{ check_lit }} AND key IN (SELECT key FROM key_windows)
+        WHERE check_name = {{ check_lit }} AND key IN (SELECT key FROM new_key_windows)
         GROUP BY key, split_value
         UNION ALL
         SELECT key, split_value, seq FROM bad_by_value
@@ -64,11 +64,11 @@ SELECT
     w.key, w.key_text, k.split_value, w.seq, w.key_window, w.window_start, w.window_end, w.sessions,
     coalesce(b.bad, 0) AS bad,
     coalesce(b.bad, 0) / w.sessions AS value
-FROM key_windows AS w
+FROM new_key_windows AS w
 JOIN known AS k ON k.key = w.key AND w.seq >= k.since
 LEFT JOIN bad_by_value AS b
     ON b.key = w.key AND b.seq = w.seq AND b.split_value IS NOT DISTINCT FROM k.split_value;
 {% else %}
 SELECT key, key_text, NULL::VARCHAR AS split_value, seq, key_window, window_start, window_end, sessions, bad, value
-FROM key_windows;
+FROM new_key_windows;
 {% endif %}

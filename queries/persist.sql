@@ -7,13 +7,18 @@ SELECT
     sessions, bad, value, baseline, history_windows, threshold, breach, $run_id AS run_id
 FROM judged;
 
+INSERT INTO key_windows BY NAME
+SELECT {{ check_lit }} AS check_name, key, key_text, key_window, seq, window_start, window_end, sessions, bad,
+       $run_id AS run_id
+FROM new_key_windows;
+
 DELETE FROM key_state
-WHERE check_name = {{ check_lit }} AND key IN (SELECT key FROM key_windows);
+WHERE check_name = {{ check_lit }} AND key IN (SELECT key FROM new_key_windows);
 
 INSERT INTO key_state BY NAME
 SELECT {{ check_lit }} AS check_name, key, max(seq) AS last_seq, max(window_end) AS last_end,
        max(key_window) AS windows
-FROM key_windows
+FROM new_key_windows
 GROUP BY key;
 
 DELETE FROM carry WHERE check_name = {{ check_lit }};

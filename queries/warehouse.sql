@@ -75,6 +75,19 @@ CREATE TABLE IF NOT EXISTS carry (
     x DOUBLE
 );
 
+CREATE TABLE IF NOT EXISTS key_windows (   -- every closed window of a key, whatever its split values
+    check_name VARCHAR,
+    key MAP(VARCHAR, VARCHAR),
+    key_text VARCHAR,
+    key_window BIGINT,
+    seq BIGINT,
+    window_start TIMESTAMP,
+    window_end TIMESTAMP,
+    sessions BIGINT,
+    bad BIGINT,
+    run_id BIGINT
+);
+
 CREATE TABLE IF NOT EXISTS windows (
     check_name VARCHAR,
     key MAP(VARCHAR, VARCHAR),

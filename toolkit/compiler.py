@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import hashlib
 from dataclasses import dataclass, field
+from statistics import NormalDist
 from importlib.resources import files
 from pathlib import Path
 
@@ -77,7 +78,19 @@ def environment() -> jinja2.Environment:
     env.filters["ident"] = quote_ident
     env.filters["literal"] = quote_literal
     env.filters["interval"] = interval
+    env.globals["z_for"] = z_for
     return env
+
+
+def z_for(confidence: float) -> float:
+    """The normal quantile for a two-sided interval at ``confidence`` (0.95 -> 1.959964)."""
+    return round(NormalDist().inv_cdf(1 - (1 - confidence) / 2), 9)
+
+
+def wilson_sql(end: str, x: str, n: str, z: str) -> str:
+    """The Wilson score bound (``end`` 'lower' or 'upper') as the SQL the breach stage inlines."""
+    macros = _env().get_template("macros.sql").module
+    return str(getattr(macros, f"wilson_{end}")(x, n, z))
 
 
 _ENV: jinja2.Environment | None = None

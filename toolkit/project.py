@@ -415,6 +415,10 @@ def _baseline(doc: Located, raw: Any, measure: Measure | None, problems: list[Pr
     if method.rate_only and measure is not None and measure.kind != "rate":
         section.error(("baseline", "method"), f"baseline.method: {method.name} applies to rate measures, not {measure.kind}")
         return None
+    if values.get("confidence") is not None and measure is not None and measure.kind != "rate":
+        section.error(("baseline", "confidence"),
+                      f"baseline.confidence applies to rate measures (a Wilson bound), not {measure.kind}")
+        return None
     if values.get("history") and values.get("min_history") and values["min_history"] > values["history"]:
         section.error(("baseline", "min_history"),
                       f"baseline.min_history ({values['min_history']}) cannot exceed history ({values['history']})")

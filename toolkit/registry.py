@@ -68,6 +68,11 @@ _HISTORY = (
     Key("min_history", "int", "fewer earlier windows than this: no verdict yet", True, minimum=1),
 )
 
+_CONFIDENCE = Key(
+    "confidence", "fraction",
+    "rate: breach only if this window's Wilson score bound at this confidence is beyond the threshold",
+)
+
 BASELINES: dict[str, Kind] = {
     k.name: k
     for k in (
@@ -79,7 +84,19 @@ BASELINES: dict[str, Kind] = {
                 *_HISTORY,
                 Key("factor", "number", "multiplier on the quantile (below 1 for direction down)", False, 1.0, minimum=0),
                 Key("floor", "number", "up: the threshold is never below this; down: never above it"),
+                _CONFIDENCE,
             ),
+        ),
+        Kind(
+            "p_chart",
+            "threshold = p̄ ± sigmas × √(p̄(1−p̄)/n): p̄ pooled over earlier windows (Σbad ÷ Σsessions), "
+            "n this window's sessions (NIST/SEMATECH e-Handbook §6.3.3.2)",
+            (
+                Key("sigmas", "number", "how many standard errors from p̄ the limit lies", False, 3.0, minimum=0),
+                *_HISTORY,
+                _CONFIDENCE,
+            ),
+            rate_only=True,
         ),
     )
 }

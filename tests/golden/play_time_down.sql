@@ -204,7 +204,7 @@ FROM window_sessions
 GROUP BY key, seq;
 
 -- key_window: the ordinal of the window among all of its key's windows, across runs
-CREATE OR REPLACE TEMP TABLE key_windows AS
+CREATE OR REPLACE TEMP TABLE new_key_windows AS
 SELECT
     w.*,
     coalesce(s.windows, 0) + row_number() OVER (PARTITION BY w.key ORDER BY w.seq) AS key_window
@@ -213,7 +213,7 @@ LEFT JOIN key_state AS s ON s.check_name = 'play_time_down' AND s.key = w.key;
 
 CREATE OR REPLACE TEMP TABLE new_windows AS
 SELECT key, key_text, NULL::VARCHAR AS split_value, seq, key_window, window_start, window_end, sessions, bad, value
-FROM key_windows;
+FROM new_key_windows;
 
 -- ── stage 4 · baseline ─────────────────────────────────────────────────────────────────────
 -- rolling_percentile: baseline = quantile_cont(value, 0.2) over the series' last 10 earlier
@@ -223,15 +223,15 @@ FROM key_windows;
 -- round settles at least one more window of every series still changing, all series at once.
 CREATE OR REPLACE TEMP TABLE history AS
 WITH earlier AS (
-    SELECT w.key, w.split_value, w.seq, w.key_window, w.value, w.breach
+    SELECT w.key, w.split_value, w.seq, w.key_window, w.value, w.sessions, w.bad, w.breach
     FROM windows AS w
     SEMI JOIN (SELECT DISTINCT key, split_value FROM new_windows) AS n
         ON w.key = n.key AND w.split_value IS NOT DISTINCT FROM n.split_value
     WHERE w.check_name = 'play_time_down'
 )
-SELECT key, split_value, seq, value
+SELECT key, split_value, seq, value, sessions, bad
 FROM (
-    SELECT key, split_value, seq, value FROM earlier WHERE NOT breach AND value IS NOT NULL
+    SELECT key, split_value, seq, value, sessions, bad FROM earlier WHERE NOT breach AND value IS NOT NULL
 )
 QUALIFY row_number() OVER (PARTITION BY key, split_value ORDER BY seq DESC) <= 10;
 
@@ -250,11 +250,11 @@ WITH moving AS (
     SELECT DISTINCT key, split_value FROM judged WHERE changed
 ),
 series_rows AS (
-    SELECT h.key, h.split_value, h.seq, h.value, false AS is_new, true AS eligible
+    SELECT h.key, h.split_value, h.seq, h.value, h.sessions, h.bad, false AS is_new, true AS eligible
     FROM history AS h
     SEMI JOIN moving AS s ON h.key = s.key AND h.split_value IS NOT DISTINCT FROM s.split_value
     UNION ALL
-    SELECT j.key, j.split_value, j.seq, j.value, true, NOT j.breach AND j.value IS NOT NULL
+    SELECT j.key, j.split_value, j.seq, j.value, j.sessions, j.bad, true, NOT j.breach AND j.value IS NOT NULL
     FROM judged AS j
     SEMI JOIN moving AS s ON j.key = s.key AND j.split_value IS NOT DISTINCT FROM s.split_value
 ),
@@ -530,13 +530,18 @@ SELECT
     sessions, bad, value, baseline, history_windows, threshold, breach, $run_id AS run_id
 FROM judged;
 
+INSERT INTO key_windows BY NAME
+SELECT 'play_time_down' AS check_name, key, key_text, key_window, seq, window_start, window_end, sessions, bad,
+       $run_id AS run_id
+FROM new_key_windows;
+
 DELETE FROM key_state
-WHERE check_name = 'play_time_down' AND key IN (SELECT key FROM key_windows);
+WHERE check_name = 'play_time_down' AND key IN (SELECT key FROM new_key_windows);
 
 INSERT INTO key_state BY NAME
 SELECT 'play_time_down' AS check_name, key, max(seq) AS last_seq, max(window_end) AS last_end,
        max(key_window) AS windows
-FROM key_windows
+FROM new_key_windows
 GROUP BY key;
 
 DELETE FROM carry WHERE check_name = 'play_time_down';

@@ -208,7 +208,7 @@ FROM window_sessions
 GROUP BY key, seq;
 
 -- key_window: the ordinal of the window among all of its key's windows, across runs
-CREATE OR REPLACE TEMP TABLE key_windows AS
+CREATE OR REPLACE TEMP TABLE new_key_windows AS
 SELECT
     w.*,
     coalesce(s.windows, 0) + row_number() OVER (PARTITION BY w.key ORDER BY w.seq) AS key_window
@@ -228,7 +228,7 @@ known AS (
     FROM (
         SELECT key, split_value, 0 AS since
         FROM windows
-        WHERE check_name = 'title_decode_errors' AND key IN (SELECT key FROM key_windows)
+        WHERE check_name = 'title_decode_errors' AND key IN (SELECT key FROM new_key_windows)
         GROUP BY key, split_value
         UNION ALL
         SELECT key, split_value, seq FROM bad_by_value
@@ -239,7 +239,7 @@ SELECT
     w.key, w.key_text, k.split_value, w.seq, w.key_window, w.window_start, w.window_end, w.sessions,
     coalesce(b.bad, 0) AS bad,
     coalesce(b.bad, 0) / w.sessions AS value
-FROM key_windows AS w
+FROM new_key_windows AS w
 JOIN known AS k ON k.key = w.key AND w.seq >= k.since
 LEFT JOIN bad_by_value AS b
     ON b.key = w.key AND b.seq = w.seq AND b.split_value IS NOT DISTINCT FROM k.split_value;
@@ -254,7 +254,7 @@ LEFT JOIN bad_by_value AS b
 -- round settles at least one more window of every series still changing, all series at once.
 CREATE OR REPLACE TEMP TABLE history AS
 WITH earlier AS (
-    SELECT w.key, w.split_value, w.seq, w.key_window, w.value, w.breach
+    SELECT w.key, w.split_value, w.seq, w.key_window, w.value, w.sessions, w.bad, w.breach
     FROM windows AS w
     SEMI JOIN (SELECT DISTINCT key, split_value FROM new_windows) AS n
         ON w.key = n.key AND w.split_value IS NOT DISTINCT FROM n.split_value
@@ -267,16 +267,19 @@ first_seen AS (
     GROUP BY key, split_value
 ),
 quiet AS (
-    -- a split value first seen in its key's n-th window had none in the n-1 before: 0 each
-    SELECT f.key, f.split_value, -r.range AS seq, 0.0::DOUBLE AS value
-    FROM first_seen AS f,
-    LATERAL range(1, least(f.first_window, 11)) AS r
+    -- a split value first seen in its key's n-th window had no bad session in the n-1 before
+    SELECT f.key, f.split_value, k.seq, 0.0::DOUBLE AS value, k.sessions, 0::BIGINT AS bad
+    FROM first_seen AS f
+    JOIN (SELECT key, key_window, seq, sessions FROM key_windows WHERE check_name = 'title_decode_errors'
+          UNION ALL SELECT key, key_window, seq, sessions FROM new_key_windows) AS k
+        ON k.key = f.key AND k.key_window < f.first_window
+        AND k.key_window >= f.first_window - 10
 )
-SELECT key, split_value, seq, value
+SELECT key, split_value, seq, value, sessions, bad
 FROM (
-    SELECT key, split_value, seq, value FROM earlier WHERE NOT breach AND value IS NOT NULL
+    SELECT key, split_value, seq, value, sessions, bad FROM earlier WHERE NOT breach AND value IS NOT NULL
     UNION ALL
-    SELECT key, split_value, seq, value FROM quiet
+    SELECT key, split_value, seq, value, sessions, bad FROM quiet
 )
 QUALIFY row_number() OVER (PARTITION BY key, split_value ORDER BY seq DESC) <= 10;
 
@@ -295,11 +298,11 @@ WITH moving AS (
     SELECT DISTINCT key, split_value FROM judged WHERE changed
 ),
 series_rows AS (
-    SELECT h.key, h.split_value, h.seq, h.value, false AS is_new, true AS eligible
+    SELECT h.key, h.split_value, h.seq, h.value, h.sessions, h.bad, false AS is_new, true AS eligible
     FROM history AS h
     SEMI JOIN moving AS s ON h.key = s.key AND h.split_value IS NOT DISTINCT FROM s.split_value
     UNION ALL
-    SELECT j.key, j.split_value, j.seq, j.value, true, NOT j.breach AND j.value IS NOT NULL
+    SELECT j.key, j.split_value, j.seq, j.value, j.sessions, j.bad, true, NOT j.breach AND j.value IS NOT NULL
     FROM judged AS j
     SEMI JOIN moving AS s ON j.key = s.key AND j.split_value IS NOT DISTINCT FROM s.split_value
 ),
@@ -576,13 +579,18 @@ SELECT
     sessions, bad, value, baseline, history_windows, threshold, breach, $run_id AS run_id
 FROM judged;
 
+INSERT INTO key_windows BY NAME
+SELECT 'title_decode_errors' AS check_name, key, key_text, key_window, seq, window_start, window_end, sessions, bad,
+       $run_id AS run_id
+FROM new_key_windows;
+
 DELETE FROM key_state
-WHERE check_name = 'title_decode_errors' AND key IN (SELECT key FROM key_windows);
+WHERE check_name = 'title_decode_errors' AND key IN (SELECT key FROM new_key_windows);
 
 INSERT INTO key_state BY NAME
 SELECT 'title_decode_errors' AS check_name, key, max(seq) AS last_seq, max(window_end) AS last_end,
        max(key_window) AS windows
-FROM key_windows
+FROM new_key_windows
 GROUP BY key;
 
 DELETE FROM carry WHERE check_name = 'title_decode_errors';

@@ -1,0 +1,590 @@
+-- Plimsoll check site_failures_p_chart: compiled SQL, executed by `plimsoll run` as shown.
+-- Parameters: $files (new Parquet files), $manifest (their size and time), $run_id,
+-- $definition (hash of this script). Statements after '@repeat' run until no breach flag changes.
+-- ── stage 0 · source ───────────────────────────────────────────────────────────────────────
+-- Source sessions: the sessions of the files not read before ($files), read once for
+-- every check that reads the same files, each session id once. Rows without a session id or event
+-- time are counted and skipped; excluded sessions never count.
+CREATE OR REPLACE TEMP TABLE lake_rows AS
+SELECT
+    "session_id"::VARCHAR AS __session_id,
+    "ended_at"::TIMESTAMP AS __event_time,
+coalesce("is_bot", false) AS __excluded,
+    "site",
+    "error_code",
+    filename AS __file
+FROM read_parquet($files, hive_partitioning = true, union_by_name = true, filename = true);
+
+-- One copy of each session id: the earliest, then by file name, so every run keeps the same one.
+CREATE OR REPLACE TEMP TABLE repeated_ids AS
+SELECT __session_id
+FROM lake_rows
+WHERE __session_id IS NOT NULL AND __event_time IS NOT NULL
+GROUP BY __session_id
+HAVING count(*) > 1;
+
+CREATE OR REPLACE TEMP TABLE lake_sessions AS
+SELECT *
+FROM lake_rows
+WHERE __session_id IS NOT NULL AND __event_time IS NOT NULL
+  AND __session_id NOT IN (SELECT __session_id FROM repeated_ids)
+UNION ALL
+SELECT *
+FROM lake_rows
+WHERE __event_time IS NOT NULL
+  AND __session_id IN (SELECT __session_id FROM repeated_ids)
+QUALIFY row_number() OVER (PARTITION BY __session_id ORDER BY __event_time, __file) = 1;
+
+CREATE OR REPLACE TEMP TABLE lake_counts AS
+SELECT
+    count(*) AS rows_read,
+    count(*) FILTER (WHERE __session_id IS NULL OR __event_time IS NULL) AS rows_invalid,
+    count(*) FILTER (WHERE __session_id IS NOT NULL AND __event_time IS NOT NULL)
+        - (SELECT count(*) FROM lake_sessions) AS duplicate_rows,
+    (SELECT count(*) FROM lake_sessions WHERE __excluded) AS rows_excluded,
+    max(__event_time) AS latest
+FROM lake_rows;
+
+CREATE OR REPLACE TEMP TABLE lake_file_rows AS
+SELECT __file AS path, count(*) AS rows
+FROM lake_rows
+GROUP BY __file;
+
+-- ── stage 1 · scan ─────────────────────────────────────────────────────────────────────────
+-- The check's sessions: not excluded; its key and measure inputs.
+CREATE OR REPLACE TEMP TABLE arrivals AS
+SELECT
+    __session_id AS session_id,
+    __event_time AS event_time,
+    {'site': "site"::VARCHAR} AS key,
+    coalesce(NOT "error_code" IS NULL, false) AS is_bad,
+NULL::VARCHAR AS split_value,
+    NULL::DOUBLE AS num,
+    NULL::DOUBLE AS den,
+    NULL::DOUBLE AS x
+FROM lake_sessions
+WHERE NOT __excluded;
+
+-- The watermark: the largest event time read by this check so far, this run's files included.
+CREATE OR REPLACE TEMP TABLE clock AS
+SELECT
+    prior.watermark AS previous,
+    greatest(prior.watermark, (SELECT latest FROM lake_counts)) AS current
+FROM (SELECT (SELECT watermark FROM check_state WHERE check_name = 'site_failures_p_chart') AS watermark) AS prior;
+
+CREATE OR REPLACE TEMP TABLE scan_counts AS
+SELECT
+    c.rows_read, c.rows_invalid, c.duplicate_rows, c.rows_excluded,
+    (SELECT count(*) FROM lake_sessions WHERE NOT __excluded) - (SELECT count(*) FROM arrivals) AS rows_filtered,
+    (SELECT count(*) FROM arrivals) AS rows_kept
+FROM lake_counts AS c;
+
+-- ── stage 2 · window ───────────────────────────────────────────────────────────────────────
+-- Count windows: each 60 sessions of a series in (event_time, session_id) order; a
+-- window that is not full INTERVAL 1 DAY after its first session closes as it is once the
+-- watermark has passed that moment. Partial windows are carried to the next run.
+CREATE OR REPLACE TEMP TABLE series_last AS
+SELECT {'site': key['site']} AS key, last_seq, last_end
+FROM key_state
+WHERE check_name = 'site_failures_p_chart';
+
+CREATE OR REPLACE TEMP TABLE pooled AS
+SELECT
+    p.*,
+    row_number() OVER in_order - 1 AS i,
+    -- a window starting here cannot fill: fewer than N sessions left, or the N-th is too late
+    coalesce(lead(p.event_time, 59) OVER in_order > p.event_time + INTERVAL 1 DAY, true) AS is_cut
+FROM (
+    SELECT {'site': key['site']} AS key, event_time, session_id, is_bad, split_value,
+           num, den, x, false AS late
+    FROM carry
+    WHERE check_name = 'site_failures_p_chart'
+    UNION ALL
+    -- late: earlier than the end of a window already closed for the series; it joins the open window
+    SELECT a.key, a.event_time, a.session_id, a.is_bad, a.split_value, a.num, a.den, a.x,
+           coalesce(a.event_time < s.last_end, false) AS late
+    FROM arrivals AS a
+    LEFT JOIN series_last AS s ON s.key = a.key
+) AS p
+WINDOW in_order AS (PARTITION BY p.key ORDER BY p.event_time, p.session_id);
+
+-- Cuts: window starts that cannot fill; each either times out (the watermark has passed
+-- start + max_wait: the window closes with the sessions within max_wait of its start, up to
+-- position lim) or stays open and is carried.
+CREATE OR REPLACE TEMP TABLE cuts AS
+SELECT c.key, c.i, t.i AS lim,
+       c.event_time + INTERVAL 1 DAY < (SELECT current FROM clock) AS times_out
+FROM (SELECT key, i, event_time FROM pooled WHERE is_cut) AS c
+-- the last session (by time, then position) no later than max_wait after the cut's first one
+ASOF JOIN (SELECT key, i, epoch_us(event_time)::HUGEINT * 1000000000000 + i AS at FROM pooled) AS t
+    ON t.key = c.key
+   AND t.at <= epoch_us(c.event_time + INTERVAL 1 DAY)::HUGEINT * 1000000000000 + 999999999999;
+
+-- Runs of full windows per series, from the start of the pool to the first cut on the run's
+-- stride; after a cut that times out the next run starts behind it. One step per cut, all series at once.
+CREATE OR REPLACE TEMP TABLE runs_of_windows AS
+WITH RECURSIVE seg(key, o, a, a_lim, closes) AS (
+    SELECT key, 0::BIGINT, min(i), arg_min(lim, i), arg_min(times_out, i)
+    FROM cuts
+    WHERE i % 60 = 0
+    GROUP BY key
+    UNION ALL
+    SELECT c.key, s.a_lim + 1, min(c.i), arg_min(c.lim, c.i), arg_min(c.times_out, c.i)
+    FROM seg AS s
+    JOIN cuts AS c ON c.key = s.key AND c.i > s.a_lim AND (c.i - s.a_lim - 1) % 60 = 0
+    WHERE s.closes
+    GROUP BY c.key, s.a_lim
+)
+SELECT key, o, a, a_lim, closes FROM seg
+UNION ALL
+-- after the last cut that timed out, or where a series has no cut on its stride: full windows to the end
+SELECT key, o, NULL, NULL, NULL
+FROM (
+    SELECT p.key, coalesce(max(s.a_lim) + 1, 0) AS o, count(s.key) AS n_cuts,
+           arg_max(s.closes, s.o) AS last_closes
+    FROM (SELECT DISTINCT key FROM pooled) AS p
+    LEFT JOIN seg AS s ON s.key = p.key
+    GROUP BY p.key
+)
+WHERE n_cuts = 0 OR last_closes;
+
+-- Each pooled session's window, named by the position of its first session (NULL: still open).
+CREATE OR REPLACE TEMP TABLE placed AS
+WITH spans AS (
+    SELECT *, coalesce(lead(o) OVER (PARTITION BY key ORDER BY o), 9223372036854775807) AS next_o
+    FROM runs_of_windows
+)
+SELECT
+    p.*,
+    CASE
+        WHEN r.a IS NULL OR p.i < r.a THEN r.o + (p.i - r.o) // 60 * 60
+        WHEN r.closes AND p.i <= r.a_lim THEN r.a
+    END AS w0
+FROM pooled AS p
+JOIN spans AS r ON p.key = r.key AND p.i >= r.o AND p.i < r.next_o;
+
+CREATE OR REPLACE TEMP TABLE closed_windows AS
+SELECT
+    w.key, w.w0, w.window_start, w.window_end,
+    coalesce(s.last_seq, 0) + row_number() OVER (PARTITION BY w.key ORDER BY w.w0) AS seq
+FROM (
+    SELECT key, w0, min(event_time) AS window_start, max(event_time) AS window_end
+    FROM placed
+    WHERE w0 IS NOT NULL
+    GROUP BY key, w0
+) AS w
+LEFT JOIN series_last AS s ON s.key = w.key;
+
+CREATE OR REPLACE TEMP TABLE window_sessions AS
+SELECT p.* EXCLUDE (i, is_cut, w0), w.seq, w.window_start, w.window_end
+FROM placed AS p
+JOIN closed_windows AS w ON w.key = p.key AND w.w0 = p.w0;
+
+CREATE OR REPLACE TEMP TABLE carry_next AS
+SELECT MAP {'site': struct_extract(key, 'site')} AS key, 'site=' || coalesce(struct_extract(key, 'site'), '<null>') AS key_text, event_time, session_id, is_bad, split_value, num, den, x
+FROM placed
+WHERE w0 IS NULL;
+
+CREATE OR REPLACE TEMP TABLE window_counts AS
+SELECT count(*) FILTER (WHERE late) AS late_rows FROM pooled;
+
+-- ── stage 3 · measure ──────────────────────────────────────────────────────────────────────
+-- rate = bad sessions ÷ sessions of the window.
+CREATE OR REPLACE TEMP TABLE key_window_stats AS
+SELECT
+    MAP {'site': struct_extract(key, 'site')} AS key,
+    'site=' || coalesce(struct_extract(key, 'site'), '<null>') AS key_text,
+    seq,
+    min(window_start) AS window_start,
+    max(window_end) AS window_end,
+    count(*) AS sessions,
+    count(*) FILTER (WHERE is_bad) AS bad,
+    count(*) FILTER (WHERE is_bad) / count(*) AS value
+FROM window_sessions
+GROUP BY key, seq;
+
+-- key_window: the ordinal of the window among all of its key's windows, across runs
+CREATE OR REPLACE TEMP TABLE new_key_windows AS
+SELECT
+    w.*,
+    coalesce(s.windows, 0) + row_number() OVER (PARTITION BY w.key ORDER BY w.seq) AS key_window
+FROM key_window_stats AS w
+LEFT JOIN key_state AS s ON s.check_name = 'site_failures_p_chart' AND s.key = w.key;
+
+CREATE OR REPLACE TEMP TABLE new_windows AS
+SELECT key, key_text, NULL::VARCHAR AS split_value, seq, key_window, window_start, window_end, sessions, bad, value
+FROM new_key_windows;
+
+-- ── stage 4 · baseline ─────────────────────────────────────────────────────────────────────
+-- Earlier windows that did not breach can only enter a window's history in order, so the verdicts
+-- of a series are found by repeating this stage and the next until no breach flag changes; each
+-- round settles at least one more window of every series still changing, all series at once.
+CREATE OR REPLACE TEMP TABLE history AS
+WITH earlier AS (
+    SELECT w.key, w.split_value, w.seq, w.key_window, w.value, w.sessions, w.bad, w.breach
+    FROM windows AS w
+    SEMI JOIN (SELECT DISTINCT key, split_value FROM new_windows) AS n
+        ON w.key = n.key AND w.split_value IS NOT DISTINCT FROM n.split_value
+    WHERE w.check_name = 'site_failures_p_chart'
+)
+SELECT key, split_value, seq, value, sessions, bad
+FROM (
+    SELECT key, split_value, seq, value, sessions, bad FROM earlier WHERE NOT breach AND value IS NOT NULL
+)
+QUALIFY row_number() OVER (PARTITION BY key, split_value ORDER BY seq DESC) <= 10;
+
+CREATE OR REPLACE TEMP TABLE judged AS
+SELECT
+    *,
+    NULL::DOUBLE AS baseline,
+    NULL::BIGINT AS history_windows,
+    NULL::DOUBLE AS threshold,
+    false AS breach,
+    true AS changed
+FROM new_windows;
+-- @repeat (with stage 5): until no breach flag changes
+CREATE OR REPLACE TEMP TABLE verdicts AS
+WITH moving AS (
+    SELECT DISTINCT key, split_value FROM judged WHERE changed
+),
+series_rows AS (
+    SELECT h.key, h.split_value, h.seq, h.value, h.sessions, h.bad, false AS is_new, true AS eligible
+    FROM history AS h
+    SEMI JOIN moving AS s ON h.key = s.key AND h.split_value IS NOT DISTINCT FROM s.split_value
+    UNION ALL
+    SELECT j.key, j.split_value, j.seq, j.value, j.sessions, j.bad, true, NOT j.breach AND j.value IS NOT NULL
+    FROM judged AS j
+    SEMI JOIN moving AS s ON j.key = s.key AND j.split_value IS NOT DISTINCT FROM s.split_value
+),
+numbered AS (
+    -- hb: how many eligible windows come before this one; history is the eligible rows with hb in
+    -- [hb - history, hb - 1], whatever breached windows lie between them
+    SELECT *,
+        coalesce(count(*) FILTER (WHERE eligible) OVER (
+            PARTITION BY key, split_value ORDER BY seq ROWS BETWEEN UNBOUNDED PRECEDING AND 1 PRECEDING
+        ), 0) AS hb
+    FROM series_rows
+),
+framed AS (
+    SELECT
+        key, split_value, seq, is_new,
+        sum(bad) FILTER (WHERE eligible) OVER earlier
+            / nullif(sum(sessions) FILTER (WHERE eligible) OVER earlier, 0) AS baseline,
+        count(*) FILTER (WHERE eligible) OVER earlier AS history_windows
+    FROM numbered
+    WINDOW earlier AS (
+        PARTITION BY key, split_value ORDER BY hb RANGE BETWEEN 10 PRECEDING AND 1 PRECEDING
+    )
+)
+SELECT key, split_value, seq, baseline, history_windows
+FROM framed
+WHERE is_new;
+
+-- ── stage 5 · breach ───────────────────────────────────────────────────────────────────────
+-- A window breaches when it has a threshold, its value is above it, and it passes the guard
+-- (at least 30 sessions and 3 bad); every other window with a threshold is healthy.
+-- confidence 0.9: it also needs the lower end of its Wilson score interval (Wilson 1927)
+-- at that two-sided confidence (z = 1.644853627) beyond the threshold, so a small noisy window cannot:
+--   bound = (p̂ + z²/2n − z·√(p̂(1−p̂)/n + z²/4n²)) / (1 + z²/n),  p̂ = bad / sessions
+-- @repeat (with stage 4): until no breach flag changes
+CREATE OR REPLACE TEMP TABLE decided AS
+SELECT
+    *,
+    coalesce(
+        threshold IS NOT NULL
+        AND value > threshold
+        AND sessions >= 30
+        AND bad >= 3
+        AND greatest(0.0, ((bad) / (sessions) + (1.644853627) ^ 2 / (2 * (sessions)) - (1.644853627) * sqrt(((bad) / (sessions)) * (1 - (bad) / (sessions)) / (sessions) + (1.644853627) ^ 2 / (4 * (sessions) ^ 2))) / (1 + (1.644853627) ^ 2 / (sessions))) > threshold
+    , false) AS breach
+FROM (
+    SELECT
+        j.key, j.split_value, j.seq, j.value, j.sessions, j.bad, v.baseline, v.history_windows,
+        CASE WHEN v.history_windows >= 3 THEN
+v.baseline + 2.5 * sqrt(v.baseline * (1 - v.baseline) / j.sessions)
+        END AS threshold
+    FROM judged AS j
+    JOIN verdicts AS v ON j.key = v.key AND j.split_value IS NOT DISTINCT FROM v.split_value AND j.seq = v.seq
+);
+
+UPDATE judged SET changed = false WHERE changed;
+
+UPDATE judged
+SET
+    baseline = d.baseline,
+    history_windows = d.history_windows,
+    threshold = d.threshold,
+    changed = judged.breach IS DISTINCT FROM d.breach,
+    breach = d.breach
+FROM decided AS d
+WHERE judged.key = d.key AND judged.split_value IS NOT DISTINCT FROM d.split_value AND judged.seq = d.seq;
+
+SELECT count(*) FILTER (WHERE changed) AS still_changing FROM judged;
+
+-- ── stage 6 · lifecycle ────────────────────────────────────────────────────────────────────
+-- A breach opens an alert for its series unless one is open; more breaches update it. An open alert
+-- closes as 'recovered' after 2 healthy windows in a row, or as 'expired' once the series
+-- has had no window for INTERVAL 7 DAY (between two windows, or before the watermark).
+-- All in data time, one pass over every series' new windows in order.
+CREATE OR REPLACE TEMP TABLE open_alerts AS
+SELECT *
+FROM alerts
+WHERE check_name = 'site_failures_p_chart' AND status = 'open';
+
+CREATE OR REPLACE TEMP TABLE steps AS
+WITH relevant AS (
+    SELECT DISTINCT key, split_value FROM judged WHERE breach
+    UNION
+    SELECT key, split_value FROM open_alerts
+),
+ordered AS (
+    SELECT
+        j.key, j.key_text, j.split_value, j.seq, j.window_start, j.window_end, j.value, j.threshold,
+        j.bad, j.sessions, j.breach,
+        j.threshold IS NOT NULL AND NOT j.breach AS healthy,
+        coalesce(lag(j.window_end) OVER (PARTITION BY j.key, j.split_value ORDER BY j.seq), l.last_end) AS prev_end,
+        o.alert_id IS NOT NULL AS carried,
+        coalesce(o.healthy_streak, 0) AS streak0
+    FROM judged AS j
+    SEMI JOIN relevant AS r ON j.key = r.key AND j.split_value IS NOT DISTINCT FROM r.split_value
+    LEFT JOIN key_state AS l ON l.check_name = 'site_failures_p_chart' AND l.key = j.key
+    LEFT JOIN open_alerts AS o ON j.key = o.key AND j.split_value IS NOT DISTINCT FROM o.split_value
+),
+stretched AS (
+    -- stretch n: the windows after the n-th breach of this run, up to and including the next breach
+    SELECT
+        *,
+        coalesce(prev_end + INTERVAL 7 DAY < window_end, false) AS gap,
+        coalesce(count(*) FILTER (WHERE breach) OVER (
+            PARTITION BY key, split_value ORDER BY seq ROWS BETWEEN UNBOUNDED PRECEDING AND 1 PRECEDING
+        ), 0) AS stretch
+    FROM ordered
+),
+counted AS (
+    SELECT
+        *,
+        coalesce(count(*) FILTER (WHERE healthy) OVER within, 0)
+            + CASE WHEN stretch = 0 THEN streak0 ELSE 0 END AS healthy_before,
+        coalesce(bool_or(gap) OVER within, false) AS gap_before,
+        stretch > 0 OR carried AS breached_before
+    FROM stretched
+    WINDOW within AS (
+        PARTITION BY key, split_value, stretch ORDER BY seq ROWS BETWEEN UNBOUNDED PRECEDING AND 1 PRECEDING
+    )
+),
+flagged AS (
+    SELECT *, breached_before AND NOT gap_before AND healthy_before < 2 AS open_at
+    FROM counted
+)
+SELECT
+    *,
+    open_at AND gap AS expires_here,
+    open_at AND NOT gap AND healthy AND healthy_before + 1 >= 2 AS recovers_here,
+    breach AND NOT (open_at AND NOT gap) AS opens_here,
+    breach AND open_at AND NOT gap AS continues_here
+FROM flagged;
+
+CREATE OR REPLACE TEMP TABLE episode_steps AS
+SELECT
+    *,
+    -- episode 0 is the alert already open before this run
+    sum(opens_here::INTEGER) OVER (PARTITION BY key, split_value ORDER BY seq ROWS UNBOUNDED PRECEDING) AS episode,
+    coalesce(sum(opens_here::INTEGER) OVER (
+        PARTITION BY key, split_value ORDER BY seq ROWS BETWEEN UNBOUNDED PRECEDING AND 1 PRECEDING
+    ), 0) AS episode_before
+FROM steps;
+
+CREATE OR REPLACE TEMP TABLE episodes AS
+WITH breaches AS (
+    SELECT
+        key, any_value(key_text) AS key_text, split_value, episode,
+        min(window_end) FILTER (WHERE opens_here) AS opened_at,
+        arg_min(threshold, seq) FILTER (WHERE opens_here) AS open_threshold,
+        count(*) AS breach_windows,
+        sum(coalesce(bad, sessions)) AS affected_sessions,
+        max(value) AS peak_value,
+        max(window_end) AS last_breach_at,
+        max(seq) AS last_breach_seq
+    FROM episode_steps
+    WHERE breach
+    GROUP BY key, split_value, episode
+),
+closes AS (
+    SELECT
+        key, split_value, episode_before AS episode,
+        CASE WHEN expires_here THEN prev_end + INTERVAL 7 DAY ELSE window_end END AS closed_at,
+        CASE WHEN expires_here THEN 'expired' ELSE 'recovered' END AS close_reason,
+        CASE WHEN expires_here THEN NULL ELSE value END AS close_value,
+        threshold AS close_threshold
+    FROM episode_steps
+    WHERE expires_here OR recovers_here
+),
+all_episodes AS (
+    SELECT key, split_value, episode FROM breaches
+    UNION
+    SELECT key, split_value, 0 FROM open_alerts
+),
+series_end AS (
+    SELECT s.key, s.split_value, coalesce(max(j.window_end), max(l.last_end)) AS last_window_end
+    FROM all_episodes AS s
+    LEFT JOIN judged AS j ON j.key = s.key AND j.split_value IS NOT DISTINCT FROM s.split_value
+    LEFT JOIN key_state AS l ON l.check_name = 'site_failures_p_chart' AND l.key = s.key
+    GROUP BY s.key, s.split_value
+),
+healthy_tail AS (
+    -- healthy windows after the last breach of a series: the streak an open alert carries on
+    SELECT e.key, e.split_value, count(*) FILTER (WHERE e.healthy AND e.seq > coalesce(b.last_seq, -1)) AS n
+    FROM episode_steps AS e
+    LEFT JOIN (SELECT key, split_value, max(last_breach_seq) AS last_seq FROM breaches GROUP BY ALL) AS b
+        ON e.key = b.key AND e.split_value IS NOT DISTINCT FROM b.split_value
+    GROUP BY e.key, e.split_value
+),
+merged AS (
+    SELECT
+        a.key, a.split_value, a.episode,
+        coalesce(o.alert_id, NULL) AS prior_alert_id,
+        coalesce(b.key_text, o.key_text) AS key_text,
+        coalesce(o.opened_at, b.opened_at) AS opened_at,
+        coalesce(o.threshold, b.open_threshold) AS threshold,
+        coalesce(o.breach_windows, 0) + coalesce(b.breach_windows, 0) AS breach_windows,
+        coalesce(o.affected_sessions, 0) + coalesce(b.affected_sessions, 0) AS affected_sessions,
+        greatest(o.peak_value, b.peak_value) AS peak_value,
+        coalesce(b.last_breach_at, o.last_breach_at) AS last_breach_at,
+        o.first_run_id,
+        c.closed_at, c.close_reason, c.close_value, c.close_threshold,
+        CASE
+            WHEN b.episode IS NULL THEN o.healthy_streak + coalesce(t.n, 0)
+            ELSE coalesce(t.n, 0)
+        END AS healthy_streak,
+        e.last_window_end,
+        b.episode IS NOT NULL OR c.episode IS NOT NULL OR t.n > 0 AS touched
+    FROM all_episodes AS a
+    LEFT JOIN breaches AS b ON a.key = b.key AND a.split_value IS NOT DISTINCT FROM b.split_value AND a.episode = b.episode
+    LEFT JOIN open_alerts AS o ON a.key = o.key AND a.split_value IS NOT DISTINCT FROM o.split_value AND a.episode = 0
+    LEFT JOIN closes AS c ON a.key = c.key AND a.split_value IS NOT DISTINCT FROM c.split_value AND a.episode = c.episode
+    LEFT JOIN healthy_tail AS t ON a.key = t.key AND a.split_value IS NOT DISTINCT FROM t.split_value
+    LEFT JOIN series_end AS e ON a.key = e.key AND a.split_value IS NOT DISTINCT FROM e.split_value
+)
+SELECT
+    *,
+    -- an alert still open whose series has been silent past expire_after at the watermark expires
+    closed_at IS NULL
+        AND last_window_end + INTERVAL 7 DAY < (SELECT current FROM clock) AS expires_at_watermark
+FROM merged;
+
+CREATE OR REPLACE TEMP TABLE alert_rows AS
+SELECT
+    coalesce(prior_alert_id, substr(md5(to_json({
+        'check': 'site_failures_p_chart', 'key': key, 'split': split_value, 'opened_at': opened_at
+    })::VARCHAR), 1, 16)) AS alert_id,
+    'site_failures_p_chart' AS check_name,
+    'high' AS severity,
+    key,
+    key_text,
+    split_value,
+    CASE WHEN closed_at IS NOT NULL OR expires_at_watermark THEN 'closed' ELSE 'open' END AS status,
+    CASE WHEN closed_at IS NOT NULL THEN close_reason WHEN expires_at_watermark THEN 'expired' END AS close_reason,
+    opened_at,
+    last_breach_at,
+    CASE
+        WHEN closed_at IS NOT NULL THEN closed_at
+        WHEN expires_at_watermark THEN last_window_end + INTERVAL 7 DAY
+    END AS closed_at,
+    breach_windows,
+    affected_sessions,
+    peak_value,
+    threshold,
+    substr(md5(to_json({'check': 'site_failures_p_chart', 'key': key, 'split': split_value})::VARCHAR), 1, 16) AS fingerprint,
+    coalesce(first_run_id, $run_id) AS first_run_id,
+    $run_id AS last_run_id,
+    CASE WHEN closed_at IS NULL AND NOT expires_at_watermark THEN healthy_streak END AS healthy_streak,
+    episode,
+    touched OR expires_at_watermark AS touched,
+    close_value,
+    close_threshold
+FROM episodes;
+
+CREATE OR REPLACE TEMP TABLE event_rows AS
+WITH breach_events AS (
+    SELECT
+        s.key, s.split_value, s.episode, s.window_end AS occurred_at,
+        CASE WHEN s.opens_here THEN 'opened' ELSE 'updated' END AS event,
+        s.value, s.threshold,
+        coalesce(o.affected_sessions, 0) + sum(coalesce(s.bad, s.sessions)) OVER (
+            PARTITION BY s.key, s.split_value, s.episode ORDER BY s.seq ROWS UNBOUNDED PRECEDING
+        ) AS affected_sessions,
+        s.seq
+    FROM episode_steps AS s
+    LEFT JOIN open_alerts AS o ON s.key = o.key AND s.split_value IS NOT DISTINCT FROM o.split_value AND s.episode = 0
+    WHERE s.breach
+)
+SELECT a.alert_id, $run_id AS run_id, e.occurred_at, e.event, e.value, e.threshold, e.affected_sessions
+FROM breach_events AS e
+JOIN alert_rows AS a ON e.key = a.key AND e.split_value IS NOT DISTINCT FROM a.split_value AND e.episode = a.episode
+UNION ALL
+SELECT alert_id, $run_id, closed_at, 'closed', close_value, close_threshold, affected_sessions
+FROM alert_rows
+WHERE status = 'closed';
+
+-- ── stage 7 · persist ──────────────────────────────────────────────────────────────────────
+-- Everything below commits in the run's one transaction, with the files read and the run record.
+INSERT INTO windows BY NAME
+SELECT
+    'site_failures_p_chart' AS check_name, key, key_text, split_value, seq, key_window, window_start, window_end,
+    sessions, bad, value, baseline, history_windows, threshold, breach, $run_id AS run_id
+FROM judged;
+
+INSERT INTO key_windows BY NAME
+SELECT 'site_failures_p_chart' AS check_name, key, key_text, key_window, seq, window_start, window_end, sessions, bad,
+       $run_id AS run_id
+FROM new_key_windows;
+
+DELETE FROM key_state
+WHERE check_name = 'site_failures_p_chart' AND key IN (SELECT key FROM new_key_windows);
+
+INSERT INTO key_state BY NAME
+SELECT 'site_failures_p_chart' AS check_name, key, max(seq) AS last_seq, max(window_end) AS last_end,
+       max(key_window) AS windows
+FROM new_key_windows
+GROUP BY key;
+
+DELETE FROM carry WHERE check_name = 'site_failures_p_chart';
+
+INSERT INTO carry BY NAME
+SELECT 'site_failures_p_chart' AS check_name, * FROM carry_next;
+
+DELETE FROM alerts
+WHERE alert_id IN (SELECT alert_id FROM alert_rows WHERE touched);
+
+INSERT INTO alerts BY NAME
+SELECT * EXCLUDE (episode, touched, close_value, close_threshold)
+FROM alert_rows
+WHERE touched;
+
+INSERT INTO alert_events BY NAME
+SELECT * FROM event_rows;
+
+DELETE FROM check_state WHERE check_name = 'site_failures_p_chart';
+
+INSERT INTO check_state BY NAME
+SELECT 'site_failures_p_chart' AS check_name, current AS watermark, $definition AS definition_hash, $run_id AS last_run_id
+FROM clock;
+
+INSERT INTO files_read BY NAME
+SELECT 'site_failures_p_chart' AS check_name, f.path, f.size, f.modified_at, $run_id AS run_id,
+       coalesce(n.rows, 0) AS rows
+FROM (SELECT unnest($manifest, recursive := true)) AS f
+LEFT JOIN lake_file_rows AS n ON n.path = f.path;
+
+INSERT INTO run_checks BY NAME
+SELECT
+    $run_id AS run_id, 'site_failures_p_chart' AS check_name,
+    len($manifest) AS files_read,
+    c.rows_read, c.rows_invalid, c.rows_excluded, c.rows_filtered, c.duplicate_rows,
+    (SELECT late_rows FROM window_counts) AS late_rows,
+    (SELECT count(*) FROM judged) AS windows_written,
+    (SELECT count(*) FROM judged WHERE breach) AS breach_windows,
+    (SELECT count(*) FROM event_rows WHERE event = 'opened') AS alerts_opened,
+    (SELECT count(*) FROM event_rows WHERE event = 'closed') AS alerts_closed,
+    (SELECT current FROM clock) AS watermark
+FROM scan_counts AS c;
