@@ -117,10 +117,12 @@ CREATE TABLE IF NOT EXISTS alerts (
     status VARCHAR,                  -- 'open' | 'closed'
     close_reason VARCHAR,            -- 'recovered' | 'expired' | 'check removed' | NULL
     opened_at TIMESTAMP,             -- data time of the first breaching window's end
+    breach_started_at TIMESTAMP,     -- start of the first breaching window
     last_breach_at TIMESTAMP,
     closed_at TIMESTAMP,
     breach_windows BIGINT,
     affected_sessions BIGINT,
+    affected_per_hour DOUBLE,        -- affected_sessions over the breaching windows' span in data time
     peak_value DOUBLE,
     threshold DOUBLE,
     fingerprint VARCHAR,

@@ -16,7 +16,8 @@ WINDOW_COLUMNS = ("key_text, split_value, seq, window_start, window_end, session
                   "round(value, 9) AS value, round(baseline, 9) AS baseline, history_windows, "
                   "round(threshold, 9) AS threshold, breach")
 ALERT_COLUMNS = ("alert_id, key_text, split_value, status, close_reason, opened_at, last_breach_at, "
-                 "closed_at, breach_windows, affected_sessions, round(peak_value, 9) AS peak_value, "
+                 "closed_at, breach_windows, affected_sessions, round(affected_per_hour, 6) AS affected_per_hour, "
+                 "round(peak_value, 9) AS peak_value, "
                  "round(threshold, 9) AS threshold, fingerprint")
 
 

@@ -82,3 +82,17 @@ def test_demo_refuses_a_folder_it_did_not_make(tmp_path: Path) -> None:
     assert result.exit_code == 1
     assert "was not made by `plimsoll demo`" in result.output
     assert (tmp_path / "precious.txt").read_text() == "keep me"
+
+
+@pytest.mark.slow
+def test_impact_figures_of_the_cdn_incident(demo: tuple[Path, str]) -> None:
+    # three hourly windows breach: the span is three hours of data time
+    workdir, _ = demo
+    con = duckdb.connect(str(workdir / "warehouse.duckdb"), read_only=True)
+    row = con.execute(
+        "SELECT breach_windows, affected_sessions, affected_per_hour, opened_at - breach_started_at "
+        "FROM alerts WHERE check_name = 'cdn_country_errors' AND key_text = 'cdn=birch, country=DE'").fetchone()
+    con.close()
+    windows, affected, per_hour, first_window = row
+    assert windows == 3 and first_window.total_seconds() == 3600
+    assert per_hour == pytest.approx(affected / 3)

@@ -16,6 +16,7 @@ from .model import Project
 
 ALERT_COLUMNS = ("alert_id", "status", "severity", "check_name", "key_text", "split_value", "opened_at",
                  "last_breach_at", "closed_at", "close_reason", "breach_windows", "affected_sessions",
+                 "affected_per_hour",
                  "peak_value", "threshold", "fingerprint")
 
 
@@ -56,12 +57,13 @@ def alerts_table(alerts: list[dict[str, Any]]) -> str:
     """A fixed-width table for a terminal."""
     if not alerts:
         return "no alerts"
-    head = ("status", "severity", "check", "key", "split", "opened", "windows", "affected")
+    head = ("status", "severity", "check", "key", "split", "opened", "windows", "affected", "per hour")
     body = [
         (
             a["status"] if a["status"] == "open" else f"closed ({a['close_reason']})",
             a["severity"], a["check_name"], a["key_text"] or "(all)", a["split_value"] or "",
             a["opened_at"].strftime("%Y-%m-%d %H:%M"), str(a["breach_windows"]), str(a["affected_sessions"]),
+            f"{a['affected_per_hour']:,.0f}",
         )
         for a in alerts
     ]

@@ -328,6 +328,7 @@ WITH breaches AS (
     SELECT
         key, any_value(key_text) AS key_text, split_value, episode,
         min(window_end) FILTER (WHERE opens_here) AS opened_at,
+        min(window_start) FILTER (WHERE opens_here) AS breach_started_at,
         arg_min(threshold, seq) FILTER (WHERE opens_here) AS open_threshold,
         count(*) AS breach_windows,
         sum(coalesce(bad, sessions)) AS affected_sessions,
@@ -374,6 +375,7 @@ merged AS (
         coalesce(o.alert_id, NULL) AS prior_alert_id,
         coalesce(b.key_text, o.key_text) AS key_text,
         coalesce(o.opened_at, b.opened_at) AS opened_at,
+        coalesce(o.breach_started_at, b.breach_started_at) AS breach_started_at,
         coalesce(o.threshold, b.open_threshold) AS threshold,
         coalesce(o.breach_windows, 0) + coalesce(b.breach_windows, 0) AS breach_windows,
         coalesce(o.affected_sessions, 0) + coalesce(b.affected_sessions, 0) AS affected_sessions,
@@ -414,6 +416,7 @@ SELECT
     CASE WHEN closed_at IS NOT NULL OR expires_at_watermark THEN 'closed' ELSE 'open' END AS status,
     CASE WHEN closed_at IS NOT NULL THEN close_reason WHEN expires_at_watermark THEN 'expired' END AS close_reason,
     opened_at,
+    breach_started_at,
     last_breach_at,
     CASE
         WHEN closed_at IS NOT NULL THEN closed_at
@@ -421,6 +424,8 @@ SELECT
     END AS closed_at,
     breach_windows,
     affected_sessions,
+    -- sessions hit per hour of data time, over the breaching windows' span (at least one minute)
+    affected_sessions / greatest(epoch(last_breach_at - breach_started_at) / 3600.0, 1 / 60.0) AS affected_per_hour,
     peak_value,
     threshold,
     substr(md5(to_json({'check': 'rebuffering_ratio', 'key': key, 'split': split_value})::VARCHAR), 1, 16) AS fingerprint,

@@ -1,0 +1,408 @@
+"""An independent, loop-by-loop implementation of Plimsoll's window, baseline and lifecycle rules.
+
+Written from the semantics (not from the SQL templates) so property tests can compare the two. It
+works on plain Python rows and is slow on purpose: every rule is one readable loop. It covers a
+single run that reads all the data at once, so the watermark is the largest event time read.
+
+Expressions are given as Python callables over a row dict that return ``None`` for SQL NULL.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import math
+from collections.abc import Callable
+from dataclasses import dataclass, field
+from datetime import datetime, timedelta
+from typing import Any
+
+import numpy as np
+
+Row = dict[str, Any]
+RowFn = Callable[[Row], Any]
+
+EPOCH = datetime(1970, 1, 1)
+ONE_US = timedelta(microseconds=1)
+
+
+@dataclass(frozen=True)
+class OracleCheck:
+    """What the oracle needs of one check; the expression fields are Python callables."""
+
+    name: str
+    by: tuple[str, ...]
+    kind: str                                  # rate | ratio | quantile
+    bad: RowFn | None = None
+    split: str | None = None
+    numerator: RowFn | None = None
+    denominator: RowFn | None = None
+    of: RowFn | None = None
+    q: float | None = None
+    direction: str = "up"
+    sessions: int | None = None                # count window
+    max_wait: timedelta | None = None
+    every: timedelta | None = None             # time window
+    lateness: timedelta = timedelta(0)
+    base_q: float = 0.9
+    history: int = 10
+    min_history: int = 3
+    factor: float = 1.0
+    floor: float | None = None
+    min_sessions: int = 1
+    min_bad: int = 0
+    recover_after: int = 2
+    expire_after: timedelta = timedelta(days=7)
+    where: RowFn | None = None
+    exclude: RowFn | None = None
+    severity: str = "medium"
+
+
+@dataclass
+class Result:
+    """The oracle's windows, alerts and alert events, plus what it needed to decide them."""
+
+    watermark: datetime | None
+    windows: list[Row] = field(default_factory=list)
+    alerts: list[Row] = field(default_factory=list)
+    events: list[Row] = field(default_factory=list)
+    # A value within rounding of its threshold where one side came from interpolation: the verdict
+    # then depends on the last bit of two correct quantile algorithms, so a test should skip it.
+    ambiguous: bool = False
+
+
+# ----------------------------------------------------------------------------------------------
+# small pieces
+
+
+def quantile(values: list[float], q: float) -> tuple[float | None, bool]:
+    """quantile_cont (numpy 'linear'); the flag says whether the result is exact (no interpolation)."""
+    if not values:
+        return None, True
+    ordered = sorted(values)
+    pos = (len(ordered) - 1) * q
+    lo = math.floor(pos)
+    hi = min(lo + 1, len(ordered) - 1)
+    exact = pos == lo or ordered[lo] == ordered[hi]
+    return float(np.quantile(np.array(ordered, dtype=float), q, method="linear")), exact
+
+
+def epoch_us(t: datetime) -> int:
+    return (t - EPOCH) // ONE_US
+
+
+def as_text(value: Any) -> str | None:
+    """A key or split value as VARCHAR."""
+    if value is None:
+        return None
+    if isinstance(value, bool):
+        return "true" if value else "false"
+    return str(value)
+
+
+def key_text(by: tuple[str, ...], values: tuple[str | None, ...]) -> str:
+    return ", ".join(f"{c}={'<null>' if v is None else v}" for c, v in zip(by, values))
+
+
+def alert_hash(check: str, by: tuple[str, ...], values: tuple[str | None, ...], split: str | None,
+               opened_at: datetime | None) -> str:
+    """First 16 hex of md5 over the JSON of {'check','key','split'[,'opened_at']} as DuckDB writes it."""
+    key = "{" + ",".join(f"{json.dumps(c)}:{json.dumps(v)}" for c, v in zip(by, values)) + "}"
+    parts = [f'"check":{json.dumps(check)}', f'"key":{key}', f'"split":{json.dumps(split)}']
+    if opened_at is not None:
+        parts.append(f'"opened_at":"{_ts_text(opened_at)}"')
+    text = "{" + ",".join(parts) + "}"
+    return hashlib.md5(text.encode("utf-8")).hexdigest()[:16]
+
+
+def _ts_text(t: datetime) -> str:
+    text = t.strftime("%Y-%m-%d %H:%M:%S")
+    if t.microsecond:
+        text += f".{t.microsecond:06d}".rstrip("0")
+    return text
+
+
+def truthy(value: Any) -> bool:
+    """A SQL boolean used as a filter: NULL is false."""
+    return value is not None and bool(value)
+
+
+# ----------------------------------------------------------------------------------------------
+# reading: watermark, invalid rows, duplicates, exclusion, where
+
+
+def watermark(rows: list[Row], event_time: str) -> datetime | None:
+    times = [r[event_time] for r in rows if r[event_time] is not None]
+    return max(times) if times else None
+
+
+def selected_sessions(check: OracleCheck, rows: list[Row], session_id: str,
+                      event_time: str) -> list[Row]:
+    """Valid rows, one per session id (first by event time, then file name), excluded/where applied."""
+    valid = [r for r in rows if r[session_id] is not None and r[event_time] is not None]
+    first: dict[Any, Row] = {}
+    for r in sorted(valid, key=lambda r: (r[event_time], r.get("_file", ""))):
+        first.setdefault(r[session_id], r)
+    kept = []
+    for r in first.values():
+        if check.exclude is not None and truthy(check.exclude(r)):
+            continue
+        if check.where is not None and not truthy(check.where(r)):
+            continue
+        kept.append(r)
+    return kept
+
+
+# ----------------------------------------------------------------------------------------------
+# windows
+
+
+@dataclass
+class KeyWindow:
+    seq: int
+    start: datetime
+    end: datetime
+    rows: list[Row]
+
+
+def count_windows(rows: list[Row], n: int, max_wait: timedelta, w: datetime,
+                  session_id: str, event_time: str) -> list[KeyWindow]:
+    """Greedy count windows of one key; only the closed ones."""
+    ordered = sorted(rows, key=lambda r: (r[event_time], str(r[session_id])))
+    out: list[KeyWindow] = []
+    a = 0
+    while a < len(ordered):
+        limit = ordered[a][event_time] + max_wait
+        b = a
+        while b + 1 < len(ordered) and b + 1 - a < n and ordered[b + 1][event_time] <= limit:
+            b += 1
+        members = ordered[a:b + 1]
+        if len(members) == n or w > limit:
+            times = [r[event_time] for r in members]
+            out.append(KeyWindow(len(out) + 1, min(times), max(times), members))
+            a = b + 1
+        else:
+            break
+    return out
+
+
+def time_windows(rows: list[Row], every: timedelta, lateness: timedelta, w: datetime,
+                 event_time: str) -> list[KeyWindow]:
+    """Epoch-aligned windows of one key that hold a session; only the closed ones."""
+    size = every // ONE_US
+    groups: dict[int, list[Row]] = {}
+    for r in rows:
+        groups.setdefault(epoch_us(r[event_time]) // size, []).append(r)
+    out = []
+    for k in sorted(groups):
+        start = EPOCH + timedelta(microseconds=k * size)
+        end = EPOCH + timedelta(microseconds=(k + 1) * size)
+        if w > end + lateness:
+            out.append(KeyWindow(k, start, end, groups[k]))
+    return out
+
+
+# ----------------------------------------------------------------------------------------------
+# measures
+
+
+def measure_rows(check: OracleCheck, windows: list[KeyWindow]) -> list[tuple[str | None, Row]]:
+    """(split value, window row) per series and key window, in seq order."""
+    out: list[tuple[str | None, Row]] = []
+    seen: list[str | None] = []
+    for ordinal, kw in enumerate(windows, start=1):
+        base = {"seq": kw.seq, "window_start": kw.start, "window_end": kw.end, "sessions": len(kw.rows),
+                "key_window": ordinal}
+        if check.kind == "rate":
+            flags = [truthy(check.bad(r)) for r in kw.rows]
+            if check.split is None:
+                bad = sum(flags)
+                out.append((None, {**base, "bad": bad, "value": bad / len(kw.rows), "exact": True}))
+                continue
+            values = [as_text(r[check.split]) for r, f in zip(kw.rows, flags) if f]
+            for v in values:
+                if v not in seen:
+                    seen.append(v)
+            for v in seen:
+                bad = sum(1 for x in values if x == v)
+                out.append((v, {**base, "bad": bad, "value": bad / len(kw.rows), "exact": True}))
+        elif check.kind == "ratio":
+            nums = [check.numerator(r) for r in kw.rows]
+            dens = [check.denominator(r) for r in kw.rows]
+            nums = [float(x) for x in nums if x is not None]
+            dens = [float(x) for x in dens if x is not None]
+            num = sum(nums) if nums else None
+            den = sum(dens) if dens else None
+            value = None if num is None or den is None or den == 0 else num / den
+            out.append((None, {**base, "bad": None, "value": value, "exact": True}))
+        elif check.kind == "quantile":
+            xs = [float(x) for x in (check.of(r) for r in kw.rows) if x is not None]
+            value, exact = quantile(xs, check.q)
+            out.append((None, {**base, "bad": None, "value": value, "exact": exact}))
+        else:
+            raise ValueError(check.kind)
+    return out
+
+
+# ----------------------------------------------------------------------------------------------
+# baseline and breach (sequential)
+
+
+def judge(check: OracleCheck, series: list[Row], prior: int = 0) -> bool:
+    """Fill baseline/threshold/breach in place for one series in seq order; True if ambiguous.
+
+    ``prior``: quiet windows before the series' first one, each eligible history at value 0 (a split
+    value first seen in its key's n-th window has n-1).
+    """
+    ambiguous = False
+    eligible: list[float] = [0.0] * prior
+    for w in series:
+        hist = eligible[-check.history:]
+        baseline, exact = quantile(hist, check.base_q)
+        w["history_windows"] = len(hist)
+        w["baseline"] = baseline
+        if len(hist) < check.min_history:
+            threshold = None
+        else:
+            threshold = check.factor * baseline
+            if check.floor is not None:
+                threshold = max(check.floor, threshold) if check.direction == "up" else min(check.floor, threshold)
+        w["threshold"] = threshold
+        value = w["value"]
+        crosses = False
+        if threshold is not None and value is not None:
+            crosses = value > threshold if check.direction == "up" else value < threshold
+            scale = max(abs(value), abs(threshold), 1e-300)
+            if abs(value - threshold) <= 1e-9 * scale and not (exact and w["exact"]):
+                ambiguous = True
+        guarded = w["sessions"] >= check.min_sessions and (
+            check.kind != "rate" or w["bad"] >= check.min_bad)
+        w["breach"] = bool(crosses and guarded)
+        if not w["breach"] and value is not None:
+            eligible.append(value)
+    return ambiguous
+
+
+# ----------------------------------------------------------------------------------------------
+# lifecycle
+
+
+def lifecycle(check: OracleCheck, series: list[Row], w: datetime, ident: dict[str, Any]
+              ) -> tuple[list[Row], list[Row]]:
+    """Alerts and events of one series from its judged windows."""
+    alerts: list[Row] = []
+    events: list[Row] = []
+    x = check.expire_after
+    up = check.direction == "up"
+    current: Row | None = None
+    prev_end: datetime | None = None
+
+    def close(reason: str, at: datetime) -> None:
+        nonlocal current
+        current["status"] = "closed"
+        current["close_reason"] = reason
+        current["closed_at"] = at
+        events.append({"alert_id": current["alert_id"], "event": "closed", "occurred_at": at})
+        current = None
+
+    for win in series:
+        end = win["window_end"]
+        if current is not None and end > prev_end + x:
+            close("expired", prev_end + x)
+        healthy = win["threshold"] is not None and not win["breach"]
+        if win["breach"]:
+            affected = win["bad"] if check.kind == "rate" else win["sessions"]
+            if current is not None:
+                current["breach_windows"] += 1
+                current["affected_sessions"] += affected
+                current["peak_value"] = (max if up else min)(current["peak_value"], win["value"])
+                current["last_breach_at"] = end
+                current["healthy_streak"] = 0
+                events.append({"alert_id": current["alert_id"], "event": "updated", "occurred_at": end,
+                               "value": win["value"], "threshold": win["threshold"],
+                               "affected_sessions": current["affected_sessions"]})
+            else:
+                current = {
+                    **ident,
+                    "alert_id": alert_hash(check.name, ident["_by"], ident["_values"], ident["split_value"], end),
+                    "fingerprint": alert_hash(check.name, ident["_by"], ident["_values"], ident["split_value"], None),
+                    "severity": check.severity, "status": "open", "close_reason": None,
+                    "opened_at": end, "last_breach_at": end, "closed_at": None, "breach_windows": 1,
+                    "affected_sessions": affected, "peak_value": win["value"],
+                    "threshold": win["threshold"], "healthy_streak": 0,
+                }
+                alerts.append(current)
+                events.append({"alert_id": current["alert_id"], "event": "opened", "occurred_at": end,
+                               "value": win["value"], "threshold": win["threshold"],
+                               "affected_sessions": affected})
+        elif healthy and current is not None:
+            current["healthy_streak"] += 1
+            if current["healthy_streak"] >= check.recover_after:
+                close("recovered", end)
+        prev_end = end
+    if current is not None and prev_end is not None and w > prev_end + x:
+        close("expired", prev_end + x)
+    for a in alerts:
+        a.pop("_by", None)
+        a.pop("_values", None)
+    return alerts, events
+
+
+# ----------------------------------------------------------------------------------------------
+# the whole check
+
+
+def run_check(check: OracleCheck, rows: list[Row], session_id: str = "session_id",
+              event_time: str = "ended_at") -> Result:
+    """Windows, alerts and events of one check over all rows read in one run."""
+    w = watermark(rows, event_time)
+    result = Result(watermark=w)
+    if w is None:
+        return result
+    keys: dict[tuple[str | None, ...], list[Row]] = {}
+    for r in selected_sessions(check, rows, session_id, event_time):
+        keys.setdefault(tuple(as_text(r[c]) for c in check.by), []).append(r)
+    for values, members in keys.items():
+        if check.sessions is not None:
+            kws = count_windows(members, check.sessions, check.max_wait, w, session_id, event_time)
+        else:
+            kws = time_windows(members, check.every, check.lateness, w, event_time)
+        text = key_text(check.by, values)
+        series: dict[str | None, list[Row]] = {}
+        for split, row in measure_rows(check, kws):
+            series.setdefault(split, []).append({"key_text": text, "split_value": split, **row})
+        for split, rows_of in series.items():
+            prior = rows_of[0]["key_window"] - 1 if check.split is not None else 0
+            result.ambiguous |= judge(check, rows_of, prior)
+            ident = {"key_text": text, "split_value": split, "_by": check.by, "_values": values}
+            alerts, events = lifecycle(check, rows_of, w, ident)
+            result.alerts += alerts
+            result.events += events
+            for r in rows_of:
+                r.pop("exact")
+                r.pop("key_window")
+            result.windows += rows_of
+    result.windows.sort(key=window_order)
+    result.alerts.sort(key=alert_order)
+    result.events.sort(key=event_order)
+    return result
+
+
+def _text_order(v: str | None) -> tuple[bool, str]:
+    return (v is not None, v or "")
+
+
+def window_order(r: Row) -> tuple:
+    return (r["key_text"], _text_order(r["split_value"]), r["seq"])
+
+
+def alert_order(r: Row) -> tuple:
+    return (r["key_text"], _text_order(r["split_value"]), r["opened_at"], r["closed_at"] is None,
+            r["closed_at"] or r["opened_at"])
+
+
+def event_order(r: Row) -> tuple:
+    """Count windows can share an end time, so ties are broken by the cumulative count and value."""
+    rank = {"opened": 0, "updated": 1, "closed": 2}
+    return (r["alert_id"], r["occurred_at"], rank[r["event"]], r.get("affected_sessions") or 0,
+            r.get("value") or 0.0)
