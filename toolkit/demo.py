@@ -42,6 +42,7 @@ sources:
 class Match:
     alert: dict[str, Any]
     label: Label | None
+    during: Label | None = None  # an incident whose span the alert's breaching windows overlap
 
 
 @dataclass
@@ -68,7 +69,11 @@ class DemoOutcome:
 
     @property
     def unlabelled(self) -> list[Match]:
-        return [m for m in self.matches if m.label is None]
+        return [m for m in self.matches if m.label is None and m.during is None]
+
+    @property
+    def related(self) -> list[Match]:
+        return [m for m in self.matches if m.label is None and m.during is not None]
 
 
 def catalogue_folder() -> Path:
@@ -112,7 +117,7 @@ def build_and_run(workdir: Path, sessions: int = 2_000_000, seed: int = 7,
     outcome = DemoOutcome(workdir, sessions, t1 - t0, t2 - t1, result, labels)
     con = connect(project, read_only=True)
     try:
-        outcome.matches = [Match(a, match_label(a, labels)) for a in alerts_from(con)]
+        outcome.matches = [Match(a, match_label(a, labels), overlapping(a, labels)) for a in alerts_from(con)]
     finally:
         con.close()
     return outcome
@@ -142,6 +147,12 @@ def match_label(alert: dict[str, Any], labels: list[Label]) -> Label | None:
     return next((lab for lab in labels if label_matches(alert, lab)), None)
 
 
+def overlapping(alert: dict[str, Any], labels: list[Label]) -> Label | None:
+    """An incident the alert's breaching windows overlap in data time, whatever its check or key."""
+    return next((lab for lab in labels if lab.kind == "incident"
+                 and alert["breach_started_at"] < lab.end and alert["last_breach_at"] > lab.start), None)
+
+
 def summary(outcome: DemoOutcome) -> str:
     """What a new user reads after `plimsoll demo`: each alert, and the score against the labels."""
     o = outcome
@@ -154,13 +165,15 @@ def summary(outcome: DemoOutcome) -> str:
         "",
         f"Alerts ({len(o.matches)}):",
     ]
+    width = max((len(m.alert["check_name"]) for m in o.matches), default=0)
     for m in sorted(o.matches, key=lambda m: (m.alert["opened_at"], m.alert["check_name"])):
         a = m.alert
         verdict = ("labelled incident" if m.label and m.label.kind == "incident"
-                   else "DECOY (should not alert)" if m.label else "not labelled")
+                   else "DECOY (should not alert)" if m.label
+                   else f"during the labelled {m.during.check} incident" if m.during else "not labelled")
         split = f" [{a['split_value']}]" if a["split_value"] else ""
         lines.append(
-            f"  {a['opened_at']:%Y-%m-%d %H:%M}  {a['check_name']:<24} {a['key_text']}{split}: "
+            f"  {a['opened_at']:%Y-%m-%d %H:%M}  {a['check_name']:<{width}}  {a['key_text']}{split}: "
             f"{a['affected_sessions']:,} sessions affected over {a['breach_windows']} "
             f"window{'s' if a['breach_windows'] != 1 else ''}, "
             f"{a['status']}{' (' + a['close_reason'] + ')' if a['close_reason'] else ''} - {verdict}"
@@ -169,7 +182,8 @@ def summary(outcome: DemoOutcome) -> str:
         "",
         f"Labelled incidents found: {len(o.found)} of {len(incidents)}"
         + ("" if not o.missed else "; missed: " + "; ".join(f"{m.check} {m.key}" for m in o.missed)),
-        f"Decoys alerted: {len(o.decoys_hit)}; alerts matching no label: {len(o.unlabelled)}",
+        f"Decoys alerted: {len(o.decoys_hit)}; other alerts during a labelled incident: {len(o.related)}; "
+        f"alerts matching no label: {len(o.unlabelled)}",
         "",
         "Query the warehouse straight away, for example:",
         f"  duckdb {o.workdir / 'warehouse.duckdb'} \"SELECT check_name, key_text, opened_at, "

@@ -15,7 +15,7 @@ from . import warehouse
 from .model import Project
 
 ALERT_COLUMNS = ("alert_id", "status", "severity", "check_name", "key_text", "split_value", "opened_at",
-                 "last_breach_at", "closed_at", "close_reason", "breach_windows", "affected_sessions",
+                 "breach_started_at", "last_breach_at", "closed_at", "close_reason", "breach_windows", "affected_sessions",
                  "affected_per_hour",
                  "peak_value", "threshold", "fingerprint")
 
