@@ -105,12 +105,13 @@ def key_text(by: tuple[str, ...], values: tuple[str | None, ...]) -> str:
 
 
 def alert_hash(check: str, by: tuple[str, ...], values: tuple[str | None, ...], split: str | None,
-               opened_at: datetime | None) -> str:
-    """First 16 hex of md5 over the JSON of {'check','key','split'[,'opened_at']} as DuckDB writes it."""
+               opened_at: datetime | None, seq: int | None = None) -> str:
+    """First 16 hex of md5 over the JSON of {'check','key','split'[,'opened_at','seq']} as DuckDB writes it."""
     key = "{" + ",".join(f"{json.dumps(c)}:{json.dumps(v)}" for c, v in zip(by, values)) + "}"
     parts = [f'"check":{json.dumps(check)}', f'"key":{key}', f'"split":{json.dumps(split)}']
     if opened_at is not None:
         parts.append(f'"opened_at":"{_ts_text(opened_at)}"')
+        parts.append(f'"seq":{seq}')
     text = "{" + ",".join(parts) + "}"
     return hashlib.md5(text.encode("utf-8")).hexdigest()[:16]
 
@@ -324,7 +325,8 @@ def lifecycle(check: OracleCheck, series: list[Row], w: datetime, ident: dict[st
             else:
                 current = {
                     **ident,
-                    "alert_id": alert_hash(check.name, ident["_by"], ident["_values"], ident["split_value"], end),
+                    "alert_id": alert_hash(check.name, ident["_by"], ident["_values"], ident["split_value"], end,
+                                           win["seq"]),
                     "fingerprint": alert_hash(check.name, ident["_by"], ident["_values"], ident["split_value"], None),
                     "severity": check.severity, "status": "open", "close_reason": None,
                     "opened_at": end, "last_breach_at": end, "closed_at": None, "breach_windows": 1,

@@ -464,7 +464,7 @@ def test_oracle_quantile_is_quantile_cont() -> None:
 def test_oracle_lifecycle_by_hand() -> None:
     def win(hour: int, breach: bool, threshold: float | None = 0.5, value: float = 0.9, bad: int = 3) -> dict:
         return {"window_end": BASE + timedelta(hours=hour), "breach": breach, "threshold": threshold,
-                "value": value, "bad": bad, "sessions": 10}
+                "value": value, "bad": bad, "sessions": 10, "seq": hour}
     series = [win(1, True, value=0.7), win(2, False), win(3, True, value=0.9, bad=4), win(4, False),
               win(5, False, threshold=None), win(6, False), win(7, True), win(10, False), win(11, True)]
     check = _check(recover_after=2, expire_after=timedelta(hours=2))

@@ -154,11 +154,16 @@ def _statements(sql: str) -> tuple[Statement, ...]:
     """Split on statement boundaries with DuckDB's own parser (literals may hold semicolons)."""
     if not sql.strip():
         return ()
-    con = duckdb.connect()
-    try:
-        parts = con.extract_statements(sql)
-        return tuple(
-            Statement(p.query.strip(), frozenset(p.named_parameters)) for p in parts if p.query.strip()
-        )
-    finally:
-        con.close()
+    parts = _parser().extract_statements(sql)
+    return tuple(Statement(p.query.strip(), frozenset(p.named_parameters)) for p in parts if p.query.strip())
+
+
+_PARSER: duckdb.DuckDBPyConnection | None = None
+
+
+def _parser() -> duckdb.DuckDBPyConnection:
+    """One in-memory connection, used only to split statements (it never runs them)."""
+    global _PARSER
+    if _PARSER is None:
+        _PARSER = duckdb.connect()
+    return _PARSER

@@ -445,6 +445,7 @@ WITH breaches AS (
         key, any_value(key_text) AS key_text, split_value, episode,
         min(window_end) FILTER (WHERE opens_here) AS opened_at,
         min(window_start) FILTER (WHERE opens_here) AS breach_started_at,
+        min(seq) FILTER (WHERE opens_here) AS opened_seq,
         arg_min(threshold, seq) FILTER (WHERE opens_here) AS open_threshold,
         count(*) AS breach_windows,
         sum(coalesce(bad, sessions)) AS affected_sessions,
@@ -492,6 +493,7 @@ merged AS (
         coalesce(b.key_text, o.key_text) AS key_text,
         coalesce(o.opened_at, b.opened_at) AS opened_at,
         coalesce(o.breach_started_at, b.breach_started_at) AS breach_started_at,
+        b.opened_seq,
         coalesce(o.threshold, b.open_threshold) AS threshold,
         coalesce(o.breach_windows, 0) + coalesce(b.breach_windows, 0) AS breach_windows,
         coalesce(o.affected_sessions, 0) + coalesce(b.affected_sessions, 0) AS affected_sessions,
@@ -522,7 +524,7 @@ FROM merged;
 CREATE OR REPLACE TEMP TABLE alert_rows AS
 SELECT
     coalesce(prior_alert_id, substr(md5(to_json({
-        'check': 'title_decode_errors', 'key': key, 'split': split_value, 'opened_at': opened_at
+        'check': 'title_decode_errors', 'key': key, 'split': split_value, 'opened_at': opened_at, 'seq': opened_seq
     })::VARCHAR), 1, 16)) AS alert_id,
     'title_decode_errors' AS check_name,
     'high' AS severity,
