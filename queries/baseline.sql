@@ -1,3 +1,4 @@
+{% import "macros.sql" as m %}
 {% set check_lit = check.name | literal %}
 {% set b = baseline %}
 -- ── stage 4 · baseline ─────────────────────────────────────────────────────────────────────
@@ -9,6 +10,14 @@
 {% else %}
 --   threshold = {% if b.floor is not none %}least({{ b.floor }}, {% endif %}{{ b.factor }} × baseline{% if b.floor is not none %}){% endif %}
 {% endif %}
+{% elif b.method == "ewma" %}
+{% set lam = b.lam %}
+-- ewma (NIST/SEMATECH e-Handbook §6.3.2.4, EWMA control chart), λ = {{ lam }}:
+--   statistic z = {{ lam }} × value + {{ 1 - lam }} × z of the series' previous window
+--   (a new series starts at {{ "the target " ~ b.target if b.target is not none else "its first value" }}; a window without a value keeps z);
+--   target = {{ b.target if b.target is not none else "mean of the series' last " ~ b.history ~ " earlier windows that did not breach" }},
+--   s = {{ b.sigma if b.sigma is not none else "their standard deviation" }};
+--   threshold = target {{ "+" if check.direction == "up" else "−" }} {{ b.sigmas }} × s × √(λ / (2 − λ)), and the window breaches on z, not on its value.
 {% endif %}
 {% if measure.split %}
 -- A split value first seen after its key's first window has the key's earlier windows as history,
@@ -51,15 +60,54 @@ FROM (
 )
 QUALIFY row_number() OVER (PARTITION BY key, split_value ORDER BY seq DESC) <= {{ b.history }};
 
+{% if b.method == "ewma" %}
+CREATE OR REPLACE TEMP TABLE smoothed AS
+WITH RECURSIVE numbered AS (
+    SELECT key, split_value, seq, value,
+           row_number() OVER (PARTITION BY key, split_value ORDER BY seq) AS step
+    FROM new_windows
+),
+start AS (
+    SELECT s.key, s.split_value, coalesce(l.statistic, {{ b.target if b.target is not none else "NULL" }})::DOUBLE AS z
+    FROM (SELECT DISTINCT key, split_value FROM new_windows) AS s
+    LEFT JOIN (
+        SELECT key, split_value, arg_max(statistic, seq) AS statistic
+        FROM windows
+        WHERE check_name = {{ check_lit }}
+        GROUP BY key, split_value
+    ) AS l ON {{ m.same_series("s", "l") }}
+),
+chain(key, split_value, step, seq, z) AS (
+    SELECT key, split_value, 0::BIGINT, NULL::BIGINT, z FROM start
+    UNION ALL
+    SELECT n.key, n.split_value, n.step, n.seq,
+           CASE WHEN n.value IS NULL THEN c.z
+                ELSE {{ b.lam }} * n.value + {{ 1 - b.lam }} * coalesce(c.z, n.value) END
+    FROM chain AS c
+    JOIN numbered AS n ON {{ m.same_series("n", "c") }} AND n.step = c.step + 1
+)
+SELECT key, split_value, seq, z AS statistic FROM chain WHERE step > 0;
+
+{% endif %}
 CREATE OR REPLACE TEMP TABLE judged AS
 SELECT
+{% if b.method == "ewma" %}
+    n.*,
+    s.statistic,
+{% else %}
     *,
+{% endif %}
     NULL::DOUBLE AS baseline,
     NULL::BIGINT AS history_windows,
     NULL::DOUBLE AS threshold,
     false AS breach,
     true AS changed
+{% if b.method == "ewma" %}
+FROM new_windows AS n
+LEFT JOIN smoothed AS s ON {{ m.same_series("n", "s") }} AND n.seq = s.seq;
+{% else %}
 FROM new_windows;
+{% endif %}
 -- @repeat (with stage 5): until no breach flag changes
 CREATE OR REPLACE TEMP TABLE verdicts AS
 WITH moving AS (
@@ -91,6 +139,9 @@ framed AS (
 {% elif b.method == "p_chart" %}
         sum(bad) FILTER (WHERE eligible) OVER earlier
             / nullif(sum(sessions) FILTER (WHERE eligible) OVER earlier, 0) AS baseline,
+{% elif b.method == "ewma" %}
+        {% if b.target is not none %}{{ b.target }}::DOUBLE{% else %}avg(value) FILTER (WHERE eligible) OVER earlier{% endif %} AS baseline,
+        {% if b.sigma is not none %}{{ b.sigma }}::DOUBLE{% else %}stddev_samp(value) FILTER (WHERE eligible) OVER earlier{% endif %} AS spread,
 {% endif %}
         count(*) FILTER (WHERE eligible) OVER earlier AS history_windows
     FROM numbered
@@ -98,6 +149,6 @@ framed AS (
         PARTITION BY key, split_value ORDER BY hb RANGE BETWEEN {{ b.history }} PRECEDING AND 1 PRECEDING
     )
 )
-SELECT key, split_value, seq, baseline, history_windows
+SELECT key, split_value, seq, baseline, {% if b.method == "ewma" %}spread, {% endif %}history_windows
 FROM framed
 WHERE is_new;

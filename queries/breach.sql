@@ -2,7 +2,7 @@
 {% set b = baseline %}
 {% set g = guard %}
 -- ── stage 5 · breach ───────────────────────────────────────────────────────────────────────
--- A window breaches when it has a threshold, its value is {{ "above" if check.direction == "up" else "below" }} it, and it passes the guard
+-- A window breaches when it has a threshold, its {{ "EWMA statistic" if b.method == "ewma" else "value" }} is {{ "above" if check.direction == "up" else "below" }} it, and it passes the guard
 -- (at least {{ g.min_sessions }} sessions{% if measure.kind == "rate" %} and {{ g.min_bad }} bad{% endif %}); every other window with a threshold is healthy.
 {% if b.confidence %}
 -- confidence {{ b.confidence }}: it also needs the {{ "lower" if check.direction == "up" else "upper" }} end of its Wilson score interval (Wilson 1927)
@@ -15,7 +15,7 @@ SELECT
     *,
     coalesce(
         threshold IS NOT NULL
-        AND value {{ ">" if check.direction == "up" else "<" }} threshold
+        AND {{ "statistic" if b.method == "ewma" else "value" }} {{ ">" if check.direction == "up" else "<" }} threshold
         AND sessions >= {{ g.min_sessions }}
 {% if measure.kind == "rate" %}
         AND bad >= {{ g.min_bad }}
@@ -31,7 +31,7 @@ SELECT
     , false) AS breach
 FROM (
     SELECT
-        j.key, j.split_value, j.seq, j.value, j.sessions, j.bad, v.baseline, v.history_windows,
+        j.key, j.split_value, j.seq, j.value, {% if b.method == "ewma" %}j.statistic, {% endif %}j.sessions, j.bad, v.baseline, v.history_windows,
         CASE WHEN v.history_windows >= {{ b.min_history }} THEN
 {% if b.method == "rolling_percentile" %}
 {% set raw = b.factor ~ " * v.baseline" %}
@@ -41,6 +41,8 @@ FROM (
 {% set spread = b.sigmas ~ " * sqrt(v.baseline * (1 - v.baseline) / j.sessions)" %}
             {% if check.direction == "up" %}v.baseline + {{ spread }}{% else %}greatest(0.0, v.baseline - {{ spread }}){% endif %}
 
+{% elif b.method == "ewma" %}
+            v.baseline {{ "+" if check.direction == "up" else "-" }} {{ b.sigmas }} * v.spread * sqrt({{ b.lam }} / (2 - {{ b.lam }}))
 {% endif %}
         END AS threshold
     FROM judged AS j

@@ -4,7 +4,8 @@
 INSERT INTO windows BY NAME
 SELECT
     {{ check_lit }} AS check_name, key, key_text, split_value, seq, key_window, window_start, window_end,
-    sessions, bad, value, baseline, history_windows, threshold, breach, $run_id AS run_id
+    sessions, bad, value, {% if baseline.method == "ewma" %}statistic, {% endif %}baseline, history_windows, threshold, breach,
+    $run_id AS run_id
 FROM judged;
 
 INSERT INTO key_windows BY NAME

@@ -100,6 +100,7 @@ CREATE TABLE IF NOT EXISTS windows (
     sessions BIGINT,
     bad BIGINT,
     value DOUBLE,
+    statistic DOUBLE,                -- what is compared with the threshold when it is not value (EWMA)
     baseline DOUBLE,
     history_windows BIGINT,
     threshold DOUBLE,

@@ -138,3 +138,61 @@ def test_a_small_noisy_window_does_not_breach_with_confidence(tmp_path: Path) ->
     bounded = run_check(tmp_path / "bounded", windows, base + "\n  confidence: 0.95")
     assert [r[6] for r in plain] == [False, False, False, True, False, False, False, True]
     assert [r[6] for r in bounded] == [False, False, False, False, False, False, False, True]
+
+
+# NIST/SEMATECH e-Handbook §6.3.2.4, EWMA control chart (transcribed): target 50, s = 2.0539,
+# λ = 0.3, k = 3; the EWMA to 2 decimals; UCL 52.5884 and LCL 47.4115 (the handbook rounds
+# √(λ/(2−λ)) to 0.4201, so limits are compared to about 1e-3).
+EWMA_DATA = [52.0, 47.0, 53.0, 49.3, 50.1, 47.0, 51.0, 50.1, 51.2, 50.5, 49.6, 47.6, 49.9, 51.3, 47.8, 51.2,
+             52.6, 52.4, 53.6, 52.1]
+EWMA_VALUES = [50.60, 49.52, 50.56, 50.18, 50.16, 49.21, 49.75, 49.85, 50.26, 50.33, 50.11, 49.36, 49.52,
+               50.05, 49.38, 49.92, 50.73, 51.23, 51.94, 51.99]
+
+
+def ewma_windows(folder: Path, direction: str, batches: int = 1) -> list[tuple]:
+    """The handbook's series as hourly windows of one session each, read in ``batches`` runs."""
+    folder.mkdir(parents=True, exist_ok=True)
+    lake = folder / "lake"
+    lake.mkdir()
+    rows = [(f"s{i}", START + timedelta(hours=i, minutes=5), "a", x) for i, x in enumerate(EWMA_DATA)]
+    rows.append(("closer", datetime(2027, 1, 1), "b", 0.0))
+    check = f"""\
+check: ew
+source: sessions
+by: [series]
+measure: {{kind: ratio, numerator: x, denominator: "1"}}
+direction: {direction}
+window: {{every: 1h}}
+baseline: {{method: ewma, lambda: 0.3, sigmas: 3, history: 30, min_history: 1, target: 50, sigma: 2.0539}}
+"""
+    project_text = (f"warehouse: w.duckdb\nsources:\n  sessions:\n    path: {lake}\n"
+                    "    session_id: session_id\n    event_time: ended_at\n")
+    size = -(-len(rows) // batches)
+    for b in range(batches):
+        con = duckdb.connect()
+        con.execute("CREATE TABLE t (session_id VARCHAR, ended_at TIMESTAMP, series VARCHAR, x DOUBLE)")
+        con.executemany("INSERT INTO t VALUES (?, ?, ?, ?)", rows[b * size:(b + 1) * size])
+        con.execute(f"COPY t TO '{lake / f'part-{b}.parquet'}' (FORMAT parquet)")
+        con.close()
+        project = load_project(write_project(folder, {"ew.yml": check}, project_text))
+        run(project)
+    return duckdb.connect(str(project.warehouse), read_only=True).execute(
+        "SELECT value, statistic, threshold, breach FROM windows WHERE key_text = 'series=a' ORDER BY seq"
+    ).fetchall()
+
+
+def test_ewma_nist_example(tmp_path: Path) -> None:
+    rows = ewma_windows(tmp_path / "up", "up")
+    assert [r[0] for r in rows] == EWMA_DATA
+    assert [round(r[1], 2) for r in rows] == pytest.approx(EWMA_VALUES, abs=0.006)
+    assert all(r[2] == pytest.approx(52.5884, abs=1e-3) for r in rows[1:])
+    assert rows[0][2] is None                       # no earlier window yet: no verdict
+    assert not any(r[3] for r in rows)              # the handbook's process is in control
+    lower = ewma_windows(tmp_path / "down", "down")
+    assert all(r[2] == pytest.approx(47.4115, abs=1e-3) for r in lower[1:])
+    assert not any(r[3] for r in lower)
+
+
+def test_ewma_carries_its_statistic_from_run_to_run(tmp_path: Path) -> None:
+    # The same series read in three runs: each run continues from the last stored statistic.
+    assert ewma_windows(tmp_path / "many", "up", batches=3) == ewma_windows(tmp_path / "one", "up")

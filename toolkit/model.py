@@ -74,6 +74,9 @@ class Baseline:
     floor: float | None = None
     sigmas: float | None = None
     confidence: float | None = None
+    lam: float | None = None  # EWMA λ (`lambda` in YAML)
+    target: float | None = None
+    sigma: float | None = None
 
 
 @dataclass(frozen=True)

@@ -425,4 +425,5 @@ def _baseline(doc: Located, raw: Any, measure: Measure | None, problems: list[Pr
         return None
     if any(values.get(k.name) is None for k in method.keys if k.required):
         return None
-    return Baseline(method=method.name, **{k: v for k, v in values.items() if v is not None})
+    renamed = {("lam" if k == "lambda" else k): v for k, v in values.items() if v is not None}
+    return Baseline(method=method.name, **renamed)

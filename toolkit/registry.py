@@ -98,6 +98,20 @@ BASELINES: dict[str, Kind] = {
             ),
             rate_only=True,
         ),
+        Kind(
+            "ewma",
+            "EWMA chart (NIST/SEMATECH e-Handbook §6.3.2.4): z = λ·value + (1−λ)·z of the previous "
+            "window; threshold = target ± sigmas × s × √(λ/(2−λ)), target and s the mean and standard "
+            "deviation of earlier windows unless given",
+            (
+                Key("lambda", "fraction", "λ, the weight of the newest window in the moving average", True),
+                Key("sigmas", "number", "how many standard deviations of the EWMA the limit lies", False, 3.0, minimum=0),
+                *_HISTORY,
+                Key("target", "number", "the series' known mean (default: mean of earlier windows)"),
+                Key("sigma", "number", "the known standard deviation of one window's value "
+                    "(default: of earlier windows)", minimum=0),
+            ),
+        ),
     )
 }
 

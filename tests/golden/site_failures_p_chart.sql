@@ -538,7 +538,8 @@ WHERE status = 'closed';
 INSERT INTO windows BY NAME
 SELECT
     'site_failures_p_chart' AS check_name, key, key_text, split_value, seq, key_window, window_start, window_end,
-    sessions, bad, value, baseline, history_windows, threshold, breach, $run_id AS run_id
+    sessions, bad, value, baseline, history_windows, threshold, breach,
+    $run_id AS run_id
 FROM judged;
 
 INSERT INTO key_windows BY NAME

@@ -583,7 +583,8 @@ WHERE status = 'closed';
 INSERT INTO windows BY NAME
 SELECT
     'title_decode_errors' AS check_name, key, key_text, split_value, seq, key_window, window_start, window_end,
-    sessions, bad, value, baseline, history_windows, threshold, breach, $run_id AS run_id
+    sessions, bad, value, baseline, history_windows, threshold, breach,
+    $run_id AS run_id
 FROM judged;
 
 INSERT INTO key_windows BY NAME
