@@ -10,6 +10,15 @@
 {% else %}
 --   threshold = {% if b.floor is not none %}least({{ b.floor }}, {% endif %}{{ b.factor }} × baseline{% if b.floor is not none %}){% endif %}
 {% endif %}
+{% elif b.method == "p_chart" %}
+-- p_chart (NIST/SEMATECH e-Handbook §6.3.3.2, proportions control chart): baseline = p̄ = Σ bad ÷
+-- Σ sessions over the series' last {{ b.history }} earlier windows that did not breach (at least {{ b.min_history }});
+-- the limit widens for small windows, n = this window's sessions:
+{% if check.direction == "up" %}
+--   threshold = p̄ + {{ b.sigmas }} × √(p̄ (1 − p̄) / n)
+{% else %}
+--   threshold = max(0, p̄ − {{ b.sigmas }} × √(p̄ (1 − p̄) / n))
+{% endif %}
 {% elif b.method == "ewma" %}
 {% set lam = b.lam %}
 -- ewma (NIST/SEMATECH e-Handbook §6.3.2.4, EWMA control chart), λ = {{ lam }}:

@@ -103,3 +103,21 @@ def test_every_yaml_key_is_documented_in_the_readme() -> None:
                                                  "min_sessions", "min_bad", "recover_after", "expire_after"]
     missing = [k for k in keys if f"`{k}`" not in readme]
     assert not missing, f"README does not document: {missing}"
+
+
+@pytest.mark.parametrize("baseline,words", [
+    ("{method: p_chart, sigmas: 3, history: 10, min_history: 3, confidence: 0.95}",
+     ["p̄ + 3.0 × √(p̄ (1 − p̄) / n)", "Wilson score interval", "z = 1.95996"]),
+    ("{method: ewma, lambda: 0.3, history: 10, min_history: 3}",
+     ["0.3 × value + 0.7 × z", "√(λ / (2 − λ))"]),
+    ("{method: rolling_percentile, q: 0.9, history: 10, min_history: 3, factor: 2, floor: 0.05}",
+     ["threshold = greatest(0.05, 2.0 × baseline)"]),
+])
+def test_compile_shows_each_methods_formula(make_project, baseline: str, words: list[str]) -> None:
+    check = (GOLDEN / "site_failures_p_chart.yml").read_text()
+    check = check[:check.index("baseline:")] + f"baseline: {baseline}\n" + check[check.index("guard:"):]
+    project = make_project({"c.yml": check})
+    result = invoke("compile", "site_failures_p_chart", "-p", str(project))
+    assert result.exit_code == 0, result.output
+    for w in words:
+        assert w in result.output, w

@@ -84,6 +84,20 @@ CHECK_CASES = [
         "  kind: rate\n  bad: error_code IS NOT NULL\n  split: error_code",
         "  kind: ratio\n  numerator: rebuffer_ms\n  denominator: play_ms"), 21, "guard.min_bad applies to rate measures"),
     ("split-in-by", variant("  split: error_code", "  split: site"), 8, "'site' is already in 'by'"),
+    ("p-chart-on-ratio", variant(
+        "  kind: rate\n  bad: error_code IS NOT NULL\n  split: error_code",
+        "  kind: ratio\n  numerator: rebuffer_ms\n  denominator: play_ms").replace(
+        "  method: rolling_percentile\n  q: 0.9\n", "  method: p_chart\n").replace(
+        "  factor: 1.5\n  floor: 0.05\n", "").replace("  min_bad: 3\n", ""), 13,
+        "baseline.method: p_chart applies to rate measures, not ratio"),
+    ("confidence-on-quantile", variant(
+        "  kind: rate\n  bad: error_code IS NOT NULL\n  split: error_code",
+        "  kind: quantile\n  of: startup_ms\n  q: 0.9").replace(
+        "  floor: 0.05\n", "  floor: 0.05\n  confidence: 0.95\n").replace("  min_bad: 3\n", ""), 19,
+        "baseline.confidence applies to rate measures"),
+    ("ewma-lambda-range", variant(
+        "  method: rolling_percentile\n  q: 0.9\n", "  method: ewma\n  lambda: 1.3\n").replace(
+        "  factor: 1.5\n  floor: 0.05\n", ""), 14, "baseline.lambda: must be between 0 and 1"),
     ("duplicate-key", variant("severity: high", "severity: high\nseverity: low"), 23, "duplicate key 'severity'"),
     ("not-a-mapping", "- just\n- a list\n", 1, "must be a mapping"),
     ("quantile-needs-number", variant(

@@ -216,6 +216,10 @@ SELECT key, key_text, NULL::VARCHAR AS split_value, seq, key_window, window_star
 FROM new_key_windows;
 
 -- ── stage 4 · baseline ─────────────────────────────────────────────────────────────────────
+-- p_chart (NIST/SEMATECH e-Handbook §6.3.3.2, proportions control chart): baseline = p̄ = Σ bad ÷
+-- Σ sessions over the series' last 10 earlier windows that did not breach (at least 3);
+-- the limit widens for small windows, n = this window's sessions:
+--   threshold = p̄ + 2.5 × √(p̄ (1 − p̄) / n)
 -- Earlier windows that did not breach can only enter a window's history in order, so the verdicts
 -- of a series are found by repeating this stage and the next until no breach flag changes; each
 -- round settles at least one more window of every series still changing, all series at once.
