@@ -196,3 +196,21 @@ def test_country_codes_that_look_like_booleans_stay_text(make_project) -> None:
     text = text.replace("by: [site, title_id]", "where: country <> 'NO'\nby: [site, title_id]")
     project = load_project(make_project({"title_errors.yml": textwrap.dedent(text)}))
     assert project.checks["title_errors"].where.sql == "\"country\" <> 'NO'"
+
+
+def test_source_columns_may_not_use_the_reserved_prefix(tmp_path: Path) -> None:
+    import duckdb
+
+    lake = tmp_path / "lake"
+    lake.mkdir()
+    duckdb.connect().execute(f"COPY (SELECT 's1' AS session_id, TIMESTAMP '2026-11-02' AS ended_at, 1 AS __file) "
+                             f"TO '{lake / 'p.parquet'}' (FORMAT parquet)")
+    project = tmp_path / "plimsoll.yml"
+    project.write_text(f"warehouse: w.duckdb\nsources:\n  sessions:\n    path: {lake}\n"
+                       "    session_id: session_id\n    event_time: ended_at\n")
+    (tmp_path / "checks").mkdir()
+    with pytest.raises(ProjectInvalid) as caught:
+        load_project(project)
+    assert [str(p) for p in caught.value.problems] == [
+        f"{project}:4: source 'sessions': column names starting with '__' are reserved for Plimsoll's own "
+        "columns: __file"]

@@ -280,6 +280,10 @@ def _load_sources(doc: Located, raw: dict[str, Any], root: Path, con: duckdb.Duc
                 section.error((*section.path, "path"), unreadable)
                 sources[name] = Source(name, location, session_id or "", event_time or "", None, {})
                 continue
+        reserved = sorted(c for c in columns if c.startswith("__"))
+        if reserved:
+            section.error((*section.path, "path"), f"source '{name}': column names starting with '__' are "
+                          f"reserved for Plimsoll's own columns: {', '.join(reserved)}")
         source = Source(name, location, session_id or "", event_time or "", None, columns)
         binder = _Binder(con, source)
         if check_schema:
