@@ -38,3 +38,21 @@ def make_project(tmp_path: Path):
         return write_project(tmp_path, checks, project, lake)
 
     return make
+
+# A project over a test's own lake: no exclude, only the session id and event time named.
+PLAIN_PROJECT = ("warehouse: w.duckdb\nsources:\n  sessions:\n    path: {lake}\n"
+                 "    session_id: session_id\n    event_time: ended_at\n")
+
+
+def write_rows(lake: Path, schema: str, rows: list[tuple], name: str = "part.parquet") -> Path:
+    """Rows of ``schema`` (a column list as in CREATE TABLE) as one Parquet file in ``lake``."""
+    import duckdb
+
+    lake.mkdir(parents=True, exist_ok=True)
+    con = duckdb.connect()
+    con.execute(f"CREATE TABLE t ({schema})")
+    if rows:
+        con.executemany(f"INSERT INTO t VALUES ({', '.join('?' * len(rows[0]))})", rows)
+    con.execute(f"COPY t TO '{lake / name}' (FORMAT parquet)")
+    con.close()
+    return lake

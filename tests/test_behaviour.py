@@ -17,7 +17,7 @@ from pathlib import Path
 
 import duckdb
 
-from conftest import write_project
+from conftest import PLAIN_PROJECT, write_project
 from toolkit.project import load_project
 from toolkit.runner import run
 
@@ -48,9 +48,7 @@ def simulate(folder: Path, step_at: int | None = None) -> Path:
             FROM range({SERIES}) a(s), range({WINDOWS + 2}) b(w), range({N}) c(i)
         ) TO '{lake / "part.parquet"}' (FORMAT parquet)
     """)
-    project_text = (f"warehouse: w.duckdb\nsources:\n  sessions:\n    path: {lake}\n"
-                    "    session_id: session_id\n    event_time: ended_at\n")
-    project = load_project(write_project(folder, {"pchart.yml": CHECK}, project_text))
+    project = load_project(write_project(folder, {"pchart.yml": CHECK}, PLAIN_PROJECT.format(lake=lake)))
     run(project)
     return project.warehouse
 

@@ -7,7 +7,7 @@ from pathlib import Path
 
 import duckdb
 
-from conftest import write_project
+from conftest import PLAIN_PROJECT, write_project, write_rows
 from toolkit.project import load_project
 from toolkit.runner import run
 
@@ -28,16 +28,9 @@ def test_two_alerts_opened_at_the_same_data_time_get_different_ids(tmp_path: Pat
     # again within the same second, so two alerts open at the same opened_at.
     start = datetime(2026, 11, 2)
     rows = [("a", 0, 1000), ("b", 1, 1000), ("c", 3, 9000), ("d", 3, 1000), ("e", 3, 9000)]
-    lake = tmp_path / "lake"
-    lake.mkdir()
-    con = duckdb.connect()
-    con.execute("CREATE TABLE t (session_id VARCHAR, ended_at TIMESTAMP, startup_ms INTEGER)")
-    con.executemany("INSERT INTO t VALUES (?, ?, ?)",
-                    [(sid, start + timedelta(minutes=m), ms) for sid, m, ms in rows])
-    con.execute(f"COPY t TO '{lake / 'part.parquet'}' (FORMAT parquet)")
-    project_text = (f"warehouse: w.duckdb\nsources:\n  sessions:\n    path: {lake}\n"
-                    "    session_id: session_id\n    event_time: ended_at\n")
-    project = load_project(write_project(tmp_path, {"ties.yml": CHECK}, project_text))
+    lake = write_rows(tmp_path / "lake", "session_id VARCHAR, ended_at TIMESTAMP, startup_ms INTEGER",
+                      [(sid, start + timedelta(minutes=m), ms) for sid, m, ms in rows])
+    project = load_project(write_project(tmp_path, {"ties.yml": CHECK}, PLAIN_PROJECT.format(lake=lake)))
     run(project)
     con = duckdb.connect(str(project.warehouse), read_only=True)
     alerts = con.execute("SELECT alert_id, opened_at, status FROM alerts ORDER BY status").fetchall()

@@ -9,19 +9,19 @@ single published source.
 
 from __future__ import annotations
 
-from datetime import datetime, timedelta
+from datetime import timedelta
 from pathlib import Path
 
 import duckdb
 import numpy as np
 import pytest
 
-from conftest import write_project
+from conftest import PLAIN_PROJECT, write_project
 from toolkit.project import load_project
 from toolkit.runner import run
 from toolkit.warehouse_demo.generate import build_lake
 
-PROJECT = "warehouse: w.duckdb\nsources:\n  sessions:\n    path: {lake}\n    session_id: session_id\n    event_time: ended_at\n"
+PROJECT = PLAIN_PROJECT
 
 
 def one_hour_check(name: str, measure: str, where: str = "") -> str:

@@ -13,7 +13,7 @@ from pathlib import Path
 import duckdb
 import pytest
 
-from conftest import write_project
+from conftest import PLAIN_PROJECT, write_project, write_rows
 from toolkit.project import load_project
 from toolkit.runner import run
 
@@ -45,22 +45,13 @@ def lake_with_values(folder: Path, hours: list[list[float]]) -> Path:
             rows.append((f"s{h}-{i}", start + timedelta(hours=h, seconds=i + 1), "a", x))
     # one more session two hours later closes every window above
     rows.append(("closer", start + timedelta(hours=len(hours) + 2), "b", 0.0))
-    lake = folder / "lake"
-    lake.mkdir()
-    con = duckdb.connect()
-    con.execute("CREATE TABLE t (session_id VARCHAR, ended_at TIMESTAMP, series VARCHAR, x DOUBLE)")
-    con.executemany("INSERT INTO t VALUES (?, ?, ?, ?)", rows)
-    con.execute(f"COPY t TO '{lake / 'part.parquet'}' (FORMAT parquet)")
-    return lake
+    return write_rows(folder / "lake", "session_id VARCHAR, ended_at TIMESTAMP, series VARCHAR, x DOUBLE", rows)
 
 
 def windows_of(folder: Path, hours: list[list[float]], q: float) -> list[tuple]:
     lake = lake_with_values(folder, hours)
-    project_text = (
-        f"warehouse: w.duckdb\nsources:\n  sessions:\n    path: {lake}\n"
-        "    session_id: session_id\n    event_time: ended_at\n"
-    )
-    project = load_project(write_project(folder, {"q.yml": QUANTILE_CHECK.format(q=q)}, project_text))
+    project = load_project(write_project(folder, {"q.yml": QUANTILE_CHECK.format(q=q)},
+                                         PLAIN_PROJECT.format(lake=lake)))
     run(project)
     con = duckdb.connect(str(project.warehouse), read_only=True)
     return con.execute(

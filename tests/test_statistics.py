@@ -17,7 +17,7 @@ from pathlib import Path
 import duckdb
 import pytest
 
-from conftest import write_project
+from conftest import PLAIN_PROJECT, write_project, write_rows
 from toolkit.project import load_project
 from toolkit.runner import run
 
@@ -37,13 +37,8 @@ def write_lake(folder: Path, windows: list[tuple[str, int, int]], hours_apart: i
             at = START + timedelta(hours=h, seconds=i + 1)
             rows.append((f"{series}-{h}-{i}", at, series, "E" if i < bad else None))
     rows.append(("closer", START + timedelta(days=60), "closer", None))
-    lake = folder / "lake"
-    lake.mkdir()
-    con = duckdb.connect()
-    con.execute("CREATE TABLE t (session_id VARCHAR, ended_at TIMESTAMP, series VARCHAR, error_code VARCHAR)")
-    con.executemany("INSERT INTO t VALUES (?, ?, ?, ?)", rows)
-    con.execute(f"COPY t TO '{lake / 'part.parquet'}' (FORMAT parquet)")
-    return lake
+    return write_rows(folder / "lake", "session_id VARCHAR, ended_at TIMESTAMP, series VARCHAR, error_code VARCHAR",
+                      rows)
 
 
 def run_check(folder: Path, windows: list[tuple[str, int, int]], baseline: str, extra: str = "") -> list[tuple]:
@@ -62,9 +57,7 @@ baseline:
 {baseline}
 {extra}
 """
-    project_text = (f"warehouse: w.duckdb\nsources:\n  sessions:\n    path: {lake}\n"
-                    "    session_id: session_id\n    event_time: ended_at\n")
-    project = load_project(write_project(folder, {"pc.yml": check}, project_text))
+    project = load_project(write_project(folder, {"pc.yml": check}, PLAIN_PROJECT.format(lake=lake)))
     run(project)
     con = duckdb.connect(str(project.warehouse), read_only=True)
     return con.execute("SELECT key_text, sessions, bad, value, baseline, threshold, breach FROM windows "
@@ -153,7 +146,6 @@ def ewma_windows(folder: Path, direction: str, batches: int = 1) -> list[tuple]:
     """The handbook's series as hourly windows of one session each, read in ``batches`` runs."""
     folder.mkdir(parents=True, exist_ok=True)
     lake = folder / "lake"
-    lake.mkdir()
     rows = [(f"s{i}", START + timedelta(hours=i, minutes=5), "a", x) for i, x in enumerate(EWMA_DATA)]
     rows.append(("closer", datetime(2027, 1, 1), "b", 0.0))
     check = f"""\
@@ -165,16 +157,11 @@ direction: {direction}
 window: {{every: 1h}}
 baseline: {{method: ewma, lambda: 0.3, sigmas: 3, history: 30, min_history: 1, target: 50, sigma: 2.0539}}
 """
-    project_text = (f"warehouse: w.duckdb\nsources:\n  sessions:\n    path: {lake}\n"
-                    "    session_id: session_id\n    event_time: ended_at\n")
     size = -(-len(rows) // batches)
     for b in range(batches):
-        con = duckdb.connect()
-        con.execute("CREATE TABLE t (session_id VARCHAR, ended_at TIMESTAMP, series VARCHAR, x DOUBLE)")
-        con.executemany("INSERT INTO t VALUES (?, ?, ?, ?)", rows[b * size:(b + 1) * size])
-        con.execute(f"COPY t TO '{lake / f'part-{b}.parquet'}' (FORMAT parquet)")
-        con.close()
-        project = load_project(write_project(folder, {"ew.yml": check}, project_text))
+        write_rows(lake, "session_id VARCHAR, ended_at TIMESTAMP, series VARCHAR, x DOUBLE",
+                   rows[b * size:(b + 1) * size], f"part-{b}.parquet")
+        project = load_project(write_project(folder, {"ew.yml": check}, PLAIN_PROJECT.format(lake=lake)))
         run(project)
     return duckdb.connect(str(project.warehouse), read_only=True).execute(
         "SELECT value, statistic, threshold, breach FROM windows WHERE key_text = 'series=a' ORDER BY seq"

@@ -17,7 +17,7 @@ import click
 from . import __version__
 from .compiler import compile_check
 from .outputs import alerts_json, alerts_table, list_alerts
-from .problems import PlimsollError, ProjectInvalid
+from .problems import PlimsollError
 from .project import load_project
 from .runner import run as run_checks
 from .runner import select_checks

@@ -10,7 +10,6 @@ import glob as globlib
 import os
 from dataclasses import dataclass
 from datetime import datetime, timezone
-from pathlib import Path
 
 import duckdb
 

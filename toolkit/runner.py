@@ -17,7 +17,7 @@ import duckdb
 from . import lake, warehouse
 from .compiler import CompiledCheck, Statement, compile_check, compile_source
 from .model import Check, Project
-from .problems import DataError, PlimsollError
+from .problems import DataError, PlimsollError, Problem, ProjectInvalid
 
 Progress = Callable[[str], None]
 
@@ -58,8 +58,6 @@ def select_checks(project: Project, names: list[str] | tuple[str, ...] | None) -
         return list(project.checks.values())
     unknown = [n for n in names if n not in project.checks]
     if unknown:
-        from .problems import Problem, ProjectInvalid
-
         raise ProjectInvalid([Problem(str(project.file.name), 0, f"no check named '{n}'") for n in unknown])
     return [project.checks[n] for n in names]
 
