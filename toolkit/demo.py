@@ -7,6 +7,7 @@ so running it again rebuilds rather than mixing two lakes.
 from __future__ import annotations
 
 import shutil
+import sys
 import time
 from dataclasses import dataclass, field
 from datetime import timedelta
@@ -153,6 +154,14 @@ def overlapping(alert: dict[str, Any], labels: list[Label]) -> Label | None:
                  and alert["breach_started_at"] < lab.end and alert["last_breach_at"] > lab.start), None)
 
 
+def _command(name: str) -> str:
+    """The command as this installation has it, so the hint works outside an activated venv."""
+    here = Path(sys.executable).parent
+    if name == "python":
+        return sys.executable
+    return str(here / name) if (here / name).exists() else name
+
+
 def summary(outcome: DemoOutcome) -> str:
     """What a new user reads after `plimsoll demo`: each alert, and the score against the labels."""
     o = outcome
@@ -185,9 +194,12 @@ def summary(outcome: DemoOutcome) -> str:
         f"Decoys alerted: {len(o.decoys_hit)}; other alerts during a labelled incident: {len(o.related)}; "
         f"alerts matching no label: {len(o.unlabelled)}",
         "",
-        "Query the warehouse straight away, for example:",
-        f"  duckdb {o.workdir / 'warehouse.duckdb'} \"SELECT check_name, key_text, opened_at, "
-        "affected_sessions FROM alerts ORDER BY opened_at\"",
+        "List the alerts, or query the warehouse straight away (any DuckDB client; the file is",
+        f"{o.workdir / 'warehouse.duckdb'}):",
+        f"  {_command('plimsoll')} alerts -p {o.workdir / 'plimsoll.yml'}",
+        f"  {_command('python')} -c \"import duckdb; print(duckdb.connect('"
+        f"{o.workdir / 'warehouse.duckdb'}', read_only=True).sql('SELECT check_name, key_text, opened_at, "
+        "affected_sessions FROM alerts ORDER BY opened_at'))\"",
     ]
     return "\n".join(lines)
 

@@ -102,7 +102,7 @@ def _run(con: duckdb.DuckDBPyConnection, project: Project, checks: list[Check],
                 result.checks.append(_run_check(con, check, sql, files, run_id))
                 done = result.checks[-1]
                 progress(f"check {check.name}: {done.files_read} files, {done.windows_written} windows, "
-                         f"{done.alerts_opened} alerts opened, {done.alerts_closed} closed")
+                         f"alerts opened {done.alerts_opened}, closed {done.alerts_closed}")
         _record(con, run_id, started, [c.name for c in checks], full_refresh, "ok", None)
         result.distinct_files = int(con.execute(
             "SELECT count(DISTINCT path) FROM files_read WHERE run_id = $r", {"r": run_id}).fetchone()[0])
