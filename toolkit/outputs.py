@@ -62,7 +62,7 @@ def alerts_table(alerts: list[dict[str, Any]]) -> str:
         (
             a["status"] if a["status"] == "open" else f"closed ({a['close_reason']})",
             a["severity"], a["check_name"], a["key_text"] or "(all)", a["split_value"] or "",
-            a["opened_at"].strftime("%Y-%m-%d %H:%M"), str(a["breach_windows"]), str(a["affected_sessions"]),
+            a["opened_at"].strftime("%Y-%m-%d %H:%M"), str(a["breach_windows"]), f"{a['affected_sessions']:,}",
             f"{a['affected_per_hour']:,.0f}",
         )
         for a in alerts
