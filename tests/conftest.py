@@ -56,3 +56,36 @@ def write_rows(lake: Path, schema: str, rows: list[tuple], name: str = "part.par
     con.execute(f"COPY t TO '{lake / name}' (FORMAT parquet)")
     con.close()
     return lake
+
+
+WALL_CLOCK = {"runs": ("started_at", "finished_at")}
+
+
+def _normal(value):
+    """Floats to 12 significant digits (parallel sums may differ in the last bit), maps as items."""
+    if isinstance(value, float):
+        return float(f"{value:.12g}")
+    if isinstance(value, dict):
+        return tuple(sorted((k, _normal(v)) for k, v in value.items()))
+    if isinstance(value, (list, tuple)):
+        return tuple(_normal(v) for v in value)
+    return value
+
+
+def warehouse_contents(warehouse_file: Path, skip: tuple[str, ...] = ()) -> dict[str, list[tuple]]:
+    """Every warehouse table's rows, sorted, without wall-clock columns: for comparing states."""
+    import duckdb
+
+    from toolkit import warehouse
+
+    con = duckdb.connect(str(warehouse_file), read_only=True)
+    try:
+        out = {}
+        for table in (t for t in warehouse.TABLES if t not in skip):
+            names = [r[0] for r in con.execute(f"DESCRIBE {table}").fetchall()]
+            keep = [n for n in names if n not in WALL_CLOCK.get(table, ())]
+            rows = con.execute(f"SELECT {', '.join(keep)} FROM {table}").fetchall()
+            out[table] = sorted((_normal(r) for r in rows), key=repr)
+        return out
+    finally:
+        con.close()

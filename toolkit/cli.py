@@ -85,13 +85,17 @@ def compile(check: str, project_file: Path) -> None:
 @project_option
 @click.option("--check", "checks", multiple=True, help="Run only this check (repeatable).")
 @click.option("--full-refresh", is_flag=True, help="Forget these checks' state and read the whole lake again.")
+@click.option("--wait", default=0.0, show_default=True, type=click.FloatRange(min=0),
+              help="Seconds to wait for another run to release the warehouse.")
 @reports_errors
-def run(project_file: Path, checks: tuple[str, ...], full_refresh: bool) -> None:
+def run(project_file: Path, checks: tuple[str, ...], full_refresh: bool, wait: float) -> None:
     """One incremental run over the files not yet read."""
     project = load_project(project_file)
-    result = run_checks(project, list(checks), full_refresh, _progress(sys.stderr.isatty()))
+    result = run_checks(project, list(checks), full_refresh, _progress(sys.stderr.isatty()), wait=wait)
     if sys.stderr.isatty():
         click.echo("", err=True)
+    for change in result.changed_files:
+        click.echo(f"warning: lake file changed after it was read; not read again: {change}", err=True)
     click.echo(
         f"run {result.run_id}: {result.files_read} new files, "
         f"{sum(c.windows_written for c in result.checks)} windows, "

@@ -95,11 +95,17 @@ def hive_columns(path: str) -> set[str]:
     return {part.split("=", 1)[0] for part in path.replace("\\", "/").split("/")[:-1] if "=" in part}
 
 
-def file_columns(con: duckdb.DuckDBPyConnection, paths: list[str]) -> dict[str, dict[str, str]]:
+def file_columns(paths: list[str]) -> dict[str, dict[str, str]]:
     """Each file's top-level columns and DuckDB types, read from the Parquet footers only.
 
-    A file that is not readable Parquet (truncated, corrupt, not Parquet at all) is named.
+    A file that is not readable Parquet (truncated, corrupt, not Parquet at all) is named. Read on
+    a connection of its own, so a failure never aborts the run's transaction.
     """
+    with duckdb.connect() as con:
+        return _file_columns(con, paths)
+
+
+def _file_columns(con: duckdb.DuckDBPyConnection, paths: list[str]) -> dict[str, dict[str, str]]:
     try:
         rows = con.execute(
             "SELECT file_name, name, duckdb_type FROM parquet_schema($files) "
@@ -130,7 +136,7 @@ def check_new_files(con: duckdb.DuckDBPyConnection, source_name: str, paths: lis
         "SELECT column_name, column_type, first_path FROM source_columns WHERE source_name = $s",
         {"s": source_name}).fetchall()}
     who = ", ".join(readers)
-    for path, columns in sorted(file_columns(con, paths).items()):
+    for path, columns in sorted(file_columns(paths).items()):
         partitions = hive_columns(path)
         for name in needed:
             if name in partitions:

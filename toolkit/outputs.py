@@ -22,8 +22,11 @@ ALERT_COLUMNS = ("alert_id", "status", "severity", "check_name", "key_text", "sp
 
 def list_alerts(project: Project, status: str = "all", checks: tuple[str, ...] = (),
                 since: datetime | None = None) -> list[dict[str, Any]]:
-    """Alerts, open ones first, newest first; filtered by status, check names and opening time."""
-    con = warehouse.connect(project, read_only=True)
+    """Alerts, open ones first, newest first; filtered by status, check names and opening time.
+
+    While a run holds the warehouse, this reads the copy the last run published.
+    """
+    con = warehouse.open_for_reading(project)
     try:
         return alerts_from(con, status, checks, since)
     finally:

@@ -271,7 +271,7 @@ def _load_sources(doc: Located, raw: dict[str, Any], root: Path, con: duckdb.Duc
                 unreadable = f"source '{name}': no Parquet files at '{where}'"
             else:
                 try:
-                    columns = lake.read_schema(con, files)
+                    columns = _readable_schema(con, files)
                 except duckdb.Error as err:
                     first = str(err).strip().splitlines()[0]
                     unreadable = f"source '{name}': cannot read Parquet schema: {first}"
@@ -294,6 +294,27 @@ def _load_sources(doc: Located, raw: dict[str, Any], root: Path, con: duckdb.Duc
         excl = binder.expr(section, exclude, "exclude", "boolean")
         sources[name] = Source(name, location, session_id or "", event_time or "", excl, columns)
     return sources
+
+
+def _readable_schema(con: duckdb.DuckDBPyConnection, files: list[str]) -> dict[str, str]:
+    """The columns of the source's files; files that cannot be read are left to the run to name.
+
+    A broken file in the lake is a data problem of the run that would read it (exit 1, the file
+    named), not a reason to call the project invalid.
+    """
+    try:
+        return lake.read_schema(con, files)
+    except duckdb.Error:
+        readable = []
+        for path in files:
+            try:
+                lake.read_schema(con, [path])
+                readable.append(path)
+            except duckdb.Error:
+                continue
+        if not readable:
+            raise
+        return lake.read_schema(con, readable)
 
 
 def _load_checks(folder: Path, sources: dict[str, Source], con: duckdb.DuckDBPyConnection,

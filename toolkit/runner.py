@@ -200,7 +200,7 @@ def _close_alerts(con: duckdb.DuckDBPyConnection, name: str, run_id: int, reason
 
     ``closed_at`` is the check's watermark, the last data time it saw.
     """
-    params = {"c": name, "r": run_id, "why": reason, "keep": keep_definition}
+    params = {"c": name, "r": run_id, "keep": keep_definition}
     chosen = ("check_name = $c AND status = 'open' "
               "AND ($keep IS NULL OR definition_hash IS DISTINCT FROM $keep)")
     closed_at = ("coalesce((SELECT max(watermark) FROM check_state WHERE check_name = $c), last_breach_at)")
@@ -208,7 +208,8 @@ def _close_alerts(con: duckdb.DuckDBPyConnection, name: str, run_id: int, reason
                 "'closed' AS event, NULL::DOUBLE AS value, NULL::DOUBLE AS threshold, affected_sessions "
                 f"FROM alerts WHERE {chosen}", params)
     count = con.execute(f"UPDATE alerts SET status = 'closed', close_reason = $why, closed_at = {closed_at}, "
-                        f"last_run_id = $r, healthy_streak = NULL WHERE {chosen}", params).fetchone()[0]
+                        f"last_run_id = $r, healthy_streak = NULL WHERE {chosen}",
+                        params | {"why": reason}).fetchone()[0]
     con.execute("INSERT INTO run_retired VALUES ($c, $n)", {"c": name, "n": count})
     return int(count)
 
