@@ -114,6 +114,22 @@ def alerts(project_file: Path, status: str, checks: tuple[str, ...], since: date
 
 
 @main.command()
+@project_option
+@click.option("--out", "out", required=True, type=click.Path(dir_okay=False, path_type=Path),
+              help="The HTML file to write.")
+@click.option("--check", "checks", multiple=True, help="Only alerts of this check (repeatable).")
+@click.option("--since", type=click.DateTime(), default=None, help="Only alerts opened at or after this data time.")
+@reports_errors
+def report(project_file: Path, out: Path, checks: tuple[str, ...], since: datetime | None) -> None:
+    """Write a static HTML page: each alert's series against its threshold, open alerts first."""
+    from .report import write_report
+
+    project = load_project(project_file, check_schema=False)
+    done = write_report(project, out, checks, since)
+    click.echo(f"{done.path}: {done.alerts} alerts ({done.open_alerts} open), {done.bytes / 1024:,.0f} KiB")
+
+
+@main.command()
 @click.option("--workdir", default="plimsoll-demo", show_default=True,
               type=click.Path(file_okay=False, path_type=Path), help="Where to build the demo.")
 @click.option("--sessions", default=2_000_000, show_default=True, type=click.IntRange(min=10_000))
