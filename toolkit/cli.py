@@ -130,6 +130,27 @@ def report(project_file: Path, out: Path, checks: tuple[str, ...], since: dateti
 
 
 @main.command()
+@project_option
+@click.option("--wait", "wait_text", default="0s", show_default=True, metavar="DURATION",
+              help="Keep retrying failed deliveries that come due within this long, e.g. 2m.")
+@click.option("--retry-abandoned", is_flag=True, help="Queue abandoned deliveries again, from attempt 1.")
+@reports_errors
+def notify(project_file: Path, wait_text: str, retry_abandoned: bool) -> None:
+    """POST new alert events to the project's webhooks; exit 1 while some delivery fails."""
+    from .outbox import describe, notify as deliver
+    from .project import parse_duration
+
+    try:
+        wait = parse_duration(wait_text)
+    except ValueError as err:
+        raise click.BadParameter(str(err), param_hint="--wait") from None
+    project = load_project(project_file, check_schema=False)
+    result = deliver(project, wait=wait, retry_abandoned=retry_abandoned)
+    click.echo(describe(project, result))
+    sys.exit(result.exit_code)
+
+
+@main.command()
 @click.option("--workdir", default="plimsoll-demo", show_default=True,
               type=click.Path(file_okay=False, path_type=Path), help="Where to build the demo.")
 @click.option("--sessions", default=2_000_000, show_default=True, type=click.IntRange(min=10_000))
