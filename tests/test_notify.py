@@ -144,6 +144,13 @@ def built(tmp_path: Path, extra: str):
     return project
 
 
+def more_hostile_windows(folder: Path) -> None:
+    """Three more windows of the hostile title: 9 bad (17 affected: +112 %), 3 bad (20: +18 %), then 0."""
+    rows = [(f"late-{w}-{i}", START + timedelta(minutes=60 + w * 10 + i, seconds=1), "kids", HOSTILE,
+             "E42" if i < bad else None) for w, bad in enumerate([9, 3, 0]) for i in range(10)]
+    write_rows(folder / "lake", SCHEMA, rows, name="part-2.parquet")
+
+
 def test_retries_until_delivered_once_each_with_a_stable_key(tmp_path: Path, hook: Hook) -> None:
     hook.script = ["500", "500", "reset", "hang"]
     project = built(tmp_path, webhooks(hook.url))
@@ -195,10 +202,7 @@ def test_only_new_events_are_queued_and_small_updates_wait_for_growth(tmp_path: 
     project = built(tmp_path, webhooks(hook.url))
     notify(project, clock=PretendClock())
     assert len(hook.accepted) == 4
-    # three more windows of the hostile title: 9 bad (17 affected: +112 %), 3 bad (20: +18 %), then 0
-    rows = [(f"late-{w}-{i}", START + timedelta(minutes=60 + w * 10 + i, seconds=1), "kids", HOSTILE,
-             "E42" if i < bad else None) for w, bad in enumerate([9, 3, 0]) for i in range(10)]
-    write_rows(tmp_path / "lake", SCHEMA, rows, name="part-2.parquet")
+    more_hostile_windows(tmp_path)
     run(project)
     result = notify(project, clock=PretendClock())
     assert (result.queued, result.skipped) == (2, 1)
@@ -211,9 +215,7 @@ def test_only_new_events_are_queued_and_small_updates_wait_for_growth(tmp_path: 
 
 def test_growth_zero_sends_every_update(tmp_path: Path, hook: Hook) -> None:
     project = built(tmp_path, webhooks(hook.url, growth=0))
-    rows = [(f"late-{w}-{i}", START + timedelta(minutes=60 + w * 10 + i, seconds=1), "kids", HOSTILE,
-             "E42" if i < bad else None) for w, bad in enumerate([9, 3, 0]) for i in range(10)]
-    write_rows(tmp_path / "lake", SCHEMA, rows, name="part-2.parquet")
+    more_hostile_windows(tmp_path)
     run(project)
     result = notify(project, clock=PretendClock())
     assert (result.queued, result.skipped) == (7, 0)  # the first run's 4 events and all 3 new ones
@@ -329,3 +331,11 @@ def test_one_notify_at_a_time(tmp_path: Path) -> None:
     with _single_notifier(project):
         with pytest.raises(PlimsollError, match="another `plimsoll notify` is delivering"):
             notify(project)
+
+
+def test_without_webhooks_there_is_nothing_to_send(tmp_path: Path) -> None:
+    project = built(tmp_path, "")
+    result = CliRunner().invoke(main, ["notify", "-p", str(project.file)])
+    assert result.exit_code == 0, result.output
+    assert result.output == "notify: no webhooks in the project file; nothing to send\n"
+    assert outbox(project) == []
