@@ -156,7 +156,7 @@ def test_retries_until_delivered_once_each_with_a_stable_key(tmp_path: Path, hoo
     project = built(tmp_path, webhooks(hook.url))
     clock = PretendClock()
     started = time.monotonic()
-    result = notify(project, clock=clock, wait=timedelta(hours=1))
+    result = notify(project, clock=clock, retry_for=timedelta(hours=1))
     assert time.monotonic() - started < 30  # one 1 s timeout and local POSTs, not the pretend waits
     # the first event failed four times (two 500s, a reset, a timeout), backing off 1, 2, 4 and 4 s
     assert [r.behaviour for r in hook.received] == ["500", "500", "reset", "hang", "ok", "ok", "ok", "ok"]
@@ -225,7 +225,7 @@ def test_attempts_are_bounded_then_abandoned_and_reported(tmp_path: Path, hook: 
     hook.script = ["500"] * 50
     project = built(tmp_path, webhooks(hook.url, max_attempts=3))
     clock = PretendClock()
-    result = notify(project, clock=clock, wait=timedelta(minutes=5))
+    result = notify(project, clock=clock, retry_for=timedelta(minutes=5))
     # each event gets exactly three attempts (waits 1 s, 2 s between them), then is abandoned
     assert len(hook.received) == 12 and len({r.key for r in hook.received}) == 4
     assert all(s == "abandoned" and a == 3 for _, _, s, a, _, _ in outbox(project))
@@ -241,7 +241,7 @@ def test_attempts_are_bounded_then_abandoned_and_reported(tmp_path: Path, hook: 
 def test_permanent_refusals_are_not_retried_and_redirects_not_followed(tmp_path: Path, hook: Hook) -> None:
     hook.script = ["404", "302"]
     project = built(tmp_path, webhooks(hook.url))
-    result = notify(project, clock=PretendClock(), wait=timedelta(minutes=5))
+    result = notify(project, clock=PretendClock(), retry_for=timedelta(minutes=5))
     assert [a.error for a in result.attempts[:2]] == [
         "HTTP 404 Not Found", "HTTP 302 Found to http://127.0.0.1:1/elsewhere"]
     assert [a.status for a in result.attempts] == ["abandoned", "abandoned", "delivered", "delivered"]
@@ -318,7 +318,7 @@ def test_notify_names_the_run_holding_the_warehouse(tmp_path: Path) -> None:
         assert holder.stdout.readline().strip() == "ready"
         result = CliRunner().invoke(main, ["notify", "-p", str(project.file)])
         assert result.exit_code == 1
-        assert "the warehouse is in use by another process" in result.output
+        assert "in use by another process" in result.output
         assert f"PID {holder.pid}" in result.output
     finally:
         holder.kill()

@@ -176,3 +176,25 @@ def test_a_long_series_is_thinned_and_keeps_its_spikes(tmp_path: Path) -> None:
     html = out.read_text()
     assert f"thinned: {s.shown:,} of 2,648 windows drawn" in html
     assert len(html.encode()) < 120_000
+
+
+def test_report_and_alerts_read_the_published_copies_while_a_run_holds_the_warehouse(
+        project: Path, tmp_path: Path) -> None:
+    import subprocess
+    import sys
+
+    holder = subprocess.Popen([sys.executable, "-c", "import duckdb, sys, time; c = duckdb.connect(sys.argv[1]); "
+                               "print('ready', flush=True); time.sleep(60)", str(tmp_path / "w.duckdb")],
+                              stdout=subprocess.PIPE, text=True)
+    try:
+        assert holder.stdout.readline().strip() == "ready"
+        out = tmp_path / "while-running.html"
+        result = invoke("report", "--out", str(out), "-p", str(project))
+        assert result.exit_code == 0, result.output
+        assert parse(out.read_text()).charts == 2
+        listed = invoke("alerts", "--status", "open", "-p", str(project))
+        assert listed.exit_code == 0 and HOSTILE in listed.output
+    finally:
+        holder.kill()
+        holder.wait()
+        holder.stdout.close()

@@ -131,21 +131,21 @@ def report(project_file: Path, out: Path, checks: tuple[str, ...], since: dateti
 
 @main.command()
 @project_option
-@click.option("--wait", "wait_text", default="0s", show_default=True, metavar="DURATION",
-              help="Keep retrying failed deliveries that come due within this long, e.g. 2m.")
+@click.option("--retry-for", "retry_text", default="0s", show_default=True, metavar="DURATION",
+              help="Keep retrying failed deliveries that come due within this long, e.g. 5m.")
 @click.option("--retry-abandoned", is_flag=True, help="Queue abandoned deliveries again, from attempt 1.")
 @reports_errors
-def notify(project_file: Path, wait_text: str, retry_abandoned: bool) -> None:
+def notify(project_file: Path, retry_text: str, retry_abandoned: bool) -> None:
     """POST new alert events to the project's webhooks; exit 1 while some delivery fails."""
     from .outbox import describe, notify as deliver
     from .project import parse_duration
 
     try:
-        wait = parse_duration(wait_text)
+        retry_for = parse_duration(retry_text)
     except ValueError as err:
-        raise click.BadParameter(str(err), param_hint="--wait") from None
+        raise click.BadParameter(str(err), param_hint="--retry-for") from None
     project = load_project(project_file, check_schema=False)
-    result = deliver(project, wait=wait, retry_abandoned=retry_abandoned)
+    result = deliver(project, retry_for=retry_for, retry_abandoned=retry_abandoned)
     click.echo(describe(project, result))
     sys.exit(result.exit_code)
 

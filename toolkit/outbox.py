@@ -34,6 +34,9 @@ from .outputs import printable
 from .problems import PlimsollError
 
 
+RECORD_WAIT = 30.0  # seconds to wait for a run to release the warehouse before giving up on recording a POST
+
+
 class Clock:
     """Wall-clock time in naive UTC, and sleeping; tests pass one that only pretends."""
 
@@ -88,16 +91,16 @@ class NotifyResult:
         return 1 if self.failing or self.abandoned_now else 0
 
 
-def notify(project: Project, clock: Clock | None = None, wait: timedelta = timedelta(0),
+def notify(project: Project, clock: Clock | None = None, retry_for: timedelta = timedelta(0),
            retry_abandoned: bool = False) -> NotifyResult:
-    """Queue new alert events, then deliver due rows; keep retrying for up to ``wait``."""
+    """Queue new alert events, then deliver due rows; keep retrying those due within ``retry_for``."""
     clock = clock or Clock()
     result = NotifyResult()
     with _single_notifier(project):
         with _warehouse(project) as con:
             _queue(con, project, clock.now(), retry_abandoned, result)
         hooks = {h.name: h for h in project.webhooks}
-        deadline = clock.now() + wait
+        deadline = clock.now() + retry_for
         # an endpoint that failed is left alone until its failed row is due again, so a dead
         # endpoint costs one attempt per pass, not one per queued event
         resting: dict[str, datetime] = {}
@@ -188,7 +191,7 @@ def _deliver(project: Project, hook: Webhook, row: tuple, clock: Clock) -> Attem
         if retry_after is not None:
             wait = min(settings.max_backoff, max(wait, retry_after))
         status, next_at = "pending", now + wait
-    with _warehouse(project) as con:
+    with _warehouse(project, wait=RECORD_WAIT) as con:
         con.execute(
             """
             UPDATE outbox
@@ -251,9 +254,9 @@ def _count(con: duckdb.DuckDBPyConnection, result: NotifyResult) -> None:
 
 
 @contextmanager
-def _warehouse(project: Project) -> Iterator[duckdb.DuckDBPyConnection]:
+def _warehouse(project: Project, wait: float = 0.0) -> Iterator[duckdb.DuckDBPyConnection]:
     """A short write connection: notify never holds the warehouse while it waits on the network."""
-    con = warehouse.connect(project)
+    con = warehouse.connect(project, wait=wait)
     try:
         yield con
     finally:

@@ -22,7 +22,7 @@ ALERT_COLUMNS = ("alert_id", "status", "severity", "check_name", "key", "key_tex
 def list_alerts(project: Project, status: str = "all", checks: tuple[str, ...] = (),
                 since: datetime | None = None) -> list[dict[str, Any]]:
     """Alerts, open ones first, newest first; filtered by status, check names and opening time."""
-    con = warehouse.connect(project, read_only=True)
+    con = warehouse.open_for_reading(project)  # the published copies while a run holds the file
     try:
         return alerts_from(con, status, checks, since)
     finally:

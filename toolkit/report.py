@@ -60,7 +60,7 @@ class ReportResult:
 def write_report(project: Project, out: Path, checks: tuple[str, ...] = (),
                  since: datetime | None = None) -> ReportResult:
     """Render the report of the alerts matching ``checks`` and ``since`` into ``out``."""
-    con = warehouse.connect(project, read_only=True)
+    con = warehouse.open_for_reading(project)  # the published copies while a run holds the file
     try:
         alerts = alerts_from(con, "all", checks, since)
         series = series_for(con, [a["alert_id"] for a in alerts])
