@@ -339,3 +339,24 @@ def test_without_webhooks_there_is_nothing_to_send(tmp_path: Path) -> None:
     assert result.exit_code == 0, result.output
     assert result.output == "notify: no webhooks in the project file; nothing to send\n"
     assert outbox(project) == []
+
+
+def test_a_success_not_yet_recorded_is_sent_again_with_the_same_key(tmp_path: Path, hook: Hook,
+                                                                     monkeypatch: pytest.MonkeyPatch) -> None:
+    import toolkit.outbox as outbox_module
+
+    project = built(tmp_path, webhooks(hook.url))
+    recorded = outbox_module._record
+
+    def die_before_commit(*args: object, **kwargs: object) -> None:
+        raise KeyboardInterrupt  # the process is killed between the POST's success and its commit
+
+    monkeypatch.setattr(outbox_module, "_record", die_before_commit)
+    with pytest.raises(KeyboardInterrupt):
+        notify(project, clock=PretendClock())
+    monkeypatch.setattr(outbox_module, "_record", recorded)
+    result = notify(project, clock=PretendClock())
+    assert len(result.delivered) == 4 and len(hook.received) == 5
+    first, resent = hook.received[0], hook.received[1]
+    assert (first.key, first.body) == (resent.key, resent.body)  # at least once, with the same key and bytes
+    assert len({r.key for r in hook.received[1:]}) == 4

@@ -31,7 +31,7 @@ from . import __version__, warehouse
 from .compiler import template_folder
 from .model import Project, Webhook
 from .outputs import printable
-from .problems import PlimsollError
+from .problems import PlimsollError, RunLocked
 
 
 RECORD_WAIT = 30.0  # seconds to wait for a run to release the warehouse before giving up on recording a POST
@@ -191,6 +191,18 @@ def _deliver(project: Project, hook: Webhook, row: tuple, clock: Clock) -> Attem
         if retry_after is not None:
             wait = min(settings.max_backoff, max(wait, retry_after))
         status, next_at = "pending", now + wait
+    try:
+        _record(project, key, status, attempts, error, now, next_at, hook.url)
+    except RunLocked as err:
+        outcome = "was delivered" if ok else "failed"
+        raise RunLocked(f"{name}: {event} of alert {alert_id} {outcome} but could not be recorded: {err}; "
+                        "the next `plimsoll notify` sends it again with the same Idempotency-Key") from None
+    return Attempt(name, event, alert_id, key_text, ok, status, attempts, error, next_at)
+
+
+def _record(project: Project, key: str, status: str, attempts: int, error: str | None, now: datetime,
+            next_at: datetime | None, url: str) -> None:
+    """One committed statement per POST, so a recorded success is never sent again."""
     with _warehouse(project, wait=RECORD_WAIT) as con:
         con.execute(
             """
@@ -201,9 +213,8 @@ def _deliver(project: Project, hook: Webhook, row: tuple, clock: Clock) -> Attem
             WHERE idempotency_key = $key AND status = 'pending'
             """,
             {"status": status, "attempts": attempts, "error": error, "now": now, "next": next_at,
-             "key": key, "url": hook.url},
+             "key": key, "url": url},
         )
-    return Attempt(name, event, alert_id, key_text, ok, status, attempts, error, next_at)
 
 
 class _NoRedirects(urllib.request.HTTPRedirectHandler):

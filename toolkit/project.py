@@ -262,7 +262,7 @@ def load_project(path: Path | str = "plimsoll.yml", check_schema: bool = True) -
     con.close()
     webhooks = _webhooks(doc, top.get("webhooks") or [], problems)
     notify_s = _Section(doc, ("notify",), top.get("notify") or {}, NOTIFY_KEYS, problems)
-    notify = Notify(*(notify_s.get(k.name) for k in NOTIFY_KEYS))
+    notify = Notify(**{k.name: notify_s.get(k.name) for k in NOTIFY_KEYS})
     if notify.max_backoff is not None and notify.backoff is not None and notify.max_backoff < notify.backoff:
         notify_s.error(("notify", "max_backoff"), "notify.max_backoff cannot be shorter than notify.backoff")
     if problems:
