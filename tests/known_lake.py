@@ -7,6 +7,10 @@ hostile on purpose: every output must show it as text.
 
 from __future__ import annotations
 
+import subprocess
+import sys
+from collections.abc import Iterator
+from contextlib import contextmanager
 from datetime import datetime, timedelta
 from pathlib import Path
 
@@ -51,3 +55,18 @@ def known_project(folder: Path, extra_project: str = "", checks: dict[str, str] 
     """The project file over the known lake in ``folder`` (``extra_project`` appended to plimsoll.yml)."""
     lake = write_rows(folder / "lake", SCHEMA, session_rows())
     return write_project(folder, checks or {"title_errors.yml": CHECK}, PLAIN_PROJECT.format(lake=lake) + extra_project)
+
+
+@contextmanager
+def warehouse_held(path: Path) -> Iterator[subprocess.Popen]:
+    """Another process holding the DuckDB file open for writing, as a run does, until the block ends."""
+    holder = subprocess.Popen([sys.executable, "-c", "import duckdb, sys, time; c = duckdb.connect(sys.argv[1]); "
+                               "print('ready', flush=True); time.sleep(60)", str(path)],
+                              stdout=subprocess.PIPE, text=True)
+    try:
+        assert holder.stdout.readline().strip() == "ready"
+        yield holder
+    finally:
+        holder.kill()
+        holder.wait()
+        holder.stdout.close()

@@ -25,7 +25,7 @@ import pytest
 from click.testing import CliRunner
 
 from conftest import write_rows
-from known_lake import HOSTILE, SCHEMA, START, known_project
+from known_lake import HOSTILE, SCHEMA, START, known_project, warehouse_held
 from toolkit.cli import main
 from toolkit.outbox import Clock, _single_notifier, notify
 from toolkit.problems import PlimsollError
@@ -311,19 +311,11 @@ def test_a_dead_endpoint_never_blocks_or_fails_a_run(tmp_path: Path, hook: Hook)
 
 def test_notify_names_the_run_holding_the_warehouse(tmp_path: Path) -> None:
     project = built(tmp_path, webhooks("http://127.0.0.1:9/x"))
-    holder = subprocess.Popen([sys.executable, "-c", "import duckdb, sys, time; c = duckdb.connect(sys.argv[1]); "
-                               "print('ready', flush=True); time.sleep(60)", str(project.warehouse)],
-                              stdout=subprocess.PIPE, text=True)
-    try:
-        assert holder.stdout.readline().strip() == "ready"
+    with warehouse_held(project.warehouse) as holder:
         result = CliRunner().invoke(main, ["notify", "-p", str(project.file)])
         assert result.exit_code == 1
         assert "in use by another process" in result.output
         assert f"PID {holder.pid}" in result.output
-    finally:
-        holder.kill()
-        holder.wait()
-        holder.stdout.close()
 
 
 def test_one_notify_at_a_time(tmp_path: Path) -> None:

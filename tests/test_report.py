@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from datetime import datetime, timedelta
+from datetime import timedelta
 from html.parser import HTMLParser
 from pathlib import Path
 
@@ -12,7 +12,7 @@ from click.testing import CliRunner
 
 from browser import open_page
 from conftest import PLAIN_PROJECT, write_project, write_rows
-from known_lake import CHECK, HOSTILE, START, known_project
+from known_lake import CHECK, HOSTILE, START, known_project, warehouse_held
 from toolkit.cli import main
 from toolkit.project import load_project
 from toolkit.report import MAX_POINTS, series_for
@@ -180,21 +180,10 @@ def test_a_long_series_is_thinned_and_keeps_its_spikes(tmp_path: Path) -> None:
 
 def test_report_and_alerts_read_the_published_copies_while_a_run_holds_the_warehouse(
         project: Path, tmp_path: Path) -> None:
-    import subprocess
-    import sys
-
-    holder = subprocess.Popen([sys.executable, "-c", "import duckdb, sys, time; c = duckdb.connect(sys.argv[1]); "
-                               "print('ready', flush=True); time.sleep(60)", str(tmp_path / "w.duckdb")],
-                              stdout=subprocess.PIPE, text=True)
-    try:
-        assert holder.stdout.readline().strip() == "ready"
+    with warehouse_held(tmp_path / "w.duckdb"):
         out = tmp_path / "while-running.html"
         result = invoke("report", "--out", str(out), "-p", str(project))
         assert result.exit_code == 0, result.output
         assert parse(out.read_text()).charts == 2
         listed = invoke("alerts", "--status", "open", "-p", str(project))
         assert listed.exit_code == 0 and HOSTILE in listed.output
-    finally:
-        holder.kill()
-        holder.wait()
-        holder.stdout.close()

@@ -15,7 +15,6 @@ from __future__ import annotations
 import fcntl
 import http.client
 import os
-import socket
 import time
 import urllib.error
 import urllib.request
@@ -242,14 +241,14 @@ def post(hook: Webhook, body: bytes, key: str) -> tuple[bool, bool, str | None, 
         return False, retry, f"HTTP {err.code} {err.reason}{where}", _retry_after(err.headers.get("Retry-After"))
     except urllib.error.URLError as err:
         return False, True, f"cannot reach {hook.url}: {_reason(err.reason)}", None
-    except (TimeoutError, socket.timeout):
+    except TimeoutError:
         return False, True, f"no answer within {hook.timeout.total_seconds():g} s", None
     except (OSError, http.client.HTTPException) as err:
         return False, True, f"connection failed: {_reason(err)}", None
 
 
 def _reason(err: object) -> str:
-    if isinstance(err, (TimeoutError, socket.timeout)):
+    if isinstance(err, TimeoutError):
         return "timed out"
     return str(err) or type(err).__name__
 
