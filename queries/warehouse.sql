@@ -167,3 +167,23 @@ CREATE TABLE IF NOT EXISTS alert_events (
     threshold DOUBLE,
     affected_sessions BIGINT
 );
+
+CREATE TABLE IF NOT EXISTS outbox (  -- one row per alert event and webhook: what `plimsoll notify` sends
+    idempotency_key VARCHAR PRIMARY KEY,  -- also the Idempotency-Key header: same on every attempt
+    webhook VARCHAR,                 -- the webhook's name (its url when it has none)
+    url VARCHAR,                     -- its url when the row was queued; delivery uses the current one
+    alert_id VARCHAR,
+    run_id BIGINT,
+    event VARCHAR,                   -- 'opened' | 'updated' | 'closed'
+    occurred_at TIMESTAMP,           -- data time of the event
+    affected_sessions BIGINT,
+    payload VARCHAR,                 -- the JSON body, fixed when queued so every attempt sends the same bytes
+    status VARCHAR,                  -- 'pending' | 'delivered' | 'abandoned' | 'skipped' (an update below notify.growth)
+    attempts INTEGER,                -- failed and successful POSTs made
+    last_error VARCHAR,
+    seq BIGINT,                      -- queue order
+    enqueued_at TIMESTAMP,           -- wall clock (UTC), like the times below: delivery is not data time
+    last_attempt_at TIMESTAMP,
+    next_attempt_at TIMESTAMP,
+    delivered_at TIMESTAMP
+);

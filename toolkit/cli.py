@@ -118,6 +118,43 @@ def alerts(project_file: Path, status: str, checks: tuple[str, ...], since: date
 
 
 @main.command()
+@project_option
+@click.option("--out", "out", required=True, type=click.Path(dir_okay=False, path_type=Path),
+              help="The HTML file to write.")
+@click.option("--check", "checks", multiple=True, help="Only alerts of this check (repeatable).")
+@click.option("--since", type=click.DateTime(), default=None, help="Only alerts opened at or after this data time.")
+@reports_errors
+def report(project_file: Path, out: Path, checks: tuple[str, ...], since: datetime | None) -> None:
+    """Write a static HTML page: each alert's series against its threshold, open alerts first."""
+    from .report import write_report
+
+    project = load_project(project_file, check_schema=False)
+    done = write_report(project, out, checks, since)
+    click.echo(f"{done.path}: {done.alerts} alerts ({done.open_alerts} open), {done.bytes / 1024:,.0f} KiB")
+
+
+@main.command()
+@project_option
+@click.option("--retry-for", "retry_text", default="0s", show_default=True, metavar="DURATION",
+              help="Keep retrying failed deliveries that come due within this long, e.g. 5m.")
+@click.option("--retry-abandoned", is_flag=True, help="Queue abandoned deliveries again, from attempt 1.")
+@reports_errors
+def notify(project_file: Path, retry_text: str, retry_abandoned: bool) -> None:
+    """POST new alert events to the project's webhooks; exit 1 while some delivery fails."""
+    from .outbox import describe, notify as deliver
+    from .project import parse_duration
+
+    try:
+        retry_for = parse_duration(retry_text)
+    except ValueError as err:
+        raise click.BadParameter(str(err), param_hint="--retry-for") from None
+    project = load_project(project_file, check_schema=False)
+    result = deliver(project, retry_for=retry_for, retry_abandoned=retry_abandoned)
+    click.echo(describe(project, result))
+    sys.exit(result.exit_code)
+
+
+@main.command()
 @click.option("--workdir", default="plimsoll-demo", show_default=True,
               type=click.Path(file_okay=False, path_type=Path), help="Where to build the demo.")
 @click.option("--sessions", default=2_000_000, show_default=True, type=click.IntRange(min=10_000))

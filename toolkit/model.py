@@ -116,6 +116,25 @@ class Check:
 
 
 @dataclass(frozen=True)
+class Webhook:
+    """An endpoint that ``plimsoll notify`` POSTs alert events to; ``name`` is its identity."""
+
+    name: str
+    url: str
+    timeout: timedelta = timedelta(seconds=10)
+
+
+@dataclass(frozen=True)
+class Notify:
+    """Which alert events ``plimsoll notify`` sends, and how it retries."""
+
+    growth: float = 0.5                        # an 'updated' event goes out once affected_sessions grew this much
+    max_attempts: int = 8                      # failed attempts before a delivery is abandoned
+    backoff: timedelta = timedelta(seconds=30)   # wait after the first failure; doubled after each one
+    max_backoff: timedelta = timedelta(hours=1)  # the longest wait between two attempts
+
+
+@dataclass(frozen=True)
 class Project:
     """A loaded ``plimsoll.yml`` with its sources and checks."""
 
@@ -127,3 +146,5 @@ class Project:
     checks: dict[str, Check]
     memory_limit: str | None = None
     threads: int | None = None
+    webhooks: tuple[Webhook, ...] = ()
+    notify: Notify = field(default_factory=Notify)

@@ -14,10 +14,9 @@ import duckdb
 from . import warehouse
 from .model import Project
 
-ALERT_COLUMNS = ("alert_id", "status", "severity", "check_name", "key_text", "split_value", "opened_at",
-                 "breach_started_at", "last_breach_at", "closed_at", "close_reason", "breach_windows", "affected_sessions",
-                 "affected_per_hour",
-                 "peak_value", "threshold", "fingerprint")
+ALERT_COLUMNS = ("alert_id", "status", "severity", "check_name", "key", "key_text", "split_value", "opened_at",
+                 "breach_started_at", "last_breach_at", "closed_at", "close_reason", "breach_windows",
+                 "affected_sessions", "affected_per_hour", "peak_value", "threshold", "fingerprint")
 
 
 def list_alerts(project: Project, status: str = "all", checks: tuple[str, ...] = (),
@@ -50,6 +49,8 @@ def alerts_from(con: duckdb.DuckDBPyConnection, status: str = "all", checks: tup
 
 
 def alerts_json(alerts: list[dict[str, Any]]) -> str:
+    """A JSON list for scripts: the key as an object, data times as ``YYYY-MM-DD HH:MM:SS``."""
+
     def encode(value: Any) -> Any:
         return value.isoformat(sep=" ") if isinstance(value, datetime) else value
 
@@ -57,14 +58,14 @@ def alerts_json(alerts: list[dict[str, Any]]) -> str:
 
 
 def alerts_table(alerts: list[dict[str, Any]]) -> str:
-    """A fixed-width table for a terminal."""
+    """A fixed-width table for a terminal; text from the data cannot move the cursor or add lines."""
     if not alerts:
         return "no alerts"
     head = ("status", "severity", "check", "key", "split", "opened", "windows", "affected", "per hour")
     body = [
         (
             a["status"] if a["status"] == "open" else f"closed ({a['close_reason']})",
-            a["severity"], a["check_name"], a["key_text"] or "(all)", a["split_value"] or "",
+            a["severity"], a["check_name"], printable(a["key_text"] or "(all)"), printable(a["split_value"] or ""),
             a["opened_at"].strftime("%Y-%m-%d %H:%M"), str(a["breach_windows"]), f"{a['affected_sessions']:,}",
             f"{a['affected_per_hour']:,.0f}",
         )
@@ -74,3 +75,9 @@ def alerts_table(alerts: list[dict[str, Any]]) -> str:
     lines = ["  ".join(str(c).ljust(w) for c, w in zip(row, widths)).rstrip() for row in (head, *body)]
     lines.insert(1, "  ".join("-" * w for w in widths))
     return "\n".join(lines)
+
+
+def printable(text: str) -> str:
+    """``text`` with control characters (newlines, terminal escapes) written as ``\\x..`` escapes."""
+    return "".join(ch if ch.isprintable() else f"\\x{ord(ch):02x}" if ord(ch) < 256 else f"\\u{ord(ch):04x}"
+                   for ch in text)

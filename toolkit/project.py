@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import difflib
 import re
+import urllib.parse
 from datetime import timedelta
 from pathlib import Path
 from typing import Any
@@ -17,7 +18,7 @@ import duckdb
 
 from . import lake
 from .expressions import ExpressionError, parse_expression, unknown_column
-from .model import Baseline, Check, Expr, Guard, Lifecycle, Measure, Project, Source, Window
+from .model import Baseline, Check, Expr, Guard, Lifecycle, Measure, Notify, Project, Source, Webhook, Window
 from .problems import Problem, ProjectInvalid, display_path
 from .registry import BASELINES, DIRECTIONS, MEASURES, SEVERITIES, Key
 from .yamlsource import KeyPath, Located, dotted, load
@@ -28,6 +29,20 @@ PROJECT_KEYS = (
     Key("sources", "mapping", "named session tables in the lake", True),
     Key("memory_limit", "text", "DuckDB memory limit for runs, e.g. 2GB"),
     Key("threads", "int", "DuckDB threads for runs (default: all cores)", minimum=1),
+    Key("webhooks", "list", "endpoints that `plimsoll notify` POSTs alert events to"),
+    Key("notify", "mapping", "which alert events `plimsoll notify` sends and how it retries"),
+)
+WEBHOOK_KEYS = (
+    Key("url", "text", "http:// or https:// URL that receives a JSON POST per alert event", True),
+    Key("name", "text", "the webhook's identity in the outbox and in idempotency keys (default: the url)"),
+    Key("timeout", "duration", "how long one POST may take", False, "10s"),
+)
+NOTIFY_KEYS = (
+    Key("growth", "number", "send an 'updated' event once affected_sessions grew by this share over the last "
+        "one sent for the alert (0: every update)", False, 0.5, minimum=0),
+    Key("max_attempts", "int", "failed attempts before a delivery is abandoned", False, 8, minimum=1),
+    Key("backoff", "duration", "wait after the first failed attempt; doubled after each further one", False, "30s"),
+    Key("max_backoff", "duration", "the longest wait between two attempts", False, "1h"),
 )
 SOURCE_KEYS = (
     Key("path", "text", "folder, glob or file of Parquet; hive partitions are read", True),
@@ -171,6 +186,10 @@ def _typed(key: Key, value: Any) -> Any:
         if not isinstance(value, dict):
             raise ValueError(f"expected a mapping of keys, got {_kind(value)}")
         return value
+    if t == "list":
+        if not isinstance(value, list):
+            raise ValueError(f"expected a list, got {_kind(value)}")
+        return value
     raise AssertionError(f"unknown key type {t}")
 
 
@@ -241,12 +260,44 @@ def load_project(path: Path | str = "plimsoll.yml", check_schema: bool = True) -
     elif folder.is_dir():
         checks = _load_checks(folder, sources, con, problems)
     con.close()
+    webhooks = _webhooks(doc, top.get("webhooks") or [], problems)
+    notify_s = _Section(doc, ("notify",), top.get("notify") or {}, NOTIFY_KEYS, problems)
+    notify = Notify(**{k.name: notify_s.get(k.name) for k in NOTIFY_KEYS})
+    if notify.max_backoff is not None and notify.backoff is not None and notify.max_backoff < notify.backoff:
+        notify_s.error(("notify", "max_backoff"), "notify.max_backoff cannot be shorter than notify.backoff")
     if problems:
         raise ProjectInvalid(problems)
     return Project(
         file=file.resolve(), root=root, warehouse=(root / warehouse).resolve(), checks_dir=folder,
         sources=sources, checks=checks, memory_limit=memory_limit, threads=threads,
+        webhooks=webhooks, notify=notify,
     )
+
+
+def _webhooks(doc: Located, raw: list[Any], problems: list[Problem]) -> tuple[Webhook, ...]:
+    """Each webhook: an http(s) URL, a unique name (default: the URL), a timeout above zero."""
+    found: list[Webhook] = []
+    names: dict[str, int] = {}
+    for index, body in enumerate(raw):
+        section = _Section(doc, ("webhooks", index), body, WEBHOOK_KEYS, problems)
+        url, name, timeout = section.get("url"), section.get("name"), section.get("timeout")
+        if url is not None:
+            parts = urllib.parse.urlsplit(url)
+            if parts.scheme not in ("http", "https") or not parts.hostname:
+                section.error((*section.path, "url"),
+                              f"webhooks.{index}.url: '{url}' is not an http:// or https:// URL with a host")
+                url = None
+        if timeout is not None and timeout.total_seconds() <= 0:
+            section.error((*section.path, "timeout"), f"webhooks.{index}.timeout must be longer than 0s")
+        name = name or url
+        if name is not None and name in names:
+            section.error((*section.path, "name" if "name" in section.raw else "url"),
+                          f"webhooks.{index}: the name '{name}' is already used by webhooks.{names[name]}")
+        elif name is not None:
+            names[name] = index
+        if url is not None and name is not None and timeout is not None:
+            found.append(Webhook(name, url, timeout))
+    return tuple(found)
 
 
 def _load_sources(doc: Located, raw: dict[str, Any], root: Path, con: duckdb.DuckDBPyConnection,

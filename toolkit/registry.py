@@ -15,7 +15,7 @@ class Key:
     """One YAML key: its type, whether it is required, its default, and what it means."""
 
     name: str
-    type: str  # text | name | int | number | fraction | bool | duration | expr | column | columns | choice
+    type: str  # text | name | int | number | fraction | bool | duration | expr | column | columns | choice | mapping | list
     doc: str
     required: bool = False
     default: Any = None

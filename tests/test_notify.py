@@ -1,0 +1,354 @@
+"""`plimsoll notify` against a real HTTP server on 127.0.0.1 that fails, resets and hangs on cue.
+
+The warehouse comes from running the known lake's check over real Parquet; the server is
+http.server in a thread on an ephemeral port; retries run on a pretend clock (no sleeping), while
+every POST, timeout and connection reset is real.
+"""
+
+from __future__ import annotations
+
+import json
+import socket
+import struct
+import subprocess
+import sys
+import threading
+import time
+from collections.abc import Iterator
+from dataclasses import dataclass, field
+from datetime import datetime, timedelta
+from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
+from pathlib import Path
+
+import duckdb
+import pytest
+from click.testing import CliRunner
+
+from conftest import write_rows
+from known_lake import HOSTILE, SCHEMA, START, known_project, warehouse_held
+from toolkit.cli import main
+from toolkit.outbox import Clock, _single_notifier, notify
+from toolkit.problems import PlimsollError
+from toolkit.project import load_project
+from toolkit.runner import run
+
+PAYLOAD_KEYS = {"idempotency_key", "event", "occurred_at", "check", "severity", "alert_id", "fingerprint", "key",
+                "key_text", "split_value", "opened_at", "closed_at", "close_reason", "value", "threshold",
+                "affected_sessions", "breach_windows", "run_id", "sender"}
+
+
+@dataclass
+class Received:
+    behaviour: str
+    key: str | None
+    headers: dict[str, str]
+    body: bytes
+
+
+@dataclass
+class Hook:
+    """A scripted endpoint: each request takes the next behaviour ('500', 'reset', 'hang', '404', '302'), then 'ok'."""
+
+    script: list[str] = field(default_factory=list)
+    received: list[Received] = field(default_factory=list)
+    release: threading.Event = field(default_factory=threading.Event)
+    arrived: threading.Event = field(default_factory=threading.Event)
+    url: str = ""
+
+    @property
+    def accepted(self) -> list[Received]:
+        return [r for r in self.received if r.behaviour == "ok"]
+
+
+def _handler(hook: Hook) -> type[BaseHTTPRequestHandler]:
+    lock = threading.Lock()
+
+    class Handler(BaseHTTPRequestHandler):
+        def log_message(self, *args: object) -> None:
+            pass
+
+        def do_POST(self) -> None:
+            body = self.rfile.read(int(self.headers.get("Content-Length", 0)))
+            with lock:
+                behaviour = hook.script.pop(0) if hook.script else "ok"
+                hook.received.append(Received(behaviour, self.headers.get("Idempotency-Key"),
+                                              dict(self.headers.items()), body))
+            hook.arrived.set()
+            if behaviour == "reset":
+                self.connection.setsockopt(socket.SOL_SOCKET, socket.SO_LINGER, struct.pack("ii", 1, 0))
+                self.connection.close()
+                self.close_connection = True
+                return
+            if behaviour == "hang":
+                hook.release.wait(10)
+                self.close_connection = True
+                return
+            code = {"ok": 200, "500": 500, "404": 404, "302": 302}[behaviour]
+            self.send_response(code)
+            if code == 302:
+                self.send_header("Location", "http://127.0.0.1:1/elsewhere")
+            self.send_header("Content-Length", "0")
+            self.end_headers()
+
+    return Handler
+
+
+@pytest.fixture
+def hook(monkeypatch: pytest.MonkeyPatch) -> Iterator[Hook]:
+    monkeypatch.setenv("no_proxy", "127.0.0.1")
+    found = Hook()
+    server = ThreadingHTTPServer(("127.0.0.1", 0), _handler(found))
+    server.daemon_threads = True
+    found.url = f"http://127.0.0.1:{server.server_address[1]}/plimsoll"
+    thread = threading.Thread(target=server.serve_forever, daemon=True)
+    thread.start()
+    yield found
+    found.release.set()
+    server.shutdown()
+    server.server_close()
+
+
+class PretendClock(Clock):
+    """Starts at the real time; sleeping only moves it forward."""
+
+    def __init__(self) -> None:
+        self.start = self.current = Clock().now()
+        self.slept: list[float] = []
+
+    def now(self) -> datetime:
+        return self.current
+
+    def sleep(self, seconds: float) -> None:
+        self.slept.append(seconds)
+        self.current += timedelta(seconds=seconds)
+
+
+def webhooks(*urls: str, timeout: str = "1s", growth: float = 0.5, max_attempts: int = 6) -> str:
+    hooks = "".join(f"  - name: hook{i}\n    url: {u}\n    timeout: {timeout}\n" for i, u in enumerate(urls))
+    return (f"webhooks:\n{hooks}notify:\n  growth: {growth}\n  max_attempts: {max_attempts}\n"
+            "  backoff: 1s\n  max_backoff: 4s\n")
+
+
+def outbox(project) -> list[tuple]:
+    con = duckdb.connect(str(project.warehouse), read_only=True)
+    try:
+        return con.execute("SELECT webhook, event, status, attempts, idempotency_key, payload FROM outbox "
+                           "ORDER BY seq").fetchall()
+    finally:
+        con.close()
+
+
+def built(tmp_path: Path, extra: str):
+    project = load_project(known_project(tmp_path, extra))
+    run(project)
+    return project
+
+
+def more_hostile_windows(folder: Path) -> None:
+    """Three more windows of the hostile title: 9 bad (17 affected: +112 %), 3 bad (20: +18 %), then 0."""
+    rows = [(f"late-{w}-{i}", START + timedelta(minutes=60 + w * 10 + i, seconds=1), "kids", HOSTILE,
+             "E42" if i < bad else None) for w, bad in enumerate([9, 3, 0]) for i in range(10)]
+    write_rows(folder / "lake", SCHEMA, rows, name="part-2.parquet")
+
+
+def test_retries_until_delivered_once_each_with_a_stable_key(tmp_path: Path, hook: Hook) -> None:
+    hook.script = ["500", "500", "reset", "hang"]
+    project = built(tmp_path, webhooks(hook.url))
+    clock = PretendClock()
+    started = time.monotonic()
+    result = notify(project, clock=clock, retry_for=timedelta(hours=1))
+    assert time.monotonic() - started < 30  # one 1 s timeout and local POSTs, not the pretend waits
+    # the first event failed four times (two 500s, a reset, a timeout), backing off 1, 2, 4 and 4 s
+    assert [r.behaviour for r in hook.received] == ["500", "500", "reset", "hang", "ok", "ok", "ok", "ok"]
+    assert clock.slept == [1.0, 2.0, 4.0, 4.0]
+    assert len({r.key for r in hook.received[:5]}) == 1
+    assert len({r.body for r in hook.received[:5]}) == 1  # every attempt sends the same bytes
+    accepted = [r.key for r in hook.accepted]
+    rows = outbox(project)
+    assert sorted(accepted) == sorted(k for *_, k, _ in rows) and len(set(accepted)) == 4
+    assert [(e, s, a) for _, e, s, a, _, _ in rows] == [
+        ("opened", "delivered", 5), ("updated", "delivered", 1), ("opened", "delivered", 1), ("closed", "delivered", 1)]
+    assert result.exit_code == 0 and len(result.delivered) == 4 and len(result.failed) == 4
+    # a second notify sends nothing more
+    again = notify(project, clock=clock)
+    assert again.queued == 0 and again.attempts == [] and again.exit_code == 0
+    assert len(hook.received) == 8
+
+
+def test_the_payload_carries_keys_and_counts_only(tmp_path: Path, hook: Hook) -> None:
+    project = built(tmp_path, webhooks(hook.url))
+    notify(project, clock=PretendClock())
+    assert len(hook.received) == 4
+    for r in hook.received:
+        body = json.loads(r.body)
+        assert set(body) == PAYLOAD_KEYS
+        assert r.headers["Content-Type"] == "application/json"
+        assert r.headers["Idempotency-Key"] == body["idempotency_key"]
+        assert r.headers["User-Agent"].startswith("plimsoll/")
+        assert b"s-0-" not in r.body and b"s-1-" not in r.body  # no session id anywhere
+    opened = json.loads(hook.received[0].body)
+    assert {k: opened[k] for k in ("event", "occurred_at", "check", "key", "value", "threshold",
+                                   "affected_sessions", "breach_windows", "closed_at")} == {
+        "event": "opened", "occurred_at": "2026-11-02T00:49:00Z", "check": "title_errors",
+        "key": {"site": "kids", "title_id": "t-1"}, "value": 0.6, "threshold": 0.1, "affected_sessions": 6,
+        "breach_windows": 1, "closed_at": None}
+    closed = json.loads(hook.received[3].body)
+    assert (closed["event"], closed["close_reason"], closed["closed_at"], closed["affected_sessions"],
+            closed["breach_windows"]) == ("closed", "recovered", "2026-11-02T01:09:00Z", 13, 2)
+    assert json.loads(hook.received[2].body)["key"]["title_id"] == HOSTILE
+
+
+def test_only_new_events_are_queued_and_small_updates_wait_for_growth(tmp_path: Path, hook: Hook) -> None:
+    project = built(tmp_path, webhooks(hook.url))
+    notify(project, clock=PretendClock())
+    assert len(hook.accepted) == 4
+    more_hostile_windows(tmp_path)
+    run(project)
+    result = notify(project, clock=PretendClock())
+    assert (result.queued, result.skipped) == (2, 1)
+    sent = [json.loads(r.body) for r in hook.accepted[4:]]
+    assert [(b["event"], b["affected_sessions"]) for b in sent] == [("updated", 17), ("closed", 20)]
+    statuses = [(e, s) for _, e, s, *_ in outbox(project)]
+    assert statuses[4:] == [("updated", "delivered"), ("updated", "skipped"), ("closed", "delivered")]
+    assert notify(project, clock=PretendClock()).queued == 0 and len(hook.received) == 6
+
+
+def test_growth_zero_sends_every_update(tmp_path: Path, hook: Hook) -> None:
+    project = built(tmp_path, webhooks(hook.url, growth=0))
+    more_hostile_windows(tmp_path)
+    run(project)
+    result = notify(project, clock=PretendClock())
+    assert (result.queued, result.skipped) == (7, 0)  # the first run's 4 events and all 3 new ones
+
+
+def test_attempts_are_bounded_then_abandoned_and_reported(tmp_path: Path, hook: Hook) -> None:
+    hook.script = ["500"] * 50
+    project = built(tmp_path, webhooks(hook.url, max_attempts=3))
+    clock = PretendClock()
+    result = notify(project, clock=clock, retry_for=timedelta(minutes=5))
+    # each event gets exactly three attempts (waits 1 s, 2 s between them), then is abandoned
+    assert len(hook.received) == 12 and len({r.key for r in hook.received}) == 4
+    assert all(s == "abandoned" and a == 3 for _, _, s, a, _, _ in outbox(project))
+    assert result.exit_code == 1 and result.abandoned_now == 4
+    assert clock.current - clock.start == timedelta(seconds=3 * 4)
+    later = notify(project, clock=clock)
+    assert later.attempts == [] and later.exit_code == 0 and later.abandoned_total == 4
+    hook.script = []
+    again = notify(project, clock=clock, retry_abandoned=True)
+    assert again.retried_abandoned == 4 and len(again.delivered) == 4 and again.exit_code == 0
+
+
+def test_permanent_refusals_are_not_retried_and_redirects_not_followed(tmp_path: Path, hook: Hook) -> None:
+    hook.script = ["404", "302"]
+    project = built(tmp_path, webhooks(hook.url))
+    result = notify(project, clock=PretendClock(), retry_for=timedelta(minutes=5))
+    assert [a.error for a in result.attempts[:2]] == [
+        "HTTP 404 Not Found", "HTTP 302 Found to http://127.0.0.1:1/elsewhere"]
+    assert [a.status for a in result.attempts] == ["abandoned", "abandoned", "delivered", "delivered"]
+    assert len(hook.received) == 4  # nothing reached the redirect target or was sent twice
+
+
+def test_cli_reports_and_exits_1_while_a_delivery_fails(tmp_path: Path, hook: Hook) -> None:
+    hook.script = ["500"]
+    project = built(tmp_path, webhooks(hook.url))
+    result = CliRunner().invoke(main, ["notify", "-p", str(project.file)])
+    assert result.exit_code == 1, result.output
+    lines = result.output.splitlines()
+    assert lines[0] == "notify: queued 4 events for 1 webhook"
+    assert lines[1].startswith("  failed     hook0: opened site=kids, title_id=t-1 [")
+    assert "HTTP 500 Internal Server Error; attempt 2 of 6 at " in lines[1]
+    assert lines[-1] == "notify: 0 delivered, 1 failed, 4 pending, 0 abandoned now"
+    time.sleep(1.1)  # the 1 s backoff, in real time for the command line
+    result = CliRunner().invoke(main, ["notify", "-p", str(project.file)])
+    assert result.exit_code == 0, result.output
+    assert result.output.splitlines()[-1] == "notify: 4 delivered, 0 failed, 0 pending, 0 abandoned now"
+
+
+def test_a_removed_webhook_gives_up_its_rows(tmp_path: Path, hook: Hook) -> None:
+    project = built(tmp_path, webhooks("http://127.0.0.1:9/closed"))
+    notify(project, clock=PretendClock())
+    text = project.file.read_text().replace("http://127.0.0.1:9/closed", hook.url).replace("hook0", "renamed")
+    project.file.write_text(text)
+    moved = load_project(project.file)
+    result = notify(moved, clock=PretendClock())
+    assert result.orphaned == 4 and len(result.delivered) == 4 and result.exit_code == 1
+    assert [(w, s) for w, _, s, *_ in outbox(moved)].count(("hook0", "abandoned")) == 4
+
+
+def test_a_dead_endpoint_never_blocks_or_fails_a_run(tmp_path: Path, hook: Hook) -> None:
+    silent = socket.socket()
+    silent.bind(("127.0.0.1", 0))
+    silent.listen(16)  # accepts connections at the TCP level, never answers
+    try:
+        project_file = known_project(tmp_path, webhooks(f"http://127.0.0.1:{silent.getsockname()[1]}/x",
+                                                        "http://127.0.0.1:9/refused", hook.url, timeout="3s"))
+        first = CliRunner().invoke(main, ["run", "-p", str(project_file)])
+        assert first.exit_code == 0, first.output
+        silent.settimeout(0)
+        with pytest.raises(BlockingIOError):
+            silent.accept()  # the run never tried to reach any webhook
+        assert hook.received == []
+        # while notify waits on a hanging endpoint, a run in another process gets the warehouse
+        hook.script = ["hang"]
+        project = load_project(project_file)
+        done: list = []
+        worker = threading.Thread(target=lambda: done.append(notify(project)))
+        worker.start()
+        assert hook.arrived.wait(30)
+        second = subprocess.run([sys.executable, "-m", "toolkit.cli", "run", "-p", str(project_file)],
+                                capture_output=True, text=True, timeout=120)
+        assert second.returncode == 0, second.stderr
+        hook.release.set()
+        worker.join(60)
+        assert not worker.is_alive()
+        (result,) = done
+        # the silent and the refusing endpoint each failed once and wait; the third timed out once
+        assert result.exit_code == 1 and len(result.failed) == 3 and result.pending == 12
+        assert {a.error.split(":")[0] for a in result.failed} >= {"no answer within 3 s", "cannot reach http"}
+    finally:
+        silent.close()
+
+
+def test_notify_names_the_run_holding_the_warehouse(tmp_path: Path) -> None:
+    project = built(tmp_path, webhooks("http://127.0.0.1:9/x"))
+    with warehouse_held(project.warehouse) as holder:
+        result = CliRunner().invoke(main, ["notify", "-p", str(project.file)])
+        assert result.exit_code == 1
+        assert "in use by another process" in result.output
+        assert f"PID {holder.pid}" in result.output
+
+
+def test_one_notify_at_a_time(tmp_path: Path) -> None:
+    project = built(tmp_path, webhooks("http://127.0.0.1:9/x"))
+    with _single_notifier(project):
+        with pytest.raises(PlimsollError, match="another `plimsoll notify` is delivering"):
+            notify(project)
+
+
+def test_without_webhooks_there_is_nothing_to_send(tmp_path: Path) -> None:
+    project = built(tmp_path, "")
+    result = CliRunner().invoke(main, ["notify", "-p", str(project.file)])
+    assert result.exit_code == 0, result.output
+    assert result.output == "notify: no webhooks in the project file; nothing to send\n"
+    assert outbox(project) == []
+
+
+def test_a_success_not_yet_recorded_is_sent_again_with_the_same_key(tmp_path: Path, hook: Hook,
+                                                                     monkeypatch: pytest.MonkeyPatch) -> None:
+    import toolkit.outbox as outbox_module
+
+    project = built(tmp_path, webhooks(hook.url))
+    recorded = outbox_module._record
+
+    def die_before_commit(*args: object, **kwargs: object) -> None:
+        raise KeyboardInterrupt  # the process is killed between the POST's success and its commit
+
+    monkeypatch.setattr(outbox_module, "_record", die_before_commit)
+    with pytest.raises(KeyboardInterrupt):
+        notify(project, clock=PretendClock())
+    monkeypatch.setattr(outbox_module, "_record", recorded)
+    result = notify(project, clock=PretendClock())
+    assert len(result.delivered) == 4 and len(hook.received) == 5
+    first, resent = hook.received[0], hook.received[1]
+    assert (first.key, first.body) == (resent.key, resent.body)  # at least once, with the same key and bytes
+    assert len({r.key for r in hook.received[1:]}) == 4

@@ -1,0 +1,189 @@
+"""`plimsoll report`: one self-contained page, checked in a real headless browser and by its parts."""
+
+from __future__ import annotations
+
+from datetime import timedelta
+from html.parser import HTMLParser
+from pathlib import Path
+
+import duckdb
+import pytest
+from click.testing import CliRunner
+
+from browser import open_page
+from conftest import PLAIN_PROJECT, write_project, write_rows
+from known_lake import CHECK, HOSTILE, START, known_project, warehouse_held
+from toolkit.cli import main
+from toolkit.project import load_project
+from toolkit.report import MAX_POINTS, series_for
+
+
+def invoke(*args: str):
+    return CliRunner().invoke(main, list(args), catch_exceptions=False)
+
+
+class Elements(HTMLParser):
+    """Tags seen, text per enclosing tag, and the text inside each chart's SVG."""
+
+    def __init__(self) -> None:
+        super().__init__()
+        self.tags: list[str] = []
+        self.stack: list[str] = []
+        self.text: list[str] = []
+        self.svg_text: list[str] = []
+        self.charts = 0
+        self.links: list[str] = []
+
+    def handle_starttag(self, tag: str, attrs: list[tuple[str, str | None]]) -> None:
+        self.tags.append(tag)
+        self.links += [v or "" for k, v in attrs if k in ("src", "href", "xlink:href", "action", "data")]
+        if tag == "svg" and self.stack and self.stack[-1] == "figure":
+            self.charts += 1
+        self.stack.append(tag)
+
+    def handle_endtag(self, tag: str) -> None:
+        while self.stack and self.stack.pop() != tag:
+            pass
+
+    def handle_data(self, data: str) -> None:
+        self.text.append(data)
+        if "svg" in self.stack:
+            self.svg_text.append(data)
+
+
+def parse(html: str) -> Elements:
+    found = Elements()
+    found.feed(html)
+    return found
+
+
+@pytest.fixture
+def project(tmp_path: Path) -> Path:
+    project = known_project(tmp_path)
+    assert invoke("run", "-p", str(project)).exit_code == 0
+    return project
+
+
+def test_report_in_a_headless_browser(project: Path, tmp_path: Path) -> None:
+    out = tmp_path / "report.html"
+    result = invoke("report", "--out", str(out), "-p", str(project))
+    assert result.exit_code == 0, result.output
+    assert result.output.startswith(f"{out}: 2 alerts (1 open), ")
+    page = open_page(out, tmp_path / "report.png")
+    assert page.console == []
+    assert page.screenshot.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+    dom = parse(page.dom)
+    assert dom.charts == 2  # one per alert
+    assert "script" not in dom.tags  # the hostile title is text, not markup, in the page and in the SVG
+    assert any(HOSTILE in t for t in dom.text)
+    assert any(HOSTILE in t for t in dom.svg_text)
+    assert "&lt;script&gt;alert(1)&lt;/script&gt;" in out.read_text()
+
+
+def test_the_browser_check_sees_console_errors(tmp_path: Path) -> None:
+    broken = tmp_path / "broken.html"
+    broken.write_text("<!doctype html><title>t</title><p>x</p><script>notDefinedAnywhere();</script>")
+    page = open_page(broken, tmp_path / "broken.png")
+    assert any("Uncaught ReferenceError: notDefinedAnywhere is not defined" in m for m in page.console), page.console
+
+
+def test_report_page_loads_nothing_from_outside(project: Path, tmp_path: Path) -> None:
+    out = tmp_path / "report.html"
+    invoke("report", "--out", str(out), "-p", str(project))
+    html = out.read_text()
+    dom = parse(html)
+    assert not {"script", "link", "img", "iframe", "object"} & set(dom.tags)
+    assert dom.links and all(link.startswith("#") for link in dom.links)  # anchors within the page only
+    assert "url(" not in html.replace("url(#", "")
+    assert "default-src 'none'" in html
+
+
+def test_open_alerts_come_first(project: Path, tmp_path: Path) -> None:
+    out = tmp_path / "report.html"
+    invoke("report", "--out", str(out), "-p", str(project))
+    html = out.read_text()
+    summary = html[html.index('id="open"'):html.index('id="alerts"')]
+    assert "Open alerts (1)" in summary and "&lt;script&gt;" in summary and "title_id=t-1" not in summary
+    assert html.index("status</dt><dd>open<") < html.index("status</dt><dd>closed (recovered)<")
+
+
+def test_report_filters(project: Path, tmp_path: Path) -> None:
+    out = tmp_path / "late.html"
+    result = invoke("report", "--out", str(out), "--since", "2026-11-02 00:50:00", "-p", str(project))
+    assert result.exit_code == 0 and "1 alerts (1 open)" in result.output
+    assert parse(out.read_text()).charts == 1
+    result = invoke("report", "--out", str(out), "--check", "other", "-p", str(project))
+    assert "0 alerts" in result.output and "No alerts match." in out.read_text()
+
+
+def test_report_before_any_run_says_so(tmp_path: Path) -> None:
+    project = known_project(tmp_path)
+    result = invoke("report", "--out", str(tmp_path / "r.html"), "-p", str(project))
+    assert result.exit_code == 1 and "no warehouse yet" in result.output
+    assert not (tmp_path / "r.html").exists()
+
+
+def test_chart_data_comes_from_the_windows_with_the_ewma_statistic(tmp_path: Path) -> None:
+    ewma = CHECK.replace("method: rolling_percentile, q: 0.5, history: 10, min_history: 3, factor: 1, floor: 0.1",
+                         "method: ewma, lambda: 0.5, history: 10, min_history: 3, target: 0.02, sigma: 0.05")
+    project = load_project(known_project(tmp_path, checks={"c.yml": ewma}))
+    assert invoke("run", "-p", str(project.file)).exit_code == 0
+    con = duckdb.connect(str(project.warehouse), read_only=True)
+    ids = [r[0] for r in con.execute("SELECT alert_id FROM alerts ORDER BY opened_at").fetchall()]
+    assert ids
+    series = series_for(con, ids)
+    for alert_id in ids:
+        expected = con.execute(
+            "SELECT w.window_end, w.statistic, w.value, w.breach FROM windows w JOIN alerts a "
+            "ON a.key = w.key AND a.check_name = w.check_name WHERE a.alert_id = $a ORDER BY w.seq",
+            {"a": alert_id}).fetchall()
+        s = series[alert_id]
+        assert s.ewma and not s.thinned
+        assert s.window_end == [r[0] for r in expected]
+        assert s.plotted == [r[1] if r[1] is not None else r[2] for r in expected]
+        assert any(r[1] is not None and r[1] != r[2] for r in expected)  # the statistic, not the value
+        assert s.breach == [r[3] for r in expected]
+    con.close()
+
+
+def test_a_long_series_is_thinned_and_keeps_its_spikes(tmp_path: Path) -> None:
+    # one session per window, 3000 windows: every 250th window is a slow one that breaches
+    slow = set(range(400, 3000, 250))
+    rows = [(f"s{i}", START + timedelta(minutes=i), 9000 if i in slow else 1000 + i % 7) for i in range(3000)]
+    lake = write_rows(tmp_path / "lake", "session_id VARCHAR, ended_at TIMESTAMP, startup_ms INTEGER", rows)
+    check = """\
+    check: startup
+    source: sessions
+    measure: {kind: quantile, of: startup_ms, q: 0.5}
+    window: {sessions: 1, max_wait: 1h}
+    baseline: {method: rolling_percentile, q: 0.9, history: 50, min_history: 20, factor: 2}
+    lifecycle: {recover_after: 3000, expire_after: 30d}
+    """
+    project = write_project(tmp_path, {"s.yml": check}, PLAIN_PROJECT.format(lake=lake))
+    assert invoke("run", "-p", str(project)).exit_code == 0
+    out = tmp_path / "long.html"
+    assert invoke("report", "--out", str(out), "-p", str(project)).exit_code == 0
+    p = load_project(project)
+    con = duckdb.connect(str(p.warehouse), read_only=True)
+    (alert_id, opened_at), = con.execute("SELECT alert_id, opened_at FROM alerts").fetchall()
+    s = series_for(con, [alert_id])[alert_id]
+    con.close()
+    assert opened_at == START + timedelta(minutes=400)
+    assert s.thinned and s.shown <= MAX_POINTS and s.span_windows == 3000 - 400 + 48
+    drawn_breaches = {t for t, b in zip(s.window_end, s.breach) if b}
+    assert drawn_breaches == {START + timedelta(minutes=i) for i in slow}
+    assert max(s.plotted) == 9000
+    html = out.read_text()
+    assert f"thinned: {s.shown:,} of 2,648 windows drawn" in html
+    assert len(html.encode()) < 120_000
+
+
+def test_report_and_alerts_read_the_published_copies_while_a_run_holds_the_warehouse(
+        project: Path, tmp_path: Path) -> None:
+    with warehouse_held(tmp_path / "w.duckdb"):
+        out = tmp_path / "while-running.html"
+        result = invoke("report", "--out", str(out), "-p", str(project))
+        assert result.exit_code == 0, result.output
+        assert parse(out.read_text()).charts == 2
+        listed = invoke("alerts", "--status", "open", "-p", str(project))
+        assert listed.exit_code == 0 and HOSTILE in listed.output

@@ -1,0 +1,61 @@
+"""The project file's `webhooks` and `notify` keys: each mistake refused with file:line and what to fix."""
+
+from __future__ import annotations
+
+from datetime import timedelta
+
+import pytest
+
+from conftest import FIXTURE_LAKE
+from toolkit.model import Notify, Webhook
+from toolkit.problems import ProjectInvalid
+from toolkit.project import load_project
+
+BASE = ("warehouse: w.duckdb\nsources:\n  sessions:\n    path: {lake}\n    session_id: session_id\n"
+        "    event_time: ended_at\n")
+
+# (case id, text after BASE (which ends on line 6), expected line, expected words)
+CASES = [
+    ("webhooks-not-a-list", "webhooks:\n  url: http://x\n", 7, "webhooks: expected a list, got a mapping"),
+    ("webhook-not-a-mapping", "webhooks:\n  - http://x\n", 8, "'webhooks.0' must be a mapping of keys, not text"),
+    ("webhook-missing-url", "webhooks:\n  - name: a\n", 8, "missing key 'url' in webhooks.0"),
+    ("webhook-unknown-key", "webhooks:\n  - url: http://x\n    timout: 5s\n", 9,
+     "unknown key 'timout' in webhooks.0 (did you mean 'timeout'?)"),
+    ("webhook-bad-scheme", "webhooks:\n  - url: ftp://x/y\n", 8,
+     "webhooks.0.url: 'ftp://x/y' is not an http:// or https:// URL with a host"),
+    ("webhook-no-host", "webhooks:\n  - url: 'http:///path'\n", 8, "is not an http:// or https:// URL with a host"),
+    ("webhook-bad-timeout", "webhooks:\n  - url: http://x\n    timeout: soon\n", 9, "webhooks.0.timeout: bad duration 'soon'"),
+    ("webhook-zero-timeout", "webhooks:\n  - url: http://x\n    timeout: 0s\n", 9, "webhooks.0.timeout must be longer than 0s"),
+    ("webhook-name-twice", "webhooks:\n  - {name: a, url: 'http://x'}\n  - name: a\n    url: http://y\n", 9,
+     "webhooks.1: the name 'a' is already used by webhooks.0"),
+    ("webhook-url-twice", "webhooks:\n  - url: http://x\n  - url: http://x\n", 9,
+     "webhooks.1: the name 'http://x' is already used by webhooks.0"),
+    ("notify-unknown-key", "notify:\n  grow: 0.5\n", 8, "unknown key 'grow' in notify (did you mean 'growth'?)"),
+    ("notify-negative-growth", "notify:\n  growth: -1\n", 8, "notify.growth: must be at least 0"),
+    ("notify-attempts-zero", "notify:\n  max_attempts: 0\n", 8, "notify.max_attempts: must be at least 1"),
+    ("notify-bad-backoff", "notify:\n  backoff: 1.5s\n", 8, "notify.backoff: bad duration '1.5s'"),
+    ("notify-cap-below-backoff", "notify:\n  backoff: 2m\n  max_backoff: 1m\n", 9,
+     "notify.max_backoff cannot be shorter than notify.backoff"),
+]
+
+
+@pytest.mark.parametrize("text,line,words", [c[1:] for c in CASES], ids=[c[0] for c in CASES])
+def test_malformed_delivery_keys_are_refused_with_their_line(make_project, text: str, line: int, words: str) -> None:
+    project = make_project({}, project=BASE.format(lake=FIXTURE_LAKE) + text)
+    with pytest.raises(ProjectInvalid) as caught:
+        load_project(project)
+    messages = [str(p) for p in caught.value.problems]
+    assert any(m.startswith(f"{project}:{line}:") and words in m for m in messages), messages
+
+
+def test_delivery_keys_load_with_their_defaults(make_project) -> None:
+    text = BASE.format(lake=FIXTURE_LAKE) + (
+        "webhooks:\n  - url: https://hooks.fernhill.example/plimsoll\n"
+        "  - name: on-call\n    url: http://127.0.0.1:8080/in\n    timeout: 3s\nnotify:\n  growth: 1\n")
+    project = load_project(make_project({}, project=text))
+    assert project.webhooks == (
+        Webhook("https://hooks.fernhill.example/plimsoll", "https://hooks.fernhill.example/plimsoll"),
+        Webhook("on-call", "http://127.0.0.1:8080/in", timedelta(seconds=3)),
+    )
+    assert project.notify == Notify(growth=1.0)
+    assert load_project(make_project({}, project=BASE.format(lake=FIXTURE_LAKE))).webhooks == ()
