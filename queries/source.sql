@@ -11,7 +11,12 @@ SELECT
     {{ column | ident }},
 {% endfor %}
     filename AS __file
-FROM read_parquet($files, hive_partitioning = true, union_by_name = true, filename = true);
+FROM read_parquet($files, hive_partitioning = true, union_by_name = true, filename = true)
+{%- if source.until %}
+
+-- A replay up to {{ source.until }} (a backtest): sessions at or after it are not read.
+WHERE {{ source.event_time | ident }}::TIMESTAMP < {{ source.until | literal }}
+{%- endif %};
 
 -- One copy of each session id: the earliest, then by file name, so every run keeps the same one.
 CREATE OR REPLACE TEMP TABLE repeated_ids AS
