@@ -345,3 +345,39 @@ def test_full_demo_backtest_finds_all_four_with_the_catalogue_as_written(tmp_pat
     assert (total["incidents"], total["detected"], total["recall"]) == (4, 4, 1.0)
     assert total["decoys"] == 0
     assert not (tmp_path / "demo" / "warehouse.duckdb").exists()
+
+
+def test_readme_documents_every_json_field_and_column(project: Path) -> None:
+    readme = (Path(__file__).parent.parent / "README.md").read_text()
+    section = readme[readme.index("## Backtests"):readme.index("## Labels files")]
+    result = invoke("backtest", "startup_p90_by_site", "-p", str(project), "--from", "2026-11-02",
+                    "--to", "2026-11-04", "--json")
+    assert result.exit_code == 0, result.output
+    missing = [k for k in json.loads(result.stdout)[0] if f"`{k}`" not in section]
+    assert not missing, f"README's backtest section does not document: {missing}"
+    for column in ("alerts", "per day", "matched", "related", "decoys", "precision", "recall",
+                   "median delay", "worst delay"):
+        assert f"`{column}`" in section, column
+
+
+def test_a_failing_backtest_leaves_the_keep_folder_empty(project: Path, tmp_path: Path,
+                                                         monkeypatch: pytest.MonkeyPatch) -> None:
+    from toolkit import backtest as module
+    from toolkit.problems import DataError
+
+    calls = []
+
+    def second_fails(scratch, names, progress=None):
+        calls.append(scratch.warehouse)
+        if len(calls) == 2:
+            raise DataError("check startup_p90_by_site, stage scan: the lake went away")
+        return run(scratch, names, progress=progress)
+
+    monkeypatch.setattr(module, "run", second_fails)
+    keep = tmp_path / "kept"
+    keep.mkdir()
+    with pytest.raises(DataError, match="the lake went away"):
+        module.backtest(load_project(project), ["startup_p90_by_site"], T("2026-11-02"), T("2026-11-04"),
+                        settings_from(["baseline.factor=1.5"], []), keep=keep)
+    assert calls[0].is_relative_to(keep)  # the first setting ran there, then went with the failure
+    assert keep.is_dir() and list(keep.iterdir()) == []

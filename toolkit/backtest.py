@@ -14,7 +14,7 @@ import json
 import shutil
 import statistics
 import tempfile
-from collections.abc import Callable
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field, replace
 from datetime import datetime, timedelta
 from pathlib import Path
@@ -273,22 +273,25 @@ class Backtest:
         return setting.label if len(setting.label) <= _SHORT else f"#{number}"
 
 
-def backtest(project: Project, names: list[str], start: datetime, end: datetime,
-             settings: list[Setting] = (), labels: list[Label] | None = None, keep: Path | None = None,
+def backtest(project: Project, names: Sequence[str], start: datetime, end: datetime,
+             settings: Sequence[Setting] = (), labels: list[Label] | None = None, keep: Path | None = None,
              progress: Progress | None = None) -> Backtest:
     """Replay the lake up to ``end`` once per setting (the baseline first) and score each check.
 
     Every setting is validated before anything runs. The scratch warehouses live in a temporary
-    folder that is removed afterwards, or in ``keep`` (a new or empty folder) to be inspected.
+    folder that is removed afterwards, or in ``keep`` (a new or empty folder) to be inspected; a
+    backtest that fails leaves neither behind.
     """
     say = progress or (lambda _: None)
     if end <= start:
         raise BacktestError(f"--to ({end}) must be after --from ({start})")
-    checks = select_checks(project, names)
-    chosen = [Setting()] + [s for s in settings if s.overrides]
+    checks = select_checks(project, list(dict.fromkeys(names)))
+    chosen = [Setting()]
+    chosen += [s for s in settings if s.overrides and s.overrides not in [c.overrides for c in chosen]]
     variants = [_replay_project(project, apply_setting(project, checks, s), end) for s in chosen]
     folder = _scratch(keep)
     outcome = Backtest(start, end, [c.name for c in checks], chosen, labels, [], keep)
+    finished = False
     try:
         for number, (setting, variant) in enumerate(zip(chosen, variants), start=1):
             scratch = replace(variant, warehouse=folder / _folder_name(number) / "warehouse.duckdb")
@@ -304,9 +307,16 @@ def backtest(project: Project, names: list[str], start: datetime, end: datetime,
                 outcome.rows.append(Row(None, setting, score(alerts, labels, set(outcome.checks), start, end)))
         if keep is not None:
             (folder / "backtest.json").write_text(backtest_json(outcome) + "\n", encoding="utf-8")
+        finished = True
     finally:
         if keep is None:
             shutil.rmtree(folder, ignore_errors=True)
+        elif not finished:  # the kept folder was new or empty: leave it so
+            for item in folder.iterdir():
+                if item.is_dir():
+                    shutil.rmtree(item)
+                else:
+                    item.unlink()
     return outcome
 
 
@@ -394,8 +404,9 @@ def backtest_table(outcome: Backtest) -> str:
                          for i, (c, w) in enumerate(zip(cells, widths))).rstrip()
 
     lines = [
-        f"Backtest of {', '.join(outcome.checks)} from {outcome.start:%Y-%m-%d %H:%M} to "
-        f"{outcome.end:%Y-%m-%d %H:%M} ({outcome.days:g} days of data time; earlier data warms up the baselines)",
+        f"Backtest of {', '.join(outcome.checks)}",
+        f"alerts opened from {outcome.start:%Y-%m-%d %H:%M} to {outcome.end:%Y-%m-%d %H:%M} "
+        f"({outcome.days:g} days of data time); earlier data warms up the baselines",
         "",
         line(head),
         "  ".join("-" * w for w in widths),
