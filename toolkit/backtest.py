@@ -118,7 +118,7 @@ def split_top_level(text: str) -> list[str]:
     return parts
 
 
-def settings_from(assignments: tuple[str, ...] | list[str], settings: tuple[str, ...] | list[str]) -> list[Setting]:
+def settings_from(assignments: Sequence[str], settings: Sequence[str]) -> list[Setting]:
     """The command line's settings: every ``--set`` together forms one, each ``--setting`` one more."""
     found = []
     if assignments:
@@ -302,9 +302,11 @@ def backtest(project: Project, names: Sequence[str], start: datetime, end: datet
                 alerts = alerts_from(con, checks=tuple(outcome.checks), since=start)
             finally:
                 con.close()
-            outcome.rows += [Row(c.name, setting, score(alerts, labels, {c.name}, start, end)) for c in checks]
+            outcome.rows += [Row(c.name, setting, score(alerts, labels, {c.name}, start, end))
+                             for c in checks]
             if len(checks) > 1:
-                outcome.rows.append(Row(None, setting, score(alerts, labels, set(outcome.checks), start, end)))
+                every = score(alerts, labels, set(outcome.checks), start, end)
+                outcome.rows.append(Row(None, setting, every))
         if keep is not None:
             (folder / "backtest.json").write_text(backtest_json(outcome) + "\n", encoding="utf-8")
         finished = True
@@ -372,7 +374,8 @@ def backtest_rows(outcome: Backtest) -> list[dict[str, Any]]:
             "recall": None if s.recall is None else round(s.recall, 6),
             "median_delay_seconds": None if s.median_delay is None else s.median_delay.total_seconds(),
             "worst_delay_seconds": None if s.worst_delay is None else s.worst_delay.total_seconds(),
-            "missed": [{"check": m.check, "key": m.key, "start": m.start.isoformat(sep=" ")} for m in s.missed],
+            "missed": [{"check": m.check, "key": m.key, "start": m.start.isoformat(sep=" ")}
+                       for m in s.missed],
         })
     return out
 
@@ -420,7 +423,8 @@ def backtest_table(outcome: Backtest) -> str:
         lines += ["", "precision: alerts matching an incident label of their check / alerts opened in range",
                   "recall: labelled incidents of the check starting in range that an alert found",
                   "delay: from an incident's start to the opening of its first matching alert, in data time"]
-        lines += [f"missed with {outcome.name(row.setting)}: {m.check} {m.key} (from {m.start:%Y-%m-%d %H:%M})"
+        lines += [f"missed with {outcome.name(row.setting)}: {m.check} {m.key} "
+                  f"(from {m.start:%Y-%m-%d %H:%M})"
                   for row, m in missed]
     if outcome.kept:
         lines += ["", f"Scratch warehouses kept in {outcome.kept}/ (one folder per setting, backtest.json)"]

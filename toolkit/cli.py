@@ -51,8 +51,8 @@ def reports_errors(fn: Callable[..., Any]) -> Callable[..., Any]:
 
 
 class _Progress:
-    """Per-check progress on stderr: on a terminal one line rewritten in place, otherwise one
-    timestamped line per step (what a scheduler's log should hold)."""
+    """Progress on stderr: on a terminal one line rewritten in place per step, otherwise one
+    timestamped line per step, which is what a scheduler's log should hold."""
 
     def __init__(self) -> None:
         self.live = sys.stderr.isatty()
@@ -159,7 +159,8 @@ def demo(workdir: Path, sessions: int, seed: int) -> None:
 @click.argument("checks", nargs=-1, required=True)
 @project_option
 @click.option("--from", "start", required=True, type=DATA_TIME, metavar="TIME",
-              help="YYYY-MM-DD[ HH:MM[:SS]], data time (UTC): score alerts opening at or after this data time; earlier data warms up the baselines.")
+              help="Score alerts opening at or after this data time (UTC, YYYY-MM-DD[ HH:MM[:SS]]); "
+                   "earlier data warms up the baselines.")
 @click.option("--to", "end", required=True, type=DATA_TIME, metavar="TIME",
               help="Replay the lake up to this data time; later sessions are not read.")
 @click.option("--labels", "labels_file", type=click.Path(exists=True, dir_okay=False, path_type=Path),
