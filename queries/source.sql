@@ -14,7 +14,12 @@ SELECT
     {{ column | ident }},
 {% endfor %}
     filename AS __file
-FROM read_parquet($files, hive_partitioning = true, union_by_name = true, filename = true);
+FROM read_parquet($files, hive_partitioning = true, union_by_name = true, filename = true)
+{%- if source.until %}
+
+-- A replay up to {{ source.until }} (a backtest): sessions at or after it are not read.
+WHERE {{ source.event_time | ident }}::TIMESTAMP < {{ source.until | literal }}
+{%- endif %};
 
 -- Session ids already read, in an earlier run, from a file these checks have read: duplicates.
 CREATE OR REPLACE TEMP TABLE read_before AS

@@ -27,7 +27,7 @@ def invoke(*args: str):
     return CliRunner().invoke(main, list(args), catch_exceptions=False)
 
 
-@pytest.mark.parametrize("command", ["validate", "compile", "run", "alerts", "report", "notify", "demo"])
+@pytest.mark.parametrize("command", ["validate", "compile", "run", "backtest", "alerts", "report", "notify", "demo"])
 def test_every_command_has_help(command: str) -> None:
     result = invoke(command, "--help")
     assert result.exit_code == 0, result.output

@@ -10,7 +10,7 @@ import pytest
 from click.testing import CliRunner
 
 from toolkit.cli import main
-from toolkit.demo import label_matches
+from toolkit.labels import label_matches
 from toolkit.outputs import alerts_from
 from toolkit.warehouse_demo.generate import read_labels
 

@@ -5,9 +5,10 @@ No SQL and no YAML logic lives here; every command's work is one call into the t
 
 from __future__ import annotations
 
+import os
 import sys
 from collections.abc import Callable
-from datetime import datetime
+from datetime import datetime, timezone
 from functools import wraps
 from pathlib import Path
 from typing import Any
@@ -26,6 +27,9 @@ project_option = click.option(
     "-p", "--project", "project_file", default="plimsoll.yml", show_default=True,
     type=click.Path(dir_okay=False, path_type=Path), help="The project file.",
 )
+
+DATA_TIME = click.DateTime(["%Y-%m-%d", "%Y-%m-%d %H:%M", "%Y-%m-%d %H:%M:%S", "%Y-%m-%dT%H:%M",
+                            "%Y-%m-%dT%H:%M:%S"])
 
 
 def reports_errors(fn: Callable[..., Any]) -> Callable[..., Any]:
@@ -46,13 +50,37 @@ def reports_errors(fn: Callable[..., Any]) -> Callable[..., Any]:
     return wrapper
 
 
-def _progress(stream_is_tty: bool) -> Callable[[str], None]:
-    def say(message: str) -> None:
-        stamp = datetime.now().strftime("%H:%M:%S")
-        click.echo(f"\r\033[K{message}" if stream_is_tty else f"{stamp} {message}", err=True,
-                   nl=not stream_is_tty)
+class _Progress:
+    """Progress on stderr: on a terminal one line rewritten in place per step, otherwise one
+    timestamped line per step, which is what a scheduler's log should hold."""
 
-    return say
+    def __init__(self) -> None:
+        self.live = sys.stderr.isatty()
+        self.shown = False
+
+    def __call__(self, message: str) -> None:
+        if self.live:
+            click.echo(f"\r\033[K{_fit(message)}", err=True, nl=False)
+            self.shown = True
+        else:
+            stamp = datetime.now(timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ")
+            click.echo(f"{stamp} {message}", err=True)
+
+    def __enter__(self) -> _Progress:
+        return self
+
+    def __exit__(self, *_: object) -> None:
+        if self.shown:  # end the live line, so what follows starts on a line of its own
+            click.echo("", err=True)
+
+
+def _fit(message: str) -> str:
+    """The message cut to the terminal's width: a wrapped line could not be rewritten in place."""
+    try:
+        width = os.get_terminal_size(sys.stderr.fileno()).columns
+    except (OSError, ValueError):
+        return message
+    return message if width <= 1 or len(message) < width else message[: width - 2] + "…"
 
 
 @click.group(context_settings={"help_option_names": ["-h", "--help"]})
@@ -91,9 +119,8 @@ def compile(check: str, project_file: Path) -> None:
 def run(project_file: Path, checks: tuple[str, ...], full_refresh: bool, wait: float) -> None:
     """One incremental run over the files not yet read."""
     project = load_project(project_file)
-    result = run_checks(project, list(checks), full_refresh, _progress(sys.stderr.isatty()), wait=wait)
-    if sys.stderr.isatty():
-        click.echo("", err=True)
+    with _Progress() as progress:
+        result = run_checks(project, list(checks), full_refresh, progress, wait=wait)
     for change in result.changed_files:
         click.echo(f"warning: lake file changed after it was read; not read again: {change}", err=True)
     click.echo(
@@ -164,10 +191,43 @@ def demo(workdir: Path, sessions: int, seed: int) -> None:
     """Build Fernhill Broadcasting's demo lake, run every catalogue check, print what was found."""
     from .demo import build_and_run, summary
 
-    outcome = build_and_run(workdir, sessions, seed, _progress(sys.stderr.isatty()))
-    if sys.stderr.isatty():
-        click.echo("", err=True)
+    with _Progress() as progress:
+        outcome = build_and_run(workdir, sessions, seed, progress)
     click.echo(summary(outcome))
+
+
+@main.command()
+@click.argument("checks", nargs=-1, required=True)
+@project_option
+@click.option("--from", "start", required=True, type=DATA_TIME, metavar="TIME",
+              help="Score alerts opening at or after this data time (UTC, YYYY-MM-DD[ HH:MM[:SS]]); "
+                   "earlier data warms up the baselines.")
+@click.option("--to", "end", required=True, type=DATA_TIME, metavar="TIME",
+              help="Replay the lake up to this data time; later sessions are not read.")
+@click.option("--labels", "labels_file", type=click.Path(exists=True, dir_okay=False, path_type=Path),
+              help="A labels file (see README): adds precision, recall and detection delay.")
+@click.option("--set", "assignments", multiple=True, metavar="[CHECK:]KEY=VALUE",
+              help="Override a check key, e.g. baseline.factor=3; every --set together is one setting.")
+@click.option("--setting", "settings", multiple=True, metavar="'KEY=VALUE, ...'",
+              help="One more setting to compare: overrides separated by commas (repeatable).")
+@click.option("--keep", type=click.Path(file_okay=False, path_type=Path),
+              help="Keep the scratch warehouses in this new or empty folder.")
+@click.option("--json", "as_json", is_flag=True, help="JSON for scripts.")
+@reports_errors
+def backtest(checks: tuple[str, ...], project_file: Path, start: datetime, end: datetime,
+             labels_file: Path | None, assignments: tuple[str, ...], settings: tuple[str, ...],
+             keep: Path | None, as_json: bool) -> None:
+    """Replay the lake for CHECK... into scratch warehouses, the baseline and each setting side by side."""
+    from .backtest import backtest as replay
+    from .backtest import backtest_json, backtest_table, settings_from
+    from .labels import read_labels
+
+    compared = settings_from(assignments, settings)
+    project = load_project(project_file)
+    labels = read_labels(labels_file) if labels_file else None
+    with _Progress() as progress:
+        outcome = replay(project, list(checks), start, end, compared, labels, keep, progress)
+    click.echo(backtest_json(outcome) if as_json else backtest_table(outcome))
 
 
 if __name__ == "__main__":  # pragma: no cover

@@ -10,20 +10,19 @@ import shutil
 import sys
 import time
 from dataclasses import dataclass, field
-from datetime import timedelta
 from importlib.resources import files
 from pathlib import Path
 from typing import Any
 
+from .labels import Label, match_label, overlapping
 from .outputs import alerts_from
 from .problems import PlimsollError
 from .project import load_project
 from .runner import RunResult, run
 from .warehouse import connect
-from .warehouse_demo.generate import Label, build_lake
+from .warehouse_demo.generate import build_lake
 
 MARKER = ".plimsoll-demo"
-DECOY_SLACK = timedelta(days=1)
 
 PROJECT_YML = """\
 # Fernhill Broadcasting: the demo project written by `plimsoll demo`.
@@ -122,36 +121,6 @@ def build_and_run(workdir: Path, sessions: int = 2_000_000, seed: int = 7,
     finally:
         con.close()
     return outcome
-
-
-def key_pairs(text: str) -> dict[str, str]:
-    """``"cdn=birch, country=DE"`` as a mapping."""
-    pairs = {}
-    for part in filter(None, (p.strip() for p in text.split(","))):
-        name, _, value = part.partition("=")
-        pairs[name.strip()] = value.strip()
-    return pairs
-
-
-def label_matches(alert: dict[str, Any], label: Label) -> bool:
-    """Same check (a decoy's '*' is any), every labelled key pair present, opened in the span."""
-    if label.check not in ("*", alert["check_name"]):
-        return False
-    have = key_pairs(alert["key_text"] or "")
-    if any(have.get(k) != v for k, v in key_pairs(label.key).items()):
-        return False
-    end = label.end + (DECOY_SLACK if label.kind == "decoy" else timedelta(0))
-    return label.start <= alert["opened_at"] <= end
-
-
-def match_label(alert: dict[str, Any], labels: list[Label]) -> Label | None:
-    return next((lab for lab in labels if label_matches(alert, lab)), None)
-
-
-def overlapping(alert: dict[str, Any], labels: list[Label]) -> Label | None:
-    """An incident the alert's breaching windows overlap in data time, whatever its check or key."""
-    return next((lab for lab in labels if lab.kind == "incident"
-                 and alert["breach_started_at"] < lab.end and alert["last_breach_at"] > lab.start), None)
 
 
 def _command(name: str) -> str:

@@ -7,7 +7,7 @@ guarantees that every expression in it was parsed and checked against the source
 from __future__ import annotations
 
 from dataclasses import dataclass, field
-from datetime import timedelta
+from datetime import datetime, timedelta
 from pathlib import Path
 
 
@@ -33,6 +33,8 @@ class Source:
     event_time: str
     exclude: Expr | None
     columns: dict[str, str] = field(default_factory=dict, hash=False, compare=False)
+    # Read only sessions before this data time; set by a backtest replaying the lake up to a moment.
+    until: datetime | None = None
 
 
 @dataclass(frozen=True)

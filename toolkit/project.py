@@ -299,6 +299,20 @@ def _webhooks(doc: Located, raw: list[Any], problems: list[Problem]) -> tuple[We
             found.append(Webhook(name, url, timeout))
     return tuple(found)
 
+def validate_check(project: Project, doc: Located) -> tuple[Check | None, list[Problem]]:
+    """One check document validated against the project's sources exactly as a check file is.
+
+    For a check file's mapping changed in memory (a backtest's overrides): the same rules, the same
+    messages, and the problems returned rather than raised so the caller can say where they came from.
+    """
+    problems: list[Problem] = []
+    con = duckdb.connect()
+    try:
+        check = _load_check(doc, project.sources, con, problems)
+    finally:
+        con.close()
+    return check, problems
+
 
 def _load_sources(doc: Located, raw: dict[str, Any], root: Path, con: duckdb.DuckDBPyConnection,
                   problems: list[Problem], check_schema: bool) -> dict[str, Source]:

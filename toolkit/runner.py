@@ -123,9 +123,11 @@ def _run(con: duckdb.DuckDBPyConnection, project: Project, run_id: int, checks: 
                 con.execute("INSERT INTO run_scans SELECT rows_read, rows_invalid, duplicate_rows, "
                             "rows_excluded FROM lake_counts")
             for check, sql, files in group:
+                step = f"[{len(result.checks) + 1}/{len(checks)}] {check.name}"
+                progress(f"{step} …")
                 result.checks.append(_run_check(con, check, sql, files, run_id))
                 done = result.checks[-1]
-                progress(f"check {check.name}: {done.files_read} files, {done.windows_written} windows, "
+                progress(f"{step}: {done.files_read} files, {done.windows_written} windows, "
                          f"alerts opened {done.alerts_opened}, closed {done.alerts_closed}")
         _record(con, run_id, started, [c.name for c in checks], full_refresh, "ok", None)
         result.distinct_files = int(con.execute(

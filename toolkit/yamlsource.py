@@ -72,6 +72,14 @@ def load(path: Path, shown: str) -> tuple[Located | None, list[Problem]]:
     return located, problems
 
 
+def parse_value(text: str) -> Any:
+    """One value written on a command line (``2``, ``0.5``, ``3d``, ``[site, cdn]``), read as YAML.
+
+    The same loader as check files, so a value means on the command line what it means in a file.
+    """
+    return yaml.load(text, Loader=_Loader)
+
+
 def _convert(node: yaml.Node, path: KeyPath, located: Located, problems: list[Problem]) -> Any:
     located.lines.setdefault(path, node.start_mark.line + 1)
     if isinstance(node, yaml.MappingNode):

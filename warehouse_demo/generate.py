@@ -7,65 +7,26 @@ staging folder and moved into place at the end, so a failed build never leaves a
 
 from __future__ import annotations
 
-import csv
 import os
 import re
 import shutil
 import tempfile
-from dataclasses import dataclass
-from datetime import datetime
 from pathlib import Path
 
 import duckdb
 
-from toolkit.problems import DataError
+# the labels file format lives with the matching that reads it; re-exported for the demo's users
+from toolkit.labels import LABEL_FIELDS, Label, parse_key, read_labels, write_labels  # noqa: F401
 from toolkit.sqltext import quote_literal
 
 SCRIPT = Path(__file__).with_name("lake.sql")
 STEP_MARKER = re.compile(r"^-- step: *(.+?) *$", re.MULTILINE)
 PARAMETER = re.compile(r"\$([A-Za-z_][A-Za-z0-9_]*)")
 COMMENT = re.compile(r"--[^\n]*")
-LABEL_FIELDS = ("kind", "check", "key", "start", "end", "note")
-LABEL_KINDS = ("incident", "decoy")
-TIME_FORMAT = "%Y-%m-%d %H:%M:%S"
 # Below this the incidents are only a handful of sessions each and no longer clearly visible.
 MIN_SESSIONS = 20_000
 # Identifiers are bijections of 32-bit row and viewer numbers, so they stay unique up to here.
 MAX_SESSIONS = 1_000_000_000
-
-
-@dataclass(frozen=True)
-class Label:
-    """One labelled incident, or a decoy that no check may alert on.
-
-    ``check`` names the check that must find the incident (``*`` for a decoy, which no check may
-    alert on); an alert belongs to the label when every ``name=value`` pair of ``key`` is in the
-    alert's key and it falls in the span from ``start`` to ``end`` (data time, naive UTC).
-    """
-
-    kind: str
-    check: str
-    key: str
-    start: datetime
-    end: datetime
-    note: str
-
-    def key_pairs(self) -> dict[str, str]:
-        """The key as a mapping, e.g. ``{'cdn': 'birch', 'country': 'DE'}``."""
-        return parse_key(self.key)
-
-
-def parse_key(key: str) -> dict[str, str]:
-    """Split ``'name=value, name=value'`` into a mapping; raise ValueError on a malformed pair."""
-    pairs: dict[str, str] = {}
-    for part in key.split(","):
-        name, sep, value = part.strip().partition("=")
-        if not sep or not name.strip() or not value.strip():
-            raise ValueError(f"key pair {part.strip()!r} is not name=value")
-        if name.strip() in pairs:
-            raise ValueError(f"key names {name.strip()!r} twice")
-        pairs[name.strip()] = value.strip()
-    return pairs
 
 
 def build_lake(workdir: Path, sessions: int = 2_000_000, seed: int = 7) -> list[Label]:
@@ -148,59 +109,6 @@ def fetch_labels(con: duckdb.DuckDBPyConnection) -> list[Label]:
         " ORDER BY start_at, check_name"
     ).fetchall()
     return [Label(*row) for row in rows]
-
-
-def write_labels(path: Path, labels: list[Label]) -> None:
-    """labels.csv: one row per label, ISO timestamps to the second."""
-    with open(path, "w", newline="", encoding="utf-8") as out:
-        writer = csv.writer(out)
-        writer.writerow(LABEL_FIELDS)
-        for label in labels:
-            writer.writerow(
-                [
-                    label.kind,
-                    label.check,
-                    label.key,
-                    label.start.strftime(TIME_FORMAT),
-                    label.end.strftime(TIME_FORMAT),
-                    label.note,
-                ]
-            )
-
-
-def read_labels(path: Path) -> list[Label]:
-    """Read labels.csv back; any malformed row raises DataError naming the file and line."""
-    path = Path(path)
-    with open(path, newline="", encoding="utf-8") as src:
-        reader = csv.reader(src)
-        header = next(reader, None)
-        if header is None or tuple(header) != LABEL_FIELDS:
-            raise DataError(f"{path}:1: expected the header {','.join(LABEL_FIELDS)}, got {header}")
-        return [_parse_label(path, reader.line_num, row) for row in reader]
-
-
-def _parse_label(path: Path, line: int, row: list[str]) -> Label:
-    if len(row) != len(LABEL_FIELDS):
-        raise DataError(f"{path}:{line}: expected {len(LABEL_FIELDS)} fields, got {len(row)}")
-    kind, check, key, start, end, note = row
-    where = f"{path}:{line}"
-    if kind not in LABEL_KINDS:
-        raise DataError(f"{where}: kind must be one of {', '.join(LABEL_KINDS)}, got {kind!r}")
-    if (kind == "decoy") != (check == "*"):
-        raise DataError(f"{where}: a decoy has check '*' and an incident names its check")
-    try:
-        parse_key(key)
-    except ValueError as exc:
-        raise DataError(f"{where}: key: {exc}") from None
-    times = []
-    for column, text in (("start", start), ("end", end)):
-        try:
-            times.append(datetime.strptime(text, TIME_FORMAT))
-        except ValueError:
-            raise DataError(f"{where}: {column} {text!r} is not YYYY-MM-DD HH:MM:SS") from None
-    if times[1] <= times[0]:
-        raise DataError(f"{where}: end {end} is not after start {start}")
-    return Label(kind, check, key, times[0], times[1], note)
 
 
 def _move_into_place(built: Path, target: Path) -> None:
