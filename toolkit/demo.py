@@ -169,6 +169,13 @@ def summary(outcome: DemoOutcome) -> str:
         f"  {_command('python')} -c \"import duckdb; print(duckdb.connect('"
         f"{o.workdir / 'warehouse.duckdb'}', read_only=True).sql('SELECT check_name, key_text, opened_at, "
         "affected_sessions FROM alerts ORDER BY opened_at'))\"",
+        "",
+        "See each alert as a picture (a static page; open it in any browser):",
+        f"  {_command('plimsoll')} report -p {o.workdir / 'plimsoll.yml'} --out {o.workdir / 'report.html'}",
+        "Replay a check with a changed threshold, scored against the labels:",
+        f"  {_command('plimsoll')} backtest title_errors -p {o.workdir / 'plimsoll.yml'} "
+        f"--from 2026-11-09 --to 2026-11-23 --labels {o.workdir / 'labels.csv'} "
+        "--setting 'baseline.factor=3'",
     ]
     return "\n".join(lines)
 
