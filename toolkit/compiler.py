@@ -110,7 +110,9 @@ def columns_read(checks: list[Check]) -> list[str]:
         m = check.measure
         exprs = [e for e in (check.where, m.bad, m.numerator, m.denominator, m.of) if e is not None]
         names = [*check.by, *([m.split] if m.split else []), *(c for e in exprs for c in e.columns)]
-        seen += [n for n in names if n not in seen]
+        for name in names:
+            if name not in seen:
+                seen.append(name)
     return seen
 
 
@@ -119,6 +121,10 @@ def compile_source(checks: list[Check]) -> Stage:
     sources = {c.source.name for c in checks}
     if len(sources) != 1:
         raise ValueError(f"one source at a time, not {sorted(sources)}")
+    return _on_engine(checks[0], (_source_stage(checks),), columns_read(checks))[0]
+
+
+def _source_stage(checks: list[Check]) -> Stage:
     text = _env().get_template("source.sql").render(source=checks[0].source, columns=columns_read(checks))
     return _stage("source", text)
 
@@ -134,11 +140,21 @@ def compile_check(check: Check) -> CompiledCheck:
         "guard": check.guard,
         "lifecycle": check.lifecycle,
     }
-    stages = (compile_source([check]),) + tuple(
+    stages = (_source_stage([check]),) + tuple(
         _stage(name, _env().get_template(f"{name}.sql").render(context)) for name in CHECK_STAGES
     )
     digest = hashlib.sha256("\n".join(s.text for s in stages).encode()).hexdigest()[:16]
-    return CompiledCheck(check.name, stages, digest)
+    return CompiledCheck(check.name, _on_engine(check, stages, columns_read([check])), digest)
+
+
+def _on_engine(check: Check, stages: tuple[Stage, ...], columns: list[str]) -> tuple[Stage, ...]:
+    """With ``engine: spark`` the stages that touch every session become Spark SQL (toolkit.spark_sql);
+    the definition hash stays DuckDB's, so switching engines keeps a check's state."""
+    if check.source.engine.name != "spark":
+        return stages
+    from .spark_sql import SPARK_STAGES, spark_stage
+
+    return tuple(spark_stage(check, s, columns) if s.name in SPARK_STAGES else s for s in stages)
 
 
 def _stage(name: str, text: str) -> Stage:

@@ -12,7 +12,6 @@ SELECT
 coalesce("is_bot", false) AS __excluded,
     "rebuffer_ms",
     "play_ms",
-    "rebuffer_ms",
     filename AS __file
 FROM read_parquet($files, hive_partitioning = true, union_by_name = true, filename = true);
 

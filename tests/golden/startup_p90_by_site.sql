@@ -12,7 +12,6 @@ SELECT
 coalesce("is_bot", false) AS __excluded,
     "site",
     "startup_ms",
-    "startup_ms",
     filename AS __file
 FROM read_parquet($files, hive_partitioning = true, union_by_name = true, filename = true);
 

@@ -13,7 +13,6 @@ coalesce("is_bot", false) AS __excluded,
     "site",
     "title_id",
     "error_code",
-    "error_code",
     filename AS __file
 FROM read_parquet($files, hive_partitioning = true, union_by_name = true, filename = true);
 
