@@ -152,9 +152,9 @@ def _on_engine(check: Check, stages: tuple[Stage, ...], columns: list[str]) -> t
     the definition hash stays DuckDB's, so switching engines keeps a check's state."""
     if check.source.engine.name != "spark":
         return stages
-    from .spark_sql import SPARK_STAGES, spark_stage
+    from .spark_sql import SPARK_STAGES, mark_reuse, spark_stage
 
-    return tuple(spark_stage(check, s, columns) if s.name in SPARK_STAGES else s for s in stages)
+    return mark_reuse(tuple(spark_stage(check, s, columns) if s.name in SPARK_STAGES else s for s in stages))
 
 
 def _stage(name: str, text: str) -> Stage:

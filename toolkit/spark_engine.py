@@ -78,7 +78,7 @@ def _read(spark: Any, con: duckdb.DuckDBPyConnection, statement: SparkStatement,
 def _spark_sql(spark: Any, con: duckdb.DuckDBPyConnection, statement: SparkStatement,
                params: dict[str, Any]) -> None:
     spark.sql(statement.sql)
-    if statement.name:
+    if statement.name and statement.keep:
         spark.table(statement.name).localCheckpoint(eager=True).createOrReplaceTempView(statement.name)
 
 

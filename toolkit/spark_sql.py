@@ -22,7 +22,7 @@ from __future__ import annotations
 
 import os
 import re
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import sqlglot
 from sqlglot import exp, transforms
@@ -61,6 +61,7 @@ class SparkStatement(Statement):
     action: str
     name: str | None = None
     base: str | None = None
+    keep: bool = True
 
 
 class _Generator(Spark.Generator):  # type: ignore[name-defined,misc]
@@ -189,6 +190,24 @@ def spark_stage(check: Check, duck: Stage, columns: list[str] | None = None) -> 
     preamble = plan[:_DIRECTIVE.search(plan).start()].strip() if _DIRECTIVE.search(plan) else ""
     text = "\n\n".join([preamble, *(_shown(s) for s in statements)]).strip() + "\n"
     return Stage(duck.name, text, tuple(statements))
+
+
+def mark_reuse(stages: tuple[Stage, ...]) -> tuple[Stage, ...]:
+    """Materialize a check's Spark view only where two later steps read it; a view read once is
+    computed inside the step that reads it (each Spark job costs more than the rows it moves).
+    The source stage's views are read by every check of the run and are always kept."""
+    steps = [s for stage in stages if stage.name != "source" for s in stage.once]
+    out = []
+    for stage in stages:
+        once = []
+        for statement in stage.once:
+            if isinstance(statement, SparkStatement) and statement.action == "spark" and stage.name != "source":
+                later = steps[steps.index(statement) + 1:]
+                readers = sum(bool(re.search(rf"\b{statement.name}\b", s.sql)) for s in later)
+                statement = replace(statement, keep=readers > 1)
+            once.append(statement)
+        out.append(replace(stage, once=tuple(once)))
+    return tuple(out)
 
 
 def _context(check: Check, columns: list[str] | None) -> dict[str, object]:
