@@ -155,3 +155,23 @@ def test_spark_in_two_runs_gives_one_duckdb_run(tmp_path: Path, lake: Path, chec
     second = run(load_project(file))
     assert (first.files_read, second.files_read) == (len(days) // 2, len(days) - len(days) // 2)
     assert_same_results(compare(duckdb_once, file.parent / "warehouse.duckdb"))
+
+
+@pytest.mark.parametrize("values", [
+    [3.5], [1.0, 2.0], [2.0, 2.0, 2.0], [1.0, 2.0, 2.0, 2.0, 10.0], [5.0, 1.0, None, 1.0, 9.0, 9.0, 9.0],
+    [0.1 * i for i in range(37)],
+])
+def test_sparks_percentile_is_duckdbs_quantile_cont(values: list[float | None]) -> None:
+    """The measure's translation, on ties and small n: exact, linearly interpolated, NULLs left out."""
+    from toolkit.model import Engine
+    from toolkit.spark_engine import session
+    from toolkit.spark_sql import translate
+
+    rows = ", ".join(f"({'NULL' if v is None else repr(v)}::DOUBLE)" for v in values)
+    quantiles = ", ".join(f"quantile_cont(x, {q}) AS q{i}" for i, q in enumerate((0.01, 0.1, 0.25, 0.5, 0.9, 0.95, 0.99)))
+    sql = f"SELECT {quantiles} FROM (VALUES {rows}) AS t(x)"
+    expected = duckdb.sql(sql).fetchall()[0]
+    spark = session(Engine("spark", "local[2]", (("spark.sql.shuffle.partitions", "4"), ("spark.driver.memory", "1g"),
+                                                  ("spark.sql.codegen.wholeStage", "false"))))
+    got = tuple(spark.sql(translate(sql)).collect()[0])
+    assert got == pytest.approx(expected, rel=1e-12, abs=1e-12)

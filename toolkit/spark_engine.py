@@ -88,6 +88,7 @@ def _to_spark(spark: Any, con: duckdb.DuckDBPyConnection, statement: SparkStatem
     import pyarrow as pa
 
     wanted = {k: params[k] for k in statement.params}
+    _finish_pending(con)
     table = con.sql(statement.sql, params=wanted).to_arrow_table()
     if table.num_rows == 0:  # Spark cannot take an Arrow table without a batch
         table = pa.Table.from_batches([pa.RecordBatch.from_pylist([], schema=table.schema)])
@@ -97,7 +98,16 @@ def _to_spark(spark: Any, con: duckdb.DuckDBPyConnection, statement: SparkStatem
 def _to_duckdb(spark: Any, con: duckdb.DuckDBPyConnection, statement: SparkStatement,
                params: dict[str, Any]) -> None:
     """Spark rows as an Arrow relation the next DuckDB statement reads."""
-    con.register(statement.name, spark.sql(statement.sql).toArrow())
+    rows = spark.sql(statement.sql).toArrow()
+    _finish_pending(con)
+    con.register(statement.name, rows)
+
+
+def _finish_pending(con: duckdb.DuckDBPyConnection) -> None:
+    """The runner reads one row of some results; DuckDB 2 wants them finished before the next query."""
+    finish = getattr(con, "complete", None)
+    if finish is not None:
+        finish()
 
 
 _STEPS = {"read": _read, "spark": _spark_sql, "to-spark": _to_spark, "to-duckdb": _to_duckdb}
