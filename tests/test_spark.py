@@ -189,3 +189,28 @@ def test_sparks_percentile_is_duckdbs_quantile_cont(values: list[float | None]) 
                                                   ("spark.sql.codegen.wholeStage", "false"))))
     got = tuple(spark.sql(translate(sql)).collect()[0])
     assert got == pytest.approx(expected, rel=1e-12, abs=1e-12)
+
+
+def test_a_spark_failure_names_the_stage_and_writes_nothing(tmp_path: Path) -> None:
+    """Spark runs in ANSI mode: dividing by zero fails the run; the warehouse keeps only the failed run."""
+    from conftest import FIXTURE_LAKE, write_project
+
+    from toolkit.problems import DataError
+
+    text = PROJECT.format(checks="checks/", engine=SPARK, lake=FIXTURE_LAKE).replace(
+        "exclude: is_bot OR regexp_matches(user_agent, '(?i)(bot|crawler|spider)')",
+        "exclude: is_bot OR 1 / (play_ms - play_ms) > 0")
+    file = write_project(tmp_path, {"errors.yml": """\
+        check: errors
+        source: sessions
+        by: [site]
+        measure: {kind: rate, bad: error_code IS NOT NULL}
+        window: {every: 1h}
+        baseline: {method: p_chart, history: 10, min_history: 3}
+        """}, project=text)
+    with pytest.raises(DataError, match=r"source sessions, stage source \(Spark\): .*DIVIDE_BY_ZERO"):
+        run(load_project(file))
+    con = duckdb.connect(str(tmp_path / "warehouse.duckdb"), read_only=True)
+    assert con.execute("SELECT status FROM runs").fetchall() == [("failed",)]
+    assert con.execute("SELECT (SELECT count(*) FROM windows) + (SELECT count(*) FROM files_read) "
+                       "+ (SELECT count(*) FROM check_state)").fetchone() == (0,)
