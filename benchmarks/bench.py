@@ -11,7 +11,9 @@ fresh process so peak memory (max RSS) is its own:
   increment  the catalogue over 20 days, then one incremental run adding the 21st
 
 and prints seconds, peak memory and the ratios title/floor, catalogue/title, increment/catalogue.
-A benchmark, not a test: nothing here asserts a time.
+With ``--spark MASTER`` (e.g. ``local[2]``) it also times ``spark``: the catalogue with
+``engine: spark`` on a fresh warehouse (the Spark driver's memory is not in the peak shown), and
+the ratio spark/catalogue. A benchmark, not a test: nothing here asserts a time.
 """
 
 from __future__ import annotations
@@ -63,6 +65,7 @@ def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     parser.add_argument("--sessions", type=int, default=2_000_000)
     parser.add_argument("--workdir", type=Path, default=None)
+    parser.add_argument("--spark", metavar="MASTER", default=None, help="also time engine: spark at this master")
     args = parser.parse_args()
     from toolkit.demo import prepare_workdir, write_project
     from toolkit.warehouse_demo.generate import build_lake
@@ -94,6 +97,15 @@ def main() -> None:
         "catalogue/title": results["catalogue"][0] / results["title"][0],
         "increment/catalogue": results["increment"][0] / results["catalogue"][0],
     }
+    if args.spark:
+        spark_project = workdir / "plimsoll-spark.yml"
+        spark_project.write_text(
+            project.read_text().replace("warehouse: warehouse.duckdb", "warehouse: warehouse-spark.duckdb")
+            + f"engine: spark\nspark_master: {args.spark}\nspark_conf:\n  spark.sql.shuffle.partitions: 4\n")
+        for stale in workdir.glob("warehouse-spark.duckdb*"):
+            stale.unlink()
+        results["spark"] = measured(RUN, str(spark_project))
+        ratios["spark/catalogue"] = results["spark"][0] / results["catalogue"][0]
     for name, (seconds, mib) in results.items():
         print(f"{name:<10} {seconds:8.2f} s  {mib:8.0f} MiB peak")
     for name, value in ratios.items():

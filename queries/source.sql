@@ -7,7 +7,7 @@
 CREATE OR REPLACE TEMP TABLE lake_rows AS
 SELECT
     {{ source.session_id | ident }}::VARCHAR AS __session_id,
-    md5_number({{ source.session_id | ident }}::VARCHAR) AS __id_hash,
+    md5({{ source.session_id | ident }}::VARCHAR) AS __id_hash,
     {{ source.event_time | ident }}::TIMESTAMP AS __event_time,
     {% if source.exclude %}coalesce({{ source.exclude.sql }}, false){% else %}false{% endif %} AS __excluded,
 {% for column in columns %}

@@ -149,6 +149,12 @@ PROJECT_CASES = [
     ("source-event-time-not-time", "warehouse: w.duckdb\nsources:\n  sessions:\n    path: {lake}\n    session_id: session_id\n    event_time: site\n", 6, "is VARCHAR, not a timestamp"),
     ("source-no-files", "warehouse: w.duckdb\nsources:\n  sessions:\n    path: nowhere/\n    session_id: session_id\n    event_time: ended_at\n", 4, "no Parquet files at 'nowhere/'"),
     ("source-bad-exclude", "warehouse: w.duckdb\nsources:\n  sessions:\n    path: {lake}\n    session_id: session_id\n    event_time: ended_at\n    exclude: is_bot; DROP TABLE runs\n", 7, "single expression"),
+    ("engine-unknown", "warehouse: w.duckdb\nengine: flink\nsources:\n  sessions:\n    path: {lake}\n    session_id: session_id\n    event_time: ended_at\n", 2, "'flink' is not one of duckdb, spark"),
+    ("spark-master-without-spark", "warehouse: w.duckdb\nspark_master: local[2]\nsources:\n  sessions:\n    path: {lake}\n    session_id: session_id\n    event_time: ended_at\n", 2, "spark_master applies to engine: spark (this project's engine is duckdb)"),
+    ("spark-conf-without-spark", "warehouse: w.duckdb\nengine: duckdb\nspark_conf:\n  spark.executor.memory: 4g\nsources:\n  sessions:\n    path: {lake}\n    session_id: session_id\n    event_time: ended_at\n", 3, "spark_conf applies to engine: spark"),
+    ("spark-conf-not-spark-key", "warehouse: w.duckdb\nengine: spark\nspark_conf:\n  executor.memory: 4g\nsources:\n  sessions:\n    path: {lake}\n    session_id: session_id\n    event_time: ended_at\n", 4, "spark_conf.executor.memory: Spark settings start with 'spark.'"),
+    ("spark-conf-nested", "warehouse: w.duckdb\nengine: spark\nspark_conf:\n  spark.x: [1, 2]\nsources:\n  sessions:\n    path: {lake}\n    session_id: session_id\n    event_time: ended_at\n", 4, "spark_conf.spark.x: expected one value, got a list"),
+    ("spark-exclude-untranslatable", "warehouse: w.duckdb\nengine: spark\nsources:\n  sessions:\n    path: {lake}\n    session_id: session_id\n    event_time: ended_at\n    exclude: jaccard(site, 'kids') > 0.9\n", 8, "sources.sessions.exclude: cannot run on engine spark:"),
     ("checks-folder-missing", "warehouse: w.duckdb\nchecks: elsewhere/\nsources:\n  sessions:\n    path: {lake}\n    session_id: session_id\n    event_time: ended_at\n", 2, "checks folder 'elsewhere/' does not exist"),
 ]
 
@@ -214,3 +220,40 @@ def test_source_columns_may_not_use_the_reserved_prefix(tmp_path: Path) -> None:
     assert [str(p) for p in caught.value.problems] == [
         f"{project}:4: source 'sessions': column names starting with '__' are reserved for Plimsoll's own "
         "columns: __file"]
+
+
+def test_a_check_expression_spark_cannot_run_is_refused_with_its_line(make_project) -> None:
+    from conftest import PROJECT, FIXTURE_LAKE
+
+    text = variant("  bad: error_code IS NOT NULL", "  bad: damerau_levenshtein(error_code, 'E1') < 2")
+    project = make_project({"title_errors.yml": text}, project="engine: spark\n" + PROJECT.format(lake=FIXTURE_LAKE))
+    with pytest.raises(ProjectInvalid) as caught:
+        load_project(project)
+    messages = [str(p) for p in caught.value.problems]
+    assert any("checks/title_errors.yml:7: measure.bad: cannot run on engine spark:" in m for m in messages), messages
+
+
+def test_engine_spark_without_pyspark_names_the_extra(make_project, monkeypatch: pytest.MonkeyPatch) -> None:
+    import importlib.util
+
+    from conftest import PROJECT, FIXTURE_LAKE
+
+    real = importlib.util.find_spec
+    monkeypatch.setattr(importlib.util, "find_spec", lambda name, *a: None if name == "pyspark" else real(name, *a))
+    project = make_project({"title_errors.yml": GOOD}, project="engine: spark\n" + PROJECT.format(lake=FIXTURE_LAKE))
+    with pytest.raises(ProjectInvalid) as caught:
+        load_project(project)
+    (problem,) = caught.value.problems
+    assert str(problem) == (f"{project}:1: engine: spark needs pyspark, which is not installed: "
+                            "pip install 'plimsoll[spark]' (Java 17 or later must be on the machine)")
+
+
+def test_engine_spark_loads_with_its_settings(make_project) -> None:
+    from conftest import PROJECT, FIXTURE_LAKE
+
+    text = "engine: spark\nspark_master: spark://lake-host:7077\nspark_conf:\n  spark.executor.memory: 4g\n  spark.sql.adaptive.enabled: true\n"
+    project = load_project(make_project({"title_errors.yml": GOOD}, project=text + PROJECT.format(lake=FIXTURE_LAKE)))
+    engine = project.checks["title_errors"].source.engine
+    assert engine == project.engine
+    assert (engine.name, engine.spark_master) == ("spark", "spark://lake-host:7077")
+    assert engine.spark_conf == (("spark.executor.memory", "4g"), ("spark.sql.adaptive.enabled", "true"))

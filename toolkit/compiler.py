@@ -111,7 +111,9 @@ def columns_read(checks: list[Check]) -> list[str]:
         m = check.measure
         exprs = [e for e in (check.where, m.bad, m.numerator, m.denominator, m.of) if e is not None]
         names = [*check.by, *([m.split] if m.split else []), *(c for e in exprs for c in e.columns)]
-        seen += [n for n in names if n not in seen]
+        for name in names:
+            if name not in seen:
+                seen.append(name)
     return seen
 
 
@@ -120,6 +122,10 @@ def compile_source(checks: list[Check]) -> Stage:
     sources = {c.source.name for c in checks}
     if len(sources) != 1:
         raise ValueError(f"one source at a time, not {sorted(sources)}")
+    return _on_engine(checks[0], (_source_stage(checks),), columns_read(checks))[0]
+
+
+def _source_stage(checks: list[Check]) -> Stage:
     text = _env().get_template("source.sql").render(source=checks[0].source, columns=columns_read(checks))
     return _stage("source", text)
 
@@ -135,14 +141,25 @@ def compile_check(check: Check) -> CompiledCheck:
         "guard": check.guard,
         "lifecycle": check.lifecycle,
     }
-    stages = (compile_source([check]),) + tuple(
+    stages = (_source_stage([check]),) + tuple(
         _stage(name, _env().get_template(f"{name}.sql").render(context)) for name in CHECK_STAGES
     )
-    return CompiledCheck(check.name, stages, definition_hash(stages))
+    computed = _on_engine(check, stages, columns_read([check]))
+    return CompiledCheck(check.name, computed, definition_hash(stages))
+
+
+def _on_engine(check: Check, stages: tuple[Stage, ...], columns: list[str]) -> tuple[Stage, ...]:
+    """With ``engine: spark`` the stages that touch every session become Spark SQL (toolkit.spark_sql);
+    the definition hash stays DuckDB's, so switching engines keeps a check's state."""
+    if check.source.engine.name != "spark":
+        return stages
+    from .spark_sql import SPARK_STAGES, mark_reuse, spark_stage
+
+    return mark_reuse(tuple(spark_stage(check, s, columns) if s.name in SPARK_STAGES else s for s in stages))
 
 
 def definition_hash(stages: tuple[Stage, ...]) -> str:
-    """A hash of the SQL that forms the check's windows and verdicts (stages source to breach).
+    """A hash of the DuckDB SQL that forms the check's windows and verdicts (stages source to breach).
 
     When it changes, windows already stored no longer match what the check computes, so the
     runner asks for a full refresh. The life cycle and severity may change without one: they only

@@ -24,8 +24,22 @@ class Expr:
 
 
 @dataclass(frozen=True)
+class Engine:
+    """Where the stages that touch every session run (source, scan, window, measure).
+
+    ``duckdb``: in process, on the warehouse connection. ``spark``: as Spark SQL on the cluster at
+    ``spark_master``, reading the same Parquet; the windows come back to the warehouse, where the
+    baselines and the life cycle run as before.
+    """
+
+    name: str = "duckdb"
+    spark_master: str | None = None
+    spark_conf: tuple[tuple[str, str], ...] = ()
+
+
+@dataclass(frozen=True)
 class Source:
-    """A table of sessions in the lake."""
+    """A table of sessions in the lake, and the engine that reads it (the project's)."""
 
     name: str
     path: str
@@ -33,6 +47,7 @@ class Source:
     event_time: str
     exclude: Expr | None
     columns: dict[str, str] = field(default_factory=dict, hash=False, compare=False)
+    engine: Engine = field(default_factory=Engine)
     # Read only sessions before this data time; set by a backtest replaying the lake up to a moment.
     until: datetime | None = None
 
@@ -150,3 +165,4 @@ class Project:
     threads: int | None = None
     webhooks: tuple[Webhook, ...] = ()
     notify: Notify = field(default_factory=Notify)
+    engine: Engine = field(default_factory=Engine)

@@ -8,6 +8,7 @@ against their source's Parquet schema and bound by DuckDB to the right type.
 from __future__ import annotations
 
 import difflib
+import importlib.util
 import re
 import urllib.parse
 from datetime import timedelta
@@ -18,11 +19,12 @@ import duckdb
 
 from . import lake
 from .expressions import ExpressionError, parse_expression, unknown_column
-from .model import Baseline, Check, Expr, Guard, Lifecycle, Measure, Notify, Project, Source, Webhook, Window
+from .model import Baseline, Check, Engine, Expr, Guard, Lifecycle, Measure, Notify, Project, Source, Webhook, Window
 from .problems import Problem, ProjectInvalid, display_path
 from .registry import BASELINES, DIRECTIONS, MEASURES, SEVERITIES, Key
 from .yamlsource import KeyPath, Located, dotted, load
 
+ENGINES = ("duckdb", "spark")
 PROJECT_KEYS = (
     Key("warehouse", "text", "the DuckDB file holding windows, alerts, runs and state", True),
     Key("checks", "text", "folder of check files (*.yml)", False, "checks/"),
@@ -31,6 +33,11 @@ PROJECT_KEYS = (
     Key("threads", "int", "DuckDB threads for runs (default: all cores)", minimum=1),
     Key("webhooks", "list", "endpoints that `plimsoll notify` POSTs alert events to"),
     Key("notify", "mapping", "which alert events `plimsoll notify` sends and how it retries"),
+    Key("engine", "choice", "where the stages that touch every session run: duckdb or spark", False,
+        "duckdb", ENGINES),
+    Key("spark_master", "text", "engine spark: the Spark master URL, e.g. local[2] or spark://host:7077 "
+        "(default local[*])"),
+    Key("spark_conf", "mapping", "engine spark: Spark settings for the session, e.g. spark.executor.memory: 4g"),
 )
 WEBHOOK_KEYS = (
     Key("url", "text", "http:// or https:// URL that receives a JSON POST per alert event", True),
@@ -218,6 +225,14 @@ class _Binder:
         except ExpressionError as err:
             section.error(path, f"{dotted(path)}: {err}")
             return None
+        if self.source.engine.name == "spark":
+            from .spark_sql import TranslationError, spark_expression
+
+            try:
+                spark_expression(parsed.sql)
+            except TranslationError as err:
+                section.error(path, f"{dotted(path)}: cannot run on engine spark: {err}")
+                return None
         if self.table is None:
             return parsed
         try:
@@ -251,8 +266,9 @@ def load_project(path: Path | str = "plimsoll.yml", check_schema: bool = True) -
     top = _Section(doc, (), doc.data if doc.data is not None else {}, PROJECT_KEYS, problems)
     warehouse, checks_dir = top.get("warehouse"), top.get("checks")
     memory_limit, threads = top.get("memory_limit"), top.get("threads")
+    engine = _engine(top)
     con = duckdb.connect()
-    sources = _load_sources(doc, top.get("sources") or {}, root, con, problems, check_schema)
+    sources = _load_sources(doc, top.get("sources") or {}, root, con, problems, check_schema, engine)
     checks: dict[str, Check] = {}
     folder = (root / (checks_dir or "checks/")).resolve()
     if checks_dir is not None and not folder.is_dir():
@@ -270,7 +286,7 @@ def load_project(path: Path | str = "plimsoll.yml", check_schema: bool = True) -
     return Project(
         file=file.resolve(), root=root, warehouse=(root / warehouse).resolve(), checks_dir=folder,
         sources=sources, checks=checks, memory_limit=memory_limit, threads=threads,
-        webhooks=webhooks, notify=notify,
+        webhooks=webhooks, notify=notify, engine=engine,
     )
 
 
@@ -314,8 +330,30 @@ def validate_check(project: Project, doc: Located) -> tuple[Check | None, list[P
     return check, problems
 
 
+def _engine(top: _Section) -> Engine:
+    """The ``engine`` keys: Spark settings only with ``engine: spark``, and pyspark installed for it."""
+    name, master, conf = top.get("engine") or "duckdb", top.get("spark_master"), top.get("spark_conf")
+    if name != "spark":
+        for key in ("spark_master", "spark_conf"):
+            if key in top.raw:
+                top.error((key,), f"{key} applies to engine: spark (this project's engine is {name})")
+        return Engine(name)
+    if importlib.util.find_spec("pyspark") is None:
+        top.error(("engine",), "engine: spark needs pyspark, which is not installed: "
+                  "pip install 'plimsoll[spark]' (Java 17 or later must be on the machine)")
+    settings: list[tuple[str, str]] = []
+    for key, value in (conf or {}).items():
+        if not str(key).startswith("spark."):
+            top.error(("spark_conf", key), f"spark_conf.{key}: Spark settings start with 'spark.'")
+        elif isinstance(value, (dict, list)) or value is None:
+            top.error(("spark_conf", key), f"spark_conf.{key}: expected one value, got {_kind(value)}")
+        else:
+            settings.append((str(key), str(value).lower() if isinstance(value, bool) else str(value)))
+    return Engine(name, master, tuple(settings))
+
+
 def _load_sources(doc: Located, raw: dict[str, Any], root: Path, con: duckdb.DuckDBPyConnection,
-                  problems: list[Problem], check_schema: bool) -> dict[str, Source]:
+                  problems: list[Problem], check_schema: bool, engine: Engine) -> dict[str, Source]:
     sources: dict[str, Source] = {}
     if not raw:
         problems.append(Problem(doc.file, doc.line(("sources",)), "at least one source is needed"))
@@ -343,13 +381,13 @@ def _load_sources(doc: Located, raw: dict[str, Any], root: Path, con: duckdb.Duc
             if unreadable:
                 # keep the source, without columns, so its checks report only their own problems
                 section.error((*section.path, "path"), unreadable)
-                sources[name] = Source(name, location, session_id or "", event_time or "", None, {})
+                sources[name] = Source(name, location, session_id or "", event_time or "", None, {}, engine)
                 continue
         reserved = sorted(c for c in columns if c.startswith("__"))
         if reserved:
             section.error((*section.path, "path"), f"source '{name}': column names starting with '__' are "
                           f"reserved for Plimsoll's own columns: {', '.join(reserved)}")
-        source = Source(name, location, session_id or "", event_time or "", None, columns)
+        source = Source(name, location, session_id or "", event_time or "", None, columns, engine)
         binder = _Binder(con, source)
         if check_schema:
             binder.column(section, session_id, "session_id")
@@ -357,7 +395,7 @@ def _load_sources(doc: Located, raw: dict[str, Any], root: Path, con: duckdb.Duc
                 section.error((*section.path, "event_time"),
                               f"sources.{name}.event_time: column '{event_time}' is {columns[event_time]}, not a timestamp")
         excl = binder.expr(section, exclude, "exclude", "boolean")
-        sources[name] = Source(name, location, session_id or "", event_time or "", excl, columns)
+        sources[name] = Source(name, location, session_id or "", event_time or "", excl, columns, engine)
     return sources
 
 

@@ -14,7 +14,7 @@ from typing import Any
 
 import duckdb
 
-from . import lake, warehouse
+from . import lake, spark_engine, warehouse
 from .compiler import CompiledCheck, Statement, columns_read, compile_check, compile_source
 from .model import Check, Project, Source
 from .problems import DataError, PlimsollError, Problem, ProjectInvalid
@@ -319,6 +319,8 @@ def _settle(con: duckdb.DuckDBPyConnection, check: Check, loop: list[tuple[str, 
 
 def _execute(con: duckdb.DuckDBPyConnection, who: str, stage: str, statement: Statement,
              params: dict[str, Any]) -> tuple | None:
+    if isinstance(statement, spark_engine.SparkStatement):  # `engine: spark`: a step on Spark
+        return spark_engine.execute(con, who, stage, statement, params)
     wanted = {k: params[k] for k in statement.params}
     try:
         cursor = con.execute(statement.sql, wanted) if wanted else con.execute(statement.sql)

@@ -10,7 +10,7 @@
 CREATE OR REPLACE TEMP TABLE lake_rows AS
 SELECT
     "session_id"::VARCHAR AS __session_id,
-    md5_number("session_id"::VARCHAR) AS __id_hash,
+    md5("session_id"::VARCHAR) AS __id_hash,
     "ended_at"::TIMESTAMP AS __event_time,
 coalesce("is_bot", false) AS __excluded,
     "cdn",

@@ -10,11 +10,10 @@
 CREATE OR REPLACE TEMP TABLE lake_rows AS
 SELECT
     "session_id"::VARCHAR AS __session_id,
-    md5_number("session_id"::VARCHAR) AS __id_hash,
+    md5("session_id"::VARCHAR) AS __id_hash,
     "ended_at"::TIMESTAMP AS __event_time,
 coalesce("is_bot", false) AS __excluded,
     "site",
-    "startup_ms",
     "startup_ms",
     filename AS __file
 FROM read_parquet($files, hive_partitioning = true, union_by_name = true, filename = true);
