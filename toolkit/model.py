@@ -24,6 +24,20 @@ class Expr:
 
 
 @dataclass(frozen=True)
+class Storage:
+    """How ``s3://`` sources are reached; secrets are named by environment variable, never held."""
+
+    endpoint_url: str | None = None
+    region: str | None = None
+    profile: str | None = None
+    access_key_env: str | None = None
+    secret_key_env: str | None = None
+    session_token_env: str | None = None
+    anonymous: bool = False
+    addressing_style: str = "auto"
+
+
+@dataclass(frozen=True)
 class Source:
     """A table of sessions in the lake."""
 
@@ -33,6 +47,7 @@ class Source:
     event_time: str
     exclude: Expr | None
     columns: dict[str, str] = field(default_factory=dict, hash=False, compare=False)
+    storage: Storage | None = None  # the project's storage settings, for s3:// paths
 
 
 @dataclass(frozen=True)
@@ -127,3 +142,9 @@ class Project:
     checks: dict[str, Check]
     memory_limit: str | None = None
     threads: int | None = None
+    storage: Storage | None = None
+
+    @property
+    def remote(self) -> bool:
+        """Whether any source is read from object storage (so connections need the filesystem)."""
+        return any(s.path.startswith("s3://") for s in self.sources.values())

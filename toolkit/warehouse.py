@@ -6,9 +6,10 @@ from pathlib import Path
 
 import duckdb
 
+from . import storage
 from .compiler import template_folder
 from .model import Project
-from .problems import RunLocked
+from .problems import DataError, RunLocked
 
 TABLES = ("runs", "run_checks", "files_read", "check_state", "key_state", "carry", "windows",
           "alerts", "alert_events")
@@ -31,6 +32,12 @@ def connect(project: Project, read_only: bool = False) -> duckdb.DuckDBPyConnect
         con.execute(f"SET memory_limit = '{_setting(project.memory_limit)}'")
     if project.threads:
         con.execute(f"SET threads = {int(project.threads)}")
+    if project.remote and not read_only:
+        try:
+            storage.register(con, project.storage)
+        except storage.StorageError as err:
+            con.close()
+            raise DataError(f"{project.file.name}: storage: {err}") from None
     if not read_only:
         ensure_schema(con)
     return con
