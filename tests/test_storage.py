@@ -294,3 +294,13 @@ def test_storage_keys_are_validated_with_file_and_line(tmp_path, case, monkeypat
     with pytest.raises(ProjectInvalid) as err:
         load_project(tmp_path / "plimsoll.yml", check_schema=case == "unset variable")
     assert expected in str(err.value).splitlines()
+
+
+def test_an_error_raised_inside_s3fs_reads_as_its_exception_line():
+    from toolkit.problems import engine_message
+
+    raised = duckdb.Error("Traceback (most recent call last):\n  File \"s3fs/core.py\", line 216, in _error_wrapper\n"
+                          "    raise err\nFileNotFoundError: The specified key does not exist.\n\n"
+                          "LINE 1: SELECT * FROM read_parquet(...)")
+    assert engine_message(raised) == "FileNotFoundError: The specified key does not exist."
+    assert engine_message(duckdb.Error("Binder Error: column x\nLINE 1: ...")) == "Binder Error: column x"

@@ -327,19 +327,17 @@ def _load_sources(doc: Located, raw: dict[str, Any], root: Path, con: duckdb.Duc
             files = (_remote_files(section, name, location, settings, con) if remote
                      else [f.path for f in lake.list_files(location)])
             unreadable = None
-            if files is None:
-                unreadable = ""  # already reported
-            elif not files:
+            if files == []:
                 unreadable = f"source '{name}': no Parquet files at '{where}'"
-            else:
+            elif files is not None:
                 try:
                     columns = lake.read_schema(con, files)
                 except duckdb.Error as err:
                     unreadable = f"source '{name}': cannot read Parquet schema: {engine_message(err)}"
-            if unreadable is not None:
+            if unreadable:
+                section.error((*section.path, "path"), unreadable)
+            if files is None or unreadable:
                 # keep the source, without columns, so its checks report only their own problems
-                if unreadable:
-                    section.error((*section.path, "path"), unreadable)
                 sources[name] = Source(name, location, session_id or "", event_time or "", None, {}, held)
                 continue
         reserved = sorted(c for c in columns if c.startswith("__"))
