@@ -10,7 +10,7 @@
 CREATE OR REPLACE TEMP TABLE open_alerts AS
 SELECT *
 FROM alerts
-WHERE check_name = {{ check_lit }} AND status = 'open';
+WHERE check_name = {{ check_lit }} AND status = 'open' AND definition_hash = $definition;
 
 CREATE OR REPLACE TEMP TABLE steps AS
 WITH relevant AS (
@@ -160,7 +160,8 @@ FROM merged;
 CREATE OR REPLACE TEMP TABLE alert_rows AS
 SELECT
     coalesce(prior_alert_id, substr(md5(to_json({
-        'check': {{ check_lit }}, 'key': key, 'split': split_value, 'opened_at': opened_at, 'seq': opened_seq
+        'check': {{ check_lit }}, 'key': key, 'split': split_value, 'opened_at': opened_at, 'seq': opened_seq,
+        'definition': $definition
     })::VARCHAR), 1, 16)) AS alert_id,
     {{ check_lit }} AS check_name,
     {{ check.severity | literal }} AS severity,
@@ -186,6 +187,7 @@ SELECT
     coalesce(first_run_id, $run_id) AS first_run_id,
     $run_id AS last_run_id,
     CASE WHEN closed_at IS NULL AND NOT expires_at_watermark THEN healthy_streak END AS healthy_streak,
+    $definition AS definition_hash,
     episode,
     touched OR expires_at_watermark AS touched,
     close_value,

@@ -1,10 +1,13 @@
 -- ── stage 0 · source ───────────────────────────────────────────────────────────────────────
 -- Source {{ source.name }}: the sessions of the files not read before ($files), read once for
--- every check that reads the same files, each session id once. Rows without a session id or event
--- time are counted and skipped; excluded sessions never count.
+-- every check that reads the same files ($reader is the first of them), each session id once, in
+-- this run and across runs. Rows without a session id or event time are counted and skipped;
+-- excluded sessions never count.
+{% set source_lit = source.name | literal %}
 CREATE OR REPLACE TEMP TABLE lake_rows AS
 SELECT
     {{ source.session_id | ident }}::VARCHAR AS __session_id,
+    md5_number({{ source.session_id | ident }}::VARCHAR) AS __id_hash,
     {{ source.event_time | ident }}::TIMESTAMP AS __event_time,
     {% if source.exclude %}coalesce({{ source.exclude.sql }}, false){% else %}false{% endif %} AS __excluded,
 {% for column in columns %}
@@ -13,25 +16,35 @@ SELECT
     filename AS __file
 FROM read_parquet($files, hive_partitioning = true, union_by_name = true, filename = true);
 
--- One copy of each session id: the earliest, then by file name, so every run keeps the same one.
+-- Session ids already read, in an earlier run, from a file these checks have read: duplicates.
+CREATE OR REPLACE TEMP TABLE read_before AS
+SELECT DISTINCT id_hash
+FROM session_ids
+WHERE source_name = {{ source_lit }}
+  AND first_path IN (SELECT path FROM files_read WHERE check_name = $reader)
+  AND id_hash IN (SELECT __id_hash FROM lake_rows WHERE __id_hash IS NOT NULL);
+
+-- One copy of each new session id: the earliest, then by file name, so every run keeps the same one.
 CREATE OR REPLACE TEMP TABLE repeated_ids AS
-SELECT __session_id
+SELECT __id_hash
 FROM lake_rows
-WHERE __session_id IS NOT NULL AND __event_time IS NOT NULL
-GROUP BY __session_id
+WHERE __id_hash IS NOT NULL AND __event_time IS NOT NULL
+GROUP BY __id_hash
 HAVING count(*) > 1;
 
 CREATE OR REPLACE TEMP TABLE lake_sessions AS
 SELECT *
 FROM lake_rows
-WHERE __session_id IS NOT NULL AND __event_time IS NOT NULL
-  AND __session_id NOT IN (SELECT __session_id FROM repeated_ids)
+WHERE __id_hash IS NOT NULL AND __event_time IS NOT NULL
+  AND __id_hash NOT IN (SELECT __id_hash FROM repeated_ids)
+  AND __id_hash NOT IN (SELECT id_hash FROM read_before)
 UNION ALL
 SELECT *
 FROM lake_rows
 WHERE __event_time IS NOT NULL
-  AND __session_id IN (SELECT __session_id FROM repeated_ids)
-QUALIFY row_number() OVER (PARTITION BY __session_id ORDER BY __event_time, __file) = 1;
+  AND __id_hash IN (SELECT __id_hash FROM repeated_ids)
+  AND __id_hash NOT IN (SELECT id_hash FROM read_before)
+QUALIFY row_number() OVER (PARTITION BY __id_hash ORDER BY __event_time, __file) = 1;
 
 CREATE OR REPLACE TEMP TABLE lake_counts AS
 SELECT
@@ -47,3 +60,9 @@ CREATE OR REPLACE TEMP TABLE lake_file_rows AS
 SELECT __file AS path, count(*) AS rows
 FROM lake_rows
 GROUP BY __file;
+
+-- Remember the ids of files no check has read before (hashes only), for the next runs.
+INSERT INTO session_ids
+SELECT {{ source_lit }} AS source_name, __id_hash, __file
+FROM lake_sessions
+WHERE __file NOT IN (SELECT path FROM files_read);

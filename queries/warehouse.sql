@@ -12,6 +12,7 @@ CREATE TABLE IF NOT EXISTS runs (
     duplicate_rows BIGINT,
     late_rows BIGINT,
     invalid_rows BIGINT,
+    changed_files BIGINT,            -- files found changed after an earlier run read them (not re-read)
     windows_written BIGINT,
     alerts_opened BIGINT,
     alerts_closed BIGINT,
@@ -45,6 +46,30 @@ CREATE TABLE IF NOT EXISTS files_read (
     run_id BIGINT,
     rows BIGINT,
     PRIMARY KEY (check_name, path)
+);
+
+CREATE TABLE IF NOT EXISTS changed_files (  -- a file whose size or time differs from when it was read
+    run_id BIGINT,                   -- the run that noticed it
+    check_name VARCHAR,
+    path VARCHAR,
+    size_read BIGINT,
+    modified_read TIMESTAMP,
+    size_now BIGINT,
+    modified_now TIMESTAMP
+);
+
+CREATE TABLE IF NOT EXISTS source_columns (  -- each read column's type, as the source's first file had it
+    source_name VARCHAR,
+    column_name VARCHAR,
+    column_type VARCHAR,
+    first_path VARCHAR,
+    PRIMARY KEY (source_name, column_name)
+);
+
+CREATE TABLE IF NOT EXISTS session_ids (     -- every session id read, hashed, with the file it came from
+    source_name VARCHAR,
+    id_hash UHUGEINT,                -- md5 of the session id: duplicates are found without keeping ids
+    first_path VARCHAR
 );
 
 CREATE TABLE IF NOT EXISTS check_state (
@@ -116,7 +141,7 @@ CREATE TABLE IF NOT EXISTS alerts (
     key_text VARCHAR,
     split_value VARCHAR,
     status VARCHAR,                  -- 'open' | 'closed'
-    close_reason VARCHAR,            -- 'recovered' | 'expired' | 'check removed' | NULL
+    close_reason VARCHAR,            -- 'recovered' | 'expired' | 'check changed' | 'check removed' | NULL
     opened_at TIMESTAMP,             -- data time of the first breaching window's end
     breach_started_at TIMESTAMP,     -- start of the first breaching window
     last_breach_at TIMESTAMP,
@@ -129,7 +154,8 @@ CREATE TABLE IF NOT EXISTS alerts (
     fingerprint VARCHAR,
     first_run_id BIGINT,
     last_run_id BIGINT,
-    healthy_streak BIGINT
+    healthy_streak BIGINT,
+    definition_hash VARCHAR          -- the check's compiled definition when the alert opened
 );
 
 CREATE TABLE IF NOT EXISTS alert_events (

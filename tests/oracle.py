@@ -53,6 +53,7 @@ class OracleCheck:
     min_bad: int = 0
     recover_after: int = 2
     expire_after: timedelta = timedelta(days=7)
+    definition: str = ""                       # the compiled check's definition hash (in alert ids)
     where: RowFn | None = None
     exclude: RowFn | None = None
     severity: str = "medium"
@@ -105,13 +106,15 @@ def key_text(by: tuple[str, ...], values: tuple[str | None, ...]) -> str:
 
 
 def alert_hash(check: str, by: tuple[str, ...], values: tuple[str | None, ...], split: str | None,
-               opened_at: datetime | None, seq: int | None = None) -> str:
-    """First 16 hex of md5 over the JSON of {'check','key','split'[,'opened_at','seq']} as DuckDB writes it."""
+               opened_at: datetime | None, seq: int | None = None, definition: str = "") -> str:
+    """First 16 hex of md5 over the JSON of {'check','key','split'[,'opened_at','seq','definition']}
+    as DuckDB writes it; ``definition`` is the check's compiled-definition hash, an opaque label."""
     key = "{" + ",".join(f"{json.dumps(c)}:{json.dumps(v)}" for c, v in zip(by, values)) + "}"
     parts = [f'"check":{json.dumps(check)}', f'"key":{key}', f'"split":{json.dumps(split)}']
     if opened_at is not None:
         parts.append(f'"opened_at":"{_ts_text(opened_at)}"')
         parts.append(f'"seq":{seq}')
+        parts.append(f'"definition":{json.dumps(definition)}')
     text = "{" + ",".join(parts) + "}"
     return hashlib.md5(text.encode("utf-8")).hexdigest()[:16]
 
@@ -326,7 +329,7 @@ def lifecycle(check: OracleCheck, series: list[Row], w: datetime, ident: dict[st
                 current = {
                     **ident,
                     "alert_id": alert_hash(check.name, ident["_by"], ident["_values"], ident["split_value"], end,
-                                           win["seq"]),
+                                           win["seq"], check.definition),
                     "fingerprint": alert_hash(check.name, ident["_by"], ident["_values"], ident["split_value"], None),
                     "severity": check.severity, "status": "open", "close_reason": None,
                     "opened_at": end, "last_breach_at": end, "closed_at": None, "breach_windows": 1,

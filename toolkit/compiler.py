@@ -56,7 +56,8 @@ class CompiledCheck:
         header = (
             f"-- Plimsoll check {self.check}: compiled SQL, executed by `plimsoll run` as shown.\n"
             "-- Parameters: $files (new Parquet files), $manifest (their size and time), $run_id,\n"
-            "-- $definition (hash of this script). Statements after '@repeat' run until no breach flag changes.\n"
+            "-- $reader (the check whose earlier files decide duplicates), $definition (hash of the SQL\n"
+            "-- up to the breach stage). Statements after '@repeat' run until no breach flag changes.\n"
         )
         return header + "\n".join(stage.text.rstrip() + "\n" for stage in self.stages)
 
@@ -137,8 +138,18 @@ def compile_check(check: Check) -> CompiledCheck:
     stages = (compile_source([check]),) + tuple(
         _stage(name, _env().get_template(f"{name}.sql").render(context)) for name in CHECK_STAGES
     )
-    digest = hashlib.sha256("\n".join(s.text for s in stages).encode()).hexdigest()[:16]
-    return CompiledCheck(check.name, stages, digest)
+    return CompiledCheck(check.name, stages, definition_hash(stages))
+
+
+def definition_hash(stages: tuple[Stage, ...]) -> str:
+    """A hash of the SQL that forms the check's windows and verdicts (stages source to breach).
+
+    When it changes, windows already stored no longer match what the check computes, so the
+    runner asks for a full refresh. The life cycle and severity may change without one: they only
+    shape alerts from now on.
+    """
+    computing = [s.text for s in stages if s.name not in ("lifecycle", "persist")]
+    return hashlib.sha256("\n".join(computing).encode()).hexdigest()[:16]
 
 
 def _stage(name: str, text: str) -> Stage:

@@ -88,3 +88,76 @@ def schema_table(con: duckdb.DuckDBPyConnection, name: str, columns: dict[str, s
     cols = ", ".join(f"{quote_ident(c)} {t}" for c, t in columns.items())
     con.execute(f"CREATE OR REPLACE TEMP TABLE {quote_ident(table)} ({cols})")
     return table
+
+
+# Type families: a column may widen (INTEGER to BIGINT, FLOAT to DOUBLE) between files, not change kind.
+_FAMILIES = (
+    ("number", ("TINYINT", "SMALLINT", "INTEGER", "BIGINT", "HUGEINT", "UTINYINT", "USMALLINT",
+                "UINTEGER", "UBIGINT", "UHUGEINT", "FLOAT", "DOUBLE", "DECIMAL")),
+    ("text", ("VARCHAR",)),
+    ("time", ("TIMESTAMP", "TIMESTAMP_NS", "TIMESTAMP_MS", "TIMESTAMP_S", "TIMESTAMP WITH TIME ZONE", "DATE")),
+    ("boolean", ("BOOLEAN",)),
+)
+
+
+def type_family(duckdb_type: str) -> str:
+    """The kind of a column's type (``DECIMAL(9,2)`` and ``BIGINT`` are both numbers)."""
+    base = duckdb_type.split("(")[0].strip().upper()
+    return next((name for name, members in _FAMILIES if base in members), base)
+
+
+def hive_columns(path: str) -> set[str]:
+    """Partition columns named by the folders of a hive-partitioned path (``day=2026-11-02``)."""
+    return {part.split("=", 1)[0] for part in path.replace("\\", "/").split("/")[:-1] if "=" in part}
+
+
+def file_columns(con: duckdb.DuckDBPyConnection, paths: list[str]) -> dict[str, dict[str, str]]:
+    """Each file's top-level columns and DuckDB types, read from the Parquet footers only.
+
+    A file that is not readable Parquet (truncated, corrupt, not Parquet at all) is named.
+    """
+    try:
+        rows = con.execute(
+            "SELECT file_name, name, duckdb_type FROM parquet_schema($files) "
+            "WHERE duckdb_type IS NOT NULL", {"files": paths}).fetchall()
+    except duckdb.Error:
+        for path in paths:
+            try:
+                con.execute("SELECT 1 FROM parquet_schema($f) LIMIT 1", {"f": [path]}).fetchall()
+            except duckdb.Error as err:
+                detail = str(err).strip().splitlines()[0] if str(err).strip() else type(err).__name__
+                raise DataError(f"{path}: not a readable Parquet file ({detail})") from None
+        raise
+    found: dict[str, dict[str, str]] = {p: {} for p in paths}
+    for path, name, kind in rows:
+        found.setdefault(path, {}).setdefault(name, kind)
+    return found
+
+
+def check_new_files(con: duckdb.DuckDBPyConnection, source_name: str, paths: list[str],
+                    needed: list[str], readers: list[str]) -> None:
+    """Refuse new files that lack a column the checks read, or hold one of another kind of type.
+
+    Without this, reading many files by name would quietly fill a missing column with NULL and
+    widen a mistyped one to text. Types are compared with the first file that had the column, as
+    recorded in ``source_columns``; this run's first file sets them for new columns.
+    """
+    known = {name: (kind, first) for name, kind, first in con.execute(
+        "SELECT column_name, column_type, first_path FROM source_columns WHERE source_name = $s",
+        {"s": source_name}).fetchall()}
+    who = ", ".join(readers)
+    for path, columns in sorted(file_columns(con, paths).items()):
+        partitions = hive_columns(path)
+        for name in needed:
+            if name in partitions:
+                continue
+            if name not in columns:
+                raise DataError(f"{path}: column '{name}' is missing; source '{source_name}' needs it "
+                                f"for {who}")
+            if name not in known:
+                known[name] = (columns[name], path)
+                con.execute("INSERT INTO source_columns VALUES ($s, $c, $t, $p)",
+                            {"s": source_name, "c": name, "t": columns[name], "p": path})
+            elif type_family(columns[name]) != type_family(known[name][0]):
+                raise DataError(f"{path}: column '{name}' is {columns[name]}, but source '{source_name}' "
+                                f"had it as {known[name][0]} (in {known[name][1]})")

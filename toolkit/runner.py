@@ -15,8 +15,8 @@ from typing import Any
 import duckdb
 
 from . import lake, warehouse
-from .compiler import CompiledCheck, Statement, compile_check, compile_source
-from .model import Check, Project
+from .compiler import CompiledCheck, Statement, columns_read, compile_check, compile_source
+from .model import Check, Project, Source
 from .problems import DataError, PlimsollError, Problem, ProjectInvalid, engine_message
 
 Progress = Callable[[str], None]
@@ -41,6 +41,7 @@ class RunResult:
     error: str | None = None
 
     distinct_files: int = 0
+    changed_files: list[str] = field(default_factory=list)
 
     @property
     def files_read(self) -> int:
@@ -63,39 +64,62 @@ def select_checks(project: Project, names: list[str] | tuple[str, ...] | None) -
 
 
 def run(project: Project, names: list[str] | None = None, full_refresh: bool = False,
-        progress: Progress | None = None) -> RunResult:
-    """One run of the selected checks; returns what it did, raises on failure after rolling back."""
+        progress: Progress | None = None, wait: float = 0.0) -> RunResult:
+    """One run of the selected checks; returns what it did, raises on failure after rolling back.
+
+    Waits up to ``wait`` seconds for another run to release the warehouse. After the run (failed
+    or not) the tables analysts read are published as Parquet beside the warehouse.
+    """
     checks = select_checks(project, names)
     compiled = [compile_check(c) for c in checks]
-    con = warehouse.connect(project)
+    con = warehouse.connect(project, wait=wait)
     try:
-        return _run(con, project, checks, compiled, full_refresh, progress or (lambda _: None))
+        run_id = int(con.execute("SELECT coalesce(max(run_id), 0) + 1 FROM runs").fetchone()[0])
+        with warehouse.claimed(project, run_id, [c.name for c in checks]):
+            try:
+                result = _run(con, project, run_id, checks, compiled, full_refresh,
+                              progress or (lambda _: None))
+            except PlimsollError:
+                _publish_quietly(con, project)
+                raise
+            warehouse.publish(con, project)
+            return result
     finally:
         con.close()
 
 
-def _run(con: duckdb.DuckDBPyConnection, project: Project, checks: list[Check],
+def _run(con: duckdb.DuckDBPyConnection, project: Project, run_id: int, checks: list[Check],
          compiled: list[CompiledCheck], full_refresh: bool, progress: Progress) -> RunResult:
-    run_id = int(con.execute("SELECT coalesce(max(run_id), 0) + 1 FROM runs").fetchone()[0])
     started = _now()
+    if not full_refresh:
+        _refuse_changed(con, checks, compiled)
     listings: dict[str, list[lake.LakeFile]] = {}
     result = RunResult(run_id, "ok")
     # what each source scan of this run read: the run record counts rows once per scan
     con.execute("CREATE OR REPLACE TEMP TABLE run_scans (rows_read BIGINT, rows_invalid BIGINT, "
                 "duplicate_rows BIGINT, rows_excluded BIGINT)")
+    con.execute("CREATE OR REPLACE TEMP TABLE run_retired (check_name VARCHAR, alerts_closed BIGINT)")
     con.execute("BEGIN TRANSACTION")
     try:
+        _retire_removed(con, project, run_id, progress)
         if full_refresh:
-            _forget(con, [c.name for c in checks])
-        for group in _groups(con, checks, compiled, listings):
+            _forget(con, checks, compiled, run_id)
+        groups = _groups(con, checks, compiled, listings)
+        result.changed_files = _note_changes(con, run_id, checks, listings)
+        for change in result.changed_files:
+            progress(f"changed after it was read, not read again: {change}")
+        for group in groups:
             new_files = group[0][2]
             if new_files:
-                progress(f"source {group[0][0].source.name}: reading {len(new_files)} new files "
-                         f"for {len(group)} checks")
+                source = group[0][0].source
+                progress(f"source {source.name}: reading {len(new_files)} new files for {len(group)} checks")
+                readers = [check for check, _, _ in group]
+                lake.check_new_files(con, source.name, [f.path for f in new_files],
+                                     _needed_columns(source, readers), [c.name for c in readers])
                 source_stage = compile_source([check for check, _, _ in group])
-                params = _params(new_files, run_id, "")
+                params = _params(new_files, run_id, "", group[0][0].name)
                 for statement in source_stage.once:
-                    _execute(con, f"source {group[0][0].source.name}", "source", statement, params)
+                    _execute(con, f"source {source.name}", "source", statement, params)
                 con.execute("INSERT INTO run_scans SELECT rows_read, rows_invalid, duplicate_rows, "
                             "rows_excluded FROM lake_counts")
             for check, sql, files in group:
@@ -121,6 +145,114 @@ def _run(con: duckdb.DuckDBPyConnection, project: Project, checks: list[Check],
     return result
 
 
+def _needed_columns(source: Source, checks: list[Check]) -> list[str]:
+    """Every source column the source stage reads for these checks."""
+    names = [source.session_id, source.event_time, *(source.exclude.columns if source.exclude else ()),
+             *columns_read(checks)]
+    return list(dict.fromkeys(names))
+
+
+def _publish_quietly(con: duckdb.DuckDBPyConnection, project: Project) -> None:
+    """Publish after a failed run too (its run record says why), without hiding the failure."""
+    try:
+        warehouse.publish(con, project)
+    except (duckdb.Error, OSError):
+        pass
+
+
+def _refuse_changed(con: duckdb.DuckDBPyConnection, checks: list[Check], compiled: list[CompiledCheck]) -> None:
+    """A check whose windows or baseline would now be computed differently needs a full refresh.
+
+    Carrying on would mix windows of two definitions in one series' history, so the run refuses
+    (before writing anything) and says what to do.
+    """
+    stored = dict(con.execute("SELECT check_name, definition_hash FROM check_state").fetchall())
+    problems = [
+        Problem(check.file, check.line,
+                f"check {check.name} has changed since its windows were computed (definition "
+                f"{stored[check.name]} -> {sql.definition_hash}); run `plimsoll run --check {check.name} "
+                "--full-refresh` to rebuild it from the lake, or undo the change")
+        for check, sql in zip(checks, compiled)
+        if stored.get(check.name) not in (None, sql.definition_hash)
+    ]
+    if problems:
+        raise ProjectInvalid(problems)
+
+
+def _retire_removed(con: duckdb.DuckDBPyConnection, project: Project, run_id: int, progress: Progress) -> None:
+    """Checks gone from the project: their open alerts close as 'check removed', their state goes.
+
+    Alerts and their events stay as history; windows and state are derived and would only
+    mislead a check added later under the same name.
+    """
+    known = [row[0] for row in con.execute(
+        "SELECT check_name FROM check_state UNION SELECT check_name FROM alerts WHERE status = 'open' "
+        "ORDER BY 1").fetchall()]
+    for name in (n for n in known if n not in project.checks):
+        closed = _close_alerts(con, name, run_id, "check removed", None)
+        progress(f"check {name}: no longer in the project; {closed} open alerts closed as 'check removed'")
+        _drop_state(con, name)
+
+
+def _close_alerts(con: duckdb.DuckDBPyConnection, name: str, run_id: int, reason: str,
+                  keep_definition: str | None) -> int:
+    """Close a check's open alerts (those of other definitions than ``keep_definition``) for ``reason``.
+
+    ``closed_at`` is the check's watermark, the last data time it saw.
+    """
+    params = {"c": name, "r": run_id, "why": reason, "keep": keep_definition}
+    chosen = ("check_name = $c AND status = 'open' "
+              "AND ($keep IS NULL OR definition_hash IS DISTINCT FROM $keep)")
+    closed_at = ("coalesce((SELECT max(watermark) FROM check_state WHERE check_name = $c), last_breach_at)")
+    con.execute(f"INSERT INTO alert_events BY NAME SELECT alert_id, $r AS run_id, {closed_at} AS occurred_at, "
+                "'closed' AS event, NULL::DOUBLE AS value, NULL::DOUBLE AS threshold, affected_sessions "
+                f"FROM alerts WHERE {chosen}", params)
+    count = con.execute(f"UPDATE alerts SET status = 'closed', close_reason = $why, closed_at = {closed_at}, "
+                        f"last_run_id = $r, healthy_streak = NULL WHERE {chosen}", params).fetchone()[0]
+    con.execute("INSERT INTO run_retired VALUES ($c, $n)", {"c": name, "n": count})
+    return int(count)
+
+
+def _drop_state(con: duckdb.DuckDBPyConnection, name: str) -> None:
+    """Every derived trace of a check (not its alerts), so its next run reads the lake from the start."""
+    for table in ("windows", "key_windows", "carry", "key_state", "check_state", "files_read"):
+        con.execute(f"DELETE FROM {table} WHERE check_name = $c", {"c": name})
+    # ids of files no check has read any more are forgotten too: a re-read records them again
+    con.execute("DELETE FROM session_ids WHERE first_path NOT IN (SELECT path FROM files_read)")
+
+
+def _note_changes(con: duckdb.DuckDBPyConnection, run_id: int, checks: list[Check],
+                  listings: dict[str, list[lake.LakeFile]]) -> list[str]:
+    """Files read before whose size or time now differ: recorded once and reported, never re-read.
+
+    Re-reading would count the sessions it had already counted; ignoring it silently would hide
+    that the lake was rewritten under the check.
+    """
+    noticed: list[str] = []
+    for check in checks:
+        listing = [{"path": f.path, "size": f.size, "modified_at": f.modified_at}
+                   for f in listings[check.source.name]]
+        if not listing:
+            continue
+        rows = con.execute(
+            """
+            INSERT INTO changed_files
+            SELECT $r, f.check_name, f.path, f.size, f.modified_at, l.size, l.modified_at
+            FROM files_read AS f
+            JOIN (SELECT unnest($listing, recursive := true)) AS l ON l.path = f.path
+            WHERE f.check_name = $c AND (f.size <> l.size OR f.modified_at <> l.modified_at)
+              AND NOT EXISTS (SELECT 1 FROM changed_files AS c
+                              WHERE c.check_name = f.check_name AND c.path = f.path
+                                AND c.size_now = l.size AND c.modified_now = l.modified_at)
+            RETURNING path, size_read, size_now, modified_read, modified_now
+            """,
+            {"r": run_id, "c": check.name, "listing": listing},
+        ).fetchall()
+        noticed += [f"{path} (check {check.name}: size {a} -> {b}, modified {ta} -> {tb})"
+                    for path, a, b, ta, tb in sorted(rows)]
+    return noticed
+
+
 def _groups(con: duckdb.DuckDBPyConnection, checks: list[Check], compiled: list[CompiledCheck],
             listings: dict[str, list[lake.LakeFile]]) -> list[list[tuple[Check, CompiledCheck, list[lake.LakeFile]]]]:
     """Checks of one source with the same new files, so the files are read once for all of them."""
@@ -135,12 +267,13 @@ def _groups(con: duckdb.DuckDBPyConnection, checks: list[Check], compiled: list[
     return list(groups.values())
 
 
-def _params(files: list[lake.LakeFile], run_id: int, definition: str) -> dict[str, Any]:
+def _params(files: list[lake.LakeFile], run_id: int, definition: str, reader: str) -> dict[str, Any]:
     return {
         "files": [f.path for f in files],
         "manifest": [{"path": f.path, "size": f.size, "modified_at": f.modified_at} for f in files],
         "run_id": run_id,
         "definition": definition,
+        "reader": reader,
     }
 
 
@@ -150,7 +283,7 @@ def _run_check(con: duckdb.DuckDBPyConnection, check: Check, sql: CompiledCheck,
     result = CheckResult(check.name, files_read=len(new))
     if not new:
         return result
-    params = _params(new, run_id, sql.definition_hash)
+    params = _params(new, run_id, sql.definition_hash, check.name)
     loop: list[tuple[str, Statement]] = []
     for stage in sql.stages[1:]:
         for statement in stage.once:
@@ -191,23 +324,34 @@ def _execute(con: duckdb.DuckDBPyConnection, who: str, stage: str, statement: St
         raise DataError(f"{who}, stage {stage}: {_engine_message(err)}") from err
 
 
-def _forget(con: duckdb.DuckDBPyConnection, names: list[str]) -> None:
-    """Full refresh: drop every trace of these checks so the lake is read again from the start."""
-    con.execute("DELETE FROM alert_events WHERE alert_id IN "
-                "(SELECT alert_id FROM alerts WHERE check_name IN (SELECT unnest($n)))", {"n": names})
-    for table in ("alerts", "windows", "carry", "key_state", "check_state", "files_read"):
-        con.execute(f"DELETE FROM {table} WHERE check_name IN (SELECT unnest($n))", {"n": names})
+def _forget(con: duckdb.DuckDBPyConnection, checks: list[Check], compiled: list[CompiledCheck],
+            run_id: int) -> None:
+    """Full refresh: drop these checks' derived state so the lake is read again from the start.
+
+    Alerts of the current definition are rebuilt exactly (same ids), so they go with their events;
+    alerts of an earlier definition stay as history, the open ones closed as 'check changed'.
+    """
+    for check, sql in zip(checks, compiled):
+        params = {"c": check.name, "d": sql.definition_hash}
+        _close_alerts(con, check.name, run_id, "check changed", sql.definition_hash)
+        con.execute("DELETE FROM alert_events WHERE alert_id IN (SELECT alert_id FROM alerts "
+                    "WHERE check_name = $c AND definition_hash = $d)", params)
+        con.execute("DELETE FROM alerts WHERE check_name = $c AND definition_hash = $d", params)
+        _drop_state(con, check.name)
 
 
 def _record(con: duckdb.DuckDBPyConnection, run_id: int, started: datetime, names: list[str],
             full_refresh: bool, status: str, error: str | None) -> None:
+    """The run record: what every scan read (once per scan) and what every check wrote."""
     con.execute(
         """
         INSERT INTO runs
         SELECT $run_id, $started, $finished, $status, $checks, $full_refresh,
                (SELECT count(DISTINCT path) FROM files_read WHERE run_id = $run_id),
                s.rows_read, s.rows_excluded, s.duplicate_rows, c.late_rows, s.rows_invalid,
-               c.windows_written, c.alerts_opened, c.alerts_closed, $error
+               (SELECT count(DISTINCT path) FROM changed_files WHERE run_id = $run_id),
+               c.windows_written, c.alerts_opened,
+               c.alerts_closed + (SELECT coalesce(sum(alerts_closed), 0) FROM run_retired), $error
         FROM (SELECT coalesce(sum(rows_read), 0) AS rows_read, coalesce(sum(rows_excluded), 0) AS rows_excluded,
                      coalesce(sum(duplicate_rows), 0) AS duplicate_rows,
                      coalesce(sum(rows_invalid), 0) AS rows_invalid

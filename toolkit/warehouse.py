@@ -1,7 +1,21 @@
-"""The warehouse file: opening it, creating its tables, and the settings every connection gets."""
+"""The warehouse file: opening it, creating its tables, the settings every connection gets, the one
+writer at a time, and the Parquet copies that readers use while a run holds the file.
+
+DuckDB lets one process write a database file and refuses every other process, readers included,
+while it does. So a run announces itself in a small file beside the warehouse (who, since when), and
+after each run the tables analysts read are published as Parquet beside it, each written to a temp
+name and renamed, so a reader never sees half a file and never waits for a run.
+"""
 
 from __future__ import annotations
 
+import json
+import os
+import socket
+import time
+from collections.abc import Iterator
+from contextlib import contextmanager
+from datetime import datetime, timezone
 from pathlib import Path
 
 import duckdb
@@ -10,26 +24,40 @@ from . import storage
 from .compiler import template_folder
 from .model import Project
 from .problems import DataError, RunLocked
+from .sqltext import quote_ident, quote_literal
 
-TABLES = ("runs", "run_checks", "files_read", "check_state", "key_state", "carry", "windows",
-          "alerts", "alert_events")
+TABLES = ("runs", "run_checks", "files_read", "changed_files", "source_columns", "session_ids",
+          "check_state", "key_state", "carry", "key_windows", "windows", "alerts", "alert_events")
+PUBLISHED = ("alerts", "alert_events", "windows", "runs")
+POLL_SECONDS = 0.25
 
 
-def connect(project: Project, read_only: bool = False) -> duckdb.DuckDBPyConnection:
-    """Open (and on first use create) the warehouse, with UTC time and the project's limits."""
+def connect(project: Project, read_only: bool = False, wait: float = 0.0) -> duckdb.DuckDBPyConnection:
+    """Open (and on first use create) the warehouse, with UTC time and the project's limits.
+
+    While another process holds the file, retry for up to ``wait`` seconds, then raise
+    :class:`RunLocked` naming the run that holds it.
+    """
     path = Path(project.warehouse)
     if read_only and not path.exists():
         raise FileNotFoundError(f"{path}: no warehouse yet; run `plimsoll run` first")
     path.parent.mkdir(parents=True, exist_ok=True)
-    try:
-        con = duckdb.connect(str(path), read_only=read_only)
-    except duckdb.IOException as err:
-        if "lock" in str(err).lower():
-            raise RunLocked(f"{path}: the warehouse is in use by another process ({_holder(err)})") from None
-        raise
+    deadline = time.monotonic() + max(wait, 0.0)
+    while True:
+        try:
+            con = duckdb.connect(str(path), read_only=read_only)
+            break
+        except duckdb.IOException as err:
+            if "lock" not in str(err).lower():
+                raise
+            if time.monotonic() >= deadline:
+                waited = f" after waiting {wait:g} s" if wait > 0 else ""
+                raise RunLocked(f"{path}: in use by {holder(project, err)}{waited}; "
+                                "try again later or pass --wait SECONDS") from None
+            time.sleep(POLL_SECONDS)
     con.execute("SET TimeZone = 'UTC'")
     if project.memory_limit:
-        con.execute(f"SET memory_limit = '{_setting(project.memory_limit)}'")
+        con.execute(f"SET memory_limit = {quote_literal(_setting(project.memory_limit))}")
     if project.threads:
         con.execute(f"SET threads = {int(project.threads)}")
     if project.remote and not read_only:
@@ -47,13 +75,89 @@ def ensure_schema(con: duckdb.DuckDBPyConnection) -> None:
     con.execute((template_folder() / "warehouse.sql").read_text(encoding="utf-8"))
 
 
+def claim_path(project: Project) -> Path:
+    """The file that names the run holding the warehouse (``warehouse.duckdb.run``)."""
+    return Path(f"{project.warehouse}.run")
+
+
+@contextmanager
+def claimed(project: Project, run_id: int, checks: list[str]) -> Iterator[None]:
+    """Say who holds the warehouse for the length of a run, so a second run can name it.
+
+    Only written while DuckDB's own lock is held, so two runs never race for it; a file left by a
+    killed run is harmless, because it is only read when the lock is actually taken.
+    """
+    path = claim_path(project)
+    body = {"run_id": run_id, "pid": os.getpid(), "host": socket.gethostname(),
+            "started_at": _utc_now().isoformat(timespec="seconds"), "checks": checks}
+    _write_atomically(path, json.dumps(body).encode())
+    try:
+        yield
+    finally:
+        path.unlink(missing_ok=True)
+
+
+def holder(project: Project, err: Exception | None = None) -> str:
+    """Who holds the warehouse, in words: the run named by its claim file, else DuckDB's PID."""
+    try:
+        body = json.loads(claim_path(project).read_text(encoding="utf-8"))
+        return (f"run {body['run_id']} (pid {body['pid']} on {body['host']}, "
+                f"started {body['started_at']} UTC)")
+    except (OSError, ValueError, KeyError):
+        text = str(err or "")
+        return f"another process ({text[text.index('PID'):].split(')')[0]})" if "PID" in text else "another process"
+
+
+def snapshot_folder(project: Project) -> Path:
+    """Where the published Parquet copies live: ``warehouse_tables/`` beside ``warehouse.duckdb``."""
+    path = Path(project.warehouse)
+    return path.with_name(f"{path.stem}_tables")
+
+
+def publish(con: duckdb.DuckDBPyConnection, project: Project) -> None:
+    """Copy the tables analysts read to Parquet beside the warehouse, each file replaced whole."""
+    folder = snapshot_folder(project)
+    folder.mkdir(parents=True, exist_ok=True)
+    for table in PUBLISHED:
+        final = folder / f"{table}.parquet"
+        temp = folder / f".{table}.parquet.{os.getpid()}.tmp"
+        con.execute(f"COPY (SELECT * FROM {quote_ident(table)}) TO {quote_literal(str(temp))} (FORMAT parquet)")
+        os.replace(temp, final)
+
+
+def open_for_reading(project: Project) -> duckdb.DuckDBPyConnection:
+    """A connection in which the published tables can be queried, whether or not a run is writing.
+
+    The warehouse itself when it is free; otherwise an in-memory database whose views read the
+    Parquet copies of the last successful run.
+    """
+    try:
+        return connect(project, read_only=True)
+    except RunLocked:
+        folder = snapshot_folder(project)
+        missing = [t for t in PUBLISHED if not (folder / f"{t}.parquet").exists()]
+        if missing:
+            raise RunLocked(f"{project.warehouse}: in use by {holder(project)}, and no published copy "
+                            f"of it in {folder} yet") from None
+        con = duckdb.connect()
+        con.execute("SET TimeZone = 'UTC'")
+        for table in PUBLISHED:
+            source = quote_literal(str(folder / f"{table}.parquet"))
+            con.execute(f"CREATE VIEW {quote_ident(table)} AS SELECT * FROM read_parquet({source})")
+        return con
+
+
+def _write_atomically(path: Path, data: bytes) -> None:
+    temp = path.with_name(f".{path.name}.{os.getpid()}.tmp")
+    temp.write_bytes(data)
+    os.replace(temp, path)
+
+
 def _setting(text: str) -> str:
     if not all(ch.isalnum() or ch in ". " for ch in text):
         raise ValueError(f"memory_limit {text!r}: expected a size such as 2GB")
     return text
 
 
-def _holder(err: Exception) -> str:
-    text = str(err)
-    marker = "PID"
-    return text[text.index(marker):].split(")")[0].strip() if marker in text else "lock held"
+def _utc_now() -> datetime:
+    return datetime.now(timezone.utc).replace(tzinfo=None)

@@ -1,13 +1,16 @@
 -- Plimsoll check site_failures_p_chart: compiled SQL, executed by `plimsoll run` as shown.
 -- Parameters: $files (new Parquet files), $manifest (their size and time), $run_id,
--- $definition (hash of this script). Statements after '@repeat' run until no breach flag changes.
+-- $reader (the check whose earlier files decide duplicates), $definition (hash of the SQL
+-- up to the breach stage). Statements after '@repeat' run until no breach flag changes.
 -- ── stage 0 · source ───────────────────────────────────────────────────────────────────────
 -- Source sessions: the sessions of the files not read before ($files), read once for
--- every check that reads the same files, each session id once. Rows without a session id or event
--- time are counted and skipped; excluded sessions never count.
+-- every check that reads the same files ($reader is the first of them), each session id once, in
+-- this run and across runs. Rows without a session id or event time are counted and skipped;
+-- excluded sessions never count.
 CREATE OR REPLACE TEMP TABLE lake_rows AS
 SELECT
     "session_id"::VARCHAR AS __session_id,
+    md5_number("session_id"::VARCHAR) AS __id_hash,
     "ended_at"::TIMESTAMP AS __event_time,
 coalesce("is_bot", false) AS __excluded,
     "site",
@@ -15,25 +18,35 @@ coalesce("is_bot", false) AS __excluded,
     filename AS __file
 FROM read_parquet($files, hive_partitioning = true, union_by_name = true, filename = true);
 
--- One copy of each session id: the earliest, then by file name, so every run keeps the same one.
+-- Session ids already read, in an earlier run, from a file these checks have read: duplicates.
+CREATE OR REPLACE TEMP TABLE read_before AS
+SELECT DISTINCT id_hash
+FROM session_ids
+WHERE source_name = 'sessions'
+  AND first_path IN (SELECT path FROM files_read WHERE check_name = $reader)
+  AND id_hash IN (SELECT __id_hash FROM lake_rows WHERE __id_hash IS NOT NULL);
+
+-- One copy of each new session id: the earliest, then by file name, so every run keeps the same one.
 CREATE OR REPLACE TEMP TABLE repeated_ids AS
-SELECT __session_id
+SELECT __id_hash
 FROM lake_rows
-WHERE __session_id IS NOT NULL AND __event_time IS NOT NULL
-GROUP BY __session_id
+WHERE __id_hash IS NOT NULL AND __event_time IS NOT NULL
+GROUP BY __id_hash
 HAVING count(*) > 1;
 
 CREATE OR REPLACE TEMP TABLE lake_sessions AS
 SELECT *
 FROM lake_rows
-WHERE __session_id IS NOT NULL AND __event_time IS NOT NULL
-  AND __session_id NOT IN (SELECT __session_id FROM repeated_ids)
+WHERE __id_hash IS NOT NULL AND __event_time IS NOT NULL
+  AND __id_hash NOT IN (SELECT __id_hash FROM repeated_ids)
+  AND __id_hash NOT IN (SELECT id_hash FROM read_before)
 UNION ALL
 SELECT *
 FROM lake_rows
 WHERE __event_time IS NOT NULL
-  AND __session_id IN (SELECT __session_id FROM repeated_ids)
-QUALIFY row_number() OVER (PARTITION BY __session_id ORDER BY __event_time, __file) = 1;
+  AND __id_hash IN (SELECT __id_hash FROM repeated_ids)
+  AND __id_hash NOT IN (SELECT id_hash FROM read_before)
+QUALIFY row_number() OVER (PARTITION BY __id_hash ORDER BY __event_time, __file) = 1;
 
 CREATE OR REPLACE TEMP TABLE lake_counts AS
 SELECT
@@ -49,6 +62,12 @@ CREATE OR REPLACE TEMP TABLE lake_file_rows AS
 SELECT __file AS path, count(*) AS rows
 FROM lake_rows
 GROUP BY __file;
+
+-- Remember the ids of files no check has read before (hashes only), for the next runs.
+INSERT INTO session_ids
+SELECT 'sessions' AS source_name, __id_hash, __file
+FROM lake_sessions
+WHERE __file NOT IN (SELECT path FROM files_read);
 
 -- ── stage 1 · scan ─────────────────────────────────────────────────────────────────────────
 -- The check's sessions: not excluded; its key and measure inputs.
@@ -333,7 +352,7 @@ SELECT count(*) FILTER (WHERE changed) AS still_changing FROM judged;
 CREATE OR REPLACE TEMP TABLE open_alerts AS
 SELECT *
 FROM alerts
-WHERE check_name = 'site_failures_p_chart' AND status = 'open';
+WHERE check_name = 'site_failures_p_chart' AND status = 'open' AND definition_hash = $definition;
 
 CREATE OR REPLACE TEMP TABLE steps AS
 WITH relevant AS (
@@ -483,7 +502,8 @@ FROM merged;
 CREATE OR REPLACE TEMP TABLE alert_rows AS
 SELECT
     coalesce(prior_alert_id, substr(md5(to_json({
-        'check': 'site_failures_p_chart', 'key': key, 'split': split_value, 'opened_at': opened_at, 'seq': opened_seq
+        'check': 'site_failures_p_chart', 'key': key, 'split': split_value, 'opened_at': opened_at, 'seq': opened_seq,
+        'definition': $definition
     })::VARCHAR), 1, 16)) AS alert_id,
     'site_failures_p_chart' AS check_name,
     'high' AS severity,
@@ -509,6 +529,7 @@ SELECT
     coalesce(first_run_id, $run_id) AS first_run_id,
     $run_id AS last_run_id,
     CASE WHEN closed_at IS NULL AND NOT expires_at_watermark THEN healthy_streak END AS healthy_streak,
+    $definition AS definition_hash,
     episode,
     touched OR expires_at_watermark AS touched,
     close_value,
