@@ -178,6 +178,18 @@ def test_an_incremental_run_reads_only_the_new_object(tmp_path, endpoint, bucket
     assert results(remote) == results(local)
 
 
+def test_an_object_rewritten_after_it_was_read_is_reported_not_read_again(tmp_path, endpoint, bucket):
+    name, client = bucket
+    upload(client, name, DAYS[0])
+    loaded = load_project(project(tmp_path, endpoint, f"s3://{name}/sessions/"))
+    run(loaded)
+    # the same key, other bytes: its size and LastModified change
+    client.upload_file(str(FIXTURE_LAKE / DAYS[1] / "part-0.parquet"), name, f"sessions/{DAYS[0]}/part-0.parquet")
+    again = run(loaded)
+    assert again.files_read == 0
+    assert any(change.startswith(f"s3://{name}/sessions/{DAYS[0]}/part-0.parquet") for change in again.changed_files)
+
+
 def test_credentials_and_endpoint_from_the_usual_environment_variables(tmp_path, endpoint, bucket, monkeypatch):
     name, client = bucket
     upload(client, name, DAYS[0])
