@@ -46,6 +46,7 @@ RATIOS = (
     ("increment", "catalogue", 0.1, "one new day after 30 against a full run"),
 )
 MEMORY_TARGET_MIB = 2048  # the catalogue's peak with the default memory limit
+LIMIT_VARIABLE = "PLIMSOLL_BENCH_MEMORY_LIMIT"  # --memory-limit, passed to the children
 
 FLOOR = f"""
 SELECT site, title_id, error_code, count(session_id) AS sessions, max(ended_at) AS latest
@@ -94,18 +95,24 @@ def oracle_check() -> Any:
 # the measurements, each run in a child process: `bench.py --child NAME WORKDIR`
 
 
-def _child_floor(workdir: Path) -> dict[str, Any]:
+def _connect() -> Any:
+    """An in-memory DuckDB with the benchmark's memory limit, as the project's runs get it."""
     import duckdb
 
     con = duckdb.connect()
+    if os.environ.get(LIMIT_VARIABLE):
+        con.execute("SET memory_limit = $m", {"m": os.environ[LIMIT_VARIABLE]})
+    return con
+
+
+def _child_floor(workdir: Path) -> dict[str, Any]:
+    con = _connect()
     rows = con.execute(FLOOR, {"files": lake_files(workdir)}).fetchall()
     return {"groups": len(rows)}
 
 
 def _child_by_hand(workdir: Path) -> dict[str, Any]:
-    import duckdb
-
-    con = duckdb.connect()
+    con = _connect()
     windows, alerts = run_by_hand(con, lake_files(workdir))
     return {"windows": windows, "alerts": alerts}
 
@@ -236,7 +243,7 @@ def fresh_warehouse(workdir: Path) -> None:
 # the whole benchmark
 
 
-def prepare(workdir: Path, sessions: int) -> int:
+def prepare(workdir: Path, sessions: int, memory_limit: str | None) -> int:
     """Build the lake unless WORKDIR holds one already; returns the lake's session count."""
     from toolkit.demo import prepare_workdir, write_project
     from toolkit.warehouse_demo.generate import build_lake
@@ -248,7 +255,10 @@ def prepare(workdir: Path, sessions: int) -> int:
         build_lake(workdir, sessions=sessions, days=DAYS)
         say(f"lake of {sessions:,} sessions over {DAYS} days built in {time.perf_counter() - t:.1f} s")
         marker.write_text(json.dumps({"sessions": sessions, "days": DAYS}), encoding="utf-8")
-    write_project(workdir)
+    project = write_project(workdir)
+    if memory_limit:
+        os.environ[LIMIT_VARIABLE] = memory_limit
+        project.write_text(project.read_text(encoding="utf-8") + f"memory_limit: {memory_limit}\n", encoding="utf-8")
     return int(json.loads(marker.read_text(encoding="utf-8"))["sessions"])
 
 
@@ -290,16 +300,19 @@ def ratios(results: dict[str, dict[str, Any]]) -> list[dict[str, Any]]:
 
 
 def table(sessions: int, results: dict[str, dict[str, Any]], found: list[dict[str, Any]]) -> str:
-    lines = [f"Plimsoll benchmark: {sessions:,} sessions over {DAYS} days, {os.cpu_count()} cores", "",
+    limit = os.environ.get(LIMIT_VARIABLE) or "DuckDB's default"
+    lines = [f"Plimsoll benchmark: {sessions:,} sessions over {DAYS} days, {os.cpu_count()} cores, "
+             f"memory limit {limit}", "",
              f"{'measurement':<15}{'seconds':>9}{'peak MiB':>10}{'DuckDB MiB':>12}{'windows':>10}{'alerts':>8}"]
     for name, r in results.items():
         duck = f"{r['duckdb_peak_mib']:.0f}" if "duckdb_peak_mib" in r else "-"
         lines.append(f"{name:<15}{r['seconds']:>9.2f}{r['peak_mib']:>10.0f}{duck:>12}"
                      f"{r.get('windows', '-'):>10}{r.get('alerts', '-'):>8}")
-    same = {(results[n]["windows"], results[n]["alerts"]) for n in ("by_hand", "title", "oracle") if n in results}
-    if same:
-        lines += ["", "by_hand, title and oracle " + ("agree on windows and alerts" if len(same) == 1
-                                                      else "DISAGREE on windows or alerts: the ratios mean nothing")]
+    alike = [n for n in ("by_hand", "title", "oracle") if n in results]
+    same = {(results[n]["windows"], results[n]["alerts"]) for n in alike}
+    if len(alike) > 1:
+        lines += ["", ", ".join(alike) + (" agree on windows and alerts" if len(same) == 1
+                                          else " DISAGREE on windows or alerts: their ratios mean nothing")]
     lines += ["", f"{'ratio':<22}{'value':>7}{'target':>8}  "]
     for r in found:
         lines.append(f"{r['ratio']:<22}{r['value']:>7.3f}{'<= ' + format(r['target'], 'g'):>8}  "
@@ -331,18 +344,21 @@ def main() -> None:
     parser.add_argument("--json", type=Path, default=None, help="where the figures go (default: WORKDIR/bench.json)")
     parser.add_argument("--skip", action="append", default=[], choices=[*CHILDREN],
                         help="leave a measurement out (repeatable), e.g. the oracle at very large sizes")
+    parser.add_argument("--memory-limit", default=None,
+                        help="DuckDB memory_limit for every measurement (plimsoll.yml's key), e.g. 8GB; default: DuckDB's")
     parser.add_argument("--child", nargs=2, metavar=("NAME", "WORKDIR"), help=argparse.SUPPRESS)
     args = parser.parse_args()
     if args.child:
         child(args.child[0], Path(args.child[1]))
         return
     workdir = args.workdir or Path(tempfile.mkdtemp(prefix="plimsoll-bench-"))
-    sessions = prepare(workdir, args.sessions)
+    sessions = prepare(workdir, args.sessions, args.memory_limit)
     results = measure_all(workdir, set(args.skip))
     found = ratios(results)
     print(table(sessions, results, found))
     target = args.json or workdir / "bench.json"
     target.write_text(json.dumps({"sessions": sessions, "days": DAYS, "cores": os.cpu_count(),
+                                  "memory_limit": args.memory_limit,
                                   "results": results, "ratios": found}, indent=2), encoding="utf-8")
     print(f"\nfigures written to {target}")
 
