@@ -1,116 +1,366 @@
 """Benchmark: what a Plimsoll run costs against the floor, measured in one run on the same data.
 
-    python benchmarks/bench.py --sessions 2000000 [--workdir DIR]
+    python benchmarks/bench.py --sessions 2000000 [--workdir DIR] [--json FILE]
 
-Builds the Fernhill Broadcasting demo lake at that size (or reuses DIR's), then times, each in a
-fresh process so peak memory (max RSS) is its own:
+Builds the Fernhill Broadcasting demo lake at that size over 31 days (or reuses DIR's), then runs
+each measurement in a fresh process, so its peak memory (max RSS: VmHWM) is its own:
 
   floor      one plain DuckDB GROUP BY over the columns the title check reads
+  by_hand    benchmarks/title_by_hand.sql: the title check written as DuckDB SQL by hand
   title      `plimsoll run --check title_errors` on a fresh warehouse
+  oracle     the pandas oracle (tests/oracle.py) doing the same check
   catalogue  `plimsoll run` of the whole catalogue on a fresh warehouse
-  increment  the catalogue over 20 days, then one incremental run adding the 21st
+  increment  the catalogue over the first 30 days, then one incremental run adding the 31st
 
-and prints seconds, peak memory and the ratios title/floor, catalogue/title, increment/catalogue.
-With ``--spark MASTER`` (e.g. ``local[2]``) it also times ``spark``: the catalogue with
-``engine: spark`` on a fresh warehouse (the Spark driver's memory is not in the peak shown), and
-the ratio spark/catalogue. A benchmark, not a test: nothing here asserts a time.
+and prints seconds, peak MiB, DuckDB's own peak, the windows and alerts each produced, the ratios
+against their targets, and where the Plimsoll runs spend their time, stage by stage; the same
+figures go to a JSON file. A benchmark, not a test: nothing here asserts a time.
 """
 
 from __future__ import annotations
 
 import argparse
+import glob
 import json
+import os
+import re
 import shutil
 import subprocess
 import sys
 import tempfile
 import time
+from collections import defaultdict
+from datetime import timedelta
 from pathlib import Path
+from typing import Any
 
-FLOOR = """
-import duckdb, glob, sys
-files = sorted(glob.glob(sys.argv[1] + '/lake/sessions/**/*.parquet', recursive=True))
-duckdb.sql('''SELECT site, title_id, error_code, count(*), count(*) FILTER (WHERE error_code IS NOT NULL)
-              FROM read_parquet($files) WHERE NOT is_bot GROUP BY ALL''', params={'files': files}).fetchall()
+HERE = Path(__file__).resolve().parent
+BY_HAND = HERE / "title_by_hand.sql"
+DAYS = 31
+CRAWLER = r"(?i)(bot|crawler|spider)"
+# (numerator, denominator, target, meaning)
+RATIOS = (
+    ("title", "by_hand", 1.3, "Plimsoll's title check against the same check written by hand"),
+    ("title", "oracle", 0.25, "Plimsoll against the pandas oracle"),
+    ("catalogue", "title", 3.0, "the whole catalogue against the title check alone"),
+    ("increment", "catalogue", 0.1, "one new day after 30 against a full run"),
+)
+MEMORY_TARGET_MIB = 2048  # the catalogue's peak with the default memory limit
+LIMIT_VARIABLE = "PLIMSOLL_BENCH_MEMORY_LIMIT"  # --memory-limit, passed to the children
+
+FLOOR = f"""
+SELECT site, title_id, error_code, count(session_id) AS sessions, max(ended_at) AS latest
+FROM read_parquet($files, hive_partitioning = true, union_by_name = true)
+WHERE NOT coalesce(is_bot OR regexp_matches(user_agent, '{CRAWLER}'), false) AND title_id IS NOT NULL
+GROUP BY ALL
 """
 
-RUN = """
-import sys
-from toolkit.project import load_project
-from toolkit.runner import run
-project = load_project(sys.argv[1])
-run(project, sys.argv[2:] or None)
-"""
+
+def lake_files(workdir: Path) -> list[str]:
+    return sorted(glob.glob(str(workdir / "lake" / "sessions" / "**" / "*.parquet"), recursive=True))
 
 
-def measured(code: str, *args: str) -> tuple[float, float]:
-    """Seconds and peak resident memory (MiB) of ``code`` run in a child Python."""
-    probe = (
-        "import resource, runpy, sys, time\n"
-        "t = time.perf_counter()\n"
-        f"exec(compile({code!r}, 'bench', 'exec'))\n"
-        "print(time.perf_counter() - t, resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024)\n"
+def statements(sql: str) -> list[str]:
+    """The statements of a script whose statements end with a semicolon at the end of a line."""
+    parts = re.split(r";[ \t]*(?:--[^\n]*)?\n", sql + "\n")
+    code = [p for p in parts if any(line.strip() and not line.strip().startswith("--") for line in p.splitlines())]
+    return [p.strip() for p in code]
+
+
+def run_by_hand(con: Any, files: list[str]) -> tuple[int, int]:
+    """Run title_by_hand.sql over ``files``; leaves title_windows and title_alerts on ``con``."""
+    for statement in statements(BY_HAND.read_text(encoding="utf-8")):
+        con.execute(statement, {"files": files} if "$files" in statement else None)
+    return (con.execute("SELECT count(*) FROM title_windows").fetchone()[0],
+            con.execute("SELECT count(*) FROM title_alerts").fetchone()[0])
+
+
+def oracle_check() -> Any:
+    """checks/title_errors.yml as the oracle's Python callables, with the demo's crawler filter."""
+    import oracle
+
+    crawler = re.compile(CRAWLER[4:], re.IGNORECASE)
+    return oracle.OracleCheck(
+        name="title_errors", by=("site", "title_id"), kind="rate",
+        bad=lambda r: r["error_code"] is not None, split="error_code",
+        where=lambda r: r["title_id"] is not None,
+        exclude=lambda r: bool(r["is_bot"]) or (r["user_agent"] is not None and bool(crawler.search(r["user_agent"]))),
+        sessions=200, max_wait=timedelta(days=2), base_q=0.9, history=30, min_history=4,
+        factor=2.0, floor=0.05, min_sessions=100, min_bad=10, recover_after=2,
+        expire_after=timedelta(days=3), severity="high",
     )
-    out = subprocess.run([sys.executable, "-c", probe, *args], capture_output=True, text=True, check=True)
-    seconds, mib = out.stdout.split()[-2:]
-    return float(seconds), float(mib)
 
 
-def fresh_warehouse(project: Path) -> None:
-    for stale in project.parent.glob("warehouse.duckdb*"):
+# ----------------------------------------------------------------------------------------------
+# the measurements, each run in a child process: `bench.py --child NAME WORKDIR`
+
+
+def _connect() -> Any:
+    """An in-memory DuckDB with the benchmark's memory limit, as the project's runs get it."""
+    import duckdb
+
+    con = duckdb.connect()
+    if os.environ.get(LIMIT_VARIABLE):
+        con.execute("SET memory_limit = $m", {"m": os.environ[LIMIT_VARIABLE]})
+    return con
+
+
+def _child_floor(workdir: Path) -> dict[str, Any]:
+    con = _connect()
+    rows = con.execute(FLOOR, {"files": lake_files(workdir)}).fetchall()
+    return {"groups": len(rows)}
+
+
+def _child_by_hand(workdir: Path) -> dict[str, Any]:
+    con = _connect()
+    windows, alerts = run_by_hand(con, lake_files(workdir))
+    return {"windows": windows, "alerts": alerts}
+
+
+def _child_oracle(workdir: Path) -> dict[str, Any]:
+    import duckdb
+
+    sys.path.insert(0, str(HERE.parent / "tests"))
+    import oracle
+
+    frame = duckdb.connect().execute(
+        "SELECT session_id, ended_at, site, title_id, error_code, is_bot, user_agent, filename AS _file "
+        "FROM read_parquet($files, hive_partitioning = true, union_by_name = true, filename = true)",
+        {"files": lake_files(workdir)}).df()
+    rows = frame.astype(object).where(frame.notna(), None).to_dict("records")
+    del frame
+    for row in rows:
+        row["ended_at"] = row["ended_at"].to_pydatetime() if row["ended_at"] is not None else None
+    result = oracle.run_check(oracle_check(), rows)
+    return {"windows": len(result.windows), "alerts": len(result.alerts)}
+
+
+class _Stages:
+    """Times every statement the runner executes, by stage and by check, and DuckDB's memory."""
+
+    def __init__(self) -> None:
+        self.by_stage: dict[str, float] = defaultdict(float)
+        self.by_check: dict[str, float] = defaultdict(float)
+        self.statements: dict[str, float] = defaultdict(float)
+        self.duckdb_peak = 0
+
+    def install(self) -> None:
+        from toolkit import runner
+
+        original = runner._execute
+
+        def timed(con: Any, who: str, stage: str, statement: Any, params: dict[str, Any]) -> Any:
+            t = time.perf_counter()
+            out = original(con, who, stage, statement, params)
+            spent = time.perf_counter() - t
+            self.by_stage[stage] += spent
+            self.by_check[who] += spent
+            first = next((line for line in statement.sql.splitlines()
+                          if line.strip() and not line.strip().startswith("--")), "")
+            self.statements[f"{stage}: {first.strip()[:70]}"] += spent
+            used = con.execute("SELECT coalesce(sum(memory_usage_bytes), 0) FROM duckdb_memory()").fetchone()[0]
+            self.duckdb_peak = max(self.duckdb_peak, int(used))
+            return out
+
+        runner._execute = timed
+
+    def report(self) -> dict[str, Any]:
+        top = sorted(self.statements.items(), key=lambda kv: -kv[1])[:8]
+        return {"stages": dict(self.by_stage), "checks": dict(self.by_check), "top_statements": dict(top),
+                "duckdb_peak_mib": self.duckdb_peak / 2**20}
+
+
+def _plimsoll(workdir: Path, checks: list[str] | None) -> dict[str, Any]:
+    from toolkit.project import load_project
+    from toolkit.runner import run
+
+    stages = _Stages()
+    stages.install()
+    t = time.perf_counter()
+    project = load_project(workdir / "plimsoll.yml")
+    loading = time.perf_counter() - t
+    result = run(project, checks)
+    import duckdb
+
+    con = duckdb.connect(str(project.warehouse), read_only=True)
+    windows = con.execute("SELECT count(*) FROM windows WHERE run_id = $r", {"r": result.run_id}).fetchone()[0]
+    alerts = con.execute("SELECT count(*) FROM alerts WHERE last_run_id = $r", {"r": result.run_id}).fetchone()[0]
+    con.close()
+    return {"windows": windows, "alerts": alerts, "files": result.files_read, "load_seconds": loading,
+            **stages.report()}
+
+
+CHILDREN = {
+    "floor": _child_floor,
+    "by_hand": _child_by_hand,
+    "title": lambda w: _plimsoll(w, ["title_errors"]),
+    "oracle": _child_oracle,
+    "catalogue": lambda w: _plimsoll(w, None),
+    "increment": lambda w: _plimsoll(w, None),
+}
+
+
+def child(name: str, workdir: Path) -> None:
+    t = time.perf_counter()
+    out = CHILDREN[name](workdir)
+    out["seconds"] = time.perf_counter() - t
+    out["peak_mib"] = own_peak_mib()
+    print(json.dumps(out))
+
+
+def own_peak_mib() -> float | None:
+    """This process's peak RSS since exec (VmHWM). getrusage's ru_maxrss of a child also counts the
+    parent's pages at fork, so after the parent has built a lake it would report the parent."""
+    try:
+        status = Path("/proc/self/status").read_text()
+    except OSError:
+        return None
+    match = re.search(r"^VmHWM:\s+(\d+) kB", status, re.MULTILINE)
+    return int(match.group(1)) / 1024 if match else None
+
+
+def measured(name: str, workdir: Path) -> dict[str, Any]:
+    """Run one measurement in a fresh Python, which reports its own peak RSS (else wait4's)."""
+    with tempfile.TemporaryFile("w+") as out:
+        proc = subprocess.Popen([sys.executable, __file__, "--child", name, str(workdir)], stdout=out)
+        _, status, usage = os.wait4(proc.pid, 0)
+        proc.returncode = os.waitstatus_to_exitcode(status)
+        if proc.returncode:
+            raise SystemExit(f"bench: measurement {name} failed (exit {proc.returncode})")
+        out.seek(0)
+        result = json.loads(out.read().strip().splitlines()[-1])
+    if result.get("peak_mib") is None:
+        result["peak_mib"] = usage.ru_maxrss / 1024  # Linux reports KiB
+    return result
+
+
+def fresh_warehouse(workdir: Path) -> None:
+    for stale in workdir.glob("warehouse.duckdb*"):
         stale.unlink()
+
+
+# ----------------------------------------------------------------------------------------------
+# the whole benchmark
+
+
+def prepare(workdir: Path, sessions: int, memory_limit: str | None) -> int:
+    """Build the lake unless WORKDIR holds one already; returns the lake's session count."""
+    from toolkit.demo import prepare_workdir, write_project
+    from toolkit.warehouse_demo.generate import build_lake
+
+    marker = workdir / "bench-lake.json"
+    if not marker.exists():
+        prepare_workdir(workdir)
+        t = time.perf_counter()
+        build_lake(workdir, sessions=sessions, days=DAYS)
+        say(f"lake of {sessions:,} sessions over {DAYS} days built in {time.perf_counter() - t:.1f} s")
+        marker.write_text(json.dumps({"sessions": sessions, "days": DAYS}), encoding="utf-8")
+    project = write_project(workdir)
+    if memory_limit:
+        os.environ[LIMIT_VARIABLE] = memory_limit
+        project.write_text(project.read_text(encoding="utf-8") + f"memory_limit: {memory_limit}\n", encoding="utf-8")
+    return int(json.loads(marker.read_text(encoding="utf-8"))["sessions"])
+
+
+def say(text: str) -> None:
+    print(text, file=sys.stderr, flush=True)
+
+
+def measure_all(workdir: Path, skip: set[str]) -> dict[str, dict[str, Any]]:
+    results: dict[str, dict[str, Any]] = {}
+    for name in ("floor", "by_hand", "title", "oracle", "catalogue"):
+        if name in skip:
+            continue
+        fresh_warehouse(workdir)
+        say(f"measuring {name}")
+        results[name] = measured(name, workdir)
+    if "increment" not in skip:
+        days = sorted((workdir / "lake" / "sessions").iterdir())
+        parked = workdir / "parked-day"
+        shutil.move(str(days[-1]), parked)
+        try:
+            fresh_warehouse(workdir)
+            say(f"catalogue over the first {len(days) - 1} days")
+            results["first_30_days"] = measured("catalogue", workdir)
+        finally:
+            shutil.move(str(parked), days[-1])
+        say("measuring increment")
+        results["increment"] = measured("increment", workdir)
+    return results
+
+
+def ratios(results: dict[str, dict[str, Any]]) -> list[dict[str, Any]]:
+    out = []
+    for top, bottom, target, meaning in RATIOS:
+        if top in results and bottom in results:
+            value = results[top]["seconds"] / results[bottom]["seconds"]
+            out.append({"ratio": f"{top}/{bottom}", "value": value, "target": target,
+                        "met": value <= target, "meaning": meaning})
+    return out
+
+
+def table(sessions: int, results: dict[str, dict[str, Any]], found: list[dict[str, Any]]) -> str:
+    limit = os.environ.get(LIMIT_VARIABLE) or "DuckDB's default"
+    lines = [f"Plimsoll benchmark: {sessions:,} sessions over {DAYS} days, {os.cpu_count()} cores, "
+             f"memory limit {limit}", "",
+             f"{'measurement':<15}{'seconds':>9}{'peak MiB':>10}{'DuckDB MiB':>12}{'windows':>10}{'alerts':>8}"]
+    for name, r in results.items():
+        duck = f"{r['duckdb_peak_mib']:.0f}" if "duckdb_peak_mib" in r else "-"
+        lines.append(f"{name:<15}{r['seconds']:>9.2f}{r['peak_mib']:>10.0f}{duck:>12}"
+                     f"{r.get('windows', '-'):>10}{r.get('alerts', '-'):>8}")
+    alike = [n for n in ("by_hand", "title", "oracle") if n in results]
+    same = {(results[n]["windows"], results[n]["alerts"]) for n in alike}
+    if len(alike) > 1:
+        lines += ["", ", ".join(alike) + (" agree on windows and alerts" if len(same) == 1
+                                          else " DISAGREE on windows or alerts: their ratios mean nothing")]
+    lines += ["", f"{'ratio':<22}{'value':>7}{'target':>8}  "]
+    for r in found:
+        lines.append(f"{r['ratio']:<22}{r['value']:>7.3f}{'<= ' + format(r['target'], 'g'):>8}  "
+                     f"{'met' if r['met'] else 'MISSED'}  ({r['meaning']})")
+    if "catalogue" in results:
+        peak = results["catalogue"]["peak_mib"]
+        lines.append(f"{'catalogue peak MiB':<22}{peak:>7.0f}{'<= ' + str(MEMORY_TARGET_MIB):>8}  "
+                     f"{'met' if peak <= MEMORY_TARGET_MIB else 'MISSED'}")
+    for name in ("title", "catalogue", "increment"):
+        if name not in results:
+            continue
+        r = results[name]
+        spent = sum(r["stages"].values())
+        lines += ["", f"where {name} spends {r['seconds']:.2f} s: {r['load_seconds']:.2f} s loading and validating "
+                  f"the project, {spent:.2f} s in the runner's statements"]
+        lines += [f"  stage {stage:<12}{secs:8.2f} s  {secs / r['seconds']:6.1%}"
+                  for stage, secs in sorted(r["stages"].items(), key=lambda kv: -kv[1])]
+        if name != "title":
+            lines += [f"  {who:<32}{secs:8.2f} s"
+                      for who, secs in sorted(r["checks"].items(), key=lambda kv: -kv[1])]
+        lines += ["  slowest statements:"] + [f"    {secs:7.2f} s  {what}" for what, secs in r["top_statements"].items()]
+    return "\n".join(lines)
 
 
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     parser.add_argument("--sessions", type=int, default=2_000_000)
-    parser.add_argument("--workdir", type=Path, default=None)
-    parser.add_argument("--spark", metavar="MASTER", default=None, help="also time engine: spark at this master")
+    parser.add_argument("--workdir", type=Path, default=None, help="reuse (or build) the lake here")
+    parser.add_argument("--json", type=Path, default=None, help="where the figures go (default: WORKDIR/bench.json)")
+    parser.add_argument("--skip", action="append", default=[], choices=[*CHILDREN],
+                        help="leave a measurement out (repeatable), e.g. the oracle at very large sizes")
+    parser.add_argument("--memory-limit", default=None,
+                        help="DuckDB memory_limit for every measurement (plimsoll.yml's key), e.g. 8GB; default: DuckDB's")
+    parser.add_argument("--child", nargs=2, metavar=("NAME", "WORKDIR"), help=argparse.SUPPRESS)
     args = parser.parse_args()
-    from toolkit.demo import prepare_workdir, write_project
-    from toolkit.warehouse_demo.generate import build_lake
-
+    if args.child:
+        child(args.child[0], Path(args.child[1]))
+        return
     workdir = args.workdir or Path(tempfile.mkdtemp(prefix="plimsoll-bench-"))
-    if not (workdir / "lake").exists():
-        prepare_workdir(workdir)
-        t = time.perf_counter()
-        build_lake(workdir, sessions=args.sessions)
-        print(f"lake of {args.sessions:,} sessions built in {time.perf_counter() - t:.1f} s", file=sys.stderr)
-    project = write_project(workdir)
-    results: dict[str, tuple[float, float]] = {}
-    results["floor"] = measured(FLOOR, str(workdir))
-    fresh_warehouse(project)
-    results["title"] = measured(RUN, str(project), "title_errors")
-    fresh_warehouse(project)
-    results["catalogue"] = measured(RUN, str(project))
-
-    last_day = sorted((workdir / "lake" / "sessions").iterdir())[-1]
-    parked = workdir / "parked-day"
-    shutil.move(str(last_day), parked)
-    fresh_warehouse(project)
-    measured(RUN, str(project))
-    shutil.move(str(parked), last_day)
-    results["increment"] = measured(RUN, str(project))
-
-    ratios = {
-        "title/floor": results["title"][0] / results["floor"][0],
-        "catalogue/title": results["catalogue"][0] / results["title"][0],
-        "increment/catalogue": results["increment"][0] / results["catalogue"][0],
-    }
-    if args.spark:
-        spark_project = workdir / "plimsoll-spark.yml"
-        spark_project.write_text(
-            project.read_text().replace("warehouse: warehouse.duckdb", "warehouse: warehouse-spark.duckdb")
-            + f"engine: spark\nspark_master: {args.spark}\nspark_conf:\n  spark.sql.shuffle.partitions: 4\n")
-        for stale in workdir.glob("warehouse-spark.duckdb*"):
-            stale.unlink()
-        results["spark"] = measured(RUN, str(spark_project))
-        ratios["spark/catalogue"] = results["spark"][0] / results["catalogue"][0]
-    for name, (seconds, mib) in results.items():
-        print(f"{name:<10} {seconds:8.2f} s  {mib:8.0f} MiB peak")
-    for name, value in ratios.items():
-        print(f"{name:<20} {value:6.2f}")
-    print(json.dumps({"sessions": args.sessions, "results": results, "ratios": ratios}))
+    sessions = prepare(workdir, args.sessions, args.memory_limit)
+    results = measure_all(workdir, set(args.skip))
+    found = ratios(results)
+    print(table(sessions, results, found))
+    target = args.json or workdir / "bench.json"
+    target.write_text(json.dumps({"sessions": sessions, "days": DAYS, "cores": os.cpu_count(),
+                                  "memory_limit": args.memory_limit,
+                                  "results": results, "ratios": found}, indent=2), encoding="utf-8")
+    print(f"\nfigures written to {target}")
 
 
 if __name__ == "__main__":

@@ -11,7 +11,7 @@ import pytest
 from click.testing import CliRunner
 
 from toolkit.cli import main
-from toolkit.project import CHECK_KEYS, NOTIFY_KEYS, PROJECT_KEYS, SOURCE_KEYS, WEBHOOK_KEYS
+from toolkit.project import CHECK_KEYS, NOTIFY_KEYS, PROJECT_KEYS, SOURCE_KEYS, STORAGE_KEYS, WEBHOOK_KEYS
 from toolkit.registry import BASELINES, MEASURES
 
 GOLDEN = Path(__file__).parent / "golden"
@@ -97,7 +97,7 @@ def test_run_on_broken_project_exits_2_and_writes_nothing(make_project, tmp_path
 
 def test_every_yaml_key_is_documented_in_the_readme() -> None:
     readme = README.read_text()
-    keys = [k.name for k in (*PROJECT_KEYS, *SOURCE_KEYS, *CHECK_KEYS, *WEBHOOK_KEYS, *NOTIFY_KEYS)]
+    keys = [k.name for k in (*PROJECT_KEYS, *SOURCE_KEYS, *STORAGE_KEYS, *CHECK_KEYS, *WEBHOOK_KEYS, *NOTIFY_KEYS)]
     keys += [k.name for kind in (*MEASURES.values(), *BASELINES.values()) for k in kind.keys]
     keys += list(MEASURES) + list(BASELINES) + ["sessions", "max_wait", "every", "lateness",
                                                  "min_sessions", "min_bad", "recover_after", "expire_after"]

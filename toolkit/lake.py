@@ -1,7 +1,8 @@
 """Finding a source's Parquet files and reading their schema.
 
 A run is incremental by file: it needs each file's path, size and modification time, so listing is
-done here rather than by a glob inside the SQL.
+done here rather than by a glob inside the SQL. Local folders and globs are listed with the
+operating system; ``s3://`` URLs through :mod:`toolkit.storage` (size and LastModified).
 """
 
 from __future__ import annotations
@@ -13,6 +14,8 @@ from datetime import datetime, timezone
 
 import duckdb
 
+from . import storage
+from .model import Source, Storage
 from .problems import DataError
 from .sqltext import quote_ident
 
@@ -30,10 +33,23 @@ def is_pattern(path: str) -> bool:
     return any(ch in path for ch in "*?[")
 
 
-def list_files(path: str) -> list[LakeFile]:
-    """Every ``.parquet`` file under a folder (recursively, for hive partitions) or matching a glob."""
-    if path.startswith(("s3://", "gs://", "http://", "https://")):
-        raise DataError(f"{path}: object-storage lakes are not supported by this version")
+def list_source(source: Source) -> list[LakeFile]:
+    """The source's files now; an object store that cannot be listed is one line naming the source."""
+    try:
+        return list_files(source.path, source.storage)
+    except storage.StorageError as err:
+        raise DataError(f"source '{source.name}': {source.path}: {err}") from None
+
+
+def list_files(path: str, settings: Storage | None = None) -> list[LakeFile]:
+    """Every ``.parquet`` file under a folder or prefix (recursively, for hive partitions), matching
+    a glob, or the one file named; raises :class:`storage.StorageError` if the store cannot answer."""
+    if storage.is_remote(path):
+        return [LakeFile(url, size, modified.astimezone(timezone.utc).replace(tzinfo=None))
+                for url, size, modified, _etag in storage.list_objects(path, settings)]
+    scheme = storage.unsupported_scheme(path)
+    if scheme:
+        raise DataError(f"{path}: {scheme} lakes are not supported; use a local path or s3://")
     if is_pattern(path):
         names = sorted(p for p in globlib.glob(path, recursive=True) if os.path.isfile(p))
     elif os.path.isdir(path):

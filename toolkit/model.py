@@ -38,6 +38,20 @@ class Engine:
 
 
 @dataclass(frozen=True)
+class Storage:
+    """How ``s3://`` sources are reached; secrets are named by environment variable, never held."""
+
+    endpoint_url: str | None = None
+    region: str | None = None
+    profile: str | None = None
+    access_key_env: str | None = None
+    secret_key_env: str | None = None
+    session_token_env: str | None = None
+    anonymous: bool = False
+    addressing_style: str = "auto"
+
+
+@dataclass(frozen=True)
 class Source:
     """A table of sessions in the lake, and the engine that reads it (the project's)."""
 
@@ -50,6 +64,7 @@ class Source:
     engine: Engine = field(default_factory=Engine)
     # Read only sessions before this data time; set by a backtest replaying the lake up to a moment.
     until: datetime | None = None
+    storage: Storage | None = None  # the project's storage settings, for s3:// paths
 
 
 @dataclass(frozen=True)
@@ -166,3 +181,9 @@ class Project:
     webhooks: tuple[Webhook, ...] = ()
     notify: Notify = field(default_factory=Notify)
     engine: Engine = field(default_factory=Engine)
+    storage: Storage | None = None
+
+    @property
+    def remote(self) -> bool:
+        """Whether any source is read from object storage (so connections need the filesystem)."""
+        return any(s.path.startswith("s3://") for s in self.sources.values())

@@ -42,6 +42,19 @@ class RunLocked(PlimsollError):
     """Another run holds the warehouse."""
 
 
+def engine_message(err: BaseException) -> str:
+    """The first line of an engine error. An error raised inside a Python filesystem (s3fs) reaches
+    DuckDB as a whole traceback: its exception line is the message, not the word 'Traceback'."""
+    lines = [line for line in str(err).strip().splitlines() if line.strip()]
+    if not lines:
+        return type(err).__name__
+    if lines[0].startswith("Traceback (most recent call last)"):
+        raised = [line for line in lines[1:] if not line.startswith((" ", "\t")) and ":" in line]
+        if raised:
+            return raised[0].strip()
+    return lines[0].strip()
+
+
 def display_path(path: Path, base: Path | None = None) -> str:
     """A path as a user would type it: relative to ``base`` (or the working folder) when inside it."""
     path = Path(path)

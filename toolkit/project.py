@@ -17,10 +17,10 @@ from typing import Any
 
 import duckdb
 
-from . import lake
+from . import lake, storage
 from .expressions import ExpressionError, parse_expression, unknown_column
-from .model import Baseline, Check, Engine, Expr, Guard, Lifecycle, Measure, Notify, Project, Source, Webhook, Window
-from .problems import Problem, ProjectInvalid, display_path
+from .model import Baseline, Check, Engine, Expr, Guard, Lifecycle, Measure, Notify, Project, Source, Storage, Webhook, Window
+from .problems import Problem, ProjectInvalid, display_path, engine_message
 from .registry import BASELINES, DIRECTIONS, MEASURES, SEVERITIES, Key
 from .yamlsource import KeyPath, Located, dotted, load
 
@@ -38,6 +38,7 @@ PROJECT_KEYS = (
     Key("spark_master", "text", "engine spark: the Spark master URL, e.g. local[2] or spark://host:7077 "
         "(default local[*])"),
     Key("spark_conf", "mapping", "engine spark: Spark settings for the session, e.g. spark.executor.memory: 4g"),
+    Key("storage", "mapping", "how s3:// sources are reached: endpoint, region, credentials"),
 )
 WEBHOOK_KEYS = (
     Key("url", "text", "http:// or https:// URL that receives a JSON POST per alert event", True),
@@ -51,8 +52,19 @@ NOTIFY_KEYS = (
     Key("backoff", "duration", "wait after the first failed attempt; doubled after each further one", False, "30s"),
     Key("max_backoff", "duration", "the longest wait between two attempts", False, "1h"),
 )
+STORAGE_KEYS = (
+    Key("endpoint_url", "text", "the S3 endpoint, e.g. http://127.0.0.1:9000 (default: AWS_ENDPOINT_URL, else AWS)"),
+    Key("region", "text", "the bucket's region (default: AWS_DEFAULT_REGION)"),
+    Key("profile", "text", "a named profile of the AWS shared config and credentials files"),
+    Key("access_key_env", "envvar", "name of the environment variable holding the access key id (default: AWS_ACCESS_KEY_ID)"),
+    Key("secret_key_env", "envvar", "name of the environment variable holding the secret key (default: AWS_SECRET_ACCESS_KEY)"),
+    Key("session_token_env", "envvar", "name of the environment variable holding a session token (default: AWS_SESSION_TOKEN)"),
+    Key("anonymous", "bool", "unsigned requests, for public buckets", False, False),
+    Key("addressing_style", "choice", "auto, path (most self-hosted S3 servers) or virtual", False, "auto",
+        ("auto", "path", "virtual")),
+)
 SOURCE_KEYS = (
-    Key("path", "text", "folder, glob or file of Parquet; hive partitions are read", True),
+    Key("path", "text", "folder, glob or file of Parquet, or an s3:// URL of them; hive partitions are read", True),
     Key("session_id", "column", "unique per session: duplicates are counted once", True),
     Key("event_time", "column", "the data time that orders sessions and closes windows", True),
     Key("exclude", "expr", "SQL boolean: matching sessions never count (crawlers, tests)"),
@@ -89,6 +101,7 @@ LIFECYCLE_KEYS = (
 )
 
 _NAME = re.compile(r"^[a-z][a-z0-9_]*$")
+_ENV_NAME = re.compile(r"^[A-Za-z_][A-Za-z0-9_]*$")
 _DURATION = re.compile(r"^(?:(\d+)w)?(?:(\d+)d)?(?:(\d+)h)?(?:(\d+)m)?(?:(\d+)s)?$")
 _NUMERIC = re.compile(
     r"^(TINYINT|SMALLINT|INTEGER|BIGINT|HUGEINT|UTINYINT|USMALLINT|UINTEGER|UBIGINT|UHUGEINT|FLOAT|"
@@ -153,10 +166,17 @@ def _kind(value: Any) -> str:
 
 def _typed(key: Key, value: Any) -> Any:
     t = key.type
-    if t in ("text", "name", "column", "expr", "choice"):
+    if t == "bool":
+        if not isinstance(value, bool):
+            raise ValueError(f"expected true or false, got {_kind(value)} {value!r}")
+        return value
+    if t in ("text", "name", "column", "expr", "choice", "envvar"):
         if isinstance(value, bool) or not isinstance(value, (str, int, float)):
             raise ValueError(f"expected text, got {_kind(value)}")
         value = str(value)
+        if t == "envvar" and not _ENV_NAME.match(value):
+            raise ValueError(f"'{value}' is not an environment variable name: write the variable's name, "
+                             "not its value")
         if t == "name" and not _NAME.match(value):
             raise ValueError(f"'{value}' is not a valid name: use [a-z][a-z0-9_]*")
         if t == "choice" and value not in key.choices:
@@ -267,8 +287,9 @@ def load_project(path: Path | str = "plimsoll.yml", check_schema: bool = True) -
     warehouse, checks_dir = top.get("warehouse"), top.get("checks")
     memory_limit, threads = top.get("memory_limit"), top.get("threads")
     engine = _engine(top)
+    settings = _storage(doc, top.get("storage"), problems)
     con = duckdb.connect()
-    sources = _load_sources(doc, top.get("sources") or {}, root, con, problems, check_schema, engine)
+    sources = _load_sources(doc, top.get("sources") or {}, root, con, problems, check_schema, engine, settings)
     checks: dict[str, Check] = {}
     folder = (root / (checks_dir or "checks/")).resolve()
     if checks_dir is not None and not folder.is_dir():
@@ -286,7 +307,7 @@ def load_project(path: Path | str = "plimsoll.yml", check_schema: bool = True) -
     return Project(
         file=file.resolve(), root=root, warehouse=(root / warehouse).resolve(), checks_dir=folder,
         sources=sources, checks=checks, memory_limit=memory_limit, threads=threads,
-        webhooks=webhooks, notify=notify, engine=engine,
+        webhooks=webhooks, notify=notify, engine=engine, storage=settings,
     )
 
 
@@ -352,8 +373,40 @@ def _engine(top: _Section) -> Engine:
     return Engine(name, master, tuple(settings))
 
 
+def _storage(doc: Located, raw: Any, problems: list[Problem]) -> Storage | None:
+    """The ``storage`` mapping; credentials only as names of environment variables."""
+    if raw is None:
+        return None
+    section = _Section(doc, ("storage",), raw, STORAGE_KEYS, problems)
+    values = {key.name: section.get(key.name) for key in STORAGE_KEYS}
+    if bool(values["access_key_env"]) != bool(values["secret_key_env"]):
+        given = "access_key_env" if values["access_key_env"] else "secret_key_env"
+        section.error(("storage", given), "storage: access_key_env and secret_key_env go together; give both")
+    return Storage(**{k: v for k, v in values.items() if v is not None})
+
+
+def _remote_files(section: _Section, name: str, where: str, settings: Storage | None,
+                  con: duckdb.DuckDBPyConnection) -> list[str] | None:
+    """The source's object URLs, with the filesystem registered on ``con``; None after a problem."""
+    if not storage.available():
+        section.error((*section.path, "path"), f"source '{name}': {storage.INSTALL_HINT}")
+        return None
+    for variable in storage.missing_variables(settings):
+        key = next(k for k in ("access_key_env", "secret_key_env", "session_token_env")
+                   if getattr(settings, k) == variable)
+        section.error(("storage", key), f"storage.{key}: environment variable {variable} is not set")
+        return None
+    try:
+        storage.register(con, settings)
+        return [f.path for f in lake.list_files(where, settings)]
+    except storage.StorageError as err:
+        section.error((*section.path, "path"), f"source '{name}': {where}: {err}")
+        return None
+
+
 def _load_sources(doc: Located, raw: dict[str, Any], root: Path, con: duckdb.DuckDBPyConnection,
-                  problems: list[Problem], check_schema: bool, engine: Engine) -> dict[str, Source]:
+                  problems: list[Problem], check_schema: bool, engine: Engine,
+                  settings: Storage | None) -> dict[str, Source]:
     sources: dict[str, Source] = {}
     if not raw:
         problems.append(Problem(doc.file, doc.line(("sources",)), "at least one source is needed"))
@@ -366,28 +419,36 @@ def _load_sources(doc: Located, raw: dict[str, Any], root: Path, con: duckdb.Duc
         if where is None:
             continue
         location = where if "://" in where else str((root / where))
+        remote = storage.is_remote(location)
+        if "://" in where and not remote:
+            section.error((*section.path, "path"), f"source '{name}': only local paths and s3:// URLs "
+                          f"can be read, not {where.split('://')[0]}://")
+            sources[name] = Source(name, location, session_id or "", event_time or "", None, {})
+            continue
         columns: dict[str, str] = {}
+        held = settings if remote else None
         if check_schema:
-            files = [f.path for f in lake.list_files(location)]
+            files = (_remote_files(section, name, location, settings, con) if remote
+                     else [f.path for f in lake.list_files(location)])
             unreadable = None
-            if not files:
+            if files == []:
                 unreadable = f"source '{name}': no Parquet files at '{where}'"
-            else:
+            elif files is not None:
                 try:
                     columns = _readable_schema(con, files)
                 except duckdb.Error as err:
-                    first = str(err).strip().splitlines()[0]
-                    unreadable = f"source '{name}': cannot read Parquet schema: {first}"
+                    unreadable = f"source '{name}': cannot read Parquet schema: {engine_message(err)}"
             if unreadable:
-                # keep the source, without columns, so its checks report only their own problems
                 section.error((*section.path, "path"), unreadable)
-                sources[name] = Source(name, location, session_id or "", event_time or "", None, {}, engine)
+            if files is None or unreadable:
+                # keep the source, without columns, so its checks report only their own problems
+                sources[name] = Source(name, location, session_id or "", event_time or "", None, {}, engine=engine, storage=held)
                 continue
         reserved = sorted(c for c in columns if c.startswith("__"))
         if reserved:
             section.error((*section.path, "path"), f"source '{name}': column names starting with '__' are "
                           f"reserved for Plimsoll's own columns: {', '.join(reserved)}")
-        source = Source(name, location, session_id or "", event_time or "", None, columns, engine)
+        source = Source(name, location, session_id or "", event_time or "", None, columns, engine=engine, storage=held)
         binder = _Binder(con, source)
         if check_schema:
             binder.column(section, session_id, "session_id")
@@ -395,7 +456,7 @@ def _load_sources(doc: Located, raw: dict[str, Any], root: Path, con: duckdb.Duc
                 section.error((*section.path, "event_time"),
                               f"sources.{name}.event_time: column '{event_time}' is {columns[event_time]}, not a timestamp")
         excl = binder.expr(section, exclude, "exclude", "boolean")
-        sources[name] = Source(name, location, session_id or "", event_time or "", excl, columns, engine)
+        sources[name] = Source(name, location, session_id or "", event_time or "", excl, columns, engine=engine, storage=held)
     return sources
 
 

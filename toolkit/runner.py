@@ -17,7 +17,7 @@ import duckdb
 from . import lake, spark_engine, warehouse
 from .compiler import CompiledCheck, Statement, columns_read, compile_check, compile_source
 from .model import Check, Project, Source
-from .problems import DataError, PlimsollError, Problem, ProjectInvalid
+from .problems import DataError, PlimsollError, Problem, ProjectInvalid, engine_message
 
 Progress = Callable[[str], None]
 
@@ -262,7 +262,7 @@ def _groups(con: duckdb.DuckDBPyConnection, checks: list[Check], compiled: list[
     groups: dict[tuple[str, tuple[str, ...]], list[tuple[Check, CompiledCheck, list[lake.LakeFile]]]] = {}
     for check, sql in zip(checks, compiled):
         if check.source.name not in listings:
-            listings[check.source.name] = lake.list_files(check.source.path)
+            listings[check.source.name] = lake.list_source(check.source)
         seen = {row[0] for row in con.execute(
             "SELECT path FROM files_read WHERE check_name = $c", {"c": check.name}).fetchall()}
         new = [f for f in listings[check.source.name] if f.path not in seen]
@@ -376,5 +376,4 @@ def _now() -> datetime:
 
 
 def _engine_message(err: BaseException) -> str:
-    text = str(err).strip()
-    return text.splitlines()[0] if text else type(err).__name__
+    return engine_message(err)

@@ -20,9 +20,10 @@ from pathlib import Path
 
 import duckdb
 
+from . import storage
 from .compiler import template_folder
 from .model import Project
-from .problems import RunLocked
+from .problems import DataError, RunLocked
 from .sqltext import quote_ident, quote_literal
 
 TABLES = ("runs", "run_checks", "files_read", "changed_files", "source_columns", "session_ids",
@@ -59,6 +60,12 @@ def connect(project: Project, read_only: bool = False, wait: float = 0.0) -> duc
         con.execute(f"SET memory_limit = {quote_literal(_setting(project.memory_limit))}")
     if project.threads:
         con.execute(f"SET threads = {int(project.threads)}")
+    if project.remote and not read_only:
+        try:
+            storage.register(con, project.storage)
+        except storage.StorageError as err:
+            con.close()
+            raise DataError(f"{project.file.name}: storage: {err}") from None
     if not read_only:
         ensure_schema(con)
     return con

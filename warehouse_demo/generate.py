@@ -27,15 +27,21 @@ COMMENT = re.compile(r"--[^\n]*")
 MIN_SESSIONS = 20_000
 # Identifiers are bijections of 32-bit row and viewer numbers, so they stay unique up to here.
 MAX_SESSIONS = 1_000_000_000
+# The story (2026-11-02 to 2026-11-22) fills three weeks.
+STORY_DAYS = 21
 
 
-def build_lake(workdir: Path, sessions: int = 2_000_000, seed: int = 7) -> list[Label]:
+def build_lake(workdir: Path, sessions: int = 2_000_000, seed: int = 7, days: int = STORY_DAYS) -> list[Label]:
     """Writes workdir/lake/sessions/day=YYYY-MM-DD/*.parquet and workdir/labels.csv; returns labels.
 
     ``sessions`` is the total row count (within 1 %), crawlers and incidents included; the
-    incidents scale with it. An existing lake and labels file in ``workdir`` are replaced.
+    incidents scale with it. ``days`` from 2026-11-02: the story needs the default three weeks;
+    more days are ordinary traffic after it (the benchmark uses 31). An existing lake and labels
+    file in ``workdir`` are replaced.
     """
     _check_arguments(sessions, seed)
+    if isinstance(days, bool) or not isinstance(days, int) or days < STORY_DAYS:
+        raise ValueError(f"days must be an integer of at least {STORY_DAYS}: {days!r}")
     workdir = Path(workdir)
     workdir.mkdir(parents=True, exist_ok=True)
     staging = Path(tempfile.mkdtemp(prefix=".demo-build-", dir=workdir))
@@ -43,7 +49,7 @@ def build_lake(workdir: Path, sessions: int = 2_000_000, seed: int = 7) -> list[
         with duckdb.connect(":memory:") as con:
             con.execute("SET enable_progress_bar = false")
             con.execute(f"SET temp_directory = {quote_literal(str(staging / 'spill'))}")
-            run_script(con, {"seed": seed, "sessions": sessions})
+            run_script(con, {"seed": seed, "sessions": sessions, "days": days})
             write_sessions(con, staging / "sessions")
             labels = fetch_labels(con)
         write_labels(staging / "labels.csv", labels)
@@ -76,6 +82,7 @@ def script_steps(text: str) -> list[tuple[str, str]]:
 
 def run_script(con: duckdb.DuckDBPyConnection, parameters: dict[str, object]) -> None:
     """Run every step of lake.sql, binding to each only the parameters it mentions."""
+    parameters = {"days": STORY_DAYS, **parameters}
     for name, statement in script_steps(SCRIPT.read_text(encoding="utf-8")):
         mentioned = PARAMETER.findall(COMMENT.sub("", statement))
         used = {p: parameters[p] for p in mentioned if p in parameters}

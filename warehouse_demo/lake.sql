@@ -13,7 +13,7 @@
 
 -- step: params
 CREATE OR REPLACE TEMP TABLE params AS
-SELECT $seed::BIGINT AS seed, $sessions::BIGINT AS sessions;
+SELECT $seed::BIGINT AS seed, $sessions::BIGINT AS sessions, $days::INTEGER AS days;
 
 -- step: macro draw_bits
 -- 64 pseudo-random bits for (seed, number, salt). DuckDB combines the hashes of several
@@ -59,7 +59,8 @@ CREATE OR REPLACE TEMP MACRO hex_id(prefix, x, key) AS
 CREATE OR REPLACE TEMP TABLE scenario AS
 SELECT
     TIMESTAMP '2026-11-02 00:00:00' AS lake_from,
-    TIMESTAMP '2026-11-23 00:00:00' AS lake_to,
+    -- three weeks by default; a longer span only adds ordinary days after the story
+    TIMESTAMP '2026-11-02 00:00:00' + to_days((SELECT days FROM params)) AS lake_to,
     -- (a) one CDN failing in one country; the CDN is preferred there, so that the pair is large
     'birch' AS outage_cdn,
     'DE' AS outage_country,
