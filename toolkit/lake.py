@@ -16,7 +16,7 @@ import duckdb
 
 from . import storage
 from .model import Source, Storage
-from .problems import DataError
+from .problems import DataError, engine_message
 from .sqltext import quote_ident
 
 
@@ -111,13 +111,15 @@ def hive_columns(path: str) -> set[str]:
     return {part.split("=", 1)[0] for part in path.replace("\\", "/").split("/")[:-1] if "=" in part}
 
 
-def file_columns(paths: list[str]) -> dict[str, dict[str, str]]:
+def file_columns(paths: list[str], settings: Storage | None = None) -> dict[str, dict[str, str]]:
     """Each file's top-level columns and DuckDB types, read from the Parquet footers only.
 
     A file that is not readable Parquet (truncated, corrupt, not Parquet at all) is named. Read on
     a connection of its own, so a failure never aborts the run's transaction.
     """
     with duckdb.connect() as con:
+        if any(storage.is_remote(p) for p in paths):
+            storage.register(con, settings)
         return _file_columns(con, paths)
 
 
@@ -131,7 +133,7 @@ def _file_columns(con: duckdb.DuckDBPyConnection, paths: list[str]) -> dict[str,
             try:
                 con.execute("SELECT 1 FROM parquet_schema($f) LIMIT 1", {"f": [path]}).fetchall()
             except duckdb.Error as err:
-                detail = str(err).strip().splitlines()[0] if str(err).strip() else type(err).__name__
+                detail = engine_message(err)
                 raise DataError(f"{path}: not a readable Parquet file ({detail})") from None
         raise
     found: dict[str, dict[str, str]] = {p: {} for p in paths}
@@ -141,7 +143,7 @@ def _file_columns(con: duckdb.DuckDBPyConnection, paths: list[str]) -> dict[str,
 
 
 def check_new_files(con: duckdb.DuckDBPyConnection, source_name: str, paths: list[str],
-                    needed: list[str], readers: list[str]) -> None:
+                    needed: list[str], readers: list[str], settings: Storage | None = None) -> None:
     """Refuse new files that lack a column the checks read, or hold one of another kind of type.
 
     Without this, reading many files by name would quietly fill a missing column with NULL and
@@ -152,7 +154,7 @@ def check_new_files(con: duckdb.DuckDBPyConnection, source_name: str, paths: lis
         "SELECT column_name, column_type, first_path FROM source_columns WHERE source_name = $s",
         {"s": source_name}).fetchall()}
     who = ", ".join(readers)
-    for path, columns in sorted(file_columns(paths).items()):
+    for path, columns in sorted(file_columns(paths, settings).items()):
         partitions = hive_columns(path)
         for name in needed:
             if name in partitions:

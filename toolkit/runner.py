@@ -115,7 +115,8 @@ def _run(con: duckdb.DuckDBPyConnection, project: Project, run_id: int, checks: 
                 progress(f"source {source.name}: reading {len(new_files)} new files for {len(group)} checks")
                 readers = [check for check, _, _ in group]
                 lake.check_new_files(con, source.name, [f.path for f in new_files],
-                                     _needed_columns(source, readers), [c.name for c in readers])
+                                     _needed_columns(source, readers), [c.name for c in readers],
+                                     source.storage)
                 source_stage = compile_source([check for check, _, _ in group])
                 params = _params(new_files, run_id, "", group[0][0].name)
                 for statement in source_stage.once:

@@ -30,6 +30,9 @@ TABLES = ("runs", "run_checks", "files_read", "changed_files", "source_columns",
           "check_state", "key_state", "carry", "key_windows", "windows", "alerts", "alert_events")
 PUBLISHED = ("alerts", "alert_events", "windows", "runs")
 POLL_SECONDS = 0.25
+# A run's temp tables live until its one transaction commits, so without a limit its memory grows
+# with checks x sessions; at this limit DuckDB spills to disk instead (and the catalogue ran faster).
+DEFAULT_MEMORY_LIMIT = "2GB"
 
 
 def connect(project: Project, read_only: bool = False, wait: float = 0.0) -> duckdb.DuckDBPyConnection:
@@ -56,8 +59,7 @@ def connect(project: Project, read_only: bool = False, wait: float = 0.0) -> duc
                                 "try again later or pass --wait SECONDS") from None
             time.sleep(POLL_SECONDS)
     con.execute("SET TimeZone = 'UTC'")
-    if project.memory_limit:
-        con.execute(f"SET memory_limit = {quote_literal(_setting(project.memory_limit))}")
+    con.execute(f"SET memory_limit = {quote_literal(_setting(project.memory_limit or DEFAULT_MEMORY_LIMIT))}")
     if project.threads:
         con.execute(f"SET threads = {int(project.threads)}")
     if project.remote and not read_only:
