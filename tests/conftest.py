@@ -89,3 +89,14 @@ def warehouse_contents(warehouse_file: Path, skip: tuple[str, ...] = ()) -> dict
         return out
     finally:
         con.close()
+
+
+def plimsoll_command(*args: str) -> list[str]:
+    """The installed ``plimsoll`` command, for tests that need a real process.
+
+    Not ``python -m toolkit.cli``: run from the repository, that imports the source tree, whose
+    layout is not the installed package's (the templates are installed as ``toolkit.queries``).
+    """
+    import sys
+
+    return [str(Path(sys.executable).with_name("plimsoll")), *args]

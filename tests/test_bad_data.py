@@ -149,7 +149,7 @@ def test_duplicates_within_and_across_files_and_runs_count_once(tmp_path: Path) 
     rows = sessions("a", 0, 80)
     once = tmp_path / "once"
     once.mkdir()
-    reference = project_with(once, rows)
+    project_with(once, rows)
 
     twice = tmp_path / "twice"
     twice.mkdir()

@@ -14,13 +14,12 @@ import re
 import shutil
 import signal
 import subprocess
-import sys
 import threading
 import time
 from pathlib import Path
 
 import pytest
-from conftest import warehouse_contents
+from conftest import plimsoll_command, warehouse_contents
 from toolkit.warehouse_demo.generate import build_lake
 
 from toolkit import warehouse
@@ -68,7 +67,7 @@ def copy_state(source: Path, target: Path) -> None:
 
 
 def plimsoll(*args: str) -> list[str]:
-    return [sys.executable, "-m", "toolkit.cli", *args]
+    return plimsoll_command(*args)
 
 
 def test_killed_runs_leave_the_warehouse_as_before(tmp_path: Path, demo_lake: Path) -> None:

@@ -11,7 +11,6 @@ import json
 import socket
 import struct
 import subprocess
-import sys
 import threading
 import time
 from collections.abc import Iterator
@@ -24,7 +23,7 @@ import duckdb
 import pytest
 from click.testing import CliRunner
 
-from conftest import write_rows
+from conftest import plimsoll_command, write_rows
 from known_lake import HOSTILE, SCHEMA, START, known_project, warehouse_held
 from toolkit.cli import main
 from toolkit.outbox import Clock, _single_notifier, notify
@@ -295,7 +294,7 @@ def test_a_dead_endpoint_never_blocks_or_fails_a_run(tmp_path: Path, hook: Hook)
         worker = threading.Thread(target=lambda: done.append(notify(project)))
         worker.start()
         assert hook.arrived.wait(30)
-        second = subprocess.run([sys.executable, "-m", "toolkit.cli", "run", "-p", str(project_file)],
+        second = subprocess.run(plimsoll_command("run", "-p", str(project_file)),
                                 capture_output=True, text=True, timeout=120)
         assert second.returncode == 0, second.stderr
         hook.release.set()
