@@ -95,7 +95,7 @@ SELECT
         'run_id': f.run_id,
         'sender': 'plimsoll ' || $version
     })::VARCHAR AS payload,
-    CASE WHEN d.send THEN 'pending' ELSE 'skipped' END AS status,
+    CASE WHEN d.send THEN 'queued' ELSE 'skipped' END AS status,
     0 AS attempts,
     NULL::VARCHAR AS last_error,
     (SELECT coalesce(max(seq), 0) FROM outbox)

@@ -178,7 +178,7 @@ CREATE TABLE IF NOT EXISTS outbox (  -- one row per alert event and webhook: wha
     occurred_at TIMESTAMP,           -- data time of the event
     affected_sessions BIGINT,
     payload VARCHAR,                 -- the JSON body, fixed when queued so every attempt sends the same bytes
-    status VARCHAR,                  -- 'pending' | 'delivered' | 'abandoned' | 'skipped' (an update below notify.growth)
+    status VARCHAR,                  -- 'queued' | 'delivered' | 'abandoned' | 'skipped' (an update below notify.growth)
     attempts INTEGER,                -- failed and successful POSTs made
     last_error VARCHAR,
     seq BIGINT,                      -- queue order

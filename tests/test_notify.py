@@ -256,11 +256,11 @@ def test_cli_reports_and_exits_1_while_a_delivery_fails(tmp_path: Path, hook: Ho
     assert lines[0] == "notify: queued 4 events for 1 webhook"
     assert lines[1].startswith("  failed     hook0: opened site=kids, title_id=t-1 [")
     assert "HTTP 500 Internal Server Error; attempt 2 of 6 at " in lines[1]
-    assert lines[-1] == "notify: 0 delivered, 1 failed, 4 pending, 0 abandoned now"
+    assert lines[-1] == "notify: 0 delivered, 1 failed, 4 waiting, 0 abandoned now"
     time.sleep(1.1)  # the 1 s backoff, in real time for the command line
     result = CliRunner().invoke(main, ["notify", "-p", str(project.file)])
     assert result.exit_code == 0, result.output
-    assert result.output.splitlines()[-1] == "notify: 4 delivered, 0 failed, 0 pending, 0 abandoned now"
+    assert result.output.splitlines()[-1] == "notify: 4 delivered, 0 failed, 0 waiting, 0 abandoned now"
 
 
 def test_a_removed_webhook_gives_up_its_rows(tmp_path: Path, hook: Hook) -> None:
@@ -302,7 +302,7 @@ def test_a_dead_endpoint_never_blocks_or_fails_a_run(tmp_path: Path, hook: Hook)
         assert not worker.is_alive()
         (result,) = done
         # the silent and the refusing endpoint each failed once and wait; the third timed out once
-        assert result.exit_code == 1 and len(result.failed) == 3 and result.pending == 12
+        assert result.exit_code == 1 and len(result.failed) == 3 and result.waiting == 12
         assert {a.error.split(":")[0] for a in result.failed} >= {"no answer within 3 s", "cannot reach http"}
     finally:
         silent.close()

@@ -66,9 +66,9 @@ class NotifyResult:
     queued: int = 0                 # rows queued to be sent in this call
     skipped: int = 0                # 'updated' events below notify.growth, recorded as skipped
     retried_abandoned: int = 0
-    orphaned: int = 0               # pending rows of webhooks no longer configured, abandoned now
+    orphaned: int = 0               # queued rows of webhooks no longer configured, abandoned now
     attempts: list[Attempt] = field(default_factory=list)
-    pending: int = 0                # still to be sent after this call
+    waiting: int = 0                # still to be sent after this call
     failing: int = 0                # of those, rows that have failed at least once
     abandoned_total: int = 0
 
@@ -136,14 +136,14 @@ def _queue(con: duckdb.DuckDBPyConnection, project: Project, now: datetime, retr
             for statement in con.extract_statements((template_folder() / "outbox.sql").read_text(encoding="utf-8")):
                 con.execute(statement.query, {k: params[k] for k in statement.named_parameters})
             result.queued, result.skipped = con.execute(
-                "SELECT count(*) FILTER (WHERE status = 'pending'), count(*) FILTER (WHERE status = 'skipped') "
+                "SELECT count(*) FILTER (WHERE status = 'queued'), count(*) FILTER (WHERE status = 'skipped') "
                 "FROM outbox_new").fetchone()
         result.orphaned = con.execute(
             "UPDATE outbox SET status = 'abandoned', last_error = 'webhook no longer in the project file' "
-            "WHERE status = 'pending' AND NOT list_contains($h, webhook)", {"h": names}).fetchone()[0]
+            "WHERE status = 'queued' AND NOT list_contains($h, webhook)", {"h": names}).fetchone()[0]
         if retry_abandoned:
             result.retried_abandoned = con.execute(
-                "UPDATE outbox SET status = 'pending', attempts = 0, next_attempt_at = $now "
+                "UPDATE outbox SET status = 'queued', attempts = 0, next_attempt_at = $now "
                 "WHERE status = 'abandoned' AND list_contains($h, webhook)", {"h": names, "now": now}).fetchone()[0]
         con.execute("COMMIT")
     except BaseException:
@@ -158,7 +158,7 @@ def _due(con: duckdb.DuckDBPyConnection, names: list[str], now: datetime) -> lis
                coalesce(a.key_text, '')
         FROM outbox AS o
         LEFT JOIN alerts AS a ON a.alert_id = o.alert_id
-        WHERE o.status = 'pending' AND o.next_attempt_at <= $now AND list_contains($h, o.webhook)
+        WHERE o.status = 'queued' AND o.next_attempt_at <= $now AND list_contains($h, o.webhook)
         ORDER BY o.seq
         """,
         {"now": now, "h": names},
@@ -166,9 +166,9 @@ def _due(con: duckdb.DuckDBPyConnection, names: list[str], now: datetime) -> lis
 
 
 def _next_due(project: Project, names: list[str], resting: dict[str, datetime]) -> datetime | None:
-    """When the next pending row may be tried, given the endpoints resting after a failure."""
+    """When the next queued row may be tried, given the endpoints resting after a failure."""
     with _warehouse(project) as con:
-        rows = con.execute("SELECT webhook, min(next_attempt_at) FROM outbox WHERE status = 'pending' "
+        rows = con.execute("SELECT webhook, min(next_attempt_at) FROM outbox WHERE status = 'queued' "
                            "AND list_contains($h, webhook) GROUP BY webhook", {"h": names}).fetchall()
     times = [max(first, resting.get(name, first)) for name, first in rows]
     return min(times, default=None)
@@ -189,7 +189,7 @@ def _deliver(project: Project, hook: Webhook, row: tuple, clock: Clock) -> Attem
         wait = min(settings.max_backoff, settings.backoff * 2 ** (attempts - 1))
         if retry_after is not None:
             wait = min(settings.max_backoff, max(wait, retry_after))
-        status, next_at = "pending", now + wait
+        status, next_at = "queued", now + wait
     try:
         _record(project, key, status, attempts, error, now, next_at, hook.url)
     except RunLocked as err:
@@ -209,7 +209,7 @@ def _record(project: Project, key: str, status: str, attempts: int, error: str |
             SET status = $status, attempts = $attempts, last_error = $error, last_attempt_at = $now,
                 next_attempt_at = $next, delivered_at = CASE WHEN $status = 'delivered' THEN $now END,
                 url = $url
-            WHERE idempotency_key = $key AND status = 'pending'
+            WHERE idempotency_key = $key AND status = 'queued'
             """,
             {"status": status, "attempts": attempts, "error": error, "now": now, "next": next_at,
              "key": key, "url": url},
@@ -258,8 +258,8 @@ def _retry_after(value: str | None) -> timedelta | None:
 
 
 def _count(con: duckdb.DuckDBPyConnection, result: NotifyResult) -> None:
-    result.pending, result.failing, result.abandoned_total = con.execute(
-        "SELECT count(*) FILTER (WHERE status = 'pending'), count(*) FILTER (WHERE status = 'pending' AND attempts > 0), "
+    result.waiting, result.failing, result.abandoned_total = con.execute(
+        "SELECT count(*) FILTER (WHERE status = 'queued'), count(*) FILTER (WHERE status = 'queued' AND attempts > 0), "
         "count(*) FILTER (WHERE status = 'abandoned') FROM outbox").fetchone()
 
 
@@ -317,7 +317,7 @@ def describe(project: Project, result: NotifyResult) -> str:
             lines.append(f"  failed     {what}: {a.error}; attempt {a.attempts + 1} of "
                          f"{project.notify.max_attempts} at {a.next_attempt_at:%Y-%m-%d %H:%M:%S} UTC")
     lines.append(f"notify: {len(result.delivered)} delivered, {len(result.failed)} failed, "
-                 f"{result.pending} pending, {result.abandoned_now} abandoned now"
+                 f"{result.waiting} waiting, {result.abandoned_now} abandoned now"
                  + (f" ({result.abandoned_total} in all; --retry-abandoned sends them again)"
                     if result.abandoned_total else ""))
     return "\n".join(lines)
