@@ -15,6 +15,15 @@
 {% macro key_text(expr, by) -%}
 {% if by %}{% for col in by %}{{ (col ~ "=") | literal }} || coalesce(struct_extract({{ expr }}, {{ col | literal }}), '<null>'){{ " || ', ' || " if not loop.last }}{% endfor %}{% else %}''{% endif %}
 {%- endmacro %}
+{#- An md5 in hex (the digest's 16 bytes in order, as Spark and md5() give it) as md5_number's
+    value: the same bytes read as a little-endian 128-bit number. -#}
+{% macro md5_hex_number(h) -%}
+('0x' || {% for k in range(15, -1, -1) %}substr({{ h }}, {{ 2 * k + 1 }}, 2){{ " || " if not loop.last }}{% endfor %})::UHUGEINT
+{%- endmacro %}
+{#- The columns a measure reads from each session: the window stage moves only these. -#}
+{% macro inputs(measure) -%}
+{% if measure.kind == "rate" %}is_bad, split_value{% elif measure.kind == "ratio" %}num, den{% else %}x{% endif %}
+{%- endmacro %}
 {% macro same_series(a, b) -%}
 {{ a }}.key = {{ b }}.key AND {{ a }}.split_value IS NOT DISTINCT FROM {{ b }}.split_value
 {%- endmacro %}

@@ -10,6 +10,31 @@
 {% else %}
 -- quantile_cont({{ measure.of.sql }}, {{ measure.q }}) over the window's sessions (NULL values left out).
 {% endif %}
+{% if measure.kind == "rate" and measure.split %}
+-- The window's sessions and bad sessions per {{ measure.split }} value, read from the sessions once.
+CREATE OR REPLACE TEMP TABLE split_counts AS
+SELECT
+    key, seq, split_value,
+    min(window_start) AS window_start,
+    max(window_end) AS window_end,
+    count(*) AS sessions,
+    count(*) FILTER (WHERE is_bad) AS bad
+FROM window_sessions
+GROUP BY key, seq, split_value;
+
+CREATE OR REPLACE TEMP TABLE key_window_stats AS
+SELECT
+    {{ m.to_map("key", check.by) }} AS key,
+    {{ m.key_text("key", check.by) }} AS key_text,
+    seq,
+    min(window_start) AS window_start,
+    max(window_end) AS window_end,
+    sum(sessions)::BIGINT AS sessions,
+    sum(bad)::BIGINT AS bad,
+    sum(bad) / sum(sessions) AS value
+FROM split_counts
+GROUP BY key, seq;
+{% else %}
 CREATE OR REPLACE TEMP TABLE key_window_stats AS
 SELECT
     {{ m.to_map("key", check.by) }} AS key,
@@ -30,6 +55,7 @@ SELECT
 {% endif %}
 FROM window_sessions
 GROUP BY key, seq;
+{% endif %}
 
 -- key_window: the ordinal of the window among all of its key's windows, across runs
 CREATE OR REPLACE TEMP TABLE new_key_windows AS
@@ -42,10 +68,9 @@ LEFT JOIN key_state AS s ON s.check_name = {{ check_lit }} AND s.key = w.key;
 CREATE OR REPLACE TEMP TABLE new_windows AS
 {% if measure.kind == "rate" and measure.split %}
 WITH bad_by_value AS (
-    SELECT {{ m.to_map("key", check.by) }} AS key, seq, split_value, count(*) AS bad
-    FROM window_sessions
-    WHERE is_bad
-    GROUP BY ALL
+    SELECT {{ m.to_map("key", check.by) }} AS key, seq, split_value, bad
+    FROM split_counts
+    WHERE bad > 0
 ),
 known AS (
     -- each split value of a key, from the first window it was seen in (earlier runs: seq 0)

@@ -1,28 +1,19 @@
 {% import "macros.sql" as m %}
 -- ── stage 1 · scan ─────────────────────────────────────────────────────────────────────────
 -- The check's sessions: not excluded{% if check.where %}, matching its `where`{% endif %}; its key and measure inputs.
-CREATE OR REPLACE TEMP TABLE arrivals AS
+-- A view: the window stage reads it once.
+CREATE OR REPLACE TEMP VIEW arrivals AS
 SELECT
     __session_id AS session_id,
     __event_time AS event_time,
     {{ m.key_struct(check.by) }} AS key,
 {% if measure.kind == "rate" %}
     coalesce({{ measure.bad.sql }}, false) AS is_bad,
-    {% if measure.split %}{{ measure.split | ident }}::VARCHAR{% else %}NULL::VARCHAR{% endif %} AS split_value,
-    NULL::DOUBLE AS num,
-    NULL::DOUBLE AS den,
-    NULL::DOUBLE AS x
+    {% if measure.split %}{{ measure.split | ident }}::VARCHAR{% else %}NULL::VARCHAR{% endif %} AS split_value
 {% elif measure.kind == "ratio" %}
-    NULL::BOOLEAN AS is_bad,
-    NULL::VARCHAR AS split_value,
     ({{ measure.numerator.sql }})::DOUBLE AS num,
-    ({{ measure.denominator.sql }})::DOUBLE AS den,
-    NULL::DOUBLE AS x
+    ({{ measure.denominator.sql }})::DOUBLE AS den
 {% elif measure.kind == "quantile" %}
-    NULL::BOOLEAN AS is_bad,
-    NULL::VARCHAR AS split_value,
-    NULL::DOUBLE AS num,
-    NULL::DOUBLE AS den,
     ({{ measure.of.sql }})::DOUBLE AS x
 {% endif %}
 FROM lake_sessions
@@ -38,6 +29,6 @@ FROM (SELECT (SELECT watermark FROM check_state WHERE check_name = {{ check.name
 CREATE OR REPLACE TEMP TABLE scan_counts AS
 SELECT
     c.rows_read, c.rows_invalid, c.duplicate_rows, c.rows_excluded,
-    (SELECT count(*) FROM lake_sessions WHERE NOT __excluded) - (SELECT count(*) FROM arrivals) AS rows_filtered,
-    (SELECT count(*) FROM arrivals) AS rows_kept
-FROM lake_counts AS c;
+    c.rows_read - c.rows_invalid - c.duplicate_rows - c.rows_excluded - a.rows_kept AS rows_filtered,
+    a.rows_kept
+FROM lake_counts AS c, (SELECT count(*) AS rows_kept FROM arrivals) AS a;

@@ -2,19 +2,20 @@
 -- Source {{ source.name }}: the sessions of the files not read before ($files), read once for
 -- every check that reads the same files ($reader is the first of them), each session id once, in
 -- this run and across runs. Rows without a session id or event time are counted and skipped;
--- excluded sessions never count.
+-- excluded sessions never count. A session id is kept only as its md5 (a 128-bit number), and a
+-- row's file as its place in $files, which is sorted by path.
 {% set source_lit = source.name | literal %}
 CREATE OR REPLACE TEMP TABLE lake_rows AS
 SELECT
     {{ source.session_id | ident }}::VARCHAR AS __session_id,
-    md5({{ source.session_id | ident }}::VARCHAR) AS __id_hash,
+    md5_number({{ source.session_id | ident }}::VARCHAR) AS __id_hash,
     {{ source.event_time | ident }}::TIMESTAMP AS __event_time,
     {% if source.exclude %}coalesce({{ source.exclude.sql }}, false){% else %}false{% endif %} AS __excluded,
 {% for column in columns %}
     {{ column | ident }},
 {% endfor %}
-    filename AS __file
-FROM read_parquet($files, hive_partitioning = true, union_by_name = true, filename = true)
+    file_index::INTEGER AS __file
+FROM read_parquet($files, hive_partitioning = true, union_by_name = true)
 {%- if source.until %}
 
 -- A replay up to {{ source.until }} (a backtest): sessions at or after it are not read.
@@ -37,7 +38,8 @@ WHERE __id_hash IS NOT NULL AND __event_time IS NOT NULL
 GROUP BY __id_hash
 HAVING count(*) > 1;
 
-CREATE OR REPLACE TEMP TABLE lake_sessions AS
+-- A view, not a copy: each check's scan reads it once.
+CREATE OR REPLACE TEMP VIEW lake_sessions AS
 SELECT *
 FROM lake_rows
 WHERE __id_hash IS NOT NULL AND __event_time IS NOT NULL
@@ -52,22 +54,29 @@ WHERE __event_time IS NOT NULL
 QUALIFY row_number() OVER (PARTITION BY __id_hash ORDER BY __event_time, __file) = 1;
 
 CREATE OR REPLACE TEMP TABLE lake_counts AS
+WITH kept AS (
+    SELECT count(*) AS sessions, count(*) FILTER (WHERE __excluded) AS excluded FROM lake_sessions
+)
 SELECT
     count(*) AS rows_read,
     count(*) FILTER (WHERE __session_id IS NULL OR __event_time IS NULL) AS rows_invalid,
     count(*) FILTER (WHERE __session_id IS NOT NULL AND __event_time IS NOT NULL)
-        - (SELECT count(*) FROM lake_sessions) AS duplicate_rows,
-    (SELECT count(*) FROM lake_sessions WHERE __excluded) AS rows_excluded,
+        - any_value(kept.sessions) AS duplicate_rows,
+    any_value(kept.excluded) AS rows_excluded,
     max(__event_time) AS latest
-FROM lake_rows;
+FROM lake_rows, kept;
 
 CREATE OR REPLACE TEMP TABLE lake_file_rows AS
-SELECT __file AS path, count(*) AS rows
+SELECT $files[__file + 1] AS path, count(*) AS rows
 FROM lake_rows
 GROUP BY __file;
 
 -- Remember the ids of files no check has read before (hashes only), for the next runs.
 INSERT INTO session_ids
-SELECT {{ source_lit }} AS source_name, __id_hash, __file
+SELECT {{ source_lit }} AS source_name, __id_hash, $files[__file + 1]
 FROM lake_sessions
-WHERE __file NOT IN (SELECT path FROM files_read);
+WHERE __file IN (
+    SELECT f.i - 1
+    FROM (SELECT unnest($files) AS path, generate_subscripts($files, 1) AS i) AS f
+    WHERE f.path NOT IN (SELECT path FROM files_read)
+);

@@ -68,7 +68,7 @@ CREATE TABLE IF NOT EXISTS source_columns (  -- each read column's type, as the 
 
 CREATE TABLE IF NOT EXISTS session_ids (     -- every session id read, hashed, with the file it came from
     source_name VARCHAR,
-    id_hash VARCHAR,                 -- md5 of the session id (hex): repeats are found without keeping ids
+    id_hash UHUGEINT,                -- md5_number of the session id: repeats are found without keeping ids
     first_path VARCHAR
 );
 

@@ -14,21 +14,20 @@ SELECT {{ m.from_map("key", check.by) }} AS key, last_seq, last_end
 FROM key_state
 WHERE check_name = {{ check_lit }};
 
-CREATE OR REPLACE TEMP TABLE pooled AS
 {% if window.kind == "count" %}
+CREATE OR REPLACE TEMP TABLE pooled AS
 SELECT
     p.*,
     row_number() OVER in_order - 1 AS i,
     -- a window starting here cannot fill: fewer than N sessions left, or the N-th is too late
     coalesce(lead(p.event_time, {{ window.sessions - 1 }}) OVER in_order > p.event_time + {{ window.max_wait | interval }}, true) AS is_cut
 FROM (
-    SELECT {{ m.from_map("key", check.by) }} AS key, event_time, session_id, is_bad, split_value,
-           num, den, x, false AS late
+    SELECT {{ m.from_map("key", check.by) }} AS key, event_time, session_id, {{ m.inputs(measure) }}, false AS late
     FROM carry
     WHERE check_name = {{ check_lit }}
     UNION ALL
     -- late: earlier than the end of a window already closed for the series; it joins the open window
-    SELECT a.key, a.event_time, a.session_id, a.is_bad, a.split_value, a.num, a.den, a.x,
+    SELECT a.key, a.event_time, a.session_id, {% for c in m.inputs(measure).split(", ") %}a.{{ c }}, {% endfor %}
            coalesce(a.event_time < s.last_end, false) AS late
     FROM arrivals AS a
     LEFT JOIN series_last AS s ON s.key = a.key
@@ -39,11 +38,21 @@ WINDOW in_order AS (PARTITION BY p.key ORDER BY p.event_time, p.session_id);
 -- start + max_wait: the window closes with the sessions within max_wait of its start, up to
 -- position lim) or stays open and is carried.
 CREATE OR REPLACE TEMP TABLE cuts AS
-SELECT c.key, c.i, t.i AS lim,
-       c.event_time + {{ window.max_wait | interval }} < (SELECT current FROM clock) AS times_out
-FROM (SELECT key, i, event_time FROM pooled WHERE is_cut) AS c
--- the last session (by time, then position) no later than max_wait after the cut's first one
-ASOF JOIN (SELECT key, i, epoch_us(event_time)::HUGEINT * 1000000000000 + i AS at FROM pooled) AS t
+WITH starts AS (
+    SELECT key, i, event_time,
+           event_time + {{ window.max_wait | interval }} < (SELECT current FROM clock) AS times_out
+    FROM pooled
+    WHERE is_cut
+)
+SELECT c.key, c.i, CASE WHEN c.times_out THEN t.i END AS lim, c.times_out
+FROM starts AS c
+-- the last session (by time, then position) no later than max_wait after the cut's first one,
+-- looked up only in the series that have a cut that times out
+ASOF LEFT JOIN (
+    SELECT key, i, epoch_us(event_time)::HUGEINT * 1000000000000 + i AS at
+    FROM pooled
+    WHERE key IN (SELECT key FROM starts WHERE times_out)
+) AS t
     ON t.key = c.key
    AND t.at <= epoch_us(c.event_time + {{ window.max_wait | interval }})::HUGEINT * 1000000000000 + 999999999999;
 
@@ -102,13 +111,14 @@ FROM (
 ) AS w
 LEFT JOIN series_last AS s ON s.key = w.key;
 
-CREATE OR REPLACE TEMP TABLE window_sessions AS
+-- A view: the measure stage reads it once.
+CREATE OR REPLACE TEMP VIEW window_sessions AS
 SELECT p.* EXCLUDE (i, is_cut, w0), w.seq, w.window_start, w.window_end
 FROM placed AS p
 JOIN closed_windows AS w ON w.key = p.key AND w.w0 = p.w0;
 
 CREATE OR REPLACE TEMP TABLE carry_next AS
-SELECT {{ m.to_map("key", check.by) }} AS key, {{ m.key_text("key", check.by) }} AS key_text, event_time, session_id, is_bad, split_value, num, den, x
+SELECT {{ m.to_map("key", check.by) }} AS key, {{ m.key_text("key", check.by) }} AS key_text, event_time, session_id, {{ m.inputs(measure) }}
 FROM placed
 WHERE w0 IS NULL;
 
@@ -116,35 +126,37 @@ CREATE OR REPLACE TEMP TABLE window_counts AS
 SELECT count(*) FILTER (WHERE late) AS late_rows FROM pooled;
 {% else %}
 {% set width = (window.every.total_seconds() * 1000000) | int %}
+-- Each session with its window; a view, so the sessions are not copied: each statement below reads
+-- them where they are.
+CREATE OR REPLACE TEMP VIEW stamped AS
 SELECT
     p.*,
     epoch_us(p.event_time) // {{ width }} AS seq,
     make_timestamp(epoch_us(p.event_time) // {{ width }} * {{ width }}) AS window_start,
     make_timestamp(epoch_us(p.event_time) // {{ width }} * {{ width }} + {{ width }}) AS window_end
 FROM (
-    SELECT {{ m.from_map("key", check.by) }} AS key, event_time, session_id, is_bad, split_value,
-           num, den, x
+    SELECT {{ m.from_map("key", check.by) }} AS key, event_time, session_id, {{ m.inputs(measure) }}
     FROM carry
     WHERE check_name = {{ check_lit }}
     UNION ALL
-    SELECT key, event_time, session_id, is_bad, split_value, num, den, x
+    SELECT key, event_time, session_id, {{ m.inputs(measure) }}
     FROM arrivals
 ) AS p;
 
 -- Late: the session's window had already closed at the previous watermark. Counted, not windowed.
 CREATE OR REPLACE TEMP TABLE window_counts AS
 SELECT count(*) AS late_rows
-FROM pooled
+FROM stamped
 WHERE window_end + {{ window.lateness | interval }} < (SELECT previous FROM clock);
 
-CREATE OR REPLACE TEMP TABLE window_sessions AS
+CREATE OR REPLACE TEMP VIEW window_sessions AS
 SELECT *
-FROM pooled
+FROM stamped
 WHERE window_end + {{ window.lateness | interval }} < (SELECT current FROM clock)
   AND NOT coalesce(window_end + {{ window.lateness | interval }} < (SELECT previous FROM clock), false);
 
 CREATE OR REPLACE TEMP TABLE carry_next AS
-SELECT {{ m.to_map("key", check.by) }} AS key, {{ m.key_text("key", check.by) }} AS key_text, event_time, session_id, is_bad, split_value, num, den, x
-FROM pooled
+SELECT {{ m.to_map("key", check.by) }} AS key, {{ m.key_text("key", check.by) }} AS key_text, event_time, session_id, {{ m.inputs(measure) }}
+FROM stamped
 WHERE NOT (window_end + {{ window.lateness | interval }} < (SELECT current FROM clock));
 {% endif %}

@@ -381,3 +381,4 @@ def test_a_failing_backtest_leaves_the_keep_folder_empty(project: Path, tmp_path
                         settings_from(["baseline.factor=1.5"], []), keep=keep)
     assert calls[0].is_relative_to(keep)  # the first setting ran there, then went with the failure
     assert keep.is_dir() and list(keep.iterdir()) == []
+

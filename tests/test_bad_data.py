@@ -177,6 +177,27 @@ def test_duplicates_within_and_across_files_and_runs_count_once(tmp_path: Path) 
     assert sum(w[4] for w in windows(once) if w[0] == "site_failures") <= 80
 
 
+def test_a_warehouse_with_hex_id_hashes_is_converted_and_still_finds_repeats(tmp_path: Path) -> None:
+    # Warehouses written before id hashes were numbers keep md5 as 32 hex characters; the next
+    # run converts them in place, and a session read then still counts as a repeat.
+    rows = sessions("a", 0, 40)
+    project_file = project_with(tmp_path, rows)
+    con = duckdb.connect(str(tmp_path / "w.duckdb"))
+    con.execute("ALTER TABLE session_ids ALTER id_hash TYPE VARCHAR USING NULL")
+    con.execute("DELETE FROM session_ids")
+    con.execute("INSERT INTO session_ids SELECT 'sessions', md5(session_id), $p FROM read_parquet($p)",
+                {"p": str(tmp_path / "lake" / "a.parquet")})
+    con.close()
+    write_rows(tmp_path / "lake", SCHEMA, sessions("b", 100, 8) + rows[:3], "b.parquet")
+    run(load_project(project_file))
+    con = duckdb.connect(str(tmp_path / "w.duckdb"), read_only=True)
+    assert con.execute("SELECT data_type FROM duckdb_columns() WHERE table_name = 'session_ids' "
+                       "AND column_name = 'id_hash'").fetchone() == ("UHUGEINT",)
+    assert con.execute("SELECT run_id, duplicate_rows FROM runs ORDER BY run_id").fetchall() == [(1, 0), (2, 3)]
+    assert con.execute("SELECT count(*) FROM session_ids WHERE id_hash = md5_number('a7')").fetchone() == (1,)
+    con.close()
+
+
 def test_a_file_changed_after_reading_is_reported_once_and_not_read_again(tmp_path: Path) -> None:
     project_file = project_with(tmp_path, sessions("a", 0, 40))
     before = warehouse_contents(tmp_path / "w.duckdb", skip=("runs", "changed_files"))

@@ -272,6 +272,7 @@ def _groups(con: duckdb.DuckDBPyConnection, checks: list[Check], compiled: list[
 
 
 def _params(files: list[lake.LakeFile], run_id: int, definition: str, reader: str) -> dict[str, Any]:
+    files = sorted(files, key=lambda f: f.path)  # the source stage names a file by its place here
     return {
         "files": [f.path for f in files],
         "manifest": [{"path": f.path, "size": f.size, "modified_at": f.modified_at} for f in files],

@@ -21,7 +21,7 @@ from pathlib import Path
 import duckdb
 
 from . import storage
-from .compiler import template_folder
+from .compiler import environment, template_folder
 from .model import Project
 from .problems import DataError, RunLocked
 from .sqltext import quote_ident, quote_literal
@@ -75,6 +75,19 @@ def connect(project: Project, read_only: bool = False, wait: float = 0.0) -> duc
 
 def ensure_schema(con: duckdb.DuckDBPyConnection) -> None:
     con.execute((template_folder() / "warehouse.sql").read_text(encoding="utf-8"))
+    _number_id_hashes(con)
+
+
+def _number_id_hashes(con: duckdb.DuckDBPyConnection) -> None:
+    """A warehouse from before id hashes were numbers keeps its hex hashes, converted in place.
+
+    Hex and number are the same md5, so nothing read before is read again or lost.
+    """
+    kind = con.execute("SELECT data_type FROM duckdb_columns() WHERE table_name = 'session_ids' "
+                       "AND column_name = 'id_hash' AND database_name = current_database()").fetchone()
+    if kind and kind[0] == "VARCHAR":
+        number = environment().from_string('{% import "macros.sql" as m %}{{ m.md5_hex_number("id_hash") }}')
+        con.execute(f"ALTER TABLE session_ids ALTER id_hash TYPE UHUGEINT USING {number.render()}")
 
 
 def claim_path(project: Project) -> Path:

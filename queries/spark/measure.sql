@@ -11,6 +11,9 @@ FROM windows
 WHERE check_name = {{ check_lit }}
 GROUP BY ALL;
 {% endif %}
+{% if measure.kind == "rate" and measure.split %}
+-- @translate split_counts
+{% endif %}
 -- @translate key_window_stats
 -- @translate new_key_windows
 -- @translate new_windows

@@ -7,8 +7,8 @@
 {{ move.to_spark("key_state", "check_name = " ~ check_lit, check.by) }}
 {{ move.to_spark("carry", "check_name = " ~ check_lit, check.by) }}
 -- @translate series_last
--- @translate pooled
 {% if window.kind == "count" %}
+-- @translate pooled
 {% set n = window.sessions %}
 {% set wait_us = (window.max_wait.total_seconds() * 1000000) | int %}
 -- @spark cuts
@@ -81,6 +81,7 @@ SELECT key, o, a, a_lim, closes FROM runs_of_windows;
 -- @translate carry_next
 -- @translate window_counts
 {% else %}
+-- @translate stamped
 -- @translate window_counts
 -- @translate window_sessions
 -- @translate carry_next

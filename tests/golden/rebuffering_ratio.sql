@@ -6,17 +6,18 @@
 -- Source sessions: the sessions of the files not read before ($files), read once for
 -- every check that reads the same files ($reader is the first of them), each session id once, in
 -- this run and across runs. Rows without a session id or event time are counted and skipped;
--- excluded sessions never count.
+-- excluded sessions never count. A session id is kept only as its md5 (a 128-bit number), and a
+-- row's file as its place in $files, which is sorted by path.
 CREATE OR REPLACE TEMP TABLE lake_rows AS
 SELECT
     "session_id"::VARCHAR AS __session_id,
-    md5("session_id"::VARCHAR) AS __id_hash,
+    md5_number("session_id"::VARCHAR) AS __id_hash,
     "ended_at"::TIMESTAMP AS __event_time,
 coalesce("is_bot", false) AS __excluded,
     "rebuffer_ms",
     "play_ms",
-    filename AS __file
-FROM read_parquet($files, hive_partitioning = true, union_by_name = true, filename = true);
+    file_index::INTEGER AS __file
+FROM read_parquet($files, hive_partitioning = true, union_by_name = true);
 
 -- Session ids already read, in an earlier run, from a file these checks have read: duplicates.
 CREATE OR REPLACE TEMP TABLE read_before AS
@@ -34,7 +35,8 @@ WHERE __id_hash IS NOT NULL AND __event_time IS NOT NULL
 GROUP BY __id_hash
 HAVING count(*) > 1;
 
-CREATE OR REPLACE TEMP TABLE lake_sessions AS
+-- A view, not a copy: each check's scan reads it once.
+CREATE OR REPLACE TEMP VIEW lake_sessions AS
 SELECT *
 FROM lake_rows
 WHERE __id_hash IS NOT NULL AND __event_time IS NOT NULL
@@ -49,38 +51,43 @@ WHERE __event_time IS NOT NULL
 QUALIFY row_number() OVER (PARTITION BY __id_hash ORDER BY __event_time, __file) = 1;
 
 CREATE OR REPLACE TEMP TABLE lake_counts AS
+WITH kept AS (
+    SELECT count(*) AS sessions, count(*) FILTER (WHERE __excluded) AS excluded FROM lake_sessions
+)
 SELECT
     count(*) AS rows_read,
     count(*) FILTER (WHERE __session_id IS NULL OR __event_time IS NULL) AS rows_invalid,
     count(*) FILTER (WHERE __session_id IS NOT NULL AND __event_time IS NOT NULL)
-        - (SELECT count(*) FROM lake_sessions) AS duplicate_rows,
-    (SELECT count(*) FROM lake_sessions WHERE __excluded) AS rows_excluded,
+        - any_value(kept.sessions) AS duplicate_rows,
+    any_value(kept.excluded) AS rows_excluded,
     max(__event_time) AS latest
-FROM lake_rows;
+FROM lake_rows, kept;
 
 CREATE OR REPLACE TEMP TABLE lake_file_rows AS
-SELECT __file AS path, count(*) AS rows
+SELECT $files[__file + 1] AS path, count(*) AS rows
 FROM lake_rows
 GROUP BY __file;
 
 -- Remember the ids of files no check has read before (hashes only), for the next runs.
 INSERT INTO session_ids
-SELECT 'sessions' AS source_name, __id_hash, __file
+SELECT 'sessions' AS source_name, __id_hash, $files[__file + 1]
 FROM lake_sessions
-WHERE __file NOT IN (SELECT path FROM files_read);
+WHERE __file IN (
+    SELECT f.i - 1
+    FROM (SELECT unnest($files) AS path, generate_subscripts($files, 1) AS i) AS f
+    WHERE f.path NOT IN (SELECT path FROM files_read)
+);
 
 -- ── stage 1 · scan ─────────────────────────────────────────────────────────────────────────
 -- The check's sessions: not excluded; its key and measure inputs.
-CREATE OR REPLACE TEMP TABLE arrivals AS
+-- A view: the window stage reads it once.
+CREATE OR REPLACE TEMP VIEW arrivals AS
 SELECT
     __session_id AS session_id,
     __event_time AS event_time,
     '' AS key,
-    NULL::BOOLEAN AS is_bad,
-    NULL::VARCHAR AS split_value,
     ("rebuffer_ms")::DOUBLE AS num,
-    ("play_ms" + "rebuffer_ms")::DOUBLE AS den,
-    NULL::DOUBLE AS x
+    ("play_ms" + "rebuffer_ms")::DOUBLE AS den
 FROM lake_sessions
 WHERE NOT __excluded;
 
@@ -94,9 +101,9 @@ FROM (SELECT (SELECT watermark FROM check_state WHERE check_name = 'rebuffering_
 CREATE OR REPLACE TEMP TABLE scan_counts AS
 SELECT
     c.rows_read, c.rows_invalid, c.duplicate_rows, c.rows_excluded,
-    (SELECT count(*) FROM lake_sessions WHERE NOT __excluded) - (SELECT count(*) FROM arrivals) AS rows_filtered,
-    (SELECT count(*) FROM arrivals) AS rows_kept
-FROM lake_counts AS c;
+    c.rows_read - c.rows_invalid - c.duplicate_rows - c.rows_excluded - a.rows_kept AS rows_filtered,
+    a.rows_kept
+FROM lake_counts AS c, (SELECT count(*) AS rows_kept FROM arrivals) AS a;
 
 -- ── stage 2 · window ───────────────────────────────────────────────────────────────────────
 -- Time windows of INTERVAL 3 HOUR, aligned to the epoch; a window closes once the watermark
@@ -106,37 +113,38 @@ SELECT '' AS key, last_seq, last_end
 FROM key_state
 WHERE check_name = 'rebuffering_ratio';
 
-CREATE OR REPLACE TEMP TABLE pooled AS
+-- Each session with its window; a view, so the sessions are not copied: each statement below reads
+-- them where they are.
+CREATE OR REPLACE TEMP VIEW stamped AS
 SELECT
     p.*,
     epoch_us(p.event_time) // 10800000000 AS seq,
     make_timestamp(epoch_us(p.event_time) // 10800000000 * 10800000000) AS window_start,
     make_timestamp(epoch_us(p.event_time) // 10800000000 * 10800000000 + 10800000000) AS window_end
 FROM (
-    SELECT '' AS key, event_time, session_id, is_bad, split_value,
-           num, den, x
+    SELECT '' AS key, event_time, session_id, num, den
     FROM carry
     WHERE check_name = 'rebuffering_ratio'
     UNION ALL
-    SELECT key, event_time, session_id, is_bad, split_value, num, den, x
+    SELECT key, event_time, session_id, num, den
     FROM arrivals
 ) AS p;
 
 -- Late: the session's window had already closed at the previous watermark. Counted, not windowed.
 CREATE OR REPLACE TEMP TABLE window_counts AS
 SELECT count(*) AS late_rows
-FROM pooled
+FROM stamped
 WHERE window_end + INTERVAL 0 DAY < (SELECT previous FROM clock);
 
-CREATE OR REPLACE TEMP TABLE window_sessions AS
+CREATE OR REPLACE TEMP VIEW window_sessions AS
 SELECT *
-FROM pooled
+FROM stamped
 WHERE window_end + INTERVAL 0 DAY < (SELECT current FROM clock)
   AND NOT coalesce(window_end + INTERVAL 0 DAY < (SELECT previous FROM clock), false);
 
 CREATE OR REPLACE TEMP TABLE carry_next AS
-SELECT map([]::VARCHAR[], []::VARCHAR[]) AS key, '' AS key_text, event_time, session_id, is_bad, split_value, num, den, x
-FROM pooled
+SELECT map([]::VARCHAR[], []::VARCHAR[]) AS key, '' AS key_text, event_time, session_id, num, den
+FROM stamped
 WHERE NOT (window_end + INTERVAL 0 DAY < (SELECT current FROM clock));
 
 -- ── stage 3 · measure ──────────────────────────────────────────────────────────────────────

@@ -6,18 +6,19 @@
 -- Source sessions: the sessions of the files not read before ($files), read once for
 -- every check that reads the same files ($reader is the first of them), each session id once, in
 -- this run and across runs. Rows without a session id or event time are counted and skipped;
--- excluded sessions never count.
+-- excluded sessions never count. A session id is kept only as its md5 (a 128-bit number), and a
+-- row's file as its place in $files, which is sorted by path.
 CREATE OR REPLACE TEMP TABLE lake_rows AS
 SELECT
     "session_id"::VARCHAR AS __session_id,
-    md5("session_id"::VARCHAR) AS __id_hash,
+    md5_number("session_id"::VARCHAR) AS __id_hash,
     "ended_at"::TIMESTAMP AS __event_time,
 coalesce("is_bot", false) AS __excluded,
     "site",
     "title_id",
     "error_code",
-    filename AS __file
-FROM read_parquet($files, hive_partitioning = true, union_by_name = true, filename = true);
+    file_index::INTEGER AS __file
+FROM read_parquet($files, hive_partitioning = true, union_by_name = true);
 
 -- Session ids already read, in an earlier run, from a file these checks have read: duplicates.
 CREATE OR REPLACE TEMP TABLE read_before AS
@@ -35,7 +36,8 @@ WHERE __id_hash IS NOT NULL AND __event_time IS NOT NULL
 GROUP BY __id_hash
 HAVING count(*) > 1;
 
-CREATE OR REPLACE TEMP TABLE lake_sessions AS
+-- A view, not a copy: each check's scan reads it once.
+CREATE OR REPLACE TEMP VIEW lake_sessions AS
 SELECT *
 FROM lake_rows
 WHERE __id_hash IS NOT NULL AND __event_time IS NOT NULL
@@ -50,38 +52,43 @@ WHERE __event_time IS NOT NULL
 QUALIFY row_number() OVER (PARTITION BY __id_hash ORDER BY __event_time, __file) = 1;
 
 CREATE OR REPLACE TEMP TABLE lake_counts AS
+WITH kept AS (
+    SELECT count(*) AS sessions, count(*) FILTER (WHERE __excluded) AS excluded FROM lake_sessions
+)
 SELECT
     count(*) AS rows_read,
     count(*) FILTER (WHERE __session_id IS NULL OR __event_time IS NULL) AS rows_invalid,
     count(*) FILTER (WHERE __session_id IS NOT NULL AND __event_time IS NOT NULL)
-        - (SELECT count(*) FROM lake_sessions) AS duplicate_rows,
-    (SELECT count(*) FROM lake_sessions WHERE __excluded) AS rows_excluded,
+        - any_value(kept.sessions) AS duplicate_rows,
+    any_value(kept.excluded) AS rows_excluded,
     max(__event_time) AS latest
-FROM lake_rows;
+FROM lake_rows, kept;
 
 CREATE OR REPLACE TEMP TABLE lake_file_rows AS
-SELECT __file AS path, count(*) AS rows
+SELECT $files[__file + 1] AS path, count(*) AS rows
 FROM lake_rows
 GROUP BY __file;
 
 -- Remember the ids of files no check has read before (hashes only), for the next runs.
 INSERT INTO session_ids
-SELECT 'sessions' AS source_name, __id_hash, __file
+SELECT 'sessions' AS source_name, __id_hash, $files[__file + 1]
 FROM lake_sessions
-WHERE __file NOT IN (SELECT path FROM files_read);
+WHERE __file IN (
+    SELECT f.i - 1
+    FROM (SELECT unnest($files) AS path, generate_subscripts($files, 1) AS i) AS f
+    WHERE f.path NOT IN (SELECT path FROM files_read)
+);
 
 -- ── stage 1 · scan ─────────────────────────────────────────────────────────────────────────
 -- The check's sessions: not excluded; its key and measure inputs.
-CREATE OR REPLACE TEMP TABLE arrivals AS
+-- A view: the window stage reads it once.
+CREATE OR REPLACE TEMP VIEW arrivals AS
 SELECT
     __session_id AS session_id,
     __event_time AS event_time,
     {'site': "site"::VARCHAR, 'title_id': "title_id"::VARCHAR} AS key,
     coalesce(NOT "error_code" IS NULL, false) AS is_bad,
-"error_code"::VARCHAR AS split_value,
-    NULL::DOUBLE AS num,
-    NULL::DOUBLE AS den,
-    NULL::DOUBLE AS x
+"error_code"::VARCHAR AS split_value
 FROM lake_sessions
 WHERE NOT __excluded;
 
@@ -95,9 +102,9 @@ FROM (SELECT (SELECT watermark FROM check_state WHERE check_name = 'title_decode
 CREATE OR REPLACE TEMP TABLE scan_counts AS
 SELECT
     c.rows_read, c.rows_invalid, c.duplicate_rows, c.rows_excluded,
-    (SELECT count(*) FROM lake_sessions WHERE NOT __excluded) - (SELECT count(*) FROM arrivals) AS rows_filtered,
-    (SELECT count(*) FROM arrivals) AS rows_kept
-FROM lake_counts AS c;
+    c.rows_read - c.rows_invalid - c.duplicate_rows - c.rows_excluded - a.rows_kept AS rows_filtered,
+    a.rows_kept
+FROM lake_counts AS c, (SELECT count(*) AS rows_kept FROM arrivals) AS a;
 
 -- ── stage 2 · window ───────────────────────────────────────────────────────────────────────
 -- Count windows: each 30 sessions of a series in (event_time, session_id) order; a
@@ -115,14 +122,12 @@ SELECT
     -- a window starting here cannot fill: fewer than N sessions left, or the N-th is too late
     coalesce(lead(p.event_time, 29) OVER in_order > p.event_time + INTERVAL 6 HOUR, true) AS is_cut
 FROM (
-    SELECT {'site': key['site'], 'title_id': key['title_id']} AS key, event_time, session_id, is_bad, split_value,
-           num, den, x, false AS late
+    SELECT {'site': key['site'], 'title_id': key['title_id']} AS key, event_time, session_id, is_bad, split_value, false AS late
     FROM carry
     WHERE check_name = 'title_decode_errors'
     UNION ALL
     -- late: earlier than the end of a window already closed for the series; it joins the open window
-    SELECT a.key, a.event_time, a.session_id, a.is_bad, a.split_value, a.num, a.den, a.x,
-           coalesce(a.event_time < s.last_end, false) AS late
+    SELECT a.key, a.event_time, a.session_id, a.is_bad, a.split_value,            coalesce(a.event_time < s.last_end, false) AS late
     FROM arrivals AS a
     LEFT JOIN series_last AS s ON s.key = a.key
 ) AS p
@@ -132,11 +137,21 @@ WINDOW in_order AS (PARTITION BY p.key ORDER BY p.event_time, p.session_id);
 -- start + max_wait: the window closes with the sessions within max_wait of its start, up to
 -- position lim) or stays open and is carried.
 CREATE OR REPLACE TEMP TABLE cuts AS
-SELECT c.key, c.i, t.i AS lim,
-       c.event_time + INTERVAL 6 HOUR < (SELECT current FROM clock) AS times_out
-FROM (SELECT key, i, event_time FROM pooled WHERE is_cut) AS c
--- the last session (by time, then position) no later than max_wait after the cut's first one
-ASOF JOIN (SELECT key, i, epoch_us(event_time)::HUGEINT * 1000000000000 + i AS at FROM pooled) AS t
+WITH starts AS (
+    SELECT key, i, event_time,
+           event_time + INTERVAL 6 HOUR < (SELECT current FROM clock) AS times_out
+    FROM pooled
+    WHERE is_cut
+)
+SELECT c.key, c.i, CASE WHEN c.times_out THEN t.i END AS lim, c.times_out
+FROM starts AS c
+-- the last session (by time, then position) no later than max_wait after the cut's first one,
+-- looked up only in the series that have a cut that times out
+ASOF LEFT JOIN (
+    SELECT key, i, epoch_us(event_time)::HUGEINT * 1000000000000 + i AS at
+    FROM pooled
+    WHERE key IN (SELECT key FROM starts WHERE times_out)
+) AS t
     ON t.key = c.key
    AND t.at <= epoch_us(c.event_time + INTERVAL 6 HOUR)::HUGEINT * 1000000000000 + 999999999999;
 
@@ -195,13 +210,14 @@ FROM (
 ) AS w
 LEFT JOIN series_last AS s ON s.key = w.key;
 
-CREATE OR REPLACE TEMP TABLE window_sessions AS
+-- A view: the measure stage reads it once.
+CREATE OR REPLACE TEMP VIEW window_sessions AS
 SELECT p.* EXCLUDE (i, is_cut, w0), w.seq, w.window_start, w.window_end
 FROM placed AS p
 JOIN closed_windows AS w ON w.key = p.key AND w.w0 = p.w0;
 
 CREATE OR REPLACE TEMP TABLE carry_next AS
-SELECT MAP {'site': struct_extract(key, 'site'), 'title_id': struct_extract(key, 'title_id')} AS key, 'site=' || coalesce(struct_extract(key, 'site'), '<null>') || ', ' || 'title_id=' || coalesce(struct_extract(key, 'title_id'), '<null>') AS key_text, event_time, session_id, is_bad, split_value, num, den, x
+SELECT MAP {'site': struct_extract(key, 'site'), 'title_id': struct_extract(key, 'title_id')} AS key, 'site=' || coalesce(struct_extract(key, 'site'), '<null>') || ', ' || 'title_id=' || coalesce(struct_extract(key, 'title_id'), '<null>') AS key_text, event_time, session_id, is_bad, split_value
 FROM placed
 WHERE w0 IS NULL;
 
@@ -212,6 +228,17 @@ SELECT count(*) FILTER (WHERE late) AS late_rows FROM pooled;
 -- rate = bad sessions ÷ sessions of the window; split by error_code: the key's window
 -- is formed first, then each error_code value seen so far for the key gets bad-with-that-value ÷ all
 -- sessions of the window (0 where it had none), so every value's history keeps its quiet windows.
+-- The window's sessions and bad sessions per error_code value, read from the sessions once.
+CREATE OR REPLACE TEMP TABLE split_counts AS
+SELECT
+    key, seq, split_value,
+    min(window_start) AS window_start,
+    max(window_end) AS window_end,
+    count(*) AS sessions,
+    count(*) FILTER (WHERE is_bad) AS bad
+FROM window_sessions
+GROUP BY key, seq, split_value;
+
 CREATE OR REPLACE TEMP TABLE key_window_stats AS
 SELECT
     MAP {'site': struct_extract(key, 'site'), 'title_id': struct_extract(key, 'title_id')} AS key,
@@ -219,10 +246,10 @@ SELECT
     seq,
     min(window_start) AS window_start,
     max(window_end) AS window_end,
-    count(*) AS sessions,
-    count(*) FILTER (WHERE is_bad) AS bad,
-    count(*) FILTER (WHERE is_bad) / count(*) AS value
-FROM window_sessions
+    sum(sessions)::BIGINT AS sessions,
+    sum(bad)::BIGINT AS bad,
+    sum(bad) / sum(sessions) AS value
+FROM split_counts
 GROUP BY key, seq;
 
 -- key_window: the ordinal of the window among all of its key's windows, across runs
@@ -235,10 +262,9 @@ LEFT JOIN key_state AS s ON s.check_name = 'title_decode_errors' AND s.key = w.k
 
 CREATE OR REPLACE TEMP TABLE new_windows AS
 WITH bad_by_value AS (
-    SELECT MAP {'site': struct_extract(key, 'site'), 'title_id': struct_extract(key, 'title_id')} AS key, seq, split_value, count(*) AS bad
-    FROM window_sessions
-    WHERE is_bad
-    GROUP BY ALL
+    SELECT MAP {'site': struct_extract(key, 'site'), 'title_id': struct_extract(key, 'title_id')} AS key, seq, split_value, bad
+    FROM split_counts
+    WHERE bad > 0
 ),
 known AS (
     -- each split value of a key, from the first window it was seen in (earlier runs: seq 0)
