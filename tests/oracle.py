@@ -358,9 +358,13 @@ def lifecycle(check: OracleCheck, series: list[Row], w: datetime, ident: dict[st
 
 
 def run_check(check: OracleCheck, rows: list[Row], session_id: str = "session_id",
-              event_time: str = "ended_at") -> Result:
-    """Windows, alerts and events of one check over all rows read in one run."""
-    w = watermark(rows, event_time)
+              event_time: str = "ended_at", watermark_at: datetime | None = None) -> Result:
+    """Windows, alerts and events of one check over all rows read in one run.
+
+    ``watermark_at`` is the run's watermark when ``rows`` are only some of its series (the rest
+    are judged in other calls); by default it is the latest event time of ``rows``.
+    """
+    w = watermark_at if watermark_at is not None else watermark(rows, event_time)
     result = Result(watermark=w)
     if w is None:
         return result

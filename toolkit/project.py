@@ -29,7 +29,7 @@ PROJECT_KEYS = (
     Key("warehouse", "text", "the DuckDB file holding windows, alerts, runs and state", True),
     Key("checks", "text", "folder of check files (*.yml)", False, "checks/"),
     Key("sources", "mapping", "named session tables in the lake", True),
-    Key("memory_limit", "text", "DuckDB memory limit for runs (default 2GB); beyond it DuckDB spills to disk"),
+    Key("memory_limit", "text", "DuckDB memory limit for runs (default 1600MB); beyond it DuckDB spills to disk"),
     Key("threads", "int", "DuckDB threads for runs (default: all cores)", minimum=1),
     Key("webhooks", "list", "endpoints that `plimsoll notify` POSTs alert events to"),
     Key("notify", "mapping", "which alert events `plimsoll notify` sends and how it retries"),
