@@ -173,7 +173,7 @@ class _Stages:
             first = next((line for line in statement.sql.splitlines()
                           if line.strip() and not line.strip().startswith("--")), "")
             self.statements[f"{stage}: {first.strip()[:70]}"] += spent
-            used = con.execute("SELECT coalesce(sum(memory_usage_bytes), 0) FROM duckdb_memory()").fetchone()[0]
+            used = con.execute("SELECT coalesce(sum(memory_usage_bytes), 0) FROM duckdb_memory()").fetchall()[0][0]
             self.duckdb_peak = max(self.duckdb_peak, int(used))
             return out
 

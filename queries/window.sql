@@ -84,8 +84,9 @@ FROM (
 )
 WHERE n_cuts = 0 OR last_closes;
 
--- Each pooled session's window, named by the position of its first session (NULL: still open).
-CREATE OR REPLACE TEMP TABLE placed AS
+-- Each pooled session's window, named by the position of its first session (NULL: still open); a
+-- view: a run holds every table it makes until it commits, and this one would be another copy.
+CREATE OR REPLACE TEMP VIEW placed AS
 WITH spans AS (
     SELECT *, coalesce(lead(o) OVER (PARTITION BY key ORDER BY o), 9223372036854775807) AS next_o
     FROM runs_of_windows

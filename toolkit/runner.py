@@ -3,6 +3,15 @@
 A run opens one transaction on the warehouse, runs every selected check's compiled SQL in order,
 records the files it read and its run record, and commits; any failure rolls all of it back and
 leaves only a 'failed' run record behind.
+
+The stages that touch every session (source, scan, window, measure) run on a second connection to
+the warehouse, outside the transaction: DuckDB keeps every table a transaction replaces until it
+commits, so on one connection a run would hold each check's copies of the sessions at once. That
+connection reads the state the run started from (each check's own state changes only when the
+check persists, after its stages there), and what the later stages need crosses to the
+transaction as Arrow: a row per window, the partial windows, and the new sessions' id hashes,
+streamed. A full refresh, which first deletes state inside the transaction, and the Spark engine
+run every stage on the one connection.
 """
 
 from __future__ import annotations
@@ -20,6 +29,16 @@ from .model import Check, Project, Source
 from .problems import DataError, PlimsollError, Problem, ProjectInvalid, engine_message
 
 Progress = Callable[[str], None]
+
+# Stages that run on the stage connection; the tables each leaves for the transaction's stages and
+# run record (moved once it has run), and the relation the warehouse's own insert streams from.
+STAGE_CONNECTION_STAGES = ("source", "scan", "window", "measure")
+MOVED_AFTER = {
+    "source": ("lake_counts", "lake_file_rows"),
+    "measure": ("clock", "scan_counts", "carry_next", "window_counts", "new_key_windows", "new_windows"),
+}
+STREAMED = "kept_ids"
+STREAM_BATCH = 1_000_000
 
 
 @dataclass
@@ -99,6 +118,7 @@ def _run(con: duckdb.DuckDBPyConnection, project: Project, run_id: int, checks: 
     con.execute("CREATE OR REPLACE TEMP TABLE run_scans (rows_read BIGINT, rows_invalid BIGINT, "
                 "duplicate_rows BIGINT, rows_excluded BIGINT)")
     con.execute("CREATE OR REPLACE TEMP TABLE run_retired (check_name VARCHAR, alerts_closed BIGINT)")
+    stages = _stage_connection(con, project, compiled, full_refresh)
     con.execute("BEGIN TRANSACTION")
     try:
         _retire_removed(con, project, run_id, progress)
@@ -119,14 +139,13 @@ def _run(con: duckdb.DuckDBPyConnection, project: Project, run_id: int, checks: 
                                      source.storage)
                 source_stage = compile_source([check for check, _, _ in group])
                 params = _params(new_files, run_id, "", group[0][0].name)
-                for statement in source_stage.once:
-                    _execute(con, f"source {source.name}", "source", statement, params)
+                _run_stage(con, stages, f"source {source.name}", "source", source_stage.once, params)
                 con.execute("INSERT INTO run_scans SELECT rows_read, rows_invalid, duplicate_rows, "
                             "rows_excluded FROM lake_counts")
             for check, sql, files in group:
                 step = f"[{len(result.checks) + 1}/{len(checks)}] {check.name}"
                 progress(f"{step} …")
-                result.checks.append(_run_check(con, check, sql, files, run_id))
+                result.checks.append(_run_check(con, stages, check, sql, files, run_id))
                 done = result.checks[-1]
                 progress(f"{step}: {done.files_read} files, {done.windows_written} windows, "
                          f"alerts opened {done.alerts_opened}, closed {done.alerts_closed}")
@@ -136,6 +155,7 @@ def _run(con: duckdb.DuckDBPyConnection, project: Project, run_id: int, checks: 
         con.execute("COMMIT")
     except BaseException as err:
         con.execute("ROLLBACK")
+        _close(stages)
         message = err.args[0] if isinstance(err, PlimsollError) and err.args else _engine_message(err)
         if isinstance(err, (KeyboardInterrupt, SystemExit)):
             raise
@@ -145,7 +165,65 @@ def _run(con: duckdb.DuckDBPyConnection, project: Project, run_id: int, checks: 
         if isinstance(err, PlimsollError):
             raise
         raise DataError(str(message)) from err
+    _close(stages)
     return result
+
+
+def _stage_connection(con: duckdb.DuckDBPyConnection, project: Project, compiled: list[CompiledCheck],
+                      full_refresh: bool) -> duckdb.DuckDBPyConnection | None:
+    """The connection the per-session stages run on (outside the run's transaction), or None when
+    they run inside it: a full refresh must see the state it deleted gone, and Spark's steps move
+    rows to and from the warehouse's own connection."""
+    on_spark = any(isinstance(statement, spark_engine.SparkStatement)
+                   for sql in compiled for stage in sql.stages for statement in stage.once)
+    if full_refresh or on_spark:
+        return None
+    return warehouse.stage_connection(con, project)
+
+
+def _close(stages: duckdb.DuckDBPyConnection | None) -> None:
+    if stages is not None:
+        stages.close()
+
+
+def _run_stage(con: duckdb.DuckDBPyConnection, stages: duckdb.DuckDBPyConnection | None, who: str,
+               stage: str, statements: tuple[Statement, ...], params: dict[str, Any]) -> None:
+    """One stage's statements that run once; on the stage connection if there is one and the stage
+    is one of its, with the warehouse's writes made in the transaction from a stream of its rows."""
+    if stages is None or stage not in STAGE_CONNECTION_STAGES:
+        for statement in statements:
+            _execute(con, who, stage, statement, params)
+        return
+    for statement in statements:
+        if _writes_warehouse(statement):
+            warehouse.finish_pending(stages)
+            warehouse.finish_pending(con)
+            reader = stages.sql(f"SELECT * FROM {STREAMED}").to_arrow_reader(STREAM_BATCH)
+            con.register(STREAMED, reader)
+            try:
+                _execute(con, who, stage, statement, params)
+            finally:
+                con.unregister(STREAMED)
+        else:
+            _execute(stages, who, stage, statement, params)
+    for table in MOVED_AFTER.get(stage, ()):
+        _move(stages, con, table)
+
+
+def _writes_warehouse(statement: Statement) -> bool:
+    return statement.sql.lstrip().upper().startswith(("INSERT", "UPDATE", "DELETE"))
+
+
+def _move(source: duckdb.DuckDBPyConnection, target: duckdb.DuckDBPyConnection, table: str) -> None:
+    """A temp table of the stage connection, copied to the same name on the transaction's."""
+    warehouse.finish_pending(source)
+    warehouse.finish_pending(target)
+    rows = source.sql(f"SELECT * FROM {table}").to_arrow_table()
+    target.register("__moved", rows)
+    try:
+        target.execute(f"CREATE OR REPLACE TEMP TABLE {table} AS SELECT * FROM __moved")
+    finally:
+        target.unregister("__moved")
 
 
 def _needed_columns(source: Source, checks: list[Check]) -> list[str]:
@@ -282,8 +360,8 @@ def _params(files: list[lake.LakeFile], run_id: int, definition: str, reader: st
     }
 
 
-def _run_check(con: duckdb.DuckDBPyConnection, check: Check, sql: CompiledCheck,
-               new: list[lake.LakeFile], run_id: int) -> CheckResult:
+def _run_check(con: duckdb.DuckDBPyConnection, stages: duckdb.DuckDBPyConnection | None, check: Check,
+               sql: CompiledCheck, new: list[lake.LakeFile], run_id: int) -> CheckResult:
     """A check's own stages, after its source stage has read ``new`` into ``lake_sessions``."""
     result = CheckResult(check.name, files_read=len(new))
     if not new:
@@ -291,8 +369,7 @@ def _run_check(con: duckdb.DuckDBPyConnection, check: Check, sql: CompiledCheck,
     params = _params(new, run_id, sql.definition_hash, check.name)
     loop: list[tuple[str, Statement]] = []
     for stage in sql.stages[1:]:
-        for statement in stage.once:
-            _execute(con, f"check {check.name}", stage.name, statement, params)
+        _run_stage(con, stages, f"check {check.name}", stage.name, stage.once, params)
         loop += [(stage.name, s) for s in stage.repeat]
         if stage.name == "breach" and loop:
             result.rounds = _settle(con, check, loop, params)
@@ -326,7 +403,9 @@ def _execute(con: duckdb.DuckDBPyConnection, who: str, stage: str, statement: St
     wanted = {k: params[k] for k in statement.params}
     try:
         cursor = con.execute(statement.sql, wanted) if wanted else con.execute(statement.sql)
-        return cursor.fetchone() if cursor.description else None
+        row = cursor.fetchone() if cursor.description else None
+        warehouse.finish_pending(con)
+        return row
     except duckdb.Error as err:
         raise DataError(f"{who}, stage {stage}: {_engine_message(err)}") from err
 

@@ -15,6 +15,7 @@ from typing import Any
 import duckdb
 
 from .model import Engine
+from .warehouse import finish_pending
 from .problems import DataError
 from .spark_sql import FILES_VIEW, SPARK_FILE, SparkStatement
 
@@ -88,7 +89,7 @@ def _to_spark(spark: Any, con: duckdb.DuckDBPyConnection, statement: SparkStatem
     import pyarrow as pa
 
     wanted = {k: params[k] for k in statement.params}
-    _finish_pending(con)
+    finish_pending(con)
     table = con.sql(statement.sql, params=wanted).to_arrow_table()
     if table.num_rows == 0:  # Spark cannot take an Arrow table without a batch
         table = pa.Table.from_batches([pa.RecordBatch.from_pylist([], schema=table.schema)])
@@ -99,15 +100,8 @@ def _to_duckdb(spark: Any, con: duckdb.DuckDBPyConnection, statement: SparkState
                params: dict[str, Any]) -> None:
     """Spark rows as an Arrow relation the next DuckDB statement reads."""
     rows = spark.sql(statement.sql).toArrow()
-    _finish_pending(con)
+    finish_pending(con)
     con.register(statement.name, rows)
-
-
-def _finish_pending(con: duckdb.DuckDBPyConnection) -> None:
-    """The runner reads one row of some results; DuckDB 2 wants them finished before the next query."""
-    finish = getattr(con, "complete", None)
-    if finish is not None:
-        finish()
 
 
 _STEPS = {"read": _read, "spark": _spark_sql, "to-spark": _to_spark, "to-duckdb": _to_duckdb}

@@ -75,6 +75,24 @@ def connect(project: Project, read_only: bool = False, wait: float = 0.0) -> duc
     return con
 
 
+def finish_pending(con: duckdb.DuckDBPyConnection) -> None:
+    """Finish a result only partly fetched (a CREATE's count, one row of a SELECT): DuckDB 2 wants
+    that before the connection runs anything else."""
+    finish = getattr(con, "complete", None)
+    if finish is not None:
+        finish()
+
+
+def stage_connection(con: duckdb.DuckDBPyConnection, project: Project) -> duckdb.DuckDBPyConnection:
+    """A second connection to the same warehouse, with the same settings, for the stages a run
+    runs outside its transaction (see toolkit.runner)."""
+    stages = con.cursor()
+    stages.execute("SET TimeZone = 'UTC'")
+    if project.remote:
+        storage.register(stages, project.storage)
+    return stages
+
+
 def ensure_schema(con: duckdb.DuckDBPyConnection) -> None:
     con.execute((template_folder() / "warehouse.sql").read_text(encoding="utf-8"))
     _number_id_hashes(con)

@@ -47,8 +47,10 @@ FROM lake_rows
 GROUP BY __file;
 {{ move.to_duckdb("lake_counts") }}
 {{ move.to_duckdb("lake_file_rows") }}
+-- @spark kept_ids
+CREATE OR REPLACE TEMP VIEW kept_ids AS SELECT __id_hash, __file FROM lake_sessions;
 -- @to-duckdb spark_kept_ids
-SELECT __id_hash, __file FROM lake_sessions;
+SELECT __id_hash, __file FROM kept_ids;
 -- @duckdb
 INSERT INTO session_ids
 SELECT {{ source_lit }} AS source_name, {{ m.md5_hex_number("__id_hash") }}, __file

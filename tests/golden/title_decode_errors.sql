@@ -69,10 +69,16 @@ SELECT $files[__file + 1] AS path, count(*) AS rows
 FROM lake_rows
 GROUP BY __file;
 
+-- The kept sessions' id hashes as two 64-bit halves, which is how they reach the warehouse's
+-- connection when the stages run on a connection of their own (Arrow has no 128-bit integer).
+CREATE OR REPLACE TEMP VIEW kept_ids AS
+SELECT (__id_hash >> 64)::UBIGINT AS hash_high, (__id_hash & 18446744073709551615)::UBIGINT AS hash_low, __file
+FROM lake_sessions;
+
 -- Remember the ids of files no check has read before (hashes only), for the next runs.
 INSERT INTO session_ids
-SELECT 'sessions' AS source_name, __id_hash, $files[__file + 1]
-FROM lake_sessions
+SELECT 'sessions' AS source_name, (hash_high::UHUGEINT << 64) | hash_low, $files[__file + 1]
+FROM kept_ids
 WHERE __file IN (
     SELECT f.i - 1
     FROM (SELECT unnest($files) AS path, generate_subscripts($files, 1) AS i) AS f
@@ -183,8 +189,9 @@ FROM (
 )
 WHERE n_cuts = 0 OR last_closes;
 
--- Each pooled session's window, named by the position of its first session (NULL: still open).
-CREATE OR REPLACE TEMP TABLE placed AS
+-- Each pooled session's window, named by the position of its first session (NULL: still open); a
+-- view: a run holds every table it makes until it commits, and this one would be another copy.
+CREATE OR REPLACE TEMP VIEW placed AS
 WITH spans AS (
     SELECT *, coalesce(lead(o) OVER (PARTITION BY key ORDER BY o), 9223372036854775807) AS next_o
     FROM runs_of_windows
