@@ -82,3 +82,27 @@ def test_a_full_refresh_runs_every_stage_in_the_transaction(fernhill: Path) -> N
         stages.close()
     finally:
         con.close()
+
+
+def test_a_run_that_fails_after_its_stages_leaves_no_session_ids(fernhill: Path,
+                                                                  monkeypatch: pytest.MonkeyPatch) -> None:
+    # The stage connection commits as it goes; the ids it reads must still reach the warehouse only
+    # inside the run's transaction, or a failed run would make its sessions look read before.
+    for stale in fernhill.parent.glob("warehouse.duckdb*"):
+        stale.unlink()
+    original = runner._execute
+
+    def failing(con: duckdb.DuckDBPyConnection, who: str, stage: str, statement: Any, params: dict) -> Any:
+        if stage == "persist":
+            raise runner.DataError(f"{who}: stopped on purpose")
+        return original(con, who, stage, statement, params)
+
+    monkeypatch.setattr(runner, "_execute", failing)
+    with pytest.raises(runner.DataError, match="stopped on purpose"):
+        runner.run(load_project(fernhill), COUNT_CHECKS[:1])
+    con = duckdb.connect(str(fernhill.parent / "warehouse.duckdb"), read_only=True)
+    try:
+        assert con.execute("SELECT count(*) FROM session_ids").fetchone() == (0,)
+        assert con.execute("SELECT status FROM runs").fetchall() == [("failed",)]
+    finally:
+        con.close()

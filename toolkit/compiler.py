@@ -186,6 +186,12 @@ def _statements(sql: str) -> tuple[Statement, ...]:
     return tuple(Statement(p.query.strip(), frozenset(p.named_parameters)) for p in parts if p.query.strip())
 
 
+def statement_kind(sql: str) -> str:
+    """What a statement does, as DuckDB's parser names it: 'CREATE', 'INSERT', 'SELECT', …"""
+    parts = _parser().extract_statements(sql)
+    return parts[0].type.name if parts else ""
+
+
 _PARSER: duckdb.DuckDBPyConnection | None = None
 
 

@@ -24,7 +24,7 @@ from typing import Any
 import duckdb
 
 from . import lake, spark_engine, warehouse
-from .compiler import CompiledCheck, Statement, columns_read, compile_check, compile_source
+from .compiler import CompiledCheck, Statement, columns_read, compile_check, compile_source, statement_kind
 from .model import Check, Project, Source
 from .problems import DataError, PlimsollError, Problem, ProjectInvalid, engine_message
 
@@ -211,7 +211,8 @@ def _run_stage(con: duckdb.DuckDBPyConnection, stages: duckdb.DuckDBPyConnection
 
 
 def _writes_warehouse(statement: Statement) -> bool:
-    return statement.sql.lstrip().upper().startswith(("INSERT", "UPDATE", "DELETE"))
+    """A statement that changes stored rows: it must run inside the run's transaction."""
+    return statement_kind(statement.sql) in ("INSERT", "UPDATE", "DELETE", "MERGE_INTO", "COPY")
 
 
 def _move(source: duckdb.DuckDBPyConnection, target: duckdb.DuckDBPyConnection, table: str) -> None:
