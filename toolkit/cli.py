@@ -21,7 +21,7 @@ from .outputs import alerts_json, alerts_table, list_alerts
 from .problems import PlimsollError
 from .project import load_project
 from .runner import run as run_checks
-from .runner import select_checks
+from .runner import RunResult, select_checks
 
 project_option = click.option(
     "-p", "--project", "project_file", default="plimsoll.yml", show_default=True,
@@ -117,14 +117,14 @@ def compile(check: str, project_file: Path) -> None:
               help="Seconds to wait for another run to release the warehouse.")
 @reports_errors
 def run(project_file: Path, checks: tuple[str, ...], full_refresh: bool, wait: float) -> None:
-    """One incremental run over the files not yet read."""
+    """Incremental runs over the files not yet read (one, unless the backlog exceeds max_read_per_run)."""
     project = load_project(project_file)
     with _Progress() as progress:
         result = run_checks(project, list(checks), full_refresh, progress, wait=wait)
     for change in result.changed_files:
         click.echo(f"warning: lake file changed after it was read; not read again: {change}", err=True)
     click.echo(
-        f"run {result.run_id}: {result.files_read} new files, "
+        f"{_runs(result)}: {result.files_read} new files, "
         f"{sum(c.windows_written for c in result.checks)} windows, "
         f"{result.alerts_opened} alerts opened, {sum(c.alerts_closed for c in result.checks)} closed"
     )
@@ -230,5 +230,13 @@ def backtest(checks: tuple[str, ...], project_file: Path, start: datetime, end: 
     click.echo(backtest_json(outcome) if as_json else backtest_table(outcome))
 
 
+def _runs(result: RunResult) -> str:
+    """'run 7', or 'runs 3-7' when a backlog was read by several runs."""
+    if result.first_run_id is None:
+        return f"run {result.run_id}"
+    return f"runs {result.first_run_id}-{result.run_id}"
+
+
 if __name__ == "__main__":  # pragma: no cover
     main()
+

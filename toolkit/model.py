@@ -178,6 +178,7 @@ class Project:
     checks: dict[str, Check]
     memory_limit: str | None = None
     threads: int | None = None
+    max_read_per_run: int | None = None   # bytes; None: the default (toolkit.runner.DEFAULT_MAX_READ)
     webhooks: tuple[Webhook, ...] = ()
     notify: Notify = field(default_factory=Notify)
     engine: Engine = field(default_factory=Engine)

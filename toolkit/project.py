@@ -25,12 +25,17 @@ from .registry import BASELINES, DIRECTIONS, MEASURES, SEVERITIES, Key
 from .yamlsource import KeyPath, Located, dotted, load
 
 ENGINES = ("duckdb", "spark")
+_SIZE = re.compile(r"^\s*(\d+(?:\.\d+)?)\s*(B|KB|MB|GB|TB|KiB|MiB|GiB|TiB)\s*$")
+_UNITS = {"B": 1, "KB": 10**3, "MB": 10**6, "GB": 10**9, "TB": 10**12,
+          "KiB": 2**10, "MiB": 2**20, "GiB": 2**30, "TiB": 2**40}
 PROJECT_KEYS = (
     Key("warehouse", "text", "the DuckDB file holding windows, alerts, runs and state", True),
     Key("checks", "text", "folder of check files (*.yml)", False, "checks/"),
     Key("sources", "mapping", "named session tables in the lake", True),
     Key("memory_limit", "text", "DuckDB memory limit for runs (default 1600MB); beyond it DuckDB spills to disk"),
     Key("threads", "int", "DuckDB threads for runs (default: all cores)", minimum=1),
+    Key("max_read_per_run", "text", "the most Parquet (by file size) one run reads per check, e.g. 4GB "
+        "(the default); a longer backlog is read by several runs in turn, each committed"),
     Key("webhooks", "list", "endpoints that `plimsoll notify` POSTs alert events to"),
     Key("notify", "mapping", "which alert events `plimsoll notify` sends and how it retries"),
     Key("engine", "choice", "where the stages that touch every session run: duckdb or spark", False,
@@ -286,6 +291,7 @@ def load_project(path: Path | str = "plimsoll.yml", check_schema: bool = True) -
     top = _Section(doc, (), doc.data if doc.data is not None else {}, PROJECT_KEYS, problems)
     warehouse, checks_dir = top.get("warehouse"), top.get("checks")
     memory_limit, threads = top.get("memory_limit"), top.get("threads")
+    max_read = _size(top, "max_read_per_run")
     engine = _engine(top)
     settings = _storage(doc, top.get("storage"), problems)
     con = duckdb.connect()
@@ -307,7 +313,7 @@ def load_project(path: Path | str = "plimsoll.yml", check_schema: bool = True) -
     return Project(
         file=file.resolve(), root=root, warehouse=(root / warehouse).resolve(), checks_dir=folder,
         sources=sources, checks=checks, memory_limit=memory_limit, threads=threads,
-        webhooks=webhooks, notify=notify, engine=engine, storage=settings,
+        max_read_per_run=max_read, webhooks=webhooks, notify=notify, engine=engine, storage=settings,
     )
 
 
@@ -349,6 +355,18 @@ def validate_check(project: Project, doc: Located) -> tuple[Check | None, list[P
     finally:
         con.close()
     return check, problems
+
+
+def _size(top: "_Section", name: str) -> int | None:
+    """A size such as 4GB or 512MiB, in bytes."""
+    text = top.get(name)
+    if text is None:
+        return None
+    match = _SIZE.match(str(text))
+    if not match or float(match.group(1)) <= 0:
+        top.error((name,), f"{name} '{text}': expected a size such as 4GB or 512MiB")
+        return None
+    return int(float(match.group(1)) * _UNITS[match.group(2)])
 
 
 def _engine(top: _Section) -> Engine:

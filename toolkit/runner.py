@@ -38,6 +38,7 @@ MOVED_AFTER = {
     "measure": ("clock", "scan_counts", "carry_next", "window_counts", "new_key_windows", "new_windows"),
 }
 STREAMED = "kept_ids"
+DEFAULT_MAX_READ = 4 * 10**9  # bytes of Parquet per check and run: about 60M demo sessions
 STREAM_BATCH = 1_000_000
 
 
@@ -61,6 +62,8 @@ class RunResult:
 
     distinct_files: int = 0
     changed_files: list[str] = field(default_factory=list)
+    first_run_id: int | None = None   # when one call made several runs (a backlog): the first
+    more: bool = False                # files were left for a next run (max_read_per_run)
 
     @property
     def files_read(self) -> int:
@@ -84,31 +87,57 @@ def select_checks(project: Project, names: list[str] | tuple[str, ...] | None) -
 
 def run(project: Project, names: list[str] | None = None, full_refresh: bool = False,
         progress: Progress | None = None, wait: float = 0.0) -> RunResult:
-    """One run of the selected checks; returns what it did, raises on failure after rolling back.
+    """Runs of the selected checks until they have read every file; returns what they did, raises
+    on failure after rolling back the failing run.
 
-    Waits up to ``wait`` seconds for another run to release the warehouse. After the run (failed
-    or not) the tables analysts read are published as Parquet beside the warehouse.
+    One run reads at most ``max_read_per_run`` of Parquet per check, so a long backlog (a first run
+    over a year of lake) is read by several runs in turn, each committed on its own: memory and
+    spill space stay bounded, and what the committed runs read is never read again. Waits up to
+    ``wait`` seconds for another run to release the warehouse. After every run (failed or not) the
+    tables analysts read are published as Parquet beside the warehouse.
     """
     checks = select_checks(project, names)
     compiled = [compile_check(c) for c in checks]
+    say = progress or (lambda _: None)
+    budget = project.max_read_per_run or DEFAULT_MAX_READ
     con = warehouse.connect(project, wait=wait)
+    done: list[RunResult] = []
     try:
-        run_id = int(con.execute("SELECT coalesce(max(run_id), 0) + 1 FROM runs").fetchone()[0])
-        with warehouse.claimed(project, run_id, [c.name for c in checks]):
-            try:
-                result = _run(con, project, run_id, checks, compiled, full_refresh,
-                              progress or (lambda _: None))
-            except PlimsollError:
-                _publish_quietly(con, project)
-                raise
-            warehouse.publish(con, project)
-            return result
+        while True:
+            run_id = int(con.execute("SELECT coalesce(max(run_id), 0) + 1 FROM runs").fetchone()[0])
+            with warehouse.claimed(project, run_id, [c.name for c in checks]):
+                try:
+                    result = _run(con, project, run_id, checks, compiled, full_refresh and not done, say, budget)
+                except PlimsollError:
+                    _publish_quietly(con, project)
+                    raise
+                warehouse.publish(con, project)
+            done.append(result)
+            if not result.more:
+                return _together(done)
+            say(f"run {run_id} read {result.files_read} files, up to max_read_per_run; "
+                "the next run reads on from there")
     finally:
         con.close()
 
 
+def _together(runs: list[RunResult]) -> RunResult:
+    """The runs of one call as one result: the last run's id, every run's counts added up."""
+    if len(runs) == 1:
+        return runs[0]
+    by_check: dict[str, CheckResult] = {}
+    for result in runs:
+        for c in result.checks:
+            total = by_check.setdefault(c.check, CheckResult(c.check))
+            for name in ("files_read", "rows_read", "windows_written", "alerts_opened", "alerts_closed", "rounds"):
+                setattr(total, name, getattr(total, name) + getattr(c, name))
+    return RunResult(runs[-1].run_id, runs[-1].status, list(by_check.values()),
+                     distinct_files=sum(r.distinct_files for r in runs),
+                     changed_files=[f for r in runs for f in r.changed_files], first_run_id=runs[0].run_id)
+
+
 def _run(con: duckdb.DuckDBPyConnection, project: Project, run_id: int, checks: list[Check],
-         compiled: list[CompiledCheck], full_refresh: bool, progress: Progress) -> RunResult:
+         compiled: list[CompiledCheck], full_refresh: bool, progress: Progress, budget: int) -> RunResult:
     started = _now()
     if not full_refresh:
         _refuse_changed(con, checks, compiled)
@@ -124,7 +153,7 @@ def _run(con: duckdb.DuckDBPyConnection, project: Project, run_id: int, checks: 
         _retire_removed(con, project, run_id, progress)
         if full_refresh:
             _forget(con, checks, compiled, run_id)
-        groups = _groups(con, checks, compiled, listings)
+        groups, result.more = _groups(con, checks, compiled, listings, budget)
         result.changed_files = _note_changes(con, run_id, checks, listings)
         for change in result.changed_files:
             progress(f"changed after it was read, not read again: {change}")
@@ -337,17 +366,30 @@ def _note_changes(con: duckdb.DuckDBPyConnection, run_id: int, checks: list[Chec
 
 
 def _groups(con: duckdb.DuckDBPyConnection, checks: list[Check], compiled: list[CompiledCheck],
-            listings: dict[str, list[lake.LakeFile]]) -> list[list[tuple[Check, CompiledCheck, list[lake.LakeFile]]]]:
-    """Checks of one source with the same new files, so the files are read once for all of them."""
+            listings: dict[str, list[lake.LakeFile]], budget: int,
+            ) -> tuple[list[list[tuple[Check, CompiledCheck, list[lake.LakeFile]]]], bool]:
+    """Checks of one source with the same new files, so the files are read once for all of them;
+    and whether any check has more new files than ``budget`` bytes of them (read by a next run).
+
+    A check takes its new files in path order (day partitions: in time) up to ``budget``, and at
+    least one."""
     groups: dict[tuple[str, tuple[str, ...]], list[tuple[Check, CompiledCheck, list[lake.LakeFile]]]] = {}
+    more = False
     for check, sql in zip(checks, compiled):
         if check.source.name not in listings:
             listings[check.source.name] = lake.list_source(check.source)
         seen = {row[0] for row in con.execute(
             "SELECT path FROM files_read WHERE check_name = $c", {"c": check.name}).fetchall()}
-        new = [f for f in listings[check.source.name] if f.path not in seen]
-        groups.setdefault((check.source.name, tuple(f.path for f in new)), []).append((check, sql, new))
-    return list(groups.values())
+        new = sorted((f for f in listings[check.source.name] if f.path not in seen), key=lambda f: f.path)
+        taken, size = [], 0
+        for f in new:
+            if taken and size + f.size > budget:
+                more = True
+                break
+            taken.append(f)
+            size += f.size
+        groups.setdefault((check.source.name, tuple(f.path for f in taken)), []).append((check, sql, taken))
+    return list(groups.values()), more
 
 
 def _params(files: list[lake.LakeFile], run_id: int, definition: str, reader: str) -> dict[str, Any]:
