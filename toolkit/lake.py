@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import glob as globlib
 import os
+import re
 from dataclasses import dataclass
 from datetime import datetime, timezone
 
@@ -22,23 +23,60 @@ from .sqltext import quote_ident
 
 @dataclass(frozen=True, order=True)
 class LakeFile:
-    """One Parquet file as seen when listed."""
+    """One Parquet file as seen when listed: its name in the warehouse (``path``: relative to the
+    source's base, see :func:`base_of`), size and modification time, and where it is read from."""
 
     path: str
     size: int
     modified_at: datetime
+    location: str = ""
+
+    @property
+    def where(self) -> str:
+        """The absolute path or URL the engines read."""
+        return self.location or self.path
 
 
 def is_pattern(path: str) -> bool:
-    return any(ch in path for ch in "*?[")
+    """A glob, unless a file or folder of exactly that name exists (lake folders may hold '[')."""
+    if not any(ch in path for ch in "*?["):
+        return False
+    return storage.is_remote(path) or not os.path.exists(path)
+
+
+def base_of(path: str) -> str:
+    """What a source's files are named relative to in the warehouse: its folder or object prefix,
+    a glob's fixed part before the first wildcard, or a single file's folder. Recording names
+    relative to it lets a project or its lake move without every file looking new."""
+    if storage.is_remote(path):
+        head = re.split(r"[*?\[]", path, maxsplit=1)[0]
+        return head.rstrip("/") if head.endswith("/") else head.rsplit("/", 1)[0]
+    if os.path.isdir(path):
+        return os.path.abspath(path)
+    if is_pattern(path):
+        head = re.split(r"[*?\[]", path, maxsplit=1)[0]
+        return os.path.abspath(head if head.endswith(os.sep) else os.path.dirname(head))
+    return os.path.abspath(os.path.dirname(path))
+
+
+def relative_to(base: str, location: str) -> str:
+    """``location``'s name below ``base`` (with '/' separators); the location itself when it is
+    not below it."""
+    prefix = base.rstrip("/") + "/"
+    location_posix = location.replace(os.sep, "/") if not storage.is_remote(location) else location
+    prefix = prefix.replace(os.sep, "/") if not storage.is_remote(base) else prefix
+    return location_posix[len(prefix):] if location_posix.startswith(prefix) else location
 
 
 def list_source(source: Source) -> list[LakeFile]:
-    """The source's files now; an object store that cannot be listed is one line naming the source."""
+    """The source's files now, named relative to its base; an object store that cannot be listed
+    is one line naming the source."""
     try:
-        return list_files(source.path, source.storage)
+        found = list_files(source.path, source.storage)
     except storage.StorageError as err:
         raise DataError(f"source '{source.name}': {source.path}: {err}") from None
+    base = source.base or base_of(source.path)
+    return [LakeFile(relative_to(base, f.path), f.size, f.modified_at, f.path) for f in found]
 
 
 def list_files(path: str, settings: Storage | None = None) -> list[LakeFile]:
@@ -95,7 +133,8 @@ _FAMILIES = (
     ("number", ("TINYINT", "SMALLINT", "INTEGER", "BIGINT", "HUGEINT", "UTINYINT", "USMALLINT",
                 "UINTEGER", "UBIGINT", "UHUGEINT", "FLOAT", "DOUBLE", "DECIMAL")),
     ("text", ("VARCHAR",)),
-    ("time", ("TIMESTAMP", "TIMESTAMP_NS", "TIMESTAMP_MS", "TIMESTAMP_S", "TIMESTAMP WITH TIME ZONE", "DATE")),
+    ("time", ("TIMESTAMP", "TIMESTAMP_NS", "TIMESTAMP_MS", "TIMESTAMP_S", "TIMESTAMP WITH TIME ZONE",
+              "TIMESTAMPTZ", "TIMESTAMPTZ_NS", "TIMESTAMP_NS WITH TIME ZONE", "DATE")),
     ("boolean", ("BOOLEAN",)),
 )
 
@@ -108,7 +147,17 @@ def type_family(duckdb_type: str) -> str:
 
 def hive_columns(path: str) -> set[str]:
     """Partition columns named by the folders of a hive-partitioned path (``day=2026-11-02``)."""
-    return {part.split("=", 1)[0] for part in path.replace("\\", "/").split("/")[:-1] if "=" in part}
+    return set(hive_values(path))
+
+
+def hive_values(path: str) -> dict[str, str]:
+    """The ``column=value`` folders of a path, as DuckDB's hive partitioning reads them."""
+    found: dict[str, str] = {}
+    for part in path.replace("\\", "/").split("/")[:-1]:
+        if "=" in part:
+            key, value = part.split("=", 1)
+            found[key] = value
+    return found
 
 
 def file_columns(paths: list[str], settings: Storage | None = None) -> dict[str, dict[str, str]]:
@@ -142,30 +191,120 @@ def _file_columns(con: duckdb.DuckDBPyConnection, paths: list[str]) -> dict[str,
     return found
 
 
-def check_new_files(con: duckdb.DuckDBPyConnection, source_name: str, paths: list[str],
-                    needed: list[str], readers: list[str], settings: Storage | None = None) -> None:
-    """Refuse new files that lack a column the checks read, or hold one of another kind of type.
+def readable_footers(paths: list[str], settings: Storage | None = None) -> dict[str, dict[str, str]]:
+    """Each readable file's top-level columns and types (footers only); unreadable files left out."""
+    with duckdb.connect() as con:
+        if any(storage.is_remote(p) for p in paths):
+            storage.register(con, settings)
+        try:
+            return _file_columns(con, paths)
+        except (DataError, duckdb.Error):
+            pass
+        found: dict[str, dict[str, str]] = {}
+        for path in paths:
+            try:
+                found.update(_file_columns(con, [path]))
+            except (DataError, duckdb.Error):
+                continue
+        return found
 
-    Without this, reading many files by name would quietly fill a missing column with NULL and
-    widen a mistyped one to text. Types are compared with the first file that had the column, as
-    recorded in ``source_columns``; this run's first file sets them for new columns.
+
+def agreeing_files(footers: dict[str, dict[str, str]]) -> list[str]:
+    """The files whose every column has the kind of type most files give it (ties: the first file's).
+
+    One file that turned a number into text must not change what the whole source looks like; the
+    run that reads it names it instead.
+    """
+    votes: dict[str, dict[str, int]] = {}
+    first: dict[str, str] = {}
+    for path in sorted(footers):
+        for name, kind in footers[path].items():
+            family = type_family(kind)
+            votes.setdefault(name, {}).setdefault(family, 0)
+            votes[name][family] += 1
+            first.setdefault(name, family)
+    chosen = {name: max(counts, key=lambda f: (counts[f], f == first[name])) for name, counts in votes.items()}
+    return [path for path in sorted(footers)
+            if all(type_family(kind) == chosen[name] for name, kind in footers[path].items())]
+
+
+def check_new_files(con: duckdb.DuckDBPyConnection, source: Source, files: list[LakeFile],
+                    needed: list[str], readers: list[str]) -> None:
+    """Refuse new files that lack a column the checks read, hold one of another kind of type, or
+    sit in a partition folder that contradicts their own column.
+
+    Without this, reading many files by name would quietly fill a missing column with NULL, widen
+    a mistyped one to text, or re-attribute sessions to the folder's value. Types are compared
+    with those recorded in ``source_columns`` (the types validation found in most of the source's
+    files, recorded when a run first reads the column), so one odd file is named whatever its order.
     """
     known = {name: (kind, first) for name, kind, first in con.execute(
         "SELECT column_name, column_type, first_path FROM source_columns WHERE source_name = $s",
-        {"s": source_name}).fetchall()}
+        {"s": source.name}).fetchall()}
     who = ", ".join(readers)
-    for path, columns in sorted(file_columns(paths, settings).items()):
-        partitions = hive_columns(path)
+    named = {f.where: f for f in files}
+    times = set(source.time_columns)
+    for location, columns in sorted(file_columns(list(named), source.storage).items()):
+        partitions = hive_values(location)
+        _check_partitions(location, partitions, columns, times, needed, source.storage)
         for name in needed:
             if name in partitions:
                 continue
             if name not in columns:
-                raise DataError(f"{path}: column '{name}' is missing; source '{source_name}' needs it "
+                raise DataError(f"{location}: column '{name}' is missing; source '{source.name}' needs it "
                                 f"for {who}")
             if name not in known:
-                known[name] = (columns[name], path)
+                kind = source.columns.get(name) or columns[name]
+                known[name] = (kind, named[location].path)
                 con.execute("INSERT INTO source_columns VALUES ($s, $c, $t, $p)",
-                            {"s": source_name, "c": name, "t": columns[name], "p": path})
-            elif type_family(columns[name]) != type_family(known[name][0]):
-                raise DataError(f"{path}: column '{name}' is {columns[name]}, but source '{source_name}' "
-                                f"had it as {known[name][0]} (in {known[name][1]})")
+                            {"s": source.name, "c": name, "t": kind, "p": named[location].path})
+            if type_family(columns[name]) != type_family(known[name][0]):
+                raise DataError(f"{location}: column '{name}' is {columns[name]}, but source '{source.name}' "
+                                f"has it as {known[name][0]} (first read in {known[name][1]})")
+
+
+def _check_partitions(location: str, partitions: dict[str, str], columns: dict[str, str], times: set[str],
+                      needed: list[str], settings: Storage | None) -> None:
+    """A partition folder may not name the event-time column, nor say otherwise than the file's own
+    column: DuckDB would take the folder's value and silently move the file's sessions."""
+    for key, value in partitions.items():
+        if key in times:
+            raise DataError(f"{location}: partition folder '{key}={value}' is named after the event-time "
+                            f"column '{key}', which would replace every session's time with the folder's "
+                            "value; name the folder after another column (e.g. day=...)")
+        if key not in columns or key not in needed:
+            continue
+        if not re.fullmatch(r"[A-Z0-9_(), ]+", columns[key]):
+            raise DataError(f"{location}: column '{key}' has a type Plimsoll cannot compare: {columns[key]}")
+        with duckdb.connect() as con:
+            if storage.is_remote(location):
+                storage.register(con, settings)
+            row = con.execute(
+                f"SELECT count(*), any_value({quote_ident(key)}::VARCHAR) FROM read_parquet($f, hive_partitioning = false) "
+                f"WHERE {quote_ident(key)} IS DISTINCT FROM TRY_CAST($v AS {columns[key]})",
+                {"f": [location], "v": value}).fetchone()
+        if row[0]:
+            raise DataError(f"{location}: partition folder '{key}={value}' contradicts the file's own column "
+                            f"'{key}' ({row[0]} sessions say '{row[1]}'); fix the file or the folder, "
+                            "so no session is counted under the wrong value")
+
+
+def first_event_times(con: duckdb.DuckDBPyConnection, source: Source, files: list[LakeFile]) -> dict[str, datetime]:
+    """Each file's earliest sane event time (finite, no later than max_future after the file was
+    written), for reading a backlog in data-time order; a file without one is left out."""
+    if not files:
+        return {}
+    limits = [f.modified_at + source.max_future for f in files]
+    rows = con.execute(
+        f"""
+        SELECT file_index, min(t)
+        FROM (
+            SELECT file_index, ({source.time.sql if source.time else quote_ident(source.event_time)})::TIMESTAMP AS t
+            FROM read_parquet($files, hive_partitioning = true, union_by_name = true)
+        )
+        WHERE isfinite(t) AND t <= $limits[file_index::BIGINT + 1]
+        GROUP BY file_index
+        """,
+        {"files": [f.where for f in files], "limits": limits},
+    ).fetchall()
+    return {files[index].path: first for index, first in rows}

@@ -58,13 +58,27 @@ class Source:
     name: str
     path: str
     session_id: str
-    event_time: str
+    event_time: str                  # as written: a column name or an expression over columns
     exclude: Expr | None
     columns: dict[str, str] = field(default_factory=dict, hash=False, compare=False)
     engine: Engine = field(default_factory=Engine)
     # Read only sessions before this data time; set by a backtest replaying the lake up to a moment.
     until: datetime | None = None
     storage: Storage | None = None  # the project's storage settings, for s3:// paths
+    # the event time as checked SQL (a quoted column, or the regenerated expression)
+    time: Expr | None = None
+    # a session ending later than its file's modification time + max_future has an impossible time
+    max_future: timedelta = timedelta(days=1)
+    # session ids are remembered this long behind the data read (in data time), to find repeats
+    dedup_horizon: timedelta = timedelta(days=3)
+
+    # what the files' paths are recorded relative to (see toolkit.lake.base_of)
+    base: str = ""
+
+    @property
+    def time_columns(self) -> tuple[str, ...]:
+        """The columns the event time is computed from."""
+        return self.time.columns if self.time is not None else (self.event_time,)
 
 
 @dataclass(frozen=True)

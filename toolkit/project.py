@@ -21,6 +21,7 @@ from . import lake, storage
 from .expressions import ExpressionError, parse_expression, unknown_column
 from .model import Baseline, Check, Engine, Expr, Guard, Lifecycle, Measure, Notify, Project, Source, Storage, Webhook, Window
 from .problems import Problem, ProjectInvalid, display_path, engine_message
+from .sqltext import quote_ident
 from .registry import BASELINES, DIRECTIONS, MEASURES, SEVERITIES, Key
 from .yamlsource import KeyPath, Located, dotted, load
 
@@ -71,8 +72,14 @@ STORAGE_KEYS = (
 SOURCE_KEYS = (
     Key("path", "text", "folder, glob or file of Parquet, or an s3:// URL of them; hive partitions are read", True),
     Key("session_id", "column", "unique per session: duplicates are counted once", True),
-    Key("event_time", "column", "the data time that orders sessions and closes windows", True),
+    Key("event_time", "expr", "the data time that orders sessions and closes windows: a timestamp column, "
+        "or an expression giving one (e.g. epoch_ms(ended_ms), ended_iso::TIMESTAMP)", True),
     Key("exclude", "expr", "SQL boolean: matching sessions never count (crawlers, tests)"),
+    Key("max_future", "duration", "a session ending more than this after its file was written has an "
+        "impossible event time: it is counted as invalid and never moves the watermark", False, "1d"),
+    Key("dedup_horizon", "duration", "how far behind the newest data read (in data time) session ids are "
+        "remembered to find repeats; an older session arriving later is counted as late and left out",
+        False, "3d"),
 )
 CHECK_KEYS = (
     Key("check", "name", "unique check name, [a-z][a-z0-9_]*", True),
@@ -106,13 +113,15 @@ LIFECYCLE_KEYS = (
 )
 
 _NAME = re.compile(r"^[a-z][a-z0-9_]*$")
+_PLAIN_NAME = re.compile(r"^[A-Za-z_][A-Za-z0-9_]*$")
 _ENV_NAME = re.compile(r"^[A-Za-z_][A-Za-z0-9_]*$")
 _DURATION = re.compile(r"^(?:(\d+)w)?(?:(\d+)d)?(?:(\d+)h)?(?:(\d+)m)?(?:(\d+)s)?$")
 _NUMERIC = re.compile(
     r"^(TINYINT|SMALLINT|INTEGER|BIGINT|HUGEINT|UTINYINT|USMALLINT|UINTEGER|UBIGINT|UHUGEINT|FLOAT|"
     r"DOUBLE|DECIMAL(\(\d+,\s*\d+\))?)$"
 )
-_TIMES = re.compile(r"^(TIMESTAMP|TIMESTAMP_S|TIMESTAMP_MS|TIMESTAMP_NS|TIMESTAMP WITH TIME ZONE|DATE)$")
+# every timestamp type Parquet writers produce, as DuckDB names them (with and without a time zone)
+_TIMES = re.compile(r"^(TIMESTAMP(_S|_MS|_NS)?|TIMESTAMPTZ(_NS)?|TIMESTAMP(_NS)? WITH TIME ZONE|DATE)$")
 
 
 def parse_duration(text: Any) -> timedelta:
@@ -273,7 +282,25 @@ class _Binder:
         if want == "number" and not _NUMERIC.match(kind):
             section.error(path, f"{dotted(path)}: must be a number per session, but is {kind}")
             return None
+        if want == "time" and not _TIMES.match(kind):
+            section.error(path, f"{dotted(path)}: must give a timestamp per session, but is {kind}; "
+                          "turn epoch numbers or text into one, e.g. epoch_ms(ended_ms) or ended_iso::TIMESTAMP")
+            return None
         return parsed
+
+    def time(self, section: _Section, text: str | None) -> Expr | None:
+        """The event time: a timestamp column as it is, or an expression giving a timestamp."""
+        if text is None:
+            return None
+        if text in self.source.columns or (not self.source.columns and _PLAIN_NAME.match(text)):
+            kind = self.source.columns.get(text)
+            if kind is not None and not _TIMES.match(kind):
+                section.error((*section.path, "event_time"),
+                              f"{dotted((*section.path, 'event_time'))}: column '{text}' is {kind}, not a "
+                              "timestamp; give an expression that makes one, e.g. epoch_ms(" + text + ")")
+                return None
+            return Expr(text=text, sql=quote_ident(text), columns=(text,))
+        return self.expr(section, text, "event_time", "time")
 
 
 def load_project(path: Path | str = "plimsoll.yml", check_schema: bool = True) -> Project:
@@ -434,6 +461,8 @@ def _load_sources(doc: Located, raw: dict[str, Any], root: Path, con: duckdb.Duc
             section.error(section.path, f"source name '{name}' is not valid: use [a-z][a-z0-9_]*")
         where = section.get("path")
         session_id, event_time, exclude = section.get("session_id"), section.get("event_time"), section.get("exclude")
+        limits = {"max_future": section.get("max_future"), "dedup_horizon": section.get("dedup_horizon")}
+        limits = {k: v for k, v in limits.items() if v is not None}
         if where is None:
             continue
         location = where if "://" in where else str((root / where))
@@ -443,8 +472,9 @@ def _load_sources(doc: Located, raw: dict[str, Any], root: Path, con: duckdb.Duc
                           f"can be read, not {where.split('://')[0]}://")
             sources[name] = Source(name, location, session_id or "", event_time or "", None, {})
             continue
+        common = {"engine": engine, "storage": settings if remote else None, "base": lake.base_of(location),
+                  **limits}
         columns: dict[str, str] = {}
-        held = settings if remote else None
         if check_schema:
             files = (_remote_files(section, name, location, settings, con) if remote
                      else [f.path for f in lake.list_files(location)])
@@ -453,50 +483,42 @@ def _load_sources(doc: Located, raw: dict[str, Any], root: Path, con: duckdb.Duc
                 unreadable = f"source '{name}': no Parquet files at '{where}'"
             elif files is not None:
                 try:
-                    columns = _readable_schema(con, files)
+                    columns = _readable_schema(con, files, settings if remote else None)
                 except duckdb.Error as err:
                     unreadable = f"source '{name}': cannot read Parquet schema: {engine_message(err)}"
             if unreadable:
                 section.error((*section.path, "path"), unreadable)
             if files is None or unreadable:
                 # keep the source, without columns, so its checks report only their own problems
-                sources[name] = Source(name, location, session_id or "", event_time or "", None, {}, engine=engine, storage=held)
+                sources[name] = Source(name, location, session_id or "", event_time or "", None, {}, **common)
                 continue
         reserved = sorted(c for c in columns if c.startswith("__"))
         if reserved:
             section.error((*section.path, "path"), f"source '{name}': column names starting with '__' are "
                           f"reserved for Plimsoll's own columns: {', '.join(reserved)}")
-        source = Source(name, location, session_id or "", event_time or "", None, columns, engine=engine, storage=held)
+        source = Source(name, location, session_id or "", event_time or "", None, columns, **common)
         binder = _Binder(con, source)
         if check_schema:
             binder.column(section, session_id, "session_id")
-            if binder.column(section, event_time, "event_time") and not _TIMES.match(columns[event_time]):
-                section.error((*section.path, "event_time"),
-                              f"sources.{name}.event_time: column '{event_time}' is {columns[event_time]}, not a timestamp")
+        time = binder.time(section, event_time)
         excl = binder.expr(section, exclude, "exclude", "boolean")
-        sources[name] = Source(name, location, session_id or "", event_time or "", excl, columns, engine=engine, storage=held)
+        sources[name] = Source(name, location, session_id or "", event_time or "", excl, columns, time=time,
+                               **common)
     return sources
 
 
-def _readable_schema(con: duckdb.DuckDBPyConnection, files: list[str]) -> dict[str, str]:
-    """The columns of the source's files; files that cannot be read are left to the run to name.
+def _readable_schema(con: duckdb.DuckDBPyConnection, files: list[str], settings: Storage | None) -> dict[str, str]:
+    """The columns of the source's files, as most of them have them.
 
-    A broken file in the lake is a data problem of the run that would read it (exit 1, the file
-    named), not a reason to call the project invalid.
+    A broken file in the lake, or one whose column has another kind of type than in the other
+    files, is a data problem of the run that would read it (exit 1, the file and column named),
+    not a reason to call the project invalid: such files are left out here.
     """
-    try:
-        return lake.read_schema(con, files)
-    except duckdb.Error:
-        readable = []
-        for path in files:
-            try:
-                lake.read_schema(con, [path])
-                readable.append(path)
-            except duckdb.Error:
-                continue
-        if not readable:
-            raise
-        return lake.read_schema(con, readable)
+    footers = lake.readable_footers(files, settings)
+    if not footers:
+        return lake.read_schema(con, files)  # none readable: DuckDB's own message says why
+    agreeing = lake.agreeing_files(footers)
+    return lake.read_schema(con, agreeing)
 
 
 def _load_checks(folder: Path, sources: dict[str, Source], con: duckdb.DuckDBPyConnection,
