@@ -187,3 +187,20 @@ CREATE TABLE IF NOT EXISTS outbox (  -- one row per alert event and webhook: wha
     next_attempt_at TIMESTAMP,
     delivered_at TIMESTAMP
 );
+
+-- Columns added after the first release; ADD COLUMN IF NOT EXISTS keeps older files readable and
+-- gives new and old files the same column order.
+ALTER TABLE runs ADD COLUMN IF NOT EXISTS nonfinite_values BIGINT;  -- measure inputs that were NaN or ±infinity, left out
+ALTER TABLE runs ADD COLUMN IF NOT EXISTS warning VARCHAR;          -- what a scheduler's log should shout about
+ALTER TABLE run_checks ADD COLUMN IF NOT EXISTS nonfinite_values BIGINT;
+ALTER TABLE run_checks ADD COLUMN IF NOT EXISTS beyond_horizon BIGINT;  -- late by more than dedup_horizon: left out
+ALTER TABLE files_read ADD COLUMN IF NOT EXISTS source_name VARCHAR;
+ALTER TABLE files_read ADD COLUMN IF NOT EXISTS invalid_rows BIGINT;   -- rows without id or a sane event time
+ALTER TABLE session_ids ADD COLUMN IF NOT EXISTS event_time TIMESTAMP; -- the session's data time: ids are kept within dedup_horizon
+
+-- The warehouse's layout, so a later release can migrate a file written by an earlier one and a
+-- file written by a later one is refused with a clear message. Paths in files_read,
+-- changed_files, session_ids and source_columns are relative to their source's path from version 2.
+CREATE TABLE IF NOT EXISTS schema_version (
+    version INTEGER
+);

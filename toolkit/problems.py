@@ -66,3 +66,7 @@ def display_path(path: Path, base: Path | None = None) -> str:
         except ValueError:
             continue
     return str(path)
+
+
+class WarehouseError(PlimsollError):
+    """The warehouse file cannot be used as it is: another layout, read-only, not a file, a full disk."""

@@ -23,11 +23,14 @@ import duckdb
 from . import storage
 from .compiler import environment, template_folder
 from .model import Project
-from .problems import DataError, RunLocked
+from .problems import DataError, RunLocked, WarehouseError
 from .sqltext import quote_ident, quote_literal
 
 TABLES = ("runs", "run_checks", "files_read", "changed_files", "source_columns", "session_ids",
-          "check_state", "key_state", "carry", "key_windows", "windows", "alerts", "alert_events")
+          "check_state", "key_state", "carry", "key_windows", "windows", "alerts", "alert_events",
+          "schema_version")
+# The layout this release writes (the schema_version table): 2 names files relative to their source.
+SCHEMA_VERSION = 2
 PUBLISHED = ("alerts", "alert_events", "windows", "runs")
 POLL_SECONDS = 0.25
 # A run's temp tables live until its one transaction commits, so without a limit its memory grows
@@ -71,7 +74,12 @@ def connect(project: Project, read_only: bool = False, wait: float = 0.0) -> duc
             con.close()
             raise DataError(f"{project.file.name}: storage: {err}") from None
     if not read_only:
-        ensure_schema(con)
+        try:
+            ensure_schema(con)
+            migrate(con, project)
+        except BaseException:
+            con.close()
+            raise
     return con
 
 
@@ -96,6 +104,60 @@ def stage_connection(con: duckdb.DuckDBPyConnection, project: Project) -> duckdb
 def ensure_schema(con: duckdb.DuckDBPyConnection) -> None:
     con.execute((template_folder() / "warehouse.sql").read_text(encoding="utf-8"))
     _number_id_hashes(con)
+
+
+def migrate(con: duckdb.DuckDBPyConnection, project: Project) -> None:
+    """Bring a warehouse written by an earlier release to this release's layout, in one transaction;
+    refuse one written by a later release (its tables may mean something this one does not know)."""
+    row = con.execute("SELECT max(version) FROM schema_version").fetchone()
+    version = row[0] if row and row[0] is not None else None
+    if version is not None and version > SCHEMA_VERSION:
+        raise WarehouseError(f"{project.warehouse}: written by a newer Plimsoll (warehouse layout {version}; "
+                             f"this one reads layout {SCHEMA_VERSION} and earlier); upgrade plimsoll")
+    if version == SCHEMA_VERSION:
+        return
+    con.execute("BEGIN TRANSACTION")
+    try:
+        used = con.execute("SELECT (SELECT count(*) FROM runs) + (SELECT count(*) FROM files_read)").fetchone()[0]
+        if version is None and used:
+            _relative_paths(con, project)
+            _adopt_definitions(con, project)
+        con.execute("DELETE FROM schema_version")
+        con.execute("INSERT INTO schema_version VALUES ($v)", {"v": SCHEMA_VERSION})
+        con.execute("COMMIT")
+    except BaseException:
+        con.execute("ROLLBACK")
+        raise
+
+
+def _relative_paths(con: duckdb.DuckDBPyConnection, project: Project) -> None:
+    """Layout 1 to 2: file paths relative to their source's path, files_read's source named, and
+    remembered session ids given a data time (the source's watermark, so they are kept for a
+    whole dedup_horizon from now)."""
+    env = environment()
+    sources = [{"source_name": s.name, "base": s.base} for s in project.sources.values()]
+    checks = [{"check_name": c.name, "source_name": c.source.name} for c in project.checks.values()]
+    for statement in con.extract_statements(env.get_template("migrate.sql").render()):
+        con.execute(statement.query, {k: {"sources": sources, "checks": checks}[k]
+                                      for k in statement.named_parameters})
+
+
+def _adopt_definitions(con: duckdb.DuckDBPyConnection, project: Project) -> None:
+    """Layout 1 to 2: a check's definition hash covers its compiled SQL, which this release writes
+    differently for unchanged checks; their windows stay valid, so the hash each check has now is
+    taken as the stored one (with its open alerts'), rather than asking for a rebuild of every check."""
+    from .compiler import compile_check
+
+    for check in project.checks.values():
+        stored = con.execute("SELECT definition_hash FROM check_state WHERE check_name = $c",
+                             {"c": check.name}).fetchone()
+        if not stored:
+            continue
+        now = compile_check(check).definition_hash
+        con.execute("UPDATE alerts SET definition_hash = $now WHERE check_name = $c AND status = 'open' "
+                    "AND definition_hash = $old", {"now": now, "c": check.name, "old": stored[0]})
+        con.execute("UPDATE check_state SET definition_hash = $now WHERE check_name = $c",
+                    {"now": now, "c": check.name})
 
 
 def _number_id_hashes(con: duckdb.DuckDBPyConnection) -> None:
