@@ -3,7 +3,8 @@
 {% set g = guard %}
 -- ── stage 5 · breach ───────────────────────────────────────────────────────────────────────
 -- A window breaches when it has a threshold, its {{ "EWMA statistic" if b.method == "ewma" else "value" }} is {{ "above" if check.direction == "up" else "below" }} it, and it passes the guard
--- (at least {{ g.min_sessions }} sessions{% if measure.kind == "rate" %} and {{ g.min_bad }} bad{% endif %}); every other window with a threshold is healthy.
+-- (at least {{ g.min_sessions }} sessions{% if measure.kind == "rate" %} and {{ g.min_bad }} bad{% endif %}); every other window with a threshold and a value is
+-- healthy. A window without a value (a zero denominator, no session with a value) gives no verdict.
 {% if b.confidence %}
 -- confidence {{ b.confidence }}: it also needs the {{ "lower" if check.direction == "up" else "upper" }} end of its Wilson score interval (Wilson 1927)
 -- at that two-sided confidence (z = {{ z_for(b.confidence) }}) beyond the threshold, so a small noisy window cannot:
@@ -15,6 +16,7 @@ SELECT
     *,
     coalesce(
         threshold IS NOT NULL
+        AND value IS NOT NULL
         AND {{ "statistic" if b.method == "ewma" else "value" }} {{ ">" if check.direction == "up" else "<" }} threshold
         AND sessions >= {{ g.min_sessions }}
 {% if measure.kind == "rate" %}

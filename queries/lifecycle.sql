@@ -22,7 +22,8 @@ ordered AS (
     SELECT
         j.key, j.key_text, j.split_value, j.seq, j.window_start, j.window_end, j.value, j.threshold,
         j.bad, j.sessions, j.breach,
-        j.threshold IS NOT NULL AND NOT j.breach AS healthy,
+        -- no verdict without a value (a zero denominator, an empty window): neither healthy nor a breach
+        j.threshold IS NOT NULL AND j.value IS NOT NULL AND NOT j.breach AS healthy,
         coalesce(lag(j.window_end) OVER (PARTITION BY j.key, j.split_value ORDER BY j.seq), l.last_end) AS prev_end,
         o.alert_id IS NOT NULL AS carried,
         coalesce(o.healthy_streak, 0) AS streak0

@@ -12,8 +12,15 @@
 {% macro from_map(expr, by) -%}
 {% if by %}{{ '{' }}{% for col in by %}{{ col | literal }}: {{ expr }}[{{ col | literal }}]{{ ", " if not loop.last }}{% endfor %}{{ '}' }}{% else %}''{% endif %}
 {%- endmacro %}
+{#- A key as text, `site=kids, title_id=t-1187`: one text per key and one key per text. A value of
+    letters, digits and _.:/@+- is written as it is; any other (spaces, commas, quotes, '=', the
+    empty text) in double quotes with \ and " escaped; a NULL as <null>, which no written value
+    can be. -#}
 {% macro key_text(expr, by) -%}
-{% if by %}{% for col in by %}{{ (col ~ "=") | literal }} || coalesce(struct_extract({{ expr }}, {{ col | literal }}), '<null>'){{ " || ', ' || " if not loop.last }}{% endfor %}{% else %}''{% endif %}
+{% if by %}{% for col in by %}{{ (col ~ "=") | literal }} || {{ key_value("struct_extract(" ~ expr ~ ", " ~ (col | literal) ~ ")") }}{{ " || ', ' || " if not loop.last }}{% endfor %}{% else %}''{% endif %}
+{%- endmacro %}
+{% macro key_value(v) -%}
+CASE WHEN {{ v }} IS NULL THEN '<null>' WHEN regexp_matches({{ v }}, '^[\p{L}\p{N}_.:/@+-]+$') THEN {{ v }} ELSE '"' || replace(replace({{ v }}, '\', '\\'), '"', '\"') || '"' END
 {%- endmacro %}
 {#- An md5 in hex (the digest's 16 bytes in order, as Spark and md5() give it) as md5_number's
     value: the same bytes read as a little-endian 128-bit number. -#}
@@ -34,4 +41,9 @@ greatest(0.0, (({{ x }}) / ({{ n }}) + ({{ z }}) ^ 2 / (2 * ({{ n }})) - ({{ z }
 {%- endmacro %}
 {% macro wilson_upper(x, n, z) -%}
 least(1.0, (({{ x }}) / ({{ n }}) + ({{ z }}) ^ 2 / (2 * ({{ n }})) + ({{ z }}) * sqrt((({{ x }}) / ({{ n }})) * (1 - ({{ x }}) / ({{ n }})) / ({{ n }}) + ({{ z }}) ^ 2 / (4 * ({{ n }}) ^ 2))) / (1 + ({{ z }}) ^ 2 / ({{ n }})))
+{%- endmacro %}
+{#- x ÷ w rounded down, for a window's number: times before 1970 are negative and must fall in the
+    window they belong to (integer division alone rounds toward zero). -#}
+{% macro floor_div(x, w) -%}
+({{ x }} - (({{ x }}) % {{ w }} + {{ w }}) % {{ w }}) // {{ w }}
 {%- endmacro %}

@@ -45,8 +45,8 @@ SELECT {{ check_lit }} AS check_name, current AS watermark, $definition AS defin
 FROM clock;
 
 INSERT INTO files_read BY NAME
-SELECT {{ check_lit }} AS check_name, f.path, f.size, f.modified_at, $run_id AS run_id,
-       coalesce(n.rows, 0) AS rows
+SELECT {{ check_lit }} AS check_name, {{ check.source.name | literal }} AS source_name, f.path, f.size,
+       f.modified_at, $run_id AS run_id, coalesce(n.rows, 0) AS rows, coalesce(n.invalid_rows, 0) AS invalid_rows
 FROM (SELECT unnest($manifest, recursive := true)) AS f
 LEFT JOIN lake_file_rows AS n ON n.path = f.path;
 
@@ -55,7 +55,10 @@ SELECT
     $run_id AS run_id, {{ check_lit }} AS check_name,
     len($manifest) AS files_read,
     c.rows_read, c.rows_invalid, c.rows_excluded, c.rows_filtered, c.duplicate_rows,
-    (SELECT late_rows FROM window_counts) AS late_rows,
+    -- late for its window, or by more than dedup_horizon behind the data already read
+    (SELECT late_rows FROM window_counts) + c.beyond_horizon AS late_rows,
+    c.beyond_horizon,
+    c.nonfinite_values,
     (SELECT count(*) FROM judged) AS windows_written,
     (SELECT count(*) FROM judged WHERE breach) AS breach_windows,
     (SELECT count(*) FROM event_rows WHERE event = 'opened') AS alerts_opened,

@@ -1,34 +1,72 @@
 {% import "macros.sql" as m %}
 -- ── stage 1 · scan ─────────────────────────────────────────────────────────────────────────
 -- The check's sessions: not excluded{% if check.where %}, matching its `where`{% endif %}; its key and measure inputs.
+{% if measure.kind != "rate" %}
+-- A measure input that is NaN or ±infinity is missing (NULL), and counted: it would compare
+-- beyond every threshold.
+{% endif %}
 -- A view: the window stage reads it once.
 CREATE OR REPLACE TEMP VIEW arrivals AS
 SELECT
-    __session_id AS session_id,
-    __event_time AS event_time,
-    {{ m.key_struct(check.by) }} AS key,
+    session_id,
+    event_time,
+    key,
 {% if measure.kind == "rate" %}
-    coalesce({{ measure.bad.sql }}, false) AS is_bad,
-    {% if measure.split %}{{ measure.split | ident }}::VARCHAR{% else %}NULL::VARCHAR{% endif %} AS split_value
+    is_bad,
+    split_value,
+    NOT finite AS nonfinite
 {% elif measure.kind == "ratio" %}
-    ({{ measure.numerator.sql }})::DOUBLE AS num,
-    ({{ measure.denominator.sql }})::DOUBLE AS den
-{% elif measure.kind == "quantile" %}
-    ({{ measure.of.sql }})::DOUBLE AS x
+    CASE WHEN finite THEN num END AS num,
+    CASE WHEN finite THEN den END AS den,
+    NOT finite AS nonfinite
+{% else %}
+    CASE WHEN finite THEN x END AS x,
+    NOT finite AS nonfinite
 {% endif %}
-FROM lake_sessions
-WHERE NOT __excluded{% if check.where %} AND coalesce({{ check.where.sql }}, false){% endif %};
+FROM (
+    SELECT
+        *,
+{% if measure.kind == "ratio" %}
+        coalesce(isfinite(num) AND isfinite(den), true) AS finite
+{% elif measure.kind == "quantile" %}
+        coalesce(isfinite(x), true) AS finite
+{% else %}
+        true AS finite
+{% endif %}
+    FROM (
+        SELECT
+            __session_id AS session_id,
+            __event_time AS event_time,
+            {{ m.key_struct(check.by) }} AS key,
+{% if measure.kind == "rate" %}
+            coalesce({{ measure.bad.sql }}, false) AS is_bad,
+            {% if measure.split %}{{ measure.split | ident }}::VARCHAR{% else %}NULL::VARCHAR{% endif %} AS split_value
+{% elif measure.kind == "ratio" %}
+            ({{ measure.numerator.sql }})::DOUBLE AS num,
+            ({{ measure.denominator.sql }})::DOUBLE AS den
+{% elif measure.kind == "quantile" %}
+            ({{ measure.of.sql }})::DOUBLE AS x
+{% endif %}
+        FROM lake_sessions
+        WHERE NOT __excluded{% if check.where %} AND coalesce({{ check.where.sql }}, false){% endif %}
 
--- The watermark: the largest event time read by this check so far, this run's files included.
+    )
+);
+
+-- The watermark: the largest sane event time read by this check so far, this run's files included;
+-- when a backlog is read in several runs, no later than the earliest session still unread
+-- (read_until), so nothing still to come lands in a window already closed.
 CREATE OR REPLACE TEMP TABLE clock AS
 SELECT
     prior.watermark AS previous,
-    greatest(prior.watermark, (SELECT latest FROM lake_counts)) AS current
-FROM (SELECT (SELECT watermark FROM check_state WHERE check_name = {{ check.name | literal }}) AS watermark) AS prior;
+    greatest(prior.watermark, least(c.latest, coalesce((SELECT read_until FROM read_limits), c.latest))) AS current
+FROM (SELECT (SELECT watermark FROM check_state WHERE check_name = {{ check.name | literal }}) AS watermark) AS prior,
+     lake_counts AS c;
 
 CREATE OR REPLACE TEMP TABLE scan_counts AS
 SELECT
-    c.rows_read, c.rows_invalid, c.duplicate_rows, c.rows_excluded,
-    c.rows_read - c.rows_invalid - c.duplicate_rows - c.rows_excluded - a.rows_kept AS rows_filtered,
-    a.rows_kept
-FROM lake_counts AS c, (SELECT count(*) AS rows_kept FROM arrivals) AS a;
+    c.rows_read, c.rows_invalid, c.duplicate_rows, c.rows_excluded, c.beyond_horizon,
+    c.rows_read - c.rows_invalid - c.duplicate_rows - c.beyond_horizon - c.rows_excluded - a.rows_kept AS rows_filtered,
+    a.rows_kept,
+    a.nonfinite_values
+FROM lake_counts AS c, (SELECT count(*) AS rows_kept, count(*) FILTER (WHERE nonfinite) AS nonfinite_values FROM arrivals) AS a;

@@ -19,18 +19,24 @@ CREATE OR REPLACE TEMP TABLE pooled AS
 SELECT
     p.*,
     row_number() OVER in_order - 1 AS i,
-    -- a window starting here cannot fill: fewer than N sessions left, or the N-th is too late
-    coalesce(lead(p.event_time, {{ window.sessions - 1 }}) OVER in_order > p.event_time + {{ window.max_wait | interval }}, true) AS is_cut
+    -- a window starting here cannot fill: fewer than N sessions left, or the N-th is too late, or
+    -- it is held: a backlog read in several runs holds the sessions at or after read_until until the
+    -- earlier ones still unread have been read, so windows fill in the order one run fills them
+    coalesce(lead(p.event_time, {{ window.sessions - 1 }}) OVER in_order > p.event_time + {{ window.max_wait | interval }}
+             OR lead(p.held, {{ window.sessions - 1 }}) OVER in_order, true) AS is_cut
 FROM (
-    SELECT {{ m.from_map("key", check.by) }} AS key, event_time, session_id, {{ m.inputs(measure) }}, false AS late
-    FROM carry
-    WHERE check_name = {{ check_lit }}
-    UNION ALL
-    -- late: earlier than the end of a window already closed for the series; it joins the open window
-    SELECT a.key, a.event_time, a.session_id, {% for c in m.inputs(measure).split(", ") %}a.{{ c }}, {% endfor %}
-           coalesce(a.event_time < s.last_end, false) AS late
-    FROM arrivals AS a
-    LEFT JOIN series_last AS s ON s.key = a.key
+    SELECT *, coalesce(event_time >= (SELECT read_until FROM read_limits), false) AS held
+    FROM (
+        SELECT {{ m.from_map("key", check.by) }} AS key, event_time, session_id, {{ m.inputs(measure) }}, false AS late
+        FROM carry
+        WHERE check_name = {{ check_lit }}
+        UNION ALL
+        -- late: earlier than the end of a window already closed for the series; it joins the open window
+        SELECT a.key, a.event_time, a.session_id, {% for c in m.inputs(measure).split(", ") %}a.{{ c }}, {% endfor %}
+               coalesce(a.event_time < s.last_end, false) AS late
+        FROM arrivals AS a
+        LEFT JOIN series_last AS s ON s.key = a.key
+    )
 ) AS p
 WINDOW in_order AS (PARTITION BY p.key ORDER BY p.event_time, p.session_id);
 
@@ -114,7 +120,7 @@ LEFT JOIN series_last AS s ON s.key = w.key;
 
 -- A view: the measure stage reads it once.
 CREATE OR REPLACE TEMP VIEW window_sessions AS
-SELECT p.* EXCLUDE (i, is_cut, w0), w.seq, w.window_start, w.window_end
+SELECT p.* EXCLUDE (i, is_cut, held, w0), w.seq, w.window_start, w.window_end
 FROM placed AS p
 JOIN closed_windows AS w ON w.key = p.key AND w.w0 = p.w0;
 
@@ -132,9 +138,9 @@ SELECT count(*) FILTER (WHERE late) AS late_rows FROM pooled;
 CREATE OR REPLACE TEMP VIEW stamped AS
 SELECT
     p.*,
-    epoch_us(p.event_time) // {{ width }} AS seq,
-    make_timestamp(epoch_us(p.event_time) // {{ width }} * {{ width }}) AS window_start,
-    make_timestamp(epoch_us(p.event_time) // {{ width }} * {{ width }} + {{ width }}) AS window_end
+    {{ m.floor_div("epoch_us(p.event_time)", width) }} AS seq,
+    make_timestamp({{ m.floor_div("epoch_us(p.event_time)", width) }} * {{ width }}) AS window_start,
+    make_timestamp({{ m.floor_div("epoch_us(p.event_time)", width) }} * {{ width }} + {{ width }}) AS window_end
 FROM (
     SELECT {{ m.from_map("key", check.by) }} AS key, event_time, session_id, {{ m.inputs(measure) }}
     FROM carry

@@ -102,7 +102,17 @@ def as_text(value: Any) -> str | None:
 
 
 def key_text(by: tuple[str, ...], values: tuple[str | None, ...]) -> str:
-    return ", ".join(f"{c}={'<null>' if v is None else v}" for c, v in zip(by, values))
+    return ", ".join(f"{c}={key_value(v)}" for c, v in zip(by, values))
+
+
+def key_value(value: str | None) -> str:
+    """One key value as key_text writes it: plain when it is letters, digits and _.:/@+- only,
+    otherwise in double quotes with backslash and quote escaped; NULL as <null>."""
+    if value is None:
+        return "<null>"
+    if value and all(ch.isalpha() or ch.isnumeric() or ch in "_.:/@+-" for ch in value):
+        return value
+    return '"' + value.replace("\\", "\\\\").replace('"', '\\"') + '"'
 
 
 def alert_hash(check: str, by: tuple[str, ...], values: tuple[str | None, ...], split: str | None,
@@ -313,7 +323,8 @@ def lifecycle(check: OracleCheck, series: list[Row], w: datetime, ident: dict[st
         end = win["window_end"]
         if current is not None and end > prev_end + x:
             close("expired", prev_end + x)
-        healthy = win["threshold"] is not None and not win["breach"]
+        # no verdict without a value (a zero denominator, an empty window): neither healthy nor a breach
+        healthy = win["threshold"] is not None and win["value"] is not None and not win["breach"]
         if win["breach"]:
             affected = win["bad"] if check.kind == "rate" else win["sessions"]
             if current is not None:

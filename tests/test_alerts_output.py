@@ -10,6 +10,7 @@ import pytest
 from click.testing import CliRunner
 
 from known_lake import HOSTILE, known_project
+from oracle import key_value
 from toolkit.cli import main
 from toolkit.outputs import alerts_table
 
@@ -27,10 +28,10 @@ def project(tmp_path: Path) -> Path:
 
 
 TABLE = """\
-status              severity  check         key                                            split  opened            windows  affected  per hour
-------------------  --------  ------------  ---------------------------------------------  -----  ----------------  -------  --------  --------
-open                high      title_errors  site=kids, title_id=<script>alert(1)</script>         2026-11-02 00:59  1        8         53
-closed (recovered)  high      title_errors  site=kids, title_id=t-1                               2026-11-02 00:49  2        13        41
+status              severity  check         key                                              split  opened            windows  affected  per hour
+------------------  --------  ------------  -----------------------------------------------  -----  ----------------  -------  --------  --------
+open                high      title_errors  site=kids, title_id="<script>alert(1)</script>"         2026-11-02 00:59  1        8         53
+closed (recovered)  high      title_errors  site=kids, title_id=t-1                                 2026-11-02 00:49  2        13        41
 """
 
 
@@ -45,10 +46,10 @@ def test_alerts_table_filters(project: Path) -> None:
         lines = invoke("alerts", *args, "-p", str(project)).output.splitlines()
         return [line.split("title_errors")[1].split("  ")[1] for line in lines[2:]]
 
-    assert keys("--status", "open") == [f"site=kids, title_id={HOSTILE}"]
+    assert keys("--status", "open") == [f"site=kids, title_id={key_value(HOSTILE)}"]
     assert keys("--status", "closed") == ["site=kids, title_id=t-1"]
-    assert keys("--since", "2026-11-02 00:50:00") == [f"site=kids, title_id={HOSTILE}"]
-    assert keys("--check", "title_errors", "--status", "all") == [f"site=kids, title_id={HOSTILE}",
+    assert keys("--since", "2026-11-02 00:50:00") == [f"site=kids, title_id={key_value(HOSTILE)}"]
+    assert keys("--check", "title_errors", "--status", "all") == [f"site=kids, title_id={key_value(HOSTILE)}",
                                                                   "site=kids, title_id=t-1"]
     other = invoke("alerts", "--check", "no_such_check", "-p", str(project))
     assert other.exit_code == 0 and other.output == "no alerts\n"
@@ -62,7 +63,7 @@ def test_alerts_json_is_exact(project: Path) -> None:
     ids = dict(con.execute("SELECT key_text, alert_id FROM alerts").fetchall())
     prints = dict(con.execute("SELECT key_text, fingerprint FROM alerts").fetchall())
     con.close()
-    hostile_key = f"site=kids, title_id={HOSTILE}"
+    hostile_key = f"site=kids, title_id={key_value(HOSTILE)}"
     assert data == [
         {
             "alert_id": ids[hostile_key], "status": "open", "severity": "high", "check_name": "title_errors",

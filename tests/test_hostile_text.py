@@ -18,6 +18,7 @@ import pytest
 import yaml
 from click.testing import CliRunner
 from conftest import PLAIN_PROJECT, write_project, write_rows
+from oracle import key_value
 
 from toolkit.cli import main
 from toolkit.compiler import compile_check
@@ -102,14 +103,16 @@ def test_hostile_keys_and_split_values_are_stored_exactly(ran: Path) -> None:
     expected = {(title, HOSTILE[(t + 1) % len(HOSTILE)]) for t, title in enumerate(HOSTILE)}
     assert got == expected
     for key, _, text in alerts:
-        assert text == f"{KEY_COLUMN}={key[KEY_COLUMN]}"
+        assert text == f"{KEY_COLUMN}={key_value(key[KEY_COLUMN])}"
+    # distinct keys print distinctly: a NULL, the text '<null>', a value holding ', site='
+    assert len({text for _, _, text in alerts}) == len(alerts)
 
 
 def test_listings_show_hostile_text_exactly(ran: Path) -> None:
     result = CliRunner().invoke(main, ["alerts", "-p", str(ran), "--json"])
     assert result.exit_code == 0, result.output
     shown = json.loads(result.output)
-    assert sorted(a["key_text"] for a in shown) == sorted(f"{KEY_COLUMN}={t}" for t in HOSTILE)
+    assert sorted(a["key_text"] for a in shown) == sorted(f"{KEY_COLUMN}={key_value(t)}" for t in HOSTILE)
     assert sorted(a["split_value"] for a in shown) == sorted(HOSTILE)
     table = CliRunner().invoke(main, ["alerts", "-p", str(ran)])
     assert table.exit_code == 0 and "DROP TABLE alerts" in table.output

@@ -36,7 +36,8 @@ def write_lake(folder: Path, windows: list[tuple[str, int, int]], hours_apart: i
         for i in range(n):
             at = START + timedelta(hours=h, seconds=i + 1)
             rows.append((f"{series}-{h}-{i}", at, series, "E" if i < bad else None))
-    rows.append(("closer", START + timedelta(days=60), "closer", None))
+    # a later session that closes every window (data time: weeks after, still before the file was written)
+    rows.append(("closer", START + timedelta(days=20), "closer", None))
     return write_rows(folder / "lake", "session_id VARCHAR, ended_at TIMESTAMP, series VARCHAR, error_code VARCHAR",
                       rows)
 
@@ -147,7 +148,7 @@ def ewma_windows(folder: Path, direction: str, batches: int = 1) -> list[tuple]:
     folder.mkdir(parents=True, exist_ok=True)
     lake = folder / "lake"
     rows = [(f"s{i}", START + timedelta(hours=i, minutes=5), "a", x) for i, x in enumerate(EWMA_DATA)]
-    rows.append(("closer", datetime(2027, 1, 1), "b", 0.0))
+    rows.append(("closer", datetime(2026, 11, 20), "b", 0.0))
     check = f"""\
 check: ew
 source: sessions

@@ -123,11 +123,20 @@ def run(project_file: Path, checks: tuple[str, ...], full_refresh: bool, wait: f
         result = run_checks(project, list(checks), full_refresh, progress, wait=wait)
     for change in result.changed_files:
         click.echo(f"warning: lake file changed after it was read; not read again: {change}", err=True)
+    for warning in result.warnings:
+        click.echo(f"warning: {warning}", err=True)
+    closed = sum(c.alerts_closed for c in result.checks)
     click.echo(
-        f"{_runs(result)}: {result.files_read} new files, "
-        f"{sum(c.windows_written for c in result.checks)} windows, "
-        f"{result.alerts_opened} alerts opened, {sum(c.alerts_closed for c in result.checks)} closed"
+        f"{_runs(result)}: {_plural(result.files_read, 'new file')}, "
+        f"{_plural(sum(c.windows_written for c in result.checks), 'window')}, "
+        f"{_plural(result.alerts_opened, 'alert')} opened, {closed} closed"
+        + (f"; WARNING: {len(result.warnings)} (see above)" if result.warnings else "")
+        + (f"; {_plural(len(result.skipped), 'changed check')} not run" if result.skipped else "")
     )
+    for problem in result.skipped:
+        click.echo(str(problem), err=True)
+    if result.skipped:
+        sys.exit(2)
 
 
 @main.command()
@@ -228,6 +237,11 @@ def backtest(checks: tuple[str, ...], project_file: Path, start: datetime, end: 
     with _Progress() as progress:
         outcome = replay(project, list(checks), start, end, compared, labels, keep, progress)
     click.echo(backtest_json(outcome) if as_json else backtest_table(outcome))
+
+
+def _plural(n: int, noun: str) -> str:
+    """'1 alert', '2 alerts'."""
+    return f"{n:,} {noun}{'' if n == 1 else 's'}"
 
 
 def _runs(result: RunResult) -> str:

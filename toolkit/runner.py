@@ -21,12 +21,15 @@ from dataclasses import dataclass, field
 from datetime import datetime, timezone
 from typing import Any
 
+import re
+
 import duckdb
 
 from . import lake, spark_engine, warehouse
 from .compiler import CompiledCheck, Statement, columns_read, compile_check, compile_source, statement_kind
 from .model import Check, Project, Source
-from .problems import DataError, PlimsollError, Problem, ProjectInvalid, engine_message
+from .problems import DataError, PlimsollError, Problem, ProjectInvalid, WarehouseError, engine_message
+from .sqltext import interval
 
 Progress = Callable[[str], None]
 
@@ -64,6 +67,8 @@ class RunResult:
     changed_files: list[str] = field(default_factory=list)
     first_run_id: int | None = None   # when one call made several runs (a backlog): the first
     more: bool = False                # files were left for a next run (max_read_per_run)
+    skipped: list[Problem] = field(default_factory=list)  # changed checks not run: each needs a rebuild
+    warnings: list[str] = field(default_factory=list)     # what a scheduler's log should show
 
     @property
     def files_read(self) -> int:
@@ -91,10 +96,12 @@ def run(project: Project, names: list[str] | None = None, full_refresh: bool = F
     on failure after rolling back the failing run.
 
     One run reads at most ``max_read_per_run`` of Parquet per check, so a long backlog (a first run
-    over a year of lake) is read by several runs in turn, each committed on its own: memory and
-    spill space stay bounded, and what the committed runs read is never read again. Waits up to
-    ``wait`` seconds for another run to release the warehouse. After every run (failed or not) the
-    tables analysts read are published as Parquet beside the warehouse.
+    over a year of lake) is read by several runs in turn, each committed on its own, in data-time
+    order: memory and spill space stay bounded, and what the committed runs read is never read
+    again. A check whose definition changed since its windows were computed is skipped (it needs a
+    rebuild) while the others run; the result lists it. Waits up to ``wait`` seconds for another
+    run to release the warehouse. After every run (failed or not) the tables analysts read are
+    published as Parquet beside the warehouse.
     """
     checks = select_checks(project, names)
     compiled = [compile_check(c) for c in checks]
@@ -103,6 +110,14 @@ def run(project: Project, names: list[str] | None = None, full_refresh: bool = F
     con = warehouse.connect(project, wait=wait)
     done: list[RunResult] = []
     try:
+        changed = {} if full_refresh else _changed(con, checks, compiled)
+        skipped = list(changed.values())
+        if skipped and len(skipped) == len(checks):
+            raise ProjectInvalid(skipped)
+        chosen = [(c, s) for c, s in zip(checks, compiled) if c.name not in changed]
+        checks, compiled = [c for c, _ in chosen], [s for _, s in chosen]
+        for problem in skipped:
+            say(f"skipped: {problem}")
         while True:
             run_id = int(con.execute("SELECT coalesce(max(run_id), 0) + 1 FROM runs").fetchone()[0])
             with warehouse.claimed(project, run_id, [c.name for c in checks]):
@@ -111,14 +126,27 @@ def run(project: Project, names: list[str] | None = None, full_refresh: bool = F
                 except PlimsollError:
                     _publish_quietly(con, project)
                     raise
-                warehouse.publish(con, project)
+                _publish(con, project, run_id)
             done.append(result)
             if not result.more:
-                return _together(done)
+                outcome = _together(done)
+                outcome.skipped = skipped
+                return outcome
             say(f"run {run_id} read {result.files_read} files, up to max_read_per_run; "
                 "the next run reads on from there")
     finally:
         con.close()
+
+
+def _publish(con: duckdb.DuckDBPyConnection, project: Project, run_id: int) -> None:
+    """Publish a committed run's tables; a failure says the run itself is safe."""
+    try:
+        warehouse.publish(con, project)
+    except (duckdb.Error, OSError) as err:
+        raise WarehouseError(
+            f"run {run_id} is committed, but the copies readers use while a run holds the warehouse could "
+            f"not be written to {warehouse.snapshot_folder(project)}: {engine_message(err)}; the next run "
+            "writes them again") from None
 
 
 def _together(runs: list[RunResult]) -> RunResult:
@@ -133,14 +161,13 @@ def _together(runs: list[RunResult]) -> RunResult:
                 setattr(total, name, getattr(total, name) + getattr(c, name))
     return RunResult(runs[-1].run_id, runs[-1].status, list(by_check.values()),
                      distinct_files=sum(r.distinct_files for r in runs),
-                     changed_files=[f for r in runs for f in r.changed_files], first_run_id=runs[0].run_id)
+                     changed_files=[f for r in runs for f in r.changed_files], first_run_id=runs[0].run_id,
+                     warnings=[w for r in runs for w in r.warnings])
 
 
 def _run(con: duckdb.DuckDBPyConnection, project: Project, run_id: int, checks: list[Check],
          compiled: list[CompiledCheck], full_refresh: bool, progress: Progress, budget: int) -> RunResult:
     started = _now()
-    if not full_refresh:
-        _refuse_changed(con, checks, compiled)
     listings: dict[str, list[lake.LakeFile]] = {}
     result = RunResult(run_id, "ok")
     # what each source scan of this run read: the run record counts rows once per scan
@@ -158,44 +185,88 @@ def _run(con: duckdb.DuckDBPyConnection, project: Project, run_id: int, checks: 
         for change in result.changed_files:
             progress(f"changed after it was read, not read again: {change}")
         for group in groups:
-            new_files = group[0][2]
+            new_files = group.files
             if new_files:
-                source = group[0][0].source
-                progress(f"source {source.name}: reading {len(new_files)} new files for {len(group)} checks")
-                readers = [check for check, _, _ in group]
-                lake.check_new_files(con, source.name, [f.path for f in new_files],
-                                     _needed_columns(source, readers), [c.name for c in readers],
-                                     source.storage)
-                source_stage = compile_source([check for check, _, _ in group])
-                params = _params(new_files, run_id, "", group[0][0].name)
+                source = group.checks[0][0].source
+                readers = [check for check, _ in group.checks]
+                progress(f"source {source.name}: reading {_plural(len(new_files), 'new file')} for "
+                         f"{_plural(len(readers), 'check')}")
+                lake.check_new_files(con, source, new_files, _needed_columns(source, readers),
+                                     [c.name for c in readers])
+                source_stage = compile_source(readers)
+                params = _params(project, new_files, run_id, "", readers[0].name, group.read_until, source)
                 _run_stage(con, stages, f"source {source.name}", "source", source_stage.once, params)
                 con.execute("INSERT INTO run_scans SELECT rows_read, rows_invalid, duplicate_rows, "
                             "rows_excluded FROM lake_counts")
-            for check, sql, files in group:
+                result.warnings += _impossible_times(con, source)
+            for check, sql in group.checks:
                 step = f"[{len(result.checks) + 1}/{len(checks)}] {check.name}"
                 progress(f"{step} …")
-                result.checks.append(_run_check(con, stages, check, sql, files, run_id))
+                params = _params(project, new_files, run_id, sql.definition_hash, check.name, group.read_until,
+                                 check.source)
+                result.checks.append(_run_check(con, stages, check, sql, new_files, params))
                 done = result.checks[-1]
-                progress(f"{step}: {done.files_read} files, {done.windows_written} windows, "
+                progress(f"{step}: {_plural(done.files_read, 'file')}, {_plural(done.windows_written, 'window')}, "
                          f"alerts opened {done.alerts_opened}, closed {done.alerts_closed}")
-        _record(con, run_id, started, [c.name for c in checks], full_refresh, "ok", None)
+        repeats = _mostly_repeats(con)
+        if repeats:
+            result.warnings.append(repeats)
+        _record(con, run_id, started, [c.name for c in checks], full_refresh, "ok", None, repeats)
         result.distinct_files = int(con.execute(
-            "SELECT count(DISTINCT path) FROM files_read WHERE run_id = $r", {"r": run_id}).fetchone()[0])
+            "SELECT count(DISTINCT (source_name, path)) FROM files_read WHERE run_id = $r", {"r": run_id}).fetchone()[0])
         con.execute("COMMIT")
     except BaseException as err:
-        con.execute("ROLLBACK")
         _close(stages)
+        stages = None
         message = err.args[0] if isinstance(err, PlimsollError) and err.args else _engine_message(err)
+        try:
+            con.execute("ROLLBACK")
+        except duckdb.Error:
+            pass
         if isinstance(err, (KeyboardInterrupt, SystemExit)):
             raise
-        con.execute("BEGIN TRANSACTION")
-        _record(con, run_id, started, [c.name for c in checks], full_refresh, "failed", str(message))
-        con.execute("COMMIT")
+        try:
+            con.execute("BEGIN TRANSACTION")
+            _record(con, run_id, started, [c.name for c in checks], full_refresh, "failed", str(message), None)
+            con.execute("COMMIT")
+        except duckdb.Error as record_err:
+            raise WarehouseError(f"{message} (and the failed run could not be recorded: "
+                                 f"{_engine_message(record_err)})") from err
         if isinstance(err, PlimsollError):
             raise
         raise DataError(str(message)) from err
-    _close(stages)
+    finally:
+        _close(stages)
     return result
+
+
+def _plural(n: int, noun: str) -> str:
+    """'1 file', '2 files'."""
+    return f"{n:,} {noun}{'' if n == 1 else 's'}"
+
+
+def _impossible_times(con: duckdb.DuckDBPyConnection, source: Source) -> list[str]:
+    """A warning per file that held sessions with an impossible event time (counted as invalid)."""
+    rows = con.execute("SELECT path, insane_times FROM lake_file_rows WHERE insane_times > 0 ORDER BY path").fetchall()
+    return [f"source {source.name}: {path}: {_plural(n, 'session')} with an impossible event time (not finite, or "
+            f"more than max_future {interval(source.max_future).removeprefix('INTERVAL ').lower()} after the file "
+            "was written) counted as invalid" for path, n in rows]
+
+
+# A run whose sessions were mostly repeats of sessions already counted: the lake was probably copied,
+# moved or re-sent, which deserves more than a count in the run record.
+REPEATS_SHARE = 0.5
+REPEATS_MIN = 100
+
+
+def _mostly_repeats(con: duckdb.DuckDBPyConnection) -> str | None:
+    valid, repeats = con.execute(
+        "SELECT coalesce(sum(rows_read - rows_invalid), 0), coalesce(sum(duplicate_rows), 0) FROM run_scans"
+    ).fetchone()
+    if valid < REPEATS_MIN or repeats <= REPEATS_SHARE * valid:
+        return None
+    return (f"{repeats:,} of the {valid:,} sessions read ({100 * repeats / valid:.0f} %) repeat sessions already "
+            "counted and were left out: was the lake copied, moved or sent again? Nothing was counted twice")
 
 
 def _stage_connection(con: duckdb.DuckDBPyConnection, project: Project, compiled: list[CompiledCheck],
@@ -218,25 +289,40 @@ def _close(stages: duckdb.DuckDBPyConnection | None) -> None:
 def _run_stage(con: duckdb.DuckDBPyConnection, stages: duckdb.DuckDBPyConnection | None, who: str,
                stage: str, statements: tuple[Statement, ...], params: dict[str, Any]) -> None:
     """One stage's statements that run once; on the stage connection if there is one and the stage
-    is one of its, with the warehouse's writes made in the transaction from a stream of its rows."""
+    is one of its, with the warehouse's writes made in the transaction (from a stream of the stage
+    connection's rows where the write reads them)."""
     if stages is None or stage not in STAGE_CONNECTION_STAGES:
         for statement in statements:
             _execute(con, who, stage, statement, params)
         return
     for statement in statements:
-        if _writes_warehouse(statement):
-            warehouse.finish_pending(stages)
-            warehouse.finish_pending(con)
-            reader = stages.sql(f"SELECT * FROM {STREAMED}").to_arrow_reader(STREAM_BATCH)
-            con.register(STREAMED, reader)
-            try:
-                _execute(con, who, stage, statement, params)
-            finally:
-                con.unregister(STREAMED)
-        else:
+        if not _writes_warehouse(statement):
             _execute(stages, who, stage, statement, params)
+        elif re.search(rf"\b{STREAMED}\b", statement.sql):
+            _execute_streamed(con, stages, who, stage, statement, params)
+        else:
+            _execute(con, who, stage, statement, params)
     for table in MOVED_AFTER.get(stage, ()):
         _move(stages, con, table)
+
+
+def _execute_streamed(con: duckdb.DuckDBPyConnection, stages: duckdb.DuckDBPyConnection, who: str,
+                      stage: str, statement: Statement, params: dict[str, Any]) -> None:
+    """A write in the transaction that reads the stage connection's ``kept_ids`` as a stream.
+
+    The stream is closed whatever the write read of it: a write that needs none of its rows stops
+    early, and a stream left open would refuse every later query on the stage connection.
+    """
+    warehouse.finish_pending(stages)
+    warehouse.finish_pending(con)
+    reader = stages.sql(f"SELECT * FROM {STREAMED}").to_arrow_reader(STREAM_BATCH)
+    con.register(STREAMED, reader)
+    try:
+        _execute(con, who, stage, statement, params)
+    finally:
+        con.unregister(STREAMED)
+        reader.close()
+        warehouse.finish_pending(stages)
 
 
 def _writes_warehouse(statement: Statement) -> bool:
@@ -258,7 +344,7 @@ def _move(source: duckdb.DuckDBPyConnection, target: duckdb.DuckDBPyConnection, 
 
 def _needed_columns(source: Source, checks: list[Check]) -> list[str]:
     """Every source column the source stage reads for these checks."""
-    names = [source.session_id, source.event_time, *(source.exclude.columns if source.exclude else ()),
+    names = [source.session_id, *source.time_columns, *(source.exclude.columns if source.exclude else ()),
              *columns_read(checks)]
     return list(dict.fromkeys(names))
 
@@ -271,23 +357,23 @@ def _publish_quietly(con: duckdb.DuckDBPyConnection, project: Project) -> None:
         pass
 
 
-def _refuse_changed(con: duckdb.DuckDBPyConnection, checks: list[Check], compiled: list[CompiledCheck]) -> None:
-    """A check whose windows or baseline would now be computed differently needs a full refresh.
+def _changed(con: duckdb.DuckDBPyConnection, checks: list[Check],
+             compiled: list[CompiledCheck]) -> dict[str, Problem]:
+    """Checks whose windows or baseline would now be computed differently: each needs a rebuild.
 
-    Carrying on would mix windows of two definitions in one series' history, so the run refuses
-    (before writing anything) and says what to do.
+    Carrying on would mix windows of two definitions in one series' history, so such a check is
+    not run (the others are) until it is rebuilt or the change undone.
     """
     stored = dict(con.execute("SELECT check_name, definition_hash FROM check_state").fetchall())
-    problems = [
-        Problem(check.file, check.line,
-                f"check {check.name} has changed since its windows were computed (definition "
-                f"{stored[check.name]} -> {sql.definition_hash}); run `plimsoll run --check {check.name} "
-                "--full-refresh` to rebuild it from the lake, or undo the change")
+    return {
+        check.name: Problem(
+            check.file, check.line,
+            f"check {check.name} was not run: it has changed since its windows were computed (definition "
+            f"{stored[check.name]} -> {sql.definition_hash}); run `plimsoll run --check {check.name} "
+            "--full-refresh` to rebuild it from the lake, or undo the change")
         for check, sql in zip(checks, compiled)
         if stored.get(check.name) not in (None, sql.definition_hash)
-    ]
-    if problems:
-        raise ProjectInvalid(problems)
+    }
 
 
 def _retire_removed(con: duckdb.DuckDBPyConnection, project: Project, run_id: int, progress: Progress) -> None:
@@ -303,6 +389,11 @@ def _retire_removed(con: duckdb.DuckDBPyConnection, project: Project, run_id: in
         closed = _close_alerts(con, name, run_id, "check removed", None)
         progress(f"check {name}: no longer in the project; {closed} open alerts closed as 'check removed'")
         _drop_state(con, name)
+    # a source gone from the project: its recorded column types and remembered ids go too, so a
+    # source added later under the same name starts afresh
+    sources = sorted(project.sources)
+    for table in ("source_columns", "session_ids"):
+        con.execute(f"DELETE FROM {table} WHERE NOT list_contains($s, source_name)", {"s": sources})
 
 
 def _close_alerts(con: duckdb.DuckDBPyConnection, name: str, run_id: int, reason: str,
@@ -330,7 +421,8 @@ def _drop_state(con: duckdb.DuckDBPyConnection, name: str) -> None:
     for table in ("windows", "key_windows", "carry", "key_state", "check_state", "files_read"):
         con.execute(f"DELETE FROM {table} WHERE check_name = $c", {"c": name})
     # ids of files no check has read any more are forgotten too: a re-read records them again
-    con.execute("DELETE FROM session_ids WHERE first_path NOT IN (SELECT path FROM files_read)")
+    con.execute("DELETE FROM session_ids AS i WHERE NOT EXISTS (SELECT 1 FROM files_read AS f "
+                "WHERE f.source_name = i.source_name AND f.path = i.first_path)")
 
 
 def _note_changes(con: duckdb.DuckDBPyConnection, run_id: int, checks: list[Check],
@@ -360,56 +452,94 @@ def _note_changes(con: duckdb.DuckDBPyConnection, run_id: int, checks: list[Chec
             """,
             {"r": run_id, "c": check.name, "listing": listing},
         ).fetchall()
-        noticed += [f"{path} (check {check.name}: size {a} -> {b}, modified {ta} -> {tb})"
+        where = {f.path: f.where for f in listings[check.source.name]}
+        noticed += [f"{where.get(path, path)} (check {check.name}: size {a} -> {b}, modified {ta} -> {tb})"
                     for path, a, b, ta, tb in sorted(rows)]
     return noticed
 
 
-def _groups(con: duckdb.DuckDBPyConnection, checks: list[Check], compiled: list[CompiledCheck],
-            listings: dict[str, list[lake.LakeFile]], budget: int,
-            ) -> tuple[list[list[tuple[Check, CompiledCheck, list[lake.LakeFile]]]], bool]:
-    """Checks of one source with the same new files, so the files are read once for all of them;
-    and whether any check has more new files than ``budget`` bytes of them (read by a next run).
+@dataclass
+class Group:
+    """Checks of one source that read the same new files together, the source stage run once.
 
-    A check takes its new files in path order (day partitions: in time) up to ``budget``, and at
-    least one."""
-    groups: dict[tuple[str, tuple[str, ...]], list[tuple[Check, CompiledCheck, list[lake.LakeFile]]]] = {}
+    Checks share a reading only when they have read exactly the same files before: whether a
+    session id is a repeat depends on what the check has counted, so each session id counts once
+    per check whatever the order in which checks and files came."""
+
+    checks: list[tuple[Check, CompiledCheck]]
+    files: list[lake.LakeFile]
+    read_until: datetime | None = None
+
+
+def _groups(con: duckdb.DuckDBPyConnection, checks: list[Check], compiled: list[CompiledCheck],
+            listings: dict[str, list[lake.LakeFile]], budget: int) -> tuple[list[Group], bool]:
+    """The run's groups, and whether any check has more new files than ``budget`` bytes of them
+    (read by a next run).
+
+    A check takes its new files up to ``budget``, and at least one. When they do not all fit, it
+    takes them in data-time order (by each file's earliest event time), so the first of several
+    runs never reads one partition's last day before another's first; ``read_until``, the
+    earliest event time of the files it leaves, then bounds the run's watermark."""
+    history = dict(con.execute(
+        "SELECT check_name, md5(string_agg(path, chr(10) ORDER BY path)) FROM files_read GROUP BY check_name"
+    ).fetchall())
+    groups: dict[tuple[str, tuple[str, ...], str | None], Group] = {}
     more = False
     for check, sql in zip(checks, compiled):
-        if check.source.name not in listings:
-            listings[check.source.name] = lake.list_source(check.source)
+        source = check.source
+        if source.name not in listings:
+            listings[source.name] = lake.list_source(source)
         seen = {row[0] for row in con.execute(
             "SELECT path FROM files_read WHERE check_name = $c", {"c": check.name}).fetchall()}
-        new = sorted((f for f in listings[check.source.name] if f.path not in seen), key=lambda f: f.path)
-        taken, size = [], 0
-        for f in new:
-            if taken and size + f.size > budget:
-                more = True
-                break
-            taken.append(f)
-            size += f.size
-        groups.setdefault((check.source.name, tuple(f.path for f in taken)), []).append((check, sql, taken))
+        new = sorted((f for f in listings[source.name] if f.path not in seen), key=lambda f: f.path)
+        taken, read_until = new, None
+        if sum(f.size for f in new) > budget and len(new) > 1:
+            taken, read_until = _first_by_data_time(con, source, new, budget)
+            more = more or len(taken) < len(new)
+        key = (source.name, tuple(f.path for f in taken), history.get(check.name))
+        group = groups.setdefault(key, Group([], sorted(taken, key=lambda f: f.path), read_until))
+        group.checks.append((check, sql))
     return list(groups.values()), more
 
 
-def _params(files: list[lake.LakeFile], run_id: int, definition: str, reader: str) -> dict[str, Any]:
+def _first_by_data_time(con: duckdb.DuckDBPyConnection, source: Source, new: list[lake.LakeFile],
+                        budget: int) -> tuple[list[lake.LakeFile], datetime | None]:
+    """The files one run of a backlog reads (in order of their earliest sane event time, up to
+    ``budget`` bytes, at least one), and the earliest event time among those it leaves."""
+    firsts = lake.first_event_times(con, source, new)
+    ordered = sorted(new, key=lambda f: (firsts.get(f.path) is None, firsts.get(f.path) or datetime.min, f.path))
+    taken, size = [], 0
+    for f in ordered:
+        if taken and size + f.size > budget:
+            break
+        taken.append(f)
+        size += f.size
+    rest = [firsts[f.path] for f in ordered[len(taken):] if firsts.get(f.path) is not None]
+    return taken, min(rest, default=None)
+
+
+def _params(project: Project, files: list[lake.LakeFile], run_id: int, definition: str, reader: str,
+            read_until: datetime | None, source: Source) -> dict[str, Any]:
     files = sorted(files, key=lambda f: f.path)  # the source stage names a file by its place here
     return {
-        "files": [f.path for f in files],
+        "files": [f.where for f in files],
+        "paths": [f.path for f in files],
         "manifest": [{"path": f.path, "size": f.size, "modified_at": f.modified_at} for f in files],
         "run_id": run_id,
         "definition": definition,
         "reader": reader,
+        "read_until": read_until,
+        "source_checks": sorted(c.name for c in project.checks.values() if c.source.name == source.name),
     }
 
 
 def _run_check(con: duckdb.DuckDBPyConnection, stages: duckdb.DuckDBPyConnection | None, check: Check,
-               sql: CompiledCheck, new: list[lake.LakeFile], run_id: int) -> CheckResult:
+               sql: CompiledCheck, new: list[lake.LakeFile], params: dict[str, Any]) -> CheckResult:
     """A check's own stages, after its source stage has read ``new`` into ``lake_sessions``."""
     result = CheckResult(check.name, files_read=len(new))
     if not new:
         return result
-    params = _params(new, run_id, sql.definition_hash, check.name)
+    run_id = params["run_id"]
     loop: list[tuple[str, Statement]] = []
     for stage in sql.stages[1:]:
         _run_stage(con, stages, f"check {check.name}", stage.name, stage.once, params)
@@ -470,28 +600,31 @@ def _forget(con: duckdb.DuckDBPyConnection, checks: list[Check], compiled: list[
 
 
 def _record(con: duckdb.DuckDBPyConnection, run_id: int, started: datetime, names: list[str],
-            full_refresh: bool, status: str, error: str | None) -> None:
+            full_refresh: bool, status: str, error: str | None, warning: str | None) -> None:
     """The run record: what every scan read (once per scan) and what every check wrote."""
     con.execute(
         """
-        INSERT INTO runs
-        SELECT $run_id, $started, $finished, $status, $checks, $full_refresh,
-               (SELECT count(DISTINCT path) FROM files_read WHERE run_id = $run_id),
-               s.rows_read, s.rows_excluded, s.duplicate_rows, c.late_rows, s.rows_invalid,
-               (SELECT count(DISTINCT path) FROM changed_files WHERE run_id = $run_id),
+        INSERT INTO runs BY NAME
+        SELECT $run_id AS run_id, $started AS started_at, $finished AS finished_at, $status AS status,
+               $checks AS checks, $full_refresh AS full_refresh,
+               (SELECT count(DISTINCT (source_name, path)) FROM files_read WHERE run_id = $run_id) AS files_read,
+               s.rows_read, s.rows_excluded, s.duplicate_rows, c.late_rows, s.rows_invalid AS invalid_rows,
+               (SELECT count(DISTINCT path) FROM changed_files WHERE run_id = $run_id) AS changed_files,
                c.windows_written, c.alerts_opened,
-               c.alerts_closed + (SELECT coalesce(sum(alerts_closed), 0) FROM run_retired), $error
+               c.alerts_closed + (SELECT coalesce(sum(alerts_closed), 0) FROM run_retired) AS alerts_closed,
+               $error AS error, c.nonfinite_values, $warning AS warning
         FROM (SELECT coalesce(sum(rows_read), 0) AS rows_read, coalesce(sum(rows_excluded), 0) AS rows_excluded,
                      coalesce(sum(duplicate_rows), 0) AS duplicate_rows,
                      coalesce(sum(rows_invalid), 0) AS rows_invalid
               FROM run_scans) AS s,
              (SELECT coalesce(sum(late_rows), 0) AS late_rows, coalesce(sum(windows_written), 0) AS windows_written,
                      coalesce(sum(alerts_opened), 0) AS alerts_opened,
-                     coalesce(sum(alerts_closed), 0) AS alerts_closed
+                     coalesce(sum(alerts_closed), 0) AS alerts_closed,
+                     coalesce(sum(nonfinite_values), 0) AS nonfinite_values
               FROM run_checks WHERE run_id = $run_id) AS c
         """,
         {"run_id": run_id, "started": started, "finished": _now(), "status": status, "checks": names,
-         "full_refresh": full_refresh, "error": error},
+         "full_refresh": full_refresh, "error": error, "warning": warning},
     )
 
 

@@ -3,23 +3,49 @@
 -- $reader (the check whose earlier files decide duplicates), $definition (hash of the SQL
 -- up to the breach stage). Statements after '@repeat' run until no breach flag changes.
 -- ── stage 0 · source ───────────────────────────────────────────────────────────────────────
--- Source sessions: the sessions of the files not read before ($files), read once for
--- every check that reads the same files ($reader is the first of them), each session id once, in
--- this run and across runs. Rows without a session id or event time are counted and skipped;
--- excluded sessions never count. A session id is kept only as its md5 (a 128-bit number), and a
--- row's file as its place in $files, which is sorted by path.
+-- Source sessions: the sessions of the files not read before ($files, read from where they are;
+-- $paths, their names relative to the source's path), read once for every check that has read the
+-- same files before ($reader is the first of them), each session id once per check, in this run and
+-- across runs. Rows without a session id or a sane event time are counted and skipped; excluded
+-- sessions never count. A session id is kept only as its md5 (a 128-bit number).
+-- Each new file: its place in $files, its name, and the latest event time a session in it can
+-- sanely have: INTERVAL 1 DAY (max_future) after the file was written.
+CREATE OR REPLACE TEMP TABLE run_files AS
+SELECT m.i AS file_index, m.f.path AS path, m.f.modified_at + INTERVAL 1 DAY AS latest_sane
+FROM (SELECT unnest($manifest) AS f, generate_subscripts($manifest, 1) - 1 AS i) AS m;
+
+-- The reader's data time before this run: sessions more than INTERVAL 3 DAY (dedup_horizon)
+-- older than it can no longer be told from repeats, whose ids are forgotten by then. And when a
+-- backlog is read in several runs, the earliest event time of the files left for the next runs
+-- ($read_until): the watermark stays before it, and count windows wait for the sessions after it.
+CREATE OR REPLACE TEMP TABLE read_limits AS
+SELECT
+    (SELECT watermark FROM check_state WHERE check_name = $reader) - INTERVAL 3 DAY AS remembered_from,
+    $read_until::TIMESTAMP AS read_until;
+
 CREATE OR REPLACE TEMP TABLE lake_rows AS
 SELECT
-    "session_id"::VARCHAR AS __session_id,
-    md5_number("session_id"::VARCHAR) AS __id_hash,
-    "ended_at"::TIMESTAMP AS __event_time,
+    r.__session_id,
+    md5_number(r.__session_id) AS __id_hash,
+    -- an event time that cannot be right (infinite, or after its file was written + max_future) is
+    -- no event time: the row is invalid and never moves the watermark
+    CASE WHEN isfinite(r.__event_time) AND r.__event_time <= f.latest_sane THEN r.__event_time END AS __event_time,
+    r.__event_time IS NOT NULL AND NOT coalesce(isfinite(r.__event_time) AND r.__event_time <= f.latest_sane, false) AS __insane_time,
+    r.* EXCLUDE (__session_id, __event_time)
+FROM (
+    SELECT
+        "session_id"::VARCHAR AS __session_id,
+        ("ended_at")::TIMESTAMP AS __event_time,
 coalesce("is_bot", false) AS __excluded,
-    "rebuffer_ms",
-    "play_ms",
-    file_index::INTEGER AS __file
-FROM read_parquet($files, hive_partitioning = true, union_by_name = true);
+        "rebuffer_ms",
+        "play_ms",
+        file_index::INTEGER AS __file
+    FROM read_parquet($files, hive_partitioning = true, union_by_name = true)
+) AS r
+JOIN run_files AS f ON f.file_index = r.__file;
 
--- Session ids already read, in an earlier run, from a file these checks have read: duplicates.
+-- Session ids the reader has counted before (from a file it has read): repeats. Checks read a
+-- source's files together only when they have read the same files before, so it is every one's.
 CREATE OR REPLACE TEMP TABLE read_before AS
 SELECT DISTINCT id_hash
 FROM session_ids
@@ -27,25 +53,33 @@ WHERE source_name = 'sessions'
   AND first_path IN (SELECT path FROM files_read WHERE check_name = $reader)
   AND id_hash IN (SELECT __id_hash FROM lake_rows WHERE __id_hash IS NOT NULL);
 
--- One copy of each new session id: the earliest, then by file name, so every run keeps the same one.
+-- Valid rows, and those too old to be told from repeats.
+CREATE OR REPLACE TEMP VIEW valid_rows AS
+SELECT
+    *,
+    coalesce(__event_time < (SELECT remembered_from FROM read_limits), false) AS __beyond_horizon
+FROM lake_rows
+WHERE __session_id IS NOT NULL AND __event_time IS NOT NULL;
+
+-- One copy of each new session id: the earliest, then by file, so every run keeps the same one.
 CREATE OR REPLACE TEMP TABLE repeated_ids AS
 SELECT __id_hash
-FROM lake_rows
-WHERE __id_hash IS NOT NULL AND __event_time IS NOT NULL
+FROM valid_rows
+WHERE NOT __beyond_horizon
 GROUP BY __id_hash
 HAVING count(*) > 1;
 
 -- A view, not a copy: each check's scan reads it once.
 CREATE OR REPLACE TEMP VIEW lake_sessions AS
-SELECT *
-FROM lake_rows
-WHERE __id_hash IS NOT NULL AND __event_time IS NOT NULL
+SELECT * EXCLUDE (__beyond_horizon, __insane_time)
+FROM valid_rows
+WHERE NOT __beyond_horizon
   AND __id_hash NOT IN (SELECT __id_hash FROM repeated_ids)
   AND __id_hash NOT IN (SELECT id_hash FROM read_before)
 UNION ALL
-SELECT *
-FROM lake_rows
-WHERE __event_time IS NOT NULL
+SELECT * EXCLUDE (__beyond_horizon, __insane_time)
+FROM valid_rows
+WHERE NOT __beyond_horizon
   AND __id_hash IN (SELECT __id_hash FROM repeated_ids)
   AND __id_hash NOT IN (SELECT id_hash FROM read_before)
 QUALIFY row_number() OVER (PARTITION BY __id_hash ORDER BY __event_time, __file) = 1;
@@ -53,63 +87,106 @@ QUALIFY row_number() OVER (PARTITION BY __id_hash ORDER BY __event_time, __file)
 CREATE OR REPLACE TEMP TABLE lake_counts AS
 WITH kept AS (
     SELECT count(*) AS sessions, count(*) FILTER (WHERE __excluded) AS excluded FROM lake_sessions
+),
+valid AS (
+    SELECT count(*) AS rows_valid, count(*) FILTER (WHERE __beyond_horizon) AS beyond_horizon FROM valid_rows
 )
 SELECT
     count(*) AS rows_read,
     count(*) FILTER (WHERE __session_id IS NULL OR __event_time IS NULL) AS rows_invalid,
-    count(*) FILTER (WHERE __session_id IS NOT NULL AND __event_time IS NOT NULL)
-        - any_value(kept.sessions) AS duplicate_rows,
+    any_value(valid.rows_valid) - any_value(valid.beyond_horizon) - any_value(kept.sessions) AS duplicate_rows,
+    any_value(valid.beyond_horizon) AS beyond_horizon,
     any_value(kept.excluded) AS rows_excluded,
-    max(__event_time) AS latest
-FROM lake_rows, kept;
+    -- the watermark's candidate: sane times only
+    max(__event_time) FILTER (WHERE __session_id IS NOT NULL) AS latest
+FROM lake_rows, kept, valid;
 
+-- What each file held: its rows, and those without a session id or a sane event time.
 CREATE OR REPLACE TEMP TABLE lake_file_rows AS
-SELECT $files[__file + 1] AS path, count(*) AS rows
-FROM lake_rows
-GROUP BY __file;
+SELECT
+    f.path,
+    count(r.__file) AS rows,
+    count(r.__file) FILTER (WHERE r.__session_id IS NULL OR r.__event_time IS NULL) AS invalid_rows,
+    count(r.__file) FILTER (WHERE r.__insane_time) AS insane_times
+FROM run_files AS f
+LEFT JOIN lake_rows AS r ON r.__file = f.file_index
+GROUP BY f.path;
 
 -- The kept sessions' id hashes as two 64-bit halves, which is how they reach the warehouse's
 -- connection when the stages run on a connection of their own (Arrow has no 128-bit integer).
 CREATE OR REPLACE TEMP VIEW kept_ids AS
-SELECT (__id_hash >> 64)::UBIGINT AS hash_high, (__id_hash & 18446744073709551615)::UBIGINT AS hash_low, __file
+SELECT (__id_hash >> 64)::UBIGINT AS hash_high, (__id_hash & 18446744073709551615)::UBIGINT AS hash_low,
+       __file, __event_time
 FROM lake_sessions;
 
--- Remember the ids of files no check has read before (hashes only), for the next runs.
-INSERT INTO session_ids
-SELECT 'sessions' AS source_name, (hash_high::UHUGEINT << 64) | hash_low, $files[__file + 1]
-FROM kept_ids
-WHERE __file IN (
-    SELECT f.i - 1
-    FROM (SELECT unnest($files) AS path, generate_subscripts($files, 1) AS i) AS f
-    WHERE f.path NOT IN (SELECT path FROM files_read)
-);
+-- Remember each kept id with the file it was kept from (hashes only). A check that catches up on
+-- files others have read may keep ids they kept from older files: only pairs not yet known are added.
+INSERT INTO session_ids BY NAME
+SELECT 'sessions' AS source_name, k.id_hash, k.first_path, k.event_time
+FROM (
+    SELECT (hash_high::UHUGEINT << 64) | hash_low AS id_hash, $paths[__file + 1] AS first_path,
+           __event_time AS event_time
+    FROM kept_ids
+) AS k
+ANTI JOIN (
+    SELECT id_hash, first_path
+    FROM session_ids
+    WHERE source_name = 'sessions' AND list_contains($paths, first_path)
+) AS known
+    ON known.id_hash = k.id_hash AND known.first_path = k.first_path;
+
+-- Forget ids more than dedup_horizon behind the data every check of the source has read.
+DELETE FROM session_ids
+WHERE source_name = 'sessions'
+  AND event_time < (SELECT min(watermark) FROM check_state WHERE list_contains($source_checks, check_name))
+                   - INTERVAL 3 DAY;
 
 -- ── stage 1 · scan ─────────────────────────────────────────────────────────────────────────
 -- The check's sessions: not excluded; its key and measure inputs.
+-- A measure input that is NaN or ±infinity is missing (NULL), and counted: it would compare
+-- beyond every threshold.
 -- A view: the window stage reads it once.
 CREATE OR REPLACE TEMP VIEW arrivals AS
 SELECT
-    __session_id AS session_id,
-    __event_time AS event_time,
-    '' AS key,
-    ("rebuffer_ms")::DOUBLE AS num,
-    ("play_ms" + "rebuffer_ms")::DOUBLE AS den
-FROM lake_sessions
-WHERE NOT __excluded;
+    session_id,
+    event_time,
+    key,
+    CASE WHEN finite THEN num END AS num,
+    CASE WHEN finite THEN den END AS den,
+    NOT finite AS nonfinite
+FROM (
+    SELECT
+        *,
+        coalesce(isfinite(num) AND isfinite(den), true) AS finite
+    FROM (
+        SELECT
+            __session_id AS session_id,
+            __event_time AS event_time,
+            '' AS key,
+            ("rebuffer_ms")::DOUBLE AS num,
+            ("play_ms" + "rebuffer_ms")::DOUBLE AS den
+        FROM lake_sessions
+        WHERE NOT __excluded
+    )
+);
 
--- The watermark: the largest event time read by this check so far, this run's files included.
+-- The watermark: the largest sane event time read by this check so far, this run's files included;
+-- when a backlog is read in several runs, no later than the earliest session still unread
+-- (read_until), so nothing still to come lands in a window already closed.
 CREATE OR REPLACE TEMP TABLE clock AS
 SELECT
     prior.watermark AS previous,
-    greatest(prior.watermark, (SELECT latest FROM lake_counts)) AS current
-FROM (SELECT (SELECT watermark FROM check_state WHERE check_name = 'rebuffering_ratio') AS watermark) AS prior;
+    greatest(prior.watermark, least(c.latest, coalesce((SELECT read_until FROM read_limits), c.latest))) AS current
+FROM (SELECT (SELECT watermark FROM check_state WHERE check_name = 'rebuffering_ratio') AS watermark) AS prior,
+     lake_counts AS c;
 
 CREATE OR REPLACE TEMP TABLE scan_counts AS
 SELECT
-    c.rows_read, c.rows_invalid, c.duplicate_rows, c.rows_excluded,
-    c.rows_read - c.rows_invalid - c.duplicate_rows - c.rows_excluded - a.rows_kept AS rows_filtered,
-    a.rows_kept
-FROM lake_counts AS c, (SELECT count(*) AS rows_kept FROM arrivals) AS a;
+    c.rows_read, c.rows_invalid, c.duplicate_rows, c.rows_excluded, c.beyond_horizon,
+    c.rows_read - c.rows_invalid - c.duplicate_rows - c.beyond_horizon - c.rows_excluded - a.rows_kept AS rows_filtered,
+    a.rows_kept,
+    a.nonfinite_values
+FROM lake_counts AS c, (SELECT count(*) AS rows_kept, count(*) FILTER (WHERE nonfinite) AS nonfinite_values FROM arrivals) AS a;
 
 -- ── stage 2 · window ───────────────────────────────────────────────────────────────────────
 -- Time windows of INTERVAL 3 HOUR, aligned to the epoch; a window closes once the watermark
@@ -124,9 +201,9 @@ WHERE check_name = 'rebuffering_ratio';
 CREATE OR REPLACE TEMP VIEW stamped AS
 SELECT
     p.*,
-    epoch_us(p.event_time) // 10800000000 AS seq,
-    make_timestamp(epoch_us(p.event_time) // 10800000000 * 10800000000) AS window_start,
-    make_timestamp(epoch_us(p.event_time) // 10800000000 * 10800000000 + 10800000000) AS window_end
+    (epoch_us(p.event_time) - ((epoch_us(p.event_time)) % 10800000000 + 10800000000) % 10800000000) // 10800000000 AS seq,
+    make_timestamp((epoch_us(p.event_time) - ((epoch_us(p.event_time)) % 10800000000 + 10800000000) % 10800000000) // 10800000000 * 10800000000) AS window_start,
+    make_timestamp((epoch_us(p.event_time) - ((epoch_us(p.event_time)) % 10800000000 + 10800000000) % 10800000000) // 10800000000 * 10800000000 + 10800000000) AS window_end
 FROM (
     SELECT '' AS key, event_time, session_id, num, den
     FROM carry
@@ -248,13 +325,15 @@ WHERE is_new;
 
 -- ── stage 5 · breach ───────────────────────────────────────────────────────────────────────
 -- A window breaches when it has a threshold, its value is above it, and it passes the guard
--- (at least 20 sessions); every other window with a threshold is healthy.
+-- (at least 20 sessions); every other window with a threshold and a value is
+-- healthy. A window without a value (a zero denominator, no session with a value) gives no verdict.
 -- @repeat (with stage 4): until no breach flag changes
 CREATE OR REPLACE TEMP TABLE decided AS
 SELECT
     *,
     coalesce(
         threshold IS NOT NULL
+        AND value IS NOT NULL
         AND value > threshold
         AND sessions >= 20
     , false) AS breach
@@ -302,7 +381,8 @@ ordered AS (
     SELECT
         j.key, j.key_text, j.split_value, j.seq, j.window_start, j.window_end, j.value, j.threshold,
         j.bad, j.sessions, j.breach,
-        j.threshold IS NOT NULL AND NOT j.breach AS healthy,
+        -- no verdict without a value (a zero denominator, an empty window): neither healthy nor a breach
+        j.threshold IS NOT NULL AND j.value IS NOT NULL AND NOT j.breach AS healthy,
         coalesce(lag(j.window_end) OVER (PARTITION BY j.key, j.split_value ORDER BY j.seq), l.last_end) AS prev_end,
         o.alert_id IS NOT NULL AS carried,
         coalesce(o.healthy_streak, 0) AS streak0
@@ -542,8 +622,8 @@ SELECT 'rebuffering_ratio' AS check_name, current AS watermark, $definition AS d
 FROM clock;
 
 INSERT INTO files_read BY NAME
-SELECT 'rebuffering_ratio' AS check_name, f.path, f.size, f.modified_at, $run_id AS run_id,
-       coalesce(n.rows, 0) AS rows
+SELECT 'rebuffering_ratio' AS check_name, 'sessions' AS source_name, f.path, f.size,
+       f.modified_at, $run_id AS run_id, coalesce(n.rows, 0) AS rows, coalesce(n.invalid_rows, 0) AS invalid_rows
 FROM (SELECT unnest($manifest, recursive := true)) AS f
 LEFT JOIN lake_file_rows AS n ON n.path = f.path;
 
@@ -552,7 +632,10 @@ SELECT
     $run_id AS run_id, 'rebuffering_ratio' AS check_name,
     len($manifest) AS files_read,
     c.rows_read, c.rows_invalid, c.rows_excluded, c.rows_filtered, c.duplicate_rows,
-    (SELECT late_rows FROM window_counts) AS late_rows,
+    -- late for its window, or by more than dedup_horizon behind the data already read
+    (SELECT late_rows FROM window_counts) + c.beyond_horizon AS late_rows,
+    c.beyond_horizon,
+    c.nonfinite_values,
     (SELECT count(*) FROM judged) AS windows_written,
     (SELECT count(*) FROM judged WHERE breach) AS breach_windows,
     (SELECT count(*) FROM event_rows WHERE event = 'opened') AS alerts_opened,

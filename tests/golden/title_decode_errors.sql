@@ -3,24 +3,50 @@
 -- $reader (the check whose earlier files decide duplicates), $definition (hash of the SQL
 -- up to the breach stage). Statements after '@repeat' run until no breach flag changes.
 -- ── stage 0 · source ───────────────────────────────────────────────────────────────────────
--- Source sessions: the sessions of the files not read before ($files), read once for
--- every check that reads the same files ($reader is the first of them), each session id once, in
--- this run and across runs. Rows without a session id or event time are counted and skipped;
--- excluded sessions never count. A session id is kept only as its md5 (a 128-bit number), and a
--- row's file as its place in $files, which is sorted by path.
+-- Source sessions: the sessions of the files not read before ($files, read from where they are;
+-- $paths, their names relative to the source's path), read once for every check that has read the
+-- same files before ($reader is the first of them), each session id once per check, in this run and
+-- across runs. Rows without a session id or a sane event time are counted and skipped; excluded
+-- sessions never count. A session id is kept only as its md5 (a 128-bit number).
+-- Each new file: its place in $files, its name, and the latest event time a session in it can
+-- sanely have: INTERVAL 1 DAY (max_future) after the file was written.
+CREATE OR REPLACE TEMP TABLE run_files AS
+SELECT m.i AS file_index, m.f.path AS path, m.f.modified_at + INTERVAL 1 DAY AS latest_sane
+FROM (SELECT unnest($manifest) AS f, generate_subscripts($manifest, 1) - 1 AS i) AS m;
+
+-- The reader's data time before this run: sessions more than INTERVAL 3 DAY (dedup_horizon)
+-- older than it can no longer be told from repeats, whose ids are forgotten by then. And when a
+-- backlog is read in several runs, the earliest event time of the files left for the next runs
+-- ($read_until): the watermark stays before it, and count windows wait for the sessions after it.
+CREATE OR REPLACE TEMP TABLE read_limits AS
+SELECT
+    (SELECT watermark FROM check_state WHERE check_name = $reader) - INTERVAL 3 DAY AS remembered_from,
+    $read_until::TIMESTAMP AS read_until;
+
 CREATE OR REPLACE TEMP TABLE lake_rows AS
 SELECT
-    "session_id"::VARCHAR AS __session_id,
-    md5_number("session_id"::VARCHAR) AS __id_hash,
-    "ended_at"::TIMESTAMP AS __event_time,
+    r.__session_id,
+    md5_number(r.__session_id) AS __id_hash,
+    -- an event time that cannot be right (infinite, or after its file was written + max_future) is
+    -- no event time: the row is invalid and never moves the watermark
+    CASE WHEN isfinite(r.__event_time) AND r.__event_time <= f.latest_sane THEN r.__event_time END AS __event_time,
+    r.__event_time IS NOT NULL AND NOT coalesce(isfinite(r.__event_time) AND r.__event_time <= f.latest_sane, false) AS __insane_time,
+    r.* EXCLUDE (__session_id, __event_time)
+FROM (
+    SELECT
+        "session_id"::VARCHAR AS __session_id,
+        ("ended_at")::TIMESTAMP AS __event_time,
 coalesce("is_bot", false) AS __excluded,
-    "site",
-    "title_id",
-    "error_code",
-    file_index::INTEGER AS __file
-FROM read_parquet($files, hive_partitioning = true, union_by_name = true);
+        "site",
+        "title_id",
+        "error_code",
+        file_index::INTEGER AS __file
+    FROM read_parquet($files, hive_partitioning = true, union_by_name = true)
+) AS r
+JOIN run_files AS f ON f.file_index = r.__file;
 
--- Session ids already read, in an earlier run, from a file these checks have read: duplicates.
+-- Session ids the reader has counted before (from a file it has read): repeats. Checks read a
+-- source's files together only when they have read the same files before, so it is every one's.
 CREATE OR REPLACE TEMP TABLE read_before AS
 SELECT DISTINCT id_hash
 FROM session_ids
@@ -28,25 +54,33 @@ WHERE source_name = 'sessions'
   AND first_path IN (SELECT path FROM files_read WHERE check_name = $reader)
   AND id_hash IN (SELECT __id_hash FROM lake_rows WHERE __id_hash IS NOT NULL);
 
--- One copy of each new session id: the earliest, then by file name, so every run keeps the same one.
+-- Valid rows, and those too old to be told from repeats.
+CREATE OR REPLACE TEMP VIEW valid_rows AS
+SELECT
+    *,
+    coalesce(__event_time < (SELECT remembered_from FROM read_limits), false) AS __beyond_horizon
+FROM lake_rows
+WHERE __session_id IS NOT NULL AND __event_time IS NOT NULL;
+
+-- One copy of each new session id: the earliest, then by file, so every run keeps the same one.
 CREATE OR REPLACE TEMP TABLE repeated_ids AS
 SELECT __id_hash
-FROM lake_rows
-WHERE __id_hash IS NOT NULL AND __event_time IS NOT NULL
+FROM valid_rows
+WHERE NOT __beyond_horizon
 GROUP BY __id_hash
 HAVING count(*) > 1;
 
 -- A view, not a copy: each check's scan reads it once.
 CREATE OR REPLACE TEMP VIEW lake_sessions AS
-SELECT *
-FROM lake_rows
-WHERE __id_hash IS NOT NULL AND __event_time IS NOT NULL
+SELECT * EXCLUDE (__beyond_horizon, __insane_time)
+FROM valid_rows
+WHERE NOT __beyond_horizon
   AND __id_hash NOT IN (SELECT __id_hash FROM repeated_ids)
   AND __id_hash NOT IN (SELECT id_hash FROM read_before)
 UNION ALL
-SELECT *
-FROM lake_rows
-WHERE __event_time IS NOT NULL
+SELECT * EXCLUDE (__beyond_horizon, __insane_time)
+FROM valid_rows
+WHERE NOT __beyond_horizon
   AND __id_hash IN (SELECT __id_hash FROM repeated_ids)
   AND __id_hash NOT IN (SELECT id_hash FROM read_before)
 QUALIFY row_number() OVER (PARTITION BY __id_hash ORDER BY __event_time, __file) = 1;
@@ -54,63 +88,104 @@ QUALIFY row_number() OVER (PARTITION BY __id_hash ORDER BY __event_time, __file)
 CREATE OR REPLACE TEMP TABLE lake_counts AS
 WITH kept AS (
     SELECT count(*) AS sessions, count(*) FILTER (WHERE __excluded) AS excluded FROM lake_sessions
+),
+valid AS (
+    SELECT count(*) AS rows_valid, count(*) FILTER (WHERE __beyond_horizon) AS beyond_horizon FROM valid_rows
 )
 SELECT
     count(*) AS rows_read,
     count(*) FILTER (WHERE __session_id IS NULL OR __event_time IS NULL) AS rows_invalid,
-    count(*) FILTER (WHERE __session_id IS NOT NULL AND __event_time IS NOT NULL)
-        - any_value(kept.sessions) AS duplicate_rows,
+    any_value(valid.rows_valid) - any_value(valid.beyond_horizon) - any_value(kept.sessions) AS duplicate_rows,
+    any_value(valid.beyond_horizon) AS beyond_horizon,
     any_value(kept.excluded) AS rows_excluded,
-    max(__event_time) AS latest
-FROM lake_rows, kept;
+    -- the watermark's candidate: sane times only
+    max(__event_time) FILTER (WHERE __session_id IS NOT NULL) AS latest
+FROM lake_rows, kept, valid;
 
+-- What each file held: its rows, and those without a session id or a sane event time.
 CREATE OR REPLACE TEMP TABLE lake_file_rows AS
-SELECT $files[__file + 1] AS path, count(*) AS rows
-FROM lake_rows
-GROUP BY __file;
+SELECT
+    f.path,
+    count(r.__file) AS rows,
+    count(r.__file) FILTER (WHERE r.__session_id IS NULL OR r.__event_time IS NULL) AS invalid_rows,
+    count(r.__file) FILTER (WHERE r.__insane_time) AS insane_times
+FROM run_files AS f
+LEFT JOIN lake_rows AS r ON r.__file = f.file_index
+GROUP BY f.path;
 
 -- The kept sessions' id hashes as two 64-bit halves, which is how they reach the warehouse's
 -- connection when the stages run on a connection of their own (Arrow has no 128-bit integer).
 CREATE OR REPLACE TEMP VIEW kept_ids AS
-SELECT (__id_hash >> 64)::UBIGINT AS hash_high, (__id_hash & 18446744073709551615)::UBIGINT AS hash_low, __file
+SELECT (__id_hash >> 64)::UBIGINT AS hash_high, (__id_hash & 18446744073709551615)::UBIGINT AS hash_low,
+       __file, __event_time
 FROM lake_sessions;
 
--- Remember the ids of files no check has read before (hashes only), for the next runs.
-INSERT INTO session_ids
-SELECT 'sessions' AS source_name, (hash_high::UHUGEINT << 64) | hash_low, $files[__file + 1]
-FROM kept_ids
-WHERE __file IN (
-    SELECT f.i - 1
-    FROM (SELECT unnest($files) AS path, generate_subscripts($files, 1) AS i) AS f
-    WHERE f.path NOT IN (SELECT path FROM files_read)
-);
+-- Remember each kept id with the file it was kept from (hashes only). A check that catches up on
+-- files others have read may keep ids they kept from older files: only pairs not yet known are added.
+INSERT INTO session_ids BY NAME
+SELECT 'sessions' AS source_name, k.id_hash, k.first_path, k.event_time
+FROM (
+    SELECT (hash_high::UHUGEINT << 64) | hash_low AS id_hash, $paths[__file + 1] AS first_path,
+           __event_time AS event_time
+    FROM kept_ids
+) AS k
+ANTI JOIN (
+    SELECT id_hash, first_path
+    FROM session_ids
+    WHERE source_name = 'sessions' AND list_contains($paths, first_path)
+) AS known
+    ON known.id_hash = k.id_hash AND known.first_path = k.first_path;
+
+-- Forget ids more than dedup_horizon behind the data every check of the source has read.
+DELETE FROM session_ids
+WHERE source_name = 'sessions'
+  AND event_time < (SELECT min(watermark) FROM check_state WHERE list_contains($source_checks, check_name))
+                   - INTERVAL 3 DAY;
 
 -- ── stage 1 · scan ─────────────────────────────────────────────────────────────────────────
 -- The check's sessions: not excluded; its key and measure inputs.
 -- A view: the window stage reads it once.
 CREATE OR REPLACE TEMP VIEW arrivals AS
 SELECT
-    __session_id AS session_id,
-    __event_time AS event_time,
-    {'site': "site"::VARCHAR, 'title_id': "title_id"::VARCHAR} AS key,
-    coalesce(NOT "error_code" IS NULL, false) AS is_bad,
+    session_id,
+    event_time,
+    key,
+    is_bad,
+    split_value,
+    NOT finite AS nonfinite
+FROM (
+    SELECT
+        *,
+        true AS finite
+    FROM (
+        SELECT
+            __session_id AS session_id,
+            __event_time AS event_time,
+            {'site': "site"::VARCHAR, 'title_id': "title_id"::VARCHAR} AS key,
+            coalesce(NOT "error_code" IS NULL, false) AS is_bad,
 "error_code"::VARCHAR AS split_value
-FROM lake_sessions
-WHERE NOT __excluded;
+        FROM lake_sessions
+        WHERE NOT __excluded
+    )
+);
 
--- The watermark: the largest event time read by this check so far, this run's files included.
+-- The watermark: the largest sane event time read by this check so far, this run's files included;
+-- when a backlog is read in several runs, no later than the earliest session still unread
+-- (read_until), so nothing still to come lands in a window already closed.
 CREATE OR REPLACE TEMP TABLE clock AS
 SELECT
     prior.watermark AS previous,
-    greatest(prior.watermark, (SELECT latest FROM lake_counts)) AS current
-FROM (SELECT (SELECT watermark FROM check_state WHERE check_name = 'title_decode_errors') AS watermark) AS prior;
+    greatest(prior.watermark, least(c.latest, coalesce((SELECT read_until FROM read_limits), c.latest))) AS current
+FROM (SELECT (SELECT watermark FROM check_state WHERE check_name = 'title_decode_errors') AS watermark) AS prior,
+     lake_counts AS c;
 
 CREATE OR REPLACE TEMP TABLE scan_counts AS
 SELECT
-    c.rows_read, c.rows_invalid, c.duplicate_rows, c.rows_excluded,
-    c.rows_read - c.rows_invalid - c.duplicate_rows - c.rows_excluded - a.rows_kept AS rows_filtered,
-    a.rows_kept
-FROM lake_counts AS c, (SELECT count(*) AS rows_kept FROM arrivals) AS a;
+    c.rows_read, c.rows_invalid, c.duplicate_rows, c.rows_excluded, c.beyond_horizon,
+    c.rows_read - c.rows_invalid - c.duplicate_rows - c.beyond_horizon - c.rows_excluded - a.rows_kept AS rows_filtered,
+    a.rows_kept,
+    a.nonfinite_values
+FROM lake_counts AS c, (SELECT count(*) AS rows_kept, count(*) FILTER (WHERE nonfinite) AS nonfinite_values FROM arrivals) AS a;
 
 -- ── stage 2 · window ───────────────────────────────────────────────────────────────────────
 -- Count windows: each 30 sessions of a series in (event_time, session_id) order; a
@@ -125,17 +200,23 @@ CREATE OR REPLACE TEMP TABLE pooled AS
 SELECT
     p.*,
     row_number() OVER in_order - 1 AS i,
-    -- a window starting here cannot fill: fewer than N sessions left, or the N-th is too late
-    coalesce(lead(p.event_time, 29) OVER in_order > p.event_time + INTERVAL 6 HOUR, true) AS is_cut
+    -- a window starting here cannot fill: fewer than N sessions left, or the N-th is too late, or
+    -- it is held: a backlog read in several runs holds the sessions at or after read_until until the
+    -- earlier ones still unread have been read, so windows fill in the order one run fills them
+    coalesce(lead(p.event_time, 29) OVER in_order > p.event_time + INTERVAL 6 HOUR
+             OR lead(p.held, 29) OVER in_order, true) AS is_cut
 FROM (
-    SELECT {'site': key['site'], 'title_id': key['title_id']} AS key, event_time, session_id, is_bad, split_value, false AS late
-    FROM carry
-    WHERE check_name = 'title_decode_errors'
-    UNION ALL
-    -- late: earlier than the end of a window already closed for the series; it joins the open window
-    SELECT a.key, a.event_time, a.session_id, a.is_bad, a.split_value,            coalesce(a.event_time < s.last_end, false) AS late
-    FROM arrivals AS a
-    LEFT JOIN series_last AS s ON s.key = a.key
+    SELECT *, coalesce(event_time >= (SELECT read_until FROM read_limits), false) AS held
+    FROM (
+        SELECT {'site': key['site'], 'title_id': key['title_id']} AS key, event_time, session_id, is_bad, split_value, false AS late
+        FROM carry
+        WHERE check_name = 'title_decode_errors'
+        UNION ALL
+        -- late: earlier than the end of a window already closed for the series; it joins the open window
+        SELECT a.key, a.event_time, a.session_id, a.is_bad, a.split_value,                coalesce(a.event_time < s.last_end, false) AS late
+        FROM arrivals AS a
+        LEFT JOIN series_last AS s ON s.key = a.key
+    )
 ) AS p
 WINDOW in_order AS (PARTITION BY p.key ORDER BY p.event_time, p.session_id);
 
@@ -219,12 +300,12 @@ LEFT JOIN series_last AS s ON s.key = w.key;
 
 -- A view: the measure stage reads it once.
 CREATE OR REPLACE TEMP VIEW window_sessions AS
-SELECT p.* EXCLUDE (i, is_cut, w0), w.seq, w.window_start, w.window_end
+SELECT p.* EXCLUDE (i, is_cut, held, w0), w.seq, w.window_start, w.window_end
 FROM placed AS p
 JOIN closed_windows AS w ON w.key = p.key AND w.w0 = p.w0;
 
 CREATE OR REPLACE TEMP TABLE carry_next AS
-SELECT MAP {'site': struct_extract(key, 'site'), 'title_id': struct_extract(key, 'title_id')} AS key, 'site=' || coalesce(struct_extract(key, 'site'), '<null>') || ', ' || 'title_id=' || coalesce(struct_extract(key, 'title_id'), '<null>') AS key_text, event_time, session_id, is_bad, split_value
+SELECT MAP {'site': struct_extract(key, 'site'), 'title_id': struct_extract(key, 'title_id')} AS key, 'site=' || CASE WHEN struct_extract(key, 'site') IS NULL THEN '<null>' WHEN regexp_matches(struct_extract(key, 'site'), '^[\p{L}\p{N}_.:/@+-]+$') THEN struct_extract(key, 'site') ELSE '"' || replace(replace(struct_extract(key, 'site'), '\', '\\'), '"', '\"') || '"' END || ', ' || 'title_id=' || CASE WHEN struct_extract(key, 'title_id') IS NULL THEN '<null>' WHEN regexp_matches(struct_extract(key, 'title_id'), '^[\p{L}\p{N}_.:/@+-]+$') THEN struct_extract(key, 'title_id') ELSE '"' || replace(replace(struct_extract(key, 'title_id'), '\', '\\'), '"', '\"') || '"' END AS key_text, event_time, session_id, is_bad, split_value
 FROM placed
 WHERE w0 IS NULL;
 
@@ -249,7 +330,7 @@ GROUP BY key, seq, split_value;
 CREATE OR REPLACE TEMP TABLE key_window_stats AS
 SELECT
     MAP {'site': struct_extract(key, 'site'), 'title_id': struct_extract(key, 'title_id')} AS key,
-    'site=' || coalesce(struct_extract(key, 'site'), '<null>') || ', ' || 'title_id=' || coalesce(struct_extract(key, 'title_id'), '<null>') AS key_text,
+    'site=' || CASE WHEN struct_extract(key, 'site') IS NULL THEN '<null>' WHEN regexp_matches(struct_extract(key, 'site'), '^[\p{L}\p{N}_.:/@+-]+$') THEN struct_extract(key, 'site') ELSE '"' || replace(replace(struct_extract(key, 'site'), '\', '\\'), '"', '\"') || '"' END || ', ' || 'title_id=' || CASE WHEN struct_extract(key, 'title_id') IS NULL THEN '<null>' WHEN regexp_matches(struct_extract(key, 'title_id'), '^[\p{L}\p{N}_.:/@+-]+$') THEN struct_extract(key, 'title_id') ELSE '"' || replace(replace(struct_extract(key, 'title_id'), '\', '\\'), '"', '\"') || '"' END AS key_text,
     seq,
     min(window_start) AS window_start,
     max(window_end) AS window_end,
@@ -382,13 +463,15 @@ WHERE is_new;
 
 -- ── stage 5 · breach ───────────────────────────────────────────────────────────────────────
 -- A window breaches when it has a threshold, its value is above it, and it passes the guard
--- (at least 10 sessions and 2 bad); every other window with a threshold is healthy.
+-- (at least 10 sessions and 2 bad); every other window with a threshold and a value is
+-- healthy. A window without a value (a zero denominator, no session with a value) gives no verdict.
 -- @repeat (with stage 4): until no breach flag changes
 CREATE OR REPLACE TEMP TABLE decided AS
 SELECT
     *,
     coalesce(
         threshold IS NOT NULL
+        AND value IS NOT NULL
         AND value > threshold
         AND sessions >= 10
         AND bad >= 2
@@ -437,7 +520,8 @@ ordered AS (
     SELECT
         j.key, j.key_text, j.split_value, j.seq, j.window_start, j.window_end, j.value, j.threshold,
         j.bad, j.sessions, j.breach,
-        j.threshold IS NOT NULL AND NOT j.breach AS healthy,
+        -- no verdict without a value (a zero denominator, an empty window): neither healthy nor a breach
+        j.threshold IS NOT NULL AND j.value IS NOT NULL AND NOT j.breach AS healthy,
         coalesce(lag(j.window_end) OVER (PARTITION BY j.key, j.split_value ORDER BY j.seq), l.last_end) AS prev_end,
         o.alert_id IS NOT NULL AS carried,
         coalesce(o.healthy_streak, 0) AS streak0
@@ -677,8 +761,8 @@ SELECT 'title_decode_errors' AS check_name, current AS watermark, $definition AS
 FROM clock;
 
 INSERT INTO files_read BY NAME
-SELECT 'title_decode_errors' AS check_name, f.path, f.size, f.modified_at, $run_id AS run_id,
-       coalesce(n.rows, 0) AS rows
+SELECT 'title_decode_errors' AS check_name, 'sessions' AS source_name, f.path, f.size,
+       f.modified_at, $run_id AS run_id, coalesce(n.rows, 0) AS rows, coalesce(n.invalid_rows, 0) AS invalid_rows
 FROM (SELECT unnest($manifest, recursive := true)) AS f
 LEFT JOIN lake_file_rows AS n ON n.path = f.path;
 
@@ -687,7 +771,10 @@ SELECT
     $run_id AS run_id, 'title_decode_errors' AS check_name,
     len($manifest) AS files_read,
     c.rows_read, c.rows_invalid, c.rows_excluded, c.rows_filtered, c.duplicate_rows,
-    (SELECT late_rows FROM window_counts) AS late_rows,
+    -- late for its window, or by more than dedup_horizon behind the data already read
+    (SELECT late_rows FROM window_counts) + c.beyond_horizon AS late_rows,
+    c.beyond_horizon,
+    c.nonfinite_values,
     (SELECT count(*) FROM judged) AS windows_written,
     (SELECT count(*) FROM judged WHERE breach) AS breach_windows,
     (SELECT count(*) FROM event_rows WHERE event = 'opened') AS alerts_opened,
