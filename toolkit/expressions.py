@@ -165,7 +165,8 @@ def _duckdb_tree(sql: str, strict: bool) -> dict[str, Any] | None:
     Not strict: None when DuckDB reads the text as anything but one plain expression."""
     try:
         with _lock:
-            serialized = _connection().execute("SELECT json_serialize_sql($1)", ["SELECT " + sql]).fetchone()[0]
+            serialized = _connection().execute("SELECT json_serialize_sql($1)",
+                                               ["SELECT " + sql]).fetchone()[0]
         parsed = json.loads(serialized)
     except (duckdb.Error, ValueError, TypeError) as err:
         if not strict:
@@ -175,7 +176,8 @@ def _duckdb_tree(sql: str, strict: bool) -> dict[str, Any] | None:
         if not strict:
             return None
         message = str(parsed.get("error_message") or "").strip()
-        raise ExpressionError(f"not valid SQL: {message.splitlines()[0] if message else 'DuckDB cannot parse it'}")
+        first = message.splitlines()[0] if message else "DuckDB cannot parse it"
+        raise ExpressionError(f"not valid SQL: {first}")
     statements = parsed.get("statements") or []
     node = statements[0].get("node", {}) if len(statements) == 1 else {}
     plain = (
@@ -252,7 +254,7 @@ def _refusal(name: str, shown: str) -> str:
     kinds = _catalogue().get(name, set())
     if any(t in ("aggregate", "window") for t, _ in kinds):
         why = "it is an aggregate or window function, and the measure aggregates for you"
-    elif name in _CLOCK_DESPITE_CATALOGUE or any(s in ("VOLATILE", "CONSISTENT_WITHIN_QUERY") for _, s in kinds):
+    elif name in _CLOCK_DESPITE_CATALOGUE or any(clock for _, clock in kinds):
         why = _CLOCK
     elif kinds:
         why = "it is not among the functions a check may use"
@@ -272,7 +274,8 @@ def _check_column_ref(node: dict[str, Any], columns: dict[str, str] | None, unkn
     if columns is not None and name.lower() in {c.lower() for c in columns}:
         return
     if _binds_without_a_table(name):
-        raise ExpressionError(f"{name.lower()} is not allowed: {_CLOCK}; allowed functions are listed in {LISTED_IN}")
+        raise ExpressionError(f"{name.lower()} is not allowed: {_CLOCK}; "
+                              f"allowed functions are listed in {LISTED_IN}")
     if columns is not None and unknown_columns:
         raise ExpressionError(unknown_column(name, columns))
 
@@ -301,15 +304,19 @@ def _binds_without_a_table(name: str) -> bool:
 
 
 @functools.lru_cache(maxsize=1)
-def _catalogue() -> dict[str, set[tuple[str, str | None]]]:
-    """Each DuckDB function name with its kinds and stabilities (for refusal messages only)."""
+def _catalogue() -> dict[str, set[tuple[str, bool]]]:
+    """Each DuckDB function name with its kinds, and whether one of its forms changes from run to
+    run (for refusal messages only). Forms over times with a time zone read only the TimeZone
+    setting, which runs fix to UTC: they are no reason to call a function one of the clock."""
     with _lock:
         rows = _connection().execute(
-            "SELECT DISTINCT lower(function_name), function_type, stability FROM duckdb_functions()"
+            "SELECT DISTINCT lower(function_name), function_type, stability IN ('VOLATILE', "
+            "'CONSISTENT_WITHIN_QUERY') AND NOT list_has_any(parameter_types, ['TIMESTAMP WITH TIME ZONE', "
+            "'TIMESTAMPTZ_NS', 'TIME WITH TIME ZONE']) FROM duckdb_functions()"
         ).fetchall()
-    found: dict[str, set[tuple[str, str | None]]] = {}
-    for name, kind, stability in rows:
-        found.setdefault(name, set()).add((kind, stability))
+    found: dict[str, set[tuple[str, bool]]] = {}
+    for name, kind, clock in rows:
+        found.setdefault(name, set()).add((kind, bool(clock)))
     return found
 
 

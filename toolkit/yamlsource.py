@@ -188,7 +188,8 @@ def _convert(node: yaml.Node, path: KeyPath, located: Located, problems: list[Pr
         for key_node, value_node in node.value:
             if not isinstance(key_node, yaml.ScalarNode):
                 kind = "a mapping" if isinstance(key_node, yaml.MappingNode) else "a list"
-                problems.append(Problem(located.file, key_node.start_mark.line + 1, f"keys must be text, not {kind}"))
+                problems.append(Problem(located.file, key_node.start_mark.line + 1,
+                                        f"keys must be text, not {kind}"))
                 continue
             key = _scalar(key_node, located, problems)
             if key is _UNREADABLE:
