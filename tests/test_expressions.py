@@ -153,9 +153,14 @@ def test_clock_words_are_refused_without_a_schema_too() -> None:
     assert parse_expression("ended_at < epoch_ms(started_ms)", None).columns == ("ended_at", "started_ms")
 
 
-def test_a_source_column_named_like_a_clock_word_is_a_column() -> None:
-    parsed = parse_expression('"current_date" < day', COLUMNS | {"current_date": "DATE"})
-    assert parsed.columns == ("current_date", "day")
+@pytest.mark.parametrize("expression", ['"current_date" < day', "current_date < day", "CURRENT_DATE < day"])
+def test_a_source_column_named_like_a_clock_word_is_a_column_a_run_reads(expression: str) -> None:
+    # a run projects Expr.columns from the lake; a column left out there would leave DuckDB to bind
+    # the word to the clock
+    parsed = parse_expression(expression, COLUMNS | {"current_date": "DATE"})
+    assert sorted(parsed.columns) == ["current_date", "day"]
+    assert duckdb.connect().execute(f"SELECT {parsed.sql} FROM (SELECT DATE '2000-01-01' AS current_date, "
+                                    "DATE '2000-01-02' AS day)").fetchone() == (True,)
 
 
 def _expressions_in(text: str) -> list[str]:

@@ -110,11 +110,15 @@ def parse_expression(text: str, columns: dict[str, str] | None) -> Expr:
     # the regenerated SQL below is what runs, and it is checked in full.
     written = _duckdb_tree(text.strip(), strict=False)
     if written is not None:
-        _check_tree(written, columns, unknown_columns=False)
+        _check_tree(written, columns, unknown_columns=False, found=[])
     used = _check_columns(tree, columns)
     sql = tree.sql(dialect="duckdb", identify=True)
-    # As it will run: authoritative.
-    _check_tree(_duckdb_tree(sql, strict=True), columns, unknown_columns=True)
+    # As it will run: authoritative. A column DuckDB reads that sqlglot took for something else (a
+    # source column named current_date, written bare) is read too: left out of the columns a run
+    # projects, DuckDB would bind the word to the clock instead.
+    found: list[str] = []
+    _check_tree(_duckdb_tree(sql, strict=True), columns, unknown_columns=True, found=found)
+    used += [name for name in dict.fromkeys(found) if name not in used]
     return Expr(text=text.strip(), sql=sql, columns=tuple(used))
 
 
@@ -194,35 +198,36 @@ def _duckdb_tree(sql: str, strict: bool) -> dict[str, Any] | None:
     return node["select_list"][0]
 
 
-def _check_tree(node: Any, columns: dict[str, str] | None, unknown_columns: bool,
+def _check_tree(node: Any, columns: dict[str, str] | None, unknown_columns: bool, found: list[str],
                 lambdas: frozenset[str] = frozenset()) -> None:
-    """Walk DuckDB's tree: every node of an allowed kind, every call allowed, every column known."""
+    """Walk DuckDB's tree: every node of an allowed kind, every call allowed, every column known
+    (the source columns it reads are added to ``found``)."""
     if isinstance(node, list):
         for item in node:
-            _check_tree(item, columns, unknown_columns, lambdas)
+            _check_tree(item, columns, unknown_columns, found, lambdas)
         return
     if not isinstance(node, dict):
         return
     kind = node.get("class")
     if kind is None:
         for value in node.values():
-            _check_tree(value, columns, unknown_columns, lambdas)
+            _check_tree(value, columns, unknown_columns, found, lambdas)
         return
     if kind not in _NODE_CLASSES:
         raise ExpressionError(_node_refusal(kind, node))
     if kind == "COLUMN_REF":
-        _check_column_ref(node, columns, unknown_columns, lambdas)
+        _check_column_ref(node, columns, unknown_columns, found, lambdas)
         return
     if kind == "LAMBDA":
         params = frozenset(name.lower() for name in _lambda_params(node.get("lhs")))
-        _check_tree(node.get("expr"), columns, unknown_columns, lambdas | params)
+        _check_tree(node.get("expr"), columns, unknown_columns, found, lambdas | params)
         return
     if kind == "FUNCTION":
         _check_function(node)
     if kind == "OPERATOR" and node.get("type") not in _OPERATORS:
         raise ExpressionError(f"{str(node.get('type')).lower()} is not allowed in expressions")
     for value in node.values():
-        _check_tree(value, columns, unknown_columns, lambdas)
+        _check_tree(value, columns, unknown_columns, found, lambdas)
 
 
 def _node_refusal(kind: str, node: dict[str, Any]) -> str:
@@ -264,14 +269,16 @@ def _refusal(name: str, shown: str) -> str:
 
 
 def _check_column_ref(node: dict[str, Any], columns: dict[str, str] | None, unknown_columns: bool,
-                      lambdas: frozenset[str]) -> None:
+                      found: list[str], lambdas: frozenset[str]) -> None:
     names = [str(n) for n in node.get("column_names") or []]
     if len(names) != 1:
         raise ExpressionError(f"write column '{names[-1] if names else ''}' without a table name")
     name = names[0]
     if name.lower() in lambdas:
         return
-    if columns is not None and name.lower() in {c.lower() for c in columns}:
+    by_lower = {c.lower(): c for c in columns or ()}
+    if name.lower() in by_lower:
+        found.append(name if name in by_lower.values() else by_lower[name.lower()])
         return
     if _binds_without_a_table(name):
         raise ExpressionError(f"{name.lower()} is not allowed: {_CLOCK}; "
