@@ -257,3 +257,86 @@ def test_engine_spark_loads_with_its_settings(make_project) -> None:
     assert engine == project.engine
     assert (engine.name, engine.spark_master) == ("spark", "spark://lake-host:7077")
     assert engine.spark_conf == (("spark.executor.memory", "4g"), ("spark.sql.adaptive.enabled", "true"))
+
+
+# Functions of the clock or of chance, as written in a check: two runs over the same files would
+# count differently. (expression, the function as the message names it)
+CLOCK_CASES = [
+    ("ended_at < localtimestamp", "localtimestamp"),
+    ("ended_at < current_localtimestamp()", "current_localtimestamp()"),
+    ('ended_at < "now"()', "now()"),
+    ("uuidv4() IS NOT NULL", "uuidv4()"),
+    ("uuidv7() IS NOT NULL", "uuidv7()"),
+    ("txid_current() > 0", "txid_current()"),
+    ("random() < 0.5", "random()"),
+    ("ended_at > now()", "now()"),
+    ("CAST(ended_at AS DATE) = current_date", "current_date"),
+    ("gen_random_uuid() IS NOT NULL", "gen_random_uuid()"),
+    ("ended_at > current_timestamp - INTERVAL 1 DAY", "current_timestamp"),
+    ("today() > DATE '2026-11-01'", "today()"),
+    ("age(ended_at) < INTERVAL 1 DAY", "age()"),
+]
+CLOCK_WORDS = "is not allowed: decisions use data time, never the clock or chance; allowed functions are listed in"
+
+
+@pytest.mark.parametrize("expression,shown", CLOCK_CASES, ids=[c[1] for c in CLOCK_CASES])
+def test_the_clock_and_chance_are_refused_in_where_with_the_line(make_project, expression: str, shown: str) -> None:
+    import json
+
+    text = variant("by: [site, title_id]", f"where: {json.dumps(expression)}\nby: [site, title_id]")
+    project = make_project({"title_errors.yml": text})
+    with pytest.raises(ProjectInvalid) as caught:
+        load_project(project)
+    assert [str(p) for p in caught.value.problems] == [
+        f"{project.parent}/checks/title_errors.yml:4: where: {shown} {CLOCK_WORDS} README.md under 'SQL expressions'"]
+    assert not (project.parent / "warehouse.duckdb").exists()
+
+
+# each kind of expression key, in a check file and in plimsoll.yml: (file, text, line, key)
+CLOCK_KEY_CASES = [
+    ("bad", "title_errors.yml", variant("  bad: error_code IS NOT NULL", "  bad: error_code IS NOT NULL AND random() < 0.5"),
+     7, "measure.bad: random()"),
+    ("numerator", "title_errors.yml", variant(
+        "  kind: rate\n  bad: error_code IS NOT NULL\n  split: error_code",
+        "  kind: ratio\n  numerator: epoch_ms(ended_at) - epoch_ms(localtimestamp)\n  denominator: play_ms").replace(
+        "  min_bad: 3\n", ""), 7, "measure.numerator: localtimestamp"),
+    ("denominator", "title_errors.yml", variant(
+        "  kind: rate\n  bad: error_code IS NOT NULL\n  split: error_code",
+        "  kind: ratio\n  numerator: play_ms\n  denominator: play_ms + txid_current()").replace(
+        "  min_bad: 3\n", ""), 8, "measure.denominator: txid_current()"),
+    ("of", "title_errors.yml", variant(
+        "  kind: rate\n  bad: error_code IS NOT NULL\n  split: error_code",
+        "  kind: quantile\n  of: startup_ms * uuidv7()::VARCHAR::INTEGER\n  q: 0.9").replace(
+        "  min_bad: 3\n", ""), 7, "measure.of: uuidv7()"),
+]
+
+
+@pytest.mark.parametrize("name,file,text,line,words", CLOCK_KEY_CASES, ids=[c[0] for c in CLOCK_KEY_CASES])
+def test_the_clock_and_chance_are_refused_in_every_expression_key(make_project, name: str, file: str, text: str,
+                                                                   line: int, words: str) -> None:
+    project = make_project({file: text})
+    with pytest.raises(ProjectInvalid) as caught:
+        load_project(project)
+    assert [str(p) for p in caught.value.problems] == [
+        f"{project.parent}/checks/{file}:{line}: {words} {CLOCK_WORDS} README.md under 'SQL expressions'"]
+
+
+def test_the_clock_is_refused_in_a_source_exclude_with_the_line(make_project) -> None:
+    from conftest import PROJECT, FIXTURE_LAKE
+
+    text = PROJECT.format(lake=FIXTURE_LAKE).replace("exclude: is_bot", "exclude: is_bot OR ended_at > \"now\"()")
+    project = make_project({"title_errors.yml": GOOD}, project=text)
+    with pytest.raises(ProjectInvalid) as caught:
+        load_project(project)
+    assert [str(p) for p in caught.value.problems] == [
+        f"{project}:8: sources.sessions.exclude: now() {CLOCK_WORDS} README.md under 'SQL expressions'"]
+
+
+def test_validate_command_names_the_clock_function_and_its_line(make_project) -> None:
+    text = variant("by: [site, title_id]", "where: ended_at < localtimestamp\nby: [site, title_id]")
+    project = make_project({"title_errors.yml": text})
+    result = CliRunner().invoke(main, ["validate", "-p", str(project)])
+    assert result.exit_code == 2, result.output
+    assert result.output.strip().endswith(
+        "checks/title_errors.yml:4: where: localtimestamp is not allowed: decisions use data time, never the "
+        "clock or chance; allowed functions are listed in README.md under 'SQL expressions'")

@@ -29,7 +29,7 @@ from .problems import PlimsollError, Problem, ProjectInvalid
 from .project import validate_check
 from .runner import run, select_checks
 from .warehouse import connect
-from .yamlsource import Located, dotted, load, parse_value
+from .yamlsource import Located, Refused, dotted, load, parse_value
 
 Progress = Callable[[str], None]
 _DAY = timedelta(days=1)
@@ -84,6 +84,9 @@ def parse_override(text: str, option: str = "--set") -> Override:
         raise _invalid(where, "the check's name cannot be overridden; backtest it under its own name")
     try:
         value = parse_value(raw.strip())
+    except Refused as err:
+        shown = where if len(where) <= 80 else where[:77] + "..."  # a hostile value can be megabytes
+        raise _invalid(shown, f"the value is refused: {err}") from None
     except yaml.YAMLError as err:
         raise _invalid(where, f"the value is not valid YAML: {str(err).splitlines()[0]}") from None
     return Override(f"{check + ':' if check else ''}{'.'.join(path)}={raw.strip()}", path, value, check)
