@@ -107,6 +107,48 @@ def hook(monkeypatch: pytest.MonkeyPatch) -> Iterator[Hook]:
     server.server_close()
 
 
+class Trickle:
+    """An endpoint that answers one byte a second for ever: in its status line and headers, or in its body."""
+
+    def __init__(self, where: str) -> None:
+        self.where, self.stop, self.requests = where, threading.Event(), 0
+        hook = self
+
+        class Handler(BaseHTTPRequestHandler):
+            def log_message(self, *args: object) -> None:
+                pass
+
+            def do_POST(self) -> None:
+                self.rfile.read(int(self.headers.get("Content-Length", 0)))
+                hook.requests += 1
+                if hook.where == "body":
+                    self.send_response(200)
+                    self.send_header("Content-Length", "1000000")
+                    self.end_headers()
+                    self.wfile.flush()
+                    start = b""
+                else:
+                    start = b"HTTP/1.1 200 OK\r\nX-Slow: "
+                self.close_connection = True
+                try:
+                    for byte in start:
+                        self.wfile.write(bytes([byte]))
+                    while not hook.stop.wait(1.0):
+                        self.wfile.write(b"a")
+                except OSError:
+                    pass  # the client gave up
+
+        self.server = ThreadingHTTPServer(("127.0.0.1", 0), Handler)
+        self.server.daemon_threads = True
+        self.url = f"http://127.0.0.1:{self.server.server_address[1]}/slow"
+        threading.Thread(target=self.server.serve_forever, daemon=True).start()
+
+    def close(self) -> None:
+        self.stop.set()
+        self.server.shutdown()
+        self.server.server_close()
+
+
 class PretendClock(Clock):
     """Starts at the real time; sleeping only moves it forward."""
 
@@ -117,7 +159,7 @@ class PretendClock(Clock):
     def now(self) -> datetime:
         return self.current
 
-    def sleep(self, seconds: float) -> None:
+    def sleep(self, seconds: float, stop: threading.Event | None = None) -> None:
         self.slept.append(seconds)
         self.current += timedelta(seconds=seconds)
 
@@ -351,3 +393,35 @@ def test_a_success_not_yet_recorded_is_sent_again_with_the_same_key(tmp_path: Pa
     first, resent = hook.received[0], hook.received[1]
     assert (first.key, first.body) == (resent.key, resent.body)  # at least once, with the same key and bytes
     assert len({r.key for r in hook.received[1:]}) == 4
+
+
+@pytest.mark.parametrize("where", ["headers", "body"])
+def test_a_trickling_endpoint_is_cut_at_its_timeout_and_never_delays_the_others(
+        tmp_path: Path, hook: Hook, where: str) -> None:
+    slow = Trickle(where)
+    try:
+        project = built(tmp_path, webhooks(slow.url, hook.url, timeout="2s"))
+        done: list = []
+        worker = threading.Thread(target=lambda: done.append(notify(project)), daemon=True)
+        worker.start()
+        worker.join(30)  # a generous bound: proves notify does not hang, measures nothing
+        assert not worker.is_alive(), "notify hung on an endpoint that trickles its answer"
+        (result,) = done
+    finally:
+        slow.close()
+    assert slow.requests == 1  # the slow endpoint failed once and rests until its backoff is over
+    assert result.exit_code == 1 and len(result.delivered) == 4 and len(hook.accepted) == 4
+    con = duckdb.connect(str(project.warehouse), read_only=True)
+    try:
+        rows = con.execute("SELECT webhook, status, attempts, last_error, last_attempt_at, delivered_at "
+                           "FROM outbox ORDER BY seq").fetchall()
+    finally:
+        con.close()
+    slow_rows = [r for r in rows if r[0] == "hook0"]
+    healthy = [r for r in rows if r[0] == "hook1"]
+    assert [(s, a, e) for _, s, a, e, _, _ in slow_rows] == [
+        ("queued", 1, "no answer within 2 s"), ("queued", 0, None), ("queued", 0, None), ("queued", 0, None)]
+    assert [s for _, s, *_ in healthy] == ["delivered"] * 4
+    # every healthy delivery was recorded before the slow endpoint's deadline ran out
+    cut_at = slow_rows[0][4]
+    assert all(delivered < cut_at for *_, delivered in healthy)

@@ -2,12 +2,15 @@
 
 ``plimsoll notify`` first queues, in one transaction, every alert event not yet in the ``outbox`` table
 once per webhook (``queries/outbox.sql`` decides which 'updated' events are worth sending). It then
-POSTs each due row with its ``Idempotency-Key`` and commits the outcome of every POST at once, so a
-success is never sent again, a failure is retried with exponential backoff up to ``max_attempts``, and
-a crash between a POST's success and its commit resends the same bytes with the same key (delivery is
-at least once). The warehouse is held only while queuing and recording, never during a POST, so a
-slow or dead endpoint never keeps ``plimsoll run`` out; ``plimsoll run`` itself never touches the
-network. Times in the outbox are wall clock (UTC): delivery happens in real time, not data time.
+delivers: one worker thread per webhook POSTs that webhook's due rows in order, each with its
+``Idempotency-Key``, while the calling thread alone writes the warehouse, committing the outcome of
+every POST at once. So a success is never sent again, a failure is retried with exponential backoff
+up to ``max_attempts``, and a crash between a POST's success and its commit resends the same bytes with
+the same key (delivery is at least once). A webhook's ``timeout`` bounds a whole request (connect,
+send, status, headers, body), and one endpoint's trouble never delays another's deliveries. The
+warehouse is held only while queuing and recording, never during a POST, so a slow or dead endpoint
+never keeps ``plimsoll run`` out; ``plimsoll run`` itself never touches the network. Times in the
+outbox are wall clock (UTC): delivery happens in real time, not data time.
 """
 
 from __future__ import annotations
@@ -15,6 +18,9 @@ from __future__ import annotations
 import fcntl
 import http.client
 import os
+import queue
+import socket
+import threading
 import time
 import urllib.error
 import urllib.request
@@ -42,8 +48,12 @@ class Clock:
     def now(self) -> datetime:
         return datetime.now(timezone.utc).replace(tzinfo=None)
 
-    def sleep(self, seconds: float) -> None:
-        time.sleep(seconds)
+    def sleep(self, seconds: float, stop: threading.Event | None = None) -> None:
+        """Wait ``seconds``, or less once ``stop`` is set."""
+        if stop is None:
+            time.sleep(seconds)
+        else:
+            stop.wait(seconds)
 
 
 @dataclass
@@ -59,6 +69,8 @@ class Attempt:
     attempts: int
     error: str | None = None
     next_attempt_at: datetime | None = None
+    key: str = ""                  # the row's idempotency key
+    at: datetime | None = None     # when the POST ended (wall clock, UTC)
 
 
 @dataclass
@@ -98,27 +110,8 @@ def notify(project: Project, clock: Clock | None = None, retry_for: timedelta = 
     with _single_notifier(project):
         with _warehouse(project) as con:
             _queue(con, project, clock.now(), retry_abandoned, result)
-        hooks = {h.name: h for h in project.webhooks}
-        deadline = clock.now() + retry_for
-        # an endpoint that failed is left alone until its failed row is due again, so a dead
-        # endpoint costs one attempt per pass, not one per queued event
-        resting: dict[str, datetime] = {}
-        while True:
-            now = clock.now()
-            ready = [name for name in hooks if resting.get(name, now) <= now]
-            with _warehouse(project) as con:
-                due = _due(con, ready, now)
-            for row in due:
-                if row[1] in resting and resting[row[1]] > now:
-                    continue
-                attempt = _deliver(project, hooks[row[1]], row, clock)
-                result.attempts.append(attempt)
-                if attempt.next_attempt_at is not None:  # failed, to be retried: let the endpoint rest
-                    resting[row[1]] = attempt.next_attempt_at
-            upcoming = _next_due(project, list(hooks), resting)
-            if upcoming is None or upcoming > deadline:
-                break
-            clock.sleep(max(0.0, (upcoming - clock.now()).total_seconds()))
+            pending = _pending(con, [h.name for h in project.webhooks])
+        _deliver_all(project, pending, clock, clock.now() + retry_for, result)
         with _warehouse(project) as con:
             _count(con, result)
     return result
@@ -151,35 +144,119 @@ def _queue(con: duckdb.DuckDBPyConnection, project: Project, now: datetime, retr
         raise
 
 
-def _due(con: duckdb.DuckDBPyConnection, names: list[str], now: datetime) -> list[tuple]:
-    return con.execute(
+@dataclass
+class _Row:
+    """A queued outbox row as its webhook's worker keeps it between attempts."""
+
+    key: str
+    payload: str
+    attempts: int
+    next_at: datetime
+    event: str
+    alert_id: str
+    key_text: str
+
+
+def _pending(con: duckdb.DuckDBPyConnection, names: list[str]) -> dict[str, list[_Row]]:
+    """Every queued row of the configured webhooks, per webhook, in queue order."""
+    rows = con.execute(
         """
-        SELECT o.idempotency_key, o.webhook, o.payload, o.attempts, o.event, o.alert_id,
+        SELECT o.webhook, o.idempotency_key, o.payload, o.attempts, o.next_attempt_at, o.event, o.alert_id,
                coalesce(a.key_text, '')
         FROM outbox AS o
         LEFT JOIN alerts AS a ON a.alert_id = o.alert_id
-        WHERE o.status = 'queued' AND o.next_attempt_at <= $now AND list_contains($h, o.webhook)
+        WHERE o.status = 'queued' AND list_contains($h, o.webhook)
         ORDER BY o.seq
         """,
-        {"now": now, "h": names},
+        {"h": names},
     ).fetchall()
+    pending: dict[str, list[_Row]] = {}
+    for webhook, *fields in rows:
+        pending.setdefault(webhook, []).append(_Row(*fields))
+    return pending
 
 
-def _next_due(project: Project, names: list[str], resting: dict[str, datetime]) -> datetime | None:
-    """When the next queued row may be tried, given the endpoints resting after a failure."""
-    with _warehouse(project) as con:
-        rows = con.execute("SELECT webhook, min(next_attempt_at) FROM outbox WHERE status = 'queued' "
-                           "AND list_contains($h, webhook) GROUP BY webhook", {"h": names}).fetchall()
-    times = [max(first, resting.get(name, first)) for name, first in rows]
-    return min(times, default=None)
+def _deliver_all(project: Project, pending: dict[str, list[_Row]], clock: Clock, until: datetime,
+                 result: NotifyResult) -> None:
+    """Step 2: one worker per webhook POSTs its rows; this thread alone records every outcome.
+
+    Each webhook is served independently, so an endpoint that hangs, trickles or fails delays none of
+    the others. DuckDB is only touched here, one committed statement per POST, in the order the POSTs
+    end; a worker waits for its outcome to be recorded before its next POST, so at most one success
+    per webhook can be unrecorded when the process dies.
+    """
+    outcomes: queue.Queue = queue.Queue()
+    stop = threading.Event()
+    workers = [threading.Thread(target=_worker, name=f"notify {hook.name}", daemon=True,
+                                args=(project, hook, pending[hook.name], clock, until, outcomes, stop))
+               for hook in project.webhooks if pending.get(hook.name)]
+    for worker in workers:
+        worker.start()
+    running, failure = len(workers), None
+    while running:
+        item = outcomes.get()
+        if item is None:
+            running -= 1
+            continue
+        if isinstance(item, BaseException):
+            failure = failure or item
+            stop.set()
+            continue
+        attempt, recorded = item
+        try:
+            if failure is None:  # after a failure, outcomes are left unrecorded: sent again next time
+                _record(project, attempt)
+                result.attempts.append(attempt)
+        except BaseException as err:
+            failure = err
+            stop.set()
+        finally:
+            recorded.set()
+    for worker in workers:
+        worker.join()
+    if failure is not None:
+        raise failure
 
 
-def _deliver(project: Project, hook: Webhook, row: tuple, clock: Clock) -> Attempt:
-    """POST one row, then record the outcome in its own committed statement straight away."""
-    key, name, payload, attempts, event, alert_id, key_text = row
-    ok, retry, error, retry_after = post(hook, payload.encode("utf-8"), key)
+def _worker(project: Project, hook: Webhook, rows: list[_Row], clock: Clock, until: datetime,
+            outcomes: queue.Queue, stop: threading.Event) -> None:
+    """One webhook's deliveries: its due rows in order, resting after a failure, until nothing is due."""
+    try:
+        resting: datetime | None = None  # after a failure the endpoint is left alone until that row is due
+        while rows and not stop.is_set():
+            now = clock.now()
+            if resting is None or resting <= now:
+                resting = None
+                for row in [r for r in rows if r.next_at <= now]:
+                    attempt = _attempt(project, hook, row, clock)
+                    recorded = threading.Event()
+                    outcomes.put((attempt, recorded))
+                    recorded.wait()
+                    if stop.is_set():
+                        return
+                    if attempt.next_attempt_at is None:
+                        rows.remove(row)
+                    else:  # failed, to be retried: the endpoint's other rows wait with it
+                        row.attempts, row.next_at = attempt.attempts, attempt.next_attempt_at
+                        resting = attempt.next_attempt_at
+                        break
+            if not rows:
+                return
+            upcoming = max(min(r.next_at for r in rows), resting or datetime.min)
+            if upcoming > until:
+                return
+            clock.sleep(max(0.0, (upcoming - clock.now()).total_seconds()), stop)
+    except BaseException as err:  # handed to the recording thread, which raises it
+        outcomes.put(err)
+    finally:
+        outcomes.put(None)
+
+
+def _attempt(project: Project, hook: Webhook, row: _Row, clock: Clock) -> Attempt:
+    """POST one row and decide what becomes of it: delivered, retried later, or abandoned."""
+    ok, retry, error, retry_after = post(hook, row.payload.encode("utf-8"), row.key)
     now = clock.now()
-    attempts += 1
+    attempts = row.attempts + 1
     settings = project.notify
     if ok:
         status, next_at = "delivered", None
@@ -190,30 +267,31 @@ def _deliver(project: Project, hook: Webhook, row: tuple, clock: Clock) -> Attem
         if retry_after is not None:
             wait = min(settings.max_backoff, max(wait, retry_after))
         status, next_at = "queued", now + wait
-    try:
-        _record(project, key, status, attempts, error, now, next_at, hook.url)
-    except RunLocked as err:
-        outcome = "was delivered" if ok else "failed"
-        raise RunLocked(f"{name}: {event} of alert {alert_id} {outcome} but could not be recorded: {err}; "
-                        "the next `plimsoll notify` sends it again with the same Idempotency-Key") from None
-    return Attempt(name, event, alert_id, key_text, ok, status, attempts, error, next_at)
+    return Attempt(hook.name, row.event, row.alert_id, row.key_text, ok, status, attempts, error, next_at,
+                   row.key, now)
 
 
-def _record(project: Project, key: str, status: str, attempts: int, error: str | None, now: datetime,
-            next_at: datetime | None, url: str) -> None:
+def _record(project: Project, attempt: Attempt) -> None:
     """One committed statement per POST, so a recorded success is never sent again."""
-    with _warehouse(project, wait=RECORD_WAIT) as con:
-        con.execute(
-            """
-            UPDATE outbox
-            SET status = $status, attempts = $attempts, last_error = $error, last_attempt_at = $now,
-                next_attempt_at = $next, delivered_at = CASE WHEN $status = 'delivered' THEN $now END,
-                url = $url
-            WHERE idempotency_key = $key AND status = 'queued'
-            """,
-            {"status": status, "attempts": attempts, "error": error, "now": now, "next": next_at,
-             "key": key, "url": url},
-        )
+    url = next((h.url for h in project.webhooks if h.name == attempt.webhook), None)
+    try:
+        with _warehouse(project, wait=RECORD_WAIT) as con:
+            con.execute(
+                """
+                UPDATE outbox
+                SET status = $status, attempts = $attempts, last_error = $error, last_attempt_at = $now,
+                    next_attempt_at = $next, delivered_at = CASE WHEN $status = 'delivered' THEN $now END,
+                    url = coalesce($url, url)
+                WHERE idempotency_key = $key AND status = 'queued'
+                """,
+                {"status": attempt.status, "attempts": attempt.attempts, "error": attempt.error, "now": attempt.at,
+                 "next": attempt.next_attempt_at, "key": attempt.key, "url": url},
+            )
+    except RunLocked as err:
+        outcome = "was delivered" if attempt.ok else "failed"
+        raise RunLocked(f"{attempt.webhook}: {attempt.event} of alert {attempt.alert_id} {outcome} but could not "
+                        f"be recorded: {err}; the next `plimsoll notify` sends it again with the same "
+                        "Idempotency-Key") from None
 
 
 class _NoRedirects(urllib.request.HTTPRedirectHandler):
@@ -223,18 +301,125 @@ class _NoRedirects(urllib.request.HTTPRedirectHandler):
         return None
 
 
-_OPENER = urllib.request.build_opener(_NoRedirects())
+class _Deadline:
+    """A time limit for a whole request: when it passes, every socket of the request is shut down.
+
+    A socket timeout bounds each read, not the request, so a server that trickles its answer a byte
+    at a time could hold a POST for ever; shutting the socket down ends whatever the request is
+    doing (connecting through a proxy, sending, waiting for the status, reading headers or body).
+    """
+
+    def __init__(self, seconds: float) -> None:
+        self.seconds = seconds
+        self.ends = time.monotonic() + seconds
+        self.expired = False
+        self._sockets: list[socket.socket] = []
+        self._lock = threading.Lock()
+        self._timer = threading.Timer(seconds, self._expire)
+        self._timer.daemon = True
+
+    def remaining(self) -> float:
+        return max(0.001, self.ends - time.monotonic())
+
+    def watch(self, sock: socket.socket) -> None:
+        with self._lock:
+            self._sockets.append(sock)
+            if self.expired:
+                _shut(sock)
+
+    def _expire(self) -> None:
+        with self._lock:
+            self.expired = True
+            for sock in self._sockets:
+                _shut(sock)
+
+    def __enter__(self) -> "_Deadline":
+        self._timer.start()
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self._timer.cancel()
+
+
+def _shut(sock: socket.socket) -> None:
+    try:  # the plain socket's shutdown, also for a TLS socket: its SSL object stays with the reading thread
+        socket.socket.shutdown(sock, socket.SHUT_RDWR)
+    except OSError:
+        pass  # already closed
+
+
+def _deadline_connection(base: type[http.client.HTTPConnection], deadline: _Deadline) -> type:
+    """``base`` whose sockets (to the endpoint or a proxy, before and after TLS) obey ``deadline``."""
+
+    class Connection(base):  # type: ignore[misc, valid-type]
+        def __init__(self, *args: object, **kwargs: object) -> None:
+            super().__init__(*args, **kwargs)
+            create = self._create_connection
+
+            def create_watched(address, timeout=None, source_address=None):  # type: ignore[no-untyped-def]
+                sock = create(address, deadline.remaining(), source_address)
+                deadline.watch(sock)
+                return sock
+
+            self._create_connection = create_watched
+
+        def connect(self) -> None:
+            super().connect()
+            deadline.watch(self.sock)
+
+    return Connection
+
+
+class _DeadlineHTTP(urllib.request.HTTPHandler):
+    def __init__(self, deadline: _Deadline) -> None:
+        super().__init__()
+        self.deadline = deadline
+
+    def http_open(self, req):  # type: ignore[no-untyped-def]
+        return self.do_open(_deadline_connection(http.client.HTTPConnection, self.deadline), req)
+
+
+class _DeadlineHTTPS(urllib.request.HTTPSHandler):
+    def __init__(self, deadline: _Deadline) -> None:
+        super().__init__()
+        self.deadline = deadline
+
+    def https_open(self, req):  # type: ignore[no-untyped-def]
+        return self.do_open(_deadline_connection(http.client.HTTPSConnection, self.deadline), req,
+                            context=self._context)
+
+
+class _Late(Exception):
+    """The request's deadline passed."""
 
 
 def post(hook: Webhook, body: bytes, key: str) -> tuple[bool, bool, str | None, timedelta | None]:
-    """POST ``body``: (delivered, worth retrying, error, the server's Retry-After)."""
+    """POST ``body`` within the webhook's timeout: (delivered, worth retrying, error, the server's Retry-After)."""
     request = urllib.request.Request(hook.url, data=body, method="POST", headers={
         "Content-Type": "application/json", "Idempotency-Key": key, "User-Agent": f"plimsoll/{__version__}",
     })
+    seconds = hook.timeout.total_seconds()
+    deadline = _Deadline(seconds)
+    opener = urllib.request.build_opener(_NoRedirects(), _DeadlineHTTP(deadline), _DeadlineHTTPS(deadline))
     try:
-        with _OPENER.open(request, timeout=hook.timeout.total_seconds()) as response:
-            response.read(1 << 16)
+        with deadline:
+            try:
+                with opener.open(request, timeout=seconds) as response:
+                    response.read(1 << 16)
+            except urllib.error.HTTPError as err:
+                err.close()
+                if deadline.expired:
+                    raise _Late from None
+                raise
+            except Exception:
+                if deadline.expired:
+                    raise _Late from None
+                raise
+            if deadline.expired:  # the answer did not end in time: the body was cut off
+                raise _Late
         return True, False, None, None
+    except _Late:
+        return False, True, f"no answer within {seconds:g} s", None
     except urllib.error.HTTPError as err:
         retry = err.code in (408, 425, 429) or err.code >= 500
         where = f" to {err.headers.get('Location')}" if 300 <= err.code < 400 else ""
@@ -242,7 +427,7 @@ def post(hook: Webhook, body: bytes, key: str) -> tuple[bool, bool, str | None, 
     except urllib.error.URLError as err:
         return False, True, f"cannot reach {hook.url}: {_reason(err.reason)}", None
     except TimeoutError:
-        return False, True, f"no answer within {hook.timeout.total_seconds():g} s", None
+        return False, True, f"no answer within {seconds:g} s", None
     except (OSError, http.client.HTTPException) as err:
         return False, True, f"connection failed: {_reason(err)}", None
 

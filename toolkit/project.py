@@ -48,7 +48,8 @@ PROJECT_KEYS = (
 WEBHOOK_KEYS = (
     Key("url", "text", "http:// or https:// URL that receives a JSON POST per alert event", True),
     Key("name", "text", "the webhook's identity in the outbox and in idempotency keys (default: the url)"),
-    Key("timeout", "duration", "how long one POST may take", False, "10s"),
+    Key("timeout", "duration", "how long one POST may take, from connecting to the last byte of the answer",
+        False, "10s"),
 )
 NOTIFY_KEYS = (
     Key("growth", "number", "send an 'updated' event once affected_sessions grew by this share over the last "
