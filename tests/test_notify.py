@@ -284,7 +284,7 @@ def test_permanent_refusals_are_not_retried_and_redirects_not_followed(tmp_path:
     project = built(tmp_path, webhooks(hook.url))
     result = notify(project, clock=PretendClock(), retry_for=timedelta(minutes=5))
     assert [a.error for a in result.attempts[:2]] == [
-        "HTTP 404 Not Found", "HTTP 302 Found to http://127.0.0.1:1/elsewhere"]
+        "HTTP 404 Not Found", "HTTP 302 Found to http://127.0.0.1:1 (not followed)"]
     assert [a.status for a in result.attempts] == ["abandoned", "abandoned", "delivered", "delivered"]
     assert len(hook.received) == 4  # nothing reached the redirect target or was sent twice
 
@@ -425,3 +425,103 @@ def test_a_trickling_endpoint_is_cut_at_its_timeout_and_never_delays_the_others(
     # every healthy delivery was recorded before the slow endpoint's deadline ran out
     cut_at = slow_rows[0][4]
     assert all(delivered < cut_at for *_, delivered in healthy)
+
+
+def all_outbox_text(project) -> str:
+    """Every value of every outbox row, as text."""
+    con = duckdb.connect(str(project.warehouse), read_only=True)
+    try:
+        return "\n".join(repr(row) for row in con.execute("SELECT * FROM outbox").fetchall())
+    finally:
+        con.close()
+
+
+def test_a_token_in_the_url_is_never_stored_or_printed(tmp_path: Path, hook: Hook) -> None:
+    """Webhooks without names whose URLs carry a token in path and query: one refuses connections, one
+    answers 500, one redirects to a URL that carries the token again."""
+    token = "T0KEN-8f3e2a9c71d4"
+    hook.script = ["500", "302"] * 10
+    refused = f"http://127.0.0.1:9/hooks/{token}?auth={token}"
+    failing = hook.url + f"/{token}?auth={token}"
+    text = (f"webhooks:\n  - url: '{refused}'\n    timeout: 1s\n  - url: '{failing}'\n    timeout: 1s\n"
+            "notify:\n  backoff: 1s\n  max_backoff: 4s\n")
+    project_file = known_project(tmp_path, text)
+    assert CliRunner().invoke(main, ["run", "-p", str(project_file)]).exit_code == 0
+    printed = CliRunner().invoke(main, ["notify", "-p", str(project_file)])
+    assert printed.exit_code == 1, printed.output
+    time.sleep(1.1)  # the second attempt (a redirect) after the 1 s backoff, in real time
+    printed_again = CliRunner().invoke(main, ["notify", "-p", str(project_file)])
+    assert [r.behaviour for r in hook.received][:2] == ["500", "302"]
+    output = printed.output + printed_again.output
+    assert "cannot reach http://127.0.0.1:9: " in output and "HTTP 500 Internal Server Error" in output
+    assert "HTTP 302 Found to http://127.0.0.1:1 (not followed)" in output
+    stored = all_outbox_text(load_project(project_file))
+    assert "http://127.0.0.1:9'" in stored and "cannot reach http://127.0.0.1:9: " in stored
+    for secret in (token, "/hooks/", "auth="):
+        assert secret not in output and secret not in stored
+
+
+def test_a_header_takes_its_value_from_an_environment_variable(tmp_path: Path, hook: Hook,
+                                                                monkeypatch: pytest.MonkeyPatch) -> None:
+    secret = "Bearer s3cr3t-4b1d9e"
+    monkeypatch.setenv("FERNHILL_HOOK_AUTH", secret)
+    hook.script = ["500"]
+    text = (f"webhooks:\n  - name: on-call\n    url: {hook.url}\n    timeout: 1s\n"
+            "    headers:\n      Authorization: FERNHILL_HOOK_AUTH\n      X-Team: FERNHILL_TEAM\n"
+            "notify:\n  backoff: 1s\n")
+    monkeypatch.setenv("FERNHILL_TEAM", "playback")
+    project_file = known_project(tmp_path, text)
+    assert CliRunner().invoke(main, ["run", "-p", str(project_file)]).exit_code == 0
+    printed = CliRunner().invoke(main, ["notify", "-p", str(project_file), "--retry-for", "5s"])
+    assert printed.exit_code == 0, printed.output
+    assert len(hook.received) == 5 and len(hook.accepted) == 4
+    assert {(r.headers["Authorization"], r.headers["X-Team"]) for r in hook.received} == {(secret, "playback")}
+    assert secret not in printed.output and secret not in all_outbox_text(load_project(project_file))
+    assert all(secret.encode() not in r.body for r in hook.received)
+
+
+def test_a_missing_header_variable_sends_nothing_to_that_webhook(tmp_path: Path, hook: Hook,
+                                                                 monkeypatch: pytest.MonkeyPatch) -> None:
+    monkeypatch.delenv("FERNHILL_HOOK_AUTH", raising=False)
+    other = Hook()
+    server = ThreadingHTTPServer(("127.0.0.1", 0), _handler(other))
+    server.daemon_threads = True
+    threading.Thread(target=server.serve_forever, daemon=True).start()
+    try:
+        text = (f"webhooks:\n  - name: on-call\n    url: {hook.url}\n    headers:\n"
+                "      Authorization: FERNHILL_HOOK_AUTH\n"
+                f"  - name: archive\n    url: http://127.0.0.1:{server.server_address[1]}/in\n")
+        project_file = known_project(tmp_path, text)
+        assert CliRunner().invoke(main, ["run", "-p", str(project_file)]).exit_code == 0
+        printed = CliRunner().invoke(main, ["notify", "-p", str(project_file)])
+    finally:
+        server.shutdown()
+        server.server_close()
+    assert printed.exit_code == 1, printed.output
+    assert ("  not sent   on-call: environment variable FERNHILL_HOOK_AUTH (header Authorization) is not set; "
+            "nothing sent to this webhook") in printed.output.splitlines()
+    assert hook.received == [] and len(other.accepted) == 4  # the other webhook is served as usual
+    assert printed.output.splitlines()[-1] == "notify: 4 delivered, 0 failed, 4 waiting, 0 abandoned now"
+
+
+
+def test_rows_an_earlier_version_kept_under_a_full_url_are_moved_and_scrubbed(tmp_path: Path, hook: Hook) -> None:
+    """Before webhooks without a name were known by scheme://host:port, their rows carried the full URL
+    (token included) as name and url. The upgrade keeps them as the same endpoint, sends nothing twice,
+    and leaves no token behind in those rows."""
+    token = "T0KEN-77c1e0b5aa"
+    url = hook.url + f"/{token}"
+    project = built(tmp_path, f"webhooks:\n  - url: '{url}'\n")
+    assert len(notify(project, clock=PretendClock()).delivered) == 4
+    con = duckdb.connect(str(project.warehouse))
+    try:  # as the earlier version wrote them
+        con.execute("UPDATE outbox SET webhook = $u, url = $u", {"u": url})
+        con.execute("UPDATE outbox SET last_error = 'cannot reach ' || $u || ': timed out' WHERE event = 'closed'",
+                    {"u": url})
+    finally:
+        con.close()
+    result = notify(project, clock=PretendClock())
+    assert (result.queued, result.orphaned, result.attempts) == (0, 0, [])
+    assert len(hook.received) == 4
+    assert {w for w, *_ in outbox(project)} == {project.webhooks[0].name} == {hook.url.rsplit("/", 1)[0]}
+    assert token not in all_outbox_text(project)

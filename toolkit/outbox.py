@@ -23,6 +23,7 @@ import socket
 import threading
 import time
 import urllib.error
+import urllib.parse
 import urllib.request
 from collections.abc import Iterator
 from contextlib import contextmanager
@@ -34,7 +35,7 @@ import duckdb
 
 from . import __version__, warehouse
 from .compiler import template_folder
-from .model import Project, Webhook
+from .model import Project, Webhook, endpoint
 from .outputs import printable
 from .problems import PlimsollError, RunLocked
 
@@ -79,6 +80,7 @@ class NotifyResult:
     skipped: int = 0                # 'updated' events below notify.growth, recorded as skipped
     retried_abandoned: int = 0
     orphaned: int = 0               # queued rows of webhooks no longer configured, abandoned now
+    unsent: list[str] = field(default_factory=list)  # webhooks given nothing: a header's variable is not set
     attempts: list[Attempt] = field(default_factory=list)
     waiting: int = 0                # still to be sent after this call
     failing: int = 0                # of those, rows that have failed at least once
@@ -98,8 +100,9 @@ class NotifyResult:
 
     @property
     def exit_code(self) -> int:
-        """0 when nothing is left failing; 1 when a row still waits for a retry or was given up now."""
-        return 1 if self.failing or self.abandoned_now else 0
+        """0 when nothing is left failing; 1 when a row still waits for a retry or was given up now, or a
+        webhook's header could not be made."""
+        return 1 if self.failing or self.abandoned_now or self.unsent else 0
 
 
 def notify(project: Project, clock: Clock | None = None, retry_for: timedelta = timedelta(0),
@@ -111,7 +114,14 @@ def notify(project: Project, clock: Clock | None = None, retry_for: timedelta = 
         with _warehouse(project) as con:
             _queue(con, project, clock.now(), retry_abandoned, result)
             pending = _pending(con, [h.name for h in project.webhooks])
-        _deliver_all(project, pending, clock, clock.now() + retry_for, result)
+        headers: dict[str, dict[str, str]] = {}
+        for hook in project.webhooks:
+            try:
+                headers[hook.name] = _headers(hook)
+            except PlimsollError as err:
+                result.unsent.append(str(err))
+                pending.pop(hook.name, None)
+        _deliver_all(project, pending, headers, clock, clock.now() + retry_for, result)
         with _warehouse(project) as con:
             _count(con, result)
     return result
@@ -123,8 +133,9 @@ def _queue(con: duckdb.DuckDBPyConnection, project: Project, now: datetime, retr
     names = [h.name for h in project.webhooks]
     con.execute("BEGIN TRANSACTION")
     try:
+        _upgrade(con, project)
         if project.webhooks:
-            params = {"webhooks": [{"name": h.name, "url": h.url} for h in project.webhooks],
+            params = {"webhooks": [{"name": h.name, "url": h.endpoint} for h in project.webhooks],
                       "growth": project.notify.growth, "now": now, "version": __version__}
             for statement in con.extract_statements((template_folder() / "outbox.sql").read_text(encoding="utf-8")):
                 con.execute(statement.query, {k: params[k] for k in statement.named_parameters})
@@ -142,6 +153,42 @@ def _queue(con: duckdb.DuckDBPyConnection, project: Project, now: datetime, retr
     except BaseException:
         con.execute("ROLLBACK")
         raise
+
+
+def _upgrade(con: duckdb.DuckDBPyConnection, project: Project) -> None:
+    """Rows queued by earlier versions: keep no URL beyond scheme://host:port, and move the rows of a
+    webhook without a name, once kept under its full URL, to its name now (its scheme://host:port)."""
+    configured = {h.name for h in project.webhooks}
+    for hook in project.webhooks:
+        if hook.name == hook.endpoint != hook.url and hook.url not in configured:
+            con.execute("UPDATE outbox SET webhook = $name WHERE webhook = $url", {"name": hook.name, "url": hook.url})
+    for (url,) in con.execute("SELECT DISTINCT url FROM outbox WHERE url IS NOT NULL").fetchall():
+        if endpoint(url) != url:
+            con.execute("UPDATE outbox SET url = $short, last_error = replace(last_error, $url, $short) WHERE url = $url",
+                        {"url": url, "short": endpoint(url)})
+
+
+def _headers(hook: Webhook) -> dict[str, str]:
+    """The webhook's own headers, their values read from the environment now; never shown anywhere."""
+    found = {}
+    for header, variable in hook.headers:
+        value = os.environ.get(variable)
+        if not value:
+            raise PlimsollError(f"{hook.name}: environment variable {variable} (header {header}) is not set; "
+                                "nothing sent to this webhook")
+        if any(c in value for c in "\r\n\0") or not _latin1(value):
+            raise PlimsollError(f"{hook.name}: environment variable {variable} (header {header}) holds a line break "
+                                "or a character a header cannot carry; nothing sent to this webhook")
+        found[header] = value
+    return found
+
+
+def _latin1(text: str) -> bool:
+    try:
+        text.encode("latin-1")
+    except UnicodeEncodeError:
+        return False
+    return True
 
 
 @dataclass
@@ -176,8 +223,8 @@ def _pending(con: duckdb.DuckDBPyConnection, names: list[str]) -> dict[str, list
     return pending
 
 
-def _deliver_all(project: Project, pending: dict[str, list[_Row]], clock: Clock, until: datetime,
-                 result: NotifyResult) -> None:
+def _deliver_all(project: Project, pending: dict[str, list[_Row]], headers: dict[str, dict[str, str]],
+                 clock: Clock, until: datetime, result: NotifyResult) -> None:
     """Step 2: one worker per webhook POSTs its rows; this thread alone records every outcome.
 
     Each webhook is served independently, so an endpoint that hangs, trickles or fails delays none of
@@ -188,7 +235,8 @@ def _deliver_all(project: Project, pending: dict[str, list[_Row]], clock: Clock,
     outcomes: queue.Queue = queue.Queue()
     stop = threading.Event()
     workers = [threading.Thread(target=_worker, name=f"notify {hook.name}", daemon=True,
-                                args=(project, hook, pending[hook.name], clock, until, outcomes, stop))
+                                args=(project, hook, headers[hook.name], pending[hook.name], clock, until,
+                                      outcomes, stop))
                for hook in project.webhooks if pending.get(hook.name)]
     for worker in workers:
         worker.start()
@@ -218,8 +266,8 @@ def _deliver_all(project: Project, pending: dict[str, list[_Row]], clock: Clock,
         raise failure
 
 
-def _worker(project: Project, hook: Webhook, rows: list[_Row], clock: Clock, until: datetime,
-            outcomes: queue.Queue, stop: threading.Event) -> None:
+def _worker(project: Project, hook: Webhook, headers: dict[str, str], rows: list[_Row], clock: Clock,
+            until: datetime, outcomes: queue.Queue, stop: threading.Event) -> None:
     """One webhook's deliveries: its due rows in order, resting after a failure, until nothing is due."""
     try:
         resting: datetime | None = None  # after a failure the endpoint is left alone until that row is due
@@ -228,7 +276,7 @@ def _worker(project: Project, hook: Webhook, rows: list[_Row], clock: Clock, unt
             if resting is None or resting <= now:
                 resting = None
                 for row in [r for r in rows if r.next_at <= now]:
-                    attempt = _attempt(project, hook, row, clock)
+                    attempt = _attempt(project, hook, headers, row, clock)
                     recorded = threading.Event()
                     outcomes.put((attempt, recorded))
                     recorded.wait()
@@ -252,9 +300,9 @@ def _worker(project: Project, hook: Webhook, rows: list[_Row], clock: Clock, unt
         outcomes.put(None)
 
 
-def _attempt(project: Project, hook: Webhook, row: _Row, clock: Clock) -> Attempt:
+def _attempt(project: Project, hook: Webhook, headers: dict[str, str], row: _Row, clock: Clock) -> Attempt:
     """POST one row and decide what becomes of it: delivered, retried later, or abandoned."""
-    ok, retry, error, retry_after = post(hook, row.payload.encode("utf-8"), row.key)
+    ok, retry, error, retry_after = post(hook, row.payload.encode("utf-8"), row.key, headers)
     now = clock.now()
     attempts = row.attempts + 1
     settings = project.notify
@@ -273,7 +321,7 @@ def _attempt(project: Project, hook: Webhook, row: _Row, clock: Clock) -> Attemp
 
 def _record(project: Project, attempt: Attempt) -> None:
     """One committed statement per POST, so a recorded success is never sent again."""
-    url = next((h.url for h in project.webhooks if h.name == attempt.webhook), None)
+    url = next((h.endpoint for h in project.webhooks if h.name == attempt.webhook), None)
     try:
         with _warehouse(project, wait=RECORD_WAIT) as con:
             con.execute(
@@ -393,10 +441,21 @@ class _Late(Exception):
     """The request's deadline passed."""
 
 
-def post(hook: Webhook, body: bytes, key: str) -> tuple[bool, bool, str | None, timedelta | None]:
-    """POST ``body`` within the webhook's timeout: (delivered, worth retrying, error, the server's Retry-After)."""
+def post(hook: Webhook, body: bytes, key: str, headers: dict[str, str] | None = None
+         ) -> tuple[bool, bool, str | None, timedelta | None]:
+    """POST ``body`` within the webhook's timeout: (delivered, worth retrying, error, the server's Retry-After).
+
+    The error names the endpoint as scheme://host:port only, and never holds the URL's path or query
+    or a header's value, since those often carry a secret.
+    """
+    ok, retry, error, retry_after = _post(hook, body, key, headers or {})
+    return ok, retry, (_hidden(error, hook, headers or {}) if error is not None else None), retry_after
+
+
+def _post(hook: Webhook, body: bytes, key: str, headers: dict[str, str]
+          ) -> tuple[bool, bool, str | None, timedelta | None]:
     request = urllib.request.Request(hook.url, data=body, method="POST", headers={
-        "Content-Type": "application/json", "Idempotency-Key": key, "User-Agent": f"plimsoll/{__version__}",
+        **headers, "Content-Type": "application/json", "Idempotency-Key": key, "User-Agent": f"plimsoll/{__version__}",
     })
     seconds = hook.timeout.total_seconds()
     deadline = _Deadline(seconds)
@@ -422,14 +481,27 @@ def post(hook: Webhook, body: bytes, key: str) -> tuple[bool, bool, str | None, 
         return False, True, f"no answer within {seconds:g} s", None
     except urllib.error.HTTPError as err:
         retry = err.code in (408, 425, 429) or err.code >= 500
-        where = f" to {err.headers.get('Location')}" if 300 <= err.code < 400 else ""
+        location = err.headers.get("Location")
+        where = f" to {endpoint(location)} (not followed)" if 300 <= err.code < 400 and location else ""
         return False, retry, f"HTTP {err.code} {err.reason}{where}", _retry_after(err.headers.get("Retry-After"))
     except urllib.error.URLError as err:
-        return False, True, f"cannot reach {hook.url}: {_reason(err.reason)}", None
+        return False, True, f"cannot reach {hook.endpoint}: {_reason(err.reason)}", None
     except TimeoutError:
         return False, True, f"no answer within {seconds:g} s", None
-    except (OSError, http.client.HTTPException) as err:
+    except (OSError, http.client.HTTPException, ValueError) as err:
         return False, True, f"connection failed: {_reason(err)}", None
+
+
+def _hidden(text: str, hook: Webhook, headers: dict[str, str]) -> str:
+    """``text`` without anything secret a library's message might have repeated: the URL beyond its
+    endpoint, its path and query, and the header values."""
+    parts = urllib.parse.urlsplit(hook.url)
+    secrets = [hook.url, parts.netloc, parts.path, parts.query, parts.fragment, *headers.values()]
+    # pieces shorter than this are no secret worth the name and would garble the endpoint's own text
+    for secret in sorted({s for s in secrets if len(s) >= 6 and s != hook.endpoint.split("//")[1]},
+                         key=len, reverse=True):
+        text = text.replace(secret, "[hidden]")
+    return text
 
 
 def _reason(err: object) -> str:
@@ -492,6 +564,8 @@ def describe(project: Project, result: NotifyResult) -> str:
         lines.append(f"  {result.retried_abandoned} abandoned deliveries queued again")
     if result.orphaned:
         lines.append(f"  abandoned {result.orphaned} deliveries to webhooks no longer in the project file")
+    for line in result.unsent:
+        lines.append(f"  not sent   {line}")
     for a in result.attempts:
         what = f"{a.webhook}: {a.event} {printable(a.key_text) or '(all sessions)'} [{a.alert_id}]"
         if a.ok:
