@@ -170,8 +170,8 @@ CREATE TABLE IF NOT EXISTS alert_events (
 
 CREATE TABLE IF NOT EXISTS outbox (  -- one row per alert event and webhook: what `plimsoll notify` sends
     idempotency_key VARCHAR PRIMARY KEY,  -- also the Idempotency-Key header: same on every attempt
-    webhook VARCHAR,                 -- the webhook's name (its url when it has none)
-    url VARCHAR,                     -- its url when the row was queued; delivery uses the current one
+    webhook VARCHAR,                 -- the webhook's name (its url's scheme://host:port when it has none)
+    url VARCHAR,                     -- its url's scheme://host:port, never the path or query (they can hold a token)
     alert_id VARCHAR,
     run_id BIGINT,
     event VARCHAR,                   -- 'opened' | 'updated' | 'closed'
