@@ -178,7 +178,7 @@ CREATE TABLE IF NOT EXISTS outbox (  -- one row per alert event and webhook: wha
     occurred_at TIMESTAMP,           -- data time of the event
     affected_sessions BIGINT,
     payload VARCHAR,                 -- the JSON body, fixed when queued so every attempt sends the same bytes
-    status VARCHAR,                  -- 'queued' | 'delivered' | 'abandoned' | 'skipped' (an update below notify.growth)
+    status VARCHAR,                  -- 'queued' | 'delivered' | 'abandoned' | 'skipped' (see skip_reason)
     attempts INTEGER,                -- failed and successful POSTs made
     last_error VARCHAR,
     seq BIGINT,                      -- queue order
@@ -187,3 +187,9 @@ CREATE TABLE IF NOT EXISTS outbox (  -- one row per alert event and webhook: wha
     next_attempt_at TIMESTAMP,
     delivered_at TIMESTAMP
 );
+-- columns added after the first release: warehouses made before get them, NULL in their old rows
+-- until `plimsoll notify` fills them from the alerts
+ALTER TABLE outbox ADD COLUMN IF NOT EXISTS fingerprint VARCHAR;      -- the incident: the alert's fingerprint ...
+ALTER TABLE outbox ADD COLUMN IF NOT EXISTS opened_at TIMESTAMP;      -- ... and its opening (data time)
+ALTER TABLE outbox ADD COLUMN IF NOT EXISTS event_identity VARCHAR;   -- the event whatever the alert_id: a rebuild's alerts share it
+ALTER TABLE outbox ADD COLUMN IF NOT EXISTS skip_reason VARCHAR;      -- 'growth' | 'rebuilt' | 'catch_up'

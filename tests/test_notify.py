@@ -26,7 +26,7 @@ from click.testing import CliRunner
 from conftest import plimsoll_command, write_rows
 from known_lake import HOSTILE, SCHEMA, START, known_project, warehouse_held
 from toolkit.cli import main
-from toolkit.outbox import Clock, _single_notifier, notify
+from toolkit.outbox import Clock, _single_notifier, describe, notify
 from toolkit.problems import PlimsollError
 from toolkit.project import load_project
 from toolkit.runner import run
@@ -185,10 +185,10 @@ def built(tmp_path: Path, extra: str):
     return project
 
 
-def more_hostile_windows(folder: Path) -> None:
-    """Three more windows of the hostile title: 9 bad (17 affected: +112 %), 3 bad (20: +18 %), then 0."""
+def more_hostile_windows(folder: Path, bad_per_window: tuple[int, ...] = (9, 3, 0)) -> None:
+    """More windows of the hostile title, by default three: 9 bad (17 affected: +112 %), 3 bad (20: +18 %), then 0."""
     rows = [(f"late-{w}-{i}", START + timedelta(minutes=60 + w * 10 + i, seconds=1), "kids", HOSTILE,
-             "E42" if i < bad else None) for w, bad in enumerate([9, 3, 0]) for i in range(10)]
+             "E42" if i < bad else None) for w, bad in enumerate(bad_per_window) for i in range(10)]
     write_rows(folder / "lake", SCHEMA, rows, name="part-2.parquet")
 
 
@@ -525,3 +525,104 @@ def test_rows_an_earlier_version_kept_under_a_full_url_are_moved_and_scrubbed(tm
     assert len(hook.received) == 4
     assert {w for w, *_ in outbox(project)} == {project.webhooks[0].name} == {hook.url.rsplit("/", 1)[0]}
     assert token not in all_outbox_text(project)
+
+
+def rebuild(project, old: str, new: str):
+    """Change the check file, see the plain run refuse, and rebuild the check as the refusal says."""
+    path = project.checks_dir / "title_errors.yml"
+    text = path.read_text()
+    assert old in text
+    path.write_text(text.replace(old, new))
+    refused = CliRunner().invoke(main, ["run", "-p", str(project.file)])
+    assert refused.exit_code == 2 and "--full-refresh" in refused.output, refused.output
+    rebuilt = CliRunner().invoke(main, ["run", "-p", str(project.file), "--check", "title_errors", "--full-refresh"])
+    assert rebuilt.exit_code == 0, rebuilt.output
+    return load_project(project.file)
+
+
+def query(project, sql: str) -> list[tuple]:
+    con = duckdb.connect(str(project.warehouse), read_only=True)
+    try:
+        return con.execute(sql).fetchall()
+    finally:
+        con.close()
+
+
+def test_a_rebuild_with_a_changed_factor_sends_no_incident_again(tmp_path: Path, hook: Hook) -> None:
+    project = built(tmp_path, webhooks(hook.url))
+    notify(project, clock=PretendClock())
+    assert len(hook.accepted) == 4  # t-1: opened, updated, closed; the hostile title: opened
+    changed = rebuild(project, "factor: 1,", "factor: 1.05,")
+    # the same two incidents, each now under two alert ids: the old definition's and the rebuilt one
+    assert query(changed, "SELECT key_text, count(DISTINCT alert_id), list(status ORDER BY first_run_id), "
+                          "list(close_reason ORDER BY first_run_id) FROM alerts GROUP BY fingerprint, opened_at, "
+                          "key_text ORDER BY key_text") == [
+        (f"site=kids, title_id={HOSTILE}", 2, ["closed", "open"], ["check changed", None]),
+        ("site=kids, title_id=t-1", 2, ["closed", "closed"], ["recovered", "recovered"])]
+    result = notify(changed, clock=PretendClock())
+    assert (result.queued, result.attempts, len(hook.received)) == (0, [], 4)
+    # the old definition's close of the incident that goes on is decided once, as skipped
+    assert query(changed, "SELECT event, status, skip_reason FROM outbox WHERE enqueued_at > "
+                          "(SELECT min(enqueued_at) FROM outbox)") == [("closed", "skipped", "rebuilt")]
+    assert "(1 'check changed' close of an incident the rebuilt check goes on with skipped)" in \
+        describe(changed, result).splitlines()[0]
+    assert notify(changed, clock=PretendClock()).queued == 0
+    # growth is measured against what the webhook was told of the incident (8 affected, under the old
+    # alert id): 10 is not half as many again, 19 is, then it recovers
+    more_hostile_windows(tmp_path, (2, 9, 0))
+    run(changed)
+    result = notify(changed, clock=PretendClock())
+    assert (result.queued, result.skipped_for) == (2, {"growth": 1})
+    sent = [json.loads(r.body) for r in hook.accepted[4:]]
+    assert [(b["event"], b["affected_sessions"], b["close_reason"]) for b in sent] == [
+        ("updated", 19, None), ("closed", 19, "recovered")]
+
+
+def test_a_rebuild_that_no_longer_flags_an_open_incident_closes_it_once(tmp_path: Path, hook: Hook) -> None:
+    project = built(tmp_path, webhooks(hook.url))
+    notify(project, clock=PretendClock())
+    assert len(hook.accepted) == 4
+    changed = rebuild(project, "floor: 0.1", "floor: 0.9")  # no window is above 0.9: no alert at all now
+    assert query(changed, "SELECT count(*) FROM alerts WHERE status = 'open'") == [(0,)]
+    result = notify(changed, clock=PretendClock())
+    assert result.queued == 1 and len(hook.accepted) == 5
+    closed = json.loads(hook.accepted[4].body)
+    assert (closed["event"], closed["close_reason"], closed["key"]["title_id"]) == ("closed", "check changed", HOSTILE)
+    assert closed["alert_id"] == json.loads(hook.accepted[2].body)["alert_id"]  # the alert it opened
+    assert notify(changed, clock=PretendClock()).queued == 0 and len(hook.received) == 5
+
+
+OLD_OUTBOX = """
+CREATE TABLE outbox (
+    idempotency_key VARCHAR PRIMARY KEY, webhook VARCHAR, url VARCHAR, alert_id VARCHAR, run_id BIGINT,
+    event VARCHAR, occurred_at TIMESTAMP, affected_sessions BIGINT, payload VARCHAR, status VARCHAR,
+    attempts INTEGER, last_error VARCHAR, seq BIGINT, enqueued_at TIMESTAMP, last_attempt_at TIMESTAMP,
+    next_attempt_at TIMESTAMP, delivered_at TIMESTAMP)
+"""
+
+
+def test_a_warehouse_from_before_incident_identities_sends_nothing_twice(tmp_path: Path, hook: Hook) -> None:
+    """An outbox as the first release wrote it: without the incident columns, keyed by alert id."""
+    project = built(tmp_path, webhooks(hook.url))
+    notify(project, clock=PretendClock())
+    con = duckdb.connect(str(project.warehouse))
+    try:
+        con.execute("CREATE TEMP TABLE delivered AS SELECT * FROM outbox")
+        con.execute("DROP TABLE outbox")
+        con.execute(OLD_OUTBOX)
+        con.execute("""
+            INSERT INTO outbox SELECT
+                md5(to_json({'event': md5(to_json({'alert_id': alert_id, 'event': event, 'occurred_at': occurred_at,
+                                                   'affected_sessions': affected_sessions})::VARCHAR),
+                             'webhook': webhook})::VARCHAR),
+                webhook, url, alert_id, run_id, event, occurred_at, affected_sessions, payload, status, attempts,
+                last_error, seq, enqueued_at, last_attempt_at, next_attempt_at, delivered_at
+            FROM delivered""")
+    finally:
+        con.close()
+    assert notify(project, clock=PretendClock()).queued == 0
+    assert query(project, "SELECT count(*) FROM outbox WHERE event_identity IS NULL OR fingerprint IS NULL") == [(0,)]
+    # and a rebuild after the upgrade resends nothing either
+    changed = rebuild(project, "factor: 1,", "factor: 1.05,")
+    assert notify(changed, clock=PretendClock()).queued == 0 and len(hook.received) == 4
+

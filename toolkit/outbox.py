@@ -77,7 +77,8 @@ class Attempt:
 @dataclass
 class NotifyResult:
     queued: int = 0                 # rows queued to be sent in this call
-    skipped: int = 0                # 'updated' events below notify.growth, recorded as skipped
+    skipped: int = 0                # events recorded as skipped, not to be sent (why: skipped_for)
+    skipped_for: dict[str, int] = field(default_factory=dict)  # skip_reason -> rows skipped in this call
     retried_abandoned: int = 0
     orphaned: int = 0               # queued rows of webhooks no longer configured, abandoned now
     unsent: list[str] = field(default_factory=list)  # webhooks given nothing: a header's variable is not set
@@ -142,6 +143,8 @@ def _queue(con: duckdb.DuckDBPyConnection, project: Project, now: datetime, retr
             result.queued, result.skipped = con.execute(
                 "SELECT count(*) FILTER (WHERE status = 'queued'), count(*) FILTER (WHERE status = 'skipped') "
                 "FROM outbox_new").fetchone()
+            result.skipped_for = dict(con.execute(
+                "SELECT skip_reason, count(*) FROM outbox_new WHERE status = 'skipped' GROUP BY skip_reason").fetchall())
         result.orphaned = con.execute(
             "UPDATE outbox SET status = 'abandoned', last_error = 'webhook no longer in the project file' "
             "WHERE status = 'queued' AND NOT list_contains($h, webhook)", {"h": names}).fetchone()[0]
@@ -553,13 +556,24 @@ def _single_notifier(project: Project) -> Iterator[None]:
             fcntl.flock(handle, fcntl.LOCK_UN)
 
 
+_SKIPS = {  # skip_reason -> how the summary counts it
+    "growth": ("update below notify.growth", "updates below notify.growth"),
+    "rebuilt": ("'check changed' close of an incident the rebuilt check goes on with",
+                "'check changed' closes of incidents the rebuilt check goes on with"),
+}
+
+
+def _skips(counts: dict[str, int]) -> list[str]:
+    return [f"{n} {_SKIPS[why][n != 1]}" for why, n in sorted(counts.items(), key=lambda c: list(_SKIPS).index(c[0]))]
+
+
 def describe(project: Project, result: NotifyResult) -> str:
     """What ``plimsoll notify`` prints: what was queued, each attempt, and what is left."""
     if not project.webhooks and not result.orphaned:
         return "notify: no webhooks in the project file; nothing to send"
     lines = [f"notify: queued {result.queued} event{'s' if result.queued != 1 else ''} for "
              f"{len(project.webhooks)} webhook{'s' if len(project.webhooks) != 1 else ''}"
-             + (f" ({result.skipped} updates below notify.growth skipped)" if result.skipped else "")]
+             + (f" ({', '.join(_skips(result.skipped_for))} skipped)" if result.skipped else "")]
     if result.retried_abandoned:
         lines.append(f"  {result.retried_abandoned} abandoned deliveries queued again")
     if result.orphaned:
