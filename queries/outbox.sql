@@ -11,6 +11,11 @@
 -- also closes the old definition's open alerts as 'check changed': that close is skipped
 -- ('rebuilt') when the rebuilt definition has an alert for the same incident, which goes on, and sent
 -- when it has none. The idempotency key hashes the event's identity and the webhook's name.
+--
+-- A webhook's first pass (no outbox row yet) does not replay history: events older than its
+-- catch_up (seconds), in data time before the newest data the warehouse has read, are kept as
+-- 'skipped' ('catch_up'), except the opening of an alert still open, so the receiver learns of the
+-- problems going on now.
 -- The payload carries keys and counts, never a session or viewer id.
 CREATE OR REPLACE TEMP MACRO outbox_event_identity(fingerprint, opened_at, event, occurred_at, close_reason,
                                                    definition_hash) AS
@@ -35,7 +40,13 @@ WHERE a.alert_id = outbox.alert_id AND outbox.event_identity IS NULL;
 CREATE OR REPLACE TEMP TABLE outbox_new AS
 WITH RECURSIVE
 hooks AS (
-    SELECT unnest($webhooks, recursive := true)
+    SELECT
+        *,
+        NOT EXISTS (SELECT 1 FROM outbox AS o WHERE o.webhook = w.name) AS first_pass,
+        -- data time, not the clock: lakes lag, and every decision in a run is made in data time
+        greatest((SELECT max(watermark) FROM check_state), (SELECT max(occurred_at) FROM alert_events))
+            - to_seconds(w.catch_up) AS catch_up_from
+    FROM (SELECT unnest($webhooks, recursive := true)) AS w
 ),
 events AS (
     SELECT
@@ -69,7 +80,9 @@ numbered AS (
 candidates AS (
     SELECT
         h.name AS webhook, h.url, n.*,
-        md5(to_json({'event': n.event_identity, 'webhook': h.name})::VARCHAR) AS idempotency_key
+        md5(to_json({'event': n.event_identity, 'webhook': h.name})::VARCHAR) AS idempotency_key,
+        coalesce(h.first_pass AND n.occurred_at < h.catch_up_from
+                 AND NOT (n.event = 'opened' AND n.alert_status = 'open'), false) AS stale
     FROM numbered AS n
     CROSS JOIN hooks AS h
 ),
@@ -105,8 +118,8 @@ decided AS (
                AS grown
     ) AS g
     CROSS JOIN LATERAL (
-        SELECT NOT f.rebuilt AND g.grown AS send,
-               CASE WHEN f.rebuilt THEN 'rebuilt' WHEN NOT g.grown THEN 'growth' END AS why
+        SELECT NOT f.rebuilt AND NOT f.stale AND g.grown AS send,
+               CASE WHEN f.rebuilt THEN 'rebuilt' WHEN f.stale THEN 'catch_up' WHEN NOT g.grown THEN 'growth' END AS why
     ) AS d
     WHERE f.n = 1
     UNION ALL
@@ -120,8 +133,8 @@ decided AS (
                AS grown
     ) AS g
     CROSS JOIN LATERAL (
-        SELECT NOT f.rebuilt AND g.grown AS send,
-               CASE WHEN f.rebuilt THEN 'rebuilt' WHEN NOT g.grown THEN 'growth' END AS why
+        SELECT NOT f.rebuilt AND NOT f.stale AND g.grown AS send,
+               CASE WHEN f.rebuilt THEN 'rebuilt' WHEN f.stale THEN 'catch_up' WHEN NOT g.grown THEN 'growth' END AS why
     ) AS d
 )
 SELECT

@@ -24,7 +24,7 @@ import pytest
 from click.testing import CliRunner
 
 from conftest import plimsoll_command, write_rows
-from known_lake import HOSTILE, SCHEMA, START, known_project, warehouse_held
+from known_lake import CHECK, HOSTILE, SCHEMA, START, known_project, session_rows, warehouse_held
 from toolkit.cli import main
 from toolkit.outbox import Clock, _single_notifier, describe, notify
 from toolkit.problems import PlimsollError
@@ -625,4 +625,54 @@ def test_a_warehouse_from_before_incident_identities_sends_nothing_twice(tmp_pat
     # and a rebuild after the upgrade resends nothing either
     changed = rebuild(project, "factor: 1,", "factor: 1.05,")
     assert notify(changed, clock=PretendClock()).queued == 0 and len(hook.received) == 4
+
+
+def history_project(folder: Path, extra: str):
+    """Two weeks of data time: on day 0 an incident of t-1 that closed and one of the hostile title
+    that is still open (its series went quiet, and expires only after 30 days); on day 14, an incident
+    of t-9 that opened, grew and closed. Run, so the warehouse has that history."""
+    recent = session_rows({"t-9": [0, 0, 0, 0, 6, 7, 0]})
+    recent = [(f"r-{sid}", at + timedelta(days=14), site, "t-9", code) for sid, at, site, _, code in recent]
+    write_rows(folder / "lake", SCHEMA, recent, name="day-14.parquet")
+    check = CHECK.replace("expire_after: 7d", "expire_after: 30d")
+    project = load_project(known_project(folder, extra, checks={"title_errors.yml": check}))
+    run(project)
+    return project
+
+
+def test_a_new_webhook_starts_from_now_in_data_time(tmp_path: Path, hook: Hook) -> None:
+    project = history_project(tmp_path, webhooks(hook.url))
+    assert query(project, "SELECT key_text, status FROM alerts ORDER BY opened_at") == [
+        ("site=kids, title_id=t-1", "closed"), (f"site=kids, title_id={HOSTILE}", "open"),
+        ("site=kids, title_id=t-9", "closed")]
+    result = notify(project, clock=PretendClock())
+    # the data is weeks older than the clock; age is measured against the newest data (day 14, 01:09)
+    sent = [json.loads(r.body) for r in hook.accepted]
+    assert [(b["event"], b["key"]["title_id"], b["occurred_at"]) for b in sent] == [
+        ("opened", HOSTILE, "2026-11-02T00:59:01Z"),   # older than a day, but the alert is still open
+        ("opened", "t-9", "2026-11-16T00:49:00Z"),
+        ("updated", "t-9", "2026-11-16T00:59:00Z"),
+        ("closed", "t-9", "2026-11-16T01:09:00Z")]
+    assert (result.queued, result.skipped_for) == (4, {"catch_up": 3})
+    assert describe(project, result).splitlines()[0] == (
+        "notify: queued 4 events for 1 webhook (3 events older than catch_up skipped)")
+    assert query(project, "SELECT event, status, skip_reason FROM outbox WHERE status = 'skipped' ORDER BY seq") == [
+        ("opened", "skipped", "catch_up"), ("updated", "skipped", "catch_up"), ("closed", "skipped", "catch_up")]
+    again = notify(project, clock=PretendClock())
+    assert (again.queued, again.skipped, again.attempts) == (0, 0, [])
+    # from now on every new event is news, the old incident's update included
+    more_hostile_windows(tmp_path, (9, 0))
+    run(project)
+    later = notify(project, clock=PretendClock())
+    assert (later.queued, later.skipped) == (2, 0)
+    assert [(json.loads(r.body)["event"], json.loads(r.body)["affected_sessions"]) for r in hook.accepted[4:]] == [
+        ("updated", 17), ("closed", 17)]
+
+
+def test_catch_up_can_reach_back_as_far_as_wanted(tmp_path: Path, hook: Hook) -> None:
+    text = webhooks(hook.url).replace("    timeout: 1s\n", "    timeout: 1s\n    catch_up: 3w\n")
+    project = history_project(tmp_path, text)
+    assert project.webhooks[0].catch_up == timedelta(weeks=3)
+    result = notify(project, clock=PretendClock())
+    assert (result.queued, result.skipped) == (7, 0) and len(hook.accepted) == 7
 

@@ -25,6 +25,8 @@ CASES = [
      "webhooks.0.url: 'ftp://x/y' is not an http:// or https:// URL with a host"),
     ("webhook-no-host", "webhooks:\n  - url: 'http:///path'\n", 8, "is not an http:// or https:// URL with a host"),
     ("webhook-bad-timeout", "webhooks:\n  - url: http://x\n    timeout: soon\n", 9, "webhooks.0.timeout: bad duration 'soon'"),
+    ("webhook-bad-catch-up", "webhooks:\n  - url: http://x\n    catch_up: forever\n", 9,
+     "webhooks.0.catch_up: bad duration 'forever'"),
     ("webhook-zero-timeout", "webhooks:\n  - url: http://x\n    timeout: 0s\n", 9, "webhooks.0.timeout must be longer than 0s"),
     ("webhook-name-twice", "webhooks:\n  - {name: a, url: 'http://x'}\n  - name: a\n    url: http://y\n", 9,
      "webhooks.1: the name 'a' is already used by webhooks.0"),
@@ -82,7 +84,8 @@ def test_delivery_keys_load_with_their_defaults(make_project) -> None:
     assert project.webhooks == (
         # without a name, a webhook is known by its scheme://host:port: its path may hold a token
         Webhook("https://hooks.fernhill.example:443", "https://hooks.fernhill.example/plimsoll/T0KEN"),
-        Webhook("on-call", "http://127.0.0.1:8080/in", timedelta(seconds=3), (("Authorization", "FERNHILL_HOOK_AUTH"),)),
+        Webhook("on-call", "http://127.0.0.1:8080/in", timedelta(seconds=3), (("Authorization", "FERNHILL_HOOK_AUTH"),),
+                timedelta(days=1)),
     )
     assert project.notify == Notify(growth=1.0)
     assert load_project(make_project({}, project=BASE.format(lake=FIXTURE_LAKE))).webhooks == ()

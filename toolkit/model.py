@@ -161,6 +161,7 @@ class Webhook:
     url: str
     timeout: timedelta = timedelta(seconds=10)
     headers: tuple[tuple[str, str], ...] = ()   # (header name, environment variable name)
+    catch_up: timedelta = timedelta(days=1)     # first notify: events older than this in data time are skipped
 
     @property
     def endpoint(self) -> str:

@@ -1,7 +1,7 @@
 """Webhook delivery through an outbox table: alert events queued in the warehouse, POSTed, recorded.
 
 ``plimsoll notify`` first queues, in one transaction, every alert event not yet in the ``outbox`` table
-once per webhook (``queries/outbox.sql`` decides which 'updated' events are worth sending). It then
+once per webhook and incident (``queries/outbox.sql`` decides which events are worth sending). It then
 delivers: one worker thread per webhook POSTs that webhook's due rows in order, each with its
 ``Idempotency-Key``, while the calling thread alone writes the warehouse, committing the outcome of
 every POST at once. So a success is never sent again, a failure is retried with exponential backoff
@@ -136,7 +136,8 @@ def _queue(con: duckdb.DuckDBPyConnection, project: Project, now: datetime, retr
     try:
         _upgrade(con, project)
         if project.webhooks:
-            params = {"webhooks": [{"name": h.name, "url": h.endpoint} for h in project.webhooks],
+            params = {"webhooks": [{"name": h.name, "url": h.endpoint, "catch_up": h.catch_up.total_seconds()}
+                                   for h in project.webhooks],
                       "growth": project.notify.growth, "now": now, "version": __version__}
             for statement in con.extract_statements((template_folder() / "outbox.sql").read_text(encoding="utf-8")):
                 con.execute(statement.query, {k: params[k] for k in statement.named_parameters})
@@ -560,6 +561,7 @@ _SKIPS = {  # skip_reason -> how the summary counts it
     "growth": ("update below notify.growth", "updates below notify.growth"),
     "rebuilt": ("'check changed' close of an incident the rebuilt check goes on with",
                 "'check changed' closes of incidents the rebuilt check goes on with"),
+    "catch_up": ("event older than catch_up", "events older than catch_up"),
 }
 
 

@@ -52,6 +52,8 @@ WEBHOOK_KEYS = (
         "(default: the url's scheme://host:port)"),
     Key("timeout", "duration", "how long one POST may take, from connecting to the last byte of the answer",
         False, "10s"),
+    Key("catch_up", "duration", "on the webhook's first notify, events older than this (in data time, before the "
+        "newest data read) are skipped instead of sent, except the opening of an alert still open", False, "1d"),
     Key("headers", "mapping", "headers sent with every POST, each mapped to the NAME of the environment variable "
         "holding its value (e.g. Authorization: FERNHILL_HOOK_AUTH)"),
 )
@@ -335,6 +337,7 @@ def _webhooks(doc: Located, raw: list[Any], problems: list[Problem]) -> tuple[We
     for index, body in enumerate(raw):
         section = _Section(doc, ("webhooks", index), body, WEBHOOK_KEYS, problems)
         url, name, timeout = section.get("url"), section.get("name"), section.get("timeout")
+        catch_up = section.get("catch_up")
         if url is not None:
             parts = urllib.parse.urlsplit(url)
             if "@" in parts.netloc:  # never repeated in the message: it holds a password
@@ -357,8 +360,8 @@ def _webhooks(doc: Located, raw: list[Any], problems: list[Problem]) -> tuple[We
                           f"webhooks.{index}: the name '{name}' is already used by webhooks.{names[name]}{hint}")
         elif name is not None:
             names[name] = index
-        if url is not None and name is not None and timeout is not None and headers is not None:
-            found.append(Webhook(name, url, timeout, headers))
+        if url is not None and name is not None and timeout is not None and headers is not None and catch_up is not None:
+            found.append(Webhook(name, url, timeout, headers, catch_up))
     return tuple(found)
 
 
