@@ -26,7 +26,8 @@ from click.testing import CliRunner
 from conftest import plimsoll_command, write_rows
 from known_lake import CHECK, HOSTILE, SCHEMA, START, known_project, session_rows, warehouse_held
 from toolkit.cli import main
-from toolkit.outbox import Clock, _single_notifier, describe, notify
+from toolkit.model import Webhook
+from toolkit.outbox import Clock, _hidden, _single_notifier, describe, notify
 from toolkit.problems import PlimsollError
 from toolkit.project import load_project
 from toolkit.runner import run
@@ -459,6 +460,16 @@ def test_a_token_in_the_url_is_never_stored_or_printed(tmp_path: Path, hook: Hoo
     assert "http://127.0.0.1:9'" in stored and "cannot reach http://127.0.0.1:9: " in stored
     for secret in (token, "/hooks/", "auth="):
         assert secret not in output and secret not in stored
+
+
+def test_library_messages_are_scrubbed_of_the_url_and_header_values() -> None:
+    hook = Webhook("h", "https://hooks.fernhill.example/services/T0KEN-4f9a?sig=abc123def")
+    text = ("https://hooks.fernhill.example/services/T0KEN-4f9a?sig=abc123def: /services/T0KEN-4f9a rejected "
+            "sig=abc123def with Bearer zz-9q8w7e6r")
+    assert _hidden(text, hook, {"Authorization": "Bearer zz-9q8w7e6r"}) == (
+        "[hidden]: [hidden] rejected [hidden] with [hidden]")
+    assert _hidden("cannot reach https://hooks.fernhill.example:443: refused", hook, {}) == (
+        "cannot reach https://hooks.fernhill.example:443: refused")
 
 
 def test_a_header_takes_its_value_from_an_environment_variable(tmp_path: Path, hook: Hook,

@@ -244,7 +244,19 @@ def _deliver_all(project: Project, pending: dict[str, list[_Row]], headers: dict
                for hook in project.webhooks if pending.get(hook.name)]
     for worker in workers:
         worker.start()
-    running, failure = len(workers), None
+    try:
+        _collect(project, outcomes, len(workers), stop, result)
+    except BaseException:
+        stop.set()  # e.g. interrupted while waiting: the workers start no further POST
+        raise
+    for worker in workers:
+        worker.join()
+
+
+def _collect(project: Project, outcomes: queue.Queue, running: int, stop: threading.Event,
+             result: NotifyResult) -> None:
+    """Record each outcome as it comes, until every worker is done; then raise the first failure."""
+    failure = None
     while running:
         item = outcomes.get()
         if item is None:
@@ -264,8 +276,6 @@ def _deliver_all(project: Project, pending: dict[str, list[_Row]], headers: dict
             stop.set()
         finally:
             recorded.set()
-    for worker in workers:
-        worker.join()
     if failure is not None:
         raise failure
 
@@ -500,10 +510,10 @@ def _hidden(text: str, hook: Webhook, headers: dict[str, str]) -> str:
     """``text`` without anything secret a library's message might have repeated: the URL beyond its
     endpoint, its path and query, and the header values."""
     parts = urllib.parse.urlsplit(hook.url)
-    secrets = [hook.url, parts.netloc, parts.path, parts.query, parts.fragment, *headers.values()]
-    # pieces shorter than this are no secret worth the name and would garble the endpoint's own text
-    for secret in sorted({s for s in secrets if len(s) >= 6 and s != hook.endpoint.split("//")[1]},
-                         key=len, reverse=True):
+    secrets = [hook.url, parts.netloc if "@" in parts.netloc else "", parts.path, parts.query, parts.fragment,
+               *headers.values()]
+    # what the endpoint's own text shows is no secret, and pieces this short would garble the message
+    for secret in sorted({s for s in secrets if len(s) >= 6 and s not in hook.endpoint}, key=len, reverse=True):
         text = text.replace(secret, "[hidden]")
     return text
 
