@@ -1,21 +1,67 @@
 -- `plimsoll notify`, step 1, in one transaction: every alert event not yet in the outbox, once per
--- webhook ($webhooks: name, url). An 'opened' or 'closed' event is always sent. An 'updated' event is
--- sent only once affected_sessions has grown by $growth (0.5 = 50 %) over the last event queued for the
--- same alert and webhook; the others are kept as 'skipped', so each event is decided once, and queuing
--- again adds nothing. The idempotency key hashes the event (alert, kind, data time, affected sessions)
--- and the webhook's name, so a full refresh that derives the same events again does not resend them.
+-- webhook ($webhooks: name, url). An 'opened' or 'closed' event is sent. An 'updated' event is sent
+-- only once affected_sessions has grown by $growth (0.5 = 50 %) over the last event queued for the same
+-- incident and webhook; the others are kept as 'skipped' (skip_reason 'growth'), so each event is
+-- decided once, and queuing again adds nothing.
+--
+-- An event is known by its incident, not its alert_id: the alert's fingerprint (check, key, split
+-- value) and opened_at, the kind of event, and for 'updated' its data time. A rebuild after a check
+-- changed (--full-refresh) derives the same incidents again under new alert ids; what a webhook was
+-- told about them is not told again, and growth is measured against what it was told. The rebuild
+-- also closes the old definition's open alerts as 'check changed': that close is skipped
+-- ('rebuilt') when the rebuilt definition has an alert for the same incident, which goes on, and sent
+-- when it has none. The idempotency key hashes the event's identity and the webhook's name.
+--
+-- A webhook's first pass (no outbox row yet) does not replay history: events older than its
+-- catch_up (seconds), in data time before the newest data the warehouse has read, are kept as
+-- 'skipped' ('catch_up'), except the opening of an alert still open, so the receiver learns of the
+-- problems going on now.
 -- The payload carries keys and counts, never a session or viewer id.
+CREATE OR REPLACE TEMP MACRO outbox_event_identity(fingerprint, opened_at, event, occurred_at, close_reason,
+                                                   definition_hash) AS
+    md5(to_json({
+        'fingerprint': fingerprint,
+        'opened_at': opened_at,
+        'event': event,
+        'occurred_at': CASE WHEN event = 'updated' THEN occurred_at END,
+        -- each definition's 'check changed' close is its own event: the rebuilt alert may close later
+        'definition': CASE WHEN event = 'closed' AND close_reason = 'check changed' THEN definition_hash END
+    })::VARCHAR);
+
+-- rows queued before the outbox knew incidents take theirs from their alert
+UPDATE outbox
+SET fingerprint = a.fingerprint,
+    opened_at = a.opened_at,
+    event_identity = outbox_event_identity(a.fingerprint, a.opened_at, outbox.event, outbox.occurred_at,
+                                           a.close_reason, a.definition_hash)
+FROM alerts AS a
+WHERE a.alert_id = outbox.alert_id AND outbox.event_identity IS NULL;
+
 CREATE OR REPLACE TEMP TABLE outbox_new AS
 WITH RECURSIVE
 hooks AS (
-    SELECT unnest($webhooks, recursive := true)
+    SELECT
+        *,
+        NOT EXISTS (SELECT 1 FROM outbox AS o WHERE o.webhook = w.name) AS first_pass,
+        -- data time, not the clock: lakes lag, and every decision in a run is made in data time
+        greatest((SELECT max(watermark) FROM check_state), (SELECT max(occurred_at) FROM alert_events))
+            - to_seconds(w.catch_up) AS catch_up_from
+    FROM (SELECT unnest($webhooks, recursive := true)) AS w
 ),
 events AS (
     SELECT
         e.alert_id, e.run_id, e.occurred_at, e.event, e.value, e.threshold, e.affected_sessions,
         a.check_name, a.severity, a.key, a.key_text, a.split_value, a.opened_at, a.closed_at,
-        a.close_reason, a.fingerprint,
-        CASE e.event WHEN 'opened' THEN 0 WHEN 'updated' THEN 1 ELSE 2 END AS event_rank
+        a.close_reason, a.fingerprint, a.status AS alert_status,
+        CASE e.event WHEN 'opened' THEN 0 WHEN 'updated' THEN 1 ELSE 2 END AS event_rank,
+        outbox_event_identity(a.fingerprint, a.opened_at, e.event, e.occurred_at, a.close_reason,
+                              a.definition_hash) AS event_identity,
+        e.event = 'closed' AND a.close_reason = 'check changed' AND EXISTS (
+            SELECT 1
+            FROM alerts AS r  -- an alert of the same incident made by the rebuild or after it
+            WHERE r.fingerprint = a.fingerprint AND r.opened_at = a.opened_at AND r.alert_id <> a.alert_id
+              AND r.first_run_id >= e.run_id
+        ) AS rebuilt
     FROM (SELECT DISTINCT * FROM alert_events) AS e
     JOIN alerts AS a ON a.alert_id = e.alert_id
 ),
@@ -24,52 +70,71 @@ numbered AS (
         *,
         count(*) FILTER (WHERE event <> 'closed') OVER (
             PARTITION BY alert_id ORDER BY occurred_at, event_rank, affected_sessions ROWS UNBOUNDED PRECEDING
-        ) AS breach_windows,
-        md5(to_json({'alert_id': alert_id, 'event': event, 'occurred_at': occurred_at,
-                     'affected_sessions': affected_sessions})::VARCHAR) AS event_key
+        ) AS breach_windows
     FROM events
-    -- two windows of one alert alike in all of these are one piece of news
-    QUALIFY row_number() OVER (PARTITION BY event_key ORDER BY run_id DESC, value) = 1
+    -- one event of an incident, whichever alert reported it: the open alert's, else the newest run's
+    QUALIFY row_number() OVER (
+        PARTITION BY event_identity ORDER BY alert_status = 'open' DESC, run_id DESC, affected_sessions DESC, value
+    ) = 1
 ),
 candidates AS (
     SELECT
         h.name AS webhook, h.url, n.*,
-        md5(to_json({'event': n.event_key, 'webhook': h.name})::VARCHAR) AS idempotency_key
+        md5(to_json({'event': n.event_identity, 'webhook': h.name})::VARCHAR) AS idempotency_key,
+        coalesce(h.first_pass AND n.occurred_at < h.catch_up_from
+                 AND NOT (n.event = 'opened' AND n.alert_status = 'open'), false) AS stale
     FROM numbered AS n
     CROSS JOIN hooks AS h
 ),
 fresh AS (
     SELECT
         c.*,
-        row_number() OVER (PARTITION BY webhook, alert_id ORDER BY occurred_at, event_rank, affected_sessions) AS n
+        row_number() OVER (
+            PARTITION BY webhook, fingerprint, opened_at ORDER BY occurred_at, event_rank, affected_sessions
+        ) AS n
     FROM candidates AS c
-    ANTI JOIN outbox AS o ON o.idempotency_key = c.idempotency_key
+    -- not queued for this webhook already: by key, by the incident's event, or (a row of an earlier
+    -- version whose alert is gone) by the same alert's event at the same data time and size
+    WHERE NOT EXISTS (SELECT 1 FROM outbox AS o WHERE o.idempotency_key = c.idempotency_key)
+      AND NOT EXISTS (SELECT 1 FROM outbox AS o WHERE o.webhook = c.webhook AND o.event_identity = c.event_identity)
+      AND NOT EXISTS (SELECT 1 FROM outbox AS o
+                      WHERE o.webhook = c.webhook AND o.alert_id = c.alert_id AND o.event = c.event
+                        AND o.occurred_at = c.occurred_at AND o.affected_sessions = c.affected_sessions)
 ),
 seeds AS (
-    -- the affected sessions of the last event queued to be sent, per alert and webhook
-    SELECT webhook, alert_id, max(affected_sessions) AS last_sent
+    -- the affected sessions of the last event queued to be sent, per incident and webhook
+    SELECT webhook, fingerprint, opened_at, max(affected_sessions) AS last_sent
     FROM outbox
     WHERE status <> 'skipped' AND event <> 'closed'
-    GROUP BY webhook, alert_id
+    GROUP BY webhook, fingerprint, opened_at
 ),
 decided AS (
-    SELECT f.webhook, f.alert_id, f.n, f.idempotency_key, d.send,
+    SELECT f.webhook, f.fingerprint, f.opened_at, f.n, f.idempotency_key, d.send, d.why,
            CASE WHEN d.send AND f.event <> 'closed' THEN f.affected_sessions ELSE s.last_sent END AS last_sent
     FROM fresh AS f
-    LEFT JOIN seeds AS s ON s.webhook = f.webhook AND s.alert_id = f.alert_id
+    LEFT JOIN seeds AS s ON s.webhook = f.webhook AND s.fingerprint = f.fingerprint AND s.opened_at = f.opened_at
     CROSS JOIN LATERAL (
-        SELECT f.event <> 'updated' OR s.last_sent IS NULL
-               OR f.affected_sessions >= s.last_sent * (1 + $growth) AS send
+        SELECT f.event <> 'updated' OR s.last_sent IS NULL OR f.affected_sessions >= s.last_sent * (1 + $growth)
+               AS grown
+    ) AS g
+    CROSS JOIN LATERAL (
+        SELECT NOT f.rebuilt AND NOT f.stale AND g.grown AS send,
+               CASE WHEN f.rebuilt THEN 'rebuilt' WHEN f.stale THEN 'catch_up' WHEN NOT g.grown THEN 'growth' END AS why
     ) AS d
     WHERE f.n = 1
     UNION ALL
-    SELECT f.webhook, f.alert_id, f.n, f.idempotency_key, d.send,
+    SELECT f.webhook, f.fingerprint, f.opened_at, f.n, f.idempotency_key, d.send, d.why,
            CASE WHEN d.send AND f.event <> 'closed' THEN f.affected_sessions ELSE w.last_sent END
     FROM decided AS w
-    JOIN fresh AS f ON f.webhook = w.webhook AND f.alert_id = w.alert_id AND f.n = w.n + 1
+    JOIN fresh AS f
+      ON f.webhook = w.webhook AND f.fingerprint = w.fingerprint AND f.opened_at = w.opened_at AND f.n = w.n + 1
     CROSS JOIN LATERAL (
-        SELECT f.event <> 'updated' OR w.last_sent IS NULL
-               OR f.affected_sessions >= w.last_sent * (1 + $growth) AS send
+        SELECT f.event <> 'updated' OR w.last_sent IS NULL OR f.affected_sessions >= w.last_sent * (1 + $growth)
+               AS grown
+    ) AS g
+    CROSS JOIN LATERAL (
+        SELECT NOT f.rebuilt AND NOT f.stale AND g.grown AS send,
+               CASE WHEN f.rebuilt THEN 'rebuilt' WHEN f.stale THEN 'catch_up' WHEN NOT g.grown THEN 'growth' END AS why
     ) AS d
 )
 SELECT
@@ -103,9 +168,14 @@ SELECT
     $now::TIMESTAMP AS enqueued_at,
     NULL::TIMESTAMP AS last_attempt_at,
     CASE WHEN d.send THEN $now::TIMESTAMP END AS next_attempt_at,
-    NULL::TIMESTAMP AS delivered_at
+    NULL::TIMESTAMP AS delivered_at,
+    f.fingerprint,
+    f.opened_at,
+    f.event_identity,
+    d.why AS skip_reason
 FROM fresh AS f
-JOIN decided AS d ON d.webhook = f.webhook AND d.alert_id = f.alert_id AND d.n = f.n;
+JOIN decided AS d
+  ON d.webhook = f.webhook AND d.fingerprint = f.fingerprint AND d.opened_at = f.opened_at AND d.n = f.n;
 
 INSERT INTO outbox BY NAME
 SELECT * FROM outbox_new;

@@ -170,15 +170,15 @@ CREATE TABLE IF NOT EXISTS alert_events (
 
 CREATE TABLE IF NOT EXISTS outbox (  -- one row per alert event and webhook: what `plimsoll notify` sends
     idempotency_key VARCHAR PRIMARY KEY,  -- also the Idempotency-Key header: same on every attempt
-    webhook VARCHAR,                 -- the webhook's name (its url when it has none)
-    url VARCHAR,                     -- its url when the row was queued; delivery uses the current one
+    webhook VARCHAR,                 -- the webhook's name (its url's scheme://host:port when it has none)
+    url VARCHAR,                     -- its url's scheme://host:port, never the path or query (they can hold a token)
     alert_id VARCHAR,
     run_id BIGINT,
     event VARCHAR,                   -- 'opened' | 'updated' | 'closed'
     occurred_at TIMESTAMP,           -- data time of the event
     affected_sessions BIGINT,
     payload VARCHAR,                 -- the JSON body, fixed when queued so every attempt sends the same bytes
-    status VARCHAR,                  -- 'queued' | 'delivered' | 'abandoned' | 'skipped' (an update below notify.growth)
+    status VARCHAR,                  -- 'queued' | 'delivered' | 'abandoned' | 'skipped' (see skip_reason)
     attempts INTEGER,                -- failed and successful POSTs made
     last_error VARCHAR,
     seq BIGINT,                      -- queue order
@@ -197,6 +197,11 @@ ALTER TABLE run_checks ADD COLUMN IF NOT EXISTS beyond_horizon BIGINT;  -- late 
 ALTER TABLE files_read ADD COLUMN IF NOT EXISTS source_name VARCHAR;
 ALTER TABLE files_read ADD COLUMN IF NOT EXISTS invalid_rows BIGINT;   -- rows without id or a sane event time
 ALTER TABLE session_ids ADD COLUMN IF NOT EXISTS event_time TIMESTAMP; -- the session's data time: ids are kept within dedup_horizon
+-- outbox rows from before: NULL until `plimsoll notify` fills them from the alerts
+ALTER TABLE outbox ADD COLUMN IF NOT EXISTS fingerprint VARCHAR;      -- the incident: the alert's fingerprint ...
+ALTER TABLE outbox ADD COLUMN IF NOT EXISTS opened_at TIMESTAMP;      -- ... and its opening (data time)
+ALTER TABLE outbox ADD COLUMN IF NOT EXISTS event_identity VARCHAR;   -- the event whatever the alert_id: a rebuild's alerts share it
+ALTER TABLE outbox ADD COLUMN IF NOT EXISTS skip_reason VARCHAR;      -- 'growth' | 'rebuilt' | 'catch_up'
 
 -- The warehouse's layout, so a later release can migrate a file written by an earlier one and a
 -- file written by a later one is refused with a clear message. Paths in files_read,

@@ -6,6 +6,7 @@ guarantees that every expression in it was parsed and checked against the source
 
 from __future__ import annotations
 
+import urllib.parse
 from dataclasses import dataclass, field
 from datetime import datetime, timedelta
 from pathlib import Path
@@ -163,11 +164,36 @@ class Check:
 
 @dataclass(frozen=True)
 class Webhook:
-    """An endpoint that ``plimsoll notify`` POSTs alert events to; ``name`` is its identity."""
+    """An endpoint that ``plimsoll notify`` POSTs alert events to; ``name`` is its identity.
+
+    The URL's path and query often carry a secret token, so anything shown or stored names the
+    endpoint only as ``scheme://host:port``; ``headers`` maps a header to the *name* of the
+    environment variable holding its value, read when delivering.
+    """
 
     name: str
     url: str
     timeout: timedelta = timedelta(seconds=10)
+    headers: tuple[tuple[str, str], ...] = ()   # (header name, environment variable name)
+    catch_up: timedelta = timedelta(days=1)     # first notify: events older than this in data time are skipped
+
+    @property
+    def endpoint(self) -> str:
+        return endpoint(self.url)
+
+
+def endpoint(url: str) -> str:
+    """``scheme://host:port`` of a URL: what may be shown or stored of it (no user, path or query)."""
+    parts = urllib.parse.urlsplit(url)
+    try:
+        port = parts.port
+    except ValueError:
+        port = None
+    if not parts.hostname:
+        return f"{parts.scheme}://" if parts.scheme else "(no host)"
+    host = f"[{parts.hostname}]" if ":" in parts.hostname else parts.hostname
+    port = port or {"http": 80, "https": 443}.get(parts.scheme)
+    return f"{parts.scheme}://{host}" + (f":{port}" if port else "")
 
 
 @dataclass(frozen=True)

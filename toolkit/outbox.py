@@ -1,13 +1,16 @@
 """Webhook delivery through an outbox table: alert events queued in the warehouse, POSTed, recorded.
 
 ``plimsoll notify`` first queues, in one transaction, every alert event not yet in the ``outbox`` table
-once per webhook (``queries/outbox.sql`` decides which 'updated' events are worth sending). It then
-POSTs each due row with its ``Idempotency-Key`` and commits the outcome of every POST at once, so a
-success is never sent again, a failure is retried with exponential backoff up to ``max_attempts``, and
-a crash between a POST's success and its commit resends the same bytes with the same key (delivery is
-at least once). The warehouse is held only while queuing and recording, never during a POST, so a
-slow or dead endpoint never keeps ``plimsoll run`` out; ``plimsoll run`` itself never touches the
-network. Times in the outbox are wall clock (UTC): delivery happens in real time, not data time.
+once per webhook and incident (``queries/outbox.sql`` decides which events are worth sending). It then
+delivers: one worker thread per webhook POSTs that webhook's due rows in order, each with its
+``Idempotency-Key``, while the calling thread alone writes the warehouse, committing the outcome of
+every POST at once. So a success is never sent again, a failure is retried with exponential backoff
+up to ``max_attempts``, and a crash between a POST's success and its commit resends the same bytes with
+the same key (delivery is at least once). A webhook's ``timeout`` bounds a whole request (connect,
+send, status, headers, body), and one endpoint's trouble never delays another's deliveries. The
+warehouse is held only while queuing and recording, never during a POST, so a slow or dead endpoint
+never keeps ``plimsoll run`` out; ``plimsoll run`` itself never touches the network. Times in the
+outbox are wall clock (UTC): delivery happens in real time, not data time.
 """
 
 from __future__ import annotations
@@ -15,8 +18,12 @@ from __future__ import annotations
 import fcntl
 import http.client
 import os
+import queue
+import socket
+import threading
 import time
 import urllib.error
+import urllib.parse
 import urllib.request
 from collections.abc import Iterator
 from contextlib import contextmanager
@@ -28,7 +35,7 @@ import duckdb
 
 from . import __version__, warehouse
 from .compiler import template_folder
-from .model import Project, Webhook
+from .model import Project, Webhook, endpoint
 from .outputs import printable
 from .problems import PlimsollError, RunLocked
 
@@ -42,8 +49,12 @@ class Clock:
     def now(self) -> datetime:
         return datetime.now(timezone.utc).replace(tzinfo=None)
 
-    def sleep(self, seconds: float) -> None:
-        time.sleep(seconds)
+    def sleep(self, seconds: float, stop: threading.Event | None = None) -> None:
+        """Wait ``seconds``, or less once ``stop`` is set."""
+        if stop is None:
+            time.sleep(seconds)
+        else:
+            stop.wait(seconds)
 
 
 @dataclass
@@ -59,14 +70,18 @@ class Attempt:
     attempts: int
     error: str | None = None
     next_attempt_at: datetime | None = None
+    key: str = ""                  # the row's idempotency key
+    at: datetime | None = None     # when the POST ended (wall clock, UTC)
 
 
 @dataclass
 class NotifyResult:
     queued: int = 0                 # rows queued to be sent in this call
-    skipped: int = 0                # 'updated' events below notify.growth, recorded as skipped
+    skipped: int = 0                # events recorded as skipped, not to be sent (why: skipped_for)
+    skipped_for: dict[str, int] = field(default_factory=dict)  # skip_reason -> rows skipped in this call
     retried_abandoned: int = 0
     orphaned: int = 0               # queued rows of webhooks no longer configured, abandoned now
+    unsent: list[str] = field(default_factory=list)  # webhooks given nothing: a header's variable is not set
     attempts: list[Attempt] = field(default_factory=list)
     waiting: int = 0                # still to be sent after this call
     failing: int = 0                # of those, rows that have failed at least once
@@ -86,8 +101,9 @@ class NotifyResult:
 
     @property
     def exit_code(self) -> int:
-        """0 when nothing is left failing; 1 when a row still waits for a retry or was given up now."""
-        return 1 if self.failing or self.abandoned_now else 0
+        """0 when nothing is left failing; 1 when a row still waits for a retry or was given up now, or a
+        webhook's header could not be made."""
+        return 1 if self.failing or self.abandoned_now or self.unsent else 0
 
 
 def notify(project: Project, clock: Clock | None = None, retry_for: timedelta = timedelta(0),
@@ -98,27 +114,15 @@ def notify(project: Project, clock: Clock | None = None, retry_for: timedelta = 
     with _single_notifier(project):
         with _warehouse(project) as con:
             _queue(con, project, clock.now(), retry_abandoned, result)
-        hooks = {h.name: h for h in project.webhooks}
-        deadline = clock.now() + retry_for
-        # an endpoint that failed is left alone until its failed row is due again, so a dead
-        # endpoint costs one attempt per pass, not one per queued event
-        resting: dict[str, datetime] = {}
-        while True:
-            now = clock.now()
-            ready = [name for name in hooks if resting.get(name, now) <= now]
-            with _warehouse(project) as con:
-                due = _due(con, ready, now)
-            for row in due:
-                if row[1] in resting and resting[row[1]] > now:
-                    continue
-                attempt = _deliver(project, hooks[row[1]], row, clock)
-                result.attempts.append(attempt)
-                if attempt.next_attempt_at is not None:  # failed, to be retried: let the endpoint rest
-                    resting[row[1]] = attempt.next_attempt_at
-            upcoming = _next_due(project, list(hooks), resting)
-            if upcoming is None or upcoming > deadline:
-                break
-            clock.sleep(max(0.0, (upcoming - clock.now()).total_seconds()))
+            pending = _pending(con, [h.name for h in project.webhooks])
+        headers: dict[str, dict[str, str]] = {}
+        for hook in project.webhooks:
+            try:
+                headers[hook.name] = _headers(hook)
+            except PlimsollError as err:
+                result.unsent.append(str(err))
+                pending.pop(hook.name, None)
+        _deliver_all(project, pending, headers, clock, clock.now() + retry_for, result)
         with _warehouse(project) as con:
             _count(con, result)
     return result
@@ -130,14 +134,18 @@ def _queue(con: duckdb.DuckDBPyConnection, project: Project, now: datetime, retr
     names = [h.name for h in project.webhooks]
     con.execute("BEGIN TRANSACTION")
     try:
+        _upgrade(con, project)
         if project.webhooks:
-            params = {"webhooks": [{"name": h.name, "url": h.url} for h in project.webhooks],
+            params = {"webhooks": [{"name": h.name, "url": h.endpoint, "catch_up": h.catch_up.total_seconds()}
+                                   for h in project.webhooks],
                       "growth": project.notify.growth, "now": now, "version": __version__}
             for statement in con.extract_statements((template_folder() / "outbox.sql").read_text(encoding="utf-8")):
                 con.execute(statement.query, {k: params[k] for k in statement.named_parameters})
             result.queued, result.skipped = con.execute(
                 "SELECT count(*) FILTER (WHERE status = 'queued'), count(*) FILTER (WHERE status = 'skipped') "
                 "FROM outbox_new").fetchone()
+            result.skipped_for = dict(con.execute(
+                "SELECT skip_reason, count(*) FROM outbox_new WHERE status = 'skipped' GROUP BY skip_reason").fetchall())
         result.orphaned = con.execute(
             "UPDATE outbox SET status = 'abandoned', last_error = 'webhook no longer in the project file' "
             "WHERE status = 'queued' AND NOT list_contains($h, webhook)", {"h": names}).fetchone()[0]
@@ -151,35 +159,166 @@ def _queue(con: duckdb.DuckDBPyConnection, project: Project, now: datetime, retr
         raise
 
 
-def _due(con: duckdb.DuckDBPyConnection, names: list[str], now: datetime) -> list[tuple]:
-    return con.execute(
+def _upgrade(con: duckdb.DuckDBPyConnection, project: Project) -> None:
+    """Rows queued by earlier versions: keep no URL beyond scheme://host:port, and move the rows of a
+    webhook without a name, once kept under its full URL, to its name now (its scheme://host:port)."""
+    configured = {h.name for h in project.webhooks}
+    for hook in project.webhooks:
+        if hook.name == hook.endpoint != hook.url and hook.url not in configured:
+            con.execute("UPDATE outbox SET webhook = $name WHERE webhook = $url", {"name": hook.name, "url": hook.url})
+    for (url,) in con.execute("SELECT DISTINCT url FROM outbox WHERE url IS NOT NULL").fetchall():
+        if endpoint(url) != url:
+            con.execute("UPDATE outbox SET url = $short, last_error = replace(last_error, $url, $short) WHERE url = $url",
+                        {"url": url, "short": endpoint(url)})
+
+
+def _headers(hook: Webhook) -> dict[str, str]:
+    """The webhook's own headers, their values read from the environment now; never shown anywhere."""
+    found = {}
+    for header, variable in hook.headers:
+        value = os.environ.get(variable)
+        if not value:
+            raise PlimsollError(f"{hook.name}: environment variable {variable} (header {header}) is not set; "
+                                "nothing sent to this webhook")
+        if any(c in value for c in "\r\n\0") or not _latin1(value):
+            raise PlimsollError(f"{hook.name}: environment variable {variable} (header {header}) holds a line break "
+                                "or a character a header cannot carry; nothing sent to this webhook")
+        found[header] = value
+    return found
+
+
+def _latin1(text: str) -> bool:
+    try:
+        text.encode("latin-1")
+    except UnicodeEncodeError:
+        return False
+    return True
+
+
+@dataclass
+class _Row:
+    """A queued outbox row as its webhook's worker keeps it between attempts."""
+
+    key: str
+    payload: str
+    attempts: int
+    next_at: datetime
+    event: str
+    alert_id: str
+    key_text: str
+
+
+def _pending(con: duckdb.DuckDBPyConnection, names: list[str]) -> dict[str, list[_Row]]:
+    """Every queued row of the configured webhooks, per webhook, in queue order."""
+    rows = con.execute(
         """
-        SELECT o.idempotency_key, o.webhook, o.payload, o.attempts, o.event, o.alert_id,
+        SELECT o.webhook, o.idempotency_key, o.payload, o.attempts, o.next_attempt_at, o.event, o.alert_id,
                coalesce(a.key_text, '')
         FROM outbox AS o
         LEFT JOIN alerts AS a ON a.alert_id = o.alert_id
-        WHERE o.status = 'queued' AND o.next_attempt_at <= $now AND list_contains($h, o.webhook)
+        WHERE o.status = 'queued' AND list_contains($h, o.webhook)
         ORDER BY o.seq
         """,
-        {"now": now, "h": names},
+        {"h": names},
     ).fetchall()
+    pending: dict[str, list[_Row]] = {}
+    for webhook, *fields in rows:
+        pending.setdefault(webhook, []).append(_Row(*fields))
+    return pending
 
 
-def _next_due(project: Project, names: list[str], resting: dict[str, datetime]) -> datetime | None:
-    """When the next queued row may be tried, given the endpoints resting after a failure."""
-    with _warehouse(project) as con:
-        rows = con.execute("SELECT webhook, min(next_attempt_at) FROM outbox WHERE status = 'queued' "
-                           "AND list_contains($h, webhook) GROUP BY webhook", {"h": names}).fetchall()
-    times = [max(first, resting.get(name, first)) for name, first in rows]
-    return min(times, default=None)
+def _deliver_all(project: Project, pending: dict[str, list[_Row]], headers: dict[str, dict[str, str]],
+                 clock: Clock, until: datetime, result: NotifyResult) -> None:
+    """Step 2: one worker per webhook POSTs its rows; this thread alone records every outcome.
+
+    Each webhook is served independently, so an endpoint that hangs, trickles or fails delays none of
+    the others. DuckDB is only touched here, one committed statement per POST, in the order the POSTs
+    end; a worker waits for its outcome to be recorded before its next POST, so at most one success
+    per webhook can be unrecorded when the process dies.
+    """
+    outcomes: queue.Queue = queue.Queue()
+    stop = threading.Event()
+    workers = [threading.Thread(target=_worker, name=f"notify {hook.name}", daemon=True,
+                                args=(project, hook, headers[hook.name], pending[hook.name], clock, until,
+                                      outcomes, stop))
+               for hook in project.webhooks if pending.get(hook.name)]
+    for worker in workers:
+        worker.start()
+    try:
+        _collect(project, outcomes, len(workers), stop, result)
+    except BaseException:
+        stop.set()  # e.g. interrupted while waiting: the workers start no further POST
+        raise
+    for worker in workers:
+        worker.join()
 
 
-def _deliver(project: Project, hook: Webhook, row: tuple, clock: Clock) -> Attempt:
-    """POST one row, then record the outcome in its own committed statement straight away."""
-    key, name, payload, attempts, event, alert_id, key_text = row
-    ok, retry, error, retry_after = post(hook, payload.encode("utf-8"), key)
+def _collect(project: Project, outcomes: queue.Queue, running: int, stop: threading.Event,
+             result: NotifyResult) -> None:
+    """Record each outcome as it comes, until every worker is done; then raise the first failure."""
+    failure = None
+    while running:
+        item = outcomes.get()
+        if item is None:
+            running -= 1
+            continue
+        if isinstance(item, BaseException):
+            failure = failure or item
+            stop.set()
+            continue
+        attempt, recorded = item
+        try:
+            if failure is None:  # after a failure, outcomes are left unrecorded: sent again next time
+                _record(project, attempt)
+                result.attempts.append(attempt)
+        except BaseException as err:
+            failure = err
+            stop.set()
+        finally:
+            recorded.set()
+    if failure is not None:
+        raise failure
+
+
+def _worker(project: Project, hook: Webhook, headers: dict[str, str], rows: list[_Row], clock: Clock,
+            until: datetime, outcomes: queue.Queue, stop: threading.Event) -> None:
+    """One webhook's deliveries: its due rows in order, resting after a failure, until nothing is due."""
+    try:
+        resting: datetime | None = None  # after a failure the endpoint is left alone until that row is due
+        while rows and not stop.is_set():
+            now = clock.now()
+            if resting is None or resting <= now:
+                resting = None
+                for row in [r for r in rows if r.next_at <= now]:
+                    attempt = _attempt(project, hook, headers, row, clock)
+                    recorded = threading.Event()
+                    outcomes.put((attempt, recorded))
+                    recorded.wait()
+                    if stop.is_set():
+                        return
+                    if attempt.next_attempt_at is None:
+                        rows.remove(row)
+                    else:  # failed, to be retried: the endpoint's other rows wait with it
+                        row.attempts, row.next_at = attempt.attempts, attempt.next_attempt_at
+                        resting = attempt.next_attempt_at
+                        break
+            if not rows:
+                return
+            upcoming = max(min(r.next_at for r in rows), resting or datetime.min)
+            if upcoming > until:
+                return
+            clock.sleep(max(0.0, (upcoming - clock.now()).total_seconds()), stop)
+    except BaseException as err:  # handed to the recording thread, which raises it
+        outcomes.put(err)
+    finally:
+        outcomes.put(None)
+
+
+def _attempt(project: Project, hook: Webhook, headers: dict[str, str], row: _Row, clock: Clock) -> Attempt:
+    """POST one row and decide what becomes of it: delivered, retried later, or abandoned."""
+    ok, retry, error, retry_after = post(hook, row.payload.encode("utf-8"), row.key, headers)
     now = clock.now()
-    attempts += 1
+    attempts = row.attempts + 1
     settings = project.notify
     if ok:
         status, next_at = "delivered", None
@@ -190,30 +329,31 @@ def _deliver(project: Project, hook: Webhook, row: tuple, clock: Clock) -> Attem
         if retry_after is not None:
             wait = min(settings.max_backoff, max(wait, retry_after))
         status, next_at = "queued", now + wait
-    try:
-        _record(project, key, status, attempts, error, now, next_at, hook.url)
-    except RunLocked as err:
-        outcome = "was delivered" if ok else "failed"
-        raise RunLocked(f"{name}: {event} of alert {alert_id} {outcome} but could not be recorded: {err}; "
-                        "the next `plimsoll notify` sends it again with the same Idempotency-Key") from None
-    return Attempt(name, event, alert_id, key_text, ok, status, attempts, error, next_at)
+    return Attempt(hook.name, row.event, row.alert_id, row.key_text, ok, status, attempts, error, next_at,
+                   row.key, now)
 
 
-def _record(project: Project, key: str, status: str, attempts: int, error: str | None, now: datetime,
-            next_at: datetime | None, url: str) -> None:
+def _record(project: Project, attempt: Attempt) -> None:
     """One committed statement per POST, so a recorded success is never sent again."""
-    with _warehouse(project, wait=RECORD_WAIT) as con:
-        con.execute(
-            """
-            UPDATE outbox
-            SET status = $status, attempts = $attempts, last_error = $error, last_attempt_at = $now,
-                next_attempt_at = $next, delivered_at = CASE WHEN $status = 'delivered' THEN $now END,
-                url = $url
-            WHERE idempotency_key = $key AND status = 'queued'
-            """,
-            {"status": status, "attempts": attempts, "error": error, "now": now, "next": next_at,
-             "key": key, "url": url},
-        )
+    url = next((h.endpoint for h in project.webhooks if h.name == attempt.webhook), None)
+    try:
+        with _warehouse(project, wait=RECORD_WAIT) as con:
+            con.execute(
+                """
+                UPDATE outbox
+                SET status = $status, attempts = $attempts, last_error = $error, last_attempt_at = $now,
+                    next_attempt_at = $next, delivered_at = CASE WHEN $status = 'delivered' THEN $now END,
+                    url = coalesce($url, url)
+                WHERE idempotency_key = $key AND status = 'queued'
+                """,
+                {"status": attempt.status, "attempts": attempt.attempts, "error": attempt.error, "now": attempt.at,
+                 "next": attempt.next_attempt_at, "key": attempt.key, "url": url},
+            )
+    except RunLocked as err:
+        outcome = "was delivered" if attempt.ok else "failed"
+        raise RunLocked(f"{attempt.webhook}: {attempt.event} of alert {attempt.alert_id} {outcome} but could not "
+                        f"be recorded: {err}; the next `plimsoll notify` sends it again with the same "
+                        "Idempotency-Key") from None
 
 
 class _NoRedirects(urllib.request.HTTPRedirectHandler):
@@ -223,28 +363,159 @@ class _NoRedirects(urllib.request.HTTPRedirectHandler):
         return None
 
 
-_OPENER = urllib.request.build_opener(_NoRedirects())
+class _Deadline:
+    """A time limit for a whole request: when it passes, every socket of the request is shut down.
+
+    A socket timeout bounds each read, not the request, so a server that trickles its answer a byte
+    at a time could hold a POST for ever; shutting the socket down ends whatever the request is
+    doing (connecting through a proxy, sending, waiting for the status, reading headers or body).
+    """
+
+    def __init__(self, seconds: float) -> None:
+        self.seconds = seconds
+        self.ends = time.monotonic() + seconds
+        self.expired = False
+        self._sockets: list[socket.socket] = []
+        self._lock = threading.Lock()
+        self._timer = threading.Timer(seconds, self._expire)
+        self._timer.daemon = True
+
+    def remaining(self) -> float:
+        return max(0.001, self.ends - time.monotonic())
+
+    def watch(self, sock: socket.socket) -> None:
+        with self._lock:
+            self._sockets.append(sock)
+            if self.expired:
+                _shut(sock)
+
+    def _expire(self) -> None:
+        with self._lock:
+            self.expired = True
+            for sock in self._sockets:
+                _shut(sock)
+
+    def __enter__(self) -> "_Deadline":
+        self._timer.start()
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self._timer.cancel()
 
 
-def post(hook: Webhook, body: bytes, key: str) -> tuple[bool, bool, str | None, timedelta | None]:
-    """POST ``body``: (delivered, worth retrying, error, the server's Retry-After)."""
+def _shut(sock: socket.socket) -> None:
+    try:  # the plain socket's shutdown, also for a TLS socket: its SSL object stays with the reading thread
+        socket.socket.shutdown(sock, socket.SHUT_RDWR)
+    except OSError:
+        pass  # already closed
+
+
+def _deadline_connection(base: type[http.client.HTTPConnection], deadline: _Deadline) -> type:
+    """``base`` whose sockets (to the endpoint or a proxy, before and after TLS) obey ``deadline``."""
+
+    class Connection(base):  # type: ignore[misc, valid-type]
+        def __init__(self, *args: object, **kwargs: object) -> None:
+            super().__init__(*args, **kwargs)
+            create = self._create_connection
+
+            def create_watched(address, timeout=None, source_address=None):  # type: ignore[no-untyped-def]
+                sock = create(address, deadline.remaining(), source_address)
+                deadline.watch(sock)
+                return sock
+
+            self._create_connection = create_watched
+
+        def connect(self) -> None:
+            super().connect()
+            deadline.watch(self.sock)
+
+    return Connection
+
+
+class _DeadlineHTTP(urllib.request.HTTPHandler):
+    def __init__(self, deadline: _Deadline) -> None:
+        super().__init__()
+        self.deadline = deadline
+
+    def http_open(self, req):  # type: ignore[no-untyped-def]
+        return self.do_open(_deadline_connection(http.client.HTTPConnection, self.deadline), req)
+
+
+class _DeadlineHTTPS(urllib.request.HTTPSHandler):
+    def __init__(self, deadline: _Deadline) -> None:
+        super().__init__()
+        self.deadline = deadline
+
+    def https_open(self, req):  # type: ignore[no-untyped-def]
+        return self.do_open(_deadline_connection(http.client.HTTPSConnection, self.deadline), req,
+                            context=self._context)
+
+
+class _Late(Exception):
+    """The request's deadline passed."""
+
+
+def post(hook: Webhook, body: bytes, key: str, headers: dict[str, str] | None = None
+         ) -> tuple[bool, bool, str | None, timedelta | None]:
+    """POST ``body`` within the webhook's timeout: (delivered, worth retrying, error, the server's Retry-After).
+
+    The error names the endpoint as scheme://host:port only, and never holds the URL's path or query
+    or a header's value, since those often carry a secret.
+    """
+    ok, retry, error, retry_after = _post(hook, body, key, headers or {})
+    return ok, retry, (_hidden(error, hook, headers or {}) if error is not None else None), retry_after
+
+
+def _post(hook: Webhook, body: bytes, key: str, headers: dict[str, str]
+          ) -> tuple[bool, bool, str | None, timedelta | None]:
     request = urllib.request.Request(hook.url, data=body, method="POST", headers={
-        "Content-Type": "application/json", "Idempotency-Key": key, "User-Agent": f"plimsoll/{__version__}",
+        **headers, "Content-Type": "application/json", "Idempotency-Key": key, "User-Agent": f"plimsoll/{__version__}",
     })
+    seconds = hook.timeout.total_seconds()
+    deadline = _Deadline(seconds)
+    opener = urllib.request.build_opener(_NoRedirects(), _DeadlineHTTP(deadline), _DeadlineHTTPS(deadline))
     try:
-        with _OPENER.open(request, timeout=hook.timeout.total_seconds()) as response:
-            response.read(1 << 16)
+        with deadline:
+            try:
+                with opener.open(request, timeout=seconds) as response:
+                    response.read(1 << 16)
+            except urllib.error.HTTPError as err:
+                err.close()
+                if deadline.expired:
+                    raise _Late from None
+                raise
+            except Exception:
+                if deadline.expired:
+                    raise _Late from None
+                raise
+            if deadline.expired:  # the answer did not end in time: the body was cut off
+                raise _Late
         return True, False, None, None
+    except _Late:
+        return False, True, f"no answer within {seconds:g} s", None
     except urllib.error.HTTPError as err:
         retry = err.code in (408, 425, 429) or err.code >= 500
-        where = f" to {err.headers.get('Location')}" if 300 <= err.code < 400 else ""
+        location = err.headers.get("Location")
+        where = f" to {endpoint(location)} (not followed)" if 300 <= err.code < 400 and location else ""
         return False, retry, f"HTTP {err.code} {err.reason}{where}", _retry_after(err.headers.get("Retry-After"))
     except urllib.error.URLError as err:
-        return False, True, f"cannot reach {hook.url}: {_reason(err.reason)}", None
+        return False, True, f"cannot reach {hook.endpoint}: {_reason(err.reason)}", None
     except TimeoutError:
-        return False, True, f"no answer within {hook.timeout.total_seconds():g} s", None
-    except (OSError, http.client.HTTPException) as err:
+        return False, True, f"no answer within {seconds:g} s", None
+    except (OSError, http.client.HTTPException, ValueError) as err:
         return False, True, f"connection failed: {_reason(err)}", None
+
+
+def _hidden(text: str, hook: Webhook, headers: dict[str, str]) -> str:
+    """``text`` without anything secret a library's message might have repeated: the URL beyond its
+    endpoint, its path and query, and the header values."""
+    parts = urllib.parse.urlsplit(hook.url)
+    secrets = [hook.url, parts.netloc if "@" in parts.netloc else "", parts.path, parts.query, parts.fragment,
+               *headers.values()]
+    # what the endpoint's own text shows is no secret, and pieces this short would garble the message
+    for secret in sorted({s for s in secrets if len(s) >= 6 and s not in hook.endpoint}, key=len, reverse=True):
+        text = text.replace(secret, "[hidden]")
+    return text
 
 
 def _reason(err: object) -> str:
@@ -296,17 +567,31 @@ def _single_notifier(project: Project) -> Iterator[None]:
             fcntl.flock(handle, fcntl.LOCK_UN)
 
 
+_SKIPS = {  # skip_reason -> how the summary counts it
+    "growth": ("update below notify.growth", "updates below notify.growth"),
+    "rebuilt": ("'check changed' close of an incident the rebuilt check goes on with",
+                "'check changed' closes of incidents the rebuilt check goes on with"),
+    "catch_up": ("event older than catch_up", "events older than catch_up"),
+}
+
+
+def _skips(counts: dict[str, int]) -> list[str]:
+    return [f"{n} {_SKIPS[why][n != 1]}" for why, n in sorted(counts.items(), key=lambda c: list(_SKIPS).index(c[0]))]
+
+
 def describe(project: Project, result: NotifyResult) -> str:
     """What ``plimsoll notify`` prints: what was queued, each attempt, and what is left."""
     if not project.webhooks and not result.orphaned:
         return "notify: no webhooks in the project file; nothing to send"
     lines = [f"notify: queued {result.queued} event{'s' if result.queued != 1 else ''} for "
              f"{len(project.webhooks)} webhook{'s' if len(project.webhooks) != 1 else ''}"
-             + (f" ({result.skipped} updates below notify.growth skipped)" if result.skipped else "")]
+             + (f" ({', '.join(_skips(result.skipped_for))} skipped)" if result.skipped else "")]
     if result.retried_abandoned:
         lines.append(f"  {result.retried_abandoned} abandoned deliveries queued again")
     if result.orphaned:
         lines.append(f"  abandoned {result.orphaned} deliveries to webhooks no longer in the project file")
+    for line in result.unsent:
+        lines.append(f"  not sent   {line}")
     for a in result.attempts:
         what = f"{a.webhook}: {a.event} {printable(a.key_text) or '(all sessions)'} [{a.alert_id}]"
         if a.ok:
