@@ -74,14 +74,15 @@ GROUP BY __id_hash
 HAVING count(*) > 1;
 
 -- A view, not a copy: each check's scan reads it once.
+{% set kept_columns %}__session_id, __id_hash, __event_time, __excluded, {% for column in columns %}{{ column | ident }}, {% endfor %}__file{% endset %}
 CREATE OR REPLACE TEMP VIEW lake_sessions AS
-SELECT * EXCLUDE (__beyond_horizon, __insane_time)
+SELECT {{ kept_columns }}
 FROM valid_rows
 WHERE NOT __beyond_horizon
   AND __id_hash NOT IN (SELECT __id_hash FROM repeated_ids)
   AND __id_hash NOT IN (SELECT id_hash FROM read_before)
 UNION ALL
-SELECT * EXCLUDE (__beyond_horizon, __insane_time)
+SELECT {{ kept_columns }}
 FROM valid_rows
 WHERE NOT __beyond_horizon
   AND __id_hash IN (SELECT __id_hash FROM repeated_ids)

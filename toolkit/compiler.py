@@ -55,9 +55,12 @@ class CompiledCheck:
         """The whole script as ``plimsoll compile`` shows it."""
         header = (
             f"-- Plimsoll check {self.check}: compiled SQL, executed by `plimsoll run` as shown.\n"
-            "-- Parameters: $files (new Parquet files), $manifest (their size and time), $run_id,\n"
-            "-- $reader (the check whose earlier files decide duplicates), $definition (hash of the SQL\n"
-            "-- up to the breach stage). Statements after '@repeat' run until no breach flag changes.\n"
+            "-- Parameters: $files (where the new Parquet files are read from), $paths (their names\n"
+            "-- relative to the source's path), $manifest (names, sizes and times), $run_id, $reader (the\n"
+            "-- check whose earlier files decide repeats), $read_until (a backlog read in several runs:\n"
+            "-- the earliest event time left for the next runs, else NULL), $source_checks (the checks of\n"
+            "-- the source), $definition (hash of the SQL up to the breach stage). Statements after\n"
+            "-- '@repeat' run until no breach flag changes.\n"
         )
         return header + "\n".join(stage.text.rstrip() + "\n" for stage in self.stages)
 

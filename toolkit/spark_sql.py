@@ -130,6 +130,11 @@ def _to_spark_node(node: exp.Expression) -> exp.Expression:
     if isinstance(node, exp.Column) and not node.table and node.this.name == "filename" \
             and not node.this.args.get("quoted"):
         return sqlglot.parse_one(_FILE_PATH, read="duckdb").transform(_to_spark_node)
+    if isinstance(node, exp.Anonymous) and node.name.lower() == "isfinite" and len(node.expressions) == 1:
+        # Spark has no isfinite: x - x is 0 for a finite number, NaN for NaN and ±infinity
+        x = node.expressions[0]
+        return exp.paren(exp.EQ(this=exp.paren(exp.Sub(this=x.copy(), expression=x.copy())),
+                                expression=exp.Literal.number(0)))
     if isinstance(node, exp.Anonymous) and node.name.lower() in _RENAMED:
         return exp.Anonymous(this=_RENAMED[node.name.lower()], expressions=node.expressions)
     if isinstance(node, exp.ToMap):
