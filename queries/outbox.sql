@@ -153,8 +153,9 @@ SELECT
         'opened_at': strftime(f.opened_at, '%Y-%m-%dT%H:%M:%SZ'),
         'closed_at': CASE WHEN f.event = 'closed' THEN strftime(f.closed_at, '%Y-%m-%dT%H:%M:%SZ') END,
         'close_reason': CASE WHEN f.event = 'closed' THEN f.close_reason END,
-        'value': f.value,
-        'threshold': f.threshold,
+        -- NaN and infinity are not JSON: a strict parser would refuse the whole event
+        'value': CASE WHEN isfinite(f.value) THEN f.value END,
+        'threshold': CASE WHEN isfinite(f.threshold) THEN f.threshold END,
         'affected_sessions': f.affected_sessions,
         'breach_windows': f.breach_windows,
         'run_id': f.run_id,

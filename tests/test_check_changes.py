@@ -98,6 +98,35 @@ def test_a_changed_baseline_is_not_run_and_says_how_to_rebuild(two_runs: Path) -
     assert warehouse_contents(two_runs.parent / "warehouse.duckdb", skip=("runs",)) == before
 
 
+def test_editing_one_check_does_not_stop_the_others(tmp_path: Path) -> None:
+    edited = project(tmp_path / "edited", DAYS[:1])
+    assert CliRunner().invoke(main, ["run", "-p", str(edited)]).exit_code == 0
+    edit(edited, "title_decode_errors.yml", "factor: 1.5", "factor: 2.5")
+    shutil.copytree(FIXTURE_LAKE / DAYS[1], tmp_path / "edited" / "lake" / DAYS[1])  # the next day lands
+    cli = CliRunner().invoke(main, ["run", "-p", str(edited)])
+    assert cli.exit_code == 2, cli.output
+    assert "startup_p90_by_site: 1 file," in cli.output and "1 changed check not run" in cli.output
+    assert cli.output.splitlines()[-1].endswith(
+        "check title_decode_errors was not run: it has changed since its windows were computed (definition "
+        f"{cli.output.split('(definition ')[1].split(')')[0]}); run `plimsoll run --check title_decode_errors "
+        "--full-refresh` to rebuild it from the lake, or undo the change")
+    # the unchanged check carried on exactly as if nothing had been edited
+    plain = project(tmp_path / "plain", DAYS)
+    run(load_project(plain))
+    startup = {"windows": "check_name = 'startup_p90_by_site'", "alerts": "check_name = 'startup_p90_by_site'"}
+
+    def of_startup(folder: Path) -> dict[str, list[tuple]]:
+        con = duckdb.connect(str(folder / "warehouse.duckdb"), read_only=True)
+        try:
+            return {t: con.execute(f"SELECT {RESULTS[t]} FROM {t} WHERE {w} ORDER BY ALL").fetchall()
+                    for t, w in startup.items()}
+        finally:
+            con.close()
+
+    assert of_startup(tmp_path / "edited") == of_startup(tmp_path / "plain")
+    assert len(of_startup(tmp_path / "plain")["windows"]) > 20
+
+
 def test_severity_and_life_cycle_may_change_without_a_rebuild(two_runs: Path) -> None:
     edit(two_runs, "title_decode_errors.yml", "severity: high", "severity: low")
     edit(two_runs, "title_decode_errors.yml", "recover_after: 2", "recover_after: 3")

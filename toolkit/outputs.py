@@ -6,6 +6,7 @@ Listings carry keys and counts only, never a session or viewer identifier.
 from __future__ import annotations
 
 import json
+import math
 from datetime import datetime
 from typing import Any
 
@@ -52,9 +53,12 @@ def alerts_json(alerts: list[dict[str, Any]]) -> str:
     """A JSON list for scripts: the key as an object, data times as ``YYYY-MM-DD HH:MM:SS``."""
 
     def encode(value: Any) -> Any:
+        if isinstance(value, float) and not math.isfinite(value):
+            return None  # NaN and infinity are not JSON: strict parsers refuse them
         return value.isoformat(sep=" ") if isinstance(value, datetime) else value
 
-    return json.dumps([{k: encode(v) for k, v in a.items()} for a in alerts], indent=2, ensure_ascii=False)
+    return json.dumps([{k: encode(v) for k, v in a.items()} for a in alerts], indent=2, ensure_ascii=False,
+                      allow_nan=False)
 
 
 def alerts_table(alerts: list[dict[str, Any]]) -> str:
