@@ -154,3 +154,23 @@ def test_expressions_that_try_to_do_more_are_refused(tmp_path: Path, expression:
     project_file = write_project(tmp_path, {"hostile.yml": body}, PLAIN_PROJECT.format(lake=tmp_path / "lake"))
     with pytest.raises(ProjectInvalid, match=r"hostile\.yml:\d+: "):
         load_project(project_file)
+
+
+def test_distinct_keys_print_distinctly(tmp_path: Path) -> None:
+    # a NULL and the text '<null>'; a value holding ", title=" and the two keys it could be read as
+    schema = "session_id VARCHAR, ended_at TIMESTAMP, site VARCHAR, title VARCHAR, failed BOOLEAN"
+    keys = [(None, "t"), ("<null>", "t"), ("a, title=b", "c"), ("a", "b, title=c"), ("", "t"), ('"', "t")]
+    rows = [(f"s{k}-{i}", T0 + timedelta(minutes=i), site, title, False)
+            for k, (site, title) in enumerate(keys) for i in range(3)]
+    rows.append(("closer", T0 + timedelta(hours=5), "z", "z", False))
+    lake = write_rows(tmp_path / "lake", schema, rows)
+    check = ("check: by_title\nsource: sessions\nby: [site, title]\nmeasure: {kind: rate, bad: failed}\n"
+             "window: {every: 1h}\nbaseline: {method: p_chart, history: 5, min_history: 2}\n")
+    run(load_project(write_project(tmp_path, {"c.yml": check}, PLAIN_PROJECT.format(lake=lake))))
+    con = duckdb.connect(str(tmp_path / "w.duckdb"), read_only=True)
+    texts = dict(con.execute("SELECT key_text, key FROM windows WHERE key['site'] IS DISTINCT FROM 'z'").fetchall())
+    con.close()
+    assert sorted(texts) == sorted([
+        "site=<null>, title=t", 'site="<null>", title=t', 'site="a, title=b", title=c', 'site=a, title="b, title=c"',
+        'site="", title=t', 'site="\\"", title=t'])
+    assert len({tuple(sorted(k.items())) for k in texts.values()}) == len(keys)

@@ -182,7 +182,7 @@ def test_validate_command_accepts_a_good_project(make_project) -> None:
     project = make_project({"title_errors.yml": GOOD})
     result = CliRunner().invoke(main, ["validate", "-p", str(project)])
     assert result.exit_code == 0, result.output
-    assert "1 checks" in result.output
+    assert result.output.endswith(": 1 check, 1 source: ok\n")
 
 
 @pytest.mark.parametrize("text,seconds", [("90m", 5400), ("2h", 7200), ("3d", 259200), ("1w", 604800),

@@ -95,7 +95,7 @@ def main() -> None:
 def validate(project_file: Path) -> None:
     """Load the project and every check; print file:line: message per problem."""
     project = load_project(project_file)
-    click.echo(f"{project_file}: {len(project.checks)} checks, {len(project.sources)} sources: ok")
+    click.echo(f"{project_file}: {_plural(len(project.checks), 'check')}, {_plural(len(project.sources), 'source')}: ok")
 
 
 @main.command()

@@ -143,10 +143,10 @@ def _publish(con: duckdb.DuckDBPyConnection, project: Project, run_id: int) -> N
     try:
         warehouse.publish(con, project)
     except (duckdb.Error, OSError) as err:
+        why = f"{err.strerror}: {err.filename}" if isinstance(err, OSError) and err.strerror else engine_message(err)
         raise WarehouseError(
             f"run {run_id} is committed, but the copies readers use while a run holds the warehouse could "
-            f"not be written to {warehouse.snapshot_folder(project)}: {engine_message(err)}; the next run "
-            "writes them again") from None
+            f"not be written to {warehouse.snapshot_folder(project)}: {why}; the next run writes them again") from None
 
 
 def _together(runs: list[RunResult]) -> RunResult:
@@ -230,8 +230,8 @@ def _run(con: duckdb.DuckDBPyConnection, project: Project, run_id: int, checks: 
             _record(con, run_id, started, [c.name for c in checks], full_refresh, "failed", str(message), None)
             con.execute("COMMIT")
         except duckdb.Error as record_err:
-            raise WarehouseError(f"{message} (and the failed run could not be recorded: "
-                                 f"{_engine_message(record_err)})") from err
+            raise WarehouseError(f"{message}; the run was rolled back, and its failure could not be recorded "
+                                 f"either ({_engine_message(record_err)})") from err
         if isinstance(err, PlimsollError):
             raise
         raise DataError(str(message)) from err
@@ -320,9 +320,13 @@ def _execute_streamed(con: duckdb.DuckDBPyConnection, stages: duckdb.DuckDBPyCon
     try:
         _execute(con, who, stage, statement, params)
     finally:
-        con.unregister(STREAMED)
-        reader.close()
-        warehouse.finish_pending(stages)
+        # after a failed write the transaction is aborted and refuses even this: the write's own
+        # error is the one to report, so these clean-ups never replace it
+        for clean_up in (lambda: con.unregister(STREAMED), reader.close, lambda: warehouse.finish_pending(stages)):
+            try:
+                clean_up()
+            except (duckdb.Error, OSError):
+                pass
 
 
 def _writes_warehouse(statement: Statement) -> bool:

@@ -23,7 +23,7 @@ import duckdb
 from . import storage
 from .compiler import environment, template_folder
 from .model import Project
-from .problems import DataError, RunLocked, WarehouseError
+from .problems import DataError, RunLocked, WarehouseError, engine_message
 from .sqltext import quote_ident, quote_literal
 
 TABLES = ("runs", "run_checks", "files_read", "changed_files", "source_columns", "session_ids",
@@ -49,15 +49,25 @@ def connect(project: Project, read_only: bool = False, wait: float = 0.0) -> duc
     path = Path(project.warehouse)
     if read_only and not path.exists():
         raise FileNotFoundError(f"{path}: no warehouse yet; run `plimsoll run` first")
-    path.parent.mkdir(parents=True, exist_ok=True)
+    if path.is_dir():
+        raise WarehouseError(f"{path}: is a folder; `warehouse:` in {project.file.name} must name a file, "
+                             "e.g. warehouse.duckdb")
+    if path.exists() and not path.is_file():
+        raise WarehouseError(f"{path}: is not a regular file (a device or a pipe); `warehouse:` in "
+                             f"{project.file.name} must name a file, e.g. warehouse.duckdb")
+    try:
+        path.parent.mkdir(parents=True, exist_ok=True)
+    except OSError as err:
+        raise WarehouseError(f"{path.parent}: cannot make the warehouse's folder: {err.strerror or err}") from None
     deadline = time.monotonic() + max(wait, 0.0)
     while True:
         try:
             con = duckdb.connect(str(path), read_only=read_only)
             break
-        except duckdb.IOException as err:
+        except duckdb.Error as err:
             if "lock" not in str(err).lower():
-                raise
+                raise WarehouseError(f"{path}: cannot open the warehouse{' for reading' if read_only else ''}: "
+                                     f"{_reason(err)}") from None
             if time.monotonic() >= deadline:
                 waited = f" after waiting {wait:g} s" if wait > 0 else ""
                 raise RunLocked(f"{path}: in use by {holder(project, err)}{waited}; "
@@ -248,6 +258,12 @@ def _write_atomically(path: Path, data: bytes) -> None:
     temp = path.with_name(f".{path.name}.{os.getpid()}.tmp")
     temp.write_bytes(data)
     os.replace(temp, path)
+
+
+def _reason(err: BaseException) -> str:
+    """DuckDB's message without its class prefix, e.g. 'Read-only file system'."""
+    text = engine_message(err)
+    return text.split(": ", 1)[1] if text.startswith(("IO Error: ", "Permission Error: ")) else text
 
 
 def _setting(text: str) -> str:
