@@ -102,8 +102,8 @@ SELECT
     any_value(valid.rows_valid) - any_value(valid.beyond_horizon) - any_value(kept.sessions) AS duplicate_rows,
     any_value(valid.beyond_horizon) AS beyond_horizon,
     any_value(kept.excluded) AS rows_excluded,
-    -- the watermark's candidate: sane times only
-    max(__event_time) FILTER (WHERE __session_id IS NOT NULL) AS latest
+    -- the watermark's candidate: every possible event time read (an impossible one is NULL by now)
+    max(__event_time) AS latest
 FROM lake_rows, kept, valid;
 
 -- What each file held: its rows, and those without a session id or a sane event time.

@@ -256,8 +256,8 @@ def test_compile_of_a_bounded_source_shows_the_bound(project: Path) -> None:
     check = load_project(project).checks["startup_p90_by_site"]
     plain = compile_source([check]).text
     bounded = compile_source([replace(check, source=replace(check.source, until=T("2026-11-03 06:00")))]).text
-    assert "until" not in plain and "TIMESTAMP '2026-11-03 06:00:00'" not in plain
-    assert "WHERE \"ended_at\"::TIMESTAMP < TIMESTAMP '2026-11-03 06:00:00';" in bounded
+    assert "A replay up to" not in plain and "TIMESTAMP '2026-11-03 06:00:00'" not in plain
+    assert "WHERE (\"ended_at\")::TIMESTAMP < TIMESTAMP '2026-11-03 06:00:00'" in bounded
 
 
 # ── the demo: Fernhill Broadcasting's four labelled incidents ──────────────────────────────────

@@ -1,7 +1,10 @@
 -- Plimsoll check startup_p90_by_site: compiled SQL, executed by `plimsoll run` as shown.
--- Parameters: $files (new Parquet files), $manifest (their size and time), $run_id,
--- $reader (the check whose earlier files decide duplicates), $definition (hash of the SQL
--- up to the breach stage). Statements after '@repeat' run until no breach flag changes.
+-- Parameters: $files (where the new Parquet files are read from), $paths (their names
+-- relative to the source's path), $manifest (names, sizes and times), $run_id, $reader (the
+-- check whose earlier files decide repeats), $read_until (a backlog read in several runs:
+-- the earliest event time left for the next runs, else NULL), $source_checks (the checks of
+-- the source), $definition (hash of the SQL up to the breach stage). Statements after
+-- '@repeat' run until no breach flag changes.
 -- ── stage 0 · source ───────────────────────────────────────────────────────────────────────
 -- Source sessions: the sessions of the files not read before ($files, read from where they are;
 -- $paths, their names relative to the source's path), read once for every check that has read the
@@ -71,13 +74,13 @@ HAVING count(*) > 1;
 
 -- A view, not a copy: each check's scan reads it once.
 CREATE OR REPLACE TEMP VIEW lake_sessions AS
-SELECT * EXCLUDE (__beyond_horizon, __insane_time)
+SELECT __session_id, __id_hash, __event_time, __excluded, "site", "startup_ms", __file
 FROM valid_rows
 WHERE NOT __beyond_horizon
   AND __id_hash NOT IN (SELECT __id_hash FROM repeated_ids)
   AND __id_hash NOT IN (SELECT id_hash FROM read_before)
 UNION ALL
-SELECT * EXCLUDE (__beyond_horizon, __insane_time)
+SELECT __session_id, __id_hash, __event_time, __excluded, "site", "startup_ms", __file
 FROM valid_rows
 WHERE NOT __beyond_horizon
   AND __id_hash IN (SELECT __id_hash FROM repeated_ids)
@@ -97,8 +100,8 @@ SELECT
     any_value(valid.rows_valid) - any_value(valid.beyond_horizon) - any_value(kept.sessions) AS duplicate_rows,
     any_value(valid.beyond_horizon) AS beyond_horizon,
     any_value(kept.excluded) AS rows_excluded,
-    -- the watermark's candidate: sane times only
-    max(__event_time) FILTER (WHERE __session_id IS NOT NULL) AS latest
+    -- the watermark's candidate: every possible event time read (an impossible one is NULL by now)
+    max(__event_time) AS latest
 FROM lake_rows, kept, valid;
 
 -- What each file held: its rows, and those without a session id or a sane event time.
