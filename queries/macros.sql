@@ -47,3 +47,24 @@ least(1.0, (({{ x }}) / ({{ n }}) + ({{ z }}) ^ 2 / (2 * ({{ n }})) + ({{ z }}) 
 {% macro floor_div(x, w) -%}
 ({{ x }} - (({{ x }}) % {{ w }} + {{ w }}) % {{ w }}) // {{ w }}
 {%- endmacro %}
+{#- The source stage's two writes to the id memory, on either engine: remember each kept id with
+    the file it was kept from (`kept`: id_hash, first_path, event_time), only pairs not yet known (a
+    check catching up on files others read may keep ids they kept from older files); then forget
+    ids more than dedup_horizon behind the data every check of the source has read. -#}
+{% macro remember_ids(source, kept) -%}
+INSERT INTO session_ids BY NAME
+SELECT {{ source.name | literal }} AS source_name, k.id_hash, k.first_path, k.event_time
+FROM ({{ kept }}) AS k
+ANTI JOIN (
+    SELECT id_hash, first_path
+    FROM session_ids
+    WHERE source_name = {{ source.name | literal }} AND list_contains($paths, first_path)
+) AS known
+    ON known.id_hash = k.id_hash AND known.first_path = k.first_path
+{%- endmacro %}
+{% macro forget_ids(source) -%}
+DELETE FROM session_ids
+WHERE source_name = {{ source.name | literal }}
+  AND event_time < (SELECT min(watermark) FROM check_state WHERE list_contains($source_checks, check_name))
+                   - {{ source.dedup_horizon | interval }}
+{%- endmacro %}

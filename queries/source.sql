@@ -1,3 +1,4 @@
+{% import "macros.sql" as m %}
 -- ── stage 0 · source ───────────────────────────────────────────────────────────────────────
 -- Source {{ source.name }}: the sessions of the files not read before ($files, read from where they are;
 -- $paths, their names relative to the source's path), read once for every check that has read the
@@ -124,24 +125,8 @@ SELECT (__id_hash >> 64)::UBIGINT AS hash_high, (__id_hash & 1844674407370955161
        __file, __event_time
 FROM lake_sessions;
 
--- Remember each kept id with the file it was kept from (hashes only). A check that catches up on
--- files others have read may keep ids they kept from older files: only pairs not yet known are added.
-INSERT INTO session_ids BY NAME
-SELECT {{ source_lit }} AS source_name, k.id_hash, k.first_path, k.event_time
-FROM (
-    SELECT (hash_high::UHUGEINT << 64) | hash_low AS id_hash, $paths[__file + 1] AS first_path,
-           __event_time AS event_time
-    FROM kept_ids
-) AS k
-ANTI JOIN (
-    SELECT id_hash, first_path
-    FROM session_ids
-    WHERE source_name = {{ source_lit }} AND list_contains($paths, first_path)
-) AS known
-    ON known.id_hash = k.id_hash AND known.first_path = k.first_path;
+-- Remember each kept id with the file it was kept from (hashes only); only pairs not yet known.
+{{ m.remember_ids(source, "SELECT (hash_high::UHUGEINT << 64) | hash_low AS id_hash, $paths[__file + 1] AS first_path, __event_time AS event_time FROM kept_ids") }};
 
 -- Forget ids more than dedup_horizon behind the data every check of the source has read.
-DELETE FROM session_ids
-WHERE source_name = {{ source_lit }}
-  AND event_time < (SELECT min(watermark) FROM check_state WHERE list_contains($source_checks, check_name))
-                   - {{ source.dedup_horizon | interval }};
+{{ m.forget_ids(source) }};

@@ -85,23 +85,8 @@ CREATE OR REPLACE TEMP VIEW kept_ids AS SELECT __id_hash, __file, __event_time F
 -- @to-duckdb spark_kept_ids
 SELECT __id_hash, __file, __event_time FROM kept_ids;
 -- @duckdb
--- Remember each kept id with the file it was kept from; only pairs not yet known are added.
-INSERT INTO session_ids BY NAME
-SELECT {{ source_lit }} AS source_name, k.id_hash, k.first_path, k.event_time
-FROM (
-    SELECT {{ m.md5_hex_number("__id_hash") }} AS id_hash, $paths[__file + 1] AS first_path,
-           __event_time AS event_time
-    FROM spark_kept_ids
-) AS k
-ANTI JOIN (
-    SELECT id_hash, first_path
-    FROM session_ids
-    WHERE source_name = {{ source_lit }} AND list_contains($paths, first_path)
-) AS known
-    ON known.id_hash = k.id_hash AND known.first_path = k.first_path;
+-- Remember each kept id with the file it was kept from; only pairs not yet known.
+{{ m.remember_ids(source, "SELECT " ~ m.md5_hex_number("__id_hash") ~ " AS id_hash, $paths[__file + 1] AS first_path, __event_time AS event_time FROM spark_kept_ids") }};
 -- @duckdb
 -- Forget ids more than dedup_horizon behind the data every check of the source has read.
-DELETE FROM session_ids
-WHERE source_name = {{ source_lit }}
-  AND event_time < (SELECT min(watermark) FROM check_state WHERE list_contains($source_checks, check_name))
-                   - {{ source.dedup_horizon | interval }};
+{{ m.forget_ids(source) }};

@@ -123,15 +123,10 @@ SELECT (__id_hash >> 64)::UBIGINT AS hash_high, (__id_hash & 1844674407370955161
        __file, __event_time
 FROM lake_sessions;
 
--- Remember each kept id with the file it was kept from (hashes only). A check that catches up on
--- files others have read may keep ids they kept from older files: only pairs not yet known are added.
+-- Remember each kept id with the file it was kept from (hashes only); only pairs not yet known.
 INSERT INTO session_ids BY NAME
 SELECT 'sessions' AS source_name, k.id_hash, k.first_path, k.event_time
-FROM (
-    SELECT (hash_high::UHUGEINT << 64) | hash_low AS id_hash, $paths[__file + 1] AS first_path,
-           __event_time AS event_time
-    FROM kept_ids
-) AS k
+FROM (SELECT (hash_high::UHUGEINT << 64) | hash_low AS id_hash, $paths[__file + 1] AS first_path, __event_time AS event_time FROM kept_ids) AS k
 ANTI JOIN (
     SELECT id_hash, first_path
     FROM session_ids
