@@ -160,7 +160,7 @@ class _Stages:
         self.duckdb_peak = 0
 
     def install(self) -> None:
-        from toolkit import runner
+        from toolkit.engine import runner
 
         original = runner._execute
 
@@ -186,8 +186,8 @@ class _Stages:
 
 
 def _plimsoll(workdir: Path, checks: list[str] | None) -> dict[str, Any]:
-    from toolkit.project import load_project
-    from toolkit.runner import run
+    from toolkit.config.project import load_project
+    from toolkit.engine.runner import run
 
     stages = _Stages()
     stages.install()
@@ -260,8 +260,8 @@ def fresh_warehouse(workdir: Path) -> None:
 
 def prepare(workdir: Path, sessions: int, memory_limit: str | None) -> int:
     """Build the lake unless WORKDIR holds one already; returns the lake's session count."""
-    from toolkit.demo import prepare_workdir, write_project
-    from toolkit.warehouse import DEFAULT_MEMORY_LIMIT
+    from toolkit.demo.run import prepare_workdir, write_project
+    from toolkit.engine.warehouse import DEFAULT_MEMORY_LIMIT
     from toolkit.warehouse_demo.generate import build_lake
 
     marker = workdir / "bench-lake.json"

@@ -1,1 +1,1 @@
-"""The standard check catalogue (installed as ``toolkit.catalogue``); copy a file to start a check."""
+"""The standard check catalogue (installed as ``toolkit.checks``); copy a file to start a check."""

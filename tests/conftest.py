@@ -76,7 +76,7 @@ def warehouse_contents(warehouse_file: Path, skip: tuple[str, ...] = ()) -> dict
     """Every warehouse table's rows, sorted, without wall-clock columns: for comparing states."""
     import duckdb
 
-    from toolkit import warehouse
+    from toolkit.engine import warehouse
 
     con = duckdb.connect(str(warehouse_file), read_only=True)
     try:

@@ -8,9 +8,9 @@ from pathlib import Path
 import duckdb
 
 from conftest import write_project
-from toolkit.compiler import compile_check
-from toolkit.project import load_project
-from toolkit.runner import run
+from toolkit.sql.plans import check_plan
+from toolkit.config.project import load_project
+from toolkit.engine.runner import run
 
 WINDOW_COLUMNS = ("key_text, split_value, seq, window_start, window_end, sessions, bad, "
                   "round(value, 9) AS value, round(baseline, 9) AS baseline, history_windows, "
@@ -29,7 +29,7 @@ def _project(check_file: Path, folder: Path) -> Path:
 
 def compiled_sql(check_file: Path, folder: Path) -> str:
     project = load_project(_project(check_file, folder))
-    return compile_check(project.checks[check_file.stem]).sql
+    return check_plan(project.checks[check_file.stem]).sql
 
 
 def result_tables(check_file: Path, folder: Path) -> tuple[str, str]:

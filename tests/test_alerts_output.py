@@ -12,7 +12,7 @@ from click.testing import CliRunner
 from known_lake import HOSTILE, known_project
 from oracle import key_value
 from toolkit.cli import main
-from toolkit.outputs import alerts_table
+from toolkit.outputs.listings import alerts_table
 
 
 def invoke(*args: str):

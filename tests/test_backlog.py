@@ -18,8 +18,8 @@ from conftest import FIXTURE_LAKE, PROJECT, warehouse_contents, write_project, w
 
 from toolkit.cli import main
 from toolkit.problems import ProjectInvalid
-from toolkit.project import load_project
-from toolkit.runner import run
+from toolkit.config.project import load_project
+from toolkit.engine.runner import run
 
 GOLDEN = Path(__file__).parent / "golden"
 CHECKS = {name: (GOLDEN / name).read_text() for name in ("title_decode_errors.yml", "startup_p90_by_site.yml")}

@@ -13,12 +13,13 @@ import duckdb
 import pytest
 from click.testing import CliRunner
 
-from toolkit.backtest import Setting, parse_override, parse_setting, score, settings_from, split_top_level
+from toolkit.backtest.scoring import score
+from toolkit.backtest.settings import Setting, parse_override, parse_setting, settings_from, split_top_level
 from toolkit.cli import main
-from toolkit.labels import Label
+from toolkit.backtest.labels import Label
 from toolkit.problems import ProjectInvalid
-from toolkit.project import load_project
-from toolkit.runner import run
+from toolkit.config.project import load_project
+from toolkit.engine.runner import run
 
 GOLDEN = Path(__file__).parent / "golden"
 T = datetime.fromisoformat
@@ -251,7 +252,7 @@ def test_table_without_labels_has_no_label_columns(project: Path) -> None:
 def test_compile_of_a_bounded_source_shows_the_bound(project: Path) -> None:
     from dataclasses import replace
 
-    from toolkit.compiler import compile_source
+    from toolkit.sql.compiler import compile_source
 
     check = load_project(project).checks["startup_p90_by_site"]
     plain = compile_source([check]).text
@@ -273,7 +274,7 @@ SCALED = ("title_errors:window.sessions=50, title_errors:guard.min_sessions=25, 
 
 @pytest.fixture(scope="module")
 def fernhill(tmp_path_factory: pytest.TempPathFactory) -> dict:
-    from toolkit.demo import prepare_workdir, write_project
+    from toolkit.demo.run import prepare_workdir, write_project
     from toolkit.warehouse_demo.generate import build_lake
 
     workdir = tmp_path_factory.mktemp("fernhill") / "demo"
@@ -332,7 +333,7 @@ def test_demo_backtest_logs_each_check_of_each_setting(fernhill: dict) -> None:
 
 @pytest.mark.slow
 def test_full_demo_backtest_finds_all_four_with_the_catalogue_as_written(tmp_path: Path) -> None:
-    from toolkit.demo import prepare_workdir, write_project
+    from toolkit.demo.run import prepare_workdir, write_project
     from toolkit.warehouse_demo.generate import build_lake
 
     prepare_workdir(tmp_path / "demo")
@@ -362,7 +363,7 @@ def test_readme_documents_every_json_field_and_column(project: Path) -> None:
 
 def test_a_failing_backtest_leaves_the_keep_folder_empty(project: Path, tmp_path: Path,
                                                          monkeypatch: pytest.MonkeyPatch) -> None:
-    from toolkit import backtest as module
+    from toolkit.backtest import replay as module
     from toolkit.problems import DataError
 
     calls = []

@@ -20,8 +20,8 @@ from conftest import PLAIN_PROJECT, warehouse_contents, write_project, write_row
 
 from toolkit.cli import main
 from toolkit.problems import DataError
-from toolkit.project import load_project
-from toolkit.runner import run
+from toolkit.config.project import load_project
+from toolkit.engine.runner import run
 
 SCHEMA = "session_id VARCHAR, ended_at TIMESTAMP, site VARCHAR, failed BOOLEAN, startup_ms INTEGER"
 CHECK = """\

@@ -28,8 +28,8 @@ from test_oracle import (
     write_project,
 )
 
-from toolkit.project import load_project
-from toolkit.runner import run
+from toolkit.config.project import load_project
+from toolkit.engine.runner import run
 
 EXAMPLES = int(os.environ.get("PLIMSOLL_BATCH_EXAMPLES", "6"))
 CASES = multi_run_cases()

@@ -18,8 +18,8 @@ from pathlib import Path
 import duckdb
 
 from conftest import PLAIN_PROJECT, write_project
-from toolkit.project import load_project
-from toolkit.runner import run
+from toolkit.config.project import load_project
+from toolkit.engine.runner import run
 
 SERIES, WINDOWS, N, P = 20, 50, 300, 0.02
 CHECK = """\

@@ -19,9 +19,9 @@ import duckdb
 import pytest
 from conftest import PLAIN_PROJECT, plimsoll_command, write_project, write_rows
 
-from toolkit.catalogue import __file__ as catalogue_init
-from toolkit.project import load_project
-from toolkit.runner import run
+from toolkit.checks import __file__ as catalogue_init
+from toolkit.config.project import load_project
+from toolkit.engine.runner import run
 from toolkit.warehouse_demo.generate import build_lake
 
 CATALOGUE = Path(catalogue_init).parent

@@ -11,8 +11,8 @@ import pytest
 from click.testing import CliRunner
 
 from toolkit.cli import main
-from toolkit.project import CHECK_KEYS, NOTIFY_KEYS, PROJECT_KEYS, SOURCE_KEYS, STORAGE_KEYS, WEBHOOK_KEYS
-from toolkit.registry import BASELINES, MEASURES
+from toolkit.config.registry import CHECK_KEYS, NOTIFY_KEYS, PROJECT_KEYS, SOURCE_KEYS, STORAGE_KEYS, WEBHOOK_KEYS
+from toolkit.config.registry import BASELINES, MEASURES
 
 GOLDEN = Path(__file__).parent / "golden"
 README = Path(__file__).parent.parent / "README.md"

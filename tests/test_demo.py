@@ -10,8 +10,8 @@ import pytest
 from click.testing import CliRunner
 
 from toolkit.cli import main
-from toolkit.labels import label_matches
-from toolkit.outputs import alerts_from
+from toolkit.backtest.labels import label_matches
+from toolkit.outputs.listings import alerts_from
 from toolkit.warehouse_demo.generate import read_labels
 
 TABLES = ("windows", "alerts", "alert_events", "carry", "files_read", "key_state", "check_state")

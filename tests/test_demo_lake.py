@@ -15,7 +15,7 @@ import duckdb
 import pytest
 
 from toolkit.problems import DataError
-from toolkit.sqltext import quote_literal
+from toolkit.sql.quoting import quote_literal
 from toolkit.warehouse_demo import generate
 from toolkit.warehouse_demo.generate import Label, build_lake, read_labels
 

@@ -22,10 +22,10 @@ import pytest
 from conftest import plimsoll_command, warehouse_contents
 from toolkit.warehouse_demo.generate import build_lake
 
-from toolkit import warehouse
-from toolkit.demo import write_project
-from toolkit.project import load_project
-from toolkit.runner import run
+from toolkit.engine import warehouse
+from toolkit.demo.run import write_project
+from toolkit.config.project import load_project
+from toolkit.engine.runner import run
 
 KILLS = 24
 

@@ -14,8 +14,8 @@ from pathlib import Path
 import duckdb
 import pytest
 
-from toolkit.expressions import ALLOWED_FUNCTIONS, ExpressionError, parse_expression
-from toolkit.project import load_project
+from toolkit.config.expressions import ALLOWED_FUNCTIONS, ExpressionError, parse_expression
+from toolkit.config.project import load_project
 
 ROOT = Path(__file__).parent.parent
 # The committed fixture lake's columns (tests/fixtures/make_fixtures.py).
@@ -61,7 +61,7 @@ def test_the_allow_list_refuses_what_duckdb_wrongly_calls_consistent() -> None:
 
 
 def test_every_connection_a_run_uses_reads_time_in_utc(make_project) -> None:
-    from toolkit import warehouse
+    from toolkit.engine import warehouse
 
     project = load_project(make_project({}))
     con = warehouse.connect(project)
@@ -181,7 +181,7 @@ def test_every_expression_of_the_catalogue_the_golden_checks_and_the_readme_is_a
 
 
 def test_the_catalogue_validates_over_a_demo_lake(tmp_path: Path) -> None:
-    from toolkit.demo import write_project
+    from toolkit.demo.run import write_project
     from toolkit.warehouse_demo.generate import MIN_SESSIONS, build_lake
 
     build_lake(tmp_path, sessions=MIN_SESSIONS, seed=5)

@@ -21,10 +21,10 @@ from conftest import PLAIN_PROJECT, write_project, write_rows
 from oracle import key_value
 
 from toolkit.cli import main
-from toolkit.compiler import compile_check
+from toolkit.sql.plans import check_plan
 from toolkit.problems import ProjectInvalid
-from toolkit.project import load_project
-from toolkit.runner import run
+from toolkit.config.project import load_project
+from toolkit.engine.runner import run
 
 HOSTILE = [
     "x'); DROP TABLE alerts; --",
@@ -120,7 +120,7 @@ def test_listings_show_hostile_text_exactly(ran: Path) -> None:
 
 def test_compiled_sql_quotes_the_column_and_keeps_the_literal_a_literal(ran: Path) -> None:
     project = load_project(ran)
-    sql = compile_check(project.checks["hostile_titles"]).sql
+    sql = check_plan(project.checks["hostile_titles"]).sql
     assert '"title""; DROP TABLE runs; --"' in sql
     assert "'x''); DROP TABLE alerts; --ignored'" in sql
     assert "{{" not in sql.replace("'{{", "")             # no template text leaks out of a name

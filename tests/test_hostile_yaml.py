@@ -16,10 +16,10 @@ from pathlib import Path
 import pytest
 from conftest import PROJECT, FIXTURE_LAKE, plimsoll_command, write_project
 
-from toolkit.backtest import parse_override
+from toolkit.backtest.settings import parse_override
 from toolkit.problems import ProjectInvalid
-from toolkit.project import load_project
-from toolkit.yamlsource import MAX_ALIAS_VALUES, MAX_DEPTH, Refused, load, parse_value
+from toolkit.config.project import load_project
+from toolkit.config.yamlsource import MAX_ALIAS_VALUES, MAX_DEPTH, Refused, load, parse_value
 
 GOOD = textwrap.dedent("""\
     check: title_errors

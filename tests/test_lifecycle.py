@@ -8,8 +8,8 @@ from pathlib import Path
 import duckdb
 
 from conftest import PLAIN_PROJECT, write_project, write_rows
-from toolkit.project import load_project
-from toolkit.runner import run
+from toolkit.config.project import load_project
+from toolkit.engine.runner import run
 
 CHECK = """\
 check: ties

@@ -17,8 +17,8 @@ import numpy as np
 import pytest
 
 from conftest import PLAIN_PROJECT, write_project
-from toolkit.project import load_project
-from toolkit.runner import run
+from toolkit.config.project import load_project
+from toolkit.engine.runner import run
 from toolkit.warehouse_demo.generate import build_lake
 
 PROJECT = PLAIN_PROJECT

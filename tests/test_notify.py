@@ -28,10 +28,10 @@ from known_lake import CHECK, HOSTILE, SCHEMA, START, known_project, session_row
 from oracle import key_value
 from toolkit.cli import main
 from toolkit.model import Webhook
-from toolkit.outbox import Clock, _hidden, _single_notifier, describe, notify
+from toolkit.outputs.delivery import Clock, _hidden, _single_notifier, describe, notify
 from toolkit.problems import PlimsollError
-from toolkit.project import load_project
-from toolkit.runner import run
+from toolkit.config.project import load_project
+from toolkit.engine.runner import run
 
 PAYLOAD_KEYS = {"idempotency_key", "event", "occurred_at", "check", "severity", "alert_id", "fingerprint", "key",
                 "key_text", "split_value", "opened_at", "closed_at", "close_reason", "value", "threshold",
@@ -378,7 +378,7 @@ def test_without_webhooks_there_is_nothing_to_send(tmp_path: Path) -> None:
 
 def test_a_success_not_yet_recorded_is_sent_again_with_the_same_key(tmp_path: Path, hook: Hook,
                                                                      monkeypatch: pytest.MonkeyPatch) -> None:
-    import toolkit.outbox as outbox_module
+    import toolkit.outputs.delivery as outbox_module
 
     project = built(tmp_path, webhooks(hook.url))
     recorded = outbox_module._record

@@ -25,8 +25,9 @@ from hypothesis import HealthCheck, assume, event, given, settings
 from hypothesis import strategies as st
 
 import oracle
-from toolkit.project import load_project, parse_duration
-from toolkit.runner import run
+from toolkit.config.fields import parse_duration
+from toolkit.config.project import load_project
+from toolkit.engine.runner import run
 
 BASE = datetime(2024, 3, 1)
 SCHEMA = pa.schema([

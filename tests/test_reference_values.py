@@ -14,8 +14,8 @@ import duckdb
 import pytest
 
 from conftest import PLAIN_PROJECT, write_project, write_rows
-from toolkit.project import load_project
-from toolkit.runner import run
+from toolkit.config.project import load_project
+from toolkit.engine.runner import run
 
 QUANTILE_CHECK = """\
 check: q_check

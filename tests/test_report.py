@@ -14,8 +14,8 @@ from browser import open_page
 from conftest import PLAIN_PROJECT, write_project, write_rows
 from known_lake import CHECK, HOSTILE, START, known_project, warehouse_held
 from toolkit.cli import main
-from toolkit.project import load_project
-from toolkit.report import MAX_POINTS, series_for
+from toolkit.config.project import load_project
+from toolkit.outputs.report import MAX_POINTS, series_for
 
 
 def invoke(*args: str):

@@ -1,7 +1,7 @@
 """A run holds one check's copies of the sessions at a time, not every check's.
 
 DuckDB keeps every table a transaction replaces until the transaction commits, so the per-session
-stages run on a connection of their own (toolkit.runner). These tests sample DuckDB's own memory
+stages run on a connection of their own (toolkit.engine.runner). These tests sample DuckDB's own memory
 accounting (`duckdb_memory()`) after every statement of a real run over the Fernhill demo lake and
 compare it with the same run on one connection (a full refresh runs that way), on the same data.
 Memory, not time: the figures are DuckDB's byte counts, which do not depend on machine load.
@@ -15,15 +15,15 @@ from typing import Any
 import duckdb
 import pytest
 
-from toolkit import runner
-from toolkit.project import load_project
+from toolkit.engine import runner
+from toolkit.config.project import load_project
 
 COUNT_CHECKS = ["title_errors", "exit_before_start_by_device", "video_start_failures_by_device"]
 
 
 @pytest.fixture(scope="module")
 def fernhill(tmp_path_factory: pytest.TempPathFactory) -> Path:
-    from toolkit.demo import prepare_workdir, write_project
+    from toolkit.demo.run import prepare_workdir, write_project
     from toolkit.warehouse_demo.generate import build_lake
 
     workdir = tmp_path_factory.mktemp("memory") / "demo"
@@ -73,7 +73,7 @@ def test_the_stages_on_their_own_connection_hold_far_less_and_give_the_same_wind
 
 def test_a_full_refresh_runs_every_stage_in_the_transaction(fernhill: Path) -> None:
     project = load_project(fernhill)
-    compiled = [runner.compile_check(c) for c in project.checks.values()]
+    compiled = [runner.check_plan(c) for c in project.checks.values()]
     con = duckdb.connect()
     try:
         assert runner._stage_connection(con, project, compiled, full_refresh=True) is None

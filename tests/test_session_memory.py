@@ -18,8 +18,8 @@ from click.testing import CliRunner
 from conftest import PLAIN_PROJECT, write_project, write_rows
 
 from toolkit.cli import main
-from toolkit.project import load_project
-from toolkit.runner import run
+from toolkit.config.project import load_project
+from toolkit.engine.runner import run
 
 T0 = datetime(2026, 11, 2)
 SCHEMA = "session_id VARCHAR, ended_at TIMESTAMP, site VARCHAR, failed BOOLEAN"

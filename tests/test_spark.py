@@ -14,9 +14,9 @@ from pathlib import Path
 import duckdb
 import pytest
 
-from toolkit.demo import catalogue_folder
-from toolkit.project import load_project
-from toolkit.runner import run
+from toolkit.demo.run import catalogue_folder
+from toolkit.config.project import load_project
+from toolkit.engine.runner import run
 from toolkit.warehouse_demo.generate import build_lake
 
 pytestmark = pytest.mark.spark
@@ -178,8 +178,8 @@ def test_spark_in_two_runs_gives_one_duckdb_run(tmp_path: Path, lake: Path, chec
 def test_sparks_percentile_is_duckdbs_quantile_cont(values: list[float | None]) -> None:
     """The measure's translation, on ties and small n: exact, linearly interpolated, NULLs left out."""
     from toolkit.model import Engine
-    from toolkit.spark_engine import session
-    from toolkit.spark_sql import translate
+    from toolkit.engine.spark import session
+    from toolkit.sql.spark import translate
 
     rows = ", ".join(f"({'NULL' if v is None else repr(v)}::DOUBLE)" for v in values)
     quantiles = ", ".join(f"quantile_cont(x, {q}) AS q{i}" for i, q in enumerate((0.01, 0.1, 0.25, 0.5, 0.9, 0.95, 0.99)))

@@ -14,9 +14,10 @@ from click.testing import CliRunner
 
 from conftest import FIXTURE_LAKE, PROJECT, write_project
 from toolkit.cli import main
-from toolkit.compiler import Stage, compile_check
-from toolkit.project import load_project
-from toolkit.spark_sql import SparkStatement, TranslationError, spark_stage, translate
+from toolkit.sql.plans import check_plan
+from toolkit.sql.templates import Stage
+from toolkit.config.project import load_project
+from toolkit.sql.spark import SparkStatement, TranslationError, spark_stage, translate
 
 GOLDEN = Path(__file__).parent / "golden"
 
@@ -30,12 +31,12 @@ def spark_project(folder: Path, check_file: Path) -> Path:
 @pytest.mark.parametrize("check_file", sorted(GOLDEN.glob("*.yml")), ids=lambda p: p.stem)
 def test_every_golden_check_compiles_to_spark(tmp_path: Path, check_file: Path) -> None:
     project = load_project(spark_project(tmp_path, check_file))
-    compiled = compile_check(project.checks[check_file.stem])
+    compiled = check_plan(project.checks[check_file.stem])
     spark = [s for stage in compiled.stages for s in stage.once if isinstance(s, SparkStatement)]
     assert {stage.name for stage in compiled.stages if any(isinstance(s, SparkStatement) for s in stage.once)} == {
         "source", "scan", "window", "measure"}
     # the verdicts, the life cycle and persisting stay DuckDB's own statements, unchanged
-    duck = compile_check(load_project(write_project(tmp_path / "duck", {check_file.name: check_file.read_text()})
+    duck = check_plan(load_project(write_project(tmp_path / "duck", {check_file.name: check_file.read_text()})
                                       ).checks[check_file.stem])
     assert [s.text for s in compiled.stages[4:]] == [s.text for s in duck.stages[4:]]
     assert compiled.definition_hash == duck.definition_hash
@@ -45,7 +46,7 @@ def test_every_golden_check_compiles_to_spark(tmp_path: Path, check_file: Path) 
 
 def test_quantiles_use_sparks_exact_percentile(tmp_path: Path) -> None:
     project = load_project(spark_project(tmp_path, GOLDEN / "startup_p90_by_site.yml"))
-    text = compile_check(project.checks["startup_p90_by_site"]).sql
+    text = check_plan(project.checks["startup_p90_by_site"]).sql
     assert "PERCENTILE(x, 0.9) AS value" in text
     assert "PERCENTILE_APPROX" not in text.upper() and "APPROX_PERCENTILE" not in text.upper()
 
@@ -63,7 +64,7 @@ def test_compile_shows_where_each_step_runs(tmp_path: Path) -> None:
 def test_a_duckdb_statement_no_directive_names_is_refused(tmp_path: Path) -> None:
     project = load_project(spark_project(tmp_path, GOLDEN / "title_decode_errors.yml"))
     check = project.checks["title_decode_errors"]
-    duck = compile_check(load_project(write_project(tmp_path / "duck", {
+    duck = check_plan(load_project(write_project(tmp_path / "duck", {
         "title_decode_errors.yml": (GOLDEN / "title_decode_errors.yml").read_text()})).checks["title_decode_errors"])
     scan = duck.stages[1]
     extra = Stage("scan", scan.text, scan.once + (scan.once[0].__class__(

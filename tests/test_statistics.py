@@ -18,8 +18,8 @@ import duckdb
 import pytest
 
 from conftest import PLAIN_PROJECT, write_project, write_rows
-from toolkit.project import load_project
-from toolkit.runner import run
+from toolkit.config.project import load_project
+from toolkit.engine.runner import run
 
 START = datetime(2026, 11, 2)
 WAFER_FRACTIONS = [.24, .30, .16, .20, .08, .14, .32, .18, .28, .20, .10, .12, .34, .24, .44, .16, .20,
@@ -113,7 +113,7 @@ WILSON = [
 
 @pytest.mark.parametrize("x,n,confidence,lower,upper", WILSON)
 def test_wilson_bounds_in_the_toolkits_sql(x: int, n: int, confidence: float, lower: float, upper: float) -> None:
-    from toolkit.compiler import wilson_sql, z_for
+    from toolkit.sql.templates import wilson_sql, z_for
 
     z = str(z_for(confidence))
     sql = f"SELECT {wilson_sql('lower', '$x', '$n', z)}, {wilson_sql('upper', '$x', '$n', z)}"

@@ -21,8 +21,8 @@ from moto.server import ThreadedMotoServer
 
 from conftest import FIXTURE_LAKE
 from toolkit.problems import DataError, ProjectInvalid
-from toolkit.project import load_project
-from toolkit.runner import run
+from toolkit.config.project import load_project
+from toolkit.engine.runner import run
 
 GOLDEN = Path(__file__).parent / "golden"
 CHECKS = ("title_decode_errors.yml", "site_failures_p_chart.yml")
@@ -208,7 +208,7 @@ def test_a_glob_and_a_single_object(tmp_path, endpoint, bucket):
         upload(client, name, day)
     client.put_object(Bucket=name, Key="sessions/_SUCCESS", Body=b"")
     client.put_object(Bucket=name, Key="sessions/notes.txt", Body=b"not parquet")
-    from toolkit import lake, storage
+    from toolkit.lake import files as lake, storage
     settings = load_project(project(tmp_path, endpoint, f"s3://{name}/sessions/")).storage
     everything = lake.list_files(f"s3://{name}/sessions/", settings)
     assert [f.path for f in everything] == [f"s3://{name}/sessions/{d}/part-0.parquet" for d in DAYS]

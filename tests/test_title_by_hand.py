@@ -21,9 +21,9 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 
 from conftest import write_project
-from toolkit.demo import PROJECT_YML, catalogue_folder
-from toolkit.project import load_project
-from toolkit.runner import run
+from toolkit.demo.run import PROJECT_YML, catalogue_folder
+from toolkit.config.project import load_project
+from toolkit.engine.runner import run
 
 ROOT = Path(__file__).resolve().parent.parent
 SCHEMA = pa.schema([("session_id", pa.string()), ("ended_at", pa.timestamp("us")), ("site", pa.string()),

@@ -13,7 +13,8 @@ from click.testing import CliRunner
 
 from toolkit.cli import main
 from toolkit.problems import ProjectInvalid
-from toolkit.project import load_project, parse_duration
+from toolkit.config.fields import parse_duration
+from toolkit.config.project import load_project
 
 GOOD = """\
 check: title_errors

@@ -9,7 +9,7 @@ import pytest
 from conftest import FIXTURE_LAKE
 from toolkit.model import Notify, Webhook
 from toolkit.problems import ProjectInvalid
-from toolkit.project import load_project
+from toolkit.config.project import load_project
 
 BASE = ("warehouse: w.duckdb\nsources:\n  sessions:\n    path: {lake}\n    session_id: session_id\n"
         "    event_time: ended_at\n")

@@ -18,7 +18,7 @@ import duckdb
 import pytest
 from conftest import plimsoll_command
 
-from toolkit.catalogue import __file__ as catalogue_init
+from toolkit.checks import __file__ as catalogue_init
 from toolkit.warehouse_demo.generate import build_lake
 
 CATALOGUE = Path(catalogue_init).parent

@@ -28,8 +28,8 @@ def test_wheel_holds_templates_catalogue_and_demo(tmp_path: Path) -> None:
     (wheel,) = (tmp_path / "dist").glob("plimsoll-*.whl")
     names = zipfile.ZipFile(wheel).namelist()
     for needed in ("toolkit/queries/scan.sql", "toolkit/queries/warehouse.sql",
-                   "toolkit/catalogue/title_errors.yml", "toolkit/warehouse_demo/lake.sql",
-                   "toolkit/templates/report.html", "toolkit/queries/report.sql", "toolkit/queries/outbox.sql"):
+                   "toolkit/checks/title_errors.yml", "toolkit/warehouse_demo/lake.sql",
+                   "toolkit/outputs/templates/report.html", "toolkit/queries/report.sql", "toolkit/queries/outbox.sql"):
         assert needed in names, needed
     assert not any(n.startswith(("queries/", "checks/", "tests/")) for n in names)
 

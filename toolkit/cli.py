@@ -15,13 +15,13 @@ from typing import Any
 
 import click
 
-from . import __version__
-from .compiler import compile_check
-from .outputs import alerts_json, alerts_table, list_alerts
-from .problems import PlimsollError
-from .project import load_project
-from .runner import run as run_checks
-from .runner import RunResult, select_checks
+from toolkit import __version__
+from toolkit.sql.plans import check_plan
+from toolkit.outputs.listings import alerts_json, alerts_table, list_alerts
+from toolkit.problems import PlimsollError
+from toolkit.config.project import load_project
+from toolkit.engine.runner import run as run_checks
+from toolkit.engine.runner import RunResult, select_checks
 
 project_option = click.option(
     "-p", "--project", "project_file", default="plimsoll.yml", show_default=True,
@@ -106,7 +106,7 @@ def compile(check: str, project_file: Path) -> None:
     """Print the SQL that a run executes for CHECK."""
     project = load_project(project_file)
     (chosen,) = select_checks(project, [check])
-    click.echo(compile_check(chosen).sql, nl=False)
+    click.echo(check_plan(chosen).sql, nl=False)
 
 
 @main.command()
@@ -162,7 +162,7 @@ def alerts(project_file: Path, status: str, checks: tuple[str, ...], since: date
 @reports_errors
 def report(project_file: Path, out: Path, checks: tuple[str, ...], since: datetime | None) -> None:
     """Write a static HTML page: each alert's series against its threshold, open alerts first."""
-    from .report import write_report
+    from toolkit.outputs.report import write_report
 
     project = load_project(project_file, check_schema=False)
     done = write_report(project, out, checks, since)
@@ -177,8 +177,8 @@ def report(project_file: Path, out: Path, checks: tuple[str, ...], since: dateti
 @reports_errors
 def notify(project_file: Path, retry_text: str, retry_abandoned: bool) -> None:
     """POST new alert events to the project's webhooks; exit 1 while some delivery fails."""
-    from .outbox import describe, notify as deliver
-    from .project import parse_duration
+    from toolkit.outputs.delivery import describe, notify as deliver
+    from toolkit.config.fields import parse_duration
 
     try:
         retry_for = parse_duration(retry_text)
@@ -198,7 +198,7 @@ def notify(project_file: Path, retry_text: str, retry_abandoned: bool) -> None:
 @reports_errors
 def demo(workdir: Path, sessions: int, seed: int) -> None:
     """Build Fernhill Broadcasting's demo lake, run every catalogue check, print what was found."""
-    from .demo import build_and_run, summary
+    from toolkit.demo.run import build_and_run, summary
 
     with _Progress() as progress:
         outcome = build_and_run(workdir, sessions, seed, progress)
@@ -227,9 +227,11 @@ def backtest(checks: tuple[str, ...], project_file: Path, start: datetime, end: 
              labels_file: Path | None, assignments: tuple[str, ...], settings: tuple[str, ...],
              keep: Path | None, as_json: bool) -> None:
     """Replay the lake for CHECK... into scratch warehouses, the baseline and each setting side by side."""
-    from .backtest import backtest as replay
-    from .backtest import backtest_json, backtest_table, settings_from
-    from .labels import read_labels
+    from toolkit.backtest.replay import backtest as replay
+    from toolkit.backtest.replay import backtest_json
+    from toolkit.backtest.settings import settings_from
+    from toolkit.backtest.table import backtest_table
+    from toolkit.backtest.labels import read_labels
 
     compared = settings_from(assignments, settings)
     project = load_project(project_file)

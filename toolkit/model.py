@@ -1,6 +1,6 @@
 """The typed form of a project: what validation produces and what the compiler consumes.
 
-Nothing here reads files or builds SQL; a model is only ever made by :mod:`toolkit.project`, which
+Nothing here reads files or builds SQL; a model is only ever made by :mod:`toolkit.config.project`, which
 guarantees that every expression in it was parsed and checked against the source's columns.
 """
 
@@ -73,7 +73,7 @@ class Source:
     # session ids are remembered this long behind the data read (in data time), to find repeats
     dedup_horizon: timedelta = timedelta(days=3)
 
-    # what the files' paths are recorded relative to (see toolkit.lake.base_of)
+    # what the files' paths are recorded relative to (see toolkit.lake.files.base_of)
     base: str = ""
 
     @property
@@ -218,7 +218,7 @@ class Project:
     checks: dict[str, Check]
     memory_limit: str | None = None
     threads: int | None = None
-    max_read_per_run: int | None = None   # bytes; None: the default (toolkit.runner.DEFAULT_MAX_READ)
+    max_read_per_run: int | None = None   # bytes; None: the default (toolkit.engine.runner.DEFAULT_MAX_READ)
     webhooks: tuple[Webhook, ...] = ()
     notify: Notify = field(default_factory=Notify)
     engine: Engine = field(default_factory=Engine)

@@ -16,8 +16,8 @@ from pathlib import Path
 import duckdb
 
 # the labels file format lives with the matching that reads it; re-exported for the demo's users
-from toolkit.labels import LABEL_FIELDS, Label, parse_key, read_labels, write_labels  # noqa: F401
-from toolkit.sqltext import quote_literal
+from toolkit.backtest.labels import LABEL_FIELDS, Label, parse_key, read_labels, write_labels  # noqa: F401
+from toolkit.sql.quoting import quote_literal
 
 SCRIPT = Path(__file__).with_name("lake.sql")
 STEP_MARKER = re.compile(r"^-- step: *(.+?) *$", re.MULTILINE)

@@ -12,8 +12,8 @@ from typing import Any
 
 import duckdb
 
-from . import warehouse
-from .model import Project
+from toolkit.engine import warehouse
+from toolkit.model import Project
 
 ALERT_COLUMNS = ("alert_id", "status", "severity", "check_name", "key", "key_text", "split_value", "opened_at",
                  "breach_started_at", "last_breach_at", "closed_at", "close_reason", "breach_windows",

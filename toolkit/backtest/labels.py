@@ -13,7 +13,7 @@ from datetime import datetime, timedelta
 from pathlib import Path
 from typing import Any
 
-from .problems import DataError
+from toolkit.problems import DataError
 
 LABEL_FIELDS = ("kind", "check", "key", "start", "end", "note")
 LABEL_KINDS = ("incident", "decoy")

@@ -29,8 +29,8 @@ from sqlglot import exp, transforms
 from sqlglot.dialects.spark import Spark
 from sqlglot.errors import ErrorLevel, SqlglotError
 
-from .compiler import Stage, Statement, _env, _statements
-from .model import Check, Engine
+from toolkit.sql.templates import Stage, Statement, shared, statements
+from toolkit.model import Check, Engine
 
 SPARK_STAGES = ("source", "scan", "window", "measure")
 _DIRECTIVE = re.compile(r"^-- @(translate|spark|duckdb|read|to-spark|to-duckdb)\b *(\w+)? *$", re.MULTILINE)
@@ -54,7 +54,7 @@ class SparkStatement(Statement):
 
     ``action`` is ``spark``, ``read``, ``to-spark`` or ``to-duckdb``; ``sql`` is what runs (DuckDB
     SQL for ``to-spark``), ``name`` the view or relation it makes, ``base`` the folder below which
-    a read finds hive partitions. The runner hands these to :mod:`toolkit.spark_engine`.
+    a read finds hive partitions. The runner hands these to :mod:`toolkit.engine.spark`.
     """
 
     engine: Engine
@@ -170,7 +170,7 @@ def spark_expression(sql: str) -> str:
 def spark_stage(check: Check, duck: Stage, columns: list[str] | None = None) -> Stage:
     """The Spark form of one of DuckDB's stages for ``check`` (for the source stage: its columns)."""
     context = _context(check, columns)
-    plan = _env().get_template(f"spark/{duck.name}.sql").render(context)
+    plan = shared().get_template(f"spark/{duck.name}.sql").render(context)
     creates = {_created(s.sql): s for s in duck.once}
     statements, named = [], set()
     for action, name, body in _directives(plan):
@@ -253,7 +253,7 @@ def _spark(check: Check, action: str, sql: str, params: frozenset[str], name: st
 
 
 def _duckdb_statement(body: str) -> Statement:
-    (statement,) = _statements(body)
+    (statement,) = statements(body)
     return statement
 
 

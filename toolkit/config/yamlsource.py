@@ -21,7 +21,7 @@ from typing import Any
 
 import yaml
 
-from .problems import Problem
+from toolkit.problems import Problem
 
 KeyPath = tuple[str | int, ...]
 

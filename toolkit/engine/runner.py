@@ -25,11 +25,17 @@ import re
 
 import duckdb
 
-from . import lake, spark_engine, warehouse
-from .compiler import CompiledCheck, Statement, columns_read, compile_check, compile_source, statement_kind
-from .model import Check, Project, Source
-from .problems import DataError, PlimsollError, Problem, ProjectInvalid, WarehouseError, engine_message
-from .sqltext import interval
+from toolkit.lake import files as lake
+
+from toolkit.engine import spark as spark_engine
+
+from toolkit.engine import warehouse
+from toolkit.sql.compiler import CompiledCheck, columns_read
+from toolkit.sql.plans import check_plan, source_plan
+from toolkit.sql.templates import Statement, statement_kind
+from toolkit.model import Check, Project, Source
+from toolkit.problems import DataError, PlimsollError, Problem, ProjectInvalid, WarehouseError, engine_message
+from toolkit.sql.quoting import interval
 
 Progress = Callable[[str], None]
 
@@ -104,7 +110,7 @@ def run(project: Project, names: list[str] | None = None, full_refresh: bool = F
     published as Parquet beside the warehouse.
     """
     checks = select_checks(project, names)
-    compiled = [compile_check(c) for c in checks]
+    compiled = [check_plan(c) for c in checks]
     say = progress or (lambda _: None)
     budget = project.max_read_per_run or DEFAULT_MAX_READ
     con = warehouse.connect(project, wait=wait)
@@ -193,7 +199,7 @@ def _run(con: duckdb.DuckDBPyConnection, project: Project, run_id: int, checks: 
                          f"{_plural(len(readers), 'check')}")
                 lake.check_new_files(con, source, new_files, _needed_columns(source, readers),
                                      [c.name for c in readers])
-                source_stage = compile_source(readers)
+                source_stage = source_plan(readers)
                 params = _params(project, new_files, run_id, "", readers[0].name, group.read_until, source)
                 _run_stage(con, stages, f"source {source.name}", "source", source_stage.once, params)
                 con.execute("INSERT INTO run_scans SELECT rows_read, rows_invalid, duplicate_rows, "

@@ -27,8 +27,8 @@ from sqlglot import exp
 from sqlglot.dialects.duckdb import DuckDB
 from sqlglot.errors import ParseError, TokenError
 
-from .model import Expr
-from .sqltext import quote_ident
+from toolkit.model import Expr
+from toolkit.sql.quoting import quote_ident
 
 # Every function an expression may call, by the name DuckDB's parser gives it (lower case; operators
 # by their symbol: DuckDB parses `a + b` as a call of `+`, `x LIKE 'a%'` as `~~`). Each one returns

@@ -22,10 +22,12 @@ import duckdb
 import jinja2
 import markupsafe
 
-from . import __version__, warehouse
-from .compiler import template_folder
-from .model import Project
-from .outputs import alerts_from
+from toolkit import __version__
+
+from toolkit.engine import warehouse
+from toolkit.sql.templates import template_folder
+from toolkit.model import Project
+from toolkit.outputs.listings import alerts_from
 
 CONTEXT_BEFORE = 48   # windows drawn before an alert's first breaching window
 CONTEXT_AFTER = 24    # windows drawn after the window that closed it
@@ -213,7 +215,7 @@ def _environment() -> jinja2.Environment:
     global _ENV
     if _ENV is None:
         _ENV = jinja2.Environment(
-            loader=jinja2.FileSystemLoader(str(Path(str(files("toolkit"))) / "templates")),
+            loader=jinja2.FileSystemLoader(str(Path(str(files("toolkit.outputs"))) / "templates")),
             autoescape=True,
             undefined=jinja2.StrictUndefined,
             trim_blocks=True,

@@ -2,7 +2,7 @@
 
 A run is incremental by file: it needs each file's path, size and modification time, so listing is
 done here rather than by a glob inside the SQL. Local folders and globs are listed with the
-operating system; ``s3://`` URLs through :mod:`toolkit.storage` (size and LastModified).
+operating system; ``s3://`` URLs through :mod:`toolkit.lake.storage` (size and LastModified).
 """
 
 from __future__ import annotations
@@ -15,10 +15,10 @@ from datetime import datetime, timezone
 
 import duckdb
 
-from . import storage
-from .model import Source, Storage
-from .problems import DataError, engine_message
-from .sqltext import quote_ident
+from toolkit.lake import storage
+from toolkit.model import Source, Storage
+from toolkit.problems import DataError, engine_message
+from toolkit.sql.quoting import quote_ident
 
 
 @dataclass(frozen=True, order=True)

@@ -33,11 +33,13 @@ from pathlib import Path
 
 import duckdb
 
-from . import __version__, warehouse
-from .compiler import template_folder
-from .model import Project, Webhook, endpoint
-from .outputs import printable
-from .problems import PlimsollError, RunLocked
+from toolkit import __version__
+
+from toolkit.engine import warehouse
+from toolkit.sql.templates import template_folder
+from toolkit.model import Project, Webhook, endpoint
+from toolkit.outputs.listings import printable
+from toolkit.problems import PlimsollError, RunLocked
 
 
 RECORD_WAIT = 30.0  # seconds to wait for a run to release the warehouse before giving up on recording a POST

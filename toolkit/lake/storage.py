@@ -14,7 +14,7 @@ from typing import Any
 
 import duckdb
 
-from .model import Storage
+from toolkit.model import Storage
 
 SCHEME = "s3://"
 OTHER_SCHEMES = ("s3a://", "gs://", "gcs://", "az://", "abfs://", "http://", "https://")

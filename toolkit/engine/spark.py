@@ -1,5 +1,5 @@
 """Running the Spark stages (``engine: spark``): one Spark session per engine setting, and the steps
-of a Spark stage as :mod:`toolkit.spark_sql` compiled them.
+of a Spark stage as :mod:`toolkit.sql.spark` compiled them.
 
 Spark SQL statements run as written; a statement that creates a view is materialized at once (a
 local checkpoint), as DuckDB materializes its temp tables, so every later statement reads the same
@@ -14,10 +14,10 @@ from typing import Any
 
 import duckdb
 
-from .model import Engine
-from .warehouse import finish_pending
-from .problems import DataError
-from .spark_sql import FILES_VIEW, SPARK_FILE, SparkStatement
+from toolkit.model import Engine
+from toolkit.engine.warehouse import finish_pending
+from toolkit.problems import DataError
+from toolkit.sql.spark import FILES_VIEW, SPARK_FILE, SparkStatement
 
 __all__ = ["SparkStatement", "execute", "session"]
 

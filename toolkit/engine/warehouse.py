@@ -20,11 +20,11 @@ from pathlib import Path
 
 import duckdb
 
-from . import storage
-from .compiler import environment, template_folder
-from .model import Project
-from .problems import DataError, RunLocked, WarehouseError, engine_message
-from .sqltext import quote_ident, quote_literal
+from toolkit.lake import storage
+from toolkit.sql.templates import environment, template_folder
+from toolkit.model import Project
+from toolkit.problems import DataError, RunLocked, WarehouseError, engine_message
+from toolkit.sql.quoting import quote_ident, quote_literal
 
 TABLES = ("runs", "run_checks", "files_read", "changed_files", "source_columns", "session_ids",
           "check_state", "key_state", "carry", "key_windows", "windows", "alerts", "alert_events",
@@ -103,7 +103,7 @@ def finish_pending(con: duckdb.DuckDBPyConnection) -> None:
 
 def stage_connection(con: duckdb.DuckDBPyConnection, project: Project) -> duckdb.DuckDBPyConnection:
     """A second connection to the same warehouse, with the same settings, for the stages a run
-    runs outside its transaction (see toolkit.runner)."""
+    runs outside its transaction (see toolkit.engine.runner)."""
     stages = con.cursor()
     stages.execute("SET TimeZone = 'UTC'")
     if project.remote:
@@ -156,7 +156,7 @@ def _adopt_definitions(con: duckdb.DuckDBPyConnection, project: Project) -> None
     """Layout 1 to 2: a check's definition hash covers its compiled SQL, which this release writes
     differently for unchanged checks; their windows stay valid, so the hash each check has now is
     taken as the stored one (with its open alerts'), rather than asking for a rebuild of every check."""
-    from .compiler import compile_check
+    from toolkit.sql.compiler import compile_check
 
     for check in project.checks.values():
         stored = con.execute("SELECT definition_hash FROM check_state WHERE check_name = $c",

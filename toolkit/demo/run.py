@@ -14,13 +14,13 @@ from importlib.resources import files
 from pathlib import Path
 from typing import Any
 
-from .labels import Label, match_label, overlapping
-from .outputs import alerts_from
-from .problems import PlimsollError
-from .project import load_project
-from .runner import RunResult, run
-from .warehouse import connect
-from .warehouse_demo.generate import build_lake
+from toolkit.backtest.labels import Label, match_label, overlapping
+from toolkit.outputs.listings import alerts_from
+from toolkit.problems import PlimsollError
+from toolkit.config.project import load_project
+from toolkit.engine.runner import RunResult, run
+from toolkit.engine.warehouse import connect
+from toolkit.warehouse_demo.generate import build_lake
 
 MARKER = ".plimsoll-demo"
 
@@ -77,7 +77,7 @@ class DemoOutcome:
 
 
 def catalogue_folder() -> Path:
-    return Path(str(files("toolkit.catalogue")))
+    return Path(str(files("toolkit.checks")))
 
 
 def prepare_workdir(workdir: Path) -> None:

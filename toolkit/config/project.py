@@ -1,0 +1,64 @@
+"""Loading and validating ``plimsoll.yml`` and the check files it points at.
+
+Validation collects every problem it can find before failing, each as ``file:line: message``; a
+project that loads is a :class:`~toolkit.model.Project` whose expressions were all parsed, checked
+against their source's Parquet schema and bound by DuckDB to the right type. The sections are
+validated by the modules beside this one: :mod:`~toolkit.config.sources`,
+:mod:`~toolkit.config.checks`, :mod:`~toolkit.config.webhooks`.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import duckdb
+
+from toolkit.config.checks import load_checks
+from toolkit.config.fields import Section, size_of
+from toolkit.config.registry import NOTIFY_KEYS, PROJECT_KEYS
+from toolkit.config.sources import engine_settings, load_sources, storage_settings
+from toolkit.config.webhooks import load_webhooks
+from toolkit.config.yamlsource import load
+from toolkit.model import Check, Notify, Project
+from toolkit.problems import Problem, ProjectInvalid, display_path
+
+
+def load_project(path: Path | str = "plimsoll.yml", check_schema: bool = True) -> Project:
+    """Load and validate a project; raise :class:`ProjectInvalid` listing every problem."""
+    file = Path(path)
+    shown = display_path(file)
+    if not file.is_file():
+        raise ProjectInvalid([Problem(shown, 0, "project file not found")])
+    root = file.resolve().parent
+    problems: list[Problem] = []
+    doc, found = load(file, shown)
+    problems += found
+    if doc is None:
+        raise ProjectInvalid(problems)
+    top = Section(doc, (), doc.data if doc.data is not None else {}, PROJECT_KEYS, problems)
+    warehouse, checks_dir = top.get("warehouse"), top.get("checks")
+    memory_limit, threads = top.get("memory_limit"), top.get("threads")
+    max_read = size_of(top, "max_read_per_run")
+    engine = engine_settings(top)
+    settings = storage_settings(doc, top.get("storage"), problems)
+    con = duckdb.connect()
+    sources = load_sources(doc, top.get("sources") or {}, root, con, problems, check_schema, engine, settings)
+    checks: dict[str, Check] = {}
+    folder = (root / (checks_dir or "checks/")).resolve()
+    if checks_dir is not None and not folder.is_dir():
+        top.error(("checks",), f"checks folder '{checks_dir}' does not exist")
+    elif folder.is_dir():
+        checks = load_checks(folder, sources, con, problems)
+    con.close()
+    webhooks = load_webhooks(doc, top.get("webhooks") or [], problems)
+    notify_s = Section(doc, ("notify",), top.get("notify") or {}, NOTIFY_KEYS, problems)
+    notify = Notify(**{k.name: notify_s.get(k.name) for k in NOTIFY_KEYS})
+    if notify.max_backoff is not None and notify.backoff is not None and notify.max_backoff < notify.backoff:
+        notify_s.error(("notify", "max_backoff"), "notify.max_backoff cannot be shorter than notify.backoff")
+    if problems:
+        raise ProjectInvalid(problems)
+    return Project(
+        file=file.resolve(), root=root, warehouse=(root / warehouse).resolve(), checks_dir=folder,
+        sources=sources, checks=checks, memory_limit=memory_limit, threads=threads,
+        max_read_per_run=max_read, webhooks=webhooks, notify=notify, engine=engine, storage=settings,
+    )

@@ -1,0 +1,236 @@
+"""Every key a project or check file may hold, defined once as data: the key tables of each
+section, and each measure kind and baseline method with the keys it takes.
+
+The same rows drive validation (which keys a section takes, their types and defaults) and the
+README's reference (a test fails when a key is undocumented), so adding a method is adding a row
+and its SQL.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Any
+
+
+@dataclass(frozen=True)
+class Key:
+    """One YAML key: its type, whether it is required, its default, and what it means."""
+
+    name: str
+    type: str  # text | name | int | number | fraction | bool | duration | expr | column | columns | choice | mapping | list
+    doc: str
+    required: bool = False
+    default: Any = None
+    choices: tuple[str, ...] = ()
+    minimum: float | None = None
+
+
+@dataclass(frozen=True)
+class Kind:
+    """A measure kind or a baseline method: its keys, its macro in the stage template, its meaning."""
+
+    name: str
+    description: str
+    keys: tuple[Key, ...]
+    rate_only: bool = False
+
+
+MEASURES: dict[str, Kind] = {
+    k.name: k
+    for k in (
+        Kind(
+            "rate",
+            "share of the window's sessions that are bad: bad ÷ sessions",
+            (
+                Key("bad", "expr", "SQL boolean over source columns: which sessions count as bad", True),
+                Key("split", "column", "one series per value of this column among bad sessions"),
+            ),
+        ),
+        Kind(
+            "ratio",
+            "ratio of sums over the window's sessions: Σ numerator ÷ Σ denominator",
+            (
+                Key("numerator", "expr", "SQL numeric expression summed over sessions", True),
+                Key("denominator", "expr", "SQL numeric expression summed over sessions", True),
+            ),
+        ),
+        Kind(
+            "quantile",
+            "quantile_cont of a per-session value over the window (NULL values left out)",
+            (
+                Key("of", "expr", "SQL numeric expression per session", True),
+                Key("q", "fraction", "the quantile, between 0 and 1", True),
+            ),
+        ),
+    )
+}
+
+_HISTORY = (
+    Key("history", "int", "how many earlier non-breaching windows of the series", True, minimum=1),
+    Key("min_history", "int", "fewer earlier windows than this: no verdict yet", True, minimum=1),
+)
+
+_CONFIDENCE = Key(
+    "confidence", "fraction",
+    "rate: breach only if this window's Wilson score bound at this confidence is beyond the threshold",
+)
+
+BASELINES: dict[str, Kind] = {
+    k.name: k
+    for k in (
+        Kind(
+            "rolling_percentile",
+            "threshold = max(floor, factor × quantile_cont(q) of the series' earlier window values)",
+            (
+                Key("q", "fraction", "quantile of earlier windows' values", True),
+                *_HISTORY,
+                Key("factor", "number", "multiplier on the quantile (below 1 for direction down)", False, 1.0, minimum=0),
+                Key("floor", "number", "up: the threshold is never below this; down: never above it"),
+                _CONFIDENCE,
+            ),
+        ),
+        Kind(
+            "p_chart",
+            "threshold = p̄ ± sigmas × √(p̄(1−p̄)/n): p̄ pooled over earlier windows (Σbad ÷ Σsessions), "
+            "n this window's sessions (NIST/SEMATECH e-Handbook §6.3.3.2)",
+            (
+                Key("sigmas", "number", "how many standard errors from p̄ the limit lies", False, 3.0, minimum=0),
+                *_HISTORY,
+                _CONFIDENCE,
+            ),
+            rate_only=True,
+        ),
+        Kind(
+            "ewma",
+            "EWMA chart (NIST/SEMATECH e-Handbook §6.3.2.4): z = λ·value + (1−λ)·z of the previous "
+            "window; threshold = target ± sigmas × s × √(λ/(2−λ)), target and s the mean and standard "
+            "deviation of earlier windows unless given",
+            (
+                Key("lambda", "fraction", "λ, the weight of the newest window in the moving average", True),
+                Key("sigmas", "number", "how many standard deviations of the EWMA the limit lies", False, 3.0, minimum=0),
+                *_HISTORY,
+                Key("target", "number", "the series' known mean (default: mean of earlier windows)"),
+                Key("sigma", "number", "the known standard deviation of one window's value "
+                    "(default: of earlier windows)", minimum=0),
+            ),
+        ),
+    )
+}
+
+SEVERITIES = ("high", "medium", "low")
+DIRECTIONS = ("up", "down")
+
+
+# ── the key tables of plimsoll.yml and the check files ─────────────────────────────────────────
+
+ENGINES = ("duckdb", "spark")
+
+
+PROJECT_KEYS = (
+    Key("warehouse", "text", "the DuckDB file holding windows, alerts, runs and state", True),
+    Key("checks", "text", "folder of check files (*.yml)", False, "checks/"),
+    Key("sources", "mapping", "named session tables in the lake", True),
+    Key("memory_limit", "text", "DuckDB memory limit for runs (default 1600MB); beyond it DuckDB spills to disk"),
+    Key("threads", "int", "DuckDB threads for runs (default: all cores)", minimum=1),
+    Key("max_read_per_run", "text", "the most Parquet (by file size) one run reads per check, e.g. 4GB "
+        "(the default); a longer backlog is read by several runs in turn, each committed"),
+    Key("webhooks", "list", "endpoints that `plimsoll notify` POSTs alert events to"),
+    Key("notify", "mapping", "which alert events `plimsoll notify` sends and how it retries"),
+    Key("engine", "choice", "where the stages that touch every session run: duckdb or spark", False,
+        "duckdb", ENGINES),
+    Key("spark_master", "text", "engine spark: the Spark master URL, e.g. local[2] or spark://host:7077 "
+        "(default local[*])"),
+    Key("spark_conf", "mapping", "engine spark: Spark settings for the session, e.g. spark.executor.memory: 4g"),
+    Key("storage", "mapping", "how s3:// sources are reached: endpoint, region, credentials"),
+)
+
+
+WEBHOOK_KEYS = (
+    Key("url", "text", "http:// or https:// URL that receives a JSON POST per alert event", True),
+    Key("name", "text", "the webhook's identity in the outbox and in idempotency keys "
+        "(default: the url's scheme://host:port)"),
+    Key("timeout", "duration", "how long one POST may take, from connecting to the last byte of the answer",
+        False, "10s"),
+    Key("catch_up", "duration", "on the webhook's first notify, events older than this (in data time, before the "
+        "newest data read) are skipped instead of sent, except the opening of an alert still open", False, "1d"),
+    Key("headers", "mapping", "headers sent with every POST, each mapped to the NAME of the environment variable "
+        "holding its value (e.g. Authorization: FERNHILL_HOOK_AUTH)"),
+)
+
+
+NOTIFY_KEYS = (
+    Key("growth", "number", "send an 'updated' event once affected_sessions grew by this share over the last "
+        "one sent for the alert (0: every update)", False, 0.5, minimum=0),
+    Key("max_attempts", "int", "failed attempts before a delivery is abandoned", False, 8, minimum=1),
+    Key("backoff", "duration", "wait after the first failed attempt; doubled after each further one", False, "30s"),
+    Key("max_backoff", "duration", "the longest wait between two attempts", False, "1h"),
+)
+
+
+STORAGE_KEYS = (
+    Key("endpoint_url", "text", "the S3 endpoint, e.g. http://127.0.0.1:9000 (default: AWS_ENDPOINT_URL, else AWS)"),
+    Key("region", "text", "the bucket's region (default: AWS_DEFAULT_REGION)"),
+    Key("profile", "text", "a named profile of the AWS shared config and credentials files"),
+    Key("access_key_env", "envvar", "name of the environment variable holding the access key id (default: AWS_ACCESS_KEY_ID)"),
+    Key("secret_key_env", "envvar", "name of the environment variable holding the secret key (default: AWS_SECRET_ACCESS_KEY)"),
+    Key("session_token_env", "envvar", "name of the environment variable holding a session token (default: AWS_SESSION_TOKEN)"),
+    Key("anonymous", "bool", "unsigned requests, for public buckets", False, False),
+    Key("addressing_style", "choice", "auto, path (most self-hosted S3 servers) or virtual", False, "auto",
+        ("auto", "path", "virtual")),
+)
+
+
+SOURCE_KEYS = (
+    Key("path", "text", "folder, glob or file of Parquet, or an s3:// URL of them; hive partitions are read", True),
+    Key("session_id", "column", "unique per session: duplicates are counted once", True),
+    Key("event_time", "expr", "the data time that orders sessions and closes windows: a timestamp column, "
+        "or an expression giving one (e.g. epoch_ms(ended_ms), ended_iso::TIMESTAMP)", True),
+    Key("exclude", "expr", "SQL boolean: matching sessions never count (crawlers, tests)"),
+    Key("max_future", "duration", "a session ending more than this after its file was written has an "
+        "impossible event time: it is counted as invalid and never moves the watermark", False, "1d"),
+    Key("dedup_horizon", "duration", "how far behind the newest data read (in data time) session ids are "
+        "remembered to find repeats; an older session arriving later is counted as late and left out",
+        False, "3d"),
+)
+
+
+CHECK_KEYS = (
+    Key("check", "name", "unique check name, [a-z][a-z0-9_]*", True),
+    Key("about", "text", "one sentence on what the check finds", False, ""),
+    Key("source", "text", "a source named in plimsoll.yml", True),
+    Key("where", "expr", "SQL boolean: only these sessions enter the check"),
+    Key("by", "columns", "the series key: zero or more source columns", False, []),
+    Key("measure", "mapping", "what each window's value is", True),
+    Key("direction", "choice", "up: alert when higher than the threshold; down: when lower", False, "up", DIRECTIONS),
+    Key("window", "mapping", "how sessions are grouped into windows", True),
+    Key("baseline", "mapping", "how each window's threshold is derived from history", True),
+    Key("guard", "mapping", "windows too small never breach"),
+    Key("lifecycle", "mapping", "when an open alert closes"),
+    Key("severity", "choice", "carried on alerts", False, "medium", SEVERITIES),
+)
+
+
+MEASURE_KEYS = (Key("kind", "choice", "rate | ratio | quantile", True, choices=tuple(MEASURES)),)
+
+
+WINDOW_KEYS = (
+    Key("sessions", "int", "count window: every N sessions of one series", minimum=1),
+    Key("max_wait", "duration", "count window: a partial window older than this closes as it is"),
+    Key("every", "duration", "time window: its length, aligned to the epoch"),
+    Key("lateness", "duration", "time window: how long after its end a window waits for late sessions", False, "0s"),
+)
+
+
+BASELINE_KEYS = (Key("method", "choice", "how the threshold is derived", True, choices=tuple(BASELINES)),)
+
+
+GUARD_KEYS = (
+    Key("min_sessions", "int", "windows with fewer sessions never breach", False, 1, minimum=0),
+    Key("min_bad", "int", "rate: windows with fewer bad sessions never breach", False, 0, minimum=0),
+)
+
+
+LIFECYCLE_KEYS = (
+    Key("recover_after", "int", "this many healthy windows in a row close an open alert", False, 2, minimum=1),
+    Key("expire_after", "duration", "no window at all for this long closes an open alert", False, "7d"),
+)

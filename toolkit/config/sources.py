@@ -1,0 +1,144 @@
+"""The sources of ``plimsoll.yml``: where each lake is, its columns read from the files' footers
+(local or ``s3://``), its event time and exclusions; the engine and storage settings they share."""
+
+from __future__ import annotations
+
+import importlib.util
+from pathlib import Path
+from typing import Any
+
+import duckdb
+
+from toolkit.config.fields import NAME, Section, kind_of
+from toolkit.config.registry import SOURCE_KEYS, STORAGE_KEYS
+from toolkit.config.schema import Binder
+from toolkit.config.yamlsource import Located
+from toolkit.lake import files as lake
+from toolkit.lake import storage
+from toolkit.model import Engine, Source, Storage
+from toolkit.problems import Problem, engine_message
+
+
+def engine_settings(top: Section) -> Engine:
+    """The ``engine`` keys: Spark settings only with ``engine: spark``, and pyspark installed for it."""
+    name, master, conf = top.get("engine") or "duckdb", top.get("spark_master"), top.get("spark_conf")
+    if name != "spark":
+        for key in ("spark_master", "spark_conf"):
+            if key in top.raw:
+                top.error((key,), f"{key} applies to engine: spark (this project's engine is {name})")
+        return Engine(name)
+    if importlib.util.find_spec("pyspark") is None:
+        top.error(("engine",), "engine: spark needs pyspark, which is not installed: "
+                  "pip install 'plimsoll[spark]' (Java 17 or later must be on the machine)")
+    settings: list[tuple[str, str]] = []
+    for key, value in (conf or {}).items():
+        if not str(key).startswith("spark."):
+            top.error(("spark_conf", key), f"spark_conf.{key}: Spark settings start with 'spark.'")
+        elif isinstance(value, (dict, list)) or value is None:
+            top.error(("spark_conf", key), f"spark_conf.{key}: expected one value, got {kind_of(value)}")
+        else:
+            settings.append((str(key), str(value).lower() if isinstance(value, bool) else str(value)))
+    return Engine(name, master, tuple(settings))
+
+
+def storage_settings(doc: Located, raw: Any, problems: list[Problem]) -> Storage | None:
+    """The ``storage`` mapping; credentials only as names of environment variables."""
+    if raw is None:
+        return None
+    section = Section(doc, ("storage",), raw, STORAGE_KEYS, problems)
+    values = {key.name: section.get(key.name) for key in STORAGE_KEYS}
+    if bool(values["access_key_env"]) != bool(values["secret_key_env"]):
+        given = "access_key_env" if values["access_key_env"] else "secret_key_env"
+        section.error(("storage", given), "storage: access_key_env and secret_key_env go together; give both")
+    return Storage(**{k: v for k, v in values.items() if v is not None})
+
+
+def _remote_files(section: Section, name: str, where: str, settings: Storage | None,
+                  con: duckdb.DuckDBPyConnection) -> list[str] | None:
+    """The source's object URLs, with the filesystem registered on ``con``; None after a problem."""
+    if not storage.available():
+        section.error((*section.path, "path"), f"source '{name}': {storage.INSTALL_HINT}")
+        return None
+    for variable in storage.missing_variables(settings):
+        key = next(k for k in ("access_key_env", "secret_key_env", "session_token_env")
+                   if getattr(settings, k) == variable)
+        section.error(("storage", key), f"storage.{key}: environment variable {variable} is not set")
+        return None
+    try:
+        storage.register(con, settings)
+        return [f.path for f in lake.list_files(where, settings)]
+    except storage.StorageError as err:
+        section.error((*section.path, "path"), f"source '{name}': {where}: {err}")
+        return None
+
+
+def load_sources(doc: Located, raw: dict[str, Any], root: Path, con: duckdb.DuckDBPyConnection,
+                  problems: list[Problem], check_schema: bool, engine: Engine,
+                  settings: Storage | None) -> dict[str, Source]:
+    sources: dict[str, Source] = {}
+    if not raw:
+        problems.append(Problem(doc.file, doc.line(("sources",)), "at least one source is needed"))
+    for name, body in raw.items():
+        section = Section(doc, ("sources", name), body, SOURCE_KEYS, problems)
+        if not NAME.match(name):
+            section.error(section.path, f"source name '{name}' is not valid: use [a-z][a-z0-9_]*")
+        where = section.get("path")
+        session_id, event_time, exclude = section.get("session_id"), section.get("event_time"), section.get("exclude")
+        limits = {"max_future": section.get("max_future"), "dedup_horizon": section.get("dedup_horizon")}
+        limits = {k: v for k, v in limits.items() if v is not None}
+        if where is None:
+            continue
+        location = where if "://" in where else str((root / where))
+        remote = storage.is_remote(location)
+        if "://" in where and not remote:
+            section.error((*section.path, "path"), f"source '{name}': only local paths and s3:// URLs "
+                          f"can be read, not {where.split('://')[0]}://")
+            sources[name] = Source(name, location, session_id or "", event_time or "", None, {})
+            continue
+        common = {"engine": engine, "storage": settings if remote else None, "base": lake.base_of(location),
+                  **limits}
+        columns: dict[str, str] = {}
+        if check_schema:
+            files = (_remote_files(section, name, location, settings, con) if remote
+                     else [f.path for f in lake.list_files(location)])
+            unreadable = None
+            if files == []:
+                unreadable = f"source '{name}': no Parquet files at '{where}'"
+            elif files is not None:
+                try:
+                    columns = _readable_schema(con, files, settings if remote else None)
+                except duckdb.Error as err:
+                    unreadable = f"source '{name}': cannot read Parquet schema: {engine_message(err)}"
+            if unreadable:
+                section.error((*section.path, "path"), unreadable)
+            if files is None or unreadable:
+                # keep the source, without columns, so its checks report only their own problems
+                sources[name] = Source(name, location, session_id or "", event_time or "", None, {}, **common)
+                continue
+        reserved = sorted(c for c in columns if c.startswith("__"))
+        if reserved:
+            section.error((*section.path, "path"), f"source '{name}': column names starting with '__' are "
+                          f"reserved for Plimsoll's own columns: {', '.join(reserved)}")
+        source = Source(name, location, session_id or "", event_time or "", None, columns, **common)
+        binder = Binder(con, source)
+        if check_schema:
+            binder.column(section, session_id, "session_id")
+        time = binder.time(section, event_time)
+        excl = binder.expr(section, exclude, "exclude", "boolean")
+        sources[name] = Source(name, location, session_id or "", event_time or "", excl, columns, time=time,
+                               **common)
+    return sources
+
+
+def _readable_schema(con: duckdb.DuckDBPyConnection, files: list[str], settings: Storage | None) -> dict[str, str]:
+    """The columns of the source's files, as most of them have them.
+
+    A broken file in the lake, or one whose column has another kind of type than in the other
+    files, is a data problem of the run that would read it (exit 1, the file and column named),
+    not a reason to call the project invalid: such files are left out here.
+    """
+    footers = lake.readable_footers(files, settings)
+    if not footers:
+        return lake.read_schema(con, files)  # none readable: DuckDB's own message says why
+    agreeing = lake.agreeing_files(footers)
+    return lake.read_schema(con, agreeing)

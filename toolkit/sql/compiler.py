@@ -1,0 +1,92 @@
+"""Compiling a check into the SQL a run executes, stage by stage, from the templates in ``queries/``.
+
+The compiler only returns text; :mod:`toolkit.engine.runner` only executes what it returns, and
+``plimsoll compile`` prints the same text. A stage's statements after a ``-- @repeat`` line form the
+loop that settles breach verdicts (see ``baseline.sql``).
+"""
+
+from __future__ import annotations
+
+import hashlib
+from dataclasses import dataclass, field
+
+from toolkit.model import Check
+from toolkit.sql.templates import Stage, render, stage
+
+STAGES = ("source", "scan", "window", "measure", "baseline", "breach", "lifecycle", "persist")
+CHECK_STAGES = STAGES[1:]
+
+
+@dataclass(frozen=True)
+class CompiledCheck:
+    """All the SQL of one check, in order, with a hash that changes when the computation does."""
+
+    check: str
+    stages: tuple[Stage, ...]
+    definition_hash: str = field(default="")
+
+    @property
+    def sql(self) -> str:
+        """The whole script as ``plimsoll compile`` shows it."""
+        header = (
+            f"-- Plimsoll check {self.check}: compiled SQL, executed by `plimsoll run` as shown.\n"
+            "-- Parameters: $files (where the new Parquet files are read from), $paths (their names\n"
+            "-- relative to the source's path), $manifest (names, sizes and times), $run_id, $reader (the\n"
+            "-- check whose earlier files decide repeats), $read_until (a backlog read in several runs:\n"
+            "-- the earliest event time left for the next runs, else NULL), $source_checks (the checks of\n"
+            "-- the source), $definition (hash of the SQL up to the breach stage). Statements after\n"
+            "-- '@repeat' run until no breach flag changes.\n"
+        )
+        return header + "\n".join(stage.text.rstrip() + "\n" for stage in self.stages)
+
+
+def columns_read(checks: list[Check]) -> list[str]:
+    """The source columns a set of checks reads, in first-use order (the scan projects only these)."""
+    seen: list[str] = []
+    for check in checks:
+        m = check.measure
+        exprs = [e for e in (check.where, m.bad, m.numerator, m.denominator, m.of) if e is not None]
+        names = [*check.by, *([m.split] if m.split else []), *(c for e in exprs for c in e.columns)]
+        for name in names:
+            if name not in seen:
+                seen.append(name)
+    return seen
+
+
+def compile_source(checks: list[Check]) -> Stage:
+    """The shared first stage: read the new files of one source once for all of ``checks``."""
+    sources = {c.source.name for c in checks}
+    if len(sources) != 1:
+        raise ValueError(f"one source at a time, not {sorted(sources)}")
+    return _source_stage(checks)
+
+
+def _source_stage(checks: list[Check]) -> Stage:
+    return stage("source", render("source.sql", source=checks[0].source, columns=columns_read(checks)))
+
+
+def compile_check(check: Check) -> CompiledCheck:
+    """Every stage template rendered for ``check`` (its source stage reading only its own columns):
+    DuckDB's plan. :mod:`toolkit.sql.plans` turns it into the plan of the check's engine."""
+    context = {
+        "check": check,
+        "source": check.source,
+        "measure": check.measure,
+        "window": check.window,
+        "baseline": check.baseline,
+        "guard": check.guard,
+        "lifecycle": check.lifecycle,
+    }
+    stages = (_source_stage([check]),) + tuple(stage(name, render(f"{name}.sql", **context)) for name in CHECK_STAGES)
+    return CompiledCheck(check.name, stages, definition_hash(stages))
+
+
+def definition_hash(stages: tuple[Stage, ...]) -> str:
+    """A hash of the DuckDB SQL that forms the check's windows and verdicts (stages source to breach).
+
+    When it changes, windows already stored no longer match what the check computes, so the
+    runner asks for a full refresh. The life cycle and severity may change without one: they only
+    shape alerts from now on.
+    """
+    computing = [s.text for s in stages if s.name not in ("lifecycle", "persist")]
+    return hashlib.sha256("\n".join(computing).encode()).hexdigest()[:16]
