@@ -6,7 +6,7 @@
 --
 -- An event is known by its incident, not its alert_id: the alert's fingerprint (check, key, split
 -- value) and opened_at, the kind of event, and for 'updated' its data time. A rebuild after a check
--- changed (--full-refresh) derives the same incidents again under new alert ids; what a webhook was
+-- changed (--rebuild) derives the same incidents again under new alert ids; what a webhook was
 -- told about them is not told again, and growth is measured against what it was told. The rebuild
 -- also closes the old definition's open alerts as 'check changed': that close is skipped
 -- ('rebuilt') when the rebuilt definition has an alert for the same incident, which goes on, and sent

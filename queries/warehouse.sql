@@ -5,7 +5,7 @@ CREATE TABLE IF NOT EXISTS runs (
     finished_at TIMESTAMP,
     status VARCHAR,                  -- 'ok' | 'failed'
     checks VARCHAR[],
-    full_refresh BOOLEAN,
+    rebuild BOOLEAN,
     files_read BIGINT,
     rows_read BIGINT,
     rows_excluded BIGINT,

@@ -2,7 +2,7 @@
 
 - A check whose windows or baseline would now be computed differently is not run on top of its
   old windows (the others are), naming the file and the command that rebuilds it.
-- `--full-refresh` rebuilds from the lake: with an unchanged check it gives exactly the
+- `--rebuild` rebuilds from the lake: with an unchanged check it gives exactly the
   incremental history; after a change, the old definition's alerts stay (closed as
   'check changed' if they were open), marked with the old definition hash.
 - A check removed from the project closes its open alerts as 'check removed'.
@@ -73,7 +73,7 @@ def two_runs(tmp_path: Path) -> Path:
 
 def test_full_refresh_equals_the_incremental_history(two_runs: Path) -> None:
     incremental = results(two_runs.parent / "warehouse.duckdb")
-    result = run(load_project(two_runs), full_refresh=True)
+    result = run(load_project(two_runs), rebuild=True)
     assert result.files_read == len(DAYS)
     assert results(two_runs.parent / "warehouse.duckdb") == incremental
 
@@ -87,14 +87,14 @@ def test_a_changed_baseline_is_not_run_and_says_how_to_rebuild(two_runs: Path) -
     (problem,) = caught.value.problems
     assert problem.file.endswith("checks/title_decode_errors.yml") and problem.line == 1
     assert "check title_decode_errors was not run: it has changed since its windows were computed" in problem.message
-    assert "plimsoll run --check title_decode_errors --full-refresh" in problem.message
+    assert "plimsoll run --check title_decode_errors --rebuild" in problem.message
     assert warehouse_contents(two_runs.parent / "warehouse.duckdb", skip=("runs",)) == before
 
     # with the others, they run and it is skipped, named with the command that rebuilds it
     result = run(load_project(two_runs))
     assert [c.check for c in result.checks] == ["startup_p90_by_site"] and result.skipped == [problem]
     cli = CliRunner().invoke(main, ["run", "-p", str(two_runs)])
-    assert cli.exit_code == 2 and "--full-refresh" in cli.output and "1 changed check not run" in cli.output
+    assert cli.exit_code == 2 and "--rebuild" in cli.output and "1 changed check not run" in cli.output
     assert warehouse_contents(two_runs.parent / "warehouse.duckdb", skip=("runs",)) == before
 
 
@@ -109,7 +109,7 @@ def test_editing_one_check_does_not_stop_the_others(tmp_path: Path) -> None:
     assert cli.output.splitlines()[-1].endswith(
         "check title_decode_errors was not run: it has changed since its windows were computed (definition "
         f"{cli.output.split('(definition ')[1].split(')')[0]}); run `plimsoll run --check title_decode_errors "
-        "--full-refresh` to rebuild it from the lake, or undo the change")
+        "--rebuild` to rebuild it from the lake, or undo the change")
     # the unchanged check carried on exactly as if nothing had been edited
     plain = project(tmp_path / "plain", DAYS)
     run(load_project(plain))
@@ -140,7 +140,7 @@ def test_rebuild_after_a_change_keeps_the_old_alerts_as_history(two_runs: Path, 
                       "WHERE check_name = 'title_decode_errors' ORDER BY ALL").fetchall()
     con.close()
     edit(two_runs, "title_decode_errors.yml", "factor: 1.5", "factor: 1.6")
-    run(load_project(two_runs), ["title_decode_errors"], full_refresh=True)
+    run(load_project(two_runs), ["title_decode_errors"], rebuild=True)
 
     con = duckdb.connect(str(warehouse_file), read_only=True)
     kept = con.execute("SELECT alert_id, status, close_reason, definition_hash FROM alerts "

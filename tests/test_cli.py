@@ -27,7 +27,7 @@ def invoke(*args: str):
     return CliRunner().invoke(main, list(args), catch_exceptions=False)
 
 
-@pytest.mark.parametrize("command", ["validate", "compile", "run", "backtest", "alerts", "report", "notify", "demo"])
+@pytest.mark.parametrize("command", ["validate", "sql", "run", "backtest", "alerts", "report", "notify", "demo"])
 def test_every_command_has_help(command: str) -> None:
     result = invoke(command, "--help")
     assert result.exit_code == 0, result.output
@@ -35,7 +35,7 @@ def test_every_command_has_help(command: str) -> None:
 
 
 def test_compile_prints_the_stages(project: Path) -> None:
-    result = invoke("compile", "startup_p90_by_site", "-p", str(project))
+    result = invoke("sql", "startup_p90_by_site", "-p", str(project))
     assert result.exit_code == 0, result.output
     stages = re.findall(r"stage (\d) · (\w+)", result.output)
     assert [s[1] for s in stages] == ["source", "scan", "window", "measure", "baseline", "breach", "lifecycle", "persist"]
@@ -43,7 +43,7 @@ def test_compile_prints_the_stages(project: Path) -> None:
 
 
 def test_compile_unknown_check_exits_2(project: Path) -> None:
-    result = invoke("compile", "nope", "-p", str(project))
+    result = invoke("sql", "nope", "-p", str(project))
     assert result.exit_code == 2
     assert "no check named 'nope'" in result.output
 
@@ -117,7 +117,7 @@ def test_compile_shows_each_methods_formula(make_project, baseline: str, words: 
     check = (GOLDEN / "site_failures_p_chart.yml").read_text()
     check = check[:check.index("baseline:")] + f"baseline: {baseline}\n" + check[check.index("guard:"):]
     project = make_project({"c.yml": check})
-    result = invoke("compile", "site_failures_p_chart", "-p", str(project))
+    result = invoke("sql", "site_failures_p_chart", "-p", str(project))
     assert result.exit_code == 0, result.output
     for w in words:
         assert w in result.output, w

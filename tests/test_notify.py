@@ -546,8 +546,8 @@ def rebuild(project, old: str, new: str):
     assert old in text
     path.write_text(text.replace(old, new))
     refused = CliRunner().invoke(main, ["run", "-p", str(project.file)])
-    assert refused.exit_code == 2 and "--full-refresh" in refused.output, refused.output
-    rebuilt = CliRunner().invoke(main, ["run", "-p", str(project.file), "--check", "title_errors", "--full-refresh"])
+    assert refused.exit_code == 2 and "--rebuild" in refused.output, refused.output
+    rebuilt = CliRunner().invoke(main, ["run", "-p", str(project.file), "--check", "title_errors", "--rebuild"])
     assert rebuilt.exit_code == 0, rebuilt.output
     return load_project(project.file)
 

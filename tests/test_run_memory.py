@@ -3,7 +3,7 @@
 DuckDB keeps every table a transaction replaces until the transaction commits, so the per-session
 stages run on a connection of their own (toolkit.engine.runner). These tests sample DuckDB's own memory
 accounting (`duckdb_memory()`) after every statement of a real run over the Fernhill demo lake and
-compare it with the same run on one connection (a full refresh runs that way), on the same data.
+compare it with the same run on one connection (a rebuild runs that way), on the same data.
 Memory, not time: the figures are DuckDB's byte counts, which do not depend on machine load.
 """
 
@@ -35,7 +35,7 @@ def fernhill(tmp_path_factory: pytest.TempPathFactory) -> Path:
     return project_file
 
 
-def peak_while_running(project_file: Path, monkeypatch: pytest.MonkeyPatch, full_refresh: bool) -> dict[str, Any]:
+def peak_while_running(project_file: Path, monkeypatch: pytest.MonkeyPatch, rebuild: bool) -> dict[str, Any]:
     """The largest DuckDB memory use seen after any statement, and each check's rows in windows."""
     for stale in project_file.parent.glob("warehouse.duckdb*"):
         stale.unlink()
@@ -49,7 +49,7 @@ def peak_while_running(project_file: Path, monkeypatch: pytest.MonkeyPatch, full
         return out
 
     monkeypatch.setattr(runner, "_execute", sampled)
-    runner.run(load_project(project_file), COUNT_CHECKS, full_refresh=full_refresh)
+    runner.run(load_project(project_file), COUNT_CHECKS, rebuild=rebuild)
     monkeypatch.undo()
     con = duckdb.connect(str(project_file.parent / "warehouse.duckdb"), read_only=True)
     try:
@@ -62,8 +62,8 @@ def peak_while_running(project_file: Path, monkeypatch: pytest.MonkeyPatch, full
 
 def test_the_stages_on_their_own_connection_hold_far_less_and_give_the_same_windows(
         fernhill: Path, monkeypatch: pytest.MonkeyPatch) -> None:
-    apart = peak_while_running(fernhill, monkeypatch, full_refresh=False)
-    together = peak_while_running(fernhill, monkeypatch, full_refresh=True)
+    apart = peak_while_running(fernhill, monkeypatch, rebuild=False)
+    together = peak_while_running(fernhill, monkeypatch, rebuild=True)
     assert apart["windows"] == together["windows"] and len(apart["windows"]) > 1000
     # three count-window checks: on one connection every check's sorted copy of the sessions stays
     # until the commit; apart, one at a time beside the source's rows, which both hold (measured:
@@ -76,8 +76,8 @@ def test_a_full_refresh_runs_every_stage_in_the_transaction(fernhill: Path) -> N
     compiled = [runner.check_plan(c) for c in project.checks.values()]
     con = duckdb.connect()
     try:
-        assert runner._stage_connection(con, project, compiled, full_refresh=True) is None
-        stages = runner._stage_connection(con, project, compiled, full_refresh=False)
+        assert runner._stage_connection(con, project, compiled, rebuild=True) is None
+        stages = runner._stage_connection(con, project, compiled, rebuild=False)
         assert stages is not None
         stages.close()
     finally:

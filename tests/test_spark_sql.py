@@ -1,4 +1,4 @@
-"""The Spark SQL a check compiles to with ``engine: spark``: translated, complete, shown by compile.
+"""The Spark SQL a check compiles to with ``engine: spark``: translated, complete, shown by `plimsoll sql`.
 
 These need no Spark: they check the text. ``tests/test_spark.py`` runs it.
 """
@@ -53,7 +53,7 @@ def test_quantiles_use_sparks_exact_percentile(tmp_path: Path) -> None:
 
 def test_compile_shows_where_each_step_runs(tmp_path: Path) -> None:
     project = spark_project(tmp_path, GOLDEN / "title_decode_errors.yml")
-    result = CliRunner().invoke(main, ["compile", "title_decode_errors", "-p", str(project)])
+    result = CliRunner().invoke(main, ["sql", "title_decode_errors", "-p", str(project)])
     assert result.exit_code == 0, result.output
     for words in ("-- [on Spark]", "-- [on DuckDB (the warehouse)]", "DuckDB rows -> Spark view carry",
                   "Spark rows -> DuckDB relation spark_new_windows", "CREATE OR REPLACE TEMPORARY VIEW pooled",

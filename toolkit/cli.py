@@ -98,12 +98,12 @@ def validate(project_file: Path) -> None:
     click.echo(f"{project_file}: {_plural(len(project.checks), 'check')}, {_plural(len(project.sources), 'source')}: ok")
 
 
-@main.command()
+@main.command("sql")
 @click.argument("check")
 @project_option
 @reports_errors
-def compile(check: str, project_file: Path) -> None:
-    """Print the SQL that a run executes for CHECK."""
+def show_sql(check: str, project_file: Path) -> None:
+    """Print every SQL statement a run executes for CHECK, stage by stage."""
     project = load_project(project_file)
     (chosen,) = select_checks(project, [check])
     click.echo(check_plan(chosen).sql, nl=False)
@@ -112,15 +112,15 @@ def compile(check: str, project_file: Path) -> None:
 @main.command()
 @project_option
 @click.option("--check", "checks", multiple=True, help="Run only this check (repeatable).")
-@click.option("--full-refresh", is_flag=True, help="Forget these checks' state and read the whole lake again.")
+@click.option("--rebuild", is_flag=True, help="Forget these checks' state and read the whole lake again.")
 @click.option("--wait", default=0.0, show_default=True, type=click.FloatRange(min=0),
               help="Seconds to wait for another run to release the warehouse.")
 @reports_errors
-def run(project_file: Path, checks: tuple[str, ...], full_refresh: bool, wait: float) -> None:
+def run(project_file: Path, checks: tuple[str, ...], rebuild: bool, wait: float) -> None:
     """Incremental runs over the files not yet read (one, unless the backlog exceeds max_read_per_run)."""
     project = load_project(project_file)
     with _Progress() as progress:
-        result = run_checks(project, list(checks), full_refresh, progress, wait=wait)
+        result = run_checks(project, list(checks), rebuild, progress, wait=wait)
     for change in result.changed_files:
         click.echo(f"warning: lake file changed after it was read; not read again: {change}", err=True)
     for warning in result.warnings:

@@ -2,7 +2,7 @@
 
     python tests/golden/regenerate.py
 
-For each ``*.yml`` check here: ``NAME.sql`` is what ``plimsoll compile`` prints, and ``NAME.csv`` the
+For each ``*.yml`` check here: ``NAME.sql`` is what ``plimsoll sql`` prints, and ``NAME.csv`` the
 windows (and ``NAME.alerts.csv`` the alerts) a run gives over ``tests/fixtures/lake``. Read the diff
 before committing it: the golden files are the review of a change to the SQL.
 """

@@ -10,7 +10,7 @@ commits, so on one connection a run would hold each check's copies of the sessio
 connection reads the state the run started from (each check's own state changes only when the
 check persists, after its stages there), and what the later stages need crosses to the
 transaction as Arrow: a row per window, the partial windows, and the new sessions' id hashes,
-streamed. A full refresh, which first deletes state inside the transaction, and the Spark engine
+streamed. A rebuild, which first deletes state inside the transaction, and the Spark engine
 run every stage on the one connection.
 """
 
@@ -96,7 +96,7 @@ def select_checks(project: Project, names: list[str] | tuple[str, ...] | None) -
     return [project.checks[n] for n in names]
 
 
-def run(project: Project, names: list[str] | None = None, full_refresh: bool = False,
+def run(project: Project, names: list[str] | None = None, rebuild: bool = False,
         progress: Progress | None = None, wait: float = 0.0) -> RunResult:
     """Runs of the selected checks until they have read every file; returns what they did, raises
     on failure after rolling back the failing run.
@@ -116,7 +116,7 @@ def run(project: Project, names: list[str] | None = None, full_refresh: bool = F
     con = warehouse.connect(project, wait=wait)
     done: list[RunResult] = []
     try:
-        changed = {} if full_refresh else _changed(con, checks, compiled)
+        changed = {} if rebuild else _changed(con, checks, compiled)
         skipped = list(changed.values())
         if skipped and len(skipped) == len(checks):
             raise ProjectInvalid(skipped)
@@ -128,7 +128,7 @@ def run(project: Project, names: list[str] | None = None, full_refresh: bool = F
             run_id = int(con.execute("SELECT coalesce(max(run_id), 0) + 1 FROM runs").fetchone()[0])
             with warehouse.claimed(project, run_id, [c.name for c in checks]):
                 try:
-                    result = _run(con, project, run_id, checks, compiled, full_refresh and not done, say, budget)
+                    result = _run(con, project, run_id, checks, compiled, rebuild and not done, say, budget)
                 except PlimsollError:
                     _publish_quietly(con, project)
                     raise
@@ -172,7 +172,7 @@ def _together(runs: list[RunResult]) -> RunResult:
 
 
 def _run(con: duckdb.DuckDBPyConnection, project: Project, run_id: int, checks: list[Check],
-         compiled: list[CompiledCheck], full_refresh: bool, progress: Progress, budget: int) -> RunResult:
+         compiled: list[CompiledCheck], rebuild: bool, progress: Progress, budget: int) -> RunResult:
     started = _now()
     listings: dict[str, list[lake.LakeFile]] = {}
     result = RunResult(run_id, "ok")
@@ -180,11 +180,11 @@ def _run(con: duckdb.DuckDBPyConnection, project: Project, run_id: int, checks: 
     con.execute("CREATE OR REPLACE TEMP TABLE run_scans (rows_read BIGINT, rows_invalid BIGINT, "
                 "duplicate_rows BIGINT, rows_excluded BIGINT)")
     con.execute("CREATE OR REPLACE TEMP TABLE run_retired (check_name VARCHAR, alerts_closed BIGINT)")
-    stages = _stage_connection(con, project, compiled, full_refresh)
+    stages = _stage_connection(con, project, compiled, rebuild)
     con.execute("BEGIN TRANSACTION")
     try:
         _retire_removed(con, project, run_id, progress)
-        if full_refresh:
+        if rebuild:
             _forget(con, checks, compiled, run_id)
         groups, result.more = _groups(con, checks, compiled, listings, budget)
         result.changed_files = _note_changes(con, run_id, checks, listings)
@@ -217,7 +217,7 @@ def _run(con: duckdb.DuckDBPyConnection, project: Project, run_id: int, checks: 
         repeats = _mostly_repeats(con)
         if repeats:
             result.warnings.append(repeats)
-        _record(con, run_id, started, [c.name for c in checks], full_refresh, "ok", None, repeats)
+        _record(con, run_id, started, [c.name for c in checks], rebuild, "ok", None, repeats)
         result.distinct_files = int(con.execute(
             "SELECT count(DISTINCT (source_name, path)) FROM files_read WHERE run_id = $r", {"r": run_id}).fetchone()[0])
         con.execute("COMMIT")
@@ -233,7 +233,7 @@ def _run(con: duckdb.DuckDBPyConnection, project: Project, run_id: int, checks: 
             raise
         try:
             con.execute("BEGIN TRANSACTION")
-            _record(con, run_id, started, [c.name for c in checks], full_refresh, "failed", str(message), None)
+            _record(con, run_id, started, [c.name for c in checks], rebuild, "failed", str(message), None)
             con.execute("COMMIT")
         except duckdb.Error as record_err:
             raise WarehouseError(f"{message}; the run was rolled back, and its failure could not be recorded "
@@ -276,13 +276,13 @@ def _mostly_repeats(con: duckdb.DuckDBPyConnection) -> str | None:
 
 
 def _stage_connection(con: duckdb.DuckDBPyConnection, project: Project, compiled: list[CompiledCheck],
-                      full_refresh: bool) -> duckdb.DuckDBPyConnection | None:
+                      rebuild: bool) -> duckdb.DuckDBPyConnection | None:
     """The connection the per-session stages run on (outside the run's transaction), or None when
-    they run inside it: a full refresh must see the state it deleted gone, and Spark's steps move
+    they run inside it: a rebuild must see the state it deleted gone, and Spark's steps move
     rows to and from the warehouse's own connection."""
     on_spark = any(isinstance(statement, spark_engine.SparkStatement)
                    for sql in compiled for stage in sql.stages for statement in stage.once)
-    if full_refresh or on_spark:
+    if rebuild or on_spark:
         return None
     return warehouse.stage_connection(con, project)
 
@@ -380,7 +380,7 @@ def _changed(con: duckdb.DuckDBPyConnection, checks: list[Check],
             check.file, check.line,
             f"check {check.name} was not run: it has changed since its windows were computed (definition "
             f"{stored[check.name]} -> {sql.definition_hash}); run `plimsoll run --check {check.name} "
-            "--full-refresh` to rebuild it from the lake, or undo the change")
+            "--rebuild` to rebuild it from the lake, or undo the change")
         for check, sql in zip(checks, compiled)
         if stored.get(check.name) not in (None, sql.definition_hash)
     }
@@ -595,7 +595,7 @@ def _execute(con: duckdb.DuckDBPyConnection, who: str, stage: str, statement: St
 
 def _forget(con: duckdb.DuckDBPyConnection, checks: list[Check], compiled: list[CompiledCheck],
             run_id: int) -> None:
-    """Full refresh: drop these checks' derived state so the lake is read again from the start.
+    """Rebuild: drop these checks' derived state so the lake is read again from the start.
 
     Alerts of the current definition are rebuilt exactly (same ids), so they go with their events;
     alerts of an earlier definition stay as history, the open ones closed as 'check changed'.
@@ -610,13 +610,13 @@ def _forget(con: duckdb.DuckDBPyConnection, checks: list[Check], compiled: list[
 
 
 def _record(con: duckdb.DuckDBPyConnection, run_id: int, started: datetime, names: list[str],
-            full_refresh: bool, status: str, error: str | None, warning: str | None) -> None:
+            rebuild: bool, status: str, error: str | None, warning: str | None) -> None:
     """The run record: what every scan read (once per scan) and what every check wrote."""
     con.execute(
         """
         INSERT INTO runs BY NAME
         SELECT $run_id AS run_id, $started AS started_at, $finished AS finished_at, $status AS status,
-               $checks AS checks, $full_refresh AS full_refresh,
+               $checks AS checks, $rebuild AS rebuild,
                (SELECT count(DISTINCT (source_name, path)) FROM files_read WHERE run_id = $run_id) AS files_read,
                s.rows_read, s.rows_excluded, s.duplicate_rows, c.late_rows, s.rows_invalid AS invalid_rows,
                (SELECT count(DISTINCT path) FROM changed_files WHERE run_id = $run_id) AS changed_files,
@@ -634,7 +634,7 @@ def _record(con: duckdb.DuckDBPyConnection, run_id: int, started: datetime, name
               FROM run_checks WHERE run_id = $run_id) AS c
         """,
         {"run_id": run_id, "started": started, "finished": _now(), "status": status, "checks": names,
-         "full_refresh": full_refresh, "error": error, "warning": warning},
+         "rebuild": rebuild, "error": error, "warning": warning},
     )
 
 

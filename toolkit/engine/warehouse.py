@@ -21,7 +21,7 @@ from pathlib import Path
 import duckdb
 
 from toolkit.lake import storage
-from toolkit.sql.templates import environment, template_folder
+from toolkit.sql.templates import environment, render, statements, template_folder
 from toolkit.model import Project
 from toolkit.problems import DataError, RunLocked, WarehouseError, engine_message
 from toolkit.sql.quoting import quote_ident, quote_literal
@@ -29,8 +29,9 @@ from toolkit.sql.quoting import quote_ident, quote_literal
 TABLES = ("runs", "run_checks", "files_read", "changed_files", "source_columns", "session_ids",
           "check_state", "key_state", "carry", "key_windows", "windows", "alerts", "alert_events",
           "schema_version")
-# The layout this release writes (the schema_version table): 2 names files relative to their source.
-SCHEMA_VERSION = 2
+# The layout this release writes (the schema_version table): 2 names files relative to their
+# source, 3 renames columns (CHANGELOG.md).
+SCHEMA_VERSION = 3
 PUBLISHED = ("alerts", "alert_events", "windows", "runs")
 POLL_SECONDS = 0.25
 # A run's temp tables live until its one transaction commits, so without a limit its memory grows
@@ -129,8 +130,10 @@ def migrate(con: duckdb.DuckDBPyConnection, project: Project) -> None:
     con.execute("BEGIN TRANSACTION")
     try:
         used = con.execute("SELECT (SELECT count(*) FROM runs) + (SELECT count(*) FROM files_read)").fetchone()[0]
-        if version is None and used:
-            _relative_paths(con, project)
+        if used:  # a new file is made in this release's layout; an old one is brought to it step by step
+            for layout, step in _MIGRATIONS:
+                if (version or 1) < layout:
+                    step(con, project)
             _adopt_definitions(con, project)
         con.execute("DELETE FROM schema_version")
         con.execute("INSERT INTO schema_version VALUES ($v)", {"v": SCHEMA_VERSION})
@@ -140,22 +143,41 @@ def migrate(con: duckdb.DuckDBPyConnection, project: Project) -> None:
         raise
 
 
-def _relative_paths(con: duckdb.DuckDBPyConnection, project: Project) -> None:
+# (table, old name, new name) of the columns layout 3 renamed; CHANGELOG.md lists them for readers
+RENAMED_IN_3 = (("runs", "full_refresh", "rebuild"),)
+
+
+def _layout_3(con: duckdb.DuckDBPyConnection, project: Project) -> None:
+    """Layout 2 to 3: the columns renamed so their names say what they hold."""
+    present = set(con.execute("SELECT table_name, column_name FROM duckdb_columns() "
+                              "WHERE database_name = current_database()").fetchall())
+    renamed = [(t, old, new) for t, old, new in RENAMED_IN_3 if (t, old) in present]
+    _run_template(con, "migrate_3.sql", {}, renamed=renamed)
+
+
+def _layout_2(con: duckdb.DuckDBPyConnection, project: Project) -> None:
     """Layout 1 to 2: file paths relative to their source's path, files_read's source named, and
     remembered session ids given a data time (the source's watermark, so they are kept for a
     whole dedup_horizon from now)."""
-    env = environment()
     sources = [{"source_name": s.name, "base": s.base} for s in project.sources.values()]
     checks = [{"check_name": c.name, "source_name": c.source.name} for c in project.checks.values()]
-    for statement in con.extract_statements(env.get_template("migrate.sql").render()):
-        con.execute(statement.query, {k: {"sources": sources, "checks": checks}[k]
-                                      for k in statement.named_parameters})
+    _run_template(con, "migrate_2.sql", {"sources": sources, "checks": checks})
+
+
+def _run_template(con: duckdb.DuckDBPyConnection, name: str, params: dict[str, object], **context: object) -> None:
+    for statement in statements(render(name, **context)):
+        con.execute(statement.sql, {k: params[k] for k in statement.params})
+
+
+# each layout and the step that brings a file of the layout before it there
+_MIGRATIONS = ((2, _layout_2), (3, _layout_3))
 
 
 def _adopt_definitions(con: duckdb.DuckDBPyConnection, project: Project) -> None:
-    """Layout 1 to 2: a check's definition hash covers its compiled SQL, which this release writes
-    differently for unchanged checks; their windows stay valid, so the hash each check has now is
-    taken as the stored one (with its open alerts'), rather than asking for a rebuild of every check."""
+    """After an upgrade: a check's definition hash covers its compiled SQL, which a new release
+    writes differently for unchanged checks; their windows stay valid, so the hash each check has
+    now is taken as the stored one (with its open alerts'), rather than asking for a rebuild of
+    every check. (So edit checks before or after an upgrade, not in the same step.)"""
     from toolkit.sql.compiler import compile_check
 
     for check in project.checks.values():

@@ -1,7 +1,7 @@
 """Compiling a check into the SQL a run executes, stage by stage, from the templates in ``queries/``.
 
 The compiler only returns text; :mod:`toolkit.engine.runner` only executes what it returns, and
-``plimsoll compile`` prints the same text. A stage's statements after a ``-- @repeat`` line form the
+``plimsoll sql`` prints the same text. A stage's statements after a ``-- @repeat`` line form the
 loop that settles breach verdicts (see ``baseline.sql``).
 """
 
@@ -27,7 +27,7 @@ class CompiledCheck:
 
     @property
     def sql(self) -> str:
-        """The whole script as ``plimsoll compile`` shows it."""
+        """The whole script as ``plimsoll sql`` shows it."""
         header = (
             f"-- Plimsoll check {self.check}: compiled SQL, executed by `plimsoll run` as shown.\n"
             "-- Parameters: $files (where the new Parquet files are read from), $paths (their names\n"
@@ -85,7 +85,7 @@ def definition_hash(stages: tuple[Stage, ...]) -> str:
     """A hash of the DuckDB SQL that forms the check's windows and verdicts (stages source to breach).
 
     When it changes, windows already stored no longer match what the check computes, so the
-    runner asks for a full refresh. The life cycle and severity may change without one: they only
+    runner asks for a rebuild. The life cycle and severity may change without one: they only
     shape alerts from now on.
     """
     computing = [s.text for s in stages if s.name not in ("lifecycle", "persist")]

@@ -267,7 +267,7 @@ def _base(path: str) -> str:
 
 
 def _shown(statement: Statement) -> str:
-    """A statement as ``plimsoll compile`` prints it, with where it runs on the line above."""
+    """A statement as ``plimsoll sql`` prints it, with where it runs on the line above."""
     if isinstance(statement, SparkStatement):
         label = _LABEL[statement.action].format(name=statement.name)
         return f"-- [{label}]\n{statement.sql.strip()};" if statement.sql else f"-- [{label}]"
