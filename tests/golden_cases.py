@@ -1,35 +1,133 @@
-"""Helpers shared by the golden tests and ``tests/golden/regenerate.py``."""
+"""The golden cases of ``tests/golden/`` (listed in ``cases.yml``): what each compiles to, stage by
+stage, and what a run of it gives; shared by ``tests/test_golden.py``, ``tests/test_spark_sql.py``
+and ``tests/golden/regenerate.py``.
+
+A case's expected SQL is one file per piece of what ``plimsoll sql`` prints (the header, then each
+stage of :data:`toolkit.sql.compiler.STAGES`). A case folder holds the file of a piece only where
+the case's text differs from the case it is ``like``; :func:`expected_file` follows that chain.
+"""
 
 from __future__ import annotations
 
+import difflib
 import shutil
+import tempfile
+from dataclasses import dataclass
+from functools import cache
 from pathlib import Path
 
 import duckdb
+import yaml
 
-from conftest import write_project
-from toolkit.sql.plans import check_plan
+from conftest import FIXTURE_LAKE, PROJECT, write_project
 from toolkit.config.project import load_project
 from toolkit.engine.runner import run
+from toolkit.sql.compiler import STAGES
+from toolkit.sql.plans import check_plan
+
+GOLDEN = Path(__file__).parent / "golden"
+HEADER = "header"
+PIECES = (HEADER, *STAGES)
+SPARK_PROJECT = "engine: spark\nspark_master: local[2]\n" + PROJECT
 
 WINDOW_COLUMNS = ("key_text, split_value, seq, window_start, window_end, sessions, bad, "
-                  "round(value, 9) AS value, round(baseline, 9) AS baseline, history_windows, "
-                  "round(threshold, 9) AS threshold, breach")
+                  "round(value, 9) AS value, round(statistic, 9) AS statistic, round(baseline, 9) AS baseline, "
+                  "history_windows, round(threshold, 9) AS threshold, breach")
 ALERT_COLUMNS = ("alert_id, key_text, split_value, status, close_reason, opened_at, last_breach_at, "
                  "closed_at, breach_windows, affected_sessions, round(affected_per_hour, 6) AS affected_per_hour, "
                  "round(peak_value, 9) AS peak_value, "
                  "round(threshold, 9) AS threshold, fingerprint")
 
 
-def _project(check_file: Path, folder: Path) -> Path:
-    project = write_project(folder, {})
+@dataclass(frozen=True)
+class Case:
+    """One folder of ``tests/golden/``: a check, the case it is like, the stages pinned on Spark."""
+
+    name: str
+    like: str | None
+    spark: tuple[str, ...]
+
+    @property
+    def folder(self) -> Path:
+        return GOLDEN / self.name
+
+    @property
+    def check_file(self) -> Path:
+        return self.folder / "check.yml"
+
+    @property
+    def check_name(self) -> str:
+        return yaml.safe_load(self.check_file.read_text())["check"]
+
+
+def cases() -> dict[str, Case]:
+    """``cases.yml`` in its order; a case is only like one listed before it."""
+    listed = yaml.safe_load((GOLDEN / "cases.yml").read_text())
+    out: dict[str, Case] = {}
+    for name, entry in listed.items():
+        entry = entry or {}
+        like = entry.get("like")
+        if like is not None and like not in out:
+            raise ValueError(f"tests/golden/cases.yml: {name} is like {like!r}, which is not listed before it")
+        out[name] = Case(name, like, tuple(entry.get("spark", ())))
+    return out
+
+
+def _project(check_file: Path, folder: Path, project: str = PROJECT) -> Path:
+    path = write_project(folder, {}, project.format(lake=FIXTURE_LAKE))
     shutil.copyfile(check_file, folder / "checks" / check_file.name)
-    return project
+    return path
 
 
-def compiled_sql(check_file: Path, folder: Path) -> str:
+def script_pieces(check_file: Path, folder: Path) -> dict[str, str]:
+    """What ``plimsoll sql`` prints for the check, cut into the header and one text per stage."""
     project = load_project(_project(check_file, folder))
-    return check_plan(project.checks[check_file.stem]).sql
+    (name,) = project.checks
+    compiled = check_plan(project.checks[name])
+    script = compiled.sql
+    header = script[:script.index(compiled.stages[0].text)]
+    pieces = {HEADER: header, **{stage.name: stage.text for stage in compiled.stages}}
+    if header + "\n".join(text.rstrip() + "\n" for text in list(pieces.values())[1:]) != script:
+        raise AssertionError(f"{check_file}: the script is no longer its header and its stages in order")
+    return pieces
+
+
+def spark_stages(check_file: Path, folder: Path) -> dict[str, str]:
+    """The check's stages as ``plimsoll sql`` prints them with ``engine: spark``."""
+    project = load_project(_project(check_file, folder, SPARK_PROJECT))
+    (name,) = project.checks
+    return {stage.name: stage.text for stage in check_plan(project.checks[name]).stages}
+
+
+@cache
+def compiled(case: str) -> dict[str, str]:
+    """A case's pieces (compiled once per process)."""
+    with tempfile.TemporaryDirectory() as tmp:
+        return script_pieces(cases()[case].check_file, Path(tmp))
+
+
+@cache
+def compiled_spark(case: str) -> dict[str, str]:
+    with tempfile.TemporaryDirectory() as tmp:
+        return spark_stages(cases()[case].check_file, Path(tmp))
+
+
+def pinned(case: Case, pieces: dict[str, dict[str, str]]) -> list[str]:
+    """The pieces a case's folder holds: all for a case like none, else those that differ from its
+    parent's. ``pieces`` maps each case name (the parent's at least) to its compiled pieces."""
+    if case.like is None:
+        return list(pieces[case.name])
+    return [p for p, text in pieces[case.name].items() if pieces[case.like].get(p) != text]
+
+
+def expected_file(case: Case, piece: str) -> Path:
+    """The file holding a piece of the case's SQL: its own, else the one of the case it is like."""
+    all_cases = cases()
+    while True:
+        path = case.folder / f"{piece}.sql"
+        if path.exists() or case.like is None:
+            return path
+        case = all_cases[case.like]
 
 
 def result_tables(check_file: Path, folder: Path) -> tuple[str, str]:
@@ -44,3 +142,10 @@ def result_tables(check_file: Path, folder: Path) -> tuple[str, str]:
     finally:
         con.close()
     return windows.to_csv(index=False), alerts.to_csv(index=False)
+
+
+def diff(expected: str, actual: str, path: Path) -> str:
+    """A unified diff from the committed file to what the code gives now, for a failing test."""
+    lines = difflib.unified_diff(expected.splitlines(keepends=True), actual.splitlines(keepends=True),
+                                 f"{path} (committed)", "compiled now")
+    return "".join(lines) or "(they differ only in line endings)"

@@ -1,34 +1,72 @@
-"""Golden SQL: each check in tests/golden compiles to its committed .sql, and running it over the
-committed fixture lake gives the committed windows and alerts. Regenerate with
+"""Golden SQL, stage by stage: each case of ``tests/golden/cases.yml`` compiles to its committed SQL
+(one file per stage, the stages it shares with the case it is like left to that case), and one run
+of it over the committed fixture lake gives its committed windows and alerts. Regenerate with
 ``python tests/golden/regenerate.py`` and review the diff.
 """
 
 from __future__ import annotations
 
+import csv
+import io
 from pathlib import Path
 
 import pytest
 
-from golden_cases import compiled_sql, result_tables
+import golden_cases
+from golden_cases import GOLDEN, PIECES
 
-GOLDEN = Path(__file__).parent / "golden"
-CASES = sorted(p.stem for p in GOLDEN.glob("*.yml"))
-
-
-@pytest.mark.parametrize("name", CASES)
-def test_compiled_sql_matches_golden(name: str, tmp_path: Path) -> None:
-    expected = (GOLDEN / f"{name}.sql").read_text()
-    assert compiled_sql(GOLDEN / f"{name}.yml", tmp_path) == expected
+CASES = golden_cases.cases()
 
 
-@pytest.mark.parametrize("name", CASES)
-def test_golden_sql_gives_golden_rows(name: str, tmp_path: Path) -> None:
-    windows, alerts = result_tables(GOLDEN / f"{name}.yml", tmp_path)
-    assert windows == (GOLDEN / f"{name}.csv").read_text()
-    assert alerts == (GOLDEN / f"{name}.alerts.csv").read_text()
+@pytest.mark.parametrize("case,piece", [(c, p) for c in CASES for p in PIECES])
+def test_each_stage_compiles_to_its_golden_file(case: str, piece: str) -> None:
+    path = golden_cases.expected_file(CASES[case], piece)
+    expected = path.read_text()
+    actual = golden_cases.compiled(case)[piece]
+    assert actual == expected, golden_cases.diff(expected, actual, path)
 
 
-def test_golden_cases_cover_every_measure_and_window_kind() -> None:
-    text = "".join((GOLDEN / f"{n}.yml").read_text() for n in CASES)
-    for words in ("kind: rate", "kind: ratio", "kind: quantile", "split:", "sessions:", "every:", "direction: down"):
-        assert words in text
+@pytest.mark.parametrize("case", CASES)
+def test_a_case_folder_holds_only_the_stages_where_it_differs(case: str) -> None:
+    # so a reviewer reads each stage once, where a case changes it
+    pieces = {CASES[case].like or case: golden_cases.compiled(CASES[case].like or case), case: golden_cases.compiled(case)}
+    held = sorted(p.stem for p in CASES[case].folder.glob("*.sql"))
+    assert held == sorted(golden_cases.pinned(CASES[case], pieces))
+    expected = {"check.yml", "windows.csv", "alerts.csv", *(f"{p}.sql" for p in held)} | (
+        {"spark"} if CASES[case].spark else set())
+    assert {p.name for p in CASES[case].folder.iterdir()} == expected
+
+
+@pytest.mark.parametrize("case", CASES)
+def test_a_case_is_named_golden_so_its_stages_can_be_shared(case: str) -> None:
+    assert CASES[case].check_name == "golden"
+
+
+@pytest.mark.parametrize("case", CASES)
+def test_each_case_gives_its_golden_rows(case: str, tmp_path: Path) -> None:
+    windows, alerts = golden_cases.result_tables(CASES[case].check_file, tmp_path)
+    for name, actual in (("windows.csv", windows), ("alerts.csv", alerts)):
+        path = CASES[case].folder / name
+        expected = path.read_text()
+        assert actual == expected, golden_cases.diff(expected, actual, path)
+
+
+def test_the_cases_cover_every_measure_window_baseline_and_gate() -> None:
+    text = "".join(c.check_file.read_text() for c in CASES.values())
+    for words in ("kind: rate", "kind: ratio", "kind: quantile", "split:", "sessions:", "every:", "lateness:",
+                  "direction: down", "by: []", "where:", "floor:", "min_bad:", "method: rolling_percentile",
+                  "method: p_chart", "confidence:"):
+        assert words in text, words
+
+
+def rows(case: str, name: str) -> list[dict[str, str]]:
+    return list(csv.DictReader(io.StringIO((GOLDEN / case / name).read_text())))
+
+
+@pytest.mark.parametrize("case", CASES)
+def test_each_case_has_windows_with_a_verdict_and_a_breach(case: str) -> None:
+    # rows without a breach would pin nothing of the verdicts or the life cycle
+    windows = rows(case, "windows.csv")
+    assert any(w["threshold"] for w in windows)
+    assert any(w["breach"] == "True" for w in windows)
+    assert rows(case, "alerts.csv")

@@ -1,10 +1,13 @@
-"""Rewrite the golden files after a deliberate change to the compiled SQL or its results.
+"""Rewrite every expected file of the golden tests after a deliberate change to the compiled SQL,
+its results or its Spark translation.
 
     python tests/golden/regenerate.py
 
-For each ``*.yml`` check here: ``NAME.sql`` is what ``plimsoll sql`` prints, and ``NAME.csv`` the
-windows (and ``NAME.alerts.csv`` the alerts) a run gives over ``tests/fixtures/lake``. Read the diff
-before committing it: the golden files are the review of a change to the SQL.
+For each case of ``cases.yml`` (a folder here): ``<piece>.sql`` for each piece of what ``plimsoll
+sql`` prints (``header`` and the stages) where the case differs from the case it is ``like`` (the
+others are removed, so nothing is repeated), ``spark/<stage>.sql`` for the stages it lists under
+``spark``, and ``windows.csv`` and ``alerts.csv`` from one run over ``tests/fixtures/lake``. Read
+the diff before committing it: the golden files are the review of a change to the SQL.
 """
 
 from __future__ import annotations
@@ -16,18 +19,44 @@ from pathlib import Path
 HERE = Path(__file__).parent
 sys.path.insert(0, str(HERE.parent))
 
-from golden_cases import compiled_sql, result_tables  # noqa: E402
+import golden_cases  # noqa: E402
+
+
+def _write(path: Path, text: str) -> None:
+    path.parent.mkdir(parents=True, exist_ok=True)
+    if not path.exists() or path.read_text() != text:
+        path.write_text(text)
+        print(f"  wrote {path.relative_to(HERE.parent)}")
+
+
+def _remove_other_sql(folder: Path, keep: list[str]) -> None:
+    for path in sorted(folder.glob("*.sql")):
+        if path.stem not in keep:
+            path.unlink()
+            print(f"  removed {path.relative_to(HERE.parent)}")
 
 
 def main() -> None:
-    for check_file in sorted(HERE.glob("*.yml")):
+    pieces: dict[str, dict[str, str]] = {}
+    for case in golden_cases.cases().values():
+        print(f"case {case.name}" + (f" (like {case.like})" if case.like else ""))
         with tempfile.TemporaryDirectory() as tmp:
-            (HERE / f"{check_file.stem}.sql").write_text(compiled_sql(check_file, Path(tmp)))
+            pieces[case.name] = golden_cases.script_pieces(case.check_file, Path(tmp))
+        own = golden_cases.pinned(case, pieces)
+        for piece in own:
+            _write(case.folder / f"{piece}.sql", pieces[case.name][piece])
+        _remove_other_sql(case.folder, own)
+        if case.spark:
+            with tempfile.TemporaryDirectory() as tmp:
+                spark = golden_cases.spark_stages(case.check_file, Path(tmp))
+            for stage in case.spark:
+                _write(case.folder / "spark" / f"{stage}.sql", spark[stage])
+        if (case.folder / "spark").is_dir():
+            _remove_other_sql(case.folder / "spark", list(case.spark))
         with tempfile.TemporaryDirectory() as tmp:
-            windows, alerts = result_tables(check_file, Path(tmp))
-        (HERE / f"{check_file.stem}.csv").write_text(windows)
-        (HERE / f"{check_file.stem}.alerts.csv").write_text(alerts)
-        print(f"regenerated {check_file.stem}")
+            windows, alerts = golden_cases.result_tables(case.check_file, Path(tmp))
+        _write(case.folder / "windows.csv", windows)
+        _write(case.folder / "alerts.csv", alerts)
 
 
 if __name__ == "__main__":

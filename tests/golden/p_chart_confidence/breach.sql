@@ -1,0 +1,42 @@
+-- ── stage 5 · breach ───────────────────────────────────────────────────────────────────────
+-- A window breaches when it has a threshold, its value is above it, and it passes the guard
+-- (at least 10 sessions and 2 bad); every other window with a threshold and a value is
+-- healthy. A window without a value (a zero denominator, no session with a value) gives no verdict.
+-- confidence 0.8: it also needs the lower end of its Wilson score interval (Wilson 1927)
+-- at that two-sided confidence (z = 1.281551566) beyond the threshold, so a small noisy window cannot:
+--   bound = (p̂ + z²/2n − z·√(p̂(1−p̂)/n + z²/4n²)) / (1 + z²/n),  p̂ = bad / sessions
+-- @repeat (with stage 4): until no breach flag changes
+CREATE OR REPLACE TEMP TABLE decided AS
+SELECT
+    *,
+    coalesce(
+        threshold IS NOT NULL
+        AND value IS NOT NULL
+        AND value > threshold
+        AND sessions >= 10
+        AND bad >= 2
+        AND greatest(0.0, ((bad) / (sessions) + (1.281551566) ^ 2 / (2 * (sessions)) - (1.281551566) * sqrt(((bad) / (sessions)) * (1 - (bad) / (sessions)) / (sessions) + (1.281551566) ^ 2 / (4 * (sessions) ^ 2))) / (1 + (1.281551566) ^ 2 / (sessions))) > threshold
+    , false) AS breach
+FROM (
+    SELECT
+        j.key, j.split_value, j.seq, j.value, j.sessions, j.bad, v.baseline, v.history_windows,
+        CASE WHEN v.history_windows >= 3 THEN
+v.baseline + 2.0 * sqrt(v.baseline * (1 - v.baseline) / j.sessions)
+        END AS threshold
+    FROM judged AS j
+    JOIN verdicts AS v ON j.key = v.key AND j.split_value IS NOT DISTINCT FROM v.split_value AND j.seq = v.seq
+);
+
+UPDATE judged SET changed = false WHERE changed;
+
+UPDATE judged
+SET
+    baseline = d.baseline,
+    history_windows = d.history_windows,
+    threshold = d.threshold,
+    changed = judged.breach IS DISTINCT FROM d.breach,
+    breach = d.breach
+FROM decided AS d
+WHERE judged.key = d.key AND judged.split_value IS NOT DISTINCT FROM d.split_value AND judged.seq = d.seq;
+
+SELECT count(*) FILTER (WHERE changed) AS still_changing FROM judged;

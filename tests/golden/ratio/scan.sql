@@ -1,0 +1,46 @@
+-- ── stage 1 · scan ─────────────────────────────────────────────────────────────────────────
+-- The check's sessions: not excluded; its key and measure inputs.
+-- A measure input that is NaN or ±infinity is missing (NULL), and counted: it would compare
+-- beyond every threshold.
+-- A view: the window stage reads it once.
+CREATE OR REPLACE TEMP VIEW arrivals AS
+SELECT
+    session_id,
+    event_time,
+    key,
+    CASE WHEN finite THEN num END AS num,
+    CASE WHEN finite THEN den END AS den,
+    NOT finite AS nonfinite
+FROM (
+    SELECT
+        *,
+        coalesce(isfinite(num) AND isfinite(den), true) AS finite
+    FROM (
+        SELECT
+            __session_id AS session_id,
+            __event_time AS event_time,
+            {'site': "site"::VARCHAR} AS key,
+            ("rebuffer_ms")::DOUBLE AS num,
+            ("play_ms" + "rebuffer_ms")::DOUBLE AS den
+        FROM lake_sessions
+        WHERE NOT __excluded
+    )
+);
+
+-- The watermark: the largest sane event time read by this check so far, this run's files included;
+-- when a backlog is read in several runs, no later than the earliest session still unread
+-- (read_until), so nothing still to come lands in a window already closed.
+CREATE OR REPLACE TEMP TABLE clock AS
+SELECT
+    prior.watermark AS previous,
+    greatest(prior.watermark, least(c.latest, coalesce((SELECT read_until FROM read_limits), c.latest))) AS current
+FROM (SELECT (SELECT watermark FROM check_state WHERE check_name = 'golden') AS watermark) AS prior,
+     lake_counts AS c;
+
+CREATE OR REPLACE TEMP TABLE scan_counts AS
+SELECT
+    c.rows_read, c.rows_invalid, c.duplicate_rows, c.rows_excluded, c.beyond_horizon,
+    c.rows_read - c.rows_invalid - c.duplicate_rows - c.beyond_horizon - c.rows_excluded - a.rows_kept AS rows_filtered,
+    a.rows_kept,
+    a.nonfinite_values
+FROM lake_counts AS c, (SELECT count(*) AS rows_kept, count(*) FILTER (WHERE nonfinite) AS nonfinite_values FROM arrivals) AS a;
