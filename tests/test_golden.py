@@ -55,7 +55,7 @@ def test_the_cases_cover_every_measure_window_baseline_and_gate() -> None:
     text = "".join(c.check_file.read_text() for c in CASES.values())
     for words in ("kind: rate", "kind: ratio", "kind: quantile", "split:", "sessions:", "every:", "lateness:",
                   "direction: down", "by: []", "where:", "floor:", "min_bad:", "method: rolling_percentile",
-                  "method: p_chart", "confidence:"):
+                  "method: p_chart", "confidence:", "method: ewma"):
         assert words in text, words
 
 
@@ -70,3 +70,12 @@ def test_each_case_has_windows_with_a_verdict_and_a_breach(case: str) -> None:
     assert any(w["threshold"] for w in windows)
     assert any(w["breach"] == "True" for w in windows)
     assert rows(case, "alerts.csv")
+
+
+def test_the_ewma_case_smooths_and_breaches_on_its_statistic() -> None:
+    windows = rows("ewma", "windows.csv")
+    assert all(w["statistic"] for w in windows)
+    assert any(w["statistic"] != w["value"] for w in windows)      # smoothed, not the value again
+    # a window whose own value is under its limit breaches because its statistic is over it
+    assert any(w["breach"] == "True" and float(w["value"]) <= float(w["threshold"]) < float(w["statistic"])
+               for w in windows)
