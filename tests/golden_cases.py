@@ -73,7 +73,8 @@ def cases() -> dict[str, Case]:
     return out
 
 
-def _project(check_file: Path, folder: Path, project: str = PROJECT) -> Path:
+def case_project(check_file: Path, folder: Path, project: str = PROJECT) -> Path:
+    """A project over the fixture lake in ``folder`` holding one check file (``project``: its text)."""
     path = write_project(folder, {}, project.format(lake=FIXTURE_LAKE))
     shutil.copyfile(check_file, folder / "checks" / check_file.name)
     return path
@@ -81,7 +82,7 @@ def _project(check_file: Path, folder: Path, project: str = PROJECT) -> Path:
 
 def script_pieces(check_file: Path, folder: Path) -> dict[str, str]:
     """What ``plimsoll sql`` prints for the check, cut into the header and one text per stage."""
-    project = load_project(_project(check_file, folder))
+    project = load_project(case_project(check_file, folder))
     (name,) = project.checks
     compiled = check_plan(project.checks[name])
     script = compiled.sql
@@ -94,7 +95,7 @@ def script_pieces(check_file: Path, folder: Path) -> dict[str, str]:
 
 def spark_stages(check_file: Path, folder: Path) -> dict[str, str]:
     """The check's stages as ``plimsoll sql`` prints them with ``engine: spark``."""
-    project = load_project(_project(check_file, folder, SPARK_PROJECT))
+    project = load_project(case_project(check_file, folder, SPARK_PROJECT))
     (name,) = project.checks
     return {stage.name: stage.text for stage in check_plan(project.checks[name]).stages}
 
@@ -132,7 +133,7 @@ def expected_file(case: Case, piece: str) -> Path:
 
 def result_tables(check_file: Path, folder: Path) -> tuple[str, str]:
     """The windows and alerts of one run over the fixture lake, as CSV text."""
-    project = load_project(_project(check_file, folder))
+    project = load_project(case_project(check_file, folder))
     run(project)
     con = duckdb.connect(str(project.warehouse), read_only=True)
     try:
@@ -144,8 +145,8 @@ def result_tables(check_file: Path, folder: Path) -> tuple[str, str]:
     return windows.to_csv(index=False), alerts.to_csv(index=False)
 
 
-def diff(expected: str, actual: str, path: Path) -> str:
+def diff(expected: str, actual: str, path: Path, now: str = "what the code gives now") -> str:
     """A unified diff from the committed file to what the code gives now, for a failing test."""
     lines = difflib.unified_diff(expected.splitlines(keepends=True), actual.splitlines(keepends=True),
-                                 f"{path} (committed)", "compiled now")
+                                 f"{path} (committed)", now)
     return "".join(lines) or "(they differ only in line endings)"

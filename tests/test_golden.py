@@ -29,12 +29,16 @@ def test_each_stage_compiles_to_its_golden_file(case: str, piece: str) -> None:
 @pytest.mark.parametrize("case", CASES)
 def test_a_case_folder_holds_only_the_stages_where_it_differs(case: str) -> None:
     # so a reviewer reads each stage once, where a case changes it
-    pieces = {CASES[case].like or case: golden_cases.compiled(CASES[case].like or case), case: golden_cases.compiled(case)}
+    parent = CASES[case].like or case
+    pieces = {parent: golden_cases.compiled(parent), case: golden_cases.compiled(case)}
     held = sorted(p.stem for p in CASES[case].folder.glob("*.sql"))
     assert held == sorted(golden_cases.pinned(CASES[case], pieces))
     expected = {"check.yml", "windows.csv", "alerts.csv", *(f"{p}.sql" for p in held)} | (
         {"spark"} if CASES[case].spark else set())
     assert {p.name for p in CASES[case].folder.iterdir()} == expected
+    if CASES[case].spark:
+        assert sorted(p.name for p in (CASES[case].folder / "spark").iterdir()) == sorted(
+            f"{s}.sql" for s in CASES[case].spark)
 
 
 @pytest.mark.parametrize("case", CASES)

@@ -6,8 +6,9 @@ its results or its Spark translation.
 For each case of ``cases.yml`` (a folder here): ``<piece>.sql`` for each piece of what ``plimsoll
 sql`` prints (``header`` and the stages) where the case differs from the case it is ``like`` (the
 others are removed, so nothing is repeated), ``spark/<stage>.sql`` for the stages it lists under
-``spark``, and ``windows.csv`` and ``alerts.csv`` from one run over ``tests/fixtures/lake``. Read
-the diff before committing it: the golden files are the review of a change to the SQL.
+``spark``, and ``windows.csv`` and ``alerts.csv`` from one run over ``tests/fixtures/lake``; then
+the Spark side of each pair in ``tests/spark_translation/``. Read the diff before committing it:
+the golden files are the review of a change to the SQL.
 """
 
 from __future__ import annotations
@@ -20,6 +21,7 @@ HERE = Path(__file__).parent
 sys.path.insert(0, str(HERE.parent))
 
 import golden_cases  # noqa: E402
+import spark_pairs  # noqa: E402
 
 
 def _write(path: Path, text: str) -> None:
@@ -57,6 +59,9 @@ def main() -> None:
             windows, alerts = golden_cases.result_tables(case.check_file, Path(tmp))
         _write(case.folder / "windows.csv", windows)
         _write(case.folder / "alerts.csv", alerts)
+    print("spark translation pairs")
+    for pair_file in spark_pairs.pair_files():
+        _write(pair_file, spark_pairs.regenerated(pair_file))
 
 
 if __name__ == "__main__":
