@@ -1,8 +1,16 @@
 """An independent, loop-by-loop implementation of Plimsoll's window, baseline and lifecycle rules.
 
-Written from the semantics (not from the SQL templates) so property tests can compare the two. It
-works on plain Python rows and is slow on purpose: every rule is one readable loop. It covers a
-single run that reads all the data at once, so the watermark is the largest event time read.
+Written from the semantics (README's "How a check decides" and the baseline formulas; not from the
+SQL templates) so property tests can compare the two. It is plain Python over rows as dicts, with
+numpy for one thing only, the linear-interpolation quantile; it uses no pandas and no SQL. It is slow
+on purpose: every rule is one readable loop. It covers a single run that reads all the data at once,
+so the watermark is the largest event time read.
+
+Baseline methods: ``rolling_percentile`` (factor × quantile of earlier values, with a floor),
+``p_chart`` (p̄ pooled over earlier windows ± sigmas standard errors at this window's n; NIST/SEMATECH
+e-Handbook §6.3.3.2), ``ewma`` (the statistic z = λ·value + (1−λ)·z of the previous window, against
+target ± sigmas·s·√(λ/(2−λ)), target and s given or the mean and sample standard deviation of
+earlier windows; §6.3.2.4), and for rates the Wilson (1927) score bound as a ``confidence`` gate.
 
 Expressions are given as Python callables over a row dict that return ``None`` for SQL NULL.
 """
@@ -12,6 +20,7 @@ from __future__ import annotations
 import hashlib
 import json
 import math
+import statistics
 from collections.abc import Callable
 from dataclasses import dataclass, field
 from datetime import datetime, timedelta
@@ -44,11 +53,17 @@ class OracleCheck:
     max_wait: timedelta | None = None
     every: timedelta | None = None             # time window
     lateness: timedelta = timedelta(0)
-    base_q: float = 0.9
+    method: str = "rolling_percentile"         # rolling_percentile | p_chart | ewma
+    base_q: float = 0.9                        # rolling_percentile: the quantile of earlier values
     history: int = 10
     min_history: int = 3
     factor: float = 1.0
     floor: float | None = None
+    sigmas: float = 3.0                        # p_chart, ewma
+    lam: float | None = None                   # ewma: λ
+    target: float | None = None                # ewma: the known mean, else from history
+    sigma: float | None = None                 # ewma: the known standard deviation, else from history
+    confidence: float | None = None            # rate: the Wilson bound's two-sided confidence
     min_sessions: int = 1
     min_bad: int = 0
     recover_after: int = 2
@@ -262,38 +277,109 @@ def measure_rows(check: OracleCheck, windows: list[KeyWindow]) -> list[tuple[str
 # baseline and breach (sequential)
 
 
-def judge(check: OracleCheck, series: list[Row], prior: int = 0) -> bool:
-    """Fill baseline/threshold/breach in place for one series in seq order; True if ambiguous.
+@dataclass(frozen=True)
+class Earlier:
+    """One earlier window that did not breach and had a value: history for the windows after it."""
 
-    ``prior``: quiet windows before the series' first one, each eligible history at value 0 (a split
-    value first seen in its key's n-th window has n-1).
+    value: float
+    sessions: int
+    bad: int | None
+
+
+def limits(check: OracleCheck, hist: list[Earlier], sessions: int) -> tuple[float | None, float | None, bool]:
+    """(baseline, threshold, exact) of a window from its history; ``exact`` when no rounding went
+    into the threshold, so a value equal to it is equal in any correct implementation."""
+    up = check.direction == "up"
+    if check.method == "rolling_percentile":
+        baseline, exact = quantile([h.value for h in hist], check.base_q)
+        if len(hist) < check.min_history:
+            return baseline, None, exact
+        threshold = check.factor * baseline
+        if check.floor is not None:
+            threshold = max(check.floor, threshold) if up else min(check.floor, threshold)
+        return baseline, threshold, exact
+    if check.method == "p_chart":
+        # p̄ pools the earlier windows' counts (Σ bad ÷ Σ sessions), not their rates
+        pooled = sum(h.bad for h in hist) / sum(h.sessions for h in hist) if hist else None
+        if len(hist) < check.min_history:
+            return pooled, None, True
+        spread = check.sigmas * math.sqrt(pooled * (1 - pooled) / sessions)
+        if up:
+            return pooled, pooled + spread, spread == 0
+        # a lower limit clipped to 0 well below it is exactly 0 however it was rounded
+        return pooled, max(0.0, pooled - spread), spread == 0 or pooled - spread < -1e-9 * spread
+    if check.method == "ewma":
+        values = [h.value for h in hist]
+        target = check.target if check.target is not None else (statistics.fmean(values) if values else None)
+        s = check.sigma if check.sigma is not None else (statistics.stdev(values) if len(values) > 1 else None)
+        if len(hist) < check.min_history or target is None or s is None:
+            return target, None, False
+        width = check.sigmas * s * math.sqrt(check.lam / (2 - check.lam))
+        # a limit of exactly 0 from a target and spread of 0 went through no rounding
+        return target, (target + width if up else target - width), width == 0 and target == 0
+    raise ValueError(check.method)
+
+
+def wilson(bad: int, n: int, confidence: float, end: str) -> float:
+    """Wilson (1927) score interval's lower or upper end for bad of n at a two-sided confidence."""
+    z = statistics.NormalDist().inv_cdf(1 - (1 - confidence) / 2)
+    p = bad / n
+    centre = p + z * z / (2 * n)
+    half = z * math.sqrt(p * (1 - p) / n + z * z / (4 * n * n))
+    scale = 1 + z * z / n
+    return max(0.0, (centre - half) / scale) if end == "lower" else min(1.0, (centre + half) / scale)
+
+
+def _near(a: float, b: float, rel: float = 1e-9) -> bool:
+    return abs(a - b) <= rel * max(abs(a), abs(b), 1e-300)
+
+
+def judge(check: OracleCheck, series: list[Row], prior: list[int] | tuple[int, ...] = ()) -> bool:
+    """Fill statistic/baseline/threshold/breach in place for one series in seq order; True if
+    ambiguous (a verdict on a tie that rounding could decide either way).
+
+    ``prior``: the sessions of the quiet windows before the series' first one, each eligible
+    history at value 0 with no bad session (a split value first seen in its key's n-th window has
+    the n-1 windows of its key before it).
     """
     ambiguous = False
-    eligible: list[float] = [0.0] * prior
+    eligible = [Earlier(0.0, n, 0) for n in prior]
+    up = check.direction == "up"
+    z = check.target if check.method == "ewma" else None   # the EWMA of the previous window
+    zeros = not z                                           # only zeros went into z: it is exact
     for w in series:
-        hist = eligible[-check.history:]
-        baseline, exact = quantile(hist, check.base_q)
-        w["history_windows"] = len(hist)
-        w["baseline"] = baseline
-        if len(hist) < check.min_history:
-            threshold = None
-        else:
-            threshold = check.factor * baseline
-            if check.floor is not None:
-                threshold = max(check.floor, threshold) if check.direction == "up" else min(check.floor, threshold)
-        w["threshold"] = threshold
         value = w["value"]
+        if check.method == "ewma":
+            # a window without a value keeps the statistic; a series without a target starts at its
+            # first value
+            if value is not None:
+                previous = value if z is None else z
+                z = check.lam * value + (1 - check.lam) * previous
+                zeros = zeros and value == 0
+            w["statistic"] = z
+        else:
+            w["statistic"] = None
+        hist = eligible[-check.history:]
+        w["history_windows"] = len(hist)
+        w["baseline"], threshold, exact = limits(check, hist, w["sessions"])
+        w["threshold"] = threshold
+        judged = w["statistic"] if check.method == "ewma" else value
         crosses = False
-        if threshold is not None and value is not None:
-            crosses = value > threshold if check.direction == "up" else value < threshold
-            scale = max(abs(value), abs(threshold), 1e-300)
-            if abs(value - threshold) <= 1e-9 * scale and not (exact and w["exact"]):
+        if threshold is not None and value is not None and judged is not None:
+            crosses = judged > threshold if up else judged < threshold
+            if _near(judged, threshold) and not (exact and w["exact"] and (check.method != "ewma" or zeros)):
                 ambiguous = True
         guarded = w["sessions"] >= check.min_sessions and (
             check.kind != "rate" or w["bad"] >= check.min_bad)
-        w["breach"] = bool(crosses and guarded)
+        gate = True
+        if check.confidence is not None and crosses and guarded:
+            bound = wilson(w["bad"], w["sessions"], check.confidence, "lower" if up else "upper")
+            gate = bound > threshold if up else bound < threshold
+            if _near(bound, threshold, 1e-8):
+                ambiguous = True
+        w["breach"] = bool(crosses and guarded and gate)
         if not w["breach"] and value is not None:
-            eligible.append(value)
+            eligible.append(Earlier(value, w["sessions"], w["bad"]))
     return ambiguous
 
 
@@ -392,8 +478,8 @@ def run_check(check: OracleCheck, rows: list[Row], session_id: str = "session_id
         for split, row in measure_rows(check, kws):
             series.setdefault(split, []).append({"key_text": text, "split_value": split, **row})
         for split, rows_of in series.items():
-            prior = rows_of[0]["key_window"] - 1 if check.split is not None else 0
-            result.ambiguous |= judge(check, rows_of, prior)
+            first = rows_of[0]["key_window"] if check.split is not None else 1
+            result.ambiguous |= judge(check, rows_of, [len(kw.rows) for kw in kws[:first - 1]])
             ident = {"key_text": text, "split_value": split, "_by": check.by, "_values": values}
             alerts, events = lifecycle(check, rows_of, w, ident)
             result.alerts += alerts

@@ -9,6 +9,7 @@ what the oracle computes from the same rows.
 from __future__ import annotations
 
 
+import math
 import os
 import tempfile
 from dataclasses import dataclass, replace
@@ -459,6 +460,78 @@ def test_oracle_baseline_and_guard_by_hand() -> None:
     oracle.judge(replace(check, direction="down", factor=0.5, floor=0.1), series)
     assert [w["threshold"] for w in series] == [None, None, 0.09375, 0.1, 0.1]
     assert not any(w["breach"] for w in series)
+
+
+def test_oracle_p_chart_nist_wafer_example() -> None:
+    # NIST/SEMATECH e-Handbook §6.3.3.2: 30 wafers of 50 chips, 347 defective in all (the fractions
+    # as tests/test_statistics.py transcribes them): p̄ = 0.231333, UCL = 0.410239; the LCL computed
+    # by hand, 347/1500 − 3·√(p̄(1−p̄)/50) = 0.0524275 (the handbook's .0524, from memory).
+    from test_statistics import WAFER_FRACTIONS
+
+    hist = [oracle.Earlier(f, 50, round(f * 50)) for f in WAFER_FRACTIONS]
+    check = _check(method="p_chart", sigmas=3.0, history=30, min_history=30)
+    baseline, ucl, _ = oracle.limits(check, hist, 50)
+    assert baseline == pytest.approx(0.231333, abs=5e-7) and ucl == pytest.approx(0.410239, abs=5e-7)
+    _, lcl, _ = oracle.limits(replace(check, direction="down"), hist, 50)
+    assert lcl == pytest.approx(0.0524275, abs=5e-8)
+    # p̄ pools counts: 1 of 10 and 9 of 90 is 0.1, as is their mean; 1 of 10 and 0 of 90 is 0.01, not 0.05
+    assert oracle.limits(check, [oracle.Earlier(0.1, 10, 1), oracle.Earlier(0.0, 90, 0)], 50)[0] == 0.01
+    assert oracle.limits(check, hist[:29], 50)[1] is None
+
+
+def test_oracle_ewma_nist_example() -> None:
+    # NIST/SEMATECH e-Handbook §6.3.2.4 (as tests/test_statistics.py transcribes it): target 50,
+    # s = 2.0539, λ = 0.3, 3 sigmas; the EWMA to two decimals, UCL 52.5884 and LCL 47.4115 (to 1e-3).
+    from test_statistics import EWMA_DATA, EWMA_VALUES
+
+    check = _check(kind="ratio", method="ewma", lam=0.3, sigmas=3.0, target=50.0, sigma=2.0539,
+                   history=30, min_history=1)
+    series = [{"value": x, "sessions": 1, "bad": None, "exact": True} for x in EWMA_DATA]
+    oracle.judge(check, series)
+    assert [round(w["statistic"], 2) for w in series] == pytest.approx(EWMA_VALUES, abs=0.006)
+    assert series[0]["threshold"] is None and all(w["threshold"] == pytest.approx(52.5884, abs=1e-3)
+                                                  for w in series[1:])
+    assert not any(w["breach"] for w in series)
+    oracle.judge(replace(check, direction="down"), series)
+    assert all(w["threshold"] == pytest.approx(47.4115, abs=1e-3) for w in series[1:])
+    # without a target the series starts at its first value, and the limits come from history
+    oracle.judge(replace(check, target=None, sigma=None, min_history=2), series)
+    assert series[0]["statistic"] == 52.0
+    assert series[2]["baseline"] == 49.5 and series[2]["threshold"] == pytest.approx(
+        49.5 + 3 * 3.5355339 * math.sqrt(0.3 / 1.7), abs=1e-6)       # s of 52 and 47 = 3.5355339
+
+
+def test_oracle_ewma_breaches_on_its_statistic() -> None:
+    check = _check(kind="ratio", method="ewma", lam=0.5, sigmas=1.0, target=0.0, sigma=1.0, min_history=1)
+    series = [{"value": v, "sessions": 1, "bad": None, "exact": True} for v in (0.0, 4.0, 0.0, None, 0.0)]
+    oracle.judge(check, series)
+    # limit 0 + 1 · 1 · √(0.5/1.5) = 0.57735; z = 0, 2, 1, 1 (no value: kept), 0.5
+    assert [w["statistic"] for w in series] == [0.0, 2.0, 1.0, 1.0, 0.5]
+    assert [w["breach"] for w in series] == [False, True, True, False, False]   # no value: no verdict
+
+
+# Wilson (1927) score interval, as tests/test_statistics.py takes it from Newcombe (1998) Table I
+# and statsmodels.
+@pytest.mark.parametrize("x,n,confidence,lower,upper", [
+    (81, 263, 0.95, 0.2553, 0.3662), (15, 148, 0.95, 0.0624, 0.1605), (0, 20, 0.95, 0.0, 0.1611),
+    (8, 10, 0.95, 0.490162, 0.943318), (10, 10, 0.95, 0.722467, 1.0), (12, 30, 0.99, 0.208841, 0.627381)])
+def test_oracle_wilson_bounds(x: int, n: int, confidence: float, lower: float, upper: float) -> None:
+    places = 4 if lower in (0.2553, 0.0624, 0.0) else 6
+    assert oracle.wilson(x, n, confidence, "lower") == pytest.approx(lower, abs=0.5 * 10 ** -places)
+    assert oracle.wilson(x, n, confidence, "upper") == pytest.approx(upper, abs=0.5 * 10 ** -places)
+
+
+def test_oracle_confidence_gate_by_hand() -> None:
+    # 3 of 40 (7.5 %) clears a 5 % threshold, but its lower Wilson bound at 95 % (2.6 %) does not;
+    # 40 of 400 (10 %, bound 7.4 %) does.
+    check = _check(history=3, min_history=3, base_q=0.5, floor=0.05, confidence=0.95)
+    for n, bad, breach in ((40, 3, False), (400, 40, True)):
+        series = [{"value": 0.0, "sessions": n, "bad": 0, "exact": True} for _ in range(3)]
+        series.append({"value": bad / n, "sessions": n, "bad": bad, "exact": True})
+        oracle.judge(check, series)
+        assert [w["breach"] for w in series] == [False, False, False, breach]
+        oracle.judge(replace(check, confidence=None), series)
+        assert series[-1]["breach"] is True
 
 
 def test_oracle_quantile_is_quantile_cont() -> None:
