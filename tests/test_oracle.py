@@ -154,8 +154,55 @@ class Case:
         return self.check.name
 
 
+# ewma's known target and spread, per measure kind (the quantile's in ms and in seconds)
+TARGETS = {"rate": (0.1, 0.3), "ratio": (0.02, 0.1), "quantile": (1.5, 1500.0)}
+SIGMAS = {"rate": (0.05, 0.2), "ratio": (0.01, 0.05), "quantile": (0.8, 800.0)}
+
+
 @st.composite
-def cases(draw, kind: str, window: str, split: bool | None = None, name: str = "probe") -> Case:
+def baselines(draw, kind: str, direction: str, method: str | None = None,
+              confidence: bool | None = None) -> tuple[dict[str, Any], dict[str, Any]]:
+    """A baseline section of a check file and the oracle's fields for it."""
+    methods = ["rolling_percentile", "p_chart", "ewma"] if kind == "rate" else ["rolling_percentile", "ewma"]
+    method = draw(st.sampled_from(methods)) if method is None else method
+    # an EWMA whose spread comes from history needs two earlier windows for a standard deviation
+    history = draw(st.integers(2 if method == "ewma" else 1, 5))
+    min_history = draw(st.integers(1, history))
+    spec: dict[str, Any] = {"method": method, "history": history, "min_history": min_history}
+    fields: dict[str, Any] = {"method": method, "history": history, "min_history": min_history}
+    if method == "rolling_percentile":
+        factor = draw(st.sampled_from([1.0, 1.25, 1.5] if direction == "up" else [1.0, 0.8, 0.5]))
+        base_q = draw(st.sampled_from([0.5, 0.75, 0.9]))
+        floor = draw(st.one_of(st.none(), st.sampled_from(FLOORS[kind])))
+        spec.update(q=base_q, factor=factor)
+        fields.update(base_q=base_q, factor=factor, floor=floor)
+        if floor is not None:
+            spec["floor"] = floor
+    else:
+        # a p-chart limit on small windows meets a window's rate exactly for whole sigmas more often
+        # (1 of 2 against p̄ = 0.5 at 1 sigma): rounding would decide those, so the oracle skips them
+        sigmas = draw(st.sampled_from([1.5, 2.5, 3.0] if method == "p_chart" else [0.5, 1.0, 2.0, 3.0]))
+        spec["sigmas"] = fields["sigmas"] = sigmas
+    if method == "ewma":
+        lam = draw(st.sampled_from([0.2, 0.4, 0.7]))
+        spec["lambda"] = fields["lam"] = lam
+        for key, known in (("target", TARGETS[kind]), ("sigma", SIGMAS[kind])):
+            value = draw(st.one_of(st.none(), st.sampled_from(known)))
+            if value is not None:
+                spec[key] = fields[key] = value
+    elif kind == "rate":
+        use = draw(st.booleans()) if confidence is None else confidence
+        if use:
+            level = draw(st.sampled_from([0.8, 0.95, 0.99]))
+            spec["confidence"] = fields["confidence"] = level
+    return spec, fields
+
+
+@st.composite
+def cases(draw, kind: str, window: str, split: bool | None = None, name: str = "probe",
+          method: str | None = None, confidence: bool | None = None, sessions: tuple[int, int] = (1, 6)) -> Case:
+    """A check of ``kind`` and ``window`` (count windows of ``sessions`` sessions at most and
+    least), its other keys drawn; ``method`` and ``confidence`` fix its baseline's."""
     by = draw(st.sampled_from([(), ("site",), ("site", "tier"), ("tier",)]))
     direction = draw(st.sampled_from(["up", "down"]))
     measure: dict[str, Any] = {"kind": kind}
@@ -176,7 +223,7 @@ def cases(draw, kind: str, window: str, split: bool | None = None, name: str = "
         measure.update(of=of.text, q=q)
         fields.update(of=of.py, q=q)
     if window == "count":
-        n = draw(st.integers(1, 6))
+        n = draw(st.integers(*sessions))
         wait = draw(st.sampled_from(["10m", "30m", "1h", "3h"]))
         win: dict[str, Any] = {"sessions": n, "max_wait": wait}
         fields.update(sessions=n, max_wait=parse_duration(wait))
@@ -185,18 +232,12 @@ def cases(draw, kind: str, window: str, split: bool | None = None, name: str = "
         late = draw(st.sampled_from(["0s", "10m", "45m"]))
         win = {"every": every, "lateness": late}
         fields.update(every=parse_duration(every), lateness=parse_duration(late))
-    history = draw(st.integers(1, 5))
-    min_history = draw(st.integers(1, history))
-    factor = draw(st.sampled_from([1.0, 1.25, 1.5] if direction == "up" else [1.0, 0.8, 0.5]))
-    base_q = draw(st.sampled_from([0.5, 0.75, 0.9]))
-    floor = draw(st.one_of(st.none(), st.sampled_from(FLOORS[kind])))
-    baseline = {"method": "rolling_percentile", "q": base_q, "history": history,
-                "min_history": min_history, "factor": factor}
-    if floor is not None:
-        baseline["floor"] = floor
+    baseline, baseline_fields = draw(baselines(kind, direction, method, confidence))
+    fields.update(baseline_fields)
     guard = {"min_sessions": draw(st.integers(0, 4))}
     if kind == "rate":
-        guard["min_bad"] = draw(st.integers(0, 2))
+        # an EWMA breaches on windows after the bad ones too, which a high min_bad would mostly block
+        guard["min_bad"] = draw(st.integers(0, 1 if baseline["method"] == "ewma" else 2))
     recover = draw(st.integers(1, 3))
     expire = draw(st.sampled_from(["20m", "1h", "3h", "1d"]))
     where = draw(st.sampled_from(WHERE))
@@ -207,8 +248,7 @@ def cases(draw, kind: str, window: str, split: bool | None = None, name: str = "
     if where is not None:
         spec["where"] = where.text
     check = oracle.OracleCheck(
-        name=name, by=by, direction=direction, base_q=base_q, history=history,
-        min_history=min_history, factor=factor, floor=floor, min_sessions=guard["min_sessions"],
+        name=name, by=by, direction=direction, min_sessions=guard["min_sessions"],
         min_bad=guard.get("min_bad", 0), recover_after=recover, expire_after=parse_duration(expire),
         where=where.py if where else None, exclude=exclude.py if exclude else None, severity="high",
         **fields)
@@ -244,7 +284,7 @@ def write_files(folder: Path, rows: list[dict[str, Any]]) -> None:
 
 
 WINDOW_FIELDS = ("key_text", "split_value", "seq", "window_start", "window_end", "sessions", "bad",
-                 "value", "baseline", "history_windows", "threshold", "breach")
+                 "value", "statistic", "baseline", "history_windows", "threshold", "breach")
 ALERT_FIELDS = ("alert_id", "fingerprint", "severity", "key_text", "split_value", "status",
                 "close_reason", "opened_at", "last_breach_at", "closed_at", "breach_windows",
                 "affected_sessions", "peak_value", "threshold", "healthy_streak")
@@ -358,8 +398,17 @@ def check_against_oracle(cases_: list[Case], rows: list[dict]) -> None:
     results = {c.name: oracle.run_check(c.check, rows) for c in cases_}
     assume(not any(r.ambiguous for r in results.values()))
     assume(any(r.windows for r in results.values()))
-    for r in results.values():
+    for case, r in zip(cases_, results.values()):
         event(f"breaches: {'some' if any(w['breach'] for w in r.windows) else 'none'}")
+        if case.check.confidence is not None:
+            ungated = oracle.run_check(replace(case.check, confidence=None), rows)
+            held = sum(a["breach"] and not b["breach"] for a, b in zip(ungated.windows, r.windows))
+            event(f"windows the confidence gate held back: {'some' if held else 'none'}")
+        if case.check.method == "ewma":
+            up = case.check.direction == "up"
+            alone = [w for w in r.windows if w["breach"] and (w["value"] <= w["threshold"] if up
+                                                             else w["value"] >= w["threshold"])]
+            event(f"breaches the window's own value would not make: {'some' if alone else 'none'}")
         event(f"alerts closed: {sorted({a['close_reason'] for a in r.alerts if a['close_reason']})}")
         event(f"alerts open: {'some' if any(a['status'] == 'open' for a in r.alerts) else 'none'}")
     actual = run_plimsoll(cases_, rows)
@@ -371,10 +420,10 @@ def check_against_oracle(cases_: list[Case], rows: list[dict]) -> None:
             pytest.fail(report(problems, case, rows))
 
 
-def burst_rows(data: st.DataObject, case: Case) -> list[dict]:
+def burst_rows(data: st.DataObject, case: Case, max_rows: int = 90) -> list[dict]:
     """Rows whose burst mostly goes the way the check looks (up: hot burst, down: a cool dip)."""
     polarity = data.draw(st.sampled_from([True, True, True, False]))
-    return data.draw(tables(hot_burst=(case.check.direction == "up") == polarity))
+    return data.draw(tables(hot_burst=(case.check.direction == "up") == polarity, max_rows=max_rows))
 
 
 # ----------------------------------------------------------------------------------------------
@@ -566,29 +615,58 @@ def test_oracle_lifecycle_by_hand() -> None:
 @SETTINGS
 @given(data=st.data())
 def test_count_windows_rate(data: st.DataObject) -> None:
-    case = data.draw(cases("rate", "count", split=False))
+    case = data.draw(cases("rate", "count", split=False, method="rolling_percentile", confidence=False))
     check_against_oracle([case], burst_rows(data, case))
 
 
 @SETTINGS
 @given(data=st.data())
 def test_count_windows_split_rate(data: st.DataObject) -> None:
-    case = data.draw(cases("rate", "count", split=True))
+    case = data.draw(cases("rate", "count", split=True, method="rolling_percentile", confidence=False))
     check_against_oracle([case], burst_rows(data, case))
 
 
 @SETTINGS
 @given(data=st.data())
 def test_time_windows_quantile(data: st.DataObject) -> None:
-    case = data.draw(cases("quantile", "time"))
+    case = data.draw(cases("quantile", "time", method="rolling_percentile", confidence=False))
     check_against_oracle([case], burst_rows(data, case))
 
 
 @SETTINGS
 @given(data=st.data())
 def test_time_windows_ratio(data: st.DataObject) -> None:
-    case = data.draw(cases("ratio", "time"))
+    case = data.draw(cases("ratio", "time", method="rolling_percentile", confidence=False))
     check_against_oracle([case], burst_rows(data, case))
+
+
+@SETTINGS
+@given(data=st.data())
+def test_p_chart(data: st.DataObject) -> None:
+    # windows of a few sessions have limits too wide to cross: more sessions, larger windows
+    window = data.draw(st.sampled_from(["count", "time"]))
+    case = data.draw(cases("rate", window, method="p_chart", confidence=False, sessions=(4, 12)))
+    check_against_oracle([case], burst_rows(data, case, max_rows=160))
+
+
+@SETTINGS
+@given(data=st.data())
+def test_ewma(data: st.DataObject) -> None:
+    kind = data.draw(st.sampled_from(["rate", "ratio", "quantile"]))
+    window = data.draw(st.sampled_from(["count", "time"]))
+    case = data.draw(cases(kind, window, method="ewma"))
+    check_against_oracle([case], burst_rows(data, case))
+
+
+# the gate decides a verdict in about one example of six (a window over its threshold whose Wilson
+# bound is not): twice the examples
+@settings(SETTINGS, max_examples=2 * EXAMPLES)
+@given(data=st.data())
+def test_confidence_gate(data: st.DataObject) -> None:
+    window = data.draw(st.sampled_from(["count", "time"]))
+    method = data.draw(st.sampled_from(["rolling_percentile", "p_chart"]))
+    case = data.draw(cases("rate", window, method=method, confidence=True, sessions=(4, 12)))
+    check_against_oracle([case], burst_rows(data, case, max_rows=160))
 
 
 @SETTINGS
@@ -632,20 +710,26 @@ def steady_rows(files: int = 3) -> list[dict]:
 
 def _multi_case(name: str, by: list[str], measure: dict, window: dict, guard: dict, fields: dict,
                 where: Sql | None = None, direction: str = "up", floor: float | None = None,
-                factor: float = 1.3) -> Case:
-    baseline = {"method": "rolling_percentile", "q": 0.9, "history": 4, "min_history": 2, "factor": factor}
-    if floor is not None:
-        baseline["floor"] = floor
+                factor: float = 1.3, baseline: dict | None = None) -> Case:
+    """A check of the multi-run test; ``baseline`` (YAML keys) replaces the rolling percentile."""
+    if baseline is None:
+        baseline = {"method": "rolling_percentile", "q": 0.9, "history": 4, "min_history": 2, "factor": factor}
+        if floor is not None:
+            baseline["floor"] = floor
+        method = {"base_q": 0.9, "factor": factor, "floor": floor}
+    else:
+        names = {"lambda": "lam", "q": "base_q"}
+        method = {names.get(k, k): v for k, v in baseline.items()}
     spec = {"check": name, "source": "sessions", "by": by, "measure": measure, "direction": direction,
-            "window": window, "baseline": baseline, "guard": guard,
+            "window": window, "baseline": {"history": 4, "min_history": 2, **baseline}, "guard": guard,
             "lifecycle": {"recover_after": 2, "expire_after": "1h"}, "severity": "high"}
     if where is not None:
         spec["where"] = where.text
     check = oracle.OracleCheck(
-        name=name, by=tuple(by), direction=direction, base_q=0.9, history=4, min_history=2,
-        factor=factor, floor=floor, min_sessions=guard.get("min_sessions", 1), min_bad=guard.get("min_bad", 0),
+        name=name, by=tuple(by), direction=direction, history=4, min_history=2,
+        min_sessions=guard.get("min_sessions", 1), min_bad=guard.get("min_bad", 0),
         recover_after=2, expire_after=timedelta(hours=1), where=where.py if where else None,
-        exclude=EXCLUDE[1].py, severity="high", **fields)
+        exclude=EXCLUDE[1].py, severity="high", **method, **fields)
     return Case(spec, check, EXCLUDE[1].text)
 
 
@@ -675,6 +759,28 @@ def multi_run_cases() -> list[Case]:
             {"every": "30m", "lateness": "10m"}, {"min_sessions": 5},
             {"kind": "ratio", "numerator": NUMERATOR.py, "denominator": DENOMINATOR.py,
              "every": timedelta(minutes=30), "lateness": timedelta(minutes=10)}, floor=0.02),
+        _multi_case(
+            "count_p_chart_split", ["site"], {"kind": "rate", "bad": BAD[0].text, "split": "error_code"},
+            {"sessions": 6, "max_wait": "40m"}, {"min_sessions": 3, "min_bad": 1},
+            {"kind": "rate", "bad": BAD[0].py, "split": "error_code", "sessions": 6,
+             "max_wait": timedelta(minutes=40)}, baseline={"method": "p_chart", "sigmas": 2.0}),
+        _multi_case(
+            "time_p_chart_confidence", ["site"], {"kind": "rate", "bad": BAD[0].text},
+            {"every": "1h"}, {"min_sessions": 3},
+            {"kind": "rate", "bad": BAD[0].py, "every": timedelta(hours=1)},
+            baseline={"method": "p_chart", "sigmas": 0.5, "confidence": 0.8}),   # the gate holds back 3 of 4
+        # the statistic carried from run to run: the runs must continue each series' EWMA
+        _multi_case(
+            "count_ewma", ["site"], {"kind": "rate", "bad": BAD[0].text},
+            {"sessions": 6, "max_wait": "40m"}, {"min_sessions": 3},
+            {"kind": "rate", "bad": BAD[0].py, "sessions": 6, "max_wait": timedelta(minutes=40)},
+            baseline={"method": "ewma", "lambda": 0.3, "sigmas": 2.0}),
+        _multi_case(
+            "time_ewma_known_down", ["site"], {"kind": "quantile", "of": QUANTILE_OF[0].text, "q": 0.5},
+            {"every": "30m"}, {},
+            {"kind": "quantile", "of": QUANTILE_OF[0].py, "q": 0.5, "every": timedelta(minutes=30)},
+            direction="down", baseline={"method": "ewma", "lambda": 0.5, "sigmas": 1.0, "target": 1250.0,
+                                        "sigma": 300.0}),
     ]
 
 
