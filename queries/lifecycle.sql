@@ -2,7 +2,7 @@
 {% set check_lit = check.name | literal %}
 {% set life = lifecycle %}
 {% set peak = "greatest" if check.direction == "up" else "least" %}
--- ── stage 6 · lifecycle ────────────────────────────────────────────────────────────────────
+-- ── stage 5 · lifecycle ─────────────────────────────────────────────────────────────────────
 -- A breach opens an alert for its series unless one is open; more breaches update it. An open alert
 -- closes as 'recovered' after {{ life.recover_after }} healthy windows in a row, or as 'expired' once the series
 -- has had no window for {{ life.expire_after | interval }} (between two windows, or before the watermark).

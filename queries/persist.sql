@@ -1,5 +1,5 @@
 {% set check_lit = check.name | literal %}
--- ── stage 7 · persist ──────────────────────────────────────────────────────────────────────
+-- ── stage 6 · persist ───────────────────────────────────────────────────────────────────────
 -- Everything below commits in the run's one transaction, with the files read and the run record.
 INSERT INTO windows BY NAME
 SELECT

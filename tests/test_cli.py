@@ -38,7 +38,7 @@ def test_compile_prints_the_stages(project: Path) -> None:
     result = invoke("sql", "startup_p90_by_site", "-p", str(project))
     assert result.exit_code == 0, result.output
     stages = re.findall(r"stage (\d) · (\w+)", result.output)
-    assert [s[1] for s in stages] == ["source", "scan", "window", "measure", "baseline", "breach", "lifecycle", "persist"]
+    assert [s[1] for s in stages] == ["source", "scan", "window", "measure", "verdict", "lifecycle", "persist"]
     assert "quantile_cont(x, 0.9)" in result.output
 
 

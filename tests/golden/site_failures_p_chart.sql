@@ -3,8 +3,9 @@
 -- relative to the source's path), $manifest (names, sizes and times), $run_id, $reader (the
 -- check whose earlier files decide repeats), $read_until (a backlog read in several runs:
 -- the earliest event time left for the next runs, else NULL), $source_checks (the checks of
--- the source), $definition (hash of the SQL up to the breach stage). Statements after
--- '@repeat' run until no breach flag changes.
+-- the source), $definition (hash of the SQL up to the verdict stage). The statements from
+-- '@loop' to '@end' are one round, repeated until its last statement returns 0; named
+-- statements ('@statement NAME') run where the loop names them.
 -- ── stage 0 · source ───────────────────────────────────────────────────────────────────────
 -- Source sessions: the sessions of the files not read before ($files, read from where they are;
 -- $paths, their names relative to the source's path), read once for every check that has read the
@@ -336,14 +337,28 @@ CREATE OR REPLACE TEMP TABLE new_windows AS
 SELECT key, key_text, NULL::VARCHAR AS split_value, seq, key_window, window_start, window_end, sessions, bad, value
 FROM new_key_windows;
 
--- ── stage 4 · baseline ─────────────────────────────────────────────────────────────────────
+-- ── stage 4 · verdict ──────────────────────────────────────────────────────────────────────
+-- Each new window's baseline, threshold and verdict.
+--
+-- Baseline and threshold:
 -- p_chart (NIST/SEMATECH e-Handbook §6.3.3.2, proportions control chart): baseline = p̄ = Σ bad ÷
 -- Σ sessions over the series' last 10 earlier windows that did not breach (at least 3);
 -- the limit widens for small windows, n = this window's sessions:
 --   threshold = p̄ + 2.5 × √(p̄ (1 − p̄) / n)
--- Earlier windows that did not breach can only enter a window's history in order, so the verdicts
--- of a series are found by repeating this stage and the next until no breach flag changes; each
--- round settles at least one more window of every series still changing, all series at once.
+--
+-- Verdict: a window breaches when it has a threshold, its value is above it, and it passes the guard
+-- (at least 30 sessions and 3 bad); every other window with a threshold and a value is
+-- healthy. A window without a value (a zero denominator, no session with a value) gives no verdict.
+-- confidence 0.9: it also needs the lower end of its Wilson score interval (Wilson 1927)
+-- at that two-sided confidence (z = 1.644853627) beyond the threshold, so a small noisy window cannot:
+--   bound = (p̂ + z²/2n − z·√(p̂(1−p̂)/n + z²/4n²)) / (1 + z²/n),  p̂ = bad / sessions
+--
+-- A window's history is the earlier windows of its series that did not breach, so verdicts depend on
+-- the verdicts before them: the statements between '@loop' and '@end' are one round, repeated until
+-- no breach flag changes. A round recomputes only the series still changing, all of them at once.
+
+-- history: the series' earlier windows in the warehouse that did not breach (and, for a split value
+-- seen late, its key's quiet windows before it), the last 10 of each series.
 CREATE OR REPLACE TEMP TABLE history AS
 WITH earlier AS (
     SELECT w.key, w.split_value, w.seq, w.key_window, w.value, w.sessions, w.bad, w.breach
@@ -358,6 +373,8 @@ FROM (
 )
 QUALIFY row_number() OVER (PARTITION BY key, split_value ORDER BY seq DESC) <= 10;
 
+-- judged: the new windows with their verdicts so far; `changed` marks those whose breach flag
+-- changed in the last round (at first, all of them).
 CREATE OR REPLACE TEMP TABLE judged AS
 SELECT
     *,
@@ -367,8 +384,19 @@ SELECT
     false AS breach,
     true AS changed
 FROM new_windows;
--- @repeat (with stage 5): until no breach flag changes
-CREATE OR REPLACE TEMP TABLE verdicts AS
+
+-- @statement round_limit
+-- The most rounds the loop may take. The first window of a series whose verdict is not final has
+-- only final windows before it, so each round settles at least one more window of every series:
+-- a series of n new windows settles within n rounds, and one more round finds nothing changing.
+-- Beyond that the verdicts cannot settle, and the run stops with an error rather than loop on.
+SELECT coalesce(max(windows), 0) + 1 AS round_limit
+FROM (SELECT count(*) AS windows FROM judged GROUP BY key, split_value);
+
+-- @loop until still_changing = 0, at most round_limit rounds
+-- baselines: each window's baseline, from the eligible windows before it as the breach flags stand
+-- now (only the series with a window that changed in the last round).
+CREATE OR REPLACE TEMP TABLE baselines AS
 WITH moving AS (
     SELECT DISTINCT key, split_value FROM judged WHERE changed
 ),
@@ -405,15 +433,8 @@ SELECT key, split_value, seq, baseline, history_windows
 FROM framed
 WHERE is_new;
 
--- ── stage 5 · breach ───────────────────────────────────────────────────────────────────────
--- A window breaches when it has a threshold, its value is above it, and it passes the guard
--- (at least 30 sessions and 3 bad); every other window with a threshold and a value is
--- healthy. A window without a value (a zero denominator, no session with a value) gives no verdict.
--- confidence 0.9: it also needs the lower end of its Wilson score interval (Wilson 1927)
--- at that two-sided confidence (z = 1.644853627) beyond the threshold, so a small noisy window cannot:
---   bound = (p̂ + z²/2n − z·√(p̂(1−p̂)/n + z²/4n²)) / (1 + z²/n),  p̂ = bad / sessions
--- @repeat (with stage 4): until no breach flag changes
-CREATE OR REPLACE TEMP TABLE decided AS
+-- round_verdicts: each recomputed window's threshold and whether it breaches.
+CREATE OR REPLACE TEMP TABLE round_verdicts AS
 SELECT
     *,
     coalesce(
@@ -426,29 +447,33 @@ SELECT
     , false) AS breach
 FROM (
     SELECT
-        j.key, j.split_value, j.seq, j.value, j.sessions, j.bad, v.baseline, v.history_windows,
-        CASE WHEN v.history_windows >= 3 THEN
-v.baseline + 2.5 * sqrt(v.baseline * (1 - v.baseline) / j.sessions)
+        j.key, j.split_value, j.seq, j.value, j.sessions, j.bad, base.baseline, base.history_windows,
+        CASE WHEN base.history_windows >= 3 THEN
+            base.baseline + 2.5 * sqrt(base.baseline * (1 - base.baseline) / j.sessions)
         END AS threshold
     FROM judged AS j
-    JOIN verdicts AS v ON j.key = v.key AND j.split_value IS NOT DISTINCT FROM v.split_value AND j.seq = v.seq
+    JOIN baselines AS base ON j.key = base.key AND j.split_value IS NOT DISTINCT FROM base.split_value AND j.seq = base.seq
 );
 
+-- What the round changed: only the windows whose breach flag differs from the last round's.
 UPDATE judged SET changed = false WHERE changed;
 
 UPDATE judged
 SET
-    baseline = d.baseline,
-    history_windows = d.history_windows,
-    threshold = d.threshold,
-    changed = judged.breach IS DISTINCT FROM d.breach,
-    breach = d.breach
-FROM decided AS d
-WHERE judged.key = d.key AND judged.split_value IS NOT DISTINCT FROM d.split_value AND judged.seq = d.seq;
+    baseline = r.baseline,
+    history_windows = r.history_windows,
+    threshold = r.threshold,
+    changed = judged.breach IS DISTINCT FROM r.breach,
+    breach = r.breach
+FROM round_verdicts AS r
+WHERE judged.key = r.key AND judged.split_value IS NOT DISTINCT FROM r.split_value AND judged.seq = r.seq;
 
+-- @statement still_changing
+-- The end of a round: how many breach flags it changed. The loop stops at 0.
 SELECT count(*) FILTER (WHERE changed) AS still_changing FROM judged;
+-- @end
 
--- ── stage 6 · lifecycle ────────────────────────────────────────────────────────────────────
+-- ── stage 5 · lifecycle ─────────────────────────────────────────────────────────────────────
 -- A breach opens an alert for its series unless one is open; more breaches update it. An open alert
 -- closes as 'recovered' after 2 healthy windows in a row, or as 'expired' once the series
 -- has had no window for INTERVAL 7 DAY (between two windows, or before the watermark).
@@ -663,7 +688,7 @@ SELECT alert_id, $run_id, closed_at, 'closed', close_value, close_threshold, aff
 FROM alert_rows
 WHERE status = 'closed';
 
--- ── stage 7 · persist ──────────────────────────────────────────────────────────────────────
+-- ── stage 6 · persist ───────────────────────────────────────────────────────────────────────
 -- Everything below commits in the run's one transaction, with the files read and the run record.
 INSERT INTO windows BY NAME
 SELECT

@@ -32,7 +32,7 @@ from toolkit.engine import spark as spark_engine
 from toolkit.engine import warehouse
 from toolkit.sql.compiler import CompiledCheck, columns_read
 from toolkit.sql.plans import check_plan, source_plan
-from toolkit.sql.templates import Statement, statement_kind
+from toolkit.sql.templates import Stage, Statement, statement_kind
 from toolkit.model import Check, Project, Source
 from toolkit.problems import DataError, PlimsollError, Problem, ProjectInvalid, WarehouseError, engine_message
 from toolkit.sql.quoting import interval
@@ -201,7 +201,7 @@ def _run(con: duckdb.DuckDBPyConnection, project: Project, run_id: int, checks: 
                                      [c.name for c in readers])
                 source_stage = source_plan(readers)
                 params = _params(project, new_files, run_id, "", readers[0].name, group.read_until, source)
-                _run_stage(con, stages, f"source {source.name}", "source", source_stage.once, params)
+                _run_stage(con, stages, f"source {source.name}", source_stage, params)
                 con.execute("INSERT INTO run_scans SELECT rows_read, rows_invalid, duplicate_rows, "
                             "rows_excluded FROM lake_counts")
                 result.warnings += _impossible_times(con, source)
@@ -293,23 +293,31 @@ def _close(stages: duckdb.DuckDBPyConnection | None) -> None:
 
 
 def _run_stage(con: duckdb.DuckDBPyConnection, stages: duckdb.DuckDBPyConnection | None, who: str,
-               stage: str, statements: tuple[Statement, ...], params: dict[str, Any]) -> None:
-    """One stage's statements that run once; on the stage connection if there is one and the stage
-    is one of its, with the warehouse's writes made in the transaction (from a stream of the stage
-    connection's rows where the write reads them)."""
-    if stages is None or stage not in STAGE_CONNECTION_STAGES:
-        for statement in statements:
-            _execute(con, who, stage, statement, params)
-        return
-    for statement in statements:
+               stage: Stage, params: dict[str, Any]) -> int:
+    """One stage: its statements, and its loop until it settles (returns the rounds it took, else 0).
+
+    On the stage connection if there is one and the stage is one of its, with the warehouse's
+    writes made in the transaction (from a stream of the stage connection's rows where the write
+    reads them)."""
+    if stages is None or stage.name not in STAGE_CONNECTION_STAGES:
+        for statement in stage.once:
+            _execute(con, who, stage.name, statement, params)
+        rounds = _settle(con, who, stage, params) if stage.loop is not None else 0
+        for statement in stage.after:
+            _execute(con, who, stage.name, statement, params)
+        return rounds
+    if stage.loop is not None or stage.after:
+        raise ValueError(f"stage {stage.name}: a loop runs in the run's transaction, not on the stage connection")
+    for statement in stage.once:
         if not _writes_warehouse(statement):
-            _execute(stages, who, stage, statement, params)
+            _execute(stages, who, stage.name, statement, params)
         elif re.search(rf"\b{STREAMED}\b", statement.sql):
-            _execute_streamed(con, stages, who, stage, statement, params)
+            _execute_streamed(con, stages, who, stage.name, statement, params)
         else:
-            _execute(con, who, stage, statement, params)
-    for table in MOVED_AFTER.get(stage, ()):
+            _execute(con, who, stage.name, statement, params)
+    for table in MOVED_AFTER.get(stage.name, ()):
         _move(stages, con, table)
+    return 0
 
 
 def _execute_streamed(con: duckdb.DuckDBPyConnection, stages: duckdb.DuckDBPyConnection, who: str,
@@ -550,13 +558,8 @@ def _run_check(con: duckdb.DuckDBPyConnection, stages: duckdb.DuckDBPyConnection
     if not new:
         return result
     run_id = params["run_id"]
-    loop: list[tuple[str, Statement]] = []
     for stage in sql.stages[1:]:
-        _run_stage(con, stages, f"check {check.name}", stage.name, stage.once, params)
-        loop += [(stage.name, s) for s in stage.repeat]
-        if stage.name == "breach" and loop:
-            result.rounds = _settle(con, check, loop, params)
-            loop = []
+        result.rounds += _run_stage(con, stages, f"check {check.name}", stage, params)
     con.execute("UPDATE run_checks SET rounds = $r WHERE run_id = $run AND check_name = $c",
                 {"r": result.rounds, "run": run_id, "c": check.name})
     row = con.execute(
@@ -566,17 +569,23 @@ def _run_check(con: duckdb.DuckDBPyConnection, stages: duckdb.DuckDBPyConnection
     return result
 
 
-def _settle(con: duckdb.DuckDBPyConnection, check: Check, loop: list[tuple[str, Statement]],
-            params: dict[str, Any]) -> int:
-    """Repeat the verdict statements until no breach flag changes; the last one returns the count."""
-    windows = int(con.execute("SELECT count(*) FROM judged").fetchone()[0])
-    for rounds in range(1, windows + 2):
-        changing = None
-        for stage, statement in loop:
-            changing = _execute(con, f"check {check.name}", stage, statement, params)
-        if not changing or changing[0] == 0:
+def _settle(con: duckdb.DuckDBPyConnection, who: str, stage: Stage, params: dict[str, Any]) -> int:
+    """A stage's loop: rounds until its stop condition returns 0; how many rounds it took.
+
+    More rounds than the loop's limit allows is an error: verdicts that do not settle would
+    otherwise keep the run going for ever."""
+    loop = stage.loop
+    assert loop is not None
+    limit = int(_execute(con, who, stage.name, loop.limit, params)[0])
+    changing = None
+    for rounds in range(1, limit + 1):
+        for statement in loop.rounds:
+            _execute(con, who, stage.name, statement, params)
+        changing = _execute(con, who, stage.name, loop.until, params)[0]
+        if changing == 0:
             return rounds
-    raise DataError(f"check {check.name}: verdicts did not settle after {windows + 1} rounds")
+    raise DataError(f"{who}, stage {stage.name}: the loop did not settle: {loop.until_name} was still {changing} "
+                    f"after {limit} rounds, the most {loop.limit_name} allows")
 
 
 def _execute(con: duckdb.DuckDBPyConnection, who: str, stage: str, statement: Statement,

@@ -1,8 +1,8 @@
 """Compiling a check into the SQL a run executes, stage by stage, from the templates in ``queries/``.
 
 The compiler only returns text; :mod:`toolkit.engine.runner` only executes what it returns, and
-``plimsoll sql`` prints the same text. A stage's statements after a ``-- @repeat`` line form the
-loop that settles breach verdicts (see ``baseline.sql``).
+``plimsoll sql`` prints the same text. The verdict stage holds a loop (``-- @loop`` … ``-- @end``,
+see :func:`toolkit.sql.templates.stage`) that the runner repeats until the verdicts settle.
 """
 
 from __future__ import annotations
@@ -13,7 +13,7 @@ from dataclasses import dataclass, field
 from toolkit.model import Check
 from toolkit.sql.templates import Stage, render, stage
 
-STAGES = ("source", "scan", "window", "measure", "baseline", "breach", "lifecycle", "persist")
+STAGES = ("source", "scan", "window", "measure", "verdict", "lifecycle", "persist")
 CHECK_STAGES = STAGES[1:]
 
 
@@ -34,8 +34,9 @@ class CompiledCheck:
             "-- relative to the source's path), $manifest (names, sizes and times), $run_id, $reader (the\n"
             "-- check whose earlier files decide repeats), $read_until (a backlog read in several runs:\n"
             "-- the earliest event time left for the next runs, else NULL), $source_checks (the checks of\n"
-            "-- the source), $definition (hash of the SQL up to the breach stage). Statements after\n"
-            "-- '@repeat' run until no breach flag changes.\n"
+            "-- the source), $definition (hash of the SQL up to the verdict stage). The statements from\n"
+            "-- '@loop' to '@end' are one round, repeated until its last statement returns 0; named\n"
+            "-- statements ('@statement NAME') run where the loop names them.\n"
         )
         return header + "\n".join(stage.text.rstrip() + "\n" for stage in self.stages)
 
@@ -82,7 +83,7 @@ def compile_check(check: Check) -> CompiledCheck:
 
 
 def definition_hash(stages: tuple[Stage, ...]) -> str:
-    """A hash of the DuckDB SQL that forms the check's windows and verdicts (stages source to breach).
+    """A hash of the DuckDB SQL that forms the check's windows and verdicts (stages source to verdict).
 
     When it changes, windows already stored no longer match what the check computes, so the
     runner asks for a rebuild. The life cycle and severity may change without one: they only

@@ -1,14 +1,18 @@
 {% import "macros.sql" as m %}
 {% set check_lit = check.name | literal %}
 {% set b = baseline %}
--- ── stage 4 · baseline ─────────────────────────────────────────────────────────────────────
+{% set g = guard %}
+-- ── stage 4 · verdict ──────────────────────────────────────────────────────────────────────
+-- Each new window's baseline, threshold and verdict.
+--
+-- Baseline and threshold:
 {% if b.method == "rolling_percentile" %}
 -- rolling_percentile: baseline = quantile_cont(value, {{ b.q }}) over the series' last {{ b.history }} earlier
 -- windows that did not breach; a window gets a threshold once it has {{ b.min_history }} of them:
 {% if check.direction == "up" %}
---   threshold = {% if b.floor is not none %}greatest({{ b.floor }}, {% endif %}{{ b.factor }} × baseline{% if b.floor is not none %}){% endif %}
+--   threshold = {% if b.floor is not none %}greatest({{ b.floor }}, {% endif %}{{ b.factor }} × baseline{% if b.floor is not none %}){% endif +%}
 {% else %}
---   threshold = {% if b.floor is not none %}least({{ b.floor }}, {% endif %}{{ b.factor }} × baseline{% if b.floor is not none %}){% endif %}
+--   threshold = {% if b.floor is not none %}least({{ b.floor }}, {% endif %}{{ b.factor }} × baseline{% if b.floor is not none %}){% endif +%}
 {% endif %}
 {% elif b.method == "p_chart" %}
 -- p_chart (NIST/SEMATECH e-Handbook §6.3.3.2, proportions control chart): baseline = p̄ = Σ bad ÷
@@ -32,9 +36,22 @@
 -- A split value first seen after its key's first window has the key's earlier windows as history,
 -- each with value 0: it had no bad sessions in them.
 {% endif %}
--- Earlier windows that did not breach can only enter a window's history in order, so the verdicts
--- of a series are found by repeating this stage and the next until no breach flag changes; each
--- round settles at least one more window of every series still changing, all series at once.
+--
+-- Verdict: a window breaches when it has a threshold, its {{ "EWMA statistic" if b.method == "ewma" else "value" }} is {{ "above" if check.direction == "up" else "below" }} it, and it passes the guard
+-- (at least {{ g.min_sessions }} sessions{% if measure.kind == "rate" %} and {{ g.min_bad }} bad{% endif %}); every other window with a threshold and a value is
+-- healthy. A window without a value (a zero denominator, no session with a value) gives no verdict.
+{% if b.confidence %}
+-- confidence {{ b.confidence }}: it also needs the {{ "lower" if check.direction == "up" else "upper" }} end of its Wilson score interval (Wilson 1927)
+-- at that two-sided confidence (z = {{ z_for(b.confidence) }}) beyond the threshold, so a small noisy window cannot:
+--   bound = (p̂ + z²/2n {{ "−" if check.direction == "up" else "+" }} z·√(p̂(1−p̂)/n + z²/4n²)) / (1 + z²/n),  p̂ = bad / sessions
+{% endif %}
+--
+-- A window's history is the earlier windows of its series that did not breach, so verdicts depend on
+-- the verdicts before them: the statements between '@loop' and '@end' are one round, repeated until
+-- no breach flag changes. A round recomputes only the series still changing, all of them at once.
+
+-- history: the series' earlier windows in the warehouse that did not breach (and, for a split value
+-- seen late, its key's quiet windows before it), the last {{ b.history }} of each series.
 CREATE OR REPLACE TEMP TABLE history AS
 WITH earlier AS (
     SELECT w.key, w.split_value, w.seq, w.key_window, w.value, w.sessions, w.bad, w.breach
@@ -98,6 +115,8 @@ chain(key, split_value, step, seq, z) AS (
 SELECT key, split_value, seq, z AS statistic FROM chain WHERE step > 0;
 
 {% endif %}
+-- judged: the new windows with their verdicts so far; `changed` marks those whose breach flag
+-- changed in the last round (at first, all of them).
 CREATE OR REPLACE TEMP TABLE judged AS
 SELECT
 {% if b.method == "ewma" %}
@@ -117,8 +136,19 @@ LEFT JOIN smoothed AS s ON {{ m.same_series("n", "s") }} AND n.seq = s.seq;
 {% else %}
 FROM new_windows;
 {% endif %}
--- @repeat (with stage 5): until no breach flag changes
-CREATE OR REPLACE TEMP TABLE verdicts AS
+
+-- @statement round_limit
+-- The most rounds the loop may take. The first window of a series whose verdict is not final has
+-- only final windows before it, so each round settles at least one more window of every series:
+-- a series of n new windows settles within n rounds, and one more round finds nothing changing.
+-- Beyond that the verdicts cannot settle, and the run stops with an error rather than loop on.
+SELECT coalesce(max(windows), 0) + 1 AS round_limit
+FROM (SELECT count(*) AS windows FROM judged GROUP BY key, split_value);
+
+-- @loop until still_changing = 0, at most round_limit rounds
+-- baselines: each window's baseline, from the eligible windows before it as the breach flags stand
+-- now (only the series with a window that changed in the last round).
+CREATE OR REPLACE TEMP TABLE baselines AS
 WITH moving AS (
     SELECT DISTINCT key, split_value FROM judged WHERE changed
 ),
@@ -161,3 +191,60 @@ framed AS (
 SELECT key, split_value, seq, baseline, {% if b.method == "ewma" %}spread, {% endif %}history_windows
 FROM framed
 WHERE is_new;
+
+-- round_verdicts: each recomputed window's threshold and whether it breaches.
+CREATE OR REPLACE TEMP TABLE round_verdicts AS
+SELECT
+    *,
+    coalesce(
+        threshold IS NOT NULL
+        AND value IS NOT NULL
+        AND {{ "statistic" if b.method == "ewma" else "value" }} {{ ">" if check.direction == "up" else "<" }} threshold
+        AND sessions >= {{ g.min_sessions }}
+{% if measure.kind == "rate" %}
+        AND bad >= {{ g.min_bad }}
+{% endif %}
+{% if b.confidence %}
+{% set z = z_for(b.confidence) %}
+{% if check.direction == "up" %}
+        AND {{ m.wilson_lower("bad", "sessions", z) }} > threshold
+{% else %}
+        AND {{ m.wilson_upper("bad", "sessions", z) }} < threshold
+{% endif %}
+{% endif %}
+    , false) AS breach
+FROM (
+    SELECT
+        j.key, j.split_value, j.seq, j.value, {% if b.method == "ewma" %}j.statistic, {% endif %}j.sessions, j.bad, base.baseline, base.history_windows,
+        CASE WHEN base.history_windows >= {{ b.min_history }} THEN
+{% if b.method == "rolling_percentile" %}
+{% set raw = b.factor ~ " * base.baseline" %}
+            {%+ if b.floor is none %}{{ raw }}{% elif check.direction == "up" %}greatest({{ b.floor }}, {{ raw }}){% else %}least({{ b.floor }}, {{ raw }}){% endif +%}
+{% elif b.method == "p_chart" %}
+{% set spread = b.sigmas ~ " * sqrt(base.baseline * (1 - base.baseline) / j.sessions)" %}
+            {%+ if check.direction == "up" %}base.baseline + {{ spread }}{% else %}greatest(0.0, base.baseline - {{ spread }}){% endif +%}
+{% elif b.method == "ewma" %}
+            base.baseline {{ "+" if check.direction == "up" else "-" }} {{ b.sigmas }} * base.spread * sqrt({{ b.lam }} / (2 - {{ b.lam }}))
+{% endif %}
+        END AS threshold
+    FROM judged AS j
+    JOIN baselines AS base ON j.key = base.key AND j.split_value IS NOT DISTINCT FROM base.split_value AND j.seq = base.seq
+);
+
+-- What the round changed: only the windows whose breach flag differs from the last round's.
+UPDATE judged SET changed = false WHERE changed;
+
+UPDATE judged
+SET
+    baseline = r.baseline,
+    history_windows = r.history_windows,
+    threshold = r.threshold,
+    changed = judged.breach IS DISTINCT FROM r.breach,
+    breach = r.breach
+FROM round_verdicts AS r
+WHERE judged.key = r.key AND judged.split_value IS NOT DISTINCT FROM r.split_value AND judged.seq = r.seq;
+
+-- @statement still_changing
+-- The end of a round: how many breach flags it changed. The loop stops at 0.
+SELECT count(*) FILTER (WHERE changed) AS still_changing FROM judged;
+-- @end
