@@ -54,7 +54,7 @@
 -- seen late, its key's quiet windows before it), the last {{ b.history }} of each series.
 CREATE OR REPLACE TEMP TABLE history AS
 WITH earlier AS (
-    SELECT w.key, w.split_value, w.seq, w.key_window, w.value, w.sessions, w.bad, w.breach
+    SELECT w.key, w.split_value, w.window_number, w.key_window, w.value, w.sessions, w.bad, w.breach
     FROM windows AS w
     SEMI JOIN (SELECT DISTINCT key, split_value FROM new_windows) AS n
         ON w.key = n.key AND w.split_value IS NOT DISTINCT FROM n.split_value
@@ -68,51 +68,51 @@ first_seen AS (
 ),
 quiet AS (
     -- a split value first seen in its key's n-th window had no bad session in the n-1 before
-    SELECT f.key, f.split_value, k.seq, 0.0::DOUBLE AS value, k.sessions, 0::BIGINT AS bad
+    SELECT f.key, f.split_value, k.window_number, 0.0::DOUBLE AS value, k.sessions, 0::BIGINT AS bad
     FROM first_seen AS f
-    JOIN (SELECT key, key_window, seq, sessions FROM key_windows WHERE check_name = {{ check_lit }}
-          UNION ALL SELECT key, key_window, seq, sessions FROM new_key_windows) AS k
+    JOIN (SELECT key, key_window, window_number, sessions FROM key_windows WHERE check_name = {{ check_lit }}
+          UNION ALL SELECT key, key_window, window_number, sessions FROM new_key_windows) AS k
         ON k.key = f.key AND k.key_window < f.first_window
         AND k.key_window >= f.first_window - {{ b.history }}
 ){% endif %}
 
-SELECT key, split_value, seq, value, sessions, bad
+SELECT key, split_value, window_number, value, sessions, bad
 FROM (
-    SELECT key, split_value, seq, value, sessions, bad FROM earlier WHERE NOT breach AND value IS NOT NULL
+    SELECT key, split_value, window_number, value, sessions, bad FROM earlier WHERE NOT breach AND value IS NOT NULL
 {% if measure.split %}
     UNION ALL
-    SELECT key, split_value, seq, value, sessions, bad FROM quiet
+    SELECT key, split_value, window_number, value, sessions, bad FROM quiet
 {% endif %}
 )
-QUALIFY row_number() OVER (PARTITION BY key, split_value ORDER BY seq DESC) <= {{ b.history }};
+QUALIFY row_number() OVER (PARTITION BY key, split_value ORDER BY window_number DESC) <= {{ b.history }};
 
 {% if b.method == "ewma" %}
 CREATE OR REPLACE TEMP TABLE smoothed AS
 WITH RECURSIVE numbered AS (
-    SELECT key, split_value, seq, value,
-           row_number() OVER (PARTITION BY key, split_value ORDER BY seq) AS step
+    SELECT key, split_value, window_number, value,
+           row_number() OVER (PARTITION BY key, split_value ORDER BY window_number) AS step
     FROM new_windows
 ),
 start AS (
     SELECT s.key, s.split_value, coalesce(l.statistic, {{ b.target if b.target is not none else "NULL" }})::DOUBLE AS z
     FROM (SELECT DISTINCT key, split_value FROM new_windows) AS s
     LEFT JOIN (
-        SELECT key, split_value, arg_max(statistic, seq) AS statistic
+        SELECT key, split_value, arg_max(statistic, window_number) AS statistic
         FROM windows
         WHERE check_name = {{ check_lit }}
         GROUP BY key, split_value
     ) AS l ON {{ m.same_series("s", "l") }}
 ),
-chain(key, split_value, step, seq, z) AS (
+chain(key, split_value, step, window_number, z) AS (
     SELECT key, split_value, 0::BIGINT, NULL::BIGINT, z FROM start
     UNION ALL
-    SELECT n.key, n.split_value, n.step, n.seq,
+    SELECT n.key, n.split_value, n.step, n.window_number,
            CASE WHEN n.value IS NULL THEN c.z
                 ELSE {{ b.lam }} * n.value + {{ 1 - b.lam }} * coalesce(c.z, n.value) END
     FROM chain AS c
     JOIN numbered AS n ON {{ m.same_series("n", "c") }} AND n.step = c.step + 1
 )
-SELECT key, split_value, seq, z AS statistic FROM chain WHERE step > 0;
+SELECT key, split_value, window_number, z AS statistic FROM chain WHERE step > 0;
 
 {% endif %}
 -- judged: the new windows with their verdicts so far; `changed` marks those whose breach flag
@@ -132,7 +132,7 @@ SELECT
     true AS changed
 {% if b.method == "ewma" %}
 FROM new_windows AS n
-LEFT JOIN smoothed AS s ON {{ m.same_series("n", "s") }} AND n.seq = s.seq;
+LEFT JOIN smoothed AS s ON {{ m.same_series("n", "s") }} AND n.window_number = s.window_number;
 {% else %}
 FROM new_windows;
 {% endif %}
@@ -153,11 +153,11 @@ WITH moving AS (
     SELECT DISTINCT key, split_value FROM judged WHERE changed
 ),
 series_rows AS (
-    SELECT h.key, h.split_value, h.seq, h.value, h.sessions, h.bad, false AS is_new, true AS eligible
+    SELECT h.key, h.split_value, h.window_number, h.value, h.sessions, h.bad, false AS is_new, true AS eligible
     FROM history AS h
     SEMI JOIN moving AS s ON h.key = s.key AND h.split_value IS NOT DISTINCT FROM s.split_value
     UNION ALL
-    SELECT j.key, j.split_value, j.seq, j.value, j.sessions, j.bad, true, NOT j.breach AND j.value IS NOT NULL
+    SELECT j.key, j.split_value, j.window_number, j.value, j.sessions, j.bad, true, NOT j.breach AND j.value IS NOT NULL
     FROM judged AS j
     SEMI JOIN moving AS s ON j.key = s.key AND j.split_value IS NOT DISTINCT FROM s.split_value
 ),
@@ -166,13 +166,13 @@ numbered AS (
     -- [hb - history, hb - 1], whatever breached windows lie between them
     SELECT *,
         coalesce(count(*) FILTER (WHERE eligible) OVER (
-            PARTITION BY key, split_value ORDER BY seq ROWS BETWEEN UNBOUNDED PRECEDING AND 1 PRECEDING
+            PARTITION BY key, split_value ORDER BY window_number ROWS BETWEEN UNBOUNDED PRECEDING AND 1 PRECEDING
         ), 0) AS hb
     FROM series_rows
 ),
 framed AS (
     SELECT
-        key, split_value, seq, is_new,
+        key, split_value, window_number, is_new,
 {% if b.method == "rolling_percentile" %}
         quantile_cont(value, {{ b.q }}) FILTER (WHERE eligible) OVER earlier AS baseline,
 {% elif b.method == "p_chart" %}
@@ -188,7 +188,7 @@ framed AS (
         PARTITION BY key, split_value ORDER BY hb RANGE BETWEEN {{ b.history }} PRECEDING AND 1 PRECEDING
     )
 )
-SELECT key, split_value, seq, baseline, {% if b.method == "ewma" %}spread, {% endif %}history_windows
+SELECT key, split_value, window_number, baseline, {% if b.method == "ewma" %}spread, {% endif %}history_windows
 FROM framed
 WHERE is_new;
 
@@ -215,7 +215,7 @@ SELECT
     , false) AS breach
 FROM (
     SELECT
-        j.key, j.split_value, j.seq, j.value, {% if b.method == "ewma" %}j.statistic, {% endif %}j.sessions, j.bad, base.baseline, base.history_windows,
+        j.key, j.split_value, j.window_number, j.value, {% if b.method == "ewma" %}j.statistic, {% endif %}j.sessions, j.bad, base.baseline, base.history_windows,
         CASE WHEN base.history_windows >= {{ b.min_history }} THEN
 {% if b.method == "rolling_percentile" %}
 {% set raw = b.factor ~ " * base.baseline" %}
@@ -228,7 +228,7 @@ FROM (
 {% endif %}
         END AS threshold
     FROM judged AS j
-    JOIN baselines AS base ON j.key = base.key AND j.split_value IS NOT DISTINCT FROM base.split_value AND j.seq = base.seq
+    JOIN baselines AS base ON j.key = base.key AND j.split_value IS NOT DISTINCT FROM base.split_value AND j.window_number = base.window_number
 );
 
 -- What the round changed: only the windows whose breach flag differs from the last round's.
@@ -242,7 +242,7 @@ SET
     changed = judged.breach IS DISTINCT FROM r.breach,
     breach = r.breach
 FROM round_verdicts AS r
-WHERE judged.key = r.key AND judged.split_value IS NOT DISTINCT FROM r.split_value AND judged.seq = r.seq;
+WHERE judged.key = r.key AND judged.split_value IS NOT DISTINCT FROM r.split_value AND judged.window_number = r.window_number;
 
 -- @statement still_changing
 -- The end of a round: how many breach flags it changed. The loop stops at 0.

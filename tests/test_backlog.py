@@ -51,7 +51,7 @@ def contents(folder: Path) -> dict[str, list[tuple]]:
     con = duckdb.connect(str(folder / "warehouse.duckdb"), read_only=True)
     try:
         return {
-            "windows": con.execute("SELECT check_name, key_text, split_value, seq, window_start, window_end, "
+            "windows": con.execute("SELECT check_name, key_text, split_value, window_number, window_start, window_end, "
                                    "sessions, bad, value, threshold, breach FROM windows ORDER BY ALL").fetchall(),
             "alerts": con.execute("SELECT alert_id, status, close_reason, opened_at, closed_at, breach_windows, "
                                   "affected_sessions, peak_value FROM alerts ORDER BY ALL").fetchall(),

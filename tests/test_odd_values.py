@@ -59,7 +59,7 @@ def query(project_file: Path, sql: str, **params: object) -> list[tuple]:
 
 def windows(project_file: Path) -> list[tuple]:
     return query(project_file, "SELECT key_text, window_start, window_end, sessions, bad, breach FROM windows "
-                               "ORDER BY key_text, seq")
+                               "ORDER BY key_text, window_number")
 
 
 def lake_project(folder: Path, checks: dict[str, str], schema: str, files: dict[str, list[tuple]],
@@ -142,7 +142,7 @@ def test_nan_and_infinity_in_measure_inputs_are_missing_counted_and_never_a_brea
     rows += [("closer", T0 + timedelta(hours=14), "news", 10.0, 990.0)]
     project_file = lake_project(tmp_path, {"r.yml": REBUFFERING}, RATIO_SCHEMA, {"1.parquet": rows})
     run(load_project(project_file))
-    found = query(project_file, "SELECT seq - min(seq) OVER (), sessions, value, breach FROM windows ORDER BY seq")
+    found = query(project_file, "SELECT window_number - min(window_number) OVER (), sessions, value, breach FROM windows ORDER BY window_number")
     assert [w[0] for w in found] == list(range(12))
     assert all(w[2] == pytest.approx(0.01) and not w[3] for w in found)     # the rest of hour 10 and 11 as usual
     assert query(project_file, "SELECT nonfinite_values FROM runs") == [(2,)]
@@ -174,7 +174,7 @@ def test_a_window_without_a_value_gives_no_verdict_and_cannot_close_an_alert(tmp
             + playing(9, 10, rebuffer=200.0) + playing(10, 11) + [("closer", T0 + timedelta(hours=12), "news", 1.0, 1.0)])
     project_file = lake_project(tmp_path, {"r.yml": REBUFFERING}, RATIO_SCHEMA, {"1.parquet": rows})
     run(load_project(project_file))
-    found = query(project_file, "SELECT value IS NULL, threshold IS NOT NULL, breach FROM windows ORDER BY seq")
+    found = query(project_file, "SELECT value IS NULL, threshold IS NOT NULL, breach FROM windows ORDER BY window_number")
     assert found[8] == (True, True, False)
     assert query(project_file, "SELECT breach_windows, close_reason, closed_at FROM alerts") == [
         (3, "recovered", T0 + timedelta(hours=11))]

@@ -53,7 +53,7 @@ def peak_while_running(project_file: Path, monkeypatch: pytest.MonkeyPatch, rebu
     monkeypatch.undo()
     con = duckdb.connect(str(project_file.parent / "warehouse.duckdb"), read_only=True)
     try:
-        windows = con.execute("SELECT check_name, key_text, split_value, seq, sessions, bad FROM windows "
+        windows = con.execute("SELECT check_name, key_text, split_value, window_number, sessions, bad FROM windows "
                               "ORDER BY ALL").fetchall()
     finally:
         con.close()

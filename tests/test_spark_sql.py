@@ -47,7 +47,7 @@ def test_every_golden_check_compiles_to_spark(tmp_path: Path, check_file: Path) 
 def test_quantiles_use_sparks_exact_percentile(tmp_path: Path) -> None:
     project = load_project(spark_project(tmp_path, GOLDEN / "startup_p90_by_site.yml"))
     text = check_plan(project.checks["startup_p90_by_site"]).sql
-    assert "PERCENTILE(x, 0.9) AS value" in text
+    assert "PERCENTILE(quantile_input, 0.9) AS value" in text
     assert "PERCENTILE_APPROX" not in text.upper() and "APPROX_PERCENTILE" not in text.upper()
 
 
@@ -57,7 +57,7 @@ def test_compile_shows_where_each_step_runs(tmp_path: Path) -> None:
     assert result.exit_code == 0, result.output
     for words in ("-- [on Spark]", "-- [on DuckDB (the warehouse)]", "DuckDB rows -> Spark view carry",
                   "Spark rows -> DuckDB relation spark_new_windows", "CREATE OR REPLACE TEMPORARY VIEW pooled",
-                  "WITH RECURSIVE seg", "RANGE BETWEEN UNBOUNDED PRECEDING AND 21600000000 FOLLOWING"):
+                  "WITH RECURSIVE span", "RANGE BETWEEN UNBOUNDED PRECEDING AND 21600000000 FOLLOWING"):
         assert words in result.output, words
 
 

@@ -97,7 +97,7 @@ valid AS (
 )
 SELECT
     count(*) AS rows_read,
-    count(*) FILTER (WHERE __session_id IS NULL OR __event_time IS NULL) AS rows_invalid,
+    count(*) FILTER (WHERE __session_id IS NULL OR __event_time IS NULL) AS invalid_rows,
     any_value(valid.rows_valid) - any_value(valid.beyond_horizon) - any_value(kept.sessions) AS duplicate_rows,
     any_value(valid.beyond_horizon) AS beyond_horizon,
     any_value(kept.excluded) AS rows_excluded,
@@ -150,29 +150,30 @@ SELECT
     session_id,
     event_time,
     key,
-    CASE WHEN finite THEN num END AS num,
-    CASE WHEN finite THEN den END AS den,
+    CASE WHEN finite THEN numerator END AS numerator,
+    CASE WHEN finite THEN denominator END AS denominator,
     NOT finite AS nonfinite
 FROM (
     SELECT
         *,
-        coalesce(isfinite(num) AND isfinite(den), true) AS finite
+        coalesce(isfinite(numerator) AND isfinite(denominator), true) AS finite
     FROM (
         SELECT
             __session_id AS session_id,
             __event_time AS event_time,
             '' AS key,
-            ("rebuffer_ms")::DOUBLE AS num,
-            ("play_ms" + "rebuffer_ms")::DOUBLE AS den
+            ("rebuffer_ms")::DOUBLE AS numerator,
+            ("play_ms" + "rebuffer_ms")::DOUBLE AS denominator
         FROM lake_sessions
         WHERE NOT __excluded
     )
 );
 
--- The watermark: the largest sane event time read by this check so far, this run's files included;
--- when a backlog is read in several runs, no later than the earliest session still unread
--- (read_until), so nothing still to come lands in a window already closed.
-CREATE OR REPLACE TEMP TABLE clock AS
+-- The check's watermarks: `previous`, where its last run left it, and `current`, the largest sane
+-- event time read by this check so far, this run's files included; when a backlog is read in
+-- several runs, no later than the earliest session still unread (read_until), so nothing still to
+-- come lands in a window already closed.
+CREATE OR REPLACE TEMP TABLE watermarks AS
 SELECT
     prior.watermark AS previous,
     greatest(prior.watermark, least(c.latest, coalesce((SELECT read_until FROM read_limits), c.latest))) AS current
@@ -181,8 +182,8 @@ FROM (SELECT (SELECT watermark FROM check_state WHERE check_name = 'rebuffering_
 
 CREATE OR REPLACE TEMP TABLE scan_counts AS
 SELECT
-    c.rows_read, c.rows_invalid, c.duplicate_rows, c.rows_excluded, c.beyond_horizon,
-    c.rows_read - c.rows_invalid - c.duplicate_rows - c.beyond_horizon - c.rows_excluded - a.rows_kept AS rows_filtered,
+    c.rows_read, c.invalid_rows, c.duplicate_rows, c.rows_excluded, c.beyond_horizon,
+    c.rows_read - c.invalid_rows - c.duplicate_rows - c.beyond_horizon - c.rows_excluded - a.rows_kept AS rows_filtered,
     a.rows_kept,
     a.nonfinite_values
 FROM lake_counts AS c, (SELECT count(*) AS rows_kept, count(*) FILTER (WHERE nonfinite) AS nonfinite_values FROM arrivals) AS a;
@@ -191,24 +192,25 @@ FROM lake_counts AS c, (SELECT count(*) AS rows_kept, count(*) FILTER (WHERE non
 -- Time windows of INTERVAL 3 HOUR, aligned to the epoch; a window closes once the watermark
 -- passes its end + INTERVAL 0 DAY. Sessions for a window already closed are late.
 CREATE OR REPLACE TEMP TABLE series_last AS
-SELECT '' AS key, last_seq, last_end
+SELECT '' AS key, last_window_number, last_end
 FROM key_state
 WHERE check_name = 'rebuffering_ratio';
 
 -- Each session with its window; a view, so the sessions are not copied: each statement below reads
--- them where they are.
+-- them where they are. window_number: how many windows of INTERVAL 3 HOUR lie between
+-- 1970-01-01 and the window's start (negative before it), so windows of the same time have the same number in every series.
 CREATE OR REPLACE TEMP VIEW stamped AS
 SELECT
     p.*,
-    (epoch_us(p.event_time) - ((epoch_us(p.event_time)) % 10800000000 + 10800000000) % 10800000000) // 10800000000 AS seq,
+    (epoch_us(p.event_time) - ((epoch_us(p.event_time)) % 10800000000 + 10800000000) % 10800000000) // 10800000000 AS window_number,
     make_timestamp((epoch_us(p.event_time) - ((epoch_us(p.event_time)) % 10800000000 + 10800000000) % 10800000000) // 10800000000 * 10800000000) AS window_start,
     make_timestamp((epoch_us(p.event_time) - ((epoch_us(p.event_time)) % 10800000000 + 10800000000) % 10800000000) // 10800000000 * 10800000000 + 10800000000) AS window_end
 FROM (
-    SELECT '' AS key, event_time, session_id, num, den
+    SELECT '' AS key, event_time, session_id, numerator, denominator
     FROM carry
     WHERE check_name = 'rebuffering_ratio'
     UNION ALL
-    SELECT key, event_time, session_id, num, den
+    SELECT key, event_time, session_id, numerator, denominator
     FROM arrivals
 ) AS p;
 
@@ -216,18 +218,18 @@ FROM (
 CREATE OR REPLACE TEMP TABLE window_counts AS
 SELECT count(*) AS late_rows
 FROM stamped
-WHERE window_end + INTERVAL 0 DAY < (SELECT previous FROM clock);
+WHERE window_end + INTERVAL 0 DAY < (SELECT previous FROM watermarks);
 
 CREATE OR REPLACE TEMP VIEW window_sessions AS
 SELECT *
 FROM stamped
-WHERE window_end + INTERVAL 0 DAY < (SELECT current FROM clock)
-  AND NOT coalesce(window_end + INTERVAL 0 DAY < (SELECT previous FROM clock), false);
+WHERE window_end + INTERVAL 0 DAY < (SELECT current FROM watermarks)
+  AND NOT coalesce(window_end + INTERVAL 0 DAY < (SELECT previous FROM watermarks), false);
 
 CREATE OR REPLACE TEMP TABLE carry_next AS
-SELECT map([]::VARCHAR[], []::VARCHAR[]) AS key, '' AS key_text, event_time, session_id, num, den
+SELECT map([]::VARCHAR[], []::VARCHAR[]) AS key, '' AS key_text, event_time, session_id, numerator, denominator
 FROM stamped
-WHERE NOT (window_end + INTERVAL 0 DAY < (SELECT current FROM clock));
+WHERE NOT (window_end + INTERVAL 0 DAY < (SELECT current FROM watermarks));
 
 -- ── stage 3 · measure ──────────────────────────────────────────────────────────────────────
 -- ratio of sums = Σ ("rebuffer_ms") ÷ Σ ("play_ms" + "rebuffer_ms"); NULL when the denominator is 0.
@@ -235,25 +237,25 @@ CREATE OR REPLACE TEMP TABLE key_window_stats AS
 SELECT
     map([]::VARCHAR[], []::VARCHAR[]) AS key,
     '' AS key_text,
-    seq,
+    window_number,
     min(window_start) AS window_start,
     max(window_end) AS window_end,
     count(*) AS sessions,
     NULL::BIGINT AS bad,
-    sum(num) / nullif(sum(den), 0) AS value
+    sum(numerator) / nullif(sum(denominator), 0) AS value
 FROM window_sessions
-GROUP BY key, seq;
+GROUP BY key, window_number;
 
 -- key_window: the ordinal of the window among all of its key's windows, across runs
 CREATE OR REPLACE TEMP TABLE new_key_windows AS
 SELECT
     w.*,
-    coalesce(s.windows, 0) + row_number() OVER (PARTITION BY w.key ORDER BY w.seq) AS key_window
+    coalesce(s.windows, 0) + row_number() OVER (PARTITION BY w.key ORDER BY w.window_number) AS key_window
 FROM key_window_stats AS w
 LEFT JOIN key_state AS s ON s.check_name = 'rebuffering_ratio' AND s.key = w.key;
 
 CREATE OR REPLACE TEMP TABLE new_windows AS
-SELECT key, key_text, NULL::VARCHAR AS split_value, seq, key_window, window_start, window_end, sessions, bad, value
+SELECT key, key_text, NULL::VARCHAR AS split_value, window_number, key_window, window_start, window_end, sessions, bad, value
 FROM new_key_windows;
 
 -- ── stage 4 · verdict ──────────────────────────────────────────────────────────────────────
@@ -276,17 +278,17 @@ FROM new_key_windows;
 -- seen late, its key's quiet windows before it), the last 6 of each series.
 CREATE OR REPLACE TEMP TABLE history AS
 WITH earlier AS (
-    SELECT w.key, w.split_value, w.seq, w.key_window, w.value, w.sessions, w.bad, w.breach
+    SELECT w.key, w.split_value, w.window_number, w.key_window, w.value, w.sessions, w.bad, w.breach
     FROM windows AS w
     SEMI JOIN (SELECT DISTINCT key, split_value FROM new_windows) AS n
         ON w.key = n.key AND w.split_value IS NOT DISTINCT FROM n.split_value
     WHERE w.check_name = 'rebuffering_ratio'
 )
-SELECT key, split_value, seq, value, sessions, bad
+SELECT key, split_value, window_number, value, sessions, bad
 FROM (
-    SELECT key, split_value, seq, value, sessions, bad FROM earlier WHERE NOT breach AND value IS NOT NULL
+    SELECT key, split_value, window_number, value, sessions, bad FROM earlier WHERE NOT breach AND value IS NOT NULL
 )
-QUALIFY row_number() OVER (PARTITION BY key, split_value ORDER BY seq DESC) <= 6;
+QUALIFY row_number() OVER (PARTITION BY key, split_value ORDER BY window_number DESC) <= 6;
 
 -- judged: the new windows with their verdicts so far; `changed` marks those whose breach flag
 -- changed in the last round (at first, all of them).
@@ -316,11 +318,11 @@ WITH moving AS (
     SELECT DISTINCT key, split_value FROM judged WHERE changed
 ),
 series_rows AS (
-    SELECT h.key, h.split_value, h.seq, h.value, h.sessions, h.bad, false AS is_new, true AS eligible
+    SELECT h.key, h.split_value, h.window_number, h.value, h.sessions, h.bad, false AS is_new, true AS eligible
     FROM history AS h
     SEMI JOIN moving AS s ON h.key = s.key AND h.split_value IS NOT DISTINCT FROM s.split_value
     UNION ALL
-    SELECT j.key, j.split_value, j.seq, j.value, j.sessions, j.bad, true, NOT j.breach AND j.value IS NOT NULL
+    SELECT j.key, j.split_value, j.window_number, j.value, j.sessions, j.bad, true, NOT j.breach AND j.value IS NOT NULL
     FROM judged AS j
     SEMI JOIN moving AS s ON j.key = s.key AND j.split_value IS NOT DISTINCT FROM s.split_value
 ),
@@ -329,13 +331,13 @@ numbered AS (
     -- [hb - history, hb - 1], whatever breached windows lie between them
     SELECT *,
         coalesce(count(*) FILTER (WHERE eligible) OVER (
-            PARTITION BY key, split_value ORDER BY seq ROWS BETWEEN UNBOUNDED PRECEDING AND 1 PRECEDING
+            PARTITION BY key, split_value ORDER BY window_number ROWS BETWEEN UNBOUNDED PRECEDING AND 1 PRECEDING
         ), 0) AS hb
     FROM series_rows
 ),
 framed AS (
     SELECT
-        key, split_value, seq, is_new,
+        key, split_value, window_number, is_new,
         quantile_cont(value, 0.8) FILTER (WHERE eligible) OVER earlier AS baseline,
         count(*) FILTER (WHERE eligible) OVER earlier AS history_windows
     FROM numbered
@@ -343,7 +345,7 @@ framed AS (
         PARTITION BY key, split_value ORDER BY hb RANGE BETWEEN 6 PRECEDING AND 1 PRECEDING
     )
 )
-SELECT key, split_value, seq, baseline, history_windows
+SELECT key, split_value, window_number, baseline, history_windows
 FROM framed
 WHERE is_new;
 
@@ -359,12 +361,12 @@ SELECT
     , false) AS breach
 FROM (
     SELECT
-        j.key, j.split_value, j.seq, j.value, j.sessions, j.bad, base.baseline, base.history_windows,
+        j.key, j.split_value, j.window_number, j.value, j.sessions, j.bad, base.baseline, base.history_windows,
         CASE WHEN base.history_windows >= 2 THEN
             greatest(0.002, 1.2 * base.baseline)
         END AS threshold
     FROM judged AS j
-    JOIN baselines AS base ON j.key = base.key AND j.split_value IS NOT DISTINCT FROM base.split_value AND j.seq = base.seq
+    JOIN baselines AS base ON j.key = base.key AND j.split_value IS NOT DISTINCT FROM base.split_value AND j.window_number = base.window_number
 );
 
 -- What the round changed: only the windows whose breach flag differs from the last round's.
@@ -378,7 +380,7 @@ SET
     changed = judged.breach IS DISTINCT FROM r.breach,
     breach = r.breach
 FROM round_verdicts AS r
-WHERE judged.key = r.key AND judged.split_value IS NOT DISTINCT FROM r.split_value AND judged.seq = r.seq;
+WHERE judged.key = r.key AND judged.split_value IS NOT DISTINCT FROM r.split_value AND judged.window_number = r.window_number;
 
 -- @statement still_changing
 -- The end of a round: how many breach flags it changed. The loop stops at 0.
@@ -403,11 +405,11 @@ WITH relevant AS (
 ),
 ordered AS (
     SELECT
-        j.key, j.key_text, j.split_value, j.seq, j.window_start, j.window_end, j.value, j.threshold,
+        j.key, j.key_text, j.split_value, j.window_number, j.window_start, j.window_end, j.value, j.threshold,
         j.bad, j.sessions, j.breach,
         -- no verdict without a value (a zero denominator, an empty window): neither healthy nor a breach
         j.threshold IS NOT NULL AND j.value IS NOT NULL AND NOT j.breach AS healthy,
-        coalesce(lag(j.window_end) OVER (PARTITION BY j.key, j.split_value ORDER BY j.seq), l.last_end) AS prev_end,
+        coalesce(lag(j.window_end) OVER (PARTITION BY j.key, j.split_value ORDER BY j.window_number), l.last_end) AS prev_end,
         o.alert_id IS NOT NULL AS carried,
         coalesce(o.healthy_streak, 0) AS streak0
     FROM judged AS j
@@ -421,7 +423,7 @@ stretched AS (
         *,
         coalesce(prev_end + INTERVAL 7 DAY < window_end, false) AS gap,
         coalesce(count(*) FILTER (WHERE breach) OVER (
-            PARTITION BY key, split_value ORDER BY seq ROWS BETWEEN UNBOUNDED PRECEDING AND 1 PRECEDING
+            PARTITION BY key, split_value ORDER BY window_number ROWS BETWEEN UNBOUNDED PRECEDING AND 1 PRECEDING
         ), 0) AS stretch
     FROM ordered
 ),
@@ -434,28 +436,29 @@ counted AS (
         stretch > 0 OR carried AS breached_before
     FROM stretched
     WINDOW within AS (
-        PARTITION BY key, split_value, stretch ORDER BY seq ROWS BETWEEN UNBOUNDED PRECEDING AND 1 PRECEDING
+        PARTITION BY key, split_value, stretch ORDER BY window_number ROWS BETWEEN UNBOUNDED PRECEDING AND 1 PRECEDING
     )
 ),
 flagged AS (
-    SELECT *, breached_before AND NOT gap_before AND healthy_before < 2 AS open_at
+    -- is_open: an alert of the series is open when this window comes (before it counts)
+    SELECT *, breached_before AND NOT gap_before AND healthy_before < 2 AS is_open
     FROM counted
 )
 SELECT
     *,
-    open_at AND gap AS expires_here,
-    open_at AND NOT gap AND healthy AND healthy_before + 1 >= 2 AS recovers_here,
-    breach AND NOT (open_at AND NOT gap) AS opens_here,
-    breach AND open_at AND NOT gap AS continues_here
+    is_open AND gap AS expires_here,
+    is_open AND NOT gap AND healthy AND healthy_before + 1 >= 2 AS recovers_here,
+    breach AND NOT (is_open AND NOT gap) AS opens_here,
+    breach AND is_open AND NOT gap AS continues_here
 FROM flagged;
 
 CREATE OR REPLACE TEMP TABLE episode_steps AS
 SELECT
     *,
     -- episode 0 is the alert already open before this run
-    sum(opens_here::INTEGER) OVER (PARTITION BY key, split_value ORDER BY seq ROWS UNBOUNDED PRECEDING) AS episode,
+    sum(opens_here::INTEGER) OVER (PARTITION BY key, split_value ORDER BY window_number ROWS UNBOUNDED PRECEDING) AS episode,
     coalesce(sum(opens_here::INTEGER) OVER (
-        PARTITION BY key, split_value ORDER BY seq ROWS BETWEEN UNBOUNDED PRECEDING AND 1 PRECEDING
+        PARTITION BY key, split_value ORDER BY window_number ROWS BETWEEN UNBOUNDED PRECEDING AND 1 PRECEDING
     ), 0) AS episode_before
 FROM steps;
 
@@ -465,13 +468,13 @@ WITH breaches AS (
         key, any_value(key_text) AS key_text, split_value, episode,
         min(window_end) FILTER (WHERE opens_here) AS opened_at,
         min(window_start) FILTER (WHERE opens_here) AS breach_started_at,
-        min(seq) FILTER (WHERE opens_here) AS opened_seq,
-        arg_min(threshold, seq) FILTER (WHERE opens_here) AS open_threshold,
+        min(window_number) FILTER (WHERE opens_here) AS opened_window,
+        arg_min(threshold, window_number) FILTER (WHERE opens_here) AS open_threshold,
         count(*) AS breach_windows,
         sum(coalesce(bad, sessions)) AS affected_sessions,
         max(value) AS peak_value,
         max(window_end) AS last_breach_at,
-        max(seq) AS last_breach_seq
+        max(window_number) AS last_breach_window
     FROM episode_steps
     WHERE breach
     GROUP BY key, split_value, episode
@@ -500,9 +503,9 @@ series_end AS (
 ),
 healthy_tail AS (
     -- healthy windows after the last breach of a series: the streak an open alert carries on
-    SELECT e.key, e.split_value, count(*) FILTER (WHERE e.healthy AND e.seq > coalesce(b.last_seq, -1)) AS n
+    SELECT e.key, e.split_value, count(*) FILTER (WHERE e.healthy AND e.window_number > coalesce(b.last_window, -1)) AS n
     FROM episode_steps AS e
-    LEFT JOIN (SELECT key, split_value, max(last_breach_seq) AS last_seq FROM breaches GROUP BY ALL) AS b
+    LEFT JOIN (SELECT key, split_value, max(last_breach_window) AS last_window FROM breaches GROUP BY ALL) AS b
         ON e.key = b.key AND e.split_value IS NOT DISTINCT FROM b.split_value
     GROUP BY e.key, e.split_value
 ),
@@ -513,7 +516,7 @@ merged AS (
         coalesce(b.key_text, o.key_text) AS key_text,
         coalesce(o.opened_at, b.opened_at) AS opened_at,
         coalesce(o.breach_started_at, b.breach_started_at) AS breach_started_at,
-        b.opened_seq,
+        b.opened_window,
         coalesce(o.threshold, b.open_threshold) AS threshold,
         coalesce(o.breach_windows, 0) + coalesce(b.breach_windows, 0) AS breach_windows,
         coalesce(o.affected_sessions, 0) + coalesce(b.affected_sessions, 0) AS affected_sessions,
@@ -536,15 +539,16 @@ merged AS (
 )
 SELECT
     *,
-    -- an alert still open whose series has been silent past expire_after at the watermark expires
+    -- silent_too_long: an alert still open whose series has had no window for expire_after at the
+    -- watermark expires
     closed_at IS NULL
-        AND last_window_end + INTERVAL 7 DAY < (SELECT current FROM clock) AS expires_at_watermark
+        AND last_window_end + INTERVAL 7 DAY < (SELECT current FROM watermarks) AS silent_too_long
 FROM merged;
 
 CREATE OR REPLACE TEMP TABLE alert_rows AS
 SELECT
     coalesce(prior_alert_id, substr(md5(to_json({
-        'check': 'rebuffering_ratio', 'key': key, 'split': split_value, 'opened_at': opened_at, 'seq': opened_seq,
+        'check': 'rebuffering_ratio', 'key': key, 'split': split_value, 'opened_at': opened_at, 'window_number': opened_window,
         'definition': $definition
     })::VARCHAR), 1, 16)) AS alert_id,
     'rebuffering_ratio' AS check_name,
@@ -552,14 +556,14 @@ SELECT
     key,
     key_text,
     split_value,
-    CASE WHEN closed_at IS NOT NULL OR expires_at_watermark THEN 'closed' ELSE 'open' END AS status,
-    CASE WHEN closed_at IS NOT NULL THEN close_reason WHEN expires_at_watermark THEN 'expired' END AS close_reason,
+    CASE WHEN closed_at IS NOT NULL OR silent_too_long THEN 'closed' ELSE 'open' END AS status,
+    CASE WHEN closed_at IS NOT NULL THEN close_reason WHEN silent_too_long THEN 'expired' END AS close_reason,
     opened_at,
     breach_started_at,
     last_breach_at,
     CASE
         WHEN closed_at IS NOT NULL THEN closed_at
-        WHEN expires_at_watermark THEN last_window_end + INTERVAL 7 DAY
+        WHEN silent_too_long THEN last_window_end + INTERVAL 7 DAY
     END AS closed_at,
     breach_windows,
     affected_sessions,
@@ -570,10 +574,10 @@ SELECT
     substr(md5(to_json({'check': 'rebuffering_ratio', 'key': key, 'split': split_value})::VARCHAR), 1, 16) AS fingerprint,
     coalesce(first_run_id, $run_id) AS first_run_id,
     $run_id AS last_run_id,
-    CASE WHEN closed_at IS NULL AND NOT expires_at_watermark THEN healthy_streak END AS healthy_streak,
+    CASE WHEN closed_at IS NULL AND NOT silent_too_long THEN healthy_streak END AS healthy_streak,
     $definition AS definition_hash,
     episode,
-    touched OR expires_at_watermark AS touched,
+    touched OR silent_too_long AS touched,
     close_value,
     close_threshold
 FROM episodes;
@@ -585,9 +589,9 @@ WITH breach_events AS (
         CASE WHEN s.opens_here THEN 'opened' ELSE 'updated' END AS event,
         s.value, s.threshold,
         coalesce(o.affected_sessions, 0) + sum(coalesce(s.bad, s.sessions)) OVER (
-            PARTITION BY s.key, s.split_value, s.episode ORDER BY s.seq ROWS UNBOUNDED PRECEDING
+            PARTITION BY s.key, s.split_value, s.episode ORDER BY s.window_number ROWS UNBOUNDED PRECEDING
         ) AS affected_sessions,
-        s.seq
+        s.window_number
     FROM episode_steps AS s
     LEFT JOIN open_alerts AS o ON s.key = o.key AND s.split_value IS NOT DISTINCT FROM o.split_value AND s.episode = 0
     WHERE s.breach
@@ -604,13 +608,13 @@ WHERE status = 'closed';
 -- Everything below commits in the run's one transaction, with the files read and the run record.
 INSERT INTO windows BY NAME
 SELECT
-    'rebuffering_ratio' AS check_name, key, key_text, split_value, seq, key_window, window_start, window_end,
+    'rebuffering_ratio' AS check_name, key, key_text, split_value, window_number, key_window, window_start, window_end,
     sessions, bad, value, baseline, history_windows, threshold, breach,
     $run_id AS run_id
 FROM judged;
 
 INSERT INTO key_windows BY NAME
-SELECT 'rebuffering_ratio' AS check_name, key, key_text, key_window, seq, window_start, window_end, sessions, bad,
+SELECT 'rebuffering_ratio' AS check_name, key, key_text, key_window, window_number, window_start, window_end, sessions, bad,
        $run_id AS run_id
 FROM new_key_windows;
 
@@ -618,7 +622,7 @@ DELETE FROM key_state
 WHERE check_name = 'rebuffering_ratio' AND key IN (SELECT key FROM new_key_windows);
 
 INSERT INTO key_state BY NAME
-SELECT 'rebuffering_ratio' AS check_name, key, max(seq) AS last_seq, max(window_end) AS last_end,
+SELECT 'rebuffering_ratio' AS check_name, key, max(window_number) AS last_window_number, max(window_end) AS last_end,
        max(key_window) AS windows
 FROM new_key_windows
 GROUP BY key;
@@ -643,7 +647,7 @@ DELETE FROM check_state WHERE check_name = 'rebuffering_ratio';
 
 INSERT INTO check_state BY NAME
 SELECT 'rebuffering_ratio' AS check_name, current AS watermark, $definition AS definition_hash, $run_id AS last_run_id
-FROM clock;
+FROM watermarks;
 
 INSERT INTO files_read BY NAME
 SELECT 'rebuffering_ratio' AS check_name, 'sessions' AS source_name, f.path, f.size,
@@ -655,7 +659,7 @@ INSERT INTO run_checks BY NAME
 SELECT
     $run_id AS run_id, 'rebuffering_ratio' AS check_name,
     len($manifest) AS files_read,
-    c.rows_read, c.rows_invalid, c.rows_excluded, c.rows_filtered, c.duplicate_rows,
+    c.rows_read, c.invalid_rows, c.rows_excluded, c.rows_filtered, c.duplicate_rows,
     -- late for its window, or by more than dedup_horizon behind the data already read
     (SELECT late_rows FROM window_counts) + c.beyond_horizon AS late_rows,
     c.beyond_horizon,
@@ -664,5 +668,5 @@ SELECT
     (SELECT count(*) FROM judged WHERE breach) AS breach_windows,
     (SELECT count(*) FROM event_rows WHERE event = 'opened') AS alerts_opened,
     (SELECT count(*) FROM event_rows WHERE event = 'closed') AS alerts_closed,
-    (SELECT current FROM clock) AS watermark
+    (SELECT current FROM watermarks) AS watermark
 FROM scan_counts AS c;

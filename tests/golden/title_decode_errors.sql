@@ -98,7 +98,7 @@ valid AS (
 )
 SELECT
     count(*) AS rows_read,
-    count(*) FILTER (WHERE __session_id IS NULL OR __event_time IS NULL) AS rows_invalid,
+    count(*) FILTER (WHERE __session_id IS NULL OR __event_time IS NULL) AS invalid_rows,
     any_value(valid.rows_valid) - any_value(valid.beyond_horizon) - any_value(kept.sessions) AS duplicate_rows,
     any_value(valid.beyond_horizon) AS beyond_horizon,
     any_value(kept.excluded) AS rows_excluded,
@@ -168,10 +168,11 @@ FROM (
     )
 );
 
--- The watermark: the largest sane event time read by this check so far, this run's files included;
--- when a backlog is read in several runs, no later than the earliest session still unread
--- (read_until), so nothing still to come lands in a window already closed.
-CREATE OR REPLACE TEMP TABLE clock AS
+-- The check's watermarks: `previous`, where its last run left it, and `current`, the largest sane
+-- event time read by this check so far, this run's files included; when a backlog is read in
+-- several runs, no later than the earliest session still unread (read_until), so nothing still to
+-- come lands in a window already closed.
+CREATE OR REPLACE TEMP TABLE watermarks AS
 SELECT
     prior.watermark AS previous,
     greatest(prior.watermark, least(c.latest, coalesce((SELECT read_until FROM read_limits), c.latest))) AS current
@@ -180,8 +181,8 @@ FROM (SELECT (SELECT watermark FROM check_state WHERE check_name = 'title_decode
 
 CREATE OR REPLACE TEMP TABLE scan_counts AS
 SELECT
-    c.rows_read, c.rows_invalid, c.duplicate_rows, c.rows_excluded, c.beyond_horizon,
-    c.rows_read - c.rows_invalid - c.duplicate_rows - c.beyond_horizon - c.rows_excluded - a.rows_kept AS rows_filtered,
+    c.rows_read, c.invalid_rows, c.duplicate_rows, c.rows_excluded, c.beyond_horizon,
+    c.rows_read - c.invalid_rows - c.duplicate_rows - c.beyond_horizon - c.rows_excluded - a.rows_kept AS rows_filtered,
     a.rows_kept,
     a.nonfinite_values
 FROM lake_counts AS c, (SELECT count(*) AS rows_kept, count(*) FILTER (WHERE nonfinite) AS nonfinite_values FROM arrivals) AS a;
@@ -191,7 +192,7 @@ FROM lake_counts AS c, (SELECT count(*) AS rows_kept, count(*) FILTER (WHERE non
 -- window that is not full INTERVAL 6 HOUR after its first session closes as it is once the
 -- watermark has passed that moment. Partial windows are carried to the next run.
 CREATE OR REPLACE TEMP TABLE series_last AS
-SELECT {'site': key['site'], 'title_id': key['title_id']} AS key, last_seq, last_end
+SELECT {'site': key['site'], 'title_id': key['title_id']} AS key, last_window_number, last_end
 FROM key_state
 WHERE check_name = 'title_decode_errors';
 
@@ -225,7 +226,7 @@ WINDOW in_order AS (PARTITION BY p.key ORDER BY p.event_time, p.session_id);
 CREATE OR REPLACE TEMP TABLE cuts AS
 WITH starts AS (
     SELECT key, i, event_time,
-           event_time + INTERVAL 6 HOUR < (SELECT current FROM clock) AS times_out
+           event_time + INTERVAL 6 HOUR < (SELECT current FROM watermarks) AS times_out
     FROM pooled
     WHERE is_cut
 )
@@ -241,54 +242,59 @@ ASOF LEFT JOIN (
     ON t.key = c.key
    AND t.at <= epoch_us(c.event_time + INTERVAL 6 HOUR)::HUGEINT * 1000000000000 + 999999999999;
 
--- Runs of full windows per series, from the start of the pool to the first cut on the run's
--- stride; after a cut that times out the next run starts behind it. One step per cut, all series at once.
-CREATE OR REPLACE TEMP TABLE runs_of_windows AS
-WITH RECURSIVE seg(key, o, a, a_lim, closes) AS (
+-- Spans of full windows per series: each starts at position span_start (the start of the pool, or
+-- just behind a cut that timed out) and runs to the first cut on its stride, at position cut_start
+-- (NULL: no cut, full windows to the end). When that cut times out (cut_closes), its window holds
+-- the sessions up to position cut_end and the next span starts behind it. One step per cut, all
+-- series at once.
+CREATE OR REPLACE TEMP TABLE full_window_spans AS
+WITH RECURSIVE span(key, span_start, cut_start, cut_end, cut_closes) AS (
     SELECT key, 0::BIGINT, min(i), arg_min(lim, i), arg_min(times_out, i)
     FROM cuts
     WHERE i % 30 = 0
     GROUP BY key
     UNION ALL
-    SELECT c.key, s.a_lim + 1, min(c.i), arg_min(c.lim, c.i), arg_min(c.times_out, c.i)
-    FROM seg AS s
-    JOIN cuts AS c ON c.key = s.key AND c.i > s.a_lim AND (c.i - s.a_lim - 1) % 30 = 0
-    WHERE s.closes
-    GROUP BY c.key, s.a_lim
+    SELECT c.key, s.cut_end + 1, min(c.i), arg_min(c.lim, c.i), arg_min(c.times_out, c.i)
+    FROM span AS s
+    JOIN cuts AS c ON c.key = s.key AND c.i > s.cut_end AND (c.i - s.cut_end - 1) % 30 = 0
+    WHERE s.cut_closes
+    GROUP BY c.key, s.cut_end
 )
-SELECT key, o, a, a_lim, closes FROM seg
+SELECT key, span_start, cut_start, cut_end, cut_closes FROM span
 UNION ALL
 -- after the last cut that timed out, or where a series has no cut on its stride: full windows to the end
-SELECT key, o, NULL, NULL, NULL
+SELECT key, span_start, NULL, NULL, NULL
 FROM (
-    SELECT p.key, coalesce(max(s.a_lim) + 1, 0) AS o, count(s.key) AS n_cuts,
-           arg_max(s.closes, s.o) AS last_closes
+    SELECT p.key, coalesce(max(s.cut_end) + 1, 0) AS span_start, count(s.key) AS cuts_found,
+           arg_max(s.cut_closes, s.span_start) AS last_cut_closes
     FROM (SELECT DISTINCT key FROM pooled) AS p
-    LEFT JOIN seg AS s ON s.key = p.key
+    LEFT JOIN span AS s ON s.key = p.key
     GROUP BY p.key
 )
-WHERE n_cuts = 0 OR last_closes;
+WHERE cuts_found = 0 OR last_cut_closes;
 
--- Each pooled session's window, named by the position of its first session (NULL: still open); a
--- view: a run holds every table it makes until it commits, and this one would be another copy.
+-- Each pooled session's window, named by the position of its first session (w0; NULL: still open);
+-- a view: a run holds every table it makes until it commits, and this one would be another copy.
 CREATE OR REPLACE TEMP VIEW placed AS
 WITH spans AS (
-    SELECT *, coalesce(lead(o) OVER (PARTITION BY key ORDER BY o), 9223372036854775807) AS next_o
-    FROM runs_of_windows
+    SELECT *, coalesce(lead(span_start) OVER (PARTITION BY key ORDER BY span_start), 9223372036854775807) AS next_span_start
+    FROM full_window_spans
 )
 SELECT
     p.*,
     CASE
-        WHEN r.a IS NULL OR p.i < r.a THEN r.o + (p.i - r.o) // 30 * 30
-        WHEN r.closes AND p.i <= r.a_lim THEN r.a
+        WHEN r.cut_start IS NULL OR p.i < r.cut_start
+            THEN r.span_start + (p.i - r.span_start) // 30 * 30
+        WHEN r.cut_closes AND p.i <= r.cut_end THEN r.cut_start
     END AS w0
 FROM pooled AS p
-JOIN spans AS r ON p.key = r.key AND p.i >= r.o AND p.i < r.next_o;
+JOIN spans AS r ON p.key = r.key AND p.i >= r.span_start AND p.i < r.next_span_start;
 
+-- window_number: count windows are numbered 1, 2, 3 … in each series, on from its last window.
 CREATE OR REPLACE TEMP TABLE closed_windows AS
 SELECT
     w.key, w.w0, w.window_start, w.window_end,
-    coalesce(s.last_seq, 0) + row_number() OVER (PARTITION BY w.key ORDER BY w.w0) AS seq
+    coalesce(s.last_window_number, 0) + row_number() OVER (PARTITION BY w.key ORDER BY w.w0) AS window_number
 FROM (
     SELECT key, w0, min(event_time) AS window_start, max(event_time) AS window_end
     FROM placed
@@ -299,7 +305,7 @@ LEFT JOIN series_last AS s ON s.key = w.key;
 
 -- A view: the measure stage reads it once.
 CREATE OR REPLACE TEMP VIEW window_sessions AS
-SELECT p.* EXCLUDE (i, is_cut, held, w0), w.seq, w.window_start, w.window_end
+SELECT p.* EXCLUDE (i, is_cut, held, w0), w.window_number, w.window_start, w.window_end
 FROM placed AS p
 JOIN closed_windows AS w ON w.key = p.key AND w.w0 = p.w0;
 
@@ -318,43 +324,43 @@ SELECT count(*) FILTER (WHERE late) AS late_rows FROM pooled;
 -- The window's sessions and bad sessions per error_code value, read from the sessions once.
 CREATE OR REPLACE TEMP TABLE split_counts AS
 SELECT
-    key, seq, split_value,
+    key, window_number, split_value,
     min(window_start) AS window_start,
     max(window_end) AS window_end,
     count(*) AS sessions,
     count(*) FILTER (WHERE is_bad) AS bad
 FROM window_sessions
-GROUP BY key, seq, split_value;
+GROUP BY key, window_number, split_value;
 
 CREATE OR REPLACE TEMP TABLE key_window_stats AS
 SELECT
     MAP {'site': struct_extract(key, 'site'), 'title_id': struct_extract(key, 'title_id')} AS key,
     'site=' || CASE WHEN struct_extract(key, 'site') IS NULL THEN '<null>' WHEN regexp_matches(struct_extract(key, 'site'), '^[\p{L}\p{N}_.:/@+-]+$') THEN struct_extract(key, 'site') ELSE '"' || replace(replace(struct_extract(key, 'site'), '\', '\\'), '"', '\"') || '"' END || ', ' || 'title_id=' || CASE WHEN struct_extract(key, 'title_id') IS NULL THEN '<null>' WHEN regexp_matches(struct_extract(key, 'title_id'), '^[\p{L}\p{N}_.:/@+-]+$') THEN struct_extract(key, 'title_id') ELSE '"' || replace(replace(struct_extract(key, 'title_id'), '\', '\\'), '"', '\"') || '"' END AS key_text,
-    seq,
+    window_number,
     min(window_start) AS window_start,
     max(window_end) AS window_end,
     sum(sessions)::BIGINT AS sessions,
     sum(bad)::BIGINT AS bad,
     sum(bad) / sum(sessions) AS value
 FROM split_counts
-GROUP BY key, seq;
+GROUP BY key, window_number;
 
 -- key_window: the ordinal of the window among all of its key's windows, across runs
 CREATE OR REPLACE TEMP TABLE new_key_windows AS
 SELECT
     w.*,
-    coalesce(s.windows, 0) + row_number() OVER (PARTITION BY w.key ORDER BY w.seq) AS key_window
+    coalesce(s.windows, 0) + row_number() OVER (PARTITION BY w.key ORDER BY w.window_number) AS key_window
 FROM key_window_stats AS w
 LEFT JOIN key_state AS s ON s.check_name = 'title_decode_errors' AND s.key = w.key;
 
 CREATE OR REPLACE TEMP TABLE new_windows AS
 WITH bad_by_value AS (
-    SELECT MAP {'site': struct_extract(key, 'site'), 'title_id': struct_extract(key, 'title_id')} AS key, seq, split_value, bad
+    SELECT MAP {'site': struct_extract(key, 'site'), 'title_id': struct_extract(key, 'title_id')} AS key, window_number, split_value, bad
     FROM split_counts
     WHERE bad > 0
 ),
 known AS (
-    -- each split value of a key, from the first window it was seen in (earlier runs: seq 0)
+    -- each split value of a key, from the first window it was seen in (earlier runs: window_number 0)
     SELECT key, split_value, min(since) AS since
     FROM (
         SELECT key, split_value, 0 AS since
@@ -362,18 +368,18 @@ known AS (
         WHERE check_name = 'title_decode_errors' AND key IN (SELECT key FROM new_key_windows)
         GROUP BY key, split_value
         UNION ALL
-        SELECT key, split_value, seq FROM bad_by_value
+        SELECT key, split_value, window_number FROM bad_by_value
     )
     GROUP BY key, split_value
 )
 SELECT
-    w.key, w.key_text, k.split_value, w.seq, w.key_window, w.window_start, w.window_end, w.sessions,
+    w.key, w.key_text, k.split_value, w.window_number, w.key_window, w.window_start, w.window_end, w.sessions,
     coalesce(b.bad, 0) AS bad,
     coalesce(b.bad, 0) / w.sessions AS value
 FROM new_key_windows AS w
-JOIN known AS k ON k.key = w.key AND w.seq >= k.since
+JOIN known AS k ON k.key = w.key AND w.window_number >= k.since
 LEFT JOIN bad_by_value AS b
-    ON b.key = w.key AND b.seq = w.seq AND b.split_value IS NOT DISTINCT FROM k.split_value;
+    ON b.key = w.key AND b.window_number = w.window_number AND b.split_value IS NOT DISTINCT FROM k.split_value;
 
 -- ── stage 4 · verdict ──────────────────────────────────────────────────────────────────────
 -- Each new window's baseline, threshold and verdict.
@@ -397,7 +403,7 @@ LEFT JOIN bad_by_value AS b
 -- seen late, its key's quiet windows before it), the last 10 of each series.
 CREATE OR REPLACE TEMP TABLE history AS
 WITH earlier AS (
-    SELECT w.key, w.split_value, w.seq, w.key_window, w.value, w.sessions, w.bad, w.breach
+    SELECT w.key, w.split_value, w.window_number, w.key_window, w.value, w.sessions, w.bad, w.breach
     FROM windows AS w
     SEMI JOIN (SELECT DISTINCT key, split_value FROM new_windows) AS n
         ON w.key = n.key AND w.split_value IS NOT DISTINCT FROM n.split_value
@@ -411,20 +417,20 @@ first_seen AS (
 ),
 quiet AS (
     -- a split value first seen in its key's n-th window had no bad session in the n-1 before
-    SELECT f.key, f.split_value, k.seq, 0.0::DOUBLE AS value, k.sessions, 0::BIGINT AS bad
+    SELECT f.key, f.split_value, k.window_number, 0.0::DOUBLE AS value, k.sessions, 0::BIGINT AS bad
     FROM first_seen AS f
-    JOIN (SELECT key, key_window, seq, sessions FROM key_windows WHERE check_name = 'title_decode_errors'
-          UNION ALL SELECT key, key_window, seq, sessions FROM new_key_windows) AS k
+    JOIN (SELECT key, key_window, window_number, sessions FROM key_windows WHERE check_name = 'title_decode_errors'
+          UNION ALL SELECT key, key_window, window_number, sessions FROM new_key_windows) AS k
         ON k.key = f.key AND k.key_window < f.first_window
         AND k.key_window >= f.first_window - 10
 )
-SELECT key, split_value, seq, value, sessions, bad
+SELECT key, split_value, window_number, value, sessions, bad
 FROM (
-    SELECT key, split_value, seq, value, sessions, bad FROM earlier WHERE NOT breach AND value IS NOT NULL
+    SELECT key, split_value, window_number, value, sessions, bad FROM earlier WHERE NOT breach AND value IS NOT NULL
     UNION ALL
-    SELECT key, split_value, seq, value, sessions, bad FROM quiet
+    SELECT key, split_value, window_number, value, sessions, bad FROM quiet
 )
-QUALIFY row_number() OVER (PARTITION BY key, split_value ORDER BY seq DESC) <= 10;
+QUALIFY row_number() OVER (PARTITION BY key, split_value ORDER BY window_number DESC) <= 10;
 
 -- judged: the new windows with their verdicts so far; `changed` marks those whose breach flag
 -- changed in the last round (at first, all of them).
@@ -454,11 +460,11 @@ WITH moving AS (
     SELECT DISTINCT key, split_value FROM judged WHERE changed
 ),
 series_rows AS (
-    SELECT h.key, h.split_value, h.seq, h.value, h.sessions, h.bad, false AS is_new, true AS eligible
+    SELECT h.key, h.split_value, h.window_number, h.value, h.sessions, h.bad, false AS is_new, true AS eligible
     FROM history AS h
     SEMI JOIN moving AS s ON h.key = s.key AND h.split_value IS NOT DISTINCT FROM s.split_value
     UNION ALL
-    SELECT j.key, j.split_value, j.seq, j.value, j.sessions, j.bad, true, NOT j.breach AND j.value IS NOT NULL
+    SELECT j.key, j.split_value, j.window_number, j.value, j.sessions, j.bad, true, NOT j.breach AND j.value IS NOT NULL
     FROM judged AS j
     SEMI JOIN moving AS s ON j.key = s.key AND j.split_value IS NOT DISTINCT FROM s.split_value
 ),
@@ -467,13 +473,13 @@ numbered AS (
     -- [hb - history, hb - 1], whatever breached windows lie between them
     SELECT *,
         coalesce(count(*) FILTER (WHERE eligible) OVER (
-            PARTITION BY key, split_value ORDER BY seq ROWS BETWEEN UNBOUNDED PRECEDING AND 1 PRECEDING
+            PARTITION BY key, split_value ORDER BY window_number ROWS BETWEEN UNBOUNDED PRECEDING AND 1 PRECEDING
         ), 0) AS hb
     FROM series_rows
 ),
 framed AS (
     SELECT
-        key, split_value, seq, is_new,
+        key, split_value, window_number, is_new,
         quantile_cont(value, 0.9) FILTER (WHERE eligible) OVER earlier AS baseline,
         count(*) FILTER (WHERE eligible) OVER earlier AS history_windows
     FROM numbered
@@ -481,7 +487,7 @@ framed AS (
         PARTITION BY key, split_value ORDER BY hb RANGE BETWEEN 10 PRECEDING AND 1 PRECEDING
     )
 )
-SELECT key, split_value, seq, baseline, history_windows
+SELECT key, split_value, window_number, baseline, history_windows
 FROM framed
 WHERE is_new;
 
@@ -498,12 +504,12 @@ SELECT
     , false) AS breach
 FROM (
     SELECT
-        j.key, j.split_value, j.seq, j.value, j.sessions, j.bad, base.baseline, base.history_windows,
+        j.key, j.split_value, j.window_number, j.value, j.sessions, j.bad, base.baseline, base.history_windows,
         CASE WHEN base.history_windows >= 3 THEN
             greatest(0.05, 1.5 * base.baseline)
         END AS threshold
     FROM judged AS j
-    JOIN baselines AS base ON j.key = base.key AND j.split_value IS NOT DISTINCT FROM base.split_value AND j.seq = base.seq
+    JOIN baselines AS base ON j.key = base.key AND j.split_value IS NOT DISTINCT FROM base.split_value AND j.window_number = base.window_number
 );
 
 -- What the round changed: only the windows whose breach flag differs from the last round's.
@@ -517,7 +523,7 @@ SET
     changed = judged.breach IS DISTINCT FROM r.breach,
     breach = r.breach
 FROM round_verdicts AS r
-WHERE judged.key = r.key AND judged.split_value IS NOT DISTINCT FROM r.split_value AND judged.seq = r.seq;
+WHERE judged.key = r.key AND judged.split_value IS NOT DISTINCT FROM r.split_value AND judged.window_number = r.window_number;
 
 -- @statement still_changing
 -- The end of a round: how many breach flags it changed. The loop stops at 0.
@@ -542,11 +548,11 @@ WITH relevant AS (
 ),
 ordered AS (
     SELECT
-        j.key, j.key_text, j.split_value, j.seq, j.window_start, j.window_end, j.value, j.threshold,
+        j.key, j.key_text, j.split_value, j.window_number, j.window_start, j.window_end, j.value, j.threshold,
         j.bad, j.sessions, j.breach,
         -- no verdict without a value (a zero denominator, an empty window): neither healthy nor a breach
         j.threshold IS NOT NULL AND j.value IS NOT NULL AND NOT j.breach AS healthy,
-        coalesce(lag(j.window_end) OVER (PARTITION BY j.key, j.split_value ORDER BY j.seq), l.last_end) AS prev_end,
+        coalesce(lag(j.window_end) OVER (PARTITION BY j.key, j.split_value ORDER BY j.window_number), l.last_end) AS prev_end,
         o.alert_id IS NOT NULL AS carried,
         coalesce(o.healthy_streak, 0) AS streak0
     FROM judged AS j
@@ -560,7 +566,7 @@ stretched AS (
         *,
         coalesce(prev_end + INTERVAL 1 DAY < window_end, false) AS gap,
         coalesce(count(*) FILTER (WHERE breach) OVER (
-            PARTITION BY key, split_value ORDER BY seq ROWS BETWEEN UNBOUNDED PRECEDING AND 1 PRECEDING
+            PARTITION BY key, split_value ORDER BY window_number ROWS BETWEEN UNBOUNDED PRECEDING AND 1 PRECEDING
         ), 0) AS stretch
     FROM ordered
 ),
@@ -573,28 +579,29 @@ counted AS (
         stretch > 0 OR carried AS breached_before
     FROM stretched
     WINDOW within AS (
-        PARTITION BY key, split_value, stretch ORDER BY seq ROWS BETWEEN UNBOUNDED PRECEDING AND 1 PRECEDING
+        PARTITION BY key, split_value, stretch ORDER BY window_number ROWS BETWEEN UNBOUNDED PRECEDING AND 1 PRECEDING
     )
 ),
 flagged AS (
-    SELECT *, breached_before AND NOT gap_before AND healthy_before < 2 AS open_at
+    -- is_open: an alert of the series is open when this window comes (before it counts)
+    SELECT *, breached_before AND NOT gap_before AND healthy_before < 2 AS is_open
     FROM counted
 )
 SELECT
     *,
-    open_at AND gap AS expires_here,
-    open_at AND NOT gap AND healthy AND healthy_before + 1 >= 2 AS recovers_here,
-    breach AND NOT (open_at AND NOT gap) AS opens_here,
-    breach AND open_at AND NOT gap AS continues_here
+    is_open AND gap AS expires_here,
+    is_open AND NOT gap AND healthy AND healthy_before + 1 >= 2 AS recovers_here,
+    breach AND NOT (is_open AND NOT gap) AS opens_here,
+    breach AND is_open AND NOT gap AS continues_here
 FROM flagged;
 
 CREATE OR REPLACE TEMP TABLE episode_steps AS
 SELECT
     *,
     -- episode 0 is the alert already open before this run
-    sum(opens_here::INTEGER) OVER (PARTITION BY key, split_value ORDER BY seq ROWS UNBOUNDED PRECEDING) AS episode,
+    sum(opens_here::INTEGER) OVER (PARTITION BY key, split_value ORDER BY window_number ROWS UNBOUNDED PRECEDING) AS episode,
     coalesce(sum(opens_here::INTEGER) OVER (
-        PARTITION BY key, split_value ORDER BY seq ROWS BETWEEN UNBOUNDED PRECEDING AND 1 PRECEDING
+        PARTITION BY key, split_value ORDER BY window_number ROWS BETWEEN UNBOUNDED PRECEDING AND 1 PRECEDING
     ), 0) AS episode_before
 FROM steps;
 
@@ -604,13 +611,13 @@ WITH breaches AS (
         key, any_value(key_text) AS key_text, split_value, episode,
         min(window_end) FILTER (WHERE opens_here) AS opened_at,
         min(window_start) FILTER (WHERE opens_here) AS breach_started_at,
-        min(seq) FILTER (WHERE opens_here) AS opened_seq,
-        arg_min(threshold, seq) FILTER (WHERE opens_here) AS open_threshold,
+        min(window_number) FILTER (WHERE opens_here) AS opened_window,
+        arg_min(threshold, window_number) FILTER (WHERE opens_here) AS open_threshold,
         count(*) AS breach_windows,
         sum(coalesce(bad, sessions)) AS affected_sessions,
         max(value) AS peak_value,
         max(window_end) AS last_breach_at,
-        max(seq) AS last_breach_seq
+        max(window_number) AS last_breach_window
     FROM episode_steps
     WHERE breach
     GROUP BY key, split_value, episode
@@ -639,9 +646,9 @@ series_end AS (
 ),
 healthy_tail AS (
     -- healthy windows after the last breach of a series: the streak an open alert carries on
-    SELECT e.key, e.split_value, count(*) FILTER (WHERE e.healthy AND e.seq > coalesce(b.last_seq, -1)) AS n
+    SELECT e.key, e.split_value, count(*) FILTER (WHERE e.healthy AND e.window_number > coalesce(b.last_window, -1)) AS n
     FROM episode_steps AS e
-    LEFT JOIN (SELECT key, split_value, max(last_breach_seq) AS last_seq FROM breaches GROUP BY ALL) AS b
+    LEFT JOIN (SELECT key, split_value, max(last_breach_window) AS last_window FROM breaches GROUP BY ALL) AS b
         ON e.key = b.key AND e.split_value IS NOT DISTINCT FROM b.split_value
     GROUP BY e.key, e.split_value
 ),
@@ -652,7 +659,7 @@ merged AS (
         coalesce(b.key_text, o.key_text) AS key_text,
         coalesce(o.opened_at, b.opened_at) AS opened_at,
         coalesce(o.breach_started_at, b.breach_started_at) AS breach_started_at,
-        b.opened_seq,
+        b.opened_window,
         coalesce(o.threshold, b.open_threshold) AS threshold,
         coalesce(o.breach_windows, 0) + coalesce(b.breach_windows, 0) AS breach_windows,
         coalesce(o.affected_sessions, 0) + coalesce(b.affected_sessions, 0) AS affected_sessions,
@@ -675,15 +682,16 @@ merged AS (
 )
 SELECT
     *,
-    -- an alert still open whose series has been silent past expire_after at the watermark expires
+    -- silent_too_long: an alert still open whose series has had no window for expire_after at the
+    -- watermark expires
     closed_at IS NULL
-        AND last_window_end + INTERVAL 1 DAY < (SELECT current FROM clock) AS expires_at_watermark
+        AND last_window_end + INTERVAL 1 DAY < (SELECT current FROM watermarks) AS silent_too_long
 FROM merged;
 
 CREATE OR REPLACE TEMP TABLE alert_rows AS
 SELECT
     coalesce(prior_alert_id, substr(md5(to_json({
-        'check': 'title_decode_errors', 'key': key, 'split': split_value, 'opened_at': opened_at, 'seq': opened_seq,
+        'check': 'title_decode_errors', 'key': key, 'split': split_value, 'opened_at': opened_at, 'window_number': opened_window,
         'definition': $definition
     })::VARCHAR), 1, 16)) AS alert_id,
     'title_decode_errors' AS check_name,
@@ -691,14 +699,14 @@ SELECT
     key,
     key_text,
     split_value,
-    CASE WHEN closed_at IS NOT NULL OR expires_at_watermark THEN 'closed' ELSE 'open' END AS status,
-    CASE WHEN closed_at IS NOT NULL THEN close_reason WHEN expires_at_watermark THEN 'expired' END AS close_reason,
+    CASE WHEN closed_at IS NOT NULL OR silent_too_long THEN 'closed' ELSE 'open' END AS status,
+    CASE WHEN closed_at IS NOT NULL THEN close_reason WHEN silent_too_long THEN 'expired' END AS close_reason,
     opened_at,
     breach_started_at,
     last_breach_at,
     CASE
         WHEN closed_at IS NOT NULL THEN closed_at
-        WHEN expires_at_watermark THEN last_window_end + INTERVAL 1 DAY
+        WHEN silent_too_long THEN last_window_end + INTERVAL 1 DAY
     END AS closed_at,
     breach_windows,
     affected_sessions,
@@ -709,10 +717,10 @@ SELECT
     substr(md5(to_json({'check': 'title_decode_errors', 'key': key, 'split': split_value})::VARCHAR), 1, 16) AS fingerprint,
     coalesce(first_run_id, $run_id) AS first_run_id,
     $run_id AS last_run_id,
-    CASE WHEN closed_at IS NULL AND NOT expires_at_watermark THEN healthy_streak END AS healthy_streak,
+    CASE WHEN closed_at IS NULL AND NOT silent_too_long THEN healthy_streak END AS healthy_streak,
     $definition AS definition_hash,
     episode,
-    touched OR expires_at_watermark AS touched,
+    touched OR silent_too_long AS touched,
     close_value,
     close_threshold
 FROM episodes;
@@ -724,9 +732,9 @@ WITH breach_events AS (
         CASE WHEN s.opens_here THEN 'opened' ELSE 'updated' END AS event,
         s.value, s.threshold,
         coalesce(o.affected_sessions, 0) + sum(coalesce(s.bad, s.sessions)) OVER (
-            PARTITION BY s.key, s.split_value, s.episode ORDER BY s.seq ROWS UNBOUNDED PRECEDING
+            PARTITION BY s.key, s.split_value, s.episode ORDER BY s.window_number ROWS UNBOUNDED PRECEDING
         ) AS affected_sessions,
-        s.seq
+        s.window_number
     FROM episode_steps AS s
     LEFT JOIN open_alerts AS o ON s.key = o.key AND s.split_value IS NOT DISTINCT FROM o.split_value AND s.episode = 0
     WHERE s.breach
@@ -743,13 +751,13 @@ WHERE status = 'closed';
 -- Everything below commits in the run's one transaction, with the files read and the run record.
 INSERT INTO windows BY NAME
 SELECT
-    'title_decode_errors' AS check_name, key, key_text, split_value, seq, key_window, window_start, window_end,
+    'title_decode_errors' AS check_name, key, key_text, split_value, window_number, key_window, window_start, window_end,
     sessions, bad, value, baseline, history_windows, threshold, breach,
     $run_id AS run_id
 FROM judged;
 
 INSERT INTO key_windows BY NAME
-SELECT 'title_decode_errors' AS check_name, key, key_text, key_window, seq, window_start, window_end, sessions, bad,
+SELECT 'title_decode_errors' AS check_name, key, key_text, key_window, window_number, window_start, window_end, sessions, bad,
        $run_id AS run_id
 FROM new_key_windows;
 
@@ -757,7 +765,7 @@ DELETE FROM key_state
 WHERE check_name = 'title_decode_errors' AND key IN (SELECT key FROM new_key_windows);
 
 INSERT INTO key_state BY NAME
-SELECT 'title_decode_errors' AS check_name, key, max(seq) AS last_seq, max(window_end) AS last_end,
+SELECT 'title_decode_errors' AS check_name, key, max(window_number) AS last_window_number, max(window_end) AS last_end,
        max(key_window) AS windows
 FROM new_key_windows
 GROUP BY key;
@@ -782,7 +790,7 @@ DELETE FROM check_state WHERE check_name = 'title_decode_errors';
 
 INSERT INTO check_state BY NAME
 SELECT 'title_decode_errors' AS check_name, current AS watermark, $definition AS definition_hash, $run_id AS last_run_id
-FROM clock;
+FROM watermarks;
 
 INSERT INTO files_read BY NAME
 SELECT 'title_decode_errors' AS check_name, 'sessions' AS source_name, f.path, f.size,
@@ -794,7 +802,7 @@ INSERT INTO run_checks BY NAME
 SELECT
     $run_id AS run_id, 'title_decode_errors' AS check_name,
     len($manifest) AS files_read,
-    c.rows_read, c.rows_invalid, c.rows_excluded, c.rows_filtered, c.duplicate_rows,
+    c.rows_read, c.invalid_rows, c.rows_excluded, c.rows_filtered, c.duplicate_rows,
     -- late for its window, or by more than dedup_horizon behind the data already read
     (SELECT late_rows FROM window_counts) + c.beyond_horizon AS late_rows,
     c.beyond_horizon,
@@ -803,5 +811,5 @@ SELECT
     (SELECT count(*) FROM judged WHERE breach) AS breach_windows,
     (SELECT count(*) FROM event_rows WHERE event = 'opened') AS alerts_opened,
     (SELECT count(*) FROM event_rows WHERE event = 'closed') AS alerts_closed,
-    (SELECT current FROM clock) AS watermark
+    (SELECT current FROM watermarks) AS watermark
 FROM scan_counts AS c;

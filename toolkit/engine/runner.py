@@ -44,7 +44,7 @@ Progress = Callable[[str], None]
 STAGE_CONNECTION_STAGES = ("source", "scan", "window", "measure")
 MOVED_AFTER = {
     "source": ("lake_counts", "lake_file_rows"),
-    "measure": ("clock", "scan_counts", "carry_next", "window_counts", "new_key_windows", "new_windows"),
+    "measure": ("watermarks", "scan_counts", "carry_next", "window_counts", "new_key_windows", "new_windows"),
 }
 STREAMED = "kept_ids"
 DEFAULT_MAX_READ = 4 * 10**9  # bytes of Parquet per check and run: about 60M demo sessions
@@ -177,7 +177,7 @@ def _run(con: duckdb.DuckDBPyConnection, project: Project, run_id: int, checks: 
     listings: dict[str, list[lake.LakeFile]] = {}
     result = RunResult(run_id, "ok")
     # what each source scan of this run read: the run record counts rows once per scan
-    con.execute("CREATE OR REPLACE TEMP TABLE run_scans (rows_read BIGINT, rows_invalid BIGINT, "
+    con.execute("CREATE OR REPLACE TEMP TABLE run_scans (rows_read BIGINT, invalid_rows BIGINT, "
                 "duplicate_rows BIGINT, rows_excluded BIGINT)")
     con.execute("CREATE OR REPLACE TEMP TABLE run_retired (check_name VARCHAR, alerts_closed BIGINT)")
     stages = _stage_connection(con, project, compiled, rebuild)
@@ -202,7 +202,7 @@ def _run(con: duckdb.DuckDBPyConnection, project: Project, run_id: int, checks: 
                 source_stage = source_plan(readers)
                 params = _params(project, new_files, run_id, "", readers[0].name, group.read_until, source)
                 _run_stage(con, stages, f"source {source.name}", source_stage, params)
-                con.execute("INSERT INTO run_scans SELECT rows_read, rows_invalid, duplicate_rows, "
+                con.execute("INSERT INTO run_scans SELECT rows_read, invalid_rows, duplicate_rows, "
                             "rows_excluded FROM lake_counts")
                 result.warnings += _impossible_times(con, source)
             for check, sql in group.checks:
@@ -267,7 +267,7 @@ REPEATS_MIN = 100
 
 def _mostly_repeats(con: duckdb.DuckDBPyConnection) -> str | None:
     valid, repeats = con.execute(
-        "SELECT coalesce(sum(rows_read - rows_invalid), 0), coalesce(sum(duplicate_rows), 0) FROM run_scans"
+        "SELECT coalesce(sum(rows_read - invalid_rows), 0), coalesce(sum(duplicate_rows), 0) FROM run_scans"
     ).fetchone()
     if valid < REPEATS_MIN or repeats <= REPEATS_SHARE * valid:
         return None
@@ -627,14 +627,14 @@ def _record(con: duckdb.DuckDBPyConnection, run_id: int, started: datetime, name
         SELECT $run_id AS run_id, $started AS started_at, $finished AS finished_at, $status AS status,
                $checks AS checks, $rebuild AS rebuild,
                (SELECT count(DISTINCT (source_name, path)) FROM files_read WHERE run_id = $run_id) AS files_read,
-               s.rows_read, s.rows_excluded, s.duplicate_rows, c.late_rows, s.rows_invalid AS invalid_rows,
+               s.rows_read, s.rows_excluded, s.duplicate_rows, c.late_rows, s.invalid_rows,
                (SELECT count(DISTINCT path) FROM changed_files WHERE run_id = $run_id) AS changed_files,
                c.windows_written, c.alerts_opened,
                c.alerts_closed + (SELECT coalesce(sum(alerts_closed), 0) FROM run_retired) AS alerts_closed,
                $error AS error, c.nonfinite_values, $warning AS warning
         FROM (SELECT coalesce(sum(rows_read), 0) AS rows_read, coalesce(sum(rows_excluded), 0) AS rows_excluded,
                      coalesce(sum(duplicate_rows), 0) AS duplicate_rows,
-                     coalesce(sum(rows_invalid), 0) AS rows_invalid
+                     coalesce(sum(invalid_rows), 0) AS invalid_rows
               FROM run_scans) AS s,
              (SELECT coalesce(sum(late_rows), 0) AS late_rows, coalesce(sum(windows_written), 0) AS windows_written,
                      coalesce(sum(alerts_opened), 0) AS alerts_opened,

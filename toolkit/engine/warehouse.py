@@ -144,7 +144,16 @@ def migrate(con: duckdb.DuckDBPyConnection, project: Project) -> None:
 
 
 # (table, old name, new name) of the columns layout 3 renamed; CHANGELOG.md lists them for readers
-RENAMED_IN_3 = (("runs", "full_refresh", "rebuild"),)
+RENAMED_IN_3 = (
+    ("runs", "full_refresh", "rebuild"),
+    ("run_checks", "rows_invalid", "invalid_rows"),  # one name for one count, as in runs and files_read
+    ("windows", "seq", "window_number"),
+    ("key_windows", "seq", "window_number"),
+    ("key_state", "last_seq", "last_window_number"),
+    ("carry", "num", "numerator"),
+    ("carry", "den", "denominator"),
+    ("carry", "x", "quantile_input"),
+)
 
 
 def _layout_3(con: duckdb.DuckDBPyConnection, project: Project) -> None:
