@@ -329,6 +329,9 @@ def _execute_streamed(con: duckdb.DuckDBPyConnection, stages: duckdb.DuckDBPyCon
     """
     warehouse.finish_pending(stages)
     warehouse.finish_pending(con)
+    # a run before this one in the same call that ran the source stage in the transaction (the first
+    # run of a rebuild over a backlog) left its view of that name there; the stream takes the name
+    con.execute(f"DROP VIEW IF EXISTS {STREAMED}")
     reader = stages.sql(f"SELECT * FROM {STREAMED}").to_arrow_reader(STREAM_BATCH)
     con.register(STREAMED, reader)
     try:
