@@ -30,7 +30,7 @@ from toolkit.sql.quoting import interval, quote_ident, quote_literal
 #                         when it returns 0 (more rounds than LIMIT is an error)
 #   -- @end               the end of the loop
 _DIRECTIVE = re.compile(r"^-- @(statement|loop|end)\b(.*)$", re.MULTILINE)
-_STATEMENT_NAME = re.compile(r"^ ([a-z][a-z0-9_]*)$")
+_STATEMENT_NAME = re.compile(r"^ ([a-z][a-z0-9_]*(?:\.[a-z][a-z0-9_]*)*)$")
 _LOOP = re.compile(r"^ until ([a-z][a-z0-9_]*) = 0, at most ([a-z][a-z0-9_]*) rounds$")
 
 
@@ -44,6 +44,75 @@ class Statement:
 
     sql: str
     params: frozenset[str]
+
+    def bound(self, params: dict[str, Any]) -> dict[str, Any]:
+        """The values of the parameters this statement takes, from ``params``."""
+        missing = sorted(self.params - params.keys())
+        if missing:
+            raise KeyError(f"no value for ${', $'.join(missing)} in {self.sql[:60]!r}")
+        return {name: params[name] for name in self.params}
+
+
+@dataclass(frozen=True)
+class Named:
+    """A template of named statements: each ``-- @statement NAME`` section holds one or more
+    statements, which the code that rendered it executes by name (the run's own bookkeeping, the
+    lake's checks of new files, the warehouse's layout and copies). Names may be dotted, the first
+    part saying when a statement runs (``begin.transaction``)."""
+
+    template: str
+    sections: tuple[tuple[str, str, tuple[Statement, ...]], ...]  # (name, its text, its statements)
+
+    def __getitem__(self, name: str) -> tuple[Statement, ...]:
+        for found, _, statements_ in self.sections:
+            if found == name:
+                return statements_
+        raise KeyError(f"{self.template} has no statement named {name}")
+
+    def text(self, *names: str) -> str:
+        """The sections of ``names`` (a name ending in '.' stands for every section it begins), as
+        written in the template, each with its directive line, for ``plimsoll sql``."""
+        chosen = [text for n in names for name, text, _ in self.sections
+                  if name == n or (n.endswith(".") and name.startswith(n))]
+        if not chosen:
+            raise KeyError(f"{self.template} has no statement named {', '.join(names)}")
+        return "\n".join(chosen)
+
+
+def named(template: str, **context: Any) -> Named:
+    """A template of ``queries/`` rendered with ``context`` and read as named statements."""
+    return read_named(template, render(template, **context))
+
+
+def read_named(template: str, text: str) -> Named:
+    """Rendered SQL read as named statements. Text before the first ``-- @statement`` line is the
+    template's own preamble; comment lines at the end of a section introduce the next one and are
+    left out of it."""
+    text = tidy(text)
+    sections: list[tuple[str, str, tuple[Statement, ...]]] = []
+    for directive, argument, body in _parts(text):
+        if directive == "":
+            if statements(body):
+                raise TemplateError(f"{template}: statements before the first '-- @statement NAME'")
+            continue
+        found = _STATEMENT_NAME.match(argument)
+        if directive != "statement" or not found:
+            raise TemplateError(f"{template}: '-- @{directive}{argument}': only '-- @statement NAME' is read here")
+        body = _without_trailing_comments(body)
+        found_statements = statements(body)
+        if not found_statements:
+            raise TemplateError(f"{template}: '-- @statement {found.group(1)}' holds no statement")
+        if any(name == found.group(1) for name, _, _ in sections):
+            raise TemplateError(f"{template}: two statements named {found.group(1)}")
+        sections.append((found.group(1), f"-- @statement {found.group(1)}\n{body.strip(chr(10))}\n", found_statements))
+    return Named(template, tuple(sections))
+
+
+def _without_trailing_comments(body: str) -> str:
+    lines = body.rstrip("\n").split("\n")
+    while lines and (not lines[-1].strip() or lines[-1].lstrip().startswith("--")):
+        lines.pop()
+    return "\n".join(lines) + "\n"
 
 
 @dataclass(frozen=True)
