@@ -73,15 +73,17 @@ WITH bad_by_value AS (
     WHERE bad > 0
 ),
 known AS (
-    -- each split value of a key, from the first window it was seen in (earlier runs: window_number 0)
-    SELECT key, split_value, min(since) AS since
+    -- each split value of a key, and the first of the new windows it has a row in: a value seen in
+    -- an earlier run has one in every window (since NULL: whatever the window's number, which is
+    -- negative for time windows before 1970), a new one from its first bad session's window on
+    SELECT key, split_value, CASE WHEN bool_or(earlier) THEN NULL ELSE min(window_number) END AS since
     FROM (
-        SELECT key, split_value, 0 AS since
+        SELECT key, split_value, true AS earlier, NULL::BIGINT AS window_number
         FROM windows
         WHERE check_name = {{ check_lit }} AND key IN (SELECT key FROM new_key_windows)
         GROUP BY key, split_value
         UNION ALL
-        SELECT key, split_value, window_number FROM bad_by_value
+        SELECT key, split_value, false, window_number FROM bad_by_value
     )
     GROUP BY key, split_value
 )
@@ -90,7 +92,7 @@ SELECT
     coalesce(b.bad, 0) AS bad,
     coalesce(b.bad, 0) / w.sessions AS value
 FROM new_key_windows AS w
-JOIN known AS k ON k.key = w.key AND w.window_number >= k.since
+JOIN known AS k ON k.key = w.key AND (k.since IS NULL OR w.window_number >= k.since)
 LEFT JOIN bad_by_value AS b
     ON b.key = w.key AND b.window_number = w.window_number AND b.split_value IS NOT DISTINCT FROM k.split_value;
 {% else %}

@@ -296,3 +296,35 @@ def test_a_partition_folder_that_agrees_with_the_files_column_is_read(tmp_path: 
                                 {"site=news/1.parquet": hours(0, 4), "site=sport/1.parquet": hours(0, 4, "sport", "y")})
     run(load_project(project_file))
     assert {w[0] for w in windows(project_file)} == {"site=news", "site=sport"}
+
+
+SPLIT_SCHEMA = "session_id VARCHAR, ended_at TIMESTAMP, site VARCHAR, error_code VARCHAR"
+HOURLY_BY_CODE = """\
+check: codes
+source: sessions
+by: [site]
+measure: {kind: rate, bad: error_code IS NOT NULL, split: error_code}
+window: {every: 1h}
+baseline: {method: rolling_percentile, q: 0.5, history: 5, min_history: 2}
+"""
+
+
+def test_an_error_code_seen_in_an_earlier_run_keeps_its_series_before_1970(tmp_path: Path) -> None:
+    # A split value seen in an earlier run has a row in every later window of its key, 0 where it
+    # had no bad session: before 1970 too, where window numbers are negative.
+    start = datetime(1969, 12, 1)
+    first = [(f"a{i}", start + timedelta(hours=i // 5, minutes=i % 5), "kids", "E" if i == 3 else None)
+             for i in range(50)]
+    later = [(f"b{i}", start + timedelta(hours=10 + i // 5, minutes=i % 5), "kids", None) for i in range(50)]
+    apart = lake_project(tmp_path / "apart", {"c.yml": HOURLY_BY_CODE}, SPLIT_SCHEMA, {"1.parquet": first})
+    run(load_project(apart))
+    write_rows(tmp_path / "apart" / "lake", SPLIT_SCHEMA, later, "2.parquet")
+    run(load_project(apart))
+    together = lake_project(tmp_path / "together", {"c.yml": HOURLY_BY_CODE}, SPLIT_SCHEMA,
+                            {"1.parquet": first, "2.parquet": later})
+    run(load_project(together))
+    shown = ("SELECT split_value, window_number, window_start, sessions, bad, value FROM windows "
+             "ORDER BY split_value NULLS FIRST, window_number")
+    assert query(apart, shown) == query(together, shown)
+    assert query(apart, "SELECT count(*), max(window_start) FROM windows WHERE split_value = 'E'") == [
+        (19, datetime(1969, 12, 1, 18))]
