@@ -31,8 +31,7 @@ class CompiledCheck:
     def sql(self) -> str:
         """Every statement a run executes for the check, in order, as ``plimsoll sql`` shows it:
         the check's stages, and around them the run's own statements (:mod:`toolkit.sql.script`)."""
-        on_spark = any(type(s).__name__ == "SparkStatement" for stage in self.stages for s in stage.once)
-        body = (script(self.source, self.stages, on_spark) if self.source is not None
+        body = (script(self.source, self.stages) if self.source is not None
                 else "\n".join(stage.text.rstrip() + "\n" for stage in self.stages))
         return _HEADER.format(check=self.check) + body
 

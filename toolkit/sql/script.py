@@ -15,6 +15,7 @@ from functools import lru_cache
 import re
 
 from toolkit.model import Source
+from toolkit.sql.spark import SparkStatement
 from toolkit.sql.templates import Named, Stage, Statement, named, statement_kind
 
 # Stages that run on the stage connection (outside the run's transaction, except with --rebuild or
@@ -70,13 +71,14 @@ def layout_statements() -> Named:
     return named("layout.sql")
 
 
-def script(source: Source, stages: tuple[Stage, ...], on_spark: bool) -> str:
+def script(source: Source, stages: tuple[Stage, ...]) -> str:
     """Every statement a run executes for one check, in order, headed by when it runs: the run's
     start, the source's new files and its stage, the check's stages with the tables that cross
     between connections, the check's record, the run's end and the published copies."""
     run = run_statements()
     lake = lake_statements(source, PARTITION_SHOWN)
-    apart = not on_spark  # the per-session stages on a connection of their own (not with --rebuild)
+    # the per-session stages on a connection of their own: not on Spark (nor with --rebuild)
+    apart = not any(isinstance(s, SparkStatement) for stage in stages for s in stage.once)
     parts = [
         _heading("the run begins", "(not with --rebuild) the definitions the checks' windows were computed "
                  "with; then the run's number"),
