@@ -16,7 +16,7 @@ SELECT check_name, definition_hash FROM check_state;
 -- The run's number: one more than the last run's, whether that one succeeded or failed.
 SELECT coalesce(max(run_id), 0) + 1 AS run_id FROM runs;
 
--- ════ the run begins ════
+-- ════ the run's transaction begins ════
 
 -- @statement begin.run_tables
 -- What each reading of a source found (its rows count once per reading, however many checks share
