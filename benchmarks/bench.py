@@ -164,17 +164,18 @@ class _Stages:
 
         original = runner._execute
 
-        def timed(con: Any, who: str, stage: str, statement: Any, params: dict[str, Any]) -> Any:
+        def timed(con: Any, who: str, stage: str, statement: Any, params: dict[str, Any], **kw: Any) -> Any:
             t = time.perf_counter()
-            out = original(con, who, stage, statement, params)
+            out = original(con, who, stage, statement, params, **kw)
             spent = time.perf_counter() - t
             self.by_stage[stage] += spent
             self.by_check[who] += spent
             first = next((line for line in statement.sql.splitlines()
                           if line.strip() and not line.strip().startswith("--")), "")
             self.statements[f"{stage}: {first.strip()[:70]}"] += spent
-            used = con.execute("SELECT coalesce(sum(memory_usage_bytes), 0) FROM duckdb_memory()").fetchall()[0][0]
-            self.duckdb_peak = max(self.duckdb_peak, int(used))
+            if kw.get("fetch") != "reader":  # a stream left open: nothing else may run on its connection
+                used = con.execute("SELECT coalesce(sum(memory_usage_bytes), 0) FROM duckdb_memory()").fetchall()[0][0]
+                self.duckdb_peak = max(self.duckdb_peak, int(used))
             return out
 
         runner._execute = timed

@@ -156,7 +156,7 @@ WHERE s.r > 0;
 
 CREATE OR REPLACE TEMP TABLE title_windows AS
 SELECT 'site=' || coalesce(site, '<null>') || ', title_id=' || coalesce(title_id, '<null>') AS key_text,
-       error_code AS split_value, seq, window_start, window_end, sessions, bad, value, threshold, breach
+       error_code AS split_value, seq AS window_number, window_start, window_end, sessions, bad, value, threshold, breach
 FROM judged;
 
 CREATE OR REPLACE TEMP TABLE title_alerts AS

@@ -29,7 +29,7 @@ CASE WHEN {{ v }} IS NULL THEN '<null>' WHEN regexp_matches({{ v }}, '^[\p{L}\p{
 {%- endmacro %}
 {#- The columns a measure reads from each session: the window stage moves only these. -#}
 {% macro inputs(measure) -%}
-{% if measure.kind == "rate" %}is_bad, split_value{% elif measure.kind == "ratio" %}num, den{% else %}x{% endif %}
+{% if measure.kind == "rate" %}is_bad, split_value{% elif measure.kind == "ratio" %}numerator, denominator{% else %}quantile_input{% endif %}
 {%- endmacro %}
 {% macro same_series(a, b) -%}
 {{ a }}.key = {{ b }}.key AND {{ a }}.split_value IS NOT DISTINCT FROM {{ b }}.split_value

@@ -12,10 +12,10 @@ WITH chosen AS (
 series AS (
     SELECT
         c.alert_id, c.opened_at, c.closed_at,
-        w.seq, w.window_start, w.window_end, w.sessions, w.bad, w.value, w.statistic, w.threshold,
+        w.window_number, w.window_start, w.window_end, w.sessions, w.bad, w.value, w.statistic, w.threshold,
         coalesce(w.breach, false) AS breach,
         coalesce(w.statistic, w.value) AS plotted,
-        row_number() OVER (PARTITION BY c.alert_id ORDER BY w.seq) AS n
+        row_number() OVER (PARTITION BY c.alert_id ORDER BY w.window_number) AS n
     FROM chosen AS c
     JOIN windows AS w
         ON w.check_name = c.check_name AND w.key = c.key AND w.split_value IS NOT DISTINCT FROM c.split_value
@@ -44,14 +44,14 @@ bucketed AS (
 ranked AS (
     SELECT
         *,
-        row_number() OVER (PARTITION BY alert_id, bucket ORDER BY plotted DESC NULLS LAST, seq) AS from_top,
-        row_number() OVER (PARTITION BY alert_id, bucket ORDER BY plotted ASC NULLS LAST, seq) AS from_bottom,
-        row_number() OVER (PARTITION BY alert_id, bucket ORDER BY NOT breach, seq) AS first_breach
+        row_number() OVER (PARTITION BY alert_id, bucket ORDER BY plotted DESC NULLS LAST, window_number) AS from_top,
+        row_number() OVER (PARTITION BY alert_id, bucket ORDER BY plotted ASC NULLS LAST, window_number) AS from_bottom,
+        row_number() OVER (PARTITION BY alert_id, bucket ORDER BY NOT breach, window_number) AS first_breach
     FROM bucketed
 )
 SELECT
-    alert_id, seq, window_start, window_end, sessions, bad, value, statistic, threshold, breach, plotted,
+    alert_id, window_number, window_start, window_end, sessions, bad, value, statistic, threshold, breach, plotted,
     span_windows, thinned
 FROM ranked
 WHERE NOT thinned OR from_top = 1 OR from_bottom = 1 OR (breach AND first_breach = 1)
-ORDER BY alert_id, seq;
+ORDER BY alert_id, window_number;

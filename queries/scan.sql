@@ -16,20 +16,20 @@ SELECT
     split_value,
     NOT finite AS nonfinite
 {% elif measure.kind == "ratio" %}
-    CASE WHEN finite THEN num END AS num,
-    CASE WHEN finite THEN den END AS den,
+    CASE WHEN finite THEN numerator END AS numerator,
+    CASE WHEN finite THEN denominator END AS denominator,
     NOT finite AS nonfinite
 {% else %}
-    CASE WHEN finite THEN x END AS x,
+    CASE WHEN finite THEN quantile_input END AS quantile_input,
     NOT finite AS nonfinite
 {% endif %}
 FROM (
     SELECT
         *,
 {% if measure.kind == "ratio" %}
-        coalesce(isfinite(num) AND isfinite(den), true) AS finite
+        coalesce(isfinite(numerator) AND isfinite(denominator), true) AS finite
 {% elif measure.kind == "quantile" %}
-        coalesce(isfinite(x), true) AS finite
+        coalesce(isfinite(quantile_input), true) AS finite
 {% else %}
         true AS finite
 {% endif %}
@@ -42,10 +42,10 @@ FROM (
             coalesce({{ measure.bad.sql }}, false) AS is_bad,
             {% if measure.split %}{{ measure.split | ident }}::VARCHAR{% else %}NULL::VARCHAR{% endif %} AS split_value
 {% elif measure.kind == "ratio" %}
-            ({{ measure.numerator.sql }})::DOUBLE AS num,
-            ({{ measure.denominator.sql }})::DOUBLE AS den
+            ({{ measure.numerator.sql }})::DOUBLE AS numerator,
+            ({{ measure.denominator.sql }})::DOUBLE AS denominator
 {% elif measure.kind == "quantile" %}
-            ({{ measure.of.sql }})::DOUBLE AS x
+            ({{ measure.of.sql }})::DOUBLE AS quantile_input
 {% endif %}
         FROM lake_sessions
         WHERE NOT __excluded{% if check.where %} AND coalesce({{ check.where.sql }}, false){% endif %}
@@ -53,10 +53,11 @@ FROM (
     )
 );
 
--- The watermark: the largest sane event time read by this check so far, this run's files included;
--- when a backlog is read in several runs, no later than the earliest session still unread
--- (read_until), so nothing still to come lands in a window already closed.
-CREATE OR REPLACE TEMP TABLE clock AS
+-- The check's watermarks: `previous`, where its last run left it, and `current`, the largest sane
+-- event time read by this check so far, this run's files included; when a backlog is read in
+-- several runs, no later than the earliest session still unread (read_until), so nothing still to
+-- come lands in a window already closed.
+CREATE OR REPLACE TEMP TABLE watermarks AS
 SELECT
     prior.watermark AS previous,
     greatest(prior.watermark, least(c.latest, coalesce((SELECT read_until FROM read_limits), c.latest))) AS current
@@ -65,8 +66,8 @@ FROM (SELECT (SELECT watermark FROM check_state WHERE check_name = {{ check.name
 
 CREATE OR REPLACE TEMP TABLE scan_counts AS
 SELECT
-    c.rows_read, c.rows_invalid, c.duplicate_rows, c.rows_excluded, c.beyond_horizon,
-    c.rows_read - c.rows_invalid - c.duplicate_rows - c.beyond_horizon - c.rows_excluded - a.rows_kept AS rows_filtered,
+    c.rows_read, c.invalid_rows, c.duplicate_rows, c.rows_excluded, c.beyond_horizon,
+    c.rows_read - c.invalid_rows - c.duplicate_rows - c.beyond_horizon - c.rows_excluded - a.rows_kept AS rows_filtered,
     a.rows_kept,
     a.nonfinite_values
 FROM lake_counts AS c, (SELECT count(*) AS rows_kept, count(*) FILTER (WHERE nonfinite) AS nonfinite_values FROM arrivals) AS a;

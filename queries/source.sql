@@ -99,7 +99,7 @@ valid AS (
 )
 SELECT
     count(*) AS rows_read,
-    count(*) FILTER (WHERE __session_id IS NULL OR __event_time IS NULL) AS rows_invalid,
+    count(*) FILTER (WHERE __session_id IS NULL OR __event_time IS NULL) AS invalid_rows,
     any_value(valid.rows_valid) - any_value(valid.beyond_horizon) - any_value(kept.sessions) AS duplicate_rows,
     any_value(valid.beyond_horizon) AS beyond_horizon,
     any_value(kept.excluded) AS rows_excluded,

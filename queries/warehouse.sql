@@ -24,7 +24,7 @@ CREATE TABLE IF NOT EXISTS run_checks (
     check_name VARCHAR,
     files_read BIGINT,
     rows_read BIGINT,
-    rows_invalid BIGINT,
+    invalid_rows BIGINT,
     rows_excluded BIGINT,
     rows_filtered BIGINT,
     duplicate_rows BIGINT,
@@ -82,7 +82,7 @@ CREATE TABLE IF NOT EXISTS check_state (
 CREATE TABLE IF NOT EXISTS key_state (
     check_name VARCHAR,
     key MAP(VARCHAR, VARCHAR),
-    last_seq BIGINT,
+    last_window_number BIGINT,       -- the window_number of the key's last closed window
     last_end TIMESTAMP,
     windows BIGINT                   -- how many windows the key has closed
 );
@@ -95,9 +95,9 @@ CREATE TABLE IF NOT EXISTS carry (
     session_id VARCHAR,
     is_bad BOOLEAN,
     split_value VARCHAR,
-    num DOUBLE,
-    den DOUBLE,
-    x DOUBLE
+    numerator DOUBLE,                -- ratio measures: the session's numerator and denominator
+    denominator DOUBLE,
+    quantile_input DOUBLE            -- quantile measures: the session's value
 );
 
 CREATE TABLE IF NOT EXISTS key_windows (   -- every closed window of a key, whatever its split values
@@ -105,7 +105,7 @@ CREATE TABLE IF NOT EXISTS key_windows (   -- every closed window of a key, what
     key MAP(VARCHAR, VARCHAR),
     key_text VARCHAR,
     key_window BIGINT,
-    seq BIGINT,
+    window_number BIGINT,            -- as in windows
     window_start TIMESTAMP,
     window_end TIMESTAMP,
     sessions BIGINT,
@@ -118,7 +118,8 @@ CREATE TABLE IF NOT EXISTS windows (
     key MAP(VARCHAR, VARCHAR),
     key_text VARCHAR,
     split_value VARCHAR,
-    seq BIGINT,                      -- order within the series (time windows: epoch bucket number)
+    window_number BIGINT,            -- count windows: 1, 2, 3 … in the series; time windows: how many
+                                     -- windows of its length lie between 1970-01-01 and its start
     key_window BIGINT,               -- ordinal among the key's windows, 1, 2, 3 …
     window_start TIMESTAMP,
     window_end TIMESTAMP,

@@ -30,7 +30,7 @@ HEADER = "header"
 PIECES = (HEADER, *STAGES)
 SPARK_PROJECT = "engine: spark\nspark_master: local[2]\n" + PROJECT
 
-WINDOW_COLUMNS = ("key_text, split_value, seq, window_start, window_end, sessions, bad, "
+WINDOW_COLUMNS = ("key_text, split_value, window_number, window_start, window_end, sessions, bad, "
                   "round(value, 9) AS value, round(statistic, 9) AS statistic, round(baseline, 9) AS baseline, "
                   "history_windows, round(threshold, 9) AS threshold, breach")
 ALERT_COLUMNS = ("alert_id, key_text, split_value, status, close_reason, opened_at, last_breach_at, "
@@ -138,7 +138,7 @@ def result_tables(check_file: Path, folder: Path) -> tuple[str, str]:
     con = duckdb.connect(str(project.warehouse), read_only=True)
     try:
         windows = con.execute(
-            f"SELECT {WINDOW_COLUMNS} FROM windows ORDER BY key_text, split_value NULLS FIRST, seq").df()
+            f"SELECT {WINDOW_COLUMNS} FROM windows ORDER BY key_text, split_value NULLS FIRST, window_number").df()
         alerts = con.execute(f"SELECT {ALERT_COLUMNS} FROM alerts ORDER BY opened_at, key_text, split_value").df()
     finally:
         con.close()

@@ -132,13 +132,13 @@ def key_value(value: str | None) -> str:
 
 def alert_hash(check: str, by: tuple[str, ...], values: tuple[str | None, ...], split: str | None,
                opened_at: datetime | None, seq: int | None = None, definition: str = "") -> str:
-    """First 16 hex of md5 over the JSON of {'check','key','split'[,'opened_at','seq','definition']}
+    """First 16 hex of md5 over the JSON of {'check','key','split'[,'opened_at','window_number','definition']}
     as DuckDB writes it; ``definition`` is the check's compiled-definition hash, an opaque label."""
     key = "{" + ",".join(f"{json.dumps(c)}:{json.dumps(v)}" for c, v in zip(by, values)) + "}"
     parts = [f'"check":{json.dumps(check)}', f'"key":{key}', f'"split":{json.dumps(split)}']
     if opened_at is not None:
         parts.append(f'"opened_at":"{_ts_text(opened_at)}"')
-        parts.append(f'"seq":{seq}')
+        parts.append(f'"window_number":{seq}')
         parts.append(f'"definition":{json.dumps(definition)}')
     text = "{" + ",".join(parts) + "}"
     return hashlib.md5(text.encode("utf-8")).hexdigest()[:16]
@@ -240,7 +240,7 @@ def measure_rows(check: OracleCheck, windows: list[KeyWindow]) -> list[tuple[str
     out: list[tuple[str | None, Row]] = []
     seen: list[str | None] = []
     for ordinal, kw in enumerate(windows, start=1):
-        base = {"seq": kw.seq, "window_start": kw.start, "window_end": kw.end, "sessions": len(kw.rows),
+        base = {"window_number": kw.seq, "window_start": kw.start, "window_end": kw.end, "sessions": len(kw.rows),
                 "key_window": ordinal}
         if check.kind == "rate":
             flags = [truthy(check.bad(r)) for r in kw.rows]
@@ -426,7 +426,7 @@ def lifecycle(check: OracleCheck, series: list[Row], w: datetime, ident: dict[st
                 current = {
                     **ident,
                     "alert_id": alert_hash(check.name, ident["_by"], ident["_values"], ident["split_value"], end,
-                                           win["seq"], check.definition),
+                                           win["window_number"], check.definition),
                     "fingerprint": alert_hash(check.name, ident["_by"], ident["_values"], ident["split_value"], None),
                     "severity": check.severity, "status": "open", "close_reason": None,
                     "opened_at": end, "last_breach_at": end, "closed_at": None, "breach_windows": 1,
@@ -499,7 +499,7 @@ def _text_order(v: str | None) -> tuple[bool, str]:
 
 
 def window_order(r: Row) -> tuple:
-    return (r["key_text"], _text_order(r["split_value"]), r["seq"])
+    return (r["key_text"], _text_order(r["split_value"]), r["window_number"])
 
 
 def alert_order(r: Row) -> tuple:

@@ -112,5 +112,5 @@ def test_a_late_session_is_counted_and_changes_nothing() -> None:
     assert late == [(0,), (1,)]
     window = next(w for w in expected["windows"]
                   if w["key_text"] == "site=kids" and w["window_start"] <= held["ended_at"] < w["window_end"])
-    changed = next(w for w in got["windows"] if w["key_text"] == "site=kids" and w["seq"] == window["seq"])
+    changed = next(w for w in got["windows"] if w["key_text"] == "site=kids" and w["window_number"] == window["window_number"])
     assert changed["sessions"] == window["sessions"] - 1         # the late one never joined its window

@@ -76,8 +76,8 @@ def test_a_step_to_three_times_the_rate_is_caught_within_two_windows(tmp_path: P
     step_at = 30
     con = duckdb.connect(str(simulate(tmp_path, step_at)), read_only=True)
     first = con.execute(
-        "SELECT min(w.seq - s.first_seq) FROM windows AS w, "
-        "(SELECT min(seq) AS first_seq FROM windows WHERE key_text = 'series=s-0') AS s "
+        "SELECT min(w.window_number - s.first_window) FROM windows AS w, "
+        "(SELECT min(window_number) AS first_window FROM windows WHERE key_text = 'series=s-0') AS s "
         "WHERE w.key_text = 'series=s-0' AND w.breach").fetchone()[0]
     assert first is not None and step_at <= first <= step_at + 1
     alert = con.execute("SELECT count(*) FROM alerts WHERE key_text = 'series=s-0'").fetchone()[0]

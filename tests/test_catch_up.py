@@ -37,7 +37,7 @@ sources:
     exclude: is_bot
 """
 RESULTS = {
-    "windows": "check_name, key_text, split_value, seq, window_start, window_end, sessions, bad, value, "
+    "windows": "check_name, key_text, split_value, window_number, window_start, window_end, sessions, bad, value, "
                "threshold, breach",
     "alerts": "alert_id, check_name, key_text, split_value, status, close_reason, opened_at, closed_at, "
               "breach_windows, affected_sessions, peak_value",
@@ -149,8 +149,8 @@ def sessions(prefix: str, hour: int, count: int, bad_every: int = 5) -> list[tup
 def windows_of(project_file: Path, check: str) -> list[tuple]:
     con = duckdb.connect(str(project_file.parent / "w.duckdb"), read_only=True)
     try:
-        return con.execute("SELECT seq, window_start, window_end, sessions, bad, breach FROM windows "
-                           "WHERE check_name = $c ORDER BY seq", {"c": check}).fetchall()
+        return con.execute("SELECT window_number, window_start, window_end, sessions, bad, breach FROM windows "
+                           "WHERE check_name = $c ORDER BY window_number", {"c": check}).fetchall()
     finally:
         con.close()
 

@@ -27,7 +27,7 @@ GOLDEN = Path(__file__).parent / "golden"
 CHECKS = ("title_decode_errors.yml", "startup_p90_by_site.yml")
 DAYS = sorted(p.name for p in FIXTURE_LAKE.iterdir())
 # results only: which run wrote a row differs between incremental and rebuilt histories
-RESULTS = {"windows": "check_name, key_text, split_value, seq, window_start, window_end, sessions, bad, "
+RESULTS = {"windows": "check_name, key_text, split_value, window_number, window_start, window_end, sessions, bad, "
                       "value, threshold, breach",
            "alerts": "alert_id, check_name, key_text, split_value, status, close_reason, opened_at, "
                      "last_breach_at, closed_at, breach_windows, affected_sessions, peak_value, threshold, "

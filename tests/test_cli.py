@@ -38,8 +38,8 @@ def test_compile_prints_the_stages(project: Path) -> None:
     result = invoke("sql", "startup_p90_by_site", "-p", str(project))
     assert result.exit_code == 0, result.output
     stages = re.findall(r"stage (\d) · (\w+)", result.output)
-    assert [s[1] for s in stages] == ["source", "scan", "window", "measure", "baseline", "breach", "lifecycle", "persist"]
-    assert "quantile_cont(x, 0.9)" in result.output
+    assert [s[1] for s in stages] == ["source", "scan", "window", "measure", "verdict", "lifecycle", "persist"]
+    assert "quantile_cont(quantile_input, 0.9)" in result.output
 
 
 def test_compile_unknown_check_exits_2(project: Path) -> None:

@@ -66,8 +66,8 @@ def small_demo(tmp_path_factory: pytest.TempPathFactory) -> Path:
 def test_started_vsf_and_ebvs_add_up_to_all_attempts(small_demo: Path) -> None:
     con = duckdb.connect(str(small_demo / "w.duckdb"), read_only=True)
     sums = con.execute("""
-        SELECT key_text, seq, sum(value) AS total, count(*) AS measures, min(sessions) = max(sessions) AS same_n
-        FROM windows WHERE check_name IN ('started', 'vsf', 'ebvs') GROUP BY key_text, seq
+        SELECT key_text, window_number, sum(value) AS total, count(*) AS measures, min(sessions) = max(sessions) AS same_n
+        FROM windows WHERE check_name IN ('started', 'vsf', 'ebvs') GROUP BY key_text, window_number
     """).fetchall()
     assert len(sums) > 1000
     assert all(measures == 3 and same_n for _, _, _, measures, same_n in sums)

@@ -59,7 +59,7 @@ def query(project_file: Path, sql: str, **params: object) -> list[tuple]:
 
 def windows(project_file: Path) -> list[tuple]:
     return query(project_file, "SELECT key_text, window_start, window_end, sessions, bad, breach FROM windows "
-                               "ORDER BY key_text, seq")
+                               "ORDER BY key_text, window_number")
 
 
 def lake_project(folder: Path, checks: dict[str, str], schema: str, files: dict[str, list[tuple]],
@@ -142,7 +142,7 @@ def test_nan_and_infinity_in_measure_inputs_are_missing_counted_and_never_a_brea
     rows += [("closer", T0 + timedelta(hours=14), "news", 10.0, 990.0)]
     project_file = lake_project(tmp_path, {"r.yml": REBUFFERING}, RATIO_SCHEMA, {"1.parquet": rows})
     run(load_project(project_file))
-    found = query(project_file, "SELECT seq - min(seq) OVER (), sessions, value, breach FROM windows ORDER BY seq")
+    found = query(project_file, "SELECT window_number - min(window_number) OVER (), sessions, value, breach FROM windows ORDER BY window_number")
     assert [w[0] for w in found] == list(range(12))
     assert all(w[2] == pytest.approx(0.01) and not w[3] for w in found)     # the rest of hour 10 and 11 as usual
     assert query(project_file, "SELECT nonfinite_values FROM runs") == [(2,)]
@@ -174,7 +174,7 @@ def test_a_window_without_a_value_gives_no_verdict_and_cannot_close_an_alert(tmp
             + playing(9, 10, rebuffer=200.0) + playing(10, 11) + [("closer", T0 + timedelta(hours=12), "news", 1.0, 1.0)])
     project_file = lake_project(tmp_path, {"r.yml": REBUFFERING}, RATIO_SCHEMA, {"1.parquet": rows})
     run(load_project(project_file))
-    found = query(project_file, "SELECT value IS NULL, threshold IS NOT NULL, breach FROM windows ORDER BY seq")
+    found = query(project_file, "SELECT value IS NULL, threshold IS NOT NULL, breach FROM windows ORDER BY window_number")
     assert found[8] == (True, True, False)
     assert query(project_file, "SELECT breach_windows, close_reason, closed_at FROM alerts") == [
         (3, "recovered", T0 + timedelta(hours=11))]
@@ -296,3 +296,35 @@ def test_a_partition_folder_that_agrees_with_the_files_column_is_read(tmp_path: 
                                 {"site=news/1.parquet": hours(0, 4), "site=sport/1.parquet": hours(0, 4, "sport", "y")})
     run(load_project(project_file))
     assert {w[0] for w in windows(project_file)} == {"site=news", "site=sport"}
+
+
+SPLIT_SCHEMA = "session_id VARCHAR, ended_at TIMESTAMP, site VARCHAR, error_code VARCHAR"
+HOURLY_BY_CODE = """\
+check: codes
+source: sessions
+by: [site]
+measure: {kind: rate, bad: error_code IS NOT NULL, split: error_code}
+window: {every: 1h}
+baseline: {method: rolling_percentile, q: 0.5, history: 5, min_history: 2}
+"""
+
+
+def test_an_error_code_seen_in_an_earlier_run_keeps_its_series_before_1970(tmp_path: Path) -> None:
+    # A split value seen in an earlier run has a row in every later window of its key, 0 where it
+    # had no bad session: before 1970 too, where window numbers are negative.
+    start = datetime(1969, 12, 1)
+    first = [(f"a{i}", start + timedelta(hours=i // 5, minutes=i % 5), "kids", "E" if i == 3 else None)
+             for i in range(50)]
+    later = [(f"b{i}", start + timedelta(hours=10 + i // 5, minutes=i % 5), "kids", None) for i in range(50)]
+    apart = lake_project(tmp_path / "apart", {"c.yml": HOURLY_BY_CODE}, SPLIT_SCHEMA, {"1.parquet": first})
+    run(load_project(apart))
+    write_rows(tmp_path / "apart" / "lake", SPLIT_SCHEMA, later, "2.parquet")
+    run(load_project(apart))
+    together = lake_project(tmp_path / "together", {"c.yml": HOURLY_BY_CODE}, SPLIT_SCHEMA,
+                            {"1.parquet": first, "2.parquet": later})
+    run(load_project(together))
+    shown = ("SELECT split_value, window_number, window_start, sessions, bad, value FROM windows "
+             "ORDER BY split_value NULLS FIRST, window_number")
+    assert query(apart, shown) == query(together, shown)
+    assert query(apart, "SELECT count(*), max(window_start) FROM windows WHERE split_value = 'E'") == [
+        (19, datetime(1969, 12, 1, 18))]

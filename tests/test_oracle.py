@@ -283,7 +283,7 @@ def write_files(folder: Path, rows: list[dict[str, Any]]) -> None:
         pq.write_table(pa.Table.from_pylist(part, schema=SCHEMA), folder / "lake" / name)
 
 
-WINDOW_FIELDS = ("key_text", "split_value", "seq", "window_start", "window_end", "sessions", "bad",
+WINDOW_FIELDS = ("key_text", "split_value", "window_number", "window_start", "window_end", "sessions", "bad",
                  "value", "statistic", "baseline", "history_windows", "threshold", "breach")
 ALERT_FIELDS = ("alert_id", "fingerprint", "severity", "key_text", "split_value", "status",
                 "close_reason", "opened_at", "last_breach_at", "closed_at", "breach_windows",
@@ -343,7 +343,7 @@ def _same(a: Any, b: Any) -> bool:
 
 
 def oracle_key(r: dict) -> tuple:
-    return tuple(r.get(f) for f in ("key_text", "split_value", "seq", "opened_at", "event", "occurred_at"))
+    return tuple(r.get(f) for f in ("key_text", "split_value", "window_number", "opened_at", "event", "occurred_at"))
 
 
 def differences(actual: list[dict], expected: list[dict], fields: tuple[str, ...], what: str) -> list[str]:
@@ -451,11 +451,11 @@ def test_oracle_count_windows_by_hand() -> None:
             _row("e", 20), _row("f", 21)]
     got = oracle.run_check(_check(), rows).windows
     # [0,1,2] is full; [3] times out (20 > 3+10 and W=21 > 13); [20,21] waits (W=21 <= 30).
-    assert [(w["seq"], w["window_start"], w["window_end"], w["sessions"], w["bad"]) for w in got] == [
+    assert [(w["window_number"], w["window_start"], w["window_end"], w["sessions"], w["bad"]) for w in got] == [
         (1, _at(0), _at(2), 3, 1), (2, _at(3), _at(3), 1, 0)]
     # An excluded session still moves the watermark: now [20,21] times out too.
     got = oracle.run_check(_check(exclude=EXCLUDE[1].py), rows + [_row("g", 31, is_bot=True)]).windows
-    assert [(w["seq"], w["window_start"], w["sessions"]) for w in got] == [(1, _at(0), 3), (2, _at(3), 1),
+    assert [(w["window_number"], w["window_start"], w["sessions"]) for w in got] == [(1, _at(0), 3), (2, _at(3), 1),
                                                                           (3, _at(20), 2)]
     # Rows without id or time are skipped (the timeless one does not move the watermark).
     got = oracle.run_check(_check(), rows + [_row(None, 40), _row("h", None)])
@@ -476,7 +476,7 @@ def test_oracle_time_windows_by_hand() -> None:
     got = oracle.run_check(check, rows).windows
     k = int((BASE - datetime(1970, 1, 1)).total_seconds()) // 3600
     # [00:00, 01:00) closes (02:00 > 01:10); [01:00, 02:00) waits until after 02:10.
-    assert [(w["seq"], w["window_start"], w["window_end"], w["sessions"], w["value"]) for w in got] == [
+    assert [(w["window_number"], w["window_start"], w["window_end"], w["sessions"], w["value"]) for w in got] == [
         (k, _at(0), _at(60), 2, 0.5)]
 
 
@@ -484,11 +484,11 @@ def test_oracle_split_rate_by_hand() -> None:
     rows = [_row("a", 0, failed=True, error_code="E1"), _row("b", 1), _row("c", 2, failed=True, error_code="E2"),
             _row("d", 3), _row("e", 4, failed=True), _row("f", 5, failed=True, error_code="E2")]
     got = oracle.run_check(_check(sessions=2, split="error_code"), rows).windows
-    assert [(w["split_value"], w["seq"], w["bad"], w["value"]) for w in got] == [
+    assert [(w["split_value"], w["window_number"], w["bad"], w["value"]) for w in got] == [
         (None, 3, 1, 0.5), ("E1", 1, 1, 0.5), ("E1", 2, 0, 0.0), ("E1", 3, 0, 0.0),
         ("E2", 2, 1, 0.5), ("E2", 3, 1, 0.5)]
     # A split value first seen in key window n starts with n-1 quiet windows of history at 0.
-    assert [(w["split_value"], w["seq"], w["history_windows"], w["threshold"], w["breach"]) for w in got] == [
+    assert [(w["split_value"], w["window_number"], w["history_windows"], w["threshold"], w["breach"]) for w in got] == [
         (None, 3, 2, 0.0, True), ("E1", 1, 0, None, False), ("E1", 2, 1, 0.5, False),
         ("E1", 3, 2, 0.25, False), ("E2", 2, 1, 0.0, True), ("E2", 3, 1, 0.0, True)]
 
@@ -592,7 +592,7 @@ def test_oracle_quantile_is_quantile_cont() -> None:
 def test_oracle_lifecycle_by_hand() -> None:
     def win(hour: int, breach: bool, threshold: float | None = 0.5, value: float = 0.9, bad: int = 3) -> dict:
         return {"window_end": BASE + timedelta(hours=hour), "breach": breach, "threshold": threshold,
-                "value": value, "bad": bad, "sessions": 10, "seq": hour}
+                "value": value, "bad": bad, "sessions": 10, "window_number": hour}
     series = [win(1, True, value=0.7), win(2, False), win(3, True, value=0.9, bad=4), win(4, False),
               win(5, False, threshold=None), win(6, False), win(7, True), win(10, False), win(11, True)]
     check = _check(recover_after=2, expire_after=timedelta(hours=2))

@@ -55,7 +55,7 @@ def windows_of(folder: Path, hours: list[list[float]], q: float) -> list[tuple]:
     run(project)
     con = duckdb.connect(str(project.warehouse), read_only=True)
     return con.execute(
-        "SELECT value, baseline FROM windows WHERE key_text = 'series=a' ORDER BY seq").fetchall()
+        "SELECT value, baseline FROM windows WHERE key_text = 'series=a' ORDER BY window_number").fetchall()
 
 
 # Percentile reference table (numpy `quantile(method="linear")` = quantile_cont; computed, checked

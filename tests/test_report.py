@@ -135,7 +135,7 @@ def test_chart_data_comes_from_the_windows_with_the_ewma_statistic(tmp_path: Pat
     for alert_id in ids:
         expected = con.execute(
             "SELECT w.window_end, w.statistic, w.value, w.breach FROM windows w JOIN alerts a "
-            "ON a.key = w.key AND a.check_name = w.check_name WHERE a.alert_id = $a ORDER BY w.seq",
+            "ON a.key = w.key AND a.check_name = w.check_name WHERE a.alert_id = $a ORDER BY w.window_number",
             {"a": alert_id}).fetchall()
         s = series[alert_id]
         assert s.ewma and not s.thinned

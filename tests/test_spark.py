@@ -56,7 +56,7 @@ EXTRA = {
 # count windows with a split rate; count windows with a quantile and many timed-out partial windows;
 # time windows with a quantile; time windows with a ratio of sums and an EWMA
 INCREMENTAL = ("title_errors", "startup_by_title", "startup_time_by_device", "bitrate_by_cdn")
-WINDOW_COLUMNS = ("check_name, key_text, split_value, seq, key_window, window_start, window_end, sessions, "
+WINDOW_COLUMNS = ("check_name, key_text, split_value, window_number, key_window, window_start, window_end, sessions, "
                   "bad, history_windows, breach")
 ALERT_COLUMNS = ("alert_id, check_name, severity, key_text, split_value, status, close_reason, opened_at, "
                  "breach_started_at, last_breach_at, closed_at, breach_windows, affected_sessions, fingerprint")
@@ -120,11 +120,11 @@ def assert_same_results(con: duckdb.DuckDBPyConnection) -> None:
     assert counts[0] == counts[1] and counts[0] > 10_000, counts
     assert counts[2] > 0, "the demo lake at this size must raise alerts, or the comparison proves little"
     assert differences(con, "windows", WINDOW_COLUMNS) == []
-    assert differences(con, "key_windows", "check_name, key_text, key_window, seq, window_start, window_end, sessions, bad") == []
+    assert differences(con, "key_windows", "check_name, key_text, key_window, window_number, window_start, window_end, sessions, bad") == []
     assert differences(con, "alerts", ALERT_COLUMNS) == []
     assert differences(con, "alert_events", "alert_id, occurred_at, event, affected_sessions") == []
-    assert differences(con, "carry", "check_name, key_text, event_time, session_id, is_bad, split_value, num, den, x") == []
-    assert differences(con, "key_state", "check_name, key, last_seq, last_end, windows") == []
+    assert differences(con, "carry", "check_name, key_text, event_time, session_id, is_bad, split_value, numerator, denominator, quantile_input") == []
+    assert differences(con, "key_state", "check_name, key, last_window_number, last_end, windows") == []
     # values: equal up to float rounding (Spark adds in another order)
     worst = con.execute(
         """
@@ -133,7 +133,7 @@ def assert_same_results(con: duckdb.DuckDBPyConnection) -> None:
                count(*) FILTER (WHERE (r.value IS NULL) <> (g.value IS NULL)
                                    OR (r.threshold IS NULL) <> (g.threshold IS NULL))
         FROM ref.windows AS r
-        JOIN got.windows AS g USING (check_name, key_text, split_value, seq)
+        JOIN got.windows AS g USING (check_name, key_text, split_value, window_number)
         """).fetchone()
     assert worst[2] == 0, worst
     assert (worst[0] or 0) < 1e-9 and (worst[1] or 0) < 1e-9, worst
@@ -145,7 +145,7 @@ def test_spark_gives_duckdbs_windows_and_alerts(tmp_path: Path, lake: Path, chec
     assert result.status == "ok" and result.files_read == 21
     con = compare(duckdb_once, file.parent / "warehouse.duckdb")
     assert_same_results(con)
-    same_counts = "check_name, files_read, rows_read, rows_invalid, rows_excluded, rows_filtered, duplicate_rows, late_rows, windows_written, breach_windows, alerts_opened, alerts_closed, watermark"
+    same_counts = "check_name, files_read, rows_read, invalid_rows, rows_excluded, rows_filtered, duplicate_rows, late_rows, windows_written, breach_windows, alerts_opened, alerts_closed, watermark"
     assert differences(con, "run_checks", same_counts) == []
     assert differences(con, "files_read", "check_name, path, size, rows") == []
 

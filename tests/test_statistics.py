@@ -62,7 +62,7 @@ baseline:
     run(project)
     con = duckdb.connect(str(project.warehouse), read_only=True)
     return con.execute("SELECT key_text, sessions, bad, value, baseline, threshold, breach FROM windows "
-                       "WHERE key_text <> 'series=closer' ORDER BY key_text, seq").fetchall()
+                       "WHERE key_text <> 'series=closer' ORDER BY key_text, window_number").fetchall()
 
 
 def test_p_chart_nist_wafer_example(tmp_path: Path) -> None:
@@ -165,7 +165,7 @@ baseline: {{method: ewma, lambda: 0.3, sigmas: 3, history: 30, min_history: 1, t
         project = load_project(write_project(folder, {"ew.yml": check}, PLAIN_PROJECT.format(lake=lake)))
         run(project)
     return duckdb.connect(str(project.warehouse), read_only=True).execute(
-        "SELECT value, statistic, threshold, breach FROM windows WHERE key_text = 'series=a' ORDER BY seq"
+        "SELECT value, statistic, threshold, breach FROM windows WHERE key_text = 'series=a' ORDER BY window_number"
     ).fetchall()
 
 

@@ -48,7 +48,7 @@ sources:
 # the same project with no storage mapping: local lakes, or the usual AWS environment variables
 WITHOUT_STORAGE = PROJECT.split("storage:")[0] + "sources:" + PROJECT.split("sources:")[1]
 
-WINDOWS = ("SELECT check_name, key_text, split_value, seq, window_start, window_end, sessions, bad, "
+WINDOWS = ("SELECT check_name, key_text, split_value, window_number, window_start, window_end, sessions, bad, "
            "value, threshold, breach FROM windows ORDER BY ALL")
 ALERTS = ("SELECT check_name, key_text, split_value, status, close_reason, opened_at, closed_at, "
           "breach_windows, affected_sessions, peak_value, threshold, fingerprint FROM alerts ORDER BY ALL")

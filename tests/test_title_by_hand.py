@@ -100,7 +100,7 @@ def test_the_hand_written_title_check_matches_plimsoll(tmp_path):
     files = sorted(str(p) for p in lake.rglob("*.parquet"))
     bench.run_by_hand(con, files)
     con.execute(f"ATTACH '{tmp_path / 'warehouse.duckdb'}' AS plimsoll (READ_ONLY)")
-    window = ("key_text, split_value, seq, window_start, window_end, sessions, bad, round(value, 12), "
+    window = ("key_text, split_value, window_number, window_start, window_end, sessions, bad, round(value, 12), "
               "round(threshold, 12), breach")
     alert = ("key_text, split_value, status, close_reason, opened_at, closed_at, breach_windows, "
              "affected_sessions, round(peak_value, 12), round(threshold, 12)")

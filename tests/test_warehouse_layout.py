@@ -3,9 +3,12 @@ command that writes it, and one of a later layout is refused with one line."""
 
 from __future__ import annotations
 
+import shutil
+from pathlib import Path
+
 import duckdb
 from click.testing import CliRunner
-from conftest import warehouse_contents
+from conftest import FIXTURE_LAKE, warehouse_contents, write_project
 from known_lake import known_project
 
 from toolkit.cli import main
@@ -31,6 +34,95 @@ def test_a_layout_2_file_has_its_columns_renamed_and_runs_on(tmp_path) -> None:
     assert con.execute("SELECT run_id, rebuild FROM runs ORDER BY run_id").fetchall() == [(1, False), (2, False)]
     con.close()
     assert warehouse_contents(project.warehouse, skip=("runs", "schema_version")) == before
+
+
+GOLDEN = Path(__file__).parent / "golden"
+# (table, layout 2's name, layout 3's) of every renamed column, as CHANGELOG.md lists them
+LAYOUT_2_NAMES = (
+    ("runs", "full_refresh", "rebuild"),
+    ("run_checks", "rows_invalid", "invalid_rows"),
+    ("windows", "seq", "window_number"),
+    ("key_windows", "seq", "window_number"),
+    ("key_state", "last_seq", "last_window_number"),
+    ("carry", "num", "numerator"),
+    ("carry", "den", "denominator"),
+    ("carry", "x", "quantile_input"),
+)
+# tables whose rows a run derives from the lake: a converted file must go on to the same rows as a
+# file that was never converted (run ids and wall-clock times aside)
+DERIVED = {
+    "windows": "check_name, key_text, split_value, window_number, key_window, window_start, window_end, sessions, "
+               "bad, round(value, 12), round(statistic, 12), round(baseline, 12), history_windows, "
+               "round(threshold, 12), breach",
+    "key_windows": "check_name, key_text, key_window, window_number, window_start, window_end, sessions, bad",
+    "key_state": "check_name, key, last_window_number, last_end, windows",
+    "carry": "check_name, key_text, event_time, session_id, is_bad, split_value, numerator, denominator, "
+             "quantile_input",
+    "alerts": "alert_id, check_name, key_text, split_value, status, close_reason, opened_at, last_breach_at, "
+              "closed_at, breach_windows, affected_sessions, round(peak_value, 12), round(threshold, 12), "
+              "healthy_streak",
+    "alert_events": "alert_id, occurred_at, event, round(value, 12), round(threshold, 12), affected_sessions",
+}
+
+
+def _golden_project(folder: Path, days: list[str]) -> Path:
+    """Every golden check (a rate with a split, a ratio, a quantile; count and time windows) over
+    the fixture lake's files of ``days``."""
+    for day in days:
+        shutil.copytree(FIXTURE_LAKE / f"day={day}", folder / "lake" / f"day={day}")
+    checks = {p.name: p.read_text() for p in sorted(GOLDEN.glob("*.yml"))}
+    return write_project(folder, checks, lake=folder / "lake")
+
+
+def _rows(warehouse_file: Path) -> dict[str, list[tuple]]:
+    con = duckdb.connect(str(warehouse_file), read_only=True)
+    try:
+        return {t: con.execute(f"SELECT {c} FROM {t} ORDER BY ALL").fetchall() for t, c in DERIVED.items()}
+    finally:
+        con.close()
+
+
+def test_a_layout_2_file_with_the_old_column_names_keeps_its_data_and_runs_on(tmp_path) -> None:
+    # A warehouse as layout 2 wrote it: one day read, partial windows carried, under the old names.
+    old = _golden_project(tmp_path / "old", ["2026-11-02"])
+    assert CliRunner().invoke(main, ["run", "-p", str(old)]).exit_code == 0
+    con = duckdb.connect(str(old.parent / "warehouse.duckdb"))
+    for table, was, now in LAYOUT_2_NAMES:
+        con.execute(f"ALTER TABLE {table} RENAME COLUMN {now} TO {was}")
+    con.execute("UPDATE schema_version SET version = 2")
+    # what it holds under those names: quantile inputs and ratio parts carried, windows numbered
+    assert min(con.execute("SELECT count(x), count(num), count(den) FROM carry").fetchone()) > 0
+    assert con.execute("SELECT count(seq) FROM windows").fetchone()[0] > 0
+    runs_before = con.execute("SELECT run_id, rows_read, invalid_rows, full_refresh FROM runs").fetchall()
+    checks_before = con.execute("SELECT check_name, rows_invalid, rows_read FROM run_checks ORDER BY ALL").fetchall()
+    con.close()
+
+    # The next day lands; the first run converts the file and reads on from what it holds.
+    shutil.copytree(FIXTURE_LAKE / "day=2026-11-03", old.parent / "lake" / "day=2026-11-03")
+    result = CliRunner().invoke(main, ["run", "-p", str(old)])
+    assert result.exit_code == 0, result.output
+
+    con = duckdb.connect(str(old.parent / "warehouse.duckdb"), read_only=True)
+    try:
+        assert con.execute("SELECT version FROM schema_version").fetchall() == [(warehouse.SCHEMA_VERSION,)]
+        for table, was, now in LAYOUT_2_NAMES:
+            columns = [r[0] for r in con.execute(f"DESCRIBE {table}").fetchall()]
+            assert now in columns and was not in columns, (table, columns)
+        assert con.execute("SELECT run_id, rows_read, invalid_rows, rebuild FROM runs WHERE run_id = 1").fetchall() \
+            == runs_before
+        assert con.execute("SELECT check_name, invalid_rows, rows_read FROM run_checks WHERE run_id = 1 "
+                           "ORDER BY ALL").fetchall() == checks_before
+    finally:
+        con.close()
+
+    # ... to exactly what a file that read both days in one run holds: the carried sessions kept
+    # their inputs and the windows their numbers through the renames
+    fresh = _golden_project(tmp_path / "fresh", ["2026-11-02", "2026-11-03"])
+    assert CliRunner().invoke(main, ["run", "-p", str(fresh)]).exit_code == 0
+    converted, expected = _rows(old.parent / "warehouse.duckdb"), _rows(fresh.parent / "warehouse.duckdb")
+    for table in DERIVED:
+        assert converted[table] == expected[table], table
+    assert len(converted["windows"]) > 100 and converted["carry"]
 
 
 def test_a_file_of_a_later_layout_is_refused_with_one_line(tmp_path) -> None:

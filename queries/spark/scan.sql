@@ -3,7 +3,7 @@
 -- DuckDB's statements, translated; the check's watermark comes from the warehouse.
 {{ move.to_spark("check_state", "check_name = " ~ (check.name | literal)) }}
 -- @translate arrivals
--- @translate clock
+-- @translate watermarks
 -- @translate scan_counts
-{{ move.to_duckdb("clock") }}
+{{ move.to_duckdb("watermarks") }}
 {{ move.to_duckdb("scan_counts") }}

@@ -22,59 +22,59 @@ FROM (
     SELECT key, i, is_cut,
            count(*) OVER (PARTITION BY key ORDER BY epoch_us(event_time)
                           RANGE BETWEEN UNBOUNDED PRECEDING AND {{ wait_us }} FOLLOWING) - 1 AS lim,
-           event_time + {{ window.max_wait | interval }} < (SELECT current FROM clock) AS times_out
+           event_time + {{ window.max_wait | interval }} < (SELECT current FROM watermarks) AS times_out
     FROM pooled
 ) AS p
 WHERE is_cut;
 
 -- @spark next_cut
--- Where a run of full windows can start (the start of the pool, and just behind each cut that
--- times out), and the first cut on that run's stride (at or after the start, a multiple of
+-- Where a span of full windows can start (the start of the pool, and just behind each cut that
+-- times out), and the first cut on that span's stride (at or after the start, a multiple of
 -- {{ n }} sessions on): for every start at once, the smallest cut not before it in its stride class.
 CREATE OR REPLACE TEMP TABLE next_cut AS
 WITH starts AS (
-    SELECT DISTINCT key, 0::BIGINT AS o FROM pooled
+    SELECT DISTINCT key, 0::BIGINT AS span_start FROM pooled
     UNION
-    SELECT key, lim + 1 AS o FROM cuts WHERE times_out
+    SELECT key, lim + 1 AS span_start FROM cuts WHERE times_out
 ),
 marks AS (
-    SELECT key, o AS at, false AS is_cut FROM starts
+    SELECT key, span_start AS at, false AS is_cut FROM starts
     UNION ALL
     SELECT key, i AS at, true AS is_cut FROM cuts
 ),
 found AS (
-    SELECT key, at AS o, is_cut,
+    SELECT key, at AS span_start, is_cut,
            min(CASE WHEN is_cut THEN at END) OVER (
                PARTITION BY key, at % {{ n }} ORDER BY at DESC, is_cut DESC
-               ROWS BETWEEN UNBOUNDED PRECEDING AND CURRENT ROW) AS a
+               ROWS BETWEEN UNBOUNDED PRECEDING AND CURRENT ROW) AS cut_start
     FROM marks
 )
-SELECT f.key, f.o, f.a, c.lim AS a_lim, c.times_out AS closes
+SELECT f.key, f.span_start, f.cut_start, c.lim AS cut_end, c.times_out AS cut_closes
 FROM found AS f
-LEFT JOIN cuts AS c ON c.key = f.key AND c.i = f.a
+LEFT JOIN cuts AS c ON c.key = f.key AND c.i = f.cut_start
 WHERE NOT f.is_cut;
 
 -- @to-duckdb spark_next_cut
-SELECT key, o, a, a_lim, closes FROM next_cut;
+SELECT key, span_start, cut_start, cut_end, cut_closes FROM next_cut;
 
--- @duckdb runs_of_windows
--- Runs of full windows per series, from the start of the pool to the first cut on the run's
--- stride; after a cut that times out the next run starts behind it. The walk is sequential within
+-- @duckdb full_window_spans
+-- Spans of full windows per series, from the start of the pool to the first cut on the span's
+-- stride; after a cut that times out the next span starts behind it. The walk is sequential within
 -- a series, so it runs in the warehouse over next_cut (a row per start, not per session): one step
 -- per cut, all series at once.
-CREATE OR REPLACE TEMP TABLE runs_of_windows AS
-WITH RECURSIVE seg AS (
-    SELECT key, o, a, a_lim, closes FROM spark_next_cut WHERE o = 0
+CREATE OR REPLACE TEMP TABLE full_window_spans AS
+WITH RECURSIVE span AS (
+    SELECT key, span_start, cut_start, cut_end, cut_closes FROM spark_next_cut WHERE span_start = 0
     UNION ALL
-    SELECT n.key, n.o, n.a, n.a_lim, n.closes
-    FROM seg AS s
-    JOIN spark_next_cut AS n ON n.key = s.key AND n.o = s.a_lim + 1
-    WHERE s.closes
+    SELECT n.key, n.span_start, n.cut_start, n.cut_end, n.cut_closes
+    FROM span AS s
+    JOIN spark_next_cut AS n ON n.key = s.key AND n.span_start = s.cut_end + 1
+    WHERE s.cut_closes
 )
-SELECT key, o, a, a_lim, closes FROM seg;
+SELECT key, span_start, cut_start, cut_end, cut_closes FROM span;
 
--- @to-spark runs_of_windows
-SELECT key, o, a, a_lim, closes FROM runs_of_windows;
+-- @to-spark full_window_spans
+SELECT key, span_start, cut_start, cut_end, cut_closes FROM full_window_spans;
 -- @translate placed
 -- @translate closed_windows
 -- @translate window_sessions

@@ -12,6 +12,10 @@ check persists, after its stages there), and what the later stages need crosses 
 transaction as Arrow: a row per window, the partial windows, and the new sessions' id hashes,
 streamed. A rebuild, which first deletes state inside the transaction, and the Spark engine
 run every stage on the one connection.
+
+The runner writes no SQL: besides the stages' statements it executes its own by name from
+``queries/run.sql`` (:func:`_run_named`), and every statement passes :func:`_execute`. What it
+executes for a check, ``plimsoll sql`` prints in the same order (:mod:`toolkit.sql.script`).
 """
 
 from __future__ import annotations
@@ -20,8 +24,6 @@ from collections.abc import Callable
 from dataclasses import dataclass, field
 from datetime import datetime, timezone
 from typing import Any
-
-import re
 
 import duckdb
 
@@ -32,21 +34,18 @@ from toolkit.engine import spark as spark_engine
 from toolkit.engine import warehouse
 from toolkit.sql.compiler import CompiledCheck, columns_read
 from toolkit.sql.plans import check_plan, source_plan
-from toolkit.sql.templates import Statement, statement_kind
+from toolkit.sql.script import MOVED_AFTER, STAGE_CONNECTION_STAGES, STREAMED, run_statements, streams, writes_warehouse
+from toolkit.sql.templates import Stage, Statement
 from toolkit.model import Check, Project, Source
 from toolkit.problems import DataError, PlimsollError, Problem, ProjectInvalid, WarehouseError, engine_message
 from toolkit.sql.quoting import interval
 
 Progress = Callable[[str], None]
 
-# Stages that run on the stage connection; the tables each leaves for the transaction's stages and
-# run record (moved once it has run), and the relation the warehouse's own insert streams from.
-STAGE_CONNECTION_STAGES = ("source", "scan", "window", "measure")
-MOVED_AFTER = {
-    "source": ("lake_counts", "lake_file_rows"),
-    "measure": ("clock", "scan_counts", "carry_next", "window_counts", "new_key_windows", "new_windows"),
-}
-STREAMED = "kept_ids"
+# The run's own statements (queries/run.sql) run as this stage: a failure among them is the
+# warehouse's (a full disk, a lost file), reported as the engine says it, not as a check's.
+RUN = "run"
+MOVED_ROWS = "moved_rows"  # what a moved table's rows are registered as on the transaction's connection
 DEFAULT_MAX_READ = 4 * 10**9  # bytes of Parquet per check and run: about 60M demo sessions
 STREAM_BATCH = 1_000_000
 
@@ -125,7 +124,7 @@ def run(project: Project, names: list[str] | None = None, rebuild: bool = False,
         for problem in skipped:
             say(f"skipped: {problem}")
         while True:
-            run_id = int(con.execute("SELECT coalesce(max(run_id), 0) + 1 FROM runs").fetchone()[0])
+            run_id = int(_run_named(con, "open.next_run_id", {})[0])
             with warehouse.claimed(project, run_id, [c.name for c in checks]):
                 try:
                     result = _run(con, project, run_id, checks, compiled, rebuild and not done, say, budget)
@@ -176,12 +175,10 @@ def _run(con: duckdb.DuckDBPyConnection, project: Project, run_id: int, checks: 
     started = _now()
     listings: dict[str, list[lake.LakeFile]] = {}
     result = RunResult(run_id, "ok")
-    # what each source scan of this run read: the run record counts rows once per scan
-    con.execute("CREATE OR REPLACE TEMP TABLE run_scans (rows_read BIGINT, rows_invalid BIGINT, "
-                "duplicate_rows BIGINT, rows_excluded BIGINT)")
-    con.execute("CREATE OR REPLACE TEMP TABLE run_retired (check_name VARCHAR, alerts_closed BIGINT)")
+    record = {"run_id": run_id, "started": started, "checks": [c.name for c in checks], "rebuild": rebuild}
+    _run_named(con, "begin.run_tables", {})
     stages = _stage_connection(con, project, compiled, rebuild)
-    con.execute("BEGIN TRANSACTION")
+    _run_named(con, "begin.transaction", {})
     try:
         _retire_removed(con, project, run_id, progress)
         if rebuild:
@@ -201,9 +198,8 @@ def _run(con: duckdb.DuckDBPyConnection, project: Project, run_id: int, checks: 
                                      [c.name for c in readers])
                 source_stage = source_plan(readers)
                 params = _params(project, new_files, run_id, "", readers[0].name, group.read_until, source)
-                _run_stage(con, stages, f"source {source.name}", "source", source_stage.once, params)
-                con.execute("INSERT INTO run_scans SELECT rows_read, rows_invalid, duplicate_rows, "
-                            "rows_excluded FROM lake_counts")
+                _run_stage(con, stages, f"source {source.name}", source_stage, params)
+                _run_named(con, "source.count_scan", {})
                 result.warnings += _impossible_times(con, source)
             for check, sql in group.checks:
                 step = f"[{len(result.checks) + 1}/{len(checks)}] {check.name}"
@@ -217,24 +213,23 @@ def _run(con: duckdb.DuckDBPyConnection, project: Project, run_id: int, checks: 
         repeats = _mostly_repeats(con)
         if repeats:
             result.warnings.append(repeats)
-        _record(con, run_id, started, [c.name for c in checks], rebuild, "ok", None, repeats)
-        result.distinct_files = int(con.execute(
-            "SELECT count(DISTINCT (source_name, path)) FROM files_read WHERE run_id = $r", {"r": run_id}).fetchone()[0])
-        con.execute("COMMIT")
+        _record(con, record, "ok", None, repeats)
+        result.distinct_files = int(_run_named(con, "end.files_read", {"run_id": run_id})[0])
+        _run_named(con, "end.commit", {})
     except BaseException as err:
         _close(stages)
         stages = None
         message = err.args[0] if isinstance(err, PlimsollError) and err.args else _engine_message(err)
         try:
-            con.execute("ROLLBACK")
+            _run_named(con, "end.roll_back", {})
         except duckdb.Error:
             pass
         if isinstance(err, (KeyboardInterrupt, SystemExit)):
             raise
         try:
-            con.execute("BEGIN TRANSACTION")
-            _record(con, run_id, started, [c.name for c in checks], rebuild, "failed", str(message), None)
-            con.execute("COMMIT")
+            _run_named(con, "begin.transaction", {})
+            _record(con, record, "failed", str(message), None)
+            _run_named(con, "end.commit", {})
         except duckdb.Error as record_err:
             raise WarehouseError(f"{message}; the run was rolled back, and its failure could not be recorded "
                                  f"either ({_engine_message(record_err)})") from err
@@ -253,7 +248,7 @@ def _plural(n: int, noun: str) -> str:
 
 def _impossible_times(con: duckdb.DuckDBPyConnection, source: Source) -> list[str]:
     """A warning per file that held sessions with an impossible event time (counted as invalid)."""
-    rows = con.execute("SELECT path, insane_times FROM lake_file_rows WHERE insane_times > 0 ORDER BY path").fetchall()
+    rows = _run_named(con, "source.impossible_times", {}, fetch="all")
     return [f"source {source.name}: {path}: {_plural(n, 'session')} with an impossible event time (not finite, or "
             f"more than max_future {interval(source.max_future).removeprefix('INTERVAL ').lower()} after the file "
             "was written) counted as invalid" for path, n in rows]
@@ -266,9 +261,7 @@ REPEATS_MIN = 100
 
 
 def _mostly_repeats(con: duckdb.DuckDBPyConnection) -> str | None:
-    valid, repeats = con.execute(
-        "SELECT coalesce(sum(rows_read - rows_invalid), 0), coalesce(sum(duplicate_rows), 0) FROM run_scans"
-    ).fetchone()
+    valid, repeats = _run_named(con, "end.repeats", {})
     if valid < REPEATS_MIN or repeats <= REPEATS_SHARE * valid:
         return None
     return (f"{repeats:,} of the {valid:,} sessions read ({100 * repeats / valid:.0f} %) repeat sessions already "
@@ -293,23 +286,31 @@ def _close(stages: duckdb.DuckDBPyConnection | None) -> None:
 
 
 def _run_stage(con: duckdb.DuckDBPyConnection, stages: duckdb.DuckDBPyConnection | None, who: str,
-               stage: str, statements: tuple[Statement, ...], params: dict[str, Any]) -> None:
-    """One stage's statements that run once; on the stage connection if there is one and the stage
-    is one of its, with the warehouse's writes made in the transaction (from a stream of the stage
-    connection's rows where the write reads them)."""
-    if stages is None or stage not in STAGE_CONNECTION_STAGES:
-        for statement in statements:
-            _execute(con, who, stage, statement, params)
-        return
-    for statement in statements:
-        if not _writes_warehouse(statement):
-            _execute(stages, who, stage, statement, params)
-        elif re.search(rf"\b{STREAMED}\b", statement.sql):
-            _execute_streamed(con, stages, who, stage, statement, params)
+               stage: Stage, params: dict[str, Any]) -> int:
+    """One stage: its statements, and its loop until it settles (returns the rounds it took, else 0).
+
+    On the stage connection if there is one and the stage is one of its, with the warehouse's
+    writes made in the transaction (from a stream of the stage connection's rows where the write
+    reads them)."""
+    if stages is None or stage.name not in STAGE_CONNECTION_STAGES:
+        for statement in stage.once:
+            _execute(con, who, stage.name, statement, params)
+        rounds = _settle(con, who, stage, params) if stage.loop is not None else 0
+        for statement in stage.after:
+            _execute(con, who, stage.name, statement, params)
+        return rounds
+    if stage.loop is not None or stage.after:
+        raise ValueError(f"stage {stage.name}: a loop runs in the run's transaction, not on the stage connection")
+    for statement in stage.once:
+        if not writes_warehouse(statement):
+            _execute(stages, who, stage.name, statement, params)
+        elif streams(statement):
+            _execute_streamed(con, stages, who, stage.name, statement, params)
         else:
-            _execute(con, who, stage, statement, params)
-    for table in MOVED_AFTER.get(stage, ()):
+            _execute(con, who, stage.name, statement, params)
+    for table in MOVED_AFTER.get(stage.name, ()):
         _move(stages, con, table)
+    return 0
 
 
 def _execute_streamed(con: duckdb.DuckDBPyConnection, stages: duckdb.DuckDBPyConnection, who: str,
@@ -321,7 +322,8 @@ def _execute_streamed(con: duckdb.DuckDBPyConnection, stages: duckdb.DuckDBPyCon
     """
     warehouse.finish_pending(stages)
     warehouse.finish_pending(con)
-    reader = stages.sql(f"SELECT * FROM {STREAMED}").to_arrow_reader(STREAM_BATCH)
+    _run_named(con, f"move.{STREAMED}.clear", {})
+    reader = _run_named(stages, f"move.{STREAMED}.stream", {}, fetch="reader")
     con.register(STREAMED, reader)
     try:
         _execute(con, who, stage, statement, params)
@@ -335,21 +337,16 @@ def _execute_streamed(con: duckdb.DuckDBPyConnection, stages: duckdb.DuckDBPyCon
                 pass
 
 
-def _writes_warehouse(statement: Statement) -> bool:
-    """A statement that changes stored rows: it must run inside the run's transaction."""
-    return statement_kind(statement.sql) in ("INSERT", "UPDATE", "DELETE", "MERGE_INTO", "COPY")
-
-
 def _move(source: duckdb.DuckDBPyConnection, target: duckdb.DuckDBPyConnection, table: str) -> None:
     """A temp table of the stage connection, copied to the same name on the transaction's."""
     warehouse.finish_pending(source)
     warehouse.finish_pending(target)
-    rows = source.sql(f"SELECT * FROM {table}").to_arrow_table()
-    target.register("__moved", rows)
+    rows = _run_named(source, f"move.{table}.out", {}, fetch="arrow")
+    target.register(MOVED_ROWS, rows)
     try:
-        target.execute(f"CREATE OR REPLACE TEMP TABLE {table} AS SELECT * FROM __moved")
+        _run_named(target, f"move.{table}.in", {})
     finally:
-        target.unregister("__moved")
+        target.unregister(MOVED_ROWS)
 
 
 def _needed_columns(source: Source, checks: list[Check]) -> list[str]:
@@ -374,7 +371,7 @@ def _changed(con: duckdb.DuckDBPyConnection, checks: list[Check],
     Carrying on would mix windows of two definitions in one series' history, so such a check is
     not run (the others are) until it is rebuilt or the change undone.
     """
-    stored = dict(con.execute("SELECT check_name, definition_hash FROM check_state").fetchall())
+    stored = dict(_run_named(con, "open.stored_definitions", {}, fetch="all"))
     return {
         check.name: Problem(
             check.file, check.line,
@@ -392,47 +389,22 @@ def _retire_removed(con: duckdb.DuckDBPyConnection, project: Project, run_id: in
     Alerts and their events stay as history; windows and state are derived and would only
     mislead a check added later under the same name.
     """
-    known = [row[0] for row in con.execute(
-        "SELECT check_name FROM check_state UNION SELECT check_name FROM alerts WHERE status = 'open' "
-        "ORDER BY 1").fetchall()]
+    known = [row[0] for row in _run_named(con, "begin.known_checks", {}, fetch="all")]
+    # a source gone from the project: its recorded column types and remembered ids go too, so a
+    # source added later under the same name starts afresh
+    _run_named(con, "begin.forget_removed_sources", {"sources": sorted(project.sources)})
     for name in (n for n in known if n not in project.checks):
         closed = _close_alerts(con, name, run_id, "check removed", None)
         progress(f"check {name}: no longer in the project; {closed} open alerts closed as 'check removed'")
-        _drop_state(con, name)
-    # a source gone from the project: its recorded column types and remembered ids go too, so a
-    # source added later under the same name starts afresh
-    sources = sorted(project.sources)
-    for table in ("source_columns", "session_ids"):
-        con.execute(f"DELETE FROM {table} WHERE NOT list_contains($s, source_name)", {"s": sources})
+        _run_named(con, "begin.drop_state", {"check": name})
 
 
 def _close_alerts(con: duckdb.DuckDBPyConnection, name: str, run_id: int, reason: str,
                   keep_definition: str | None) -> int:
-    """Close a check's open alerts (those of other definitions than ``keep_definition``) for ``reason``.
-
-    ``closed_at`` is the check's watermark, the last data time it saw.
-    """
-    params = {"c": name, "r": run_id, "keep": keep_definition}
-    chosen = ("check_name = $c AND status = 'open' "
-              "AND ($keep IS NULL OR definition_hash IS DISTINCT FROM $keep)")
-    closed_at = ("coalesce((SELECT max(watermark) FROM check_state WHERE check_name = $c), last_breach_at)")
-    con.execute(f"INSERT INTO alert_events BY NAME SELECT alert_id, $r AS run_id, {closed_at} AS occurred_at, "
-                "'closed' AS event, NULL::DOUBLE AS value, NULL::DOUBLE AS threshold, affected_sessions "
-                f"FROM alerts WHERE {chosen}", params)
-    count = con.execute(f"UPDATE alerts SET status = 'closed', close_reason = $why, closed_at = {closed_at}, "
-                        f"last_run_id = $r, healthy_streak = NULL WHERE {chosen}",
-                        params | {"why": reason}).fetchone()[0]
-    con.execute("INSERT INTO run_retired VALUES ($c, $n)", {"c": name, "n": count})
-    return int(count)
-
-
-def _drop_state(con: duckdb.DuckDBPyConnection, name: str) -> None:
-    """Every derived trace of a check (not its alerts), so its next run reads the lake from the start."""
-    for table in ("windows", "key_windows", "carry", "key_state", "check_state", "files_read"):
-        con.execute(f"DELETE FROM {table} WHERE check_name = $c", {"c": name})
-    # ids of files no check has read any more are forgotten too: a re-read records them again
-    con.execute("DELETE FROM session_ids AS i WHERE NOT EXISTS (SELECT 1 FROM files_read AS f "
-                "WHERE f.source_name = i.source_name AND f.path = i.first_path)")
+    """Close a check's open alerts (those of other definitions than ``keep_definition``) for ``reason``,
+    at the check's watermark, the last data time it saw; how many closed."""
+    params = {"check": name, "run_id": run_id, "reason": reason, "keep": keep_definition}
+    return int(_run_named(con, "begin.close_alerts", params)[0])
 
 
 def _note_changes(con: duckdb.DuckDBPyConnection, run_id: int, checks: list[Check],
@@ -448,20 +420,8 @@ def _note_changes(con: duckdb.DuckDBPyConnection, run_id: int, checks: list[Chec
                    for f in listings[check.source.name]]
         if not listing:
             continue
-        rows = con.execute(
-            """
-            INSERT INTO changed_files
-            SELECT $r, f.check_name, f.path, f.size, f.modified_at, l.size, l.modified_at
-            FROM files_read AS f
-            JOIN (SELECT unnest($listing, recursive := true)) AS l ON l.path = f.path
-            WHERE f.check_name = $c AND (f.size <> l.size OR f.modified_at <> l.modified_at)
-              AND NOT EXISTS (SELECT 1 FROM changed_files AS c
-                              WHERE c.check_name = f.check_name AND c.path = f.path
-                                AND c.size_now = l.size AND c.modified_now = l.modified_at)
-            RETURNING path, size_read, size_now, modified_read, modified_now
-            """,
-            {"r": run_id, "c": check.name, "listing": listing},
-        ).fetchall()
+        rows = _run_named(con, "begin.note_changed_files", {"run_id": run_id, "check": check.name, "listing": listing},
+                          fetch="all")
         where = {f.path: f.where for f in listings[check.source.name]}
         noticed += [f"{where.get(path, path)} (check {check.name}: size {a} -> {b}, modified {ta} -> {tb})"
                     for path, a, b, ta, tb in sorted(rows)]
@@ -490,17 +450,14 @@ def _groups(con: duckdb.DuckDBPyConnection, checks: list[Check], compiled: list[
     takes them in data-time order (by each file's earliest event time), so the first of several
     runs never reads one partition's last day before another's first; ``read_until``, the
     earliest event time of the files it leaves, then bounds the run's watermark."""
-    history = dict(con.execute(
-        "SELECT check_name, md5(string_agg(path, chr(10) ORDER BY path)) FROM files_read GROUP BY check_name"
-    ).fetchall())
+    history = dict(_run_named(con, "begin.read_histories", {}, fetch="all"))
     groups: dict[tuple[str, tuple[str, ...], str | None], Group] = {}
     more = False
     for check, sql in zip(checks, compiled):
         source = check.source
         if source.name not in listings:
             listings[source.name] = lake.list_source(source)
-        seen = {row[0] for row in con.execute(
-            "SELECT path FROM files_read WHERE check_name = $c", {"c": check.name}).fetchall()}
+        seen = {row[0] for row in _run_named(con, "begin.files_read_by", {"check": check.name}, fetch="all")}
         new = sorted((f for f in listings[source.name] if f.path not in seen), key=lambda f: f.path)
         taken, read_until = new, None
         if sum(f.size for f in new) > budget and len(new) > 1:
@@ -550,47 +507,67 @@ def _run_check(con: duckdb.DuckDBPyConnection, stages: duckdb.DuckDBPyConnection
     if not new:
         return result
     run_id = params["run_id"]
-    loop: list[tuple[str, Statement]] = []
     for stage in sql.stages[1:]:
-        _run_stage(con, stages, f"check {check.name}", stage.name, stage.once, params)
-        loop += [(stage.name, s) for s in stage.repeat]
-        if stage.name == "breach" and loop:
-            result.rounds = _settle(con, check, loop, params)
-            loop = []
-    con.execute("UPDATE run_checks SET rounds = $r WHERE run_id = $run AND check_name = $c",
-                {"r": result.rounds, "run": run_id, "c": check.name})
-    row = con.execute(
-        "SELECT rows_read, windows_written, alerts_opened, alerts_closed FROM run_checks "
-        "WHERE run_id = $run AND check_name = $c", {"run": run_id, "c": check.name}).fetchone()
+        result.rounds += _run_stage(con, stages, f"check {check.name}", stage, params)
+    row = _run_named(con, "check.result", {"rounds": result.rounds, "run_id": run_id, "check": check.name})
     result.rows_read, result.windows_written, result.alerts_opened, result.alerts_closed = row
     return result
 
 
-def _settle(con: duckdb.DuckDBPyConnection, check: Check, loop: list[tuple[str, Statement]],
-            params: dict[str, Any]) -> int:
-    """Repeat the verdict statements until no breach flag changes; the last one returns the count."""
-    windows = int(con.execute("SELECT count(*) FROM judged").fetchone()[0])
-    for rounds in range(1, windows + 2):
-        changing = None
-        for stage, statement in loop:
-            changing = _execute(con, f"check {check.name}", stage, statement, params)
-        if not changing or changing[0] == 0:
+def _settle(con: duckdb.DuckDBPyConnection, who: str, stage: Stage, params: dict[str, Any]) -> int:
+    """A stage's loop: rounds until its stop condition returns 0; how many rounds it took.
+
+    More rounds than the loop's limit allows is an error: verdicts that do not settle would
+    otherwise keep the run going for ever."""
+    loop = stage.loop
+    assert loop is not None
+    limit = int(_execute(con, who, stage.name, loop.limit, params)[0])
+    changing = None
+    for rounds in range(1, limit + 1):
+        for statement in loop.rounds:
+            _execute(con, who, stage.name, statement, params)
+        changing = _execute(con, who, stage.name, loop.until, params)[0]
+        if changing == 0:
             return rounds
-    raise DataError(f"check {check.name}: verdicts did not settle after {windows + 1} rounds")
+    raise DataError(f"{who}, stage {stage.name}: the loop did not settle: {loop.until_name} was still {changing} "
+                    f"after {limit} rounds, the most {loop.limit_name} allows")
 
 
 def _execute(con: duckdb.DuckDBPyConnection, who: str, stage: str, statement: Statement,
-             params: dict[str, Any]) -> tuple | None:
+             params: dict[str, Any], fetch: str = "row") -> Any:
+    """Every statement a run executes passes here: a stage's, and the run's own (``stage`` RUN).
+
+    ``fetch`` says what comes back: the first row (``row``), every row (``all``), the rows as an
+    Arrow table (``arrow``) or as a stream of Arrow batches (``reader``: nothing else may run on
+    ``con`` until the stream is closed). A stage's failure names the check and stage; one of the
+    run's own statements fails as the engine says (a full disk, a lost file)."""
     if isinstance(statement, spark_engine.SparkStatement):  # `engine: spark`: a step on Spark
         return spark_engine.execute(con, who, stage, statement, params)
-    wanted = {k: params[k] for k in statement.params}
+    wanted = statement.bound(params)
     try:
+        if fetch == "arrow":
+            return con.sql(statement.sql, params=wanted or None).to_arrow_table()
+        if fetch == "reader":
+            return con.sql(statement.sql, params=wanted or None).to_arrow_reader(STREAM_BATCH)
         cursor = con.execute(statement.sql, wanted) if wanted else con.execute(statement.sql)
-        row = cursor.fetchone() if cursor.description else None
+        if fetch == "all":
+            rows = cursor.fetchall() if cursor.description else []
+        else:
+            rows = cursor.fetchone() if cursor.description else None
         warehouse.finish_pending(con)
-        return row
+        return rows
     except duckdb.Error as err:
+        if stage == RUN:
+            raise
         raise DataError(f"{who}, stage {stage}: {_engine_message(err)}") from err
+
+
+def _run_named(con: duckdb.DuckDBPyConnection, name: str, params: dict[str, Any], fetch: str = "row") -> Any:
+    """One of the run's own statements (``queries/run.sql``), by name; what its last statement gives."""
+    out = None
+    for statement in run_statements()[name]:
+        out = _execute(con, RUN, RUN, statement, params, fetch=fetch)
+    return out
 
 
 def _forget(con: duckdb.DuckDBPyConnection, checks: list[Check], compiled: list[CompiledCheck],
@@ -601,41 +578,15 @@ def _forget(con: duckdb.DuckDBPyConnection, checks: list[Check], compiled: list[
     alerts of an earlier definition stay as history, the open ones closed as 'check changed'.
     """
     for check, sql in zip(checks, compiled):
-        params = {"c": check.name, "d": sql.definition_hash}
         _close_alerts(con, check.name, run_id, "check changed", sql.definition_hash)
-        con.execute("DELETE FROM alert_events WHERE alert_id IN (SELECT alert_id FROM alerts "
-                    "WHERE check_name = $c AND definition_hash = $d)", params)
-        con.execute("DELETE FROM alerts WHERE check_name = $c AND definition_hash = $d", params)
-        _drop_state(con, check.name)
+        _run_named(con, "begin.forget_rebuilt_alerts", {"check": check.name, "definition": sql.definition_hash})
+        _run_named(con, "begin.drop_state", {"check": check.name})
 
 
-def _record(con: duckdb.DuckDBPyConnection, run_id: int, started: datetime, names: list[str],
-            rebuild: bool, status: str, error: str | None, warning: str | None) -> None:
+def _record(con: duckdb.DuckDBPyConnection, record: dict[str, Any], status: str, error: str | None,
+            warning: str | None) -> None:
     """The run record: what every scan read (once per scan) and what every check wrote."""
-    con.execute(
-        """
-        INSERT INTO runs BY NAME
-        SELECT $run_id AS run_id, $started AS started_at, $finished AS finished_at, $status AS status,
-               $checks AS checks, $rebuild AS rebuild,
-               (SELECT count(DISTINCT (source_name, path)) FROM files_read WHERE run_id = $run_id) AS files_read,
-               s.rows_read, s.rows_excluded, s.duplicate_rows, c.late_rows, s.rows_invalid AS invalid_rows,
-               (SELECT count(DISTINCT path) FROM changed_files WHERE run_id = $run_id) AS changed_files,
-               c.windows_written, c.alerts_opened,
-               c.alerts_closed + (SELECT coalesce(sum(alerts_closed), 0) FROM run_retired) AS alerts_closed,
-               $error AS error, c.nonfinite_values, $warning AS warning
-        FROM (SELECT coalesce(sum(rows_read), 0) AS rows_read, coalesce(sum(rows_excluded), 0) AS rows_excluded,
-                     coalesce(sum(duplicate_rows), 0) AS duplicate_rows,
-                     coalesce(sum(rows_invalid), 0) AS rows_invalid
-              FROM run_scans) AS s,
-             (SELECT coalesce(sum(late_rows), 0) AS late_rows, coalesce(sum(windows_written), 0) AS windows_written,
-                     coalesce(sum(alerts_opened), 0) AS alerts_opened,
-                     coalesce(sum(alerts_closed), 0) AS alerts_closed,
-                     coalesce(sum(nonfinite_values), 0) AS nonfinite_values
-              FROM run_checks WHERE run_id = $run_id) AS c
-        """,
-        {"run_id": run_id, "started": started, "finished": _now(), "status": status, "checks": names,
-         "rebuild": rebuild, "error": error, "warning": warning},
-    )
+    _run_named(con, "end.record", record | {"finished": _now(), "status": status, "error": error, "warning": warning})
 
 
 def _now() -> datetime:

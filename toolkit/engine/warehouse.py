@@ -21,10 +21,10 @@ from pathlib import Path
 import duckdb
 
 from toolkit.lake import storage
-from toolkit.sql.templates import environment, render, statements, template_folder
+from toolkit.sql.script import PUBLISHED, connection_statements, layout_statements, publish_statements
+from toolkit.sql.templates import Named, render, statements, template_folder
 from toolkit.model import Project
 from toolkit.problems import DataError, RunLocked, WarehouseError, engine_message
-from toolkit.sql.quoting import quote_ident, quote_literal
 
 TABLES = ("runs", "run_checks", "files_read", "changed_files", "source_columns", "session_ids",
           "check_state", "key_state", "carry", "key_windows", "windows", "alerts", "alert_events",
@@ -32,7 +32,6 @@ TABLES = ("runs", "run_checks", "files_read", "changed_files", "source_columns",
 # The layout this release writes (the schema_version table): 2 names files relative to their
 # source, 3 renames columns (CHANGELOG.md).
 SCHEMA_VERSION = 3
-PUBLISHED = ("alerts", "alert_events", "windows", "runs")
 POLL_SECONDS = 0.25
 # A run's temp tables live until its one transaction commits, so without a limit its memory grows
 # with checks x sessions; at this limit DuckDB spills to disk instead. The limit bounds DuckDB's
@@ -74,10 +73,12 @@ def connect(project: Project, read_only: bool = False, wait: float = 0.0) -> duc
                 raise RunLocked(f"{path}: in use by {holder(project, err)}{waited}; "
                                 "try again later or pass --wait SECONDS") from None
             time.sleep(POLL_SECONDS)
-    con.execute("SET TimeZone = 'UTC'")
-    con.execute(f"SET memory_limit = {quote_literal(_setting(project.memory_limit or DEFAULT_MEMORY_LIMIT))}")
+    settings = connection_statements()
+    _execute(con, settings, "connection.time_zone")
+    _execute(con, settings, "connection.memory_limit",
+             {"limit": _setting(project.memory_limit or DEFAULT_MEMORY_LIMIT)})
     if project.threads:
-        con.execute(f"SET threads = {int(project.threads)}")
+        _execute(con, settings, "connection.threads", {"threads": int(project.threads)})
     if project.remote and not read_only:
         try:
             storage.register(con, project.storage)
@@ -106,7 +107,7 @@ def stage_connection(con: duckdb.DuckDBPyConnection, project: Project) -> duckdb
     """A second connection to the same warehouse, with the same settings, for the stages a run
     runs outside its transaction (see toolkit.engine.runner)."""
     stages = con.cursor()
-    stages.execute("SET TimeZone = 'UTC'")
+    _execute(stages, connection_statements(), "connection.time_zone")
     if project.remote:
         storage.register(stages, project.storage)
     return stages
@@ -120,37 +121,45 @@ def ensure_schema(con: duckdb.DuckDBPyConnection) -> None:
 def migrate(con: duckdb.DuckDBPyConnection, project: Project) -> None:
     """Bring a warehouse written by an earlier release to this release's layout, in one transaction;
     refuse one written by a later release (its tables may mean something this one does not know)."""
-    row = con.execute("SELECT max(version) FROM schema_version").fetchone()
+    layout = layout_statements()
+    row = _execute(con, layout, "layout.version")
     version = row[0] if row and row[0] is not None else None
     if version is not None and version > SCHEMA_VERSION:
         raise WarehouseError(f"{project.warehouse}: written by a newer Plimsoll (warehouse layout {version}; "
                              f"this one reads layout {SCHEMA_VERSION} and earlier); upgrade plimsoll")
     if version == SCHEMA_VERSION:
         return
-    con.execute("BEGIN TRANSACTION")
+    _execute(con, layout, "layout.begin")
     try:
-        used = con.execute("SELECT (SELECT count(*) FROM runs) + (SELECT count(*) FROM files_read)").fetchone()[0]
-        if used:  # a new file is made in this release's layout; an old one is brought to it step by step
-            for layout, step in _MIGRATIONS:
-                if (version or 1) < layout:
+        if _execute(con, layout, "layout.in_use")[0]:
+            # a new file is made in this release's layout; an old one is brought to it step by step
+            for number, step in _MIGRATIONS:
+                if (version or 1) < number:
                     step(con, project)
             _adopt_definitions(con, project)
-        con.execute("DELETE FROM schema_version")
-        con.execute("INSERT INTO schema_version VALUES ($v)", {"v": SCHEMA_VERSION})
-        con.execute("COMMIT")
+        _execute(con, layout, "layout.record", {"version": SCHEMA_VERSION})
+        _execute(con, layout, "layout.commit")
     except BaseException:
-        con.execute("ROLLBACK")
+        _execute(con, layout, "layout.roll_back")
         raise
 
 
 # (table, old name, new name) of the columns layout 3 renamed; CHANGELOG.md lists them for readers
-RENAMED_IN_3 = (("runs", "full_refresh", "rebuild"),)
+RENAMED_IN_3 = (
+    ("runs", "full_refresh", "rebuild"),
+    ("run_checks", "rows_invalid", "invalid_rows"),  # one name for one count, as in runs and files_read
+    ("windows", "seq", "window_number"),
+    ("key_windows", "seq", "window_number"),
+    ("key_state", "last_seq", "last_window_number"),
+    ("carry", "num", "numerator"),
+    ("carry", "den", "denominator"),
+    ("carry", "x", "quantile_input"),
+)
 
 
 def _layout_3(con: duckdb.DuckDBPyConnection, project: Project) -> None:
     """Layout 2 to 3: the columns renamed so their names say what they hold."""
-    present = set(con.execute("SELECT table_name, column_name FROM duckdb_columns() "
-                              "WHERE database_name = current_database()").fetchall())
+    present = set(_execute(con, layout_statements(), "layout.columns", fetch="all"))
     renamed = [(t, old, new) for t, old, new in RENAMED_IN_3 if (t, old) in present]
     _run_template(con, "migrate_3.sql", {}, renamed=renamed)
 
@@ -180,16 +189,13 @@ def _adopt_definitions(con: duckdb.DuckDBPyConnection, project: Project) -> None
     every check. (So edit checks before or after an upgrade, not in the same step.)"""
     from toolkit.sql.compiler import compile_check
 
+    layout = layout_statements()
     for check in project.checks.values():
-        stored = con.execute("SELECT definition_hash FROM check_state WHERE check_name = $c",
-                             {"c": check.name}).fetchone()
+        stored = _execute(con, layout, "layout.stored_definition", {"check": check.name})
         if not stored:
             continue
         now = compile_check(check).definition_hash
-        con.execute("UPDATE alerts SET definition_hash = $now WHERE check_name = $c AND status = 'open' "
-                    "AND definition_hash = $old", {"now": now, "c": check.name, "old": stored[0]})
-        con.execute("UPDATE check_state SET definition_hash = $now WHERE check_name = $c",
-                    {"now": now, "c": check.name})
+        _execute(con, layout, "layout.adopt_definition", {"now": now, "check": check.name, "old": stored[0]})
 
 
 def _number_id_hashes(con: duckdb.DuckDBPyConnection) -> None:
@@ -197,11 +203,10 @@ def _number_id_hashes(con: duckdb.DuckDBPyConnection) -> None:
 
     Hex and number are the same md5, so nothing read before is read again or lost.
     """
-    kind = con.execute("SELECT data_type FROM duckdb_columns() WHERE table_name = 'session_ids' "
-                       "AND column_name = 'id_hash' AND database_name = current_database()").fetchone()
+    layout = layout_statements()
+    kind = _execute(con, layout, "layout.id_hash_type")
     if kind and kind[0] == "VARCHAR":
-        number = environment().from_string('{% import "macros.sql" as m %}{{ m.md5_hex_number("id_hash") }}')
-        con.execute(f"ALTER TABLE session_ids ALTER id_hash TYPE UHUGEINT USING {number.render()}")
+        _execute(con, layout, "layout.id_hashes_as_numbers")
 
 
 def claim_path(project: Project) -> Path:
@@ -247,10 +252,11 @@ def publish(con: duckdb.DuckDBPyConnection, project: Project) -> None:
     """Copy the tables analysts read to Parquet beside the warehouse, each file replaced whole."""
     folder = snapshot_folder(project)
     folder.mkdir(parents=True, exist_ok=True)
+    copies = publish_statements()
     for table in PUBLISHED:
         final = folder / f"{table}.parquet"
         temp = folder / f".{table}.parquet.{os.getpid()}.tmp"
-        con.execute(f"COPY (SELECT * FROM {quote_ident(table)}) TO {quote_literal(str(temp))} (FORMAT parquet)")
+        _execute(con, copies, f"publish.{table}", {"path": str(temp)})
         os.replace(temp, final)
 
 
@@ -269,11 +275,22 @@ def open_for_reading(project: Project) -> duckdb.DuckDBPyConnection:
             raise RunLocked(f"{project.warehouse}: in use by {holder(project)}, and no published copy "
                             f"of it in {folder} yet") from None
         con = duckdb.connect()
-        con.execute("SET TimeZone = 'UTC'")
+        _execute(con, connection_statements(), "connection.time_zone")
+        views = publish_statements(tuple((table, str(folder / f"{table}.parquet")) for table in PUBLISHED))
         for table in PUBLISHED:
-            source = quote_literal(str(folder / f"{table}.parquet"))
-            con.execute(f"CREATE VIEW {quote_ident(table)} AS SELECT * FROM read_parquet({source})")
+            _execute(con, views, f"read.{table}")
         return con
+
+
+def _execute(con: duckdb.DuckDBPyConnection, named: Named, name: str, params: dict[str, object] | None = None,
+             fetch: str = "row") -> object:
+    """One of the warehouse's named statements (settings, layout, copies): what its last statement gives."""
+    out = None
+    for statement in named[name]:
+        cursor = con.execute(statement.sql, statement.bound(params or {}))
+        out = (cursor.fetchall() if fetch == "all" else cursor.fetchone()) if cursor.description else None
+        finish_pending(con)
+    return out
 
 
 def _write_atomically(path: Path, data: bytes) -> None:

@@ -19,6 +19,8 @@ from toolkit.lake import storage
 from toolkit.model import Source, Storage
 from toolkit.problems import DataError, engine_message
 from toolkit.sql.quoting import quote_ident
+from toolkit.sql.script import lake_statements
+from toolkit.sql.templates import Named
 
 
 @dataclass(frozen=True, order=True)
@@ -173,14 +175,13 @@ def file_columns(paths: list[str], settings: Storage | None = None) -> dict[str,
 
 
 def _file_columns(con: duckdb.DuckDBPyConnection, paths: list[str]) -> dict[str, dict[str, str]]:
+    footers = lake_statements(None)
     try:
-        rows = con.execute(
-            "SELECT file_name, name, duckdb_type FROM parquet_schema($files) "
-            "WHERE duckdb_type IS NOT NULL", {"files": paths}).fetchall()
+        rows = _execute(con, footers, "lake.footers", {"files": paths})
     except duckdb.Error:
         for path in paths:
             try:
-                con.execute("SELECT 1 FROM parquet_schema($f) LIMIT 1", {"f": [path]}).fetchall()
+                _execute(con, footers, "lake.footer", {"files": [path]})
             except duckdb.Error as err:
                 detail = engine_message(err)
                 raise DataError(f"{path}: not a readable Parquet file ({detail})") from None
@@ -238,9 +239,9 @@ def check_new_files(con: duckdb.DuckDBPyConnection, source: Source, files: list[
     with those recorded in ``source_columns`` (the types validation found in most of the source's
     files, recorded when a run first reads the column), so one odd file is named whatever its order.
     """
-    known = {name: (kind, first) for name, kind, first in con.execute(
-        "SELECT column_name, column_type, first_path FROM source_columns WHERE source_name = $s",
-        {"s": source.name}).fetchall()}
+    recorded = lake_statements(source)
+    known = {name: (kind, first) for name, kind, first in _execute(con, recorded, "lake.known_columns",
+                                                                    {"source": source.name})}
     who = ", ".join(readers)
     named = {f.where: f for f in files}
     times = set(source.time_columns)
@@ -256,8 +257,8 @@ def check_new_files(con: duckdb.DuckDBPyConnection, source: Source, files: list[
             if name not in known:
                 kind = source.columns.get(name) or columns[name]
                 known[name] = (kind, named[location].path)
-                con.execute("INSERT INTO source_columns VALUES ($s, $c, $t, $p)",
-                            {"s": source.name, "c": name, "t": kind, "p": named[location].path})
+                _execute(con, recorded, "lake.record_column",
+                         {"source": source.name, "column": name, "type": kind, "path": named[location].path})
             if type_family(columns[name]) != type_family(known[name][0]):
                 raise DataError(f"{location}: column '{name}' is {columns[name]}, but source '{source.name}' "
                                 f"has it as {known[name][0]} (first read in {known[name][1]})")
@@ -276,13 +277,11 @@ def _check_partitions(location: str, partitions: dict[str, str], columns: dict[s
             continue
         if not re.fullmatch(r"[A-Z0-9_(), ]+", columns[key]):
             raise DataError(f"{location}: column '{key}' has a type Plimsoll cannot compare: {columns[key]}")
+        check = lake_statements(None, {"column": key, "type": columns[key]})
         with duckdb.connect() as con:
             if storage.is_remote(location):
                 storage.register(con, settings)
-            row = con.execute(
-                f"SELECT count(*), any_value({quote_ident(key)}::VARCHAR) FROM read_parquet($f, hive_partitioning = false) "
-                f"WHERE {quote_ident(key)} IS DISTINCT FROM TRY_CAST($v AS {columns[key]})",
-                {"f": [location], "v": value}).fetchone()
+            (row,) = _execute(con, check, "lake.partition", {"files": [location], "value": value})
         if row[0]:
             raise DataError(f"{location}: partition folder '{key}={value}' contradicts the file's own column "
                             f"'{key}' ({row[0]} sessions say '{row[1]}'); fix the file or the folder, "
@@ -295,16 +294,12 @@ def first_event_times(con: duckdb.DuckDBPyConnection, source: Source, files: lis
     if not files:
         return {}
     limits = [f.modified_at + source.max_future for f in files]
-    rows = con.execute(
-        f"""
-        SELECT file_index, min(t)
-        FROM (
-            SELECT file_index, ({source.time.sql if source.time else quote_ident(source.event_time)})::TIMESTAMP AS t
-            FROM read_parquet($files, hive_partitioning = true, union_by_name = true)
-        )
-        WHERE isfinite(t) AND t <= $limits[file_index::BIGINT + 1]
-        GROUP BY file_index
-        """,
-        {"files": [f.where for f in files], "limits": limits},
-    ).fetchall()
+    rows = _execute(con, lake_statements(source), "lake.first_event_times",
+                    {"files": [f.where for f in files], "limits": limits})
     return {files[index].path: first for index, first in rows}
+
+
+def _execute(con: duckdb.DuckDBPyConnection, named: Named, name: str, params: dict[str, object]) -> list[tuple]:
+    """One of the lake's named statements (``queries/lake.sql``): every row it gives."""
+    (statement,) = named[name]
+    return con.execute(statement.sql, statement.bound(params)).fetchall()

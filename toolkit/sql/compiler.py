@@ -1,8 +1,8 @@
 """Compiling a check into the SQL a run executes, stage by stage, from the templates in ``queries/``.
 
 The compiler only returns text; :mod:`toolkit.engine.runner` only executes what it returns, and
-``plimsoll sql`` prints the same text. A stage's statements after a ``-- @repeat`` line form the
-loop that settles breach verdicts (see ``baseline.sql``).
+``plimsoll sql`` prints the same text. The verdict stage holds a loop (``-- @loop`` … ``-- @end``,
+see :func:`toolkit.sql.templates.stage`) that the runner repeats until the verdicts settle.
 """
 
 from __future__ import annotations
@@ -10,10 +10,11 @@ from __future__ import annotations
 import hashlib
 from dataclasses import dataclass, field
 
-from toolkit.model import Check
+from toolkit.model import Check, Source
+from toolkit.sql.script import script
 from toolkit.sql.templates import Stage, render, stage
 
-STAGES = ("source", "scan", "window", "measure", "baseline", "breach", "lifecycle", "persist")
+STAGES = ("source", "scan", "window", "measure", "verdict", "lifecycle", "persist")
 CHECK_STAGES = STAGES[1:]
 
 
@@ -24,20 +25,31 @@ class CompiledCheck:
     check: str
     stages: tuple[Stage, ...]
     definition_hash: str = field(default="")
+    source: Source | None = field(default=None, compare=False)
 
     @property
     def sql(self) -> str:
-        """The whole script as ``plimsoll sql`` shows it."""
-        header = (
-            f"-- Plimsoll check {self.check}: compiled SQL, executed by `plimsoll run` as shown.\n"
-            "-- Parameters: $files (where the new Parquet files are read from), $paths (their names\n"
-            "-- relative to the source's path), $manifest (names, sizes and times), $run_id, $reader (the\n"
-            "-- check whose earlier files decide repeats), $read_until (a backlog read in several runs:\n"
-            "-- the earliest event time left for the next runs, else NULL), $source_checks (the checks of\n"
-            "-- the source), $definition (hash of the SQL up to the breach stage). Statements after\n"
-            "-- '@repeat' run until no breach flag changes.\n"
-        )
-        return header + "\n".join(stage.text.rstrip() + "\n" for stage in self.stages)
+        """Every statement a run executes for the check, in order, as ``plimsoll sql`` shows it:
+        the check's stages, and around them the run's own statements (:mod:`toolkit.sql.script`)."""
+        body = (script(self.source, self.stages) if self.source is not None
+                else "\n".join(stage.text.rstrip() + "\n" for stage in self.stages))
+        return _HEADER.format(check=self.check) + body
+
+
+_HEADER = """\
+-- Plimsoll check {check}: every statement `plimsoll run` executes for it, in order, as shown.
+-- Opening the warehouse comes first, as for every command that writes it, and is not repeated
+-- here: the settings of queries/connection.sql, the tables of queries/warehouse.sql (made if
+-- missing) and, for a file of an earlier layout, its conversion (queries/layout.sql, migrate_*.sql).
+-- Parameters: $files (where the new Parquet files are read from), $paths (their names
+-- relative to the source's path), $manifest (names, sizes and times), $run_id, $reader (the
+-- check whose earlier files decide repeats), $read_until (a backlog read in several runs:
+-- the earliest event time left for the next runs, else NULL), $source_checks (the checks of
+-- the source), $definition (hash of the SQL up to the verdict stage), $check (the check's name);
+-- the run's own statements name theirs. The statements from '@loop' to '@end' are one round,
+-- repeated until its last statement returns 0. A named statement ('@statement NAME') runs where
+-- its name says: the run's own are in queries/run.sql, the lake's in queries/lake.sql.
+"""
 
 
 def columns_read(checks: list[Check]) -> list[str]:
@@ -78,11 +90,11 @@ def compile_check(check: Check) -> CompiledCheck:
         "lifecycle": check.lifecycle,
     }
     stages = (_source_stage([check]),) + tuple(stage(name, render(f"{name}.sql", **context)) for name in CHECK_STAGES)
-    return CompiledCheck(check.name, stages, definition_hash(stages))
+    return CompiledCheck(check.name, stages, definition_hash(stages), check.source)
 
 
 def definition_hash(stages: tuple[Stage, ...]) -> str:
-    """A hash of the DuckDB SQL that forms the check's windows and verdicts (stages source to breach).
+    """A hash of the DuckDB SQL that forms the check's windows and verdicts (stages source to verdict).
 
     When it changes, windows already stored no longer match what the check computes, so the
     runner asks for a rebuild. The life cycle and severity may change without one: they only

@@ -1,0 +1,250 @@
+{% import "macros.sql" as m %}
+{% set check_lit = check.name | literal %}
+{% set b = baseline %}
+{% set g = guard %}
+-- ── stage 4 · verdict ──────────────────────────────────────────────────────────────────────
+-- Each new window's baseline, threshold and verdict.
+--
+-- Baseline and threshold:
+{% if b.method == "rolling_percentile" %}
+-- rolling_percentile: baseline = quantile_cont(value, {{ b.q }}) over the series' last {{ b.history }} earlier
+-- windows that did not breach; a window gets a threshold once it has {{ b.min_history }} of them:
+{% if check.direction == "up" %}
+--   threshold = {% if b.floor is not none %}greatest({{ b.floor }}, {% endif %}{{ b.factor }} × baseline{% if b.floor is not none %}){% endif +%}
+{% else %}
+--   threshold = {% if b.floor is not none %}least({{ b.floor }}, {% endif %}{{ b.factor }} × baseline{% if b.floor is not none %}){% endif +%}
+{% endif %}
+{% elif b.method == "p_chart" %}
+-- p_chart (NIST/SEMATECH e-Handbook §6.3.3.2, proportions control chart): baseline = p̄ = Σ bad ÷
+-- Σ sessions over the series' last {{ b.history }} earlier windows that did not breach (at least {{ b.min_history }});
+-- the limit widens for small windows, n = this window's sessions:
+{% if check.direction == "up" %}
+--   threshold = p̄ + {{ b.sigmas }} × √(p̄ (1 − p̄) / n)
+{% else %}
+--   threshold = max(0, p̄ − {{ b.sigmas }} × √(p̄ (1 − p̄) / n))
+{% endif %}
+{% elif b.method == "ewma" %}
+{% set lam = b.lam %}
+-- ewma (NIST/SEMATECH e-Handbook §6.3.2.4, EWMA control chart), λ = {{ lam }}:
+--   statistic z = {{ lam }} × value + {{ 1 - lam }} × z of the series' previous window
+--   (a new series starts at {{ "the target " ~ b.target if b.target is not none else "its first value" }}; a window without a value keeps z);
+--   target = {{ b.target if b.target is not none else "mean of the series' last " ~ b.history ~ " earlier windows that did not breach" }},
+--   s = {{ b.sigma if b.sigma is not none else "their standard deviation" }};
+--   threshold = target {{ "+" if check.direction == "up" else "−" }} {{ b.sigmas }} × s × √(λ / (2 − λ)), and the window breaches on z, not on its value.
+{% endif %}
+{% if measure.split %}
+-- A split value first seen after its key's first window has the key's earlier windows as history,
+-- each with value 0: it had no bad sessions in them.
+{% endif %}
+--
+-- Verdict: a window breaches when it has a threshold, its {{ "EWMA statistic" if b.method == "ewma" else "value" }} is {{ "above" if check.direction == "up" else "below" }} it, and it passes the guard
+-- (at least {{ g.min_sessions }} sessions{% if measure.kind == "rate" %} and {{ g.min_bad }} bad{% endif %}); every other window with a threshold and a value is
+-- healthy. A window without a value (a zero denominator, no session with a value) gives no verdict.
+{% if b.confidence %}
+-- confidence {{ b.confidence }}: it also needs the {{ "lower" if check.direction == "up" else "upper" }} end of its Wilson score interval (Wilson 1927)
+-- at that two-sided confidence (z = {{ z_for(b.confidence) }}) beyond the threshold, so a small noisy window cannot:
+--   bound = (p̂ + z²/2n {{ "−" if check.direction == "up" else "+" }} z·√(p̂(1−p̂)/n + z²/4n²)) / (1 + z²/n),  p̂ = bad / sessions
+{% endif %}
+--
+-- A window's history is the earlier windows of its series that did not breach, so verdicts depend on
+-- the verdicts before them: the statements between '@loop' and '@end' are one round, repeated until
+-- no breach flag changes. A round recomputes only the series still changing, all of them at once.
+
+-- history: the series' earlier windows in the warehouse that did not breach (and, for a split value
+-- seen late, its key's quiet windows before it), the last {{ b.history }} of each series.
+CREATE OR REPLACE TEMP TABLE history AS
+WITH earlier AS (
+    SELECT w.key, w.split_value, w.window_number, w.key_window, w.value, w.sessions, w.bad, w.breach
+    FROM windows AS w
+    SEMI JOIN (SELECT DISTINCT key, split_value FROM new_windows) AS n
+        ON w.key = n.key AND w.split_value IS NOT DISTINCT FROM n.split_value
+    WHERE w.check_name = {{ check_lit }}
+){% if measure.split %},
+first_seen AS (
+    SELECT key, split_value, min(key_window) AS first_window
+    FROM (SELECT key, split_value, key_window FROM earlier
+          UNION ALL SELECT key, split_value, key_window FROM new_windows)
+    GROUP BY key, split_value
+),
+quiet AS (
+    -- a split value first seen in its key's n-th window had no bad session in the n-1 before
+    SELECT f.key, f.split_value, k.window_number, 0.0::DOUBLE AS value, k.sessions, 0::BIGINT AS bad
+    FROM first_seen AS f
+    JOIN (SELECT key, key_window, window_number, sessions FROM key_windows WHERE check_name = {{ check_lit }}
+          UNION ALL SELECT key, key_window, window_number, sessions FROM new_key_windows) AS k
+        ON k.key = f.key AND k.key_window < f.first_window
+        AND k.key_window >= f.first_window - {{ b.history }}
+){% endif %}
+
+SELECT key, split_value, window_number, value, sessions, bad
+FROM (
+    SELECT key, split_value, window_number, value, sessions, bad FROM earlier WHERE NOT breach AND value IS NOT NULL
+{% if measure.split %}
+    UNION ALL
+    SELECT key, split_value, window_number, value, sessions, bad FROM quiet
+{% endif %}
+)
+QUALIFY row_number() OVER (PARTITION BY key, split_value ORDER BY window_number DESC) <= {{ b.history }};
+
+{% if b.method == "ewma" %}
+CREATE OR REPLACE TEMP TABLE smoothed AS
+WITH RECURSIVE numbered AS (
+    SELECT key, split_value, window_number, value,
+           row_number() OVER (PARTITION BY key, split_value ORDER BY window_number) AS step
+    FROM new_windows
+),
+start AS (
+    SELECT s.key, s.split_value, coalesce(l.statistic, {{ b.target if b.target is not none else "NULL" }})::DOUBLE AS z
+    FROM (SELECT DISTINCT key, split_value FROM new_windows) AS s
+    LEFT JOIN (
+        SELECT key, split_value, arg_max(statistic, window_number) AS statistic
+        FROM windows
+        WHERE check_name = {{ check_lit }}
+        GROUP BY key, split_value
+    ) AS l ON {{ m.same_series("s", "l") }}
+),
+chain(key, split_value, step, window_number, z) AS (
+    SELECT key, split_value, 0::BIGINT, NULL::BIGINT, z FROM start
+    UNION ALL
+    SELECT n.key, n.split_value, n.step, n.window_number,
+           CASE WHEN n.value IS NULL THEN c.z
+                ELSE {{ b.lam }} * n.value + {{ 1 - b.lam }} * coalesce(c.z, n.value) END
+    FROM chain AS c
+    JOIN numbered AS n ON {{ m.same_series("n", "c") }} AND n.step = c.step + 1
+)
+SELECT key, split_value, window_number, z AS statistic FROM chain WHERE step > 0;
+
+{% endif %}
+-- judged: the new windows with their verdicts so far; `changed` marks those whose breach flag
+-- changed in the last round (at first, all of them).
+CREATE OR REPLACE TEMP TABLE judged AS
+SELECT
+{% if b.method == "ewma" %}
+    n.*,
+    s.statistic,
+{% else %}
+    *,
+{% endif %}
+    NULL::DOUBLE AS baseline,
+    NULL::BIGINT AS history_windows,
+    NULL::DOUBLE AS threshold,
+    false AS breach,
+    true AS changed
+{% if b.method == "ewma" %}
+FROM new_windows AS n
+LEFT JOIN smoothed AS s ON {{ m.same_series("n", "s") }} AND n.window_number = s.window_number;
+{% else %}
+FROM new_windows;
+{% endif %}
+
+-- @statement round_limit
+-- The most rounds the loop may take. The first window of a series whose verdict is not final has
+-- only final windows before it, so each round settles at least one more window of every series:
+-- a series of n new windows settles within n rounds, and one more round finds nothing changing.
+-- Beyond that the verdicts cannot settle, and the run stops with an error rather than loop on.
+SELECT coalesce(max(windows), 0) + 1 AS round_limit
+FROM (SELECT count(*) AS windows FROM judged GROUP BY key, split_value);
+
+-- @loop until still_changing = 0, at most round_limit rounds
+-- baselines: each window's baseline, from the eligible windows before it as the breach flags stand
+-- now (only the series with a window that changed in the last round).
+CREATE OR REPLACE TEMP TABLE baselines AS
+WITH moving AS (
+    SELECT DISTINCT key, split_value FROM judged WHERE changed
+),
+series_rows AS (
+    SELECT h.key, h.split_value, h.window_number, h.value, h.sessions, h.bad, false AS is_new, true AS eligible
+    FROM history AS h
+    SEMI JOIN moving AS s ON h.key = s.key AND h.split_value IS NOT DISTINCT FROM s.split_value
+    UNION ALL
+    SELECT j.key, j.split_value, j.window_number, j.value, j.sessions, j.bad, true, NOT j.breach AND j.value IS NOT NULL
+    FROM judged AS j
+    SEMI JOIN moving AS s ON j.key = s.key AND j.split_value IS NOT DISTINCT FROM s.split_value
+),
+numbered AS (
+    -- hb: how many eligible windows come before this one; history is the eligible rows with hb in
+    -- [hb - history, hb - 1], whatever breached windows lie between them
+    SELECT *,
+        coalesce(count(*) FILTER (WHERE eligible) OVER (
+            PARTITION BY key, split_value ORDER BY window_number ROWS BETWEEN UNBOUNDED PRECEDING AND 1 PRECEDING
+        ), 0) AS hb
+    FROM series_rows
+),
+framed AS (
+    SELECT
+        key, split_value, window_number, is_new,
+{% if b.method == "rolling_percentile" %}
+        quantile_cont(value, {{ b.q }}) FILTER (WHERE eligible) OVER earlier AS baseline,
+{% elif b.method == "p_chart" %}
+        sum(bad) FILTER (WHERE eligible) OVER earlier
+            / nullif(sum(sessions) FILTER (WHERE eligible) OVER earlier, 0) AS baseline,
+{% elif b.method == "ewma" %}
+        {% if b.target is not none %}{{ b.target }}::DOUBLE{% else %}avg(value) FILTER (WHERE eligible) OVER earlier{% endif %} AS baseline,
+        {% if b.sigma is not none %}{{ b.sigma }}::DOUBLE{% else %}stddev_samp(value) FILTER (WHERE eligible) OVER earlier{% endif %} AS spread,
+{% endif %}
+        count(*) FILTER (WHERE eligible) OVER earlier AS history_windows
+    FROM numbered
+    WINDOW earlier AS (
+        PARTITION BY key, split_value ORDER BY hb RANGE BETWEEN {{ b.history }} PRECEDING AND 1 PRECEDING
+    )
+)
+SELECT key, split_value, window_number, baseline, {% if b.method == "ewma" %}spread, {% endif %}history_windows
+FROM framed
+WHERE is_new;
+
+-- round_verdicts: each recomputed window's threshold and whether it breaches.
+CREATE OR REPLACE TEMP TABLE round_verdicts AS
+SELECT
+    *,
+    coalesce(
+        threshold IS NOT NULL
+        AND value IS NOT NULL
+        AND {{ "statistic" if b.method == "ewma" else "value" }} {{ ">" if check.direction == "up" else "<" }} threshold
+        AND sessions >= {{ g.min_sessions }}
+{% if measure.kind == "rate" %}
+        AND bad >= {{ g.min_bad }}
+{% endif %}
+{% if b.confidence %}
+{% set z = z_for(b.confidence) %}
+{% if check.direction == "up" %}
+        AND {{ m.wilson_lower("bad", "sessions", z) }} > threshold
+{% else %}
+        AND {{ m.wilson_upper("bad", "sessions", z) }} < threshold
+{% endif %}
+{% endif %}
+    , false) AS breach
+FROM (
+    SELECT
+        j.key, j.split_value, j.window_number, j.value, {% if b.method == "ewma" %}j.statistic, {% endif %}j.sessions, j.bad, base.baseline, base.history_windows,
+        CASE WHEN base.history_windows >= {{ b.min_history }} THEN
+{% if b.method == "rolling_percentile" %}
+{% set raw = b.factor ~ " * base.baseline" %}
+            {%+ if b.floor is none %}{{ raw }}{% elif check.direction == "up" %}greatest({{ b.floor }}, {{ raw }}){% else %}least({{ b.floor }}, {{ raw }}){% endif +%}
+{% elif b.method == "p_chart" %}
+{% set spread = b.sigmas ~ " * sqrt(base.baseline * (1 - base.baseline) / j.sessions)" %}
+            {%+ if check.direction == "up" %}base.baseline + {{ spread }}{% else %}greatest(0.0, base.baseline - {{ spread }}){% endif +%}
+{% elif b.method == "ewma" %}
+            base.baseline {{ "+" if check.direction == "up" else "-" }} {{ b.sigmas }} * base.spread * sqrt({{ b.lam }} / (2 - {{ b.lam }}))
+{% endif %}
+        END AS threshold
+    FROM judged AS j
+    JOIN baselines AS base ON j.key = base.key AND j.split_value IS NOT DISTINCT FROM base.split_value AND j.window_number = base.window_number
+);
+
+-- What the round changed: only the windows whose breach flag differs from the last round's.
+UPDATE judged SET changed = false WHERE changed;
+
+UPDATE judged
+SET
+    baseline = r.baseline,
+    history_windows = r.history_windows,
+    threshold = r.threshold,
+    changed = judged.breach IS DISTINCT FROM r.breach,
+    breach = r.breach
+FROM round_verdicts AS r
+WHERE judged.key = r.key AND judged.split_value IS NOT DISTINCT FROM r.split_value AND judged.window_number = r.window_number;
+
+-- @statement still_changing
+-- The end of a round: how many breach flags it changed. The loop stops at 0.
+SELECT count(*) FILTER (WHERE changed) AS still_changing FROM judged;
+-- @end

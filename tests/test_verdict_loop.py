@@ -1,0 +1,142 @@
+"""The verdict stage is one template whose loop is written in it: `-- @loop until NAME = 0, at most
+LIMIT rounds` … `-- @end`, with the stop condition and the limit as named statements. The runner
+repeats the round the template describes, records how many rounds it took, and stops with one line
+when the loop does not settle within its limit."""
+
+from __future__ import annotations
+
+from dataclasses import replace
+from pathlib import Path
+from typing import Any
+
+import duckdb
+import pytest
+from click.testing import CliRunner
+
+from toolkit.cli import main
+from toolkit.config.project import load_project
+from toolkit.engine import runner
+from toolkit.sql.plans import check_plan
+from toolkit.sql.templates import Statement, TemplateError, stage
+
+GOLDEN = Path(__file__).parent / "golden"
+CHECK = "title_decode_errors"  # a split rate check over the fixture lake that breaches (tests/golden)
+
+
+@pytest.fixture
+def project(make_project) -> Path:
+    return make_project({f"{CHECK}.yml": (GOLDEN / f"{CHECK}.yml").read_text()})
+
+
+def test_the_verdict_stage_holds_its_loop(project: Path) -> None:
+    compiled = check_plan(load_project(project).checks[CHECK])
+    verdict = next(s for s in compiled.stages if s.name == "verdict")
+    assert [s.name for s in compiled.stages] == ["source", "scan", "window", "measure", "verdict", "lifecycle",
+                                                  "persist"]
+    assert verdict.loop is not None and verdict.after == ()
+    assert (verdict.loop.until_name, verdict.loop.limit_name) == ("still_changing", "round_limit")
+    assert verdict.loop.until.sql.endswith("SELECT count(*) FILTER (WHERE changed) AS still_changing FROM judged;")
+    made = [s.sql.split("CREATE OR REPLACE TEMP TABLE ")[1].split()[0] for s in verdict.loop.rounds
+            if "CREATE OR REPLACE TEMP TABLE" in s.sql]
+    assert made == ["baselines", "round_verdicts"]
+    assert "CREATE OR REPLACE TEMP TABLE judged" in verdict.once[-1].sql
+    # no other stage loops, and `plimsoll sql` shows the loop as the runner reads it
+    assert [s.name for s in compiled.stages if s.loop is not None] == ["verdict"]
+    shown = CliRunner().invoke(main, ["sql", CHECK, "-p", str(project)]).output
+    assert "-- @loop until still_changing = 0, at most round_limit rounds\n" in shown
+    assert "\n-- @end\n" in shown
+
+
+def test_the_rounds_run_are_the_rounds_recorded(project: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    ran: list[str] = []
+    original = runner._execute
+
+    def counting(con: Any, who: str, stage_name: str, statement: Statement, params: dict, **kw: Any) -> Any:
+        if stage_name == "verdict":
+            ran.append(statement.sql)
+        return original(con, who, stage_name, statement, params, **kw)
+
+    monkeypatch.setattr(runner, "_execute", counting)
+    result = runner.run(load_project(project))
+    stop = [sql for sql in ran if sql.endswith("AS still_changing FROM judged;")]
+    limit = [sql for sql in ran if "AS round_limit" in sql]
+    con = duckdb.connect(str(project.parent / "warehouse.duckdb"), read_only=True)
+    try:
+        recorded = con.execute("SELECT rounds FROM run_checks").fetchall()
+        breaches = con.execute("SELECT count(*) FROM windows WHERE breach").fetchone()[0]
+    finally:
+        con.close()
+    # the limit once before the loop; the stop condition once at the end of every round
+    assert len(limit) == 1 and recorded == [(len(stop),)] == [(result.checks[0].rounds,)]
+    # a breach changes the history of the windows after it, so it takes a round more than one
+    assert breaches > 0 and len(stop) >= 2
+
+
+def test_a_loop_that_does_not_settle_stops_the_run_with_one_line(project: Path,
+                                                                  monkeypatch: pytest.MonkeyPatch) -> None:
+    original = runner.check_plan
+
+    def never_settling(check: Any) -> Any:
+        compiled = original(check)
+        stages = []
+        for s in compiled.stages:
+            if s.loop is not None:  # a stop condition that never reaches 0, within a limit of 3 rounds
+                s = replace(s, loop=replace(s.loop, until=Statement("SELECT 1 AS still_changing", frozenset()),
+                                            limit=Statement("SELECT 3 AS round_limit", frozenset())))
+            stages.append(s)
+        return replace(compiled, stages=tuple(stages))
+
+    monkeypatch.setattr(runner, "check_plan", never_settling)
+    result = CliRunner().invoke(main, ["run", "-p", str(project)])
+    assert result.exit_code == 1
+    assert result.output.splitlines()[-1] == (
+        f"check {CHECK}, stage verdict: the loop did not settle: still_changing was still 1 after 3 rounds, "
+        "the most round_limit allows")
+    con = duckdb.connect(str(project.parent / "warehouse.duckdb"), read_only=True)
+    try:
+        assert con.execute("SELECT status FROM runs").fetchall() == [("failed",)]
+        assert con.execute("SELECT count(*) FROM windows").fetchone() == (0,)
+    finally:
+        con.close()
+
+
+LIMIT = "-- @statement most\nSELECT 5;\n"
+ROUND = "UPDATE t SET x = x + 1;\n"
+STOP = "-- @statement left\nSELECT 0;\n"
+
+
+def test_a_stage_reads_once_loop_and_after() -> None:
+    read = stage("s", f"CREATE TABLE t AS SELECT 1 AS x;\n{LIMIT}-- @loop until left = 0, at most most rounds\n"
+                      f"{ROUND}{STOP}-- @end\nSELECT x FROM t;\n")
+    assert [s.sql for s in read.once] == ["CREATE TABLE t AS SELECT 1 AS x;"]
+    assert [s.sql for s in read.loop.rounds] == ["UPDATE t SET x = x + 1;"]
+    assert read.loop.until.sql == "-- @statement left\nSELECT 0;".split("\n", 1)[1]
+    assert read.loop.limit.sql == "SELECT 5;"
+    assert [s.sql for s in read.after] == ["SELECT x FROM t;"]
+    plain = stage("p", "SELECT 1;\nSELECT 2;\n")
+    assert plain.loop is None and len(plain.once) == 2
+
+
+@pytest.mark.parametrize(("text", "message"), [
+    (f"{LIMIT}-- @loop until left = 0, at most most rounds\n{ROUND}{STOP}",
+     "s: '-- @loop' without '-- @end'"),
+    (f"{LIMIT}-- @loop until left = 0, at most most rounds\n{STOP}{ROUND}-- @end\n",
+     "s: '-- @statement left' holds 2 statements; a named statement is one"),
+    (f"-- @loop until left = 0, at most most rounds\n{ROUND}{STOP}-- @end\n{LIMIT}",
+     "s: the loop's limit 'most' must be a '-- @statement most' before it"),
+    (f"{LIMIT}-- @loop until gone = 0, at most most rounds\n{ROUND}{STOP}-- @end\n",
+     "s: '-- @statement left' after the loop began: only its stop condition (gone) is named there, as the "
+     "round's last statement"),
+    (f"{LIMIT}-- @loop until left = 0\n{ROUND}{STOP}-- @end\n",
+     "s: '-- @loop until left = 0': expected '-- @loop until NAME = 0, at most LIMIT rounds'"),
+    (f"{ROUND}-- @end\n", "s: '-- @end' must follow the loop's stop condition ('-- @statement NAME', the round's "
+                          "last statement)"),
+    (f"{LIMIT}{ROUND}", "s: '-- @statement most' holds 2 statements; a named statement is one"),
+    (f"{LIMIT}", "s: named statements that no loop uses: most"),
+    (f"{LIMIT}-- @loop until left = 0, at most most rounds\n{ROUND}{STOP}-- @end\n"
+     f"-- @loop until left = 0, at most most rounds\n{ROUND}{STOP}-- @end\n", "s: one loop per stage"),
+])
+def test_directives_that_make_no_sense_are_refused(text: str, message: str) -> None:
+    with pytest.raises(TemplateError) as refused:
+        stage("s", text)
+    assert str(refused.value) == message

@@ -1,0 +1,163 @@
+"""A run's own statements, and the whole script a run executes for one check, as ``plimsoll sql``
+prints it.
+
+Around the stages of its checks a run executes statements of its own: its number and transaction,
+checks that are gone or rebuilt, which files are new, the tables that cross between its two
+connections, what each check did, its record and the published copies. They are named statements
+of ``queries/run.sql`` (and ``lake.sql``, ``connection.sql``, ``publish.sql``), executed by name by
+:mod:`toolkit.engine.runner`; :func:`script` puts them where a run executes them, between the
+check's stages.
+"""
+
+from __future__ import annotations
+
+from functools import lru_cache
+import re
+
+from toolkit.model import Source
+from toolkit.sql.spark import SparkStatement
+from toolkit.sql.templates import Named, Stage, Statement, named, statement_kind
+
+# Stages that run on the stage connection (outside the run's transaction, except with --rebuild or
+# on Spark); the tables each leaves for the transaction's stages and run record, moved once it has
+# run; and the relation the source stage's write to the warehouse streams from.
+STAGE_CONNECTION_STAGES = ("source", "scan", "window", "measure")
+MOVED_AFTER = {
+    "source": ("lake_counts", "lake_file_rows"),
+    "measure": ("watermarks", "scan_counts", "carry_next", "window_counts", "new_key_windows", "new_windows"),
+}
+STREAMED = "kept_ids"
+# The tables analysts read, published as Parquet beside the warehouse after every run.
+PUBLISHED = ("alerts", "alert_events", "windows", "runs")
+# How the partition check of lake.sql is shown: it is rendered per file, with the column and its type
+PARTITION_SHOWN = {"column": "COLUMN", "type": "TYPE"}
+
+
+def writes_warehouse(statement: Statement) -> bool:
+    """A statement that changes stored rows: it must run inside the run's transaction."""
+    return statement_kind(statement.sql) in ("INSERT", "UPDATE", "DELETE", "MERGE_INTO", "COPY")
+
+
+def streams(statement: Statement) -> bool:
+    """A write to the warehouse that reads the stage connection's rows as a stream (``kept_ids``)."""
+    return writes_warehouse(statement) and re.search(rf"\b{STREAMED}\b", statement.sql) is not None
+
+
+@lru_cache(maxsize=1)
+def run_statements() -> Named:
+    """``queries/run.sql``: the run's own statements."""
+    return named("run.sql", moved=MOVED_AFTER, streamed=STREAMED)
+
+
+@lru_cache(maxsize=1)
+def connection_statements() -> Named:
+    """``queries/connection.sql``: every connection's settings."""
+    return named("connection.sql")
+
+
+def lake_statements(source: Source | None, partition: dict[str, str] | None = None) -> Named:
+    """``queries/lake.sql``: with ``source``, its first event times; with ``partition`` (a column
+    and its type in a file), the check of one partition folder."""
+    return named("lake.sql", source=source, partition=partition)
+
+
+def publish_statements(copies: tuple[tuple[str, str], ...] = ()) -> Named:
+    """``queries/publish.sql``: writing the copies, and (``copies``: table, file) reading them."""
+    return named("publish.sql", tables=PUBLISHED, copies=copies)
+
+
+def layout_statements() -> Named:
+    """``queries/layout.sql``: the warehouse's layout and its conversion."""
+    return named("layout.sql")
+
+
+def script(source: Source, stages: tuple[Stage, ...]) -> str:
+    """Every statement a run executes for one check, in order, headed by when it runs: the run's
+    start, the source's new files and its stage, the check's stages with the tables that cross
+    between connections, the check's record, the run's end and the published copies."""
+    run = run_statements()
+    lake = lake_statements(source, PARTITION_SHOWN)
+    # the per-session stages on a connection of their own: not on Spark (nor with --rebuild)
+    apart = not any(isinstance(s, SparkStatement) for stage in stages for s in stage.once)
+    parts = [
+        _heading("the run begins", "(not with --rebuild) the definitions the checks' windows were computed "
+                 "with; then the run's number"),
+        run.text("open."),
+        _heading("the run's transaction", "its bookkeeping tables, then everything to the commit in one "
+                 "transaction" + ("; the per-session stages run on a second connection (not with --rebuild), "
+                                  "set up first" if apart else "")),
+        run.text("begin.run_tables"),
+        *([connection_statements().text("connection.time_zone")] if apart else []),
+        run.text("begin.transaction", "begin.known_checks", "begin.forget_removed_sources"),
+        _note("for each check no longer in the project: begin.close_alerts ('check removed') and "
+              "begin.drop_state; then with --rebuild, for each selected check: begin.close_alerts ('check "
+              "changed', for alerts of earlier definitions), begin.forget_rebuilt_alerts and begin.drop_state"),
+        run.text("begin.close_alerts", "begin.forget_rebuilt_alerts", "begin.drop_state"),
+        _note("which files are new for each check"),
+        run.text("begin.read_histories", "begin.files_read_by"),
+        _note("a backlog larger than max_read_per_run: the new files in data-time order"),
+        lake.text("lake.first_event_times"),
+        run.text("begin.note_changed_files"),
+        _heading(f"source {source.name}: its new files", "read once for every check that read the same "
+                 "files before; first their footers (on a connection of their own), the types the checks "
+                 "read, and (per file in a folder named after a column the checks read: COLUMN, of TYPE) "
+                 "partition folders that contradict their files"),
+        lake.text("lake.known_columns", "lake.footers", "lake.footer", "lake.partition", "lake.record_column"),
+        _stage_text(stages[0], apart, run),
+        run.text("source."),
+    ]
+    parts += [_stage_text(stage, apart, run) for stage in stages[1:]]
+    parts += [
+        _heading("the check's record", "how many rounds its verdicts took, and what it did"),
+        run.text("check."),
+        _heading("the run ends", "its record, and the commit"),
+        run.text("end.repeats", "end.record", "end.files_read", "end.commit"),
+        _note("a run that fails rolls back, then writes its 'failed' record alone: begin.transaction, "
+              "end.record, end.commit"),
+        run.text("end.roll_back"),
+        _heading("after the run", "the tables analysts read, published as Parquet beside the warehouse"),
+        publish_statements().text("publish."),
+    ]
+    return "\n".join(part.rstrip("\n") + "\n" for part in parts)
+
+
+def _stage_text(stage: Stage, apart: bool, run: Named) -> str:
+    """A stage as the run executes it: with the stage connection, the source stage's write to the
+    warehouse reads a stream of that connection's rows, and the tables the transaction's stages read
+    are moved after the stage."""
+    text = stage.text
+    if not apart:
+        return text
+    streamed = [s for s in stage.once if streams(s)]
+    if stage.name in STAGE_CONNECTION_STAGES and streamed:
+        at = text.index(streamed[-1].sql)
+        text = text[:at] + _note(f"The statements above ran on the stage connection. The INSERT below runs in the "
+                                 f"run's transaction, on the warehouse's own connection, reading {STREAMED} from the "
+                                 "stage connection as a stream of batches:") \
+            + run.text(f"move.{STREAMED}.clear", f"move.{STREAMED}.stream") + "\n" + text[at:]
+    moved = MOVED_AFTER.get(stage.name, ())
+    if moved:
+        text = text.rstrip("\n") + "\n\n" + _note(
+            "The tables the transaction's stages read, moved there from the stage connection:") + run.text(
+            *(f"move.{table}." for table in moved))
+    return text
+
+
+def _heading(title: str, what: str) -> str:
+    lines = [f"-- ══ {title} " + "═" * max(3, 92 - len(title) - 7)]
+    lines += _wrapped(what)
+    return "\n".join(lines) + "\n"
+
+
+def _note(text: str) -> str:
+    return "\n".join(_wrapped(text)) + "\n"
+
+
+def _wrapped(text: str, width: int = 100) -> list[str]:
+    lines, line = [], "--"
+    for word in text.split():
+        if len(line) + 1 + len(word) > width:
+            lines.append(line)
+            line = "--"
+        line += " " + word
+    return [*lines, line]
