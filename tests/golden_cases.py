@@ -2,9 +2,12 @@
 stage, and what a run of it gives; shared by ``tests/test_golden.py``, ``tests/test_spark_sql.py``
 and ``tests/golden/regenerate.py``.
 
-A case's expected SQL is one file per piece of what ``plimsoll sql`` prints (the header, then each
-stage of :data:`toolkit.sql.compiler.STAGES`). A case folder holds the file of a piece only where
-the case's text differs from the case it is ``like``; :func:`expected_file` follows that chain.
+A case's expected SQL is what ``plimsoll sql`` prints, cut into pieces: each stage of
+:data:`toolkit.sql.compiler.STAGES` as printed (with what the run does inside it, such as a move
+between its connections), and ``script``, the rest (the run's own statements) with a marker line
+where each stage goes. A case folder holds the file of a piece only where the case's text differs
+from the case it is ``like``; :func:`expected_file` follows that chain, :func:`assemble` puts the
+pieces together again.
 """
 
 from __future__ import annotations
@@ -26,8 +29,8 @@ from toolkit.sql.compiler import STAGES
 from toolkit.sql.plans import check_plan
 
 GOLDEN = Path(__file__).parent / "golden"
-HEADER = "header"
-PIECES = (HEADER, *STAGES)
+SCRIPT = "script"
+PIECES = (SCRIPT, *STAGES)
 SPARK_PROJECT = "engine: spark\nspark_master: local[2]\n" + PROJECT
 
 WINDOW_COLUMNS = ("key_text, split_value, window_number, window_start, window_end, sessions, bad, "
@@ -80,24 +83,77 @@ def case_project(check_file: Path, folder: Path, project: str = PROJECT) -> Path
     return path
 
 
-def script_pieces(check_file: Path, folder: Path) -> dict[str, str]:
-    """What ``plimsoll sql`` prints for the check, cut into the header and one text per stage."""
-    project = load_project(case_project(check_file, folder))
-    (name,) = project.checks
-    compiled = check_plan(project.checks[name])
-    script = compiled.sql
-    header = script[:script.index(compiled.stages[0].text)]
-    pieces = {HEADER: header, **{stage.name: stage.text for stage in compiled.stages}}
-    if header + "\n".join(text.rstrip() + "\n" for text in list(pieces.values())[1:]) != script:
-        raise AssertionError(f"{check_file}: the script is no longer its header and its stages in order")
-    return pieces
+def marker(stage: str) -> str:
+    """The line that stands for a stage in the ``script`` piece."""
+    return f"-- ▶ golden: stage {stage} is printed here, as in {stage}.sql\n"
+
+
+def _common_lines(printed: str, at: int, text: str) -> int:
+    """How much of ``text``, in whole lines, ``printed`` holds from ``at`` on."""
+    n = 0
+    for line in text.splitlines(keepends=True):
+        if not printed.startswith(line, at + n):
+            break
+        n += len(line)
+    return n
+
+
+def printed_extent(printed: str, text: str, start: int) -> tuple[int, int]:
+    """Where a stage's text is printed, from ``start`` on: from its first line to its last, with what
+    the run prints inside it (whole lines the stage's text does not hold)."""
+    begin = printed.find(text[:text.index("\n") + 1], start)
+    if begin < 0:
+        raise AssertionError(f"a stage beginning {text.splitlines()[0]!r} is not printed")
+    at, rest = begin, text
+    while True:
+        common = _common_lines(printed, at, rest)
+        if common == len(rest):
+            return begin, at + common
+        if common == 0:
+            raise AssertionError(f"the stage's text from {rest.splitlines()[0]!r} on is not printed next")
+        at, rest = at + common, rest[common:]
+        at = printed.find("".join(rest.splitlines(keepends=True)[:3]), at)   # where the stage resumes
+        if at < 0:
+            raise AssertionError(f"the stage's text from {rest.splitlines()[0]!r} on is not printed")
+
+
+def printed_pieces(printed: str, stages: list[str], texts: list[str]) -> dict[str, str]:
+    """``printed`` cut into ``script`` (the rest, each stage a marker line) and each stage as printed."""
+    script, pieces, cursor = [], {}, 0
+    for name, text in zip(stages, texts):
+        begin, end = printed_extent(printed, text, cursor)
+        script += [printed[cursor:begin], marker(name)]
+        pieces[name] = printed[begin:end]
+        cursor = end
+    script.append(printed[cursor:])
+    out = {SCRIPT: "".join(script), **pieces}
+    if any(marker(name) in printed for name in stages) or assemble(out) != printed:
+        raise AssertionError("the pieces do not put together what plimsoll sql prints")
+    return out
+
+
+def assemble(pieces: dict[str, str]) -> str:
+    """What ``plimsoll sql`` prints, from the ``script`` piece and the stages'."""
+    text = pieces[SCRIPT]
+    for name in STAGES:
+        if text.count(marker(name)) != 1:
+            raise AssertionError(f"the script piece must mark stage {name} once")
+        text = text.replace(marker(name), pieces[name])
+    return text
+
+
+def script_pieces(check_file: Path, folder: Path, project: str = PROJECT) -> dict[str, str]:
+    """What ``plimsoll sql`` prints for the check, cut into pieces."""
+    loaded = load_project(case_project(check_file, folder, project))
+    (name,) = loaded.checks
+    compiled = check_plan(loaded.checks[name])
+    return printed_pieces(compiled.sql, [s.name for s in compiled.stages], [s.text for s in compiled.stages])
 
 
 def spark_stages(check_file: Path, folder: Path) -> dict[str, str]:
     """The check's stages as ``plimsoll sql`` prints them with ``engine: spark``."""
-    project = load_project(case_project(check_file, folder, SPARK_PROJECT))
-    (name,) = project.checks
-    return {stage.name: stage.text for stage in check_plan(project.checks[name]).stages}
+    pieces = script_pieces(check_file, folder, SPARK_PROJECT)
+    return {name: text for name, text in pieces.items() if name != SCRIPT}
 
 
 @cache

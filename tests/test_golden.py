@@ -1,7 +1,7 @@
-"""Golden SQL, stage by stage: each case of ``tests/golden/cases.yml`` compiles to its committed SQL
-(one file per stage, the stages it shares with the case it is like left to that case), and one run
-of it over the committed fixture lake gives its committed windows and alerts. Regenerate with
-``python tests/golden/regenerate.py`` and review the diff.
+"""Golden SQL, stage by stage: for each case of ``tests/golden/cases.yml``, ``plimsoll sql`` prints its
+committed SQL (one file per stage and ``script.sql`` around them, the pieces it shares with the case
+it is like left to that case), and one run of it over the committed fixture lake gives its committed
+windows and alerts. Regenerate with ``python tests/golden/regenerate.py`` and review the diff.
 """
 
 from __future__ import annotations
@@ -11,9 +11,11 @@ import io
 from pathlib import Path
 
 import pytest
+from click.testing import CliRunner
 
 import golden_cases
 from golden_cases import GOLDEN, PIECES
+from toolkit.cli import main
 
 CASES = golden_cases.cases()
 
@@ -39,6 +41,17 @@ def test_a_case_folder_holds_only_the_stages_where_it_differs(case: str) -> None
     if CASES[case].spark:
         assert sorted(p.name for p in (CASES[case].folder / "spark").iterdir()) == sorted(
             f"{s}.sql" for s in CASES[case].spark)
+
+
+@pytest.mark.parametrize("case", CASES)
+def test_plimsoll_sql_prints_the_case_files_put_together(case: str, tmp_path: Path) -> None:
+    project = golden_cases.case_project(CASES[case].check_file, tmp_path)
+    result = CliRunner().invoke(main, ["sql", CASES[case].check_name, "-p", str(project)])
+    assert result.exit_code == 0, result.output
+    files = {piece: golden_cases.expected_file(CASES[case], piece).read_text() for piece in PIECES}
+    expected = golden_cases.assemble(files)
+    assert result.output == expected, golden_cases.diff(expected, result.output, CASES[case].folder,
+                                                        "plimsoll sql prints now")
 
 
 @pytest.mark.parametrize("case", CASES)

@@ -4,8 +4,8 @@ its results or its Spark translation.
     python tests/golden/regenerate.py
 
 For each case of ``cases.yml`` (a folder here): ``<piece>.sql`` for each piece of what ``plimsoll
-sql`` prints (``header`` and the stages) where the case differs from the case it is ``like`` (the
-others are removed, so nothing is repeated), ``spark/<stage>.sql`` for the stages it lists under
+sql`` prints (each stage, and ``script``: the rest, with a marker where each stage goes) where the
+case differs from the case it is ``like`` (the others are removed, so nothing is repeated), ``spark/<stage>.sql`` for the stages it lists under
 ``spark``, and ``windows.csv`` and ``alerts.csv`` from one run over ``tests/fixtures/lake``; then
 the Spark side of each pair in ``tests/spark_translation/``. Read the diff before committing it:
 the golden files are the review of a change to the SQL.

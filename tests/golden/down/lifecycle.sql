@@ -1,4 +1,4 @@
--- ── stage 6 · lifecycle ────────────────────────────────────────────────────────────────────
+-- ── stage 5 · lifecycle ─────────────────────────────────────────────────────────────────────
 -- A breach opens an alert for its series unless one is open; more breaches update it. An open alert
 -- closes as 'recovered' after 2 healthy windows in a row, or as 'expired' once the series
 -- has had no window for INTERVAL 1 DAY (between two windows, or before the watermark).
@@ -16,11 +16,11 @@ WITH relevant AS (
 ),
 ordered AS (
     SELECT
-        j.key, j.key_text, j.split_value, j.seq, j.window_start, j.window_end, j.value, j.threshold,
+        j.key, j.key_text, j.split_value, j.window_number, j.window_start, j.window_end, j.value, j.threshold,
         j.bad, j.sessions, j.breach,
         -- no verdict without a value (a zero denominator, an empty window): neither healthy nor a breach
         j.threshold IS NOT NULL AND j.value IS NOT NULL AND NOT j.breach AS healthy,
-        coalesce(lag(j.window_end) OVER (PARTITION BY j.key, j.split_value ORDER BY j.seq), l.last_end) AS prev_end,
+        coalesce(lag(j.window_end) OVER (PARTITION BY j.key, j.split_value ORDER BY j.window_number), l.last_end) AS prev_end,
         o.alert_id IS NOT NULL AS carried,
         coalesce(o.healthy_streak, 0) AS streak0
     FROM judged AS j
@@ -34,7 +34,7 @@ stretched AS (
         *,
         coalesce(prev_end + INTERVAL 1 DAY < window_end, false) AS gap,
         coalesce(count(*) FILTER (WHERE breach) OVER (
-            PARTITION BY key, split_value ORDER BY seq ROWS BETWEEN UNBOUNDED PRECEDING AND 1 PRECEDING
+            PARTITION BY key, split_value ORDER BY window_number ROWS BETWEEN UNBOUNDED PRECEDING AND 1 PRECEDING
         ), 0) AS stretch
     FROM ordered
 ),
@@ -47,28 +47,29 @@ counted AS (
         stretch > 0 OR carried AS breached_before
     FROM stretched
     WINDOW within AS (
-        PARTITION BY key, split_value, stretch ORDER BY seq ROWS BETWEEN UNBOUNDED PRECEDING AND 1 PRECEDING
+        PARTITION BY key, split_value, stretch ORDER BY window_number ROWS BETWEEN UNBOUNDED PRECEDING AND 1 PRECEDING
     )
 ),
 flagged AS (
-    SELECT *, breached_before AND NOT gap_before AND healthy_before < 2 AS open_at
+    -- is_open: an alert of the series is open when this window comes (before it counts)
+    SELECT *, breached_before AND NOT gap_before AND healthy_before < 2 AS is_open
     FROM counted
 )
 SELECT
     *,
-    open_at AND gap AS expires_here,
-    open_at AND NOT gap AND healthy AND healthy_before + 1 >= 2 AS recovers_here,
-    breach AND NOT (open_at AND NOT gap) AS opens_here,
-    breach AND open_at AND NOT gap AS continues_here
+    is_open AND gap AS expires_here,
+    is_open AND NOT gap AND healthy AND healthy_before + 1 >= 2 AS recovers_here,
+    breach AND NOT (is_open AND NOT gap) AS opens_here,
+    breach AND is_open AND NOT gap AS continues_here
 FROM flagged;
 
 CREATE OR REPLACE TEMP TABLE episode_steps AS
 SELECT
     *,
     -- episode 0 is the alert already open before this run
-    sum(opens_here::INTEGER) OVER (PARTITION BY key, split_value ORDER BY seq ROWS UNBOUNDED PRECEDING) AS episode,
+    sum(opens_here::INTEGER) OVER (PARTITION BY key, split_value ORDER BY window_number ROWS UNBOUNDED PRECEDING) AS episode,
     coalesce(sum(opens_here::INTEGER) OVER (
-        PARTITION BY key, split_value ORDER BY seq ROWS BETWEEN UNBOUNDED PRECEDING AND 1 PRECEDING
+        PARTITION BY key, split_value ORDER BY window_number ROWS BETWEEN UNBOUNDED PRECEDING AND 1 PRECEDING
     ), 0) AS episode_before
 FROM steps;
 
@@ -78,13 +79,13 @@ WITH breaches AS (
         key, any_value(key_text) AS key_text, split_value, episode,
         min(window_end) FILTER (WHERE opens_here) AS opened_at,
         min(window_start) FILTER (WHERE opens_here) AS breach_started_at,
-        min(seq) FILTER (WHERE opens_here) AS opened_seq,
-        arg_min(threshold, seq) FILTER (WHERE opens_here) AS open_threshold,
+        min(window_number) FILTER (WHERE opens_here) AS opened_window,
+        arg_min(threshold, window_number) FILTER (WHERE opens_here) AS open_threshold,
         count(*) AS breach_windows,
         sum(coalesce(bad, sessions)) AS affected_sessions,
         min(value) AS peak_value,
         max(window_end) AS last_breach_at,
-        max(seq) AS last_breach_seq
+        max(window_number) AS last_breach_window
     FROM episode_steps
     WHERE breach
     GROUP BY key, split_value, episode
@@ -113,9 +114,9 @@ series_end AS (
 ),
 healthy_tail AS (
     -- healthy windows after the last breach of a series: the streak an open alert carries on
-    SELECT e.key, e.split_value, count(*) FILTER (WHERE e.healthy AND e.seq > coalesce(b.last_seq, -1)) AS n
+    SELECT e.key, e.split_value, count(*) FILTER (WHERE e.healthy AND e.window_number > coalesce(b.last_window, -1)) AS n
     FROM episode_steps AS e
-    LEFT JOIN (SELECT key, split_value, max(last_breach_seq) AS last_seq FROM breaches GROUP BY ALL) AS b
+    LEFT JOIN (SELECT key, split_value, max(last_breach_window) AS last_window FROM breaches GROUP BY ALL) AS b
         ON e.key = b.key AND e.split_value IS NOT DISTINCT FROM b.split_value
     GROUP BY e.key, e.split_value
 ),
@@ -126,7 +127,7 @@ merged AS (
         coalesce(b.key_text, o.key_text) AS key_text,
         coalesce(o.opened_at, b.opened_at) AS opened_at,
         coalesce(o.breach_started_at, b.breach_started_at) AS breach_started_at,
-        b.opened_seq,
+        b.opened_window,
         coalesce(o.threshold, b.open_threshold) AS threshold,
         coalesce(o.breach_windows, 0) + coalesce(b.breach_windows, 0) AS breach_windows,
         coalesce(o.affected_sessions, 0) + coalesce(b.affected_sessions, 0) AS affected_sessions,
@@ -149,15 +150,16 @@ merged AS (
 )
 SELECT
     *,
-    -- an alert still open whose series has been silent past expire_after at the watermark expires
+    -- silent_too_long: an alert still open whose series has had no window for expire_after at the
+    -- watermark expires
     closed_at IS NULL
-        AND last_window_end + INTERVAL 1 DAY < (SELECT current FROM clock) AS expires_at_watermark
+        AND last_window_end + INTERVAL 1 DAY < (SELECT current FROM watermarks) AS silent_too_long
 FROM merged;
 
 CREATE OR REPLACE TEMP TABLE alert_rows AS
 SELECT
     coalesce(prior_alert_id, substr(md5(to_json({
-        'check': 'golden', 'key': key, 'split': split_value, 'opened_at': opened_at, 'seq': opened_seq,
+        'check': 'golden', 'key': key, 'split': split_value, 'opened_at': opened_at, 'window_number': opened_window,
         'definition': $definition
     })::VARCHAR), 1, 16)) AS alert_id,
     'golden' AS check_name,
@@ -165,14 +167,14 @@ SELECT
     key,
     key_text,
     split_value,
-    CASE WHEN closed_at IS NOT NULL OR expires_at_watermark THEN 'closed' ELSE 'open' END AS status,
-    CASE WHEN closed_at IS NOT NULL THEN close_reason WHEN expires_at_watermark THEN 'expired' END AS close_reason,
+    CASE WHEN closed_at IS NOT NULL OR silent_too_long THEN 'closed' ELSE 'open' END AS status,
+    CASE WHEN closed_at IS NOT NULL THEN close_reason WHEN silent_too_long THEN 'expired' END AS close_reason,
     opened_at,
     breach_started_at,
     last_breach_at,
     CASE
         WHEN closed_at IS NOT NULL THEN closed_at
-        WHEN expires_at_watermark THEN last_window_end + INTERVAL 1 DAY
+        WHEN silent_too_long THEN last_window_end + INTERVAL 1 DAY
     END AS closed_at,
     breach_windows,
     affected_sessions,
@@ -183,10 +185,10 @@ SELECT
     substr(md5(to_json({'check': 'golden', 'key': key, 'split': split_value})::VARCHAR), 1, 16) AS fingerprint,
     coalesce(first_run_id, $run_id) AS first_run_id,
     $run_id AS last_run_id,
-    CASE WHEN closed_at IS NULL AND NOT expires_at_watermark THEN healthy_streak END AS healthy_streak,
+    CASE WHEN closed_at IS NULL AND NOT silent_too_long THEN healthy_streak END AS healthy_streak,
     $definition AS definition_hash,
     episode,
-    touched OR expires_at_watermark AS touched,
+    touched OR silent_too_long AS touched,
     close_value,
     close_threshold
 FROM episodes;
@@ -198,9 +200,9 @@ WITH breach_events AS (
         CASE WHEN s.opens_here THEN 'opened' ELSE 'updated' END AS event,
         s.value, s.threshold,
         coalesce(o.affected_sessions, 0) + sum(coalesce(s.bad, s.sessions)) OVER (
-            PARTITION BY s.key, s.split_value, s.episode ORDER BY s.seq ROWS UNBOUNDED PRECEDING
+            PARTITION BY s.key, s.split_value, s.episode ORDER BY s.window_number ROWS UNBOUNDED PRECEDING
         ) AS affected_sessions,
-        s.seq
+        s.window_number
     FROM episode_steps AS s
     LEFT JOIN open_alerts AS o ON s.key = o.key AND s.split_value IS NOT DISTINCT FROM o.split_value AND s.episode = 0
     WHERE s.breach

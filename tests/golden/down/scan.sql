@@ -8,29 +8,30 @@ SELECT
     session_id,
     event_time,
     key,
-    CASE WHEN finite THEN num END AS num,
-    CASE WHEN finite THEN den END AS den,
+    CASE WHEN finite THEN numerator END AS numerator,
+    CASE WHEN finite THEN denominator END AS denominator,
     NOT finite AS nonfinite
 FROM (
     SELECT
         *,
-        coalesce(isfinite(num) AND isfinite(den), true) AS finite
+        coalesce(isfinite(numerator) AND isfinite(denominator), true) AS finite
     FROM (
         SELECT
             __session_id AS session_id,
             __event_time AS event_time,
             {'site': "site"::VARCHAR} AS key,
-            ("play_ms")::DOUBLE AS num,
-            (1)::DOUBLE AS den
+            ("play_ms")::DOUBLE AS numerator,
+            (1)::DOUBLE AS denominator
         FROM lake_sessions
         WHERE NOT __excluded
     )
 );
 
--- The watermark: the largest sane event time read by this check so far, this run's files included;
--- when a backlog is read in several runs, no later than the earliest session still unread
--- (read_until), so nothing still to come lands in a window already closed.
-CREATE OR REPLACE TEMP TABLE clock AS
+-- The check's watermarks: `previous`, where its last run left it, and `current`, the largest sane
+-- event time read by this check so far, this run's files included; when a backlog is read in
+-- several runs, no later than the earliest session still unread (read_until), so nothing still to
+-- come lands in a window already closed.
+CREATE OR REPLACE TEMP TABLE watermarks AS
 SELECT
     prior.watermark AS previous,
     greatest(prior.watermark, least(c.latest, coalesce((SELECT read_until FROM read_limits), c.latest))) AS current
@@ -39,8 +40,8 @@ FROM (SELECT (SELECT watermark FROM check_state WHERE check_name = 'golden') AS 
 
 CREATE OR REPLACE TEMP TABLE scan_counts AS
 SELECT
-    c.rows_read, c.rows_invalid, c.duplicate_rows, c.rows_excluded, c.beyond_horizon,
-    c.rows_read - c.rows_invalid - c.duplicate_rows - c.beyond_horizon - c.rows_excluded - a.rows_kept AS rows_filtered,
+    c.rows_read, c.invalid_rows, c.duplicate_rows, c.rows_excluded, c.beyond_horizon,
+    c.rows_read - c.invalid_rows - c.duplicate_rows - c.beyond_horizon - c.rows_excluded - a.rows_kept AS rows_filtered,
     a.rows_kept,
     a.nonfinite_values
 FROM lake_counts AS c, (SELECT count(*) AS rows_kept, count(*) FILTER (WHERE nonfinite) AS nonfinite_values FROM arrivals) AS a;

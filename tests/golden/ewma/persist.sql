@@ -1,14 +1,14 @@
--- ── stage 7 · persist ──────────────────────────────────────────────────────────────────────
+-- ── stage 6 · persist ───────────────────────────────────────────────────────────────────────
 -- Everything below commits in the run's one transaction, with the files read and the run record.
 INSERT INTO windows BY NAME
 SELECT
-    'golden' AS check_name, key, key_text, split_value, seq, key_window, window_start, window_end,
+    'golden' AS check_name, key, key_text, split_value, window_number, key_window, window_start, window_end,
     sessions, bad, value, statistic, baseline, history_windows, threshold, breach,
     $run_id AS run_id
 FROM judged;
 
 INSERT INTO key_windows BY NAME
-SELECT 'golden' AS check_name, key, key_text, key_window, seq, window_start, window_end, sessions, bad,
+SELECT 'golden' AS check_name, key, key_text, key_window, window_number, window_start, window_end, sessions, bad,
        $run_id AS run_id
 FROM new_key_windows;
 
@@ -16,7 +16,7 @@ DELETE FROM key_state
 WHERE check_name = 'golden' AND key IN (SELECT key FROM new_key_windows);
 
 INSERT INTO key_state BY NAME
-SELECT 'golden' AS check_name, key, max(seq) AS last_seq, max(window_end) AS last_end,
+SELECT 'golden' AS check_name, key, max(window_number) AS last_window_number, max(window_end) AS last_end,
        max(key_window) AS windows
 FROM new_key_windows
 GROUP BY key;
@@ -41,7 +41,7 @@ DELETE FROM check_state WHERE check_name = 'golden';
 
 INSERT INTO check_state BY NAME
 SELECT 'golden' AS check_name, current AS watermark, $definition AS definition_hash, $run_id AS last_run_id
-FROM clock;
+FROM watermarks;
 
 INSERT INTO files_read BY NAME
 SELECT 'golden' AS check_name, 'sessions' AS source_name, f.path, f.size,
@@ -53,7 +53,7 @@ INSERT INTO run_checks BY NAME
 SELECT
     $run_id AS run_id, 'golden' AS check_name,
     len($manifest) AS files_read,
-    c.rows_read, c.rows_invalid, c.rows_excluded, c.rows_filtered, c.duplicate_rows,
+    c.rows_read, c.invalid_rows, c.rows_excluded, c.rows_filtered, c.duplicate_rows,
     -- late for its window, or by more than dedup_horizon behind the data already read
     (SELECT late_rows FROM window_counts) + c.beyond_horizon AS late_rows,
     c.beyond_horizon,
@@ -62,5 +62,5 @@ SELECT
     (SELECT count(*) FROM judged WHERE breach) AS breach_windows,
     (SELECT count(*) FROM event_rows WHERE event = 'opened') AS alerts_opened,
     (SELECT count(*) FROM event_rows WHERE event = 'closed') AS alerts_closed,
-    (SELECT current FROM clock) AS watermark
+    (SELECT current FROM watermarks) AS watermark
 FROM scan_counts AS c;

@@ -4,23 +4,23 @@ CREATE OR REPLACE TEMP TABLE key_window_stats AS
 SELECT
     MAP {'site': struct_extract(key, 'site')} AS key,
     'site=' || CASE WHEN struct_extract(key, 'site') IS NULL THEN '<null>' WHEN regexp_matches(struct_extract(key, 'site'), '^[\p{L}\p{N}_.:/@+-]+$') THEN struct_extract(key, 'site') ELSE '"' || replace(replace(struct_extract(key, 'site'), '\', '\\'), '"', '\"') || '"' END AS key_text,
-    seq,
+    window_number,
     min(window_start) AS window_start,
     max(window_end) AS window_end,
     count(*) AS sessions,
     NULL::BIGINT AS bad,
-    quantile_cont(x, 0.9) AS value
+    quantile_cont(quantile_input, 0.9) AS value
 FROM window_sessions
-GROUP BY key, seq;
+GROUP BY key, window_number;
 
 -- key_window: the ordinal of the window among all of its key's windows, across runs
 CREATE OR REPLACE TEMP TABLE new_key_windows AS
 SELECT
     w.*,
-    coalesce(s.windows, 0) + row_number() OVER (PARTITION BY w.key ORDER BY w.seq) AS key_window
+    coalesce(s.windows, 0) + row_number() OVER (PARTITION BY w.key ORDER BY w.window_number) AS key_window
 FROM key_window_stats AS w
 LEFT JOIN key_state AS s ON s.check_name = 'golden' AND s.key = w.key;
 
 CREATE OR REPLACE TEMP TABLE new_windows AS
-SELECT key, key_text, NULL::VARCHAR AS split_value, seq, key_window, window_start, window_end, sessions, bad, value
+SELECT key, key_text, NULL::VARCHAR AS split_value, window_number, key_window, window_start, window_end, sessions, bad, value
 FROM new_key_windows;

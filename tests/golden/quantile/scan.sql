@@ -8,27 +8,28 @@ SELECT
     session_id,
     event_time,
     key,
-    CASE WHEN finite THEN x END AS x,
+    CASE WHEN finite THEN quantile_input END AS quantile_input,
     NOT finite AS nonfinite
 FROM (
     SELECT
         *,
-        coalesce(isfinite(x), true) AS finite
+        coalesce(isfinite(quantile_input), true) AS finite
     FROM (
         SELECT
             __session_id AS session_id,
             __event_time AS event_time,
             {'site': "site"::VARCHAR} AS key,
-            ("startup_ms")::DOUBLE AS x
+            ("startup_ms")::DOUBLE AS quantile_input
         FROM lake_sessions
         WHERE NOT __excluded AND coalesce(NOT "startup_ms" IS NULL, false)
     )
 );
 
--- The watermark: the largest sane event time read by this check so far, this run's files included;
--- when a backlog is read in several runs, no later than the earliest session still unread
--- (read_until), so nothing still to come lands in a window already closed.
-CREATE OR REPLACE TEMP TABLE clock AS
+-- The check's watermarks: `previous`, where its last run left it, and `current`, the largest sane
+-- event time read by this check so far, this run's files included; when a backlog is read in
+-- several runs, no later than the earliest session still unread (read_until), so nothing still to
+-- come lands in a window already closed.
+CREATE OR REPLACE TEMP TABLE watermarks AS
 SELECT
     prior.watermark AS previous,
     greatest(prior.watermark, least(c.latest, coalesce((SELECT read_until FROM read_limits), c.latest))) AS current
@@ -37,8 +38,8 @@ FROM (SELECT (SELECT watermark FROM check_state WHERE check_name = 'golden') AS 
 
 CREATE OR REPLACE TEMP TABLE scan_counts AS
 SELECT
-    c.rows_read, c.rows_invalid, c.duplicate_rows, c.rows_excluded, c.beyond_horizon,
-    c.rows_read - c.rows_invalid - c.duplicate_rows - c.beyond_horizon - c.rows_excluded - a.rows_kept AS rows_filtered,
+    c.rows_read, c.invalid_rows, c.duplicate_rows, c.rows_excluded, c.beyond_horizon,
+    c.rows_read - c.invalid_rows - c.duplicate_rows - c.beyond_horizon - c.rows_excluded - a.rows_kept AS rows_filtered,
     a.rows_kept,
     a.nonfinite_values
 FROM lake_counts AS c, (SELECT count(*) AS rows_kept, count(*) FILTER (WHERE nonfinite) AS nonfinite_values FROM arrivals) AS a;

@@ -89,7 +89,7 @@ valid AS (
 )
 SELECT
     count(*) AS rows_read,
-    count(*) FILTER (WHERE __session_id IS NULL OR __event_time IS NULL) AS rows_invalid,
+    count(*) FILTER (WHERE __session_id IS NULL OR __event_time IS NULL) AS invalid_rows,
     any_value(valid.rows_valid) - any_value(valid.beyond_horizon) - any_value(kept.sessions) AS duplicate_rows,
     any_value(valid.beyond_horizon) AS beyond_horizon,
     any_value(kept.excluded) AS rows_excluded,
@@ -114,6 +114,20 @@ CREATE OR REPLACE TEMP VIEW kept_ids AS
 SELECT (__id_hash >> 64)::UBIGINT AS hash_high, (__id_hash & 18446744073709551615)::UBIGINT AS hash_low,
        __file, __event_time
 FROM lake_sessions;
+
+-- The statements above ran on the stage connection. The INSERT below runs in the run's transaction,
+-- on the warehouse's own connection, reading kept_ids from the stage connection as a stream of
+-- batches:
+-- @statement move.kept_ids.clear
+-- A run before this one in the same call that ran the source stage in the transaction (the first
+-- run of a rebuild over a backlog) left its kept_ids view on the transaction's connection;
+-- the stream takes its name.
+DROP VIEW IF EXISTS "kept_ids";
+
+-- @statement move.kept_ids.stream
+-- The kept sessions' id hashes, streamed in batches to the transaction's connection for the source
+-- stage's INSERT INTO session_ids, which reads them as kept_ids.
+SELECT * FROM "kept_ids";
 
 -- Remember each kept id with the file it was kept from (hashes only); only pairs not yet known.
 INSERT INTO session_ids BY NAME

@@ -3,7 +3,7 @@
 -- window that is not full INTERVAL 6 HOUR after its first session closes as it is once the
 -- watermark has passed that moment. Partial windows are carried to the next run.
 CREATE OR REPLACE TEMP TABLE series_last AS
-SELECT {'site': key['site']} AS key, last_seq, last_end
+SELECT {'site': key['site']} AS key, last_window_number, last_end
 FROM key_state
 WHERE check_name = 'golden';
 
@@ -37,7 +37,7 @@ WINDOW in_order AS (PARTITION BY p.key ORDER BY p.event_time, p.session_id);
 CREATE OR REPLACE TEMP TABLE cuts AS
 WITH starts AS (
     SELECT key, i, event_time,
-           event_time + INTERVAL 6 HOUR < (SELECT current FROM clock) AS times_out
+           event_time + INTERVAL 6 HOUR < (SELECT current FROM watermarks) AS times_out
     FROM pooled
     WHERE is_cut
 )
@@ -53,54 +53,59 @@ ASOF LEFT JOIN (
     ON t.key = c.key
    AND t.at <= epoch_us(c.event_time + INTERVAL 6 HOUR)::HUGEINT * 1000000000000 + 999999999999;
 
--- Runs of full windows per series, from the start of the pool to the first cut on the run's
--- stride; after a cut that times out the next run starts behind it. One step per cut, all series at once.
-CREATE OR REPLACE TEMP TABLE runs_of_windows AS
-WITH RECURSIVE seg(key, o, a, a_lim, closes) AS (
+-- Spans of full windows per series: each starts at position span_start (the start of the pool, or
+-- just behind a cut that timed out) and runs to the first cut on its stride, at position cut_start
+-- (NULL: no cut, full windows to the end). When that cut times out (cut_closes), its window holds
+-- the sessions up to position cut_end and the next span starts behind it. One step per cut, all
+-- series at once.
+CREATE OR REPLACE TEMP TABLE full_window_spans AS
+WITH RECURSIVE span(key, span_start, cut_start, cut_end, cut_closes) AS (
     SELECT key, 0::BIGINT, min(i), arg_min(lim, i), arg_min(times_out, i)
     FROM cuts
     WHERE i % 30 = 0
     GROUP BY key
     UNION ALL
-    SELECT c.key, s.a_lim + 1, min(c.i), arg_min(c.lim, c.i), arg_min(c.times_out, c.i)
-    FROM seg AS s
-    JOIN cuts AS c ON c.key = s.key AND c.i > s.a_lim AND (c.i - s.a_lim - 1) % 30 = 0
-    WHERE s.closes
-    GROUP BY c.key, s.a_lim
+    SELECT c.key, s.cut_end + 1, min(c.i), arg_min(c.lim, c.i), arg_min(c.times_out, c.i)
+    FROM span AS s
+    JOIN cuts AS c ON c.key = s.key AND c.i > s.cut_end AND (c.i - s.cut_end - 1) % 30 = 0
+    WHERE s.cut_closes
+    GROUP BY c.key, s.cut_end
 )
-SELECT key, o, a, a_lim, closes FROM seg
+SELECT key, span_start, cut_start, cut_end, cut_closes FROM span
 UNION ALL
 -- after the last cut that timed out, or where a series has no cut on its stride: full windows to the end
-SELECT key, o, NULL, NULL, NULL
+SELECT key, span_start, NULL, NULL, NULL
 FROM (
-    SELECT p.key, coalesce(max(s.a_lim) + 1, 0) AS o, count(s.key) AS n_cuts,
-           arg_max(s.closes, s.o) AS last_closes
+    SELECT p.key, coalesce(max(s.cut_end) + 1, 0) AS span_start, count(s.key) AS cuts_found,
+           arg_max(s.cut_closes, s.span_start) AS last_cut_closes
     FROM (SELECT DISTINCT key FROM pooled) AS p
-    LEFT JOIN seg AS s ON s.key = p.key
+    LEFT JOIN span AS s ON s.key = p.key
     GROUP BY p.key
 )
-WHERE n_cuts = 0 OR last_closes;
+WHERE cuts_found = 0 OR last_cut_closes;
 
--- Each pooled session's window, named by the position of its first session (NULL: still open); a
--- view: a run holds every table it makes until it commits, and this one would be another copy.
+-- Each pooled session's window, named by the position of its first session (w0; NULL: still open);
+-- a view: a run holds every table it makes until it commits, and this one would be another copy.
 CREATE OR REPLACE TEMP VIEW placed AS
 WITH spans AS (
-    SELECT *, coalesce(lead(o) OVER (PARTITION BY key ORDER BY o), 9223372036854775807) AS next_o
-    FROM runs_of_windows
+    SELECT *, coalesce(lead(span_start) OVER (PARTITION BY key ORDER BY span_start), 9223372036854775807) AS next_span_start
+    FROM full_window_spans
 )
 SELECT
     p.*,
     CASE
-        WHEN r.a IS NULL OR p.i < r.a THEN r.o + (p.i - r.o) // 30 * 30
-        WHEN r.closes AND p.i <= r.a_lim THEN r.a
+        WHEN r.cut_start IS NULL OR p.i < r.cut_start
+            THEN r.span_start + (p.i - r.span_start) // 30 * 30
+        WHEN r.cut_closes AND p.i <= r.cut_end THEN r.cut_start
     END AS w0
 FROM pooled AS p
-JOIN spans AS r ON p.key = r.key AND p.i >= r.o AND p.i < r.next_o;
+JOIN spans AS r ON p.key = r.key AND p.i >= r.span_start AND p.i < r.next_span_start;
 
+-- window_number: count windows are numbered 1, 2, 3 … in each series, on from its last window.
 CREATE OR REPLACE TEMP TABLE closed_windows AS
 SELECT
     w.key, w.w0, w.window_start, w.window_end,
-    coalesce(s.last_seq, 0) + row_number() OVER (PARTITION BY w.key ORDER BY w.w0) AS seq
+    coalesce(s.last_window_number, 0) + row_number() OVER (PARTITION BY w.key ORDER BY w.w0) AS window_number
 FROM (
     SELECT key, w0, min(event_time) AS window_start, max(event_time) AS window_end
     FROM placed
@@ -111,7 +116,7 @@ LEFT JOIN series_last AS s ON s.key = w.key;
 
 -- A view: the measure stage reads it once.
 CREATE OR REPLACE TEMP VIEW window_sessions AS
-SELECT p.* EXCLUDE (i, is_cut, held, w0), w.seq, w.window_start, w.window_end
+SELECT p.* EXCLUDE (i, is_cut, held, w0), w.window_number, w.window_start, w.window_end
 FROM placed AS p
 JOIN closed_windows AS w ON w.key = p.key AND w.w0 = p.w0;
 

@@ -15,23 +15,23 @@ SELECT
     THEN key.site
     ELSE '"' || REPLACE(REPLACE(key.site, '\\', '\\\\'), '"', '\\"') || '"'
   END AS key_text,
-  seq,
+  window_number,
   MIN(window_start) AS window_start,
   MAX(window_end) AS window_end,
   COUNT(*) AS sessions,
   CAST(NULL AS BIGINT) AS bad,
-  PERCENTILE(x, 0.9) AS value
+  PERCENTILE(quantile_input, 0.9) AS value
 FROM window_sessions
 GROUP BY
   key,
-  seq;
+  window_number;
 
 -- [on Spark]
 /* key_window: the ordinal of the window among all of its key's windows, across runs */
 CREATE OR REPLACE TEMPORARY VIEW new_key_windows AS
 SELECT
   w.*,
-  COALESCE(s.windows, 0) + ROW_NUMBER() OVER (PARTITION BY w.key ORDER BY w.seq NULLS LAST) AS key_window
+  COALESCE(s.windows, 0) + ROW_NUMBER() OVER (PARTITION BY w.key ORDER BY w.window_number NULLS LAST) AS key_window
 FROM key_window_stats AS w
 LEFT JOIN key_state AS s
   ON s.check_name = 'golden' AND s.key = w.key;
@@ -42,7 +42,7 @@ SELECT
   key,
   key_text,
   CAST(NULL AS STRING) AS split_value,
-  seq,
+  window_number,
   key_window,
   window_start,
   window_end,

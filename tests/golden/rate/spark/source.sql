@@ -184,7 +184,7 @@ WITH kept AS (
 SELECT
   COUNT(*) AS rows_read,
   COUNT(*) FILTER(WHERE
-    __session_id IS NULL OR __event_time IS NULL) AS rows_invalid,
+    __session_id IS NULL OR __event_time IS NULL) AS invalid_rows,
   ANY_VALUE(valid.rows_valid) IGNORE NULLS - ANY_VALUE(valid.beyond_horizon) IGNORE NULLS - ANY_VALUE(kept.sessions) IGNORE NULLS AS duplicate_rows,
   ANY_VALUE(valid.beyond_horizon) IGNORE NULLS AS beyond_horizon,
   ANY_VALUE(kept.excluded) IGNORE NULLS AS rows_excluded,

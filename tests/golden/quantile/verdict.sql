@@ -1,0 +1,128 @@
+-- ── stage 4 · verdict ──────────────────────────────────────────────────────────────────────
+-- Each new window's baseline, threshold and verdict.
+--
+-- Baseline and threshold:
+-- rolling_percentile: baseline = quantile_cont(value, 0.5) over the series' last 8 earlier
+-- windows that did not breach; a window gets a threshold once it has 3 of them:
+--   threshold = 1.1 × baseline
+--
+-- Verdict: a window breaches when it has a threshold, its value is above it, and it passes the guard
+-- (at least 10 sessions); every other window with a threshold and a value is
+-- healthy. A window without a value (a zero denominator, no session with a value) gives no verdict.
+--
+-- A window's history is the earlier windows of its series that did not breach, so verdicts depend on
+-- the verdicts before them: the statements between '@loop' and '@end' are one round, repeated until
+-- no breach flag changes. A round recomputes only the series still changing, all of them at once.
+
+-- history: the series' earlier windows in the warehouse that did not breach (and, for a split value
+-- seen late, its key's quiet windows before it), the last 8 of each series.
+CREATE OR REPLACE TEMP TABLE history AS
+WITH earlier AS (
+    SELECT w.key, w.split_value, w.window_number, w.key_window, w.value, w.sessions, w.bad, w.breach
+    FROM windows AS w
+    SEMI JOIN (SELECT DISTINCT key, split_value FROM new_windows) AS n
+        ON w.key = n.key AND w.split_value IS NOT DISTINCT FROM n.split_value
+    WHERE w.check_name = 'golden'
+)
+SELECT key, split_value, window_number, value, sessions, bad
+FROM (
+    SELECT key, split_value, window_number, value, sessions, bad FROM earlier WHERE NOT breach AND value IS NOT NULL
+)
+QUALIFY row_number() OVER (PARTITION BY key, split_value ORDER BY window_number DESC) <= 8;
+
+-- judged: the new windows with their verdicts so far; `changed` marks those whose breach flag
+-- changed in the last round (at first, all of them).
+CREATE OR REPLACE TEMP TABLE judged AS
+SELECT
+    *,
+    NULL::DOUBLE AS baseline,
+    NULL::BIGINT AS history_windows,
+    NULL::DOUBLE AS threshold,
+    false AS breach,
+    true AS changed
+FROM new_windows;
+
+-- @statement round_limit
+-- The most rounds the loop may take. The first window of a series whose verdict is not final has
+-- only final windows before it, so each round settles at least one more window of every series:
+-- a series of n new windows settles within n rounds, and one more round finds nothing changing.
+-- Beyond that the verdicts cannot settle, and the run stops with an error rather than loop on.
+SELECT coalesce(max(windows), 0) + 1 AS round_limit
+FROM (SELECT count(*) AS windows FROM judged GROUP BY key, split_value);
+
+-- @loop until still_changing = 0, at most round_limit rounds
+-- baselines: each window's baseline, from the eligible windows before it as the breach flags stand
+-- now (only the series with a window that changed in the last round).
+CREATE OR REPLACE TEMP TABLE baselines AS
+WITH moving AS (
+    SELECT DISTINCT key, split_value FROM judged WHERE changed
+),
+series_rows AS (
+    SELECT h.key, h.split_value, h.window_number, h.value, h.sessions, h.bad, false AS is_new, true AS eligible
+    FROM history AS h
+    SEMI JOIN moving AS s ON h.key = s.key AND h.split_value IS NOT DISTINCT FROM s.split_value
+    UNION ALL
+    SELECT j.key, j.split_value, j.window_number, j.value, j.sessions, j.bad, true, NOT j.breach AND j.value IS NOT NULL
+    FROM judged AS j
+    SEMI JOIN moving AS s ON j.key = s.key AND j.split_value IS NOT DISTINCT FROM s.split_value
+),
+numbered AS (
+    -- hb: how many eligible windows come before this one; history is the eligible rows with hb in
+    -- [hb - history, hb - 1], whatever breached windows lie between them
+    SELECT *,
+        coalesce(count(*) FILTER (WHERE eligible) OVER (
+            PARTITION BY key, split_value ORDER BY window_number ROWS BETWEEN UNBOUNDED PRECEDING AND 1 PRECEDING
+        ), 0) AS hb
+    FROM series_rows
+),
+framed AS (
+    SELECT
+        key, split_value, window_number, is_new,
+        quantile_cont(value, 0.5) FILTER (WHERE eligible) OVER earlier AS baseline,
+        count(*) FILTER (WHERE eligible) OVER earlier AS history_windows
+    FROM numbered
+    WINDOW earlier AS (
+        PARTITION BY key, split_value ORDER BY hb RANGE BETWEEN 8 PRECEDING AND 1 PRECEDING
+    )
+)
+SELECT key, split_value, window_number, baseline, history_windows
+FROM framed
+WHERE is_new;
+
+-- round_verdicts: each recomputed window's threshold and whether it breaches.
+CREATE OR REPLACE TEMP TABLE round_verdicts AS
+SELECT
+    *,
+    coalesce(
+        threshold IS NOT NULL
+        AND value IS NOT NULL
+        AND value > threshold
+        AND sessions >= 10
+    , false) AS breach
+FROM (
+    SELECT
+        j.key, j.split_value, j.window_number, j.value, j.sessions, j.bad, base.baseline, base.history_windows,
+        CASE WHEN base.history_windows >= 3 THEN
+            1.1 * base.baseline
+        END AS threshold
+    FROM judged AS j
+    JOIN baselines AS base ON j.key = base.key AND j.split_value IS NOT DISTINCT FROM base.split_value AND j.window_number = base.window_number
+);
+
+-- What the round changed: only the windows whose breach flag differs from the last round's.
+UPDATE judged SET changed = false WHERE changed;
+
+UPDATE judged
+SET
+    baseline = r.baseline,
+    history_windows = r.history_windows,
+    threshold = r.threshold,
+    changed = judged.breach IS DISTINCT FROM r.breach,
+    breach = r.breach
+FROM round_verdicts AS r
+WHERE judged.key = r.key AND judged.split_value IS NOT DISTINCT FROM r.split_value AND judged.window_number = r.window_number;
+
+-- @statement still_changing
+-- The end of a round: how many breach flags it changed. The loop stops at 0.
+SELECT count(*) FILTER (WHERE changed) AS still_changing FROM judged;
+-- @end

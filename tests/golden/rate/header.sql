@@ -1,7 +1,0 @@
--- Plimsoll check golden: compiled SQL, executed by `plimsoll run` as shown.
--- Parameters: $files (where the new Parquet files are read from), $paths (their names
--- relative to the source's path), $manifest (names, sizes and times), $run_id, $reader (the
--- check whose earlier files decide repeats), $read_until (a backlog read in several runs:
--- the earliest event time left for the next runs, else NULL), $source_checks (the checks of
--- the source), $definition (hash of the SQL up to the breach stage). Statements after
--- '@repeat' run until no breach flag changes.
