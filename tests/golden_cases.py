@@ -1,4 +1,4 @@
-"""The golden cases of ``tests/golden/`` (listed in ``cases.yml``): what each compiles to, stage by
+"""The golden cases of ``tests/golden/`` (listed in ``cases.toml``): what each compiles to, stage by
 stage, and what a run of it gives; shared by ``tests/test_golden.py``, ``tests/test_spark_sql.py``
 and ``tests/golden/regenerate.py``.
 
@@ -15,6 +15,7 @@ from __future__ import annotations
 import difflib
 import shutil
 import tempfile
+import tomllib
 from dataclasses import dataclass
 from functools import cache
 from pathlib import Path
@@ -64,14 +65,14 @@ class Case:
 
 
 def cases() -> dict[str, Case]:
-    """``cases.yml`` in its order; a case is only like one listed before it."""
-    listed = yaml.safe_load((GOLDEN / "cases.yml").read_text())
+    """``cases.toml`` in its order; a case is only like one listed before it."""
+    listed = tomllib.loads((GOLDEN / "cases.toml").read_text())
     out: dict[str, Case] = {}
     for name, entry in listed.items():
         entry = entry or {}
         like = entry.get("like")
         if like is not None and like not in out:
-            raise ValueError(f"tests/golden/cases.yml: {name} is like {like!r}, which is not listed before it")
+            raise ValueError(f"tests/golden/cases.toml: {name} is like {like!r}, which is not listed before it")
         out[name] = Case(name, like, tuple(entry.get("spark", ())))
     return out
 

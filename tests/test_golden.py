@@ -1,4 +1,4 @@
-"""Golden SQL, stage by stage: for each case of ``tests/golden/cases.yml``, ``plimsoll sql`` prints its
+"""Golden SQL, stage by stage: for each case of ``tests/golden/cases.toml``, ``plimsoll sql`` prints its
 committed SQL (one file per stage and ``script.sql`` around them, the pieces it shares with the case
 it is like left to that case), and one run of it over the committed fixture lake gives its committed
 windows and alerts. Regenerate with ``python tests/golden/regenerate.py`` and review the diff.

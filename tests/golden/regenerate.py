@@ -3,7 +3,7 @@ its results or its Spark translation.
 
     python tests/golden/regenerate.py
 
-For each case of ``cases.yml`` (a folder here): ``<piece>.sql`` for each piece of what ``plimsoll
+For each case of ``cases.toml`` (a folder here): ``<piece>.sql`` for each piece of what ``plimsoll
 sql`` prints (each stage, and ``script``: the rest, with a marker where each stage goes) where the
 case differs from the case it is ``like`` (the others are removed, so nothing is repeated), ``spark/<stage>.sql`` for the stages it lists under
 ``spark``, and ``windows.csv`` and ``alerts.csv`` from one run over ``tests/fixtures/lake``; then
