@@ -57,7 +57,7 @@ def test_compile_shows_where_each_step_runs(tmp_path: Path) -> None:
     assert result.exit_code == 0, result.output
     for words in ("-- [on Spark]", "-- [on DuckDB (the warehouse)]", "DuckDB rows -> Spark view carry",
                   "Spark rows -> DuckDB relation spark_new_windows", "CREATE OR REPLACE TEMPORARY VIEW pooled",
-                  "WITH RECURSIVE span", "RANGE BETWEEN UNBOUNDED PRECEDING AND 21600000000 FOLLOWING"):
+                  "WITH RECURSIVE walk", "RANGE BETWEEN UNBOUNDED PRECEDING AND 21600000000 FOLLOWING"):
         assert words in result.output, words
 
 
