@@ -3,6 +3,8 @@ the benchmark's figures and the code is checked against the code itself."""
 
 from __future__ import annotations
 
+import importlib.util
+import json
 import re
 from pathlib import Path
 
@@ -240,3 +242,40 @@ def test_each_measure_kind_and_baseline_method_has_its_keys_in_the_readme(kinds:
         for key in kind.keys:
             if key.default is not None:
                 assert f"`{key.name}` (default {shown_default(key.default)})" in row[1], (name, key.name, row[1])
+
+
+# ── the benchmark's figures: one page ───────────────────────────────────────────────────────────────
+
+RESULTS_JSON = ROOT / "benchmarks" / "results.json"
+
+
+def bench():
+    spec = importlib.util.spec_from_file_location("bench", ROOT / "benchmarks" / "bench.py")
+    module = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(module)
+    return module
+
+
+def test_the_benchmark_page_is_what_the_last_runs_figures_give() -> None:
+    figures = json.loads(RESULTS_JSON.read_text(encoding="utf-8"))
+    assert RESULTS.read_text(encoding="utf-8") == bench().results_page(figures), \
+        "benchmarks/RESULTS.md: python benchmarks/bench.py --page benchmarks/results.json > benchmarks/RESULTS.md"
+
+
+FIGURE_CELL = re.compile(r"^[\d,.]+(\s*(s|ms|MiB|GiB|MB|GB|%))?$")
+
+
+@pytest.mark.parametrize("doc", [README, DEVELOPERS], ids=lambda p: p.name)
+def test_no_other_doc_repeats_the_benchmarks_figures(doc: Path) -> None:
+    figures = json.loads(RESULTS_JSON.read_text(encoding="utf-8"))
+    measured = {f"{r['seconds']:.1f}" for r in figures["results"].values()}
+    measured |= {f"{r['peak_mib']:,.0f}" for r in figures["results"].values() if r["peak_mib"] >= 1000}
+    measured |= {f"{r['value']:.3f}" for r in figures["ratios"]}
+    text = doc.read_text(encoding="utf-8")
+    repeated = sorted(m for m in measured if re.search(rf"(?<![\w.,]){re.escape(m)}(?![\d,]|\.\d)", text))
+    assert not repeated, f"{doc.name} repeats figures of benchmarks/RESULTS.md: {repeated}; link to it instead"
+    for line in text.splitlines():
+        if line.startswith("|"):
+            cells = [c.strip() for c in line.strip().strip("|").split("|")]
+            assert not [c for c in cells if FIGURE_CELL.match(c)], f"{doc.name}: a table of figures: {line}"
+    assert "(benchmarks/RESULTS.md)" in text
