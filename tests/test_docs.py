@@ -279,3 +279,48 @@ def test_no_other_doc_repeats_the_benchmarks_figures(doc: Path) -> None:
             cells = [c.strip() for c in line.strip().strip("|").split("|")]
             assert not [c for c in cells if FIGURE_CELL.match(c)], f"{doc.name}: a table of figures: {line}"
     assert "(benchmarks/RESULTS.md)" in text
+
+
+# ── the contributor guide names what exists ─────────────────────────────────────────────────────────
+
+REPOSITORY_PATH = re.compile(r"^(toolkit|queries|tests|benchmarks|checks|warehouse_demo)/[\w./-]*$")
+
+
+def developers_spans() -> list[str]:
+    return re.findall(r"`([^`\n]+)`", DEVELOPERS.read_text(encoding="utf-8"))
+
+
+def test_every_path_the_contributor_guide_names_exists() -> None:
+    paths = [span for span in developers_spans() if REPOSITORY_PATH.match(span)]
+    assert len(paths) > 40
+    missing = sorted({p for p in paths if not (ROOT / p).exists()})
+    assert not missing, f"DEVELOPERS.md names files that do not exist: {missing}"
+
+
+def test_every_test_module_is_in_the_contributor_guide() -> None:
+    named = set(re.findall(r"`(tests/[\w/]+\.py)`", DEVELOPERS.read_text(encoding="utf-8")))
+    modules = {p.relative_to(ROOT).as_posix() for p in (ROOT / "tests").glob("test_*.py")}
+    assert not modules - named, f"DEVELOPERS.md does not say what these test: {sorted(modules - named)}"
+
+
+def test_every_module_attribute_the_contributor_guide_names_exists() -> None:
+    modules = {p.stem: p for p in (ROOT / "toolkit").rglob("*.py") if p.stem != "__init__"}
+    checked = 0
+    for span in developers_spans():
+        found = re.fullmatch(r"(\w+)\.([A-Za-z_]\w*)", span)
+        if not found or found.group(1) not in modules or found.group(2) in ("py", "sql", "yml", "html", "json"):
+            continue
+        module, name = found.groups()
+        source = modules[module].read_text(encoding="utf-8")
+        assert re.search(rf"^(def |class )?{name}\b", source, re.M), f"DEVELOPERS.md: `{span}`: no {name} in {modules[module]}"
+        checked += 1
+    assert checked >= 5
+
+
+def test_every_constant_the_contributor_guide_names_exists() -> None:
+    corpus = " ".join(p.read_text(encoding="utf-8") for folder in ("toolkit", "tests", "benchmarks", "queries")
+                      for p in (ROOT / folder).rglob("*") if p.suffix in (".py", ".sql"))
+    constants = {s for s in developers_spans() if re.fullmatch(r"[A-Z][A-Z0-9_]{3,}", s)}
+    assert len(constants) >= 5
+    missing = sorted(c for c in constants if not re.search(rf"\b{c}\b", corpus))
+    assert not missing, f"DEVELOPERS.md names constants the code does not have: {missing}"
