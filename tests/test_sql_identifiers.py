@@ -35,15 +35,9 @@ CONSTANT_NAME = re.compile(r"^_?[A-Z][A-Z0-9_]*$")
 
 # (file, function, interpolated expression): why it is safe
 EXCEPTIONS = {
-    ("toolkit/engine/runner.py", "_move", "table"):
-        "the name of one of MOVED_AFTER's temp tables (runner.py lists them; the templates create them), "
-        "copied between the run's two connections; never a name from a project",
     ("toolkit/lake/files.py", "schema_table", "t"):
         "a column's type as DuckDB printed it when it read the files' schema (DESCRIBE), beside the column's "
         "name through quote_ident; a type, not a name",
-    ("toolkit/lake/files.py", "_check_partitions", "columns[key]"):
-        "a partition column's type as DuckDB printed it, refused just before unless it matches "
-        "[A-Z0-9_(), ]+",
 }
 
 
