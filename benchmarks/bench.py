@@ -15,6 +15,11 @@ each measurement in a fresh process, so its peak memory (max RSS: VmHWM) is its 
 and prints seconds, peak MiB, DuckDB's own peak, the windows and alerts each produced, the ratios
 against their targets, and where the Plimsoll runs spend their time, stage by stage; the same
 figures go to a JSON file. A benchmark, not a test: nothing here asserts a time.
+
+The figures the docs quote live in one place, benchmarks/RESULTS.md, written from such a JSON file:
+
+    python benchmarks/bench.py --sessions 20000000 --json benchmarks/results.json
+    python benchmarks/bench.py --page benchmarks/results.json > benchmarks/RESULTS.md
 """
 
 from __future__ import annotations
@@ -355,6 +360,46 @@ def table(sessions: int, results: dict[str, dict[str, Any]], found: list[dict[st
     return "\n".join(lines)
 
 
+# what each measurement is, in the results page
+SHOWN = {
+    "floor": "one plain DuckDB GROUP BY over the columns the title check reads",
+    "by_hand": "the `title_errors` check written by hand as one DuckDB script, no state kept",
+    "title": "`plimsoll run --check title_errors`",
+    "oracle": "the same check in plain Python and pandas (the test suite's oracle)",
+    "catalogue": "`plimsoll run`, the whole catalogue of the demo",
+    "first_30_days": "the catalogue over the first 30 days",
+    "increment": "`plimsoll run` after one more day lands",
+}
+
+
+def _mib(value: float) -> str:
+    return f"{value:,.0f} MiB"
+
+
+def results_page(figures: dict[str, Any]) -> str:
+    """benchmarks/RESULTS.md: the figures of one run (as --json writes them) for people to read."""
+    results, limit = figures["results"], figures.get("memory_limit") or "Plimsoll's default (1600MB)"
+    about = (f"The last run of `benchmarks/bench.py` (what it measures: DEVELOPERS.md, 'Benchmark'): a "
+             f"{figures['days']}-day Fernhill lake of {figures['sessions']:,} sessions, {figures['cores']} cores, "
+             f"memory limit {limit}." + (f" {figures['conditions']}" if figures.get("conditions") else ""))
+    lines = ["# What a run costs", "", about, *(["", figures["transcribed"]] if figures.get("transcribed") else []), "",
+             "Written from the run's figures (`benchmarks/results.json`) by "
+             "`python benchmarks/bench.py --page benchmarks/results.json`; the other docs point here.",
+             "", "| run | seconds | peak memory |", "| --- | --- | --- |"]
+    lines += [f"| {SHOWN[name]} | {r['seconds']:.1f} | {_mib(r['peak_mib'])} |"
+              for name, r in results.items() if name in SHOWN]
+    lines += ["", "| ratio | value | target |", "| --- | --- | --- |"]
+    for r in figures["ratios"]:
+        top, bottom = r["ratio"].split("/")
+        lines.append(f"| `{r['ratio']}` | {r['value']:.3f} ({results[top]['seconds']:.1f} s / "
+                     f"{results[bottom]['seconds']:.1f} s) | ≤ {r['target']:g} |")
+    if "catalogue" in results:
+        lines.append(f"| catalogue peak | {_mib(results['catalogue']['peak_mib'])} | ≤ {_mib(MEMORY_TARGET_MIB)} |")
+    if figures.get("notes"):
+        lines += ["", figures["notes"]]
+    return "\n".join(lines) + "\n"
+
+
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     parser.add_argument("--sessions", type=int, default=2_000_000)
@@ -364,8 +409,13 @@ def main() -> None:
                         help="leave a measurement out (repeatable), e.g. the oracle at very large sizes")
     parser.add_argument("--memory-limit", default=None,
                         help="DuckDB memory_limit for every DuckDB measurement (plimsoll.yml's key), e.g. 8GB; default: Plimsoll's default")
+    parser.add_argument("--page", type=Path, default=None, metavar="JSON",
+                        help="print benchmarks/RESULTS.md from the figures of a run (its --json file), then stop")
     parser.add_argument("--child", nargs=2, metavar=("NAME", "WORKDIR"), help=argparse.SUPPRESS)
     args = parser.parse_args()
+    if args.page:
+        print(results_page(json.loads(args.page.read_text(encoding="utf-8"))), end="")
+        return
     if args.child:
         child(args.child[0], Path(args.child[1]))
         return

@@ -1,9 +1,10 @@
 """Headless Chromium, driven by its own command-line flags, for tests of pages Plimsoll writes.
 
-`--dump-dom` gives the DOM after the page loaded and ran; `--enable-logging=stderr --v=0` writes every
-console message (script errors, refused loads) to stderr as ``...:CONSOLE...] "message", source: ...``;
-`--screenshot` keeps a PNG. Each call gets a new empty profile, and the flags keep Chromium off the
-network, which this machine does not have.
+One launch per page gives everything a test reads: `--dump-dom` prints the DOM after the page loaded
+and ran, `--enable-logging=stderr --v=0` writes every console message (script errors, refused loads)
+to stderr as ``...:CONSOLE...] "message", source: ...``, and `--screenshot` keeps a PNG of the same
+load. Each launch gets a new empty profile, and the flags keep Chromium off the network, which this
+machine does not have.
 """
 
 from __future__ import annotations
@@ -37,17 +38,13 @@ def chromium() -> str:
     return found
 
 
-def _chromium(page: Path, *args: str) -> subprocess.CompletedProcess[str]:
+def open_page(page: Path, screenshot: Path, width: int = 1100, height: int = 1400) -> Page:
+    """Load ``page`` from its file URL once: its DOM, every console message, and a screenshot."""
     with tempfile.TemporaryDirectory(prefix="plimsoll-chromium-") as profile:
-        done = subprocess.run([chromium(), *FLAGS, f"--user-data-dir={profile}", *args, page.resolve().as_uri()],
+        done = subprocess.run([chromium(), *FLAGS, f"--user-data-dir={profile}", "--dump-dom",
+                               f"--screenshot={screenshot}", f"--window-size={width},{height}",
+                               page.resolve().as_uri()],
                               capture_output=True, text=True, timeout=120)
     assert done.returncode == 0, done.stderr[-2000:]
-    return done
-
-
-def open_page(page: Path, screenshot: Path, width: int = 1100, height: int = 1400) -> Page:
-    """Load ``page`` from its file URL: its DOM, every console message, and a screenshot."""
-    dumped = _chromium(page, "--dump-dom")
-    shot = _chromium(page, f"--screenshot={screenshot}", f"--window-size={width},{height}")
-    console = CONSOLE.findall(dumped.stderr) + CONSOLE.findall(shot.stderr)
-    return Page(dumped.stdout, console, screenshot)
+    assert screenshot.is_file(), f"Chromium wrote no screenshot: {done.stderr[-2000:]}"
+    return Page(done.stdout, CONSOLE.findall(done.stderr), screenshot)

@@ -1,8 +1,13 @@
-"""Shared fixtures: temp projects over the small committed lake in tests/fixtures/lake."""
+"""Shared fixtures: temp projects over the small committed lake in tests/fixtures/lake, and the
+Fernhill demo lake, built once per session and shared read-only."""
 
 from __future__ import annotations
 
+import json
+import os
+import sys
 import textwrap
+from dataclasses import dataclass, field
 from pathlib import Path
 
 import pytest
@@ -38,6 +43,132 @@ def make_project(tmp_path: Path):
         return write_project(tmp_path, checks, project, lake)
 
     return make
+
+
+# ── The Fernhill demo lake, built once per test session ────────────────────────────────────────────
+#
+# Building a lake takes seconds; what a test does over it takes longer the larger it is. So there are
+# two shared lakes, and one test module with sizes of its own:
+#
+# - ``fernhill_lake``: 300,000 sessions, seed 11. "A few hundred thousand sessions": the size at which
+#   a check added to a project with history used to stop every later run (test_catch_up), and what
+#   the other end-to-end tests over the demo read (test_run_memory, test_warehouse_errors,
+#   test_spark, test_demo_lake).
+# - ``small_fernhill_lake``: 40,000 sessions, seed 3. For tests that run over the lake many times
+#   (test_durability kills 24 runs and reruns each: its time grows with the lake) or need only the
+#   demo's schema and story (test_metrics, test_expressions).
+# - test_backtest asks ``fernhill_lake_of(400_000, seed=7)``: its scaled catalogue setting is tuned
+#   to that lake (at 300,000 sessions, seed 11, the title incident is too small for it to find); its
+#   slow test asks for the full demo, ``fernhill_lake_of(2_000_000, seed=7)``, as `plimsoll demo`
+#   builds it.
+#
+# A shared lake is read in place and never changed: a test that must change files copies them first
+# (as test_catch_up and test_durability copy the day folders they let land one by one). After every
+# test each lake built so far is compared with what was built (every file's name, size and
+# modification time): a test that changed one fails, and the lake is built again so the tests after
+# it read the real thing. (File permissions could not say it: the tests may run as root.)
+
+SHARED_LAKE = (300_000, 11)
+SMALL_LAKE = (40_000, 3)
+
+
+def _fingerprint(folder: Path) -> list[tuple[str, int, int]]:
+    """Every file and folder under ``folder``: its relative name, size and modification time."""
+    found = []
+    for where, folders, files in os.walk(folder):
+        for name in folders + files:
+            stat = os.stat(os.path.join(where, name))
+            found.append((os.path.relpath(os.path.join(where, name), folder), stat.st_size, stat.st_mtime_ns))
+    return sorted(found)
+
+
+@dataclass(frozen=True)
+class DemoLake:
+    """A Fernhill Broadcasting demo lake as ``build_lake`` wrote it: ``lake/sessions/day=…/`` and
+    ``labels.csv`` in ``folder``. Shared by the session: read it where it is, copy what you change."""
+
+    folder: Path
+    sessions: int
+    seed: int
+    labels: tuple = ()
+    built: list = field(default_factory=list, compare=False, repr=False)
+
+    @property
+    def path(self) -> Path:
+        """The sessions folder: a source's ``path``, one ``day=YYYY-MM-DD`` folder per day."""
+        return self.folder / "lake" / "sessions"
+
+    @property
+    def labels_file(self) -> Path:
+        return self.folder / "labels.csv"
+
+    def days(self) -> list[Path]:
+        return sorted(self.path.iterdir())
+
+    def project(self, folder: Path, extra: str = "") -> Path:
+        """`plimsoll demo`'s project (the whole catalogue) in ``folder``, reading this lake in place;
+        ``extra`` is appended to its plimsoll.yml."""
+        from toolkit.demo.run import write_project
+
+        folder.mkdir(parents=True, exist_ok=True)
+        project_file = write_project(folder)
+        text = project_file.read_text(encoding="utf-8")
+        assert "    path: lake/sessions/\n" in text, text
+        text = text.replace("    path: lake/sessions/\n", f"    path: {json.dumps(str(self.path) + '/')}\n")
+        project_file.write_text(text + extra, encoding="utf-8")
+        return project_file
+
+
+_LAKES: dict[tuple[int, int], DemoLake] = {}
+
+
+def _build(root: Path, sessions: int, seed: int) -> DemoLake:
+    from toolkit.warehouse_demo.generate import build_lake
+
+    labels = build_lake(root, sessions=sessions, seed=seed)
+    lake = DemoLake(root, sessions, seed, tuple(labels))
+    lake.built[:] = _fingerprint(root)
+    return lake
+
+
+@pytest.fixture(scope="session")
+def fernhill_lake_of(tmp_path_factory: pytest.TempPathFactory):
+    """``fernhill_lake_of(sessions, seed)``: that demo lake, built the first time it is asked for."""
+
+    def lake_of(sessions: int, seed: int) -> DemoLake:
+        if (sessions, seed) not in _LAKES:
+            root = tmp_path_factory.mktemp(f"fernhill-{sessions}-seed-{seed}", numbered=False)
+            _LAKES[sessions, seed] = _build(root, sessions, seed)
+        return _LAKES[sessions, seed]
+
+    return lake_of
+
+
+@pytest.fixture(scope="session")
+def fernhill_lake(fernhill_lake_of) -> DemoLake:
+    """The shared demo lake: 300,000 sessions, seed 11 (see above)."""
+    return fernhill_lake_of(*SHARED_LAKE)
+
+
+@pytest.fixture(scope="session")
+def small_fernhill_lake(fernhill_lake_of) -> DemoLake:
+    """The small shared demo lake: 40,000 sessions, seed 3 (see above)."""
+    return fernhill_lake_of(*SMALL_LAKE)
+
+
+@pytest.fixture(autouse=True)
+def _shared_lakes_stay_as_built():
+    """Fail the test that changed a shared demo lake, and build that lake again for the others."""
+    yield
+    changed = [lake for lake in _LAKES.values() if _fingerprint(lake.folder) != lake.built]
+    for lake in changed:
+        _build(lake.folder, lake.sessions, lake.seed)
+        lake.built[:] = _fingerprint(lake.folder)
+    if changed:
+        pytest.fail("changed the shared demo lake " + ", ".join(str(lake.folder) for lake in changed)
+                    + ": shared lakes are read-only; copy what a test changes",
+                    pytrace=False)
+
 
 # A project over a test's own lake: no exclude, only the session id and event time named.
 PLAIN_PROJECT = ("warehouse: w.duckdb\nsources:\n  sessions:\n    path: {lake}\n"
@@ -92,11 +223,6 @@ def warehouse_contents(warehouse_file: Path, skip: tuple[str, ...] = ()) -> dict
 
 
 def plimsoll_command(*args: str) -> list[str]:
-    """The installed ``plimsoll`` command, for tests that need a real process.
-
-    Not ``python -m toolkit.cli``: run from the repository, that imports the source tree, whose
-    layout is not the installed package's (the templates are installed as ``toolkit.queries``).
-    """
-    import sys
-
+    """The installed ``plimsoll`` command (the console script beside this Python), for tests that
+    need a real process: what a user or a scheduler runs, its entry point included."""
     return [str(Path(sys.executable).with_name("plimsoll")), *args]

@@ -273,19 +273,16 @@ SCALED = ("title_errors:window.sessions=50, title_errors:guard.min_sessions=25, 
 
 
 @pytest.fixture(scope="module")
-def fernhill(tmp_path_factory: pytest.TempPathFactory) -> dict:
-    from toolkit.demo.run import prepare_workdir, write_project
-    from toolkit.warehouse_demo.generate import build_lake
-
+def fernhill(tmp_path_factory: pytest.TempPathFactory, fernhill_lake_of) -> dict:
+    # this lake, not the session's shared one: SCALED is tuned to 400,000 sessions of seed 7
+    lake = fernhill_lake_of(400_000, seed=7)
     workdir = tmp_path_factory.mktemp("fernhill") / "demo"
-    prepare_workdir(workdir)
-    build_lake(workdir, sessions=400_000, seed=7)
-    project_file = write_project(workdir)
+    project_file = lake.project(workdir)
     run(load_project(project_file), ["rebuffering_by_site"])  # the live warehouse, with state of its own
     live = workdir / "warehouse.duckdb"
     before = digest(live), live.stat().st_mtime_ns
     result = CliRunner().invoke(main, ["backtest", *FOUR, *RANGE, "-p", str(project_file), "--labels",
-                                       str(workdir / "labels.csv"), "--setting", SCALED, "--json"],
+                                       str(lake.labels_file), "--setting", SCALED, "--json"],
                                 catch_exceptions=False)
     assert result.exit_code == 0, result.output
     return {"rows": json.loads(result.stdout), "before": before, "after": (digest(live), live.stat().st_mtime_ns),
@@ -332,15 +329,10 @@ def test_demo_backtest_logs_each_check_of_each_setting(fernhill: dict) -> None:
 
 
 @pytest.mark.slow
-def test_full_demo_backtest_finds_all_four_with_the_catalogue_as_written(tmp_path: Path) -> None:
-    from toolkit.demo.run import prepare_workdir, write_project
-    from toolkit.warehouse_demo.generate import build_lake
-
-    prepare_workdir(tmp_path / "demo")
-    build_lake(tmp_path / "demo", sessions=2_000_000, seed=7)
-    project_file = write_project(tmp_path / "demo")
-    result = invoke("backtest", *FOUR, *RANGE, "-p", str(project_file), "--labels",
-                    str(tmp_path / "demo" / "labels.csv"), "--json")
+def test_full_demo_backtest_finds_all_four_with_the_catalogue_as_written(tmp_path: Path, fernhill_lake_of) -> None:
+    lake = fernhill_lake_of(2_000_000, seed=7)  # what `plimsoll demo` builds
+    project_file = lake.project(tmp_path / "demo")
+    result = invoke("backtest", *FOUR, *RANGE, "-p", str(project_file), "--labels", str(lake.labels_file), "--json")
     assert result.exit_code == 0, result.output
     total = next(r for r in json.loads(result.stdout) if r["check"] is None)
     assert (total["incidents"], total["detected"], total["recall"]) == (4, 4, 1.0)

@@ -22,7 +22,6 @@ from conftest import PLAIN_PROJECT, plimsoll_command, write_project, write_rows
 from toolkit.checks import __file__ as catalogue_init
 from toolkit.config.project import load_project
 from toolkit.engine.runner import run
-from toolkit.warehouse_demo.generate import build_lake
 
 CATALOGUE = Path(catalogue_init).parent
 CHECKS = ("site_errors.yml", "title_errors.yml")
@@ -47,11 +46,11 @@ RESULTS = {
 
 
 @pytest.fixture(scope="module")
-def days(tmp_path_factory: pytest.TempPathFactory) -> list[Path]:
-    """Three weeks of Fernhill's demo lake, 300,000 sessions, a folder per day."""
-    folder = tmp_path_factory.mktemp("demo")
-    build_lake(folder, 300_000, seed=11)
-    found = sorted((folder / "lake" / "sessions").iterdir())
+def days(fernhill_lake) -> list[Path]:
+    """Three weeks of Fernhill's demo lake, 300,000 sessions, a folder per day (the session's
+    shared lake: ``project`` copies the days it needs)."""
+    assert fernhill_lake.sessions == 300_000
+    found = fernhill_lake.days()
     assert len(found) == 21
     return found
 

@@ -1,8 +1,8 @@
 """The demo scenario generator, end to end over the Parquet lake it writes.
 
-A 200,000-session lake is built once per module; every labelled incident must stand out in plain
-SQL over the written files, the decoys must look as labelled, and everything else must stay
-stationary. Expected labels are copied here from the scenario brief, not read from the generator.
+The session's shared 300,000-session lake (tests/conftest.py) is read; every labelled incident
+must stand out in plain SQL over the written files, the decoys must look as labelled, and everything
+else must stay stationary. Expected labels are copied here from the scenario brief, not read from the generator.
 """
 
 from __future__ import annotations
@@ -19,7 +19,7 @@ from toolkit.sql.quoting import quote_literal
 from toolkit.warehouse_demo import generate
 from toolkit.warehouse_demo.generate import Label, build_lake, read_labels
 
-SESSIONS = 200_000
+SESSIONS = 300_000  # the shared lake's size (conftest.SHARED_LAKE)
 SMALL = 50_000
 SEED = 7
 T = datetime.fromisoformat
@@ -77,9 +77,10 @@ def one(con: duckdb.DuckDBPyConnection, sql: str) -> object:
 
 
 @pytest.fixture(scope="module")
-def built(tmp_path_factory: pytest.TempPathFactory) -> tuple[Path, list[Label]]:
-    workdir = tmp_path_factory.mktemp("fernhill")
-    return workdir, build_lake(workdir, sessions=SESSIONS, seed=SEED)
+def built(fernhill_lake) -> tuple[Path, list[Label]]:
+    """The session's shared demo lake: the folder build_lake wrote and the labels it returned."""
+    assert fernhill_lake.sessions == SESSIONS
+    return fernhill_lake.folder, list(fernhill_lake.labels)
 
 
 @pytest.fixture(scope="module")

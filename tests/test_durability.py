@@ -20,7 +20,6 @@ from pathlib import Path
 
 import pytest
 from conftest import plimsoll_command, warehouse_contents
-from toolkit.warehouse_demo.generate import build_lake
 
 from toolkit.engine import warehouse
 from toolkit.demo.run import write_project
@@ -31,11 +30,10 @@ KILLS = 24
 
 
 @pytest.fixture(scope="module")
-def demo_lake(tmp_path_factory: pytest.TempPathFactory) -> Path:
-    """A small Fernhill lake (21 day partitions) built once for this module."""
-    folder = tmp_path_factory.mktemp("lake")
-    build_lake(folder, sessions=40_000, seed=3)
-    return folder / "lake" / "sessions"
+def demo_lake(small_fernhill_lake) -> Path:
+    """The session's small Fernhill lake (40,000 sessions, 21 day partitions): small, because every
+    kill is followed by a rerun. ``project_over`` copies the days a test reads."""
+    return small_fernhill_lake.path
 
 
 def project_over(folder: Path, lake: Path, days: slice) -> Path:

@@ -180,12 +180,8 @@ def test_every_expression_of_the_catalogue_the_golden_checks_and_the_readme_is_a
         parse_expression(expression, None)
 
 
-def test_the_catalogue_validates_over_a_demo_lake(tmp_path: Path) -> None:
-    from toolkit.demo.run import write_project
-    from toolkit.warehouse_demo.generate import MIN_SESSIONS, build_lake
-
-    build_lake(tmp_path, sessions=MIN_SESSIONS, seed=5)
-    project = load_project(write_project(tmp_path))
+def test_the_catalogue_validates_over_a_demo_lake(tmp_path: Path, small_fernhill_lake) -> None:
+    project = load_project(small_fernhill_lake.project(tmp_path))
     assert sorted(project.checks) == sorted(p.stem for p in (ROOT / "checks").glob("*.yml"))
 
 

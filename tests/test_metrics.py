@@ -19,7 +19,6 @@ import pytest
 from conftest import PLAIN_PROJECT, write_project
 from toolkit.config.project import load_project
 from toolkit.engine.runner import run
-from toolkit.warehouse_demo.generate import build_lake
 
 PROJECT = PLAIN_PROJECT
 
@@ -48,9 +47,9 @@ def test_cta_stalled_time_example_through_the_ratio_measure(tmp_path: Path) -> N
 
 
 @pytest.fixture(scope="module")
-def small_demo(tmp_path_factory: pytest.TempPathFactory) -> Path:
+def small_demo(tmp_path_factory: pytest.TempPathFactory, small_fernhill_lake) -> Path:
+    """Four hourly checks by site run over the session's small demo lake, read in place."""
     folder = tmp_path_factory.mktemp("metrics")
-    build_lake(folder, sessions=60_000, seed=11)
     checks = {
         "started.yml": one_hour_check("started", "  kind: rate\n  bad: startup_ms IS NOT NULL"),
         "vsf.yml": one_hour_check("vsf", "  kind: rate\n  bad: error_code IS NOT NULL AND startup_ms IS NULL"),
@@ -58,7 +57,7 @@ def small_demo(tmp_path_factory: pytest.TempPathFactory) -> Path:
         "p90.yml": one_hour_check("p90", "  kind: quantile\n  of: startup_ms\n  q: 0.9",
                                   "where: startup_ms IS NOT NULL\n"),
     }
-    project = load_project(write_project(folder, checks, PROJECT.format(lake=folder / "lake" / "sessions")))
+    project = load_project(write_project(folder, checks, PROJECT.format(lake=small_fernhill_lake.path)))
     run(project)
     return folder
 
@@ -74,16 +73,16 @@ def test_started_vsf_and_ebvs_add_up_to_all_attempts(small_demo: Path) -> None:
     assert all(total == pytest.approx(1.0) for _, _, total, _, _ in sums)
 
 
-def test_startup_time_leaves_out_sessions_that_never_started(small_demo: Path) -> None:
+def test_startup_time_leaves_out_sessions_that_never_started(small_demo: Path, small_fernhill_lake) -> None:
     con = duckdb.connect(str(small_demo / "w.duckdb"), read_only=True)
     key_text, start, sessions, value = con.execute(
         "SELECT key_text, window_start, sessions, value FROM windows WHERE check_name = 'p90' "
         "ORDER BY sessions DESC LIMIT 1").fetchone()
     site = key_text.split("=", 1)[1]
     rows = con.execute(
-        f"SELECT startup_ms FROM read_parquet('{small_demo}/lake/sessions/**/*.parquet') "
-        "WHERE site = $site AND ended_at >= $start AND ended_at < $end",
-        {"site": site, "start": start, "end": start + timedelta(hours=1)}).fetchall()
+        "SELECT startup_ms FROM read_parquet($files) WHERE site = $site AND ended_at >= $start AND ended_at < $end",
+        {"files": str(small_fernhill_lake.path / "**" / "*.parquet"), "site": site, "start": start,
+         "end": start + timedelta(hours=1)}).fetchall()
     started = [r[0] for r in rows if r[0] is not None]
     never = [r for r in rows if r[0] is None]
     assert never, "the window should hold sessions that never started"

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import subprocess
 from datetime import timedelta
 from html.parser import HTMLParser
 from pathlib import Path
@@ -10,6 +11,7 @@ import duckdb
 import pytest
 from click.testing import CliRunner
 
+import browser
 from browser import open_page
 from conftest import PLAIN_PROJECT, write_project, write_rows
 from known_lake import CHECK, HOSTILE, START, known_project, warehouse_held
@@ -64,12 +66,22 @@ def project(tmp_path: Path) -> Path:
     return project
 
 
-def test_report_in_a_headless_browser(project: Path, tmp_path: Path) -> None:
+def test_report_in_a_headless_browser(project: Path, tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
     out = tmp_path / "report.html"
     result = invoke("report", "--out", str(out), "-p", str(project))
     assert result.exit_code == 0, result.output
     assert result.output.startswith(f"{out}: 2 alerts (1 open), ")
+    launches = []
+    started = subprocess.run
+
+    def launch(command: list[str], **kwargs):
+        launches.append(command)
+        return started(command, **kwargs)
+
+    monkeypatch.setattr(browser.subprocess, "run", launch)
     page = open_page(out, tmp_path / "report.png")
+    monkeypatch.undo()
+    assert len(launches) == 1, launches  # one load gives the DOM, the console and the screenshot
     assert page.console == []
     assert page.screenshot.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
     dom = parse(page.dom)

@@ -22,17 +22,11 @@ COUNT_CHECKS = ["title_errors", "exit_before_start_by_device", "video_start_fail
 
 
 @pytest.fixture(scope="module")
-def fernhill(tmp_path_factory: pytest.TempPathFactory) -> Path:
-    from toolkit.demo.run import prepare_workdir, write_project
-    from toolkit.warehouse_demo.generate import build_lake
-
-    workdir = tmp_path_factory.mktemp("memory") / "demo"
-    prepare_workdir(workdir)
-    build_lake(workdir, sessions=300_000, seed=11)
-    project_file = write_project(workdir)
+def fernhill(tmp_path_factory: pytest.TempPathFactory, fernhill_lake) -> Path:
+    """The demo project over the session's 300,000-session lake, read in place."""
+    assert fernhill_lake.sessions == 300_000
     # no limit of its own: what a run would hold, not what DuckDB spills
-    project_file.write_text(project_file.read_text(encoding="utf-8") + "memory_limit: 8GB\n", encoding="utf-8")
-    return project_file
+    return fernhill_lake.project(tmp_path_factory.mktemp("memory") / "demo", extra="memory_limit: 8GB\n")
 
 
 def peak_while_running(project_file: Path, monkeypatch: pytest.MonkeyPatch, rebuild: bool) -> dict[str, Any]:

@@ -17,7 +17,6 @@ import pytest
 from toolkit.demo.run import catalogue_folder
 from toolkit.config.project import load_project
 from toolkit.engine.runner import run
-from toolkit.warehouse_demo.generate import build_lake
 
 pytestmark = pytest.mark.spark
 
@@ -63,10 +62,10 @@ ALERT_COLUMNS = ("alert_id, check_name, severity, key_text, split_value, status,
 
 
 @pytest.fixture(scope="module")
-def lake(tmp_path_factory: pytest.TempPathFactory) -> Path:
-    root = tmp_path_factory.mktemp("fernhill")
-    build_lake(root, sessions=SESSIONS, seed=7)
-    return root / "lake" / "sessions"
+def lake(fernhill_lake) -> Path:
+    """The session's shared demo lake, read in place."""
+    assert fernhill_lake.sessions == SESSIONS
+    return fernhill_lake.path
 
 
 @pytest.fixture(scope="module")

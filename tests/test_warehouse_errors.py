@@ -19,7 +19,6 @@ import pytest
 from conftest import plimsoll_command
 
 from toolkit.checks import __file__ as catalogue_init
-from toolkit.warehouse_demo.generate import build_lake
 
 CATALOGUE = Path(catalogue_init).parent
 PROJECT = """\
@@ -35,10 +34,9 @@ sources:
 
 
 @pytest.fixture(scope="module")
-def lake(tmp_path_factory: pytest.TempPathFactory) -> Path:
-    folder = tmp_path_factory.mktemp("demo")
-    build_lake(folder, 200_000, seed=5)
-    return folder / "lake" / "sessions"
+def lake(fernhill_lake) -> Path:
+    """The session's shared demo lake, read in place (the test of an odd folder name copies it)."""
+    return fernhill_lake.path
 
 
 def project(folder: Path, lake: Path, warehouse: str = "warehouse.duckdb") -> Path:

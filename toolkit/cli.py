@@ -22,6 +22,7 @@ from toolkit.problems import PlimsollError
 from toolkit.config.project import load_project
 from toolkit.engine.runner import run as run_checks
 from toolkit.engine.runner import RunResult, select_checks
+from toolkit.warehouse_demo.generate import MAX_SESSIONS, MIN_SESSIONS
 
 project_option = click.option(
     "-p", "--project", "project_file", default="plimsoll.yml", show_default=True,
@@ -93,7 +94,10 @@ def main() -> None:
 @project_option
 @reports_errors
 def validate(project_file: Path) -> None:
-    """Load the project and every check; print file:line: message per problem."""
+    """Check the project and its check files; print each problem.
+
+    One line per problem, file:line: message; exit 2 if there is any.
+    """
     project = load_project(project_file)
     click.echo(f"{project_file}: {_plural(len(project.checks), 'check')}, {_plural(len(project.sources), 'source')}: ok")
 
@@ -103,7 +107,7 @@ def validate(project_file: Path) -> None:
 @project_option
 @reports_errors
 def show_sql(check: str, project_file: Path) -> None:
-    """Print every SQL statement a run executes for CHECK, stage by stage."""
+    """Print the SQL a run executes for CHECK, stage by stage."""
     project = load_project(project_file)
     (chosen,) = select_checks(project, [check])
     click.echo(check_plan(chosen).sql, nl=False)
@@ -117,7 +121,11 @@ def show_sql(check: str, project_file: Path) -> None:
               help="Seconds to wait for another run to release the warehouse.")
 @reports_errors
 def run(project_file: Path, checks: tuple[str, ...], rebuild: bool, wait: float) -> None:
-    """Incremental runs over the files not yet read (one, unless the backlog exceeds max_read_per_run)."""
+    """Run the checks over the lake files not read before.
+
+    One run, or several in turn when the backlog exceeds max_read_per_run; exit 2 when a changed check
+    was left out (run it with --rebuild).
+    """
     project = load_project(project_file)
     with _Progress() as progress:
         result = run_checks(project, list(checks), rebuild, progress, wait=wait)
@@ -141,7 +149,8 @@ def run(project_file: Path, checks: tuple[str, ...], rebuild: bool, wait: float)
 
 @main.command()
 @project_option
-@click.option("--status", type=click.Choice(["open", "closed", "all"]), default="all", show_default=True)
+@click.option("--status", type=click.Choice(["open", "closed", "all"]), default="all", show_default=True,
+              help="Only open or only closed alerts.")
 @click.option("--check", "checks", multiple=True, help="Only alerts of this check (repeatable).")
 @click.option("--since", type=click.DateTime(), default=None, help="Only alerts opened at or after this data time.")
 @click.option("--json", "as_json", is_flag=True, help="JSON for scripts.")
@@ -161,7 +170,10 @@ def alerts(project_file: Path, status: str, checks: tuple[str, ...], since: date
 @click.option("--since", type=click.DateTime(), default=None, help="Only alerts opened at or after this data time.")
 @reports_errors
 def report(project_file: Path, out: Path, checks: tuple[str, ...], since: datetime | None) -> None:
-    """Write a static HTML page: each alert's series against its threshold, open alerts first."""
+    """Write one static HTML page of the alerts and their series.
+
+    Open alerts first; each alert's windows charted against its threshold.
+    """
     from toolkit.outputs.report import write_report
 
     project = load_project(project_file, check_schema=False)
@@ -176,7 +188,10 @@ def report(project_file: Path, out: Path, checks: tuple[str, ...], since: dateti
 @click.option("--retry-abandoned", is_flag=True, help="Queue abandoned deliveries again, from attempt 1.")
 @reports_errors
 def notify(project_file: Path, retry_text: str, retry_abandoned: bool) -> None:
-    """POST new alert events to the project's webhooks; exit 1 while some delivery fails."""
+    """POST new alert events to the project's webhooks.
+
+    Exit 1 while a delivery fails or waits for a retry.
+    """
     from toolkit.outputs.delivery import describe, notify as deliver
     from toolkit.config.fields import parse_duration
 
@@ -193,11 +208,16 @@ def notify(project_file: Path, retry_text: str, retry_abandoned: bool) -> None:
 @main.command()
 @click.option("--workdir", default="plimsoll-demo", show_default=True,
               type=click.Path(file_okay=False, path_type=Path), help="Where to build the demo.")
-@click.option("--sessions", default=2_000_000, show_default=True, type=click.IntRange(min=10_000))
-@click.option("--seed", default=7, show_default=True, type=int)
+@click.option("--sessions", default=2_000_000, show_default=True,
+              type=click.IntRange(min=MIN_SESSIONS, max=MAX_SESSIONS), help="How many sessions the lake holds.")
+@click.option("--seed", default=7, show_default=True, type=click.IntRange(min=0, max=2**63 - 1),
+              help="Another seed, another lake.")
 @reports_errors
 def demo(workdir: Path, sessions: int, seed: int) -> None:
-    """Build Fernhill Broadcasting's demo lake, run every catalogue check, print what was found."""
+    """Build the Fernhill demo lake and run the catalogue over it.
+
+    Prints each alert and whether it matches an incident the demo planted.
+    """
     from toolkit.demo.run import build_and_run, summary
 
     with _Progress() as progress:
@@ -226,7 +246,10 @@ def demo(workdir: Path, sessions: int, seed: int) -> None:
 def backtest(checks: tuple[str, ...], project_file: Path, start: datetime, end: datetime,
              labels_file: Path | None, assignments: tuple[str, ...], settings: tuple[str, ...],
              keep: Path | None, as_json: bool) -> None:
-    """Replay the lake for CHECK... into scratch warehouses, the baseline and each setting side by side."""
+    """Replay the lake to see what CHECK... would have done.
+
+    The check files as they are and each setting side by side, each in a scratch warehouse.
+    """
     from toolkit.backtest.replay import backtest as replay
     from toolkit.backtest.replay import backtest_json
     from toolkit.backtest.settings import settings_from

@@ -62,7 +62,7 @@ class Binder:
         if self.table is None:
             return parsed
         try:
-            row = self.con.execute(f"DESCRIBE SELECT {parsed.sql} AS v FROM {self.table}").fetchone()
+            row = self.con.execute(f"DESCRIBE SELECT {parsed.sql} AS v FROM {quote_ident(self.table)}").fetchone()
         except duckdb.Error as err:
             first = str(err).strip().splitlines()[0]
             section.error(path, f"{dotted(path)}: DuckDB cannot use this expression: {first}")
