@@ -170,8 +170,7 @@ SELECT 1 FROM parquet_schema($files) LIMIT 1;
 -- @statement lake.partition
 -- Sessions of one file ($files) in a partition folder whose own column says otherwise than the
 -- folder's value ($value, read as the column's type): DuckDB would take the folder's value and
--- move them. The column and its type in the file (a plain type name, checked before it is written
--- here): COLUMN, TYPE.
+-- move them. The column's type in the file is a plain type name, checked before it is written here.
 SELECT count(*) AS contradicting, any_value("COLUMN"::VARCHAR) AS file_value
 FROM read_parquet($files, hive_partitioning = false)
 WHERE "COLUMN" IS DISTINCT FROM TRY_CAST($value AS TYPE);

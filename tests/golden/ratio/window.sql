@@ -7,13 +7,23 @@ SELECT {'site': key['site']} AS key, last_window_number, last_end
 FROM key_state
 WHERE check_name = 'golden';
 
+-- How count windows are found, all series at once. Number each series' sessions 0, 1, 2 … in
+-- (event_time, session_id) order: its position. Windows are laid greedily from position 0: a
+-- window of 30 sessions can start at position p when the 30th from there ended within
+-- INTERVAL 6 HOUR of the first. A position where that fails is a cut. A window starting at a cut either
+-- times out, once the watermark has passed its first session's time + INTERVAL 6 HOUR (it closes with
+-- the sessions up to that moment, and the next window starts behind them), or stays open: it and
+-- every session after it are carried to the next run.
+--   So from where a span of full windows starts (position 0, or just behind a cut that timed out),
+-- windows follow every 30 positions up to the first cut on that stride; only that cut matters.
+-- A series walks from span to span, one step per cut that timed out.
 CREATE OR REPLACE TEMP TABLE pooled AS
 SELECT
     p.*,
-    row_number() OVER in_order - 1 AS i,
-    -- a window starting here cannot fill: fewer than N sessions left, or the N-th is too late, or
-    -- it is held: a backlog read in several runs holds the sessions at or after read_until until the
-    -- earlier ones still unread have been read, so windows fill in the order one run fills them
+    row_number() OVER in_order - 1 AS position,
+    -- a window starting here cannot fill: fewer than 30 sessions left, or the 30th is too
+    -- late, or it is held: a backlog read in several runs holds the sessions at or after read_until
+    -- until the earlier ones still unread have been read, so windows fill as one run fills them
     coalesce(lead(p.event_time, 29) OVER in_order > p.event_time + INTERVAL 6 HOUR
              OR lead(p.held, 29) OVER in_order, true) AS is_cut
 FROM (
@@ -31,61 +41,73 @@ FROM (
 ) AS p
 WINDOW in_order AS (PARTITION BY p.key ORDER BY p.event_time, p.session_id);
 
--- Cuts: window starts that cannot fill; each either times out (the watermark has passed
--- start + max_wait: the window closes with the sessions within max_wait of its start, up to
--- position lim) or stays open and is carried.
+-- Every cut, whether it times out, and for one that does the position of the last session within
+-- INTERVAL 6 HOUR of it (cut_end: a count over the event times, looked at only in the series that
+-- have a cut that times out).
 CREATE OR REPLACE TEMP TABLE cuts AS
-WITH starts AS (
-    SELECT key, i, event_time,
-           event_time + INTERVAL 6 HOUR < (SELECT current FROM watermarks) AS times_out
+WITH timing_out AS (
+    SELECT DISTINCT key
     FROM pooled
-    WHERE is_cut
+    WHERE is_cut AND event_time + INTERVAL 6 HOUR < (SELECT current FROM watermarks)
 )
-SELECT c.key, c.i, CASE WHEN c.times_out THEN t.i END AS lim, c.times_out
-FROM starts AS c
--- the last session (by time, then position) no later than max_wait after the cut's first one,
--- looked up only in the series that have a cut that times out
-ASOF LEFT JOIN (
-    SELECT key, i, epoch_us(event_time)::HUGEINT * 1000000000000 + i AS at
-    FROM pooled
-    WHERE key IN (SELECT key FROM starts WHERE times_out)
-) AS t
-    ON t.key = c.key
-   AND t.at <= epoch_us(c.event_time + INTERVAL 6 HOUR)::HUGEINT * 1000000000000 + 999999999999;
-
--- Spans of full windows per series: each starts at position span_start (the start of the pool, or
--- just behind a cut that timed out) and runs to the first cut on its stride, at position cut_start
--- (NULL: no cut, full windows to the end). When that cut times out (cut_closes), its window holds
--- the sessions up to position cut_end and the next span starts behind it. One step per cut, all
--- series at once.
-CREATE OR REPLACE TEMP TABLE full_window_spans AS
-WITH RECURSIVE span(key, span_start, cut_start, cut_end, cut_closes) AS (
-    SELECT key, 0::BIGINT, min(i), arg_min(lim, i), arg_min(times_out, i)
-    FROM cuts
-    WHERE i % 30 = 0
-    GROUP BY key
-    UNION ALL
-    SELECT c.key, s.cut_end + 1, min(c.i), arg_min(c.lim, c.i), arg_min(c.times_out, c.i)
-    FROM span AS s
-    JOIN cuts AS c ON c.key = s.key AND c.i > s.cut_end AND (c.i - s.cut_end - 1) % 30 = 0
-    WHERE s.cut_closes
-    GROUP BY c.key, s.cut_end
-)
-SELECT key, span_start, cut_start, cut_end, cut_closes FROM span
-UNION ALL
--- after the last cut that timed out, or where a series has no cut on its stride: full windows to the end
-SELECT key, span_start, NULL, NULL, NULL
+SELECT key, position AS cut_start, times_out, CASE WHEN times_out THEN reach - 1 END AS cut_end
 FROM (
-    SELECT p.key, coalesce(max(s.cut_end) + 1, 0) AS span_start, count(s.key) AS cuts_found,
-           arg_max(s.cut_closes, s.span_start) AS last_cut_closes
-    FROM (SELECT DISTINCT key FROM pooled) AS p
-    LEFT JOIN span AS s ON s.key = p.key
-    GROUP BY p.key
+    SELECT key, position, is_cut,
+           event_time + INTERVAL 6 HOUR < (SELECT current FROM watermarks) AS times_out,
+           count(*) OVER (PARTITION BY key ORDER BY epoch_us(event_time)
+                          RANGE BETWEEN UNBOUNDED PRECEDING AND 21600000000 FOLLOWING) AS reach
+    FROM pooled
+    WHERE key IN (SELECT key FROM timing_out)
 )
-WHERE cuts_found = 0 OR last_cut_closes;
+WHERE is_cut
+UNION ALL
+SELECT key, position, false, NULL
+FROM pooled
+WHERE is_cut AND key NOT IN (SELECT key FROM timing_out);
 
--- Each pooled session's window, named by the position of its first session (w0; NULL: still open);
--- a view: a run holds every table it makes until it commits, and this one would be another copy.
+-- Where a span of full windows can start (position 0, and just behind each cut that times out),
+-- and the first cut on its stride: at or after the start, a whole number of windows on. For every
+-- start at once: the smallest cut not before it among the positions equal to it modulo 30.
+CREATE OR REPLACE TEMP TABLE span_ends AS
+WITH span_starts AS (
+    SELECT key, 0::BIGINT AS span_start FROM pooled WHERE position = 0
+    UNION
+    SELECT key, cut_end + 1 FROM cuts WHERE times_out
+),
+marks AS (
+    SELECT key, span_start AS mark, false AS is_cut FROM span_starts
+    UNION ALL
+    SELECT key, cut_start AS mark, true AS is_cut FROM cuts
+),
+found AS (
+    SELECT key, mark AS span_start, is_cut,
+           min(CASE WHEN is_cut THEN mark END) OVER (
+               PARTITION BY key, mark % 30 ORDER BY mark DESC, is_cut DESC
+               ROWS BETWEEN UNBOUNDED PRECEDING AND CURRENT ROW) AS cut_start
+    FROM marks
+)
+SELECT f.key, f.span_start, f.cut_start, c.cut_end, coalesce(c.times_out, false) AS cut_closes
+FROM found AS f
+LEFT JOIN cuts AS c ON c.key = f.key AND c.cut_start = f.cut_start
+WHERE NOT f.is_cut;
+
+-- The walk: each series' spans from position 0, on behind every cut that times out (one step per
+-- such cut, all series at once). A span whose cut stays open, or that has no cut (cut_start NULL:
+-- full windows to the end), is its series' last.
+CREATE OR REPLACE TEMP TABLE full_window_spans AS
+WITH RECURSIVE walk AS (
+    SELECT key, span_start, cut_start, cut_end, cut_closes FROM span_ends WHERE span_start = 0
+    UNION ALL
+    SELECT n.key, n.span_start, n.cut_start, n.cut_end, n.cut_closes
+    FROM walk AS w
+    JOIN span_ends AS n ON n.key = w.key AND n.span_start = w.cut_end + 1
+    WHERE w.cut_closes
+)
+SELECT key, span_start, cut_start, cut_end, cut_closes FROM walk;
+
+-- Each pooled session's window, named by the position of its first session (window_first; NULL:
+-- still open); a view: a run holds every table it makes until it commits, and this one would be
+-- another copy.
 CREATE OR REPLACE TEMP VIEW placed AS
 WITH spans AS (
     SELECT *, coalesce(lead(span_start) OVER (PARTITION BY key ORDER BY span_start), 9223372036854775807) AS next_span_start
@@ -94,36 +116,36 @@ WITH spans AS (
 SELECT
     p.*,
     CASE
-        WHEN r.cut_start IS NULL OR p.i < r.cut_start
-            THEN r.span_start + (p.i - r.span_start) // 30 * 30
-        WHEN r.cut_closes AND p.i <= r.cut_end THEN r.cut_start
-    END AS w0
+        WHEN r.cut_start IS NULL OR p.position < r.cut_start
+            THEN r.span_start + (p.position - r.span_start) // 30 * 30
+        WHEN r.cut_closes AND p.position <= r.cut_end THEN r.cut_start
+    END AS window_first
 FROM pooled AS p
-JOIN spans AS r ON p.key = r.key AND p.i >= r.span_start AND p.i < r.next_span_start;
+JOIN spans AS r ON p.key = r.key AND p.position >= r.span_start AND p.position < r.next_span_start;
 
 -- window_number: count windows are numbered 1, 2, 3 … in each series, on from its last window.
 CREATE OR REPLACE TEMP TABLE closed_windows AS
 SELECT
-    w.key, w.w0, w.window_start, w.window_end,
-    coalesce(s.last_window_number, 0) + row_number() OVER (PARTITION BY w.key ORDER BY w.w0) AS window_number
+    w.key, w.window_first, w.window_start, w.window_end,
+    coalesce(s.last_window_number, 0) + row_number() OVER (PARTITION BY w.key ORDER BY w.window_first) AS window_number
 FROM (
-    SELECT key, w0, min(event_time) AS window_start, max(event_time) AS window_end
+    SELECT key, window_first, min(event_time) AS window_start, max(event_time) AS window_end
     FROM placed
-    WHERE w0 IS NOT NULL
-    GROUP BY key, w0
+    WHERE window_first IS NOT NULL
+    GROUP BY key, window_first
 ) AS w
 LEFT JOIN series_last AS s ON s.key = w.key;
 
 -- A view: the measure stage reads it once.
 CREATE OR REPLACE TEMP VIEW window_sessions AS
-SELECT p.* EXCLUDE (i, is_cut, held, w0), w.window_number, w.window_start, w.window_end
+SELECT p.* EXCLUDE (position, is_cut, held, window_first), w.window_number, w.window_start, w.window_end
 FROM placed AS p
-JOIN closed_windows AS w ON w.key = p.key AND w.w0 = p.w0;
+JOIN closed_windows AS w ON w.key = p.key AND w.window_first = p.window_first;
 
 CREATE OR REPLACE TEMP TABLE carry_next AS
 SELECT MAP {'site': struct_extract(key, 'site')} AS key, 'site=' || CASE WHEN struct_extract(key, 'site') IS NULL THEN '<null>' WHEN regexp_matches(struct_extract(key, 'site'), '^[\p{L}\p{N}_.:/@+-]+$') THEN struct_extract(key, 'site') ELSE '"' || replace(replace(struct_extract(key, 'site'), '\', '\\'), '"', '\"') || '"' END AS key_text, event_time, session_id, numerator, denominator
 FROM placed
-WHERE w0 IS NULL;
+WHERE window_first IS NULL;
 
 CREATE OR REPLACE TEMP TABLE window_counts AS
 SELECT count(*) FILTER (WHERE late) AS late_rows FROM pooled;
