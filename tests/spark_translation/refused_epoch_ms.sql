@@ -2,4 +2,4 @@
 -- duckdb:
 SELECT epoch_ms(ended_ms) AS ended_at FROM arrivals
 -- refused:
-make_timestamp with scale 3: only microseconds are translated
+a timestamp from epoch milliseconds (epoch_ms) has no Spark translation here; write make_timestamp(epoch microseconds), e.g. make_timestamp(ended_ms * 1000)

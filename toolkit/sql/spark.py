@@ -84,7 +84,10 @@ class _Generator(Spark.Generator):  # type: ignore[name-defined,misc]
 def _micros_sql(gen: _Generator, e: exp.UnixToTime) -> str:
     scale = e.args.get("scale")
     if scale is None or int(scale.this) != 6:
-        raise TranslationError(f"make_timestamp with scale {scale}: only microseconds are translated")
+        unit = {"0": "seconds (to_timestamp)", "3": "milliseconds (epoch_ms)"}.get(str(scale.this) if scale else "0",
+                                                                              "that unit")
+        raise TranslationError(f"a timestamp from epoch {unit} has no Spark translation here; "
+                               "write make_timestamp(epoch microseconds), e.g. make_timestamp(ended_ms * 1000)")
     return gen.func("TIMESTAMP_MICROS", e.this)
 
 
@@ -96,6 +99,7 @@ class SparkTarget(Spark):
 
 # DuckDB functions sqlglot passes through by name, and their Spark names
 _RENAMED = {"epoch_us": "UNIX_MICROS", "url_decode": "URL_DECODE"}
+_SPARK_OWN = {"ARRAYS_OVERLAP"}  # Spark functions the rewrites below write by name
 
 
 def translate(sql: str) -> str:
@@ -106,7 +110,7 @@ def translate(sql: str) -> str:
         raise TranslationError(f"cannot parse: {_first_line(err)}") from None
     tree = tree.transform(_to_spark_node)
     for node in tree.find_all(exp.Anonymous):
-        if node.name not in _RENAMED.values():
+        if node.name not in _RENAMED.values() and node.name not in _SPARK_OWN:
             raise TranslationError(f"{node.name}() has no known Spark SQL translation")
     if isinstance(tree, exp.Create):
         tree.set("kind", "VIEW")
@@ -135,6 +139,19 @@ def _to_spark_node(node: exp.Expression) -> exp.Expression:
         x = node.expressions[0]
         return exp.paren(exp.EQ(this=exp.paren(exp.Sub(this=x.copy(), expression=x.copy())),
                                 expression=exp.Literal.number(0)))
+    if isinstance(node, exp.IsInf):
+        # Spark has no isinf: a number is infinite when its absolute value equals infinity
+        return exp.paren(exp.EQ(this=exp.Abs(this=node.this.copy()),
+                                expression=exp.cast(exp.Literal.string("Infinity"), "DOUBLE")))
+    if isinstance(node, exp.RegexpFullMatch):
+        # Spark's RLIKE finds a match anywhere: anchor the whole pattern
+        anchored = exp.Concat(expressions=[exp.Literal.string("^(?:"), node.expression.copy(), exp.Literal.string(")$")])
+        return exp.RegexpLike(this=node.this.copy(), expression=anchored)
+    if isinstance(node, exp.ArrayOverlaps):
+        return exp.Anonymous(this="ARRAYS_OVERLAP", expressions=[node.this.copy(), node.expression.copy()])
+    if isinstance(node, exp.DateBin):
+        raise TranslationError("time_bucket() has no Spark SQL translation; write the bucket with arithmetic "
+                               "on epoch_us()")
     if isinstance(node, exp.Anonymous) and node.name.lower() in _RENAMED:
         return exp.Anonymous(this=_RENAMED[node.name.lower()], expressions=node.expressions)
     if isinstance(node, exp.ToMap):
