@@ -1,11 +1,12 @@
 -- `plimsoll notify`, step 1, in one transaction: every alert event not yet in the outbox, once per
--- webhook ($webhooks: name, url). An 'opened' or 'closed' event is sent. An 'updated' event is sent
+-- webhook ($webhooks: name, url). An 'opened', 'reopened' or 'closed' event is sent. An 'updated' event is sent
 -- only once affected_sessions has grown by $growth (0.5 = 50 %) over the last event queued for the same
 -- incident and webhook; the others are kept as 'skipped' (skip_reason 'growth'), so each event is
 -- decided once, and queuing again adds nothing.
 --
 -- An event is known by its incident, not its alert_id: the alert's fingerprint (check, key, split
--- value) and opened_at, the kind of event, and for 'updated' its data time. A rebuild after a check
+-- value) and opened_at, the kind of event, and its data time for 'updated', 'reopened' and a close
+-- that follows a reopening (an alert reopened closes more than once). A rebuild after a check
 -- changed (--rebuild) derives the same incidents again under new alert ids; what a webhook was
 -- told about them is not told again, and growth is measured against what it was told. The rebuild
 -- also closes the old definition's open alerts as 'check changed': that close is skipped
@@ -18,12 +19,12 @@
 -- problems going on now.
 -- The payload carries keys and counts, never a session or viewer id.
 CREATE OR REPLACE TEMP MACRO outbox_event_identity(fingerprint, opened_at, event, occurred_at, close_reason,
-                                                   definition_hash) AS
+                                                   definition_hash, after_reopening) AS
     md5(to_json({
         'fingerprint': fingerprint,
         'opened_at': opened_at,
         'event': event,
-        'occurred_at': CASE WHEN event = 'updated' THEN occurred_at END,
+        'occurred_at': CASE WHEN event IN ('updated', 'reopened') OR after_reopening THEN occurred_at END,
         -- each definition's 'check changed' close is its own event: the rebuilt alert may close later
         'definition': CASE WHEN event = 'closed' AND close_reason = 'check changed' THEN definition_hash END
     })::VARCHAR);
@@ -33,7 +34,7 @@ UPDATE outbox
 SET fingerprint = a.fingerprint,
     opened_at = a.opened_at,
     event_identity = outbox_event_identity(a.fingerprint, a.opened_at, outbox.event, outbox.occurred_at,
-                                           a.close_reason, a.definition_hash)
+                                           a.close_reason, a.definition_hash, false)
 FROM alerts AS a
 WHERE a.alert_id = outbox.alert_id AND outbox.event_identity IS NULL;
 
@@ -53,9 +54,12 @@ events AS (
         e.alert_id, e.run_id, e.occurred_at, e.event, e.value, e.threshold, e.affected_sessions,
         a.check_name, a.severity, a.key, a.key_text, a.split_value, a.opened_at, a.closed_at,
         a.close_reason, a.fingerprint, a.status AS alert_status,
-        CASE e.event WHEN 'opened' THEN 0 WHEN 'updated' THEN 1 ELSE 2 END AS event_rank,
+        CASE e.event WHEN 'opened' THEN 0 WHEN 'reopened' THEN 0 WHEN 'updated' THEN 1 ELSE 2 END AS event_rank,
         outbox_event_identity(a.fingerprint, a.opened_at, e.event, e.occurred_at, a.close_reason,
-                              a.definition_hash) AS event_identity,
+                              a.definition_hash, e.event = 'closed' AND EXISTS (
+                                  SELECT 1 FROM alert_events AS r
+                                  WHERE r.alert_id = e.alert_id AND r.event = 'reopened' AND r.occurred_at < e.occurred_at
+                              )) AS event_identity,
         e.event = 'closed' AND a.close_reason = 'check changed' AND EXISTS (
             SELECT 1
             FROM alerts AS r  -- an alert of the same incident made by the rebuild or after it
@@ -151,8 +155,10 @@ SELECT
         'key_text': f.key_text,
         'split_value': f.split_value,
         'opened_at': strftime(f.opened_at, '%Y-%m-%dT%H:%M:%SZ'),
-        'closed_at': CASE WHEN f.event = 'closed' THEN strftime(f.closed_at, '%Y-%m-%dT%H:%M:%SZ') END,
-        'close_reason': CASE WHEN f.event = 'closed' THEN f.close_reason END,
+        'closed_at': CASE WHEN f.event = 'closed' THEN strftime(f.occurred_at, '%Y-%m-%dT%H:%M:%SZ') END,
+        -- only a recovery can be reopened: a close before the alert's last one was a recovery
+        'close_reason': CASE WHEN f.event = 'closed' THEN
+            CASE WHEN f.closed_at = f.occurred_at THEN f.close_reason ELSE 'recovered' END END,
         -- NaN and infinity are not JSON: a strict parser would refuse the whole event
         'value': CASE WHEN isfinite(f.value) THEN f.value END,
         'threshold': CASE WHEN isfinite(f.threshold) THEN f.threshold END,

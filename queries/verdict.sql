@@ -37,9 +37,13 @@
 -- each with value 0: it had no bad sessions in them.
 {% endif %}
 --
--- Verdict: a window breaches when it has a threshold, its {{ "EWMA statistic" if b.method == "ewma" else "value" }} is {{ "above" if check.direction == "up" else "below" }} it, and it passes the guard
--- (at least {{ g.min_sessions }} sessions{% if measure.kind == "rate" %} and {{ g.min_bad }} bad{% endif %}); every other window with a threshold and a value is
--- healthy. A window without a value (a zero denominator, no session with a value) gives no verdict.
+-- Verdict: a window breaches when it has a threshold, its {{ "EWMA statistic" if b.method == "ewma" else "value" }} is {{ "above" if check.direction == "up" else "below" }} it, and the data is enough
+-- to say so: at least {{ g.min_sessions }} sessions{% if measure.kind == "rate" %}, {{ g.min_bad }} bad{% endif %}{% if b.confidence %} and the confidence bound below{% endif %}. It is healthy when it has a threshold, a
+-- value, at least {{ g.min_sessions }} sessions and is not beyond the threshold. Every other window gets no verdict
+-- (breach NULL): too few sessions, no value (a zero denominator, no session with a value){% if measure.kind == "rate" or b.confidence %}, or
+-- beyond the threshold on too little evidence{% endif %}. A window without a verdict is neither healthy nor a breach: it
+-- does not enter the history and cannot close an alert. A window before the series has a threshold
+-- enters the history when it has a value and at least {{ g.min_sessions }} sessions (breach false).
 {% if b.confidence %}
 -- confidence {{ b.confidence }}: it also needs the {{ "lower" if check.direction == "up" else "upper" }} end of its Wilson score interval (Wilson 1927)
 -- at that two-sided confidence (z = {{ z_for(b.confidence) }}) beyond the threshold, so a small noisy window cannot:
@@ -73,7 +77,7 @@ quiet AS (
     JOIN (SELECT key, key_window, window_number, sessions FROM key_windows WHERE check_name = {{ check_lit }}
           UNION ALL SELECT key, key_window, window_number, sessions FROM new_key_windows) AS k
         ON k.key = f.key AND k.key_window < f.first_window
-        AND k.key_window >= f.first_window - {{ b.history }}
+        AND k.sessions >= {{ g.min_sessions }}   -- the quiet windows with data enough to be history
 ){% endif %}
 
 SELECT key, split_value, window_number, value, sessions, bad
@@ -157,7 +161,7 @@ series_rows AS (
     FROM history AS h
     SEMI JOIN moving AS s ON h.key = s.key AND h.split_value IS NOT DISTINCT FROM s.split_value
     UNION ALL
-    SELECT j.key, j.split_value, j.window_number, j.value, j.sessions, j.bad, true, NOT j.breach AND j.value IS NOT NULL
+    SELECT j.key, j.split_value, j.window_number, j.value, j.sessions, j.bad, true, coalesce(NOT j.breach, false) AND j.value IS NOT NULL
     FROM judged AS j
     SEMI JOIN moving AS s ON j.key = s.key AND j.split_value IS NOT DISTINCT FROM s.split_value
 ),
@@ -192,27 +196,28 @@ SELECT key, split_value, window_number, baseline, {% if b.method == "ewma" %}spr
 FROM framed
 WHERE is_new;
 
--- round_verdicts: each recomputed window's threshold and whether it breaches.
+-- round_verdicts: each recomputed window's threshold and verdict: breach true (a breach), false (healthy,
+-- or no threshold yet with enough data to be history) or NULL (no verdict: too little data).
 CREATE OR REPLACE TEMP TABLE round_verdicts AS
 SELECT
     *,
-    coalesce(
-        threshold IS NOT NULL
-        AND value IS NOT NULL
-        AND {{ "statistic" if b.method == "ewma" else "value" }} {{ ">" if check.direction == "up" else "<" }} threshold
-        AND sessions >= {{ g.min_sessions }}
+    CASE
+        WHEN value IS NULL OR sessions < {{ g.min_sessions }} THEN NULL
+        WHEN threshold IS NULL
+          OR NOT coalesce({{ "statistic" if b.method == "ewma" else "value" }} {{ ">" if check.direction == "up" else "<" }} threshold, false) THEN false
 {% if measure.kind == "rate" %}
-        AND bad >= {{ g.min_bad }}
+        WHEN bad < {{ g.min_bad }} THEN NULL
 {% endif %}
 {% if b.confidence %}
 {% set z = z_for(b.confidence) %}
 {% if check.direction == "up" %}
-        AND {{ m.wilson_lower("bad", "sessions", z) }} > threshold
+        WHEN NOT coalesce({{ m.wilson_lower("bad", "sessions", z) }} > threshold, false) THEN NULL
 {% else %}
-        AND {{ m.wilson_upper("bad", "sessions", z) }} < threshold
+        WHEN NOT coalesce({{ m.wilson_upper("bad", "sessions", z) }} < threshold, false) THEN NULL
 {% endif %}
 {% endif %}
-    , false) AS breach
+        ELSE true
+    END AS breach
 FROM (
     SELECT
         j.key, j.split_value, j.window_number, j.value, {% if b.method == "ewma" %}j.statistic, {% endif %}j.sessions, j.bad, base.baseline, base.history_windows,

@@ -68,6 +68,7 @@ class OracleCheck:
     min_bad: int = 0
     recover_after: int = 2
     expire_after: timedelta = timedelta(days=7)
+    reopen_within: timedelta = timedelta(hours=6)
     definition: str = ""                       # the compiled check's definition hash (in alert ids)
     where: RowFn | None = None
     exclude: RowFn | None = None
@@ -343,7 +344,8 @@ def judge(check: OracleCheck, series: list[Row], prior: list[int] | tuple[int, .
     the n-1 windows of its key before it).
     """
     ambiguous = False
-    eligible = [Earlier(0.0, n, 0) for n in prior]
+    # a quiet window is history when it has sessions enough for a verdict
+    eligible = [Earlier(0.0, n, 0) for n in prior if n >= check.min_sessions]
     up = check.direction == "up"
     z = check.target if check.method == "ewma" else None   # the EWMA of the previous window
     zeros = not z                                           # only zeros went into z: it is exact
@@ -369,16 +371,23 @@ def judge(check: OracleCheck, series: list[Row], prior: list[int] | tuple[int, .
             crosses = judged > threshold if up else judged < threshold
             if _near(judged, threshold) and not (exact and w["exact"] and (check.method != "ewma" or zeros)):
                 ambiguous = True
-        guarded = w["sessions"] >= check.min_sessions and (
-            check.kind != "rate" or w["bad"] >= check.min_bad)
-        gate = True
-        if check.confidence is not None and crosses and guarded:
-            bound = wilson(w["bad"], w["sessions"], check.confidence, "lower" if up else "upper")
-            gate = bound > threshold if up else bound < threshold
-            if _near(bound, threshold, 1e-8):
-                ambiguous = True
-        w["breach"] = bool(crosses and guarded and gate)
-        if not w["breach"] and value is not None:
+        # breach: True, False (healthy, or no threshold yet), None (no verdict: too little data)
+        if value is None or w["sessions"] < check.min_sessions:
+            verdict = None
+        elif not crosses:
+            verdict = False
+        elif check.kind == "rate" and w["bad"] < check.min_bad:
+            verdict = None
+        else:
+            verdict = True
+            if check.confidence is not None:
+                bound = wilson(w["bad"], w["sessions"], check.confidence, "lower" if up else "upper")
+                if not (bound > threshold if up else bound < threshold):
+                    verdict = None
+                if _near(bound, threshold, 1e-8):
+                    ambiguous = True
+        w["breach"] = verdict
+        if verdict is False:
             eligible.append(Earlier(value, w["sessions"], w["bad"]))
     return ambiguous
 
@@ -396,22 +405,38 @@ def lifecycle(check: OracleCheck, series: list[Row], w: datetime, ident: dict[st
     up = check.direction == "up"
     current: Row | None = None
     prev_end: datetime | None = None
+    last_recovered: tuple[Row, datetime] | None = None   # the alert of the series' last close, a recovery
+
 
     def close(reason: str, at: datetime) -> None:
-        nonlocal current
+        nonlocal current, last_recovered
         current["status"] = "closed"
         current["close_reason"] = reason
         current["closed_at"] = at
         events.append({"alert_id": current["alert_id"], "event": "closed", "occurred_at": at})
+        last_recovered = (current, at) if reason == "recovered" else None
         current = None
 
     for win in series:
         end = win["window_end"]
         if current is not None and end > prev_end + x:
             close("expired", prev_end + x)
-        # no verdict without a value (a zero denominator, an empty window): neither healthy nor a breach
-        healthy = win["threshold"] is not None and win["value"] is not None and not win["breach"]
-        if win["breach"]:
+        # no verdict (breach None: too little data, no value): neither healthy nor a breach
+        healthy = win["threshold"] is not None and win["value"] is not None and win["breach"] is False
+        if win["breach"] and current is None and last_recovered is not None \
+                and win["window_start"] < last_recovered[1] + check.reopen_within:
+            # a breach soon after a recovery reopens that alert: its counts go on
+            current = last_recovered[0]
+            last_recovered = None
+            affected = win["bad"] if check.kind == "rate" else win["sessions"]
+            current.update(status="open", close_reason=None, closed_at=None, healthy_streak=0,
+                           last_breach_at=end, breach_windows=current["breach_windows"] + 1,
+                           affected_sessions=current["affected_sessions"] + affected,
+                           peak_value=(max if up else min)(current["peak_value"], win["value"]))
+            events.append({"alert_id": current["alert_id"], "event": "reopened", "occurred_at": end,
+                           "value": win["value"], "threshold": win["threshold"],
+                           "affected_sessions": current["affected_sessions"]})
+        elif win["breach"]:
             affected = win["bad"] if check.kind == "rate" else win["sessions"]
             if current is not None:
                 current["breach_windows"] += 1
@@ -509,6 +534,6 @@ def alert_order(r: Row) -> tuple:
 
 def event_order(r: Row) -> tuple:
     """Count windows can share an end time, so ties are broken by the cumulative count and value."""
-    rank = {"opened": 0, "updated": 1, "closed": 2}
+    rank = {"opened": 0, "reopened": 0, "updated": 1, "closed": 2}
     return (r["alert_id"], r["occurred_at"], rank[r["event"]], r.get("affected_sessions") or 0,
             r.get("value") or 0.0)

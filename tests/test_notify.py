@@ -690,3 +690,27 @@ def test_catch_up_can_reach_back_as_far_as_wanted(tmp_path: Path, hook: Hook) ->
     result = notify(project, clock=PretendClock())
     assert (result.queued, result.skipped) == (7, 0) and len(hook.accepted) == 7
 
+
+
+def test_a_reopened_alert_is_sent_and_each_of_its_closes_once(tmp_path: Path, hook: Hook) -> None:
+    from conftest import PLAIN_PROJECT, write_project
+    from test_lifecycle import FLAPPING, HOURS, flapping_rows
+
+    lake = write_rows(tmp_path / "lake", "session_id VARCHAR, ended_at TIMESTAMP, failed BOOLEAN",
+                      flapping_rows({h: c for h, c in HOURS.items() if h <= 9}))
+    project = load_project(write_project(tmp_path, {"flapping.yml": FLAPPING},
+                                         PLAIN_PROJECT.format(lake=lake) + webhooks(hook.url, growth=0)))
+    run(project)
+    notify(project, clock=PretendClock())
+    sent = [json.loads(r.body) for r in hook.accepted]
+    assert [(b["event"], b["occurred_at"][11:16], b["affected_sessions"], b["close_reason"]) for b in sent] == [
+        ("opened", "02:00", 5, None), ("closed", "04:00", 5, "recovered"),
+        ("reopened", "05:00", 10, None), ("closed", "07:00", 10, "recovered")]
+    assert len({b["alert_id"] for b in sent}) == 1 and len({b["idempotency_key"] for b in sent}) == 4
+    # the rest of the day: a new alert; nothing sent twice
+    write_rows(tmp_path / "lake", "session_id VARCHAR, ended_at TIMESTAMP, failed BOOLEAN",
+               flapping_rows({h: c for h, c in HOURS.items() if h > 9}), name="later.parquet")
+    run(project)
+    notify(project, clock=PretendClock())
+    later = [json.loads(r.body) for r in hook.accepted[4:]]
+    assert [(b["event"], b["occurred_at"][11:16]) for b in later] == [("opened", "15:00"), ("updated", "16:00")]

@@ -240,16 +240,19 @@ def cases(draw, kind: str, window: str, split: bool | None = None, name: str = "
         guard["min_bad"] = draw(st.integers(0, 1 if baseline["method"] == "ewma" else 2))
     recover = draw(st.integers(1, 3))
     expire = draw(st.sampled_from(["20m", "1h", "3h", "1d"]))
+    reopen = draw(st.sampled_from(["0s", "20m", "1h", "6h"]))
     where = draw(st.sampled_from(WHERE))
     exclude = draw(st.sampled_from(EXCLUDE))
     spec = {"check": name, "source": "sessions", "by": list(by), "measure": measure,
             "direction": direction, "window": win, "baseline": baseline, "guard": guard,
-            "lifecycle": {"recover_after": recover, "expire_after": expire}, "severity": "high"}
+            "lifecycle": {"recover_after": recover, "expire_after": expire, "reopen_within": reopen},
+            "severity": "high"}
     if where is not None:
         spec["where"] = where.text
     check = oracle.OracleCheck(
         name=name, by=by, direction=direction, min_sessions=guard["min_sessions"],
         min_bad=guard.get("min_bad", 0), recover_after=recover, expire_after=parse_duration(expire),
+        reopen_within=parse_duration(reopen),
         where=where.py if where else None, exclude=exclude.py if exclude else None, severity="high",
         **fields)
     return Case(spec, check, exclude.text if exclude else None)
@@ -402,7 +405,7 @@ def check_against_oracle(cases_: list[Case], rows: list[dict]) -> None:
         event(f"breaches: {'some' if any(w['breach'] for w in r.windows) else 'none'}")
         if case.check.confidence is not None:
             ungated = oracle.run_check(replace(case.check, confidence=None), rows)
-            held = sum(a["breach"] and not b["breach"] for a, b in zip(ungated.windows, r.windows))
+            held = sum(bool(a["breach"]) and not b["breach"] for a, b in zip(ungated.windows, r.windows))
             event(f"windows the confidence gate held back: {'some' if held else 'none'}")
         if case.check.method == "ewma":
             up = case.check.direction == "up"
@@ -411,6 +414,8 @@ def check_against_oracle(cases_: list[Case], rows: list[dict]) -> None:
             event(f"breaches the window's own value would not make: {'some' if alone else 'none'}")
         event(f"alerts closed: {sorted({a['close_reason'] for a in r.alerts if a['close_reason']})}")
         event(f"alerts open: {'some' if any(a['status'] == 'open' for a in r.alerts) else 'none'}")
+        event(f"alerts reopened: {'some' if any(e['event'] == 'reopened' for e in r.events) else 'none'}")
+        event(f"windows without a verdict: {'some' if any(w['breach'] is None for w in r.windows) else 'none'}")
     actual = run_plimsoll(cases_, rows)
     for case in cases_:
         # alert ids carry the compiled definition's hash, which only the toolkit can compute
@@ -556,7 +561,7 @@ def test_oracle_ewma_breaches_on_its_statistic() -> None:
     oracle.judge(check, series)
     # limit 0 + 1 · 1 · √(0.5/1.5) = 0.57735; z = 0, 2, 1, 1 (no value: kept), 0.5
     assert [w["statistic"] for w in series] == [0.0, 2.0, 1.0, 1.0, 0.5]
-    assert [w["breach"] for w in series] == [False, True, True, False, False]   # no value: no verdict
+    assert [w["breach"] for w in series] == [False, True, True, None, False]   # no value: no verdict
 
 
 # Wilson (1927) score interval, as tests/test_statistics.py takes it from Newcombe (1998) Table I
@@ -574,7 +579,7 @@ def test_oracle_confidence_gate_by_hand() -> None:
     # 3 of 40 (7.5 %) clears a 5 % threshold, but its lower Wilson bound at 95 % (2.6 %) does not;
     # 40 of 400 (10 %, bound 7.4 %) does.
     check = _check(history=3, min_history=3, base_q=0.5, floor=0.05, confidence=0.95)
-    for n, bad, breach in ((40, 3, False), (400, 40, True)):
+    for n, bad, breach in ((40, 3, None), (400, 40, True)):
         series = [{"value": 0.0, "sessions": n, "bad": 0, "exact": True} for _ in range(3)]
         series.append({"value": bad / n, "sessions": n, "bad": bad, "exact": True})
         oracle.judge(check, series)
@@ -591,11 +596,12 @@ def test_oracle_quantile_is_quantile_cont() -> None:
 
 def test_oracle_lifecycle_by_hand() -> None:
     def win(hour: int, breach: bool, threshold: float | None = 0.5, value: float = 0.9, bad: int = 3) -> dict:
-        return {"window_end": BASE + timedelta(hours=hour), "breach": breach, "threshold": threshold,
-                "value": value, "bad": bad, "sessions": 10, "window_number": hour}
+        return {"window_start": BASE + timedelta(hours=hour - 1), "window_end": BASE + timedelta(hours=hour),
+                "breach": breach, "threshold": threshold, "value": value, "bad": bad, "sessions": 10,
+                "window_number": hour}
     series = [win(1, True, value=0.7), win(2, False), win(3, True, value=0.9, bad=4), win(4, False),
-              win(5, False, threshold=None), win(6, False), win(7, True), win(10, False), win(11, True)]
-    check = _check(recover_after=2, expire_after=timedelta(hours=2))
+              win(5, None), win(6, False), win(7, True), win(10, False), win(11, True)]
+    check = _check(recover_after=2, expire_after=timedelta(hours=2), reopen_within=timedelta(0))
     ident = {"key_text": "", "split_value": None, "_by": (), "_values": ()}
     alerts, events = oracle.lifecycle(check, series, BASE + timedelta(hours=14), ident)
     got = [(a["opened_at"].hour, a["closed_at"].hour, a["close_reason"], a["breach_windows"],
@@ -606,6 +612,26 @@ def test_oracle_lifecycle_by_hand() -> None:
     assert [e["event"] for e in events] == ["opened", "updated", "closed"] * 1 + ["opened", "closed"] * 2
     alerts, _ = oracle.lifecycle(check, series, BASE + timedelta(hours=13), ident)
     assert alerts[-1]["status"] == "open" and alerts[-1]["healthy_streak"] == 0
+
+
+def test_oracle_reopens_a_recent_recovery_by_hand() -> None:
+    def win(hour: int, breach: bool | None, value: float = 0.9, bad: int = 3) -> dict:
+        return {"window_start": BASE + timedelta(hours=hour - 1), "window_end": BASE + timedelta(hours=hour),
+                "breach": breach, "threshold": 0.5, "value": value, "bad": bad, "sessions": 10,
+                "window_number": hour}
+    # recovered at 3h; the breach of window 5h (starting 4h) is within 2h: reopened, counts go on;
+    # recovered again at 7h; the breach of window 10h starts 9h, 2h after: a new alert
+    series = [win(1, True), win(2, False), win(3, False), win(5, True, value=0.95, bad=5), win(6, False),
+              win(7, False), win(10, True)]
+    check = _check(recover_after=2, expire_after=timedelta(days=1), reopen_within=timedelta(hours=2))
+    ident = {"key_text": "", "split_value": None, "_by": (), "_values": ()}
+    alerts, events = oracle.lifecycle(check, series, BASE + timedelta(hours=11), ident)
+    got = [(a["opened_at"].hour, a["status"], a["closed_at"] and a["closed_at"].hour, a["breach_windows"],
+            a["affected_sessions"], a["peak_value"]) for a in alerts]
+    assert got == [(1, "closed", 7, 2, 8, 0.95), (10, "open", None, 1, 3, 0.9)]
+    assert [(e["event"], e["occurred_at"].hour) for e in events] == [
+        ("opened", 1), ("closed", 3), ("reopened", 5), ("closed", 7), ("opened", 10)]
+    assert events[2]["affected_sessions"] == 8
 
 
 # ----------------------------------------------------------------------------------------------

@@ -128,7 +128,7 @@ class Baseline:
 
 @dataclass(frozen=True)
 class Guard:
-    """Windows too small to be trusted never breach."""
+    """Windows with too little data to be trusted get no verdict."""
 
     min_sessions: int = 1
     min_bad: int = 0
@@ -140,6 +140,7 @@ class Lifecycle:
 
     recover_after: int = 2
     expire_after: timedelta = timedelta(days=7)
+    reopen_within: timedelta = timedelta(hours=6)
 
 
 @dataclass(frozen=True)

@@ -67,7 +67,7 @@ def load_check(doc: Located, sources: dict[str, Source], con: duckdb.DuckDBPyCon
     if measure is not None and measure.kind != "rate" and "min_bad" in guard_s.raw:
         guard_s.error(("guard", "min_bad"), f"guard.min_bad applies to rate measures, not {measure.kind}")
     life_s = Section(doc, ("lifecycle",), top.get("lifecycle") or {}, LIFECYCLE_KEYS, problems)
-    lifecycle = Lifecycle(life_s.get("recover_after"), life_s.get("expire_after"))
+    lifecycle = Lifecycle(life_s.get("recover_after"), life_s.get("expire_after"), life_s.get("reopen_within"))
     if measure is not None and measure.split and set(by) & {measure.split}:
         top.error(("measure", "split"), f"measure.split: '{measure.split}' is already in 'by'")
     if len(problems) > before or None in (name, source, measure, window, baseline):

@@ -204,7 +204,7 @@ CHECK_KEYS = (
     Key("direction", "choice", "up: alert when higher than the threshold; down: when lower", False, "up", DIRECTIONS),
     Key("window", "mapping", "how sessions are grouped into windows", True),
     Key("baseline", "mapping", "how each window's threshold is derived from history", True),
-    Key("guard", "mapping", "windows too small never breach"),
+    Key("guard", "mapping", "windows with too little data get no verdict"),
     Key("lifecycle", "mapping", "when an open alert closes"),
     Key("severity", "choice", "carried on alerts", False, "medium", SEVERITIES),
 )
@@ -225,12 +225,13 @@ BASELINE_KEYS = (Key("method", "choice", "how the threshold is derived", True, c
 
 
 GUARD_KEYS = (
-    Key("min_sessions", "int", "windows with fewer sessions never breach", False, 1, minimum=0),
-    Key("min_bad", "int", "rate: windows with fewer bad sessions never breach", False, 0, minimum=0),
+    Key("min_sessions", "int", "windows with fewer sessions get no verdict", False, 1, minimum=0),
+    Key("min_bad", "int", "rate: a window beyond its threshold with fewer bad sessions gets no verdict", False, 0, minimum=0),
 )
 
 
 LIFECYCLE_KEYS = (
     Key("recover_after", "int", "this many healthy windows in a row close an open alert", False, 2, minimum=1),
     Key("expire_after", "duration", "no window at all for this long closes an open alert", False, "7d"),
+    Key("reopen_within", "duration", "a breach this soon after a recovery reopens that alert", False, "6h"),
 )

@@ -1,12 +1,24 @@
 -- ── stage 5 · lifecycle ─────────────────────────────────────────────────────────────────────
 -- A breach opens an alert for its series unless one is open; more breaches update it. An open alert
 -- closes as 'recovered' after 2 healthy windows in a row, or as 'expired' once the series
--- has had no window for INTERVAL 1 DAY (between two windows, or before the watermark).
--- All in data time, one pass over every series' new windows in order.
+-- has had no window for INTERVAL 1 DAY (between two windows, or before the watermark). A breach
+-- whose window starts within INTERVAL 6 HOUR of the series' last recovery reopens that alert (event
+-- 'reopened'; its counts go on) instead of opening a new one. A window without a verdict (breach
+-- NULL) is neither healthy nor a breach. All in data time, one pass over every series' new windows
+-- in order.
 CREATE OR REPLACE TEMP TABLE open_alerts AS
 SELECT *
 FROM alerts
 WHERE check_name = 'golden' AND status = 'open' AND definition_hash = $definition;
+
+-- prior_alerts: each series' latest alert of this definition that is open, or closed: the alert a
+-- breach of this run continues (open) or may reopen (closed as 'recovered').
+CREATE OR REPLACE TEMP TABLE prior_alerts AS
+SELECT *
+FROM alerts AS a
+WHERE check_name = 'golden' AND definition_hash = $definition
+  AND (status = 'open' OR EXISTS (SELECT 1 FROM judged AS j WHERE j.key = a.key AND j.split_value IS NOT DISTINCT FROM a.split_value))
+QUALIFY row_number() OVER (PARTITION BY key, split_value ORDER BY status = 'open' DESC, closed_at DESC, opened_at DESC) = 1;
 
 CREATE OR REPLACE TEMP TABLE steps AS
 WITH relevant AS (
@@ -17,16 +29,21 @@ WITH relevant AS (
 ordered AS (
     SELECT
         j.key, j.key_text, j.split_value, j.window_number, j.window_start, j.window_end, j.value, j.threshold,
-        j.bad, j.sessions, j.breach,
-        -- no verdict without a value (a zero denominator, an empty window): neither healthy nor a breach
-        j.threshold IS NOT NULL AND j.value IS NOT NULL AND NOT j.breach AS healthy,
+        j.bad, j.sessions, coalesce(j.breach, false) AS breach,
+        -- breach NULL is no verdict (too little data, no value): neither healthy nor a breach
+        coalesce(NOT j.breach, false) AND j.threshold IS NOT NULL AND j.value IS NOT NULL AS healthy,
+        -- the sessions a breaching window adds to its alert's affected_sessions
+        CASE WHEN j.breach THEN coalesce(j.bad, j.sessions) ELSE 0 END AS window_affected,
         coalesce(lag(j.window_end) OVER (PARTITION BY j.key, j.split_value ORDER BY j.window_number), l.last_end) AS prev_end,
         o.alert_id IS NOT NULL AS carried,
-        coalesce(o.healthy_streak, 0) AS streak0
+        coalesce(o.healthy_streak, 0) AS streak0,
+        -- the series' last close before this run, if it was a recovery the next breach may reopen
+        CASE WHEN p.status = 'closed' AND p.close_reason = 'recovered' THEN p.closed_at END AS prior_recovery
     FROM judged AS j
     SEMI JOIN relevant AS r ON j.key = r.key AND j.split_value IS NOT DISTINCT FROM r.split_value
     LEFT JOIN key_state AS l ON l.check_name = 'golden' AND l.key = j.key
     LEFT JOIN open_alerts AS o ON j.key = o.key AND j.split_value IS NOT DISTINCT FROM o.split_value
+    LEFT JOIN prior_alerts AS p ON j.key = p.key AND j.split_value IS NOT DISTINCT FROM p.split_value
 ),
 stretched AS (
     -- stretch n: the windows after the n-th breach of this run, up to and including the next breach
@@ -54,35 +71,76 @@ flagged AS (
     -- is_open: an alert of the series is open when this window comes (before it counts)
     SELECT *, breached_before AND NOT gap_before AND healthy_before < 2 AS is_open
     FROM counted
+),
+decided AS (
+    SELECT
+        *,
+        is_open AND gap AS expires_here,
+        is_open AND NOT gap AND healthy AND healthy_before + 1 >= 2 AS recovers_here,
+        breach AND NOT (is_open AND NOT gap) AS opens_here,
+        breach AND is_open AND NOT gap AS continues_here
+    FROM flagged
+),
+closing AS (
+    -- the series' last close before this window: in this run, else the prior alert's recovery
+    SELECT
+        *,
+        last_value(CASE WHEN recovers_here THEN 'recovered' WHEN expires_here THEN 'expired' END IGNORE NULLS)
+            OVER before AS last_close,
+        last_value(CASE WHEN recovers_here THEN window_end END IGNORE NULLS) OVER before AS last_run_recovery
+    FROM decided
+    WINDOW before AS (
+        PARTITION BY key, split_value ORDER BY window_number ROWS BETWEEN UNBOUNDED PRECEDING AND 1 PRECEDING
+    )
+),
+recovered AS (
+    SELECT
+        * EXCLUDE (last_close, last_run_recovery),
+        CASE WHEN last_close IS NULL THEN prior_recovery WHEN last_close = 'recovered' THEN last_run_recovery END
+            AS last_recovery
+    FROM closing
 )
 SELECT
     *,
-    is_open AND gap AS expires_here,
-    is_open AND NOT gap AND healthy AND healthy_before + 1 >= 2 AS recovers_here,
-    breach AND NOT (is_open AND NOT gap) AS opens_here,
-    breach AND is_open AND NOT gap AS continues_here
-FROM flagged;
+    -- reopens_here: a breach with no alert open whose window starts within reopen_within of the
+    -- series' last close, a recovery
+    opens_here AND NOT expires_here
+        AND coalesce(window_start < last_recovery + INTERVAL 6 HOUR, false) AS reopens_here
+FROM recovered;
 
 CREATE OR REPLACE TEMP TABLE episode_steps AS
+WITH numbered AS (
+    SELECT
+        *,
+        -- episode n: the n-th new alert of this run; episode 0 is the series' alert from before this run
+        -- (open, or recovered and reopened here). A reopening stays in the episode it reopens.
+        sum((opens_here AND NOT reopens_here)::INTEGER) OVER (
+            PARTITION BY key, split_value ORDER BY window_number ROWS UNBOUNDED PRECEDING
+        ) AS episode,
+        coalesce(sum((opens_here AND NOT reopens_here)::INTEGER) OVER (
+            PARTITION BY key, split_value ORDER BY window_number ROWS BETWEEN UNBOUNDED PRECEDING AND 1 PRECEDING
+        ), 0) AS episode_before
+    FROM steps
+)
 SELECT
-    *,
-    -- episode 0 is the alert already open before this run
-    sum(opens_here::INTEGER) OVER (PARTITION BY key, split_value ORDER BY window_number ROWS UNBOUNDED PRECEDING) AS episode,
-    coalesce(sum(opens_here::INTEGER) OVER (
-        PARTITION BY key, split_value ORDER BY window_number ROWS BETWEEN UNBOUNDED PRECEDING AND 1 PRECEDING
-    ), 0) AS episode_before
-FROM steps;
+    n.*,
+    -- the alert's affected sessions once this window counts
+    CASE WHEN n.episode = 0 THEN coalesce(p.affected_sessions, 0) ELSE 0 END + sum(n.window_affected) OVER (
+        PARTITION BY n.key, n.split_value, n.episode ORDER BY n.window_number ROWS UNBOUNDED PRECEDING
+    ) AS affected_so_far
+FROM numbered AS n
+LEFT JOIN prior_alerts AS p ON n.key = p.key AND n.split_value IS NOT DISTINCT FROM p.split_value;
 
 CREATE OR REPLACE TEMP TABLE episodes AS
 WITH breaches AS (
     SELECT
         key, any_value(key_text) AS key_text, split_value, episode,
-        min(window_end) FILTER (WHERE opens_here) AS opened_at,
-        min(window_start) FILTER (WHERE opens_here) AS breach_started_at,
-        min(window_number) FILTER (WHERE opens_here) AS opened_window,
-        arg_min(threshold, window_number) FILTER (WHERE opens_here) AS open_threshold,
+        min(window_end) FILTER (WHERE opens_here AND NOT reopens_here) AS opened_at,
+        min(window_start) FILTER (WHERE opens_here AND NOT reopens_here) AS breach_started_at,
+        min(window_number) FILTER (WHERE opens_here AND NOT reopens_here) AS opened_window,
+        arg_min(threshold, window_number) FILTER (WHERE opens_here AND NOT reopens_here) AS open_threshold,
         count(*) AS breach_windows,
-        sum(coalesce(bad, sessions)) AS affected_sessions,
+        sum(window_affected) AS affected_sessions,
         min(value) AS peak_value,
         max(window_end) AS last_breach_at,
         max(window_number) AS last_breach_window
@@ -91,14 +149,15 @@ WITH breaches AS (
     GROUP BY key, split_value, episode
 ),
 closes AS (
+    -- an episode's last close (a reopened alert closes more than once); it ends the alert when no
+    -- breach of the episode came after it
     SELECT
-        key, split_value, episode_before AS episode,
+        key, split_value, episode_before AS episode, window_number AS close_window,
         CASE WHEN expires_here THEN prev_end + INTERVAL 1 DAY ELSE window_end END AS closed_at,
-        CASE WHEN expires_here THEN 'expired' ELSE 'recovered' END AS close_reason,
-        CASE WHEN expires_here THEN NULL ELSE value END AS close_value,
-        threshold AS close_threshold
+        CASE WHEN expires_here THEN 'expired' ELSE 'recovered' END AS close_reason
     FROM episode_steps
     WHERE expires_here OR recovers_here
+    QUALIFY row_number() OVER (PARTITION BY key, split_value, episode_before ORDER BY window_number DESC) = 1
 ),
 all_episodes AS (
     SELECT key, split_value, episode FROM breaches
@@ -134,7 +193,7 @@ merged AS (
         least(o.peak_value, b.peak_value) AS peak_value,
         coalesce(b.last_breach_at, o.last_breach_at) AS last_breach_at,
         o.first_run_id,
-        c.closed_at, c.close_reason, c.close_value, c.close_threshold,
+        c.closed_at, c.close_reason,
         CASE
             WHEN b.episode IS NULL THEN o.healthy_streak + coalesce(t.n, 0)
             ELSE coalesce(t.n, 0)
@@ -143,8 +202,9 @@ merged AS (
         b.episode IS NOT NULL OR c.episode IS NOT NULL OR t.n > 0 AS touched
     FROM all_episodes AS a
     LEFT JOIN breaches AS b ON a.key = b.key AND a.split_value IS NOT DISTINCT FROM b.split_value AND a.episode = b.episode
-    LEFT JOIN open_alerts AS o ON a.key = o.key AND a.split_value IS NOT DISTINCT FROM o.split_value AND a.episode = 0
+    LEFT JOIN prior_alerts AS o ON a.key = o.key AND a.split_value IS NOT DISTINCT FROM o.split_value AND a.episode = 0
     LEFT JOIN closes AS c ON a.key = c.key AND a.split_value IS NOT DISTINCT FROM c.split_value AND a.episode = c.episode
+        AND c.close_window > coalesce(b.last_breach_window, c.close_window - 1)
     LEFT JOIN healthy_tail AS t ON a.key = t.key AND a.split_value IS NOT DISTINCT FROM t.split_value
     LEFT JOIN series_end AS e ON a.key = e.key AND a.split_value IS NOT DISTINCT FROM e.split_value
 )
@@ -189,28 +249,40 @@ SELECT
     $definition AS definition_hash,
     episode,
     touched OR silent_too_long AS touched,
-    close_value,
-    close_threshold
+    closed_at IS NULL AND silent_too_long AS closed_silently
 FROM episodes;
 
 CREATE OR REPLACE TEMP TABLE event_rows AS
-WITH breach_events AS (
+WITH step_events AS (
     SELECT
-        s.key, s.split_value, s.episode, s.window_end AS occurred_at,
-        CASE WHEN s.opens_here THEN 'opened' ELSE 'updated' END AS event,
-        s.value, s.threshold,
-        coalesce(o.affected_sessions, 0) + sum(coalesce(s.bad, s.sessions)) OVER (
-            PARTITION BY s.key, s.split_value, s.episode ORDER BY s.window_number ROWS UNBOUNDED PRECEDING
-        ) AS affected_sessions,
-        s.window_number
-    FROM episode_steps AS s
-    LEFT JOIN open_alerts AS o ON s.key = o.key AND s.split_value IS NOT DISTINCT FROM o.split_value AND s.episode = 0
-    WHERE s.breach
+        key, split_value, episode, window_end AS occurred_at,
+        CASE
+            WHEN reopens_here THEN 'reopened'
+            WHEN opens_here THEN 'opened'
+            ELSE 'updated'
+        END AS event,
+        value, threshold, affected_so_far AS affected_sessions
+    FROM episode_steps
+    WHERE breach
+    UNION ALL
+    -- every close, including those of an alert this run reopens after; a window that expires an
+    -- alert may open the next one, so a close belongs to the episode open before its window
+    SELECT
+        key, split_value, episode_before,
+        CASE WHEN expires_here THEN prev_end + INTERVAL 1 DAY ELSE window_end END,
+        'closed',
+        CASE WHEN expires_here THEN NULL ELSE value END,
+        threshold,
+        CASE WHEN episode = episode_before THEN affected_so_far - window_affected END
+    FROM episode_steps
+    WHERE expires_here OR recovers_here
 )
-SELECT a.alert_id, $run_id AS run_id, e.occurred_at, e.event, e.value, e.threshold, e.affected_sessions
-FROM breach_events AS e
+SELECT a.alert_id, $run_id AS run_id, e.occurred_at, e.event, e.value, e.threshold,
+       coalesce(e.affected_sessions, a.affected_sessions) AS affected_sessions
+FROM step_events AS e
 JOIN alert_rows AS a ON e.key = a.key AND e.split_value IS NOT DISTINCT FROM a.split_value AND e.episode = a.episode
 UNION ALL
-SELECT alert_id, $run_id, closed_at, 'closed', close_value, close_threshold, affected_sessions
+-- an open alert whose series has been silent for expire_after at the watermark
+SELECT alert_id, $run_id, closed_at, 'closed', NULL, NULL, affected_sessions
 FROM alert_rows
-WHERE status = 'closed';
+WHERE closed_silently;

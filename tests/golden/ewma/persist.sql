@@ -30,7 +30,7 @@ DELETE FROM alerts
 WHERE alert_id IN (SELECT alert_id FROM alert_rows WHERE touched);
 
 INSERT INTO alerts BY NAME
-SELECT * EXCLUDE (episode, touched, close_value, close_threshold)
+SELECT * EXCLUDE (episode, touched, closed_silently)
 FROM alert_rows
 WHERE touched;
 

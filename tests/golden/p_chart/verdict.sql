@@ -7,9 +7,13 @@
 -- the limit widens for small windows, n = this window's sessions:
 --   threshold = p̄ + 2.0 × √(p̄ (1 − p̄) / n)
 --
--- Verdict: a window breaches when it has a threshold, its value is above it, and it passes the guard
--- (at least 10 sessions and 2 bad); every other window with a threshold and a value is
--- healthy. A window without a value (a zero denominator, no session with a value) gives no verdict.
+-- Verdict: a window breaches when it has a threshold, its value is above it, and the data is enough
+-- to say so: at least 10 sessions, 2 bad. It is healthy when it has a threshold, a
+-- value, at least 10 sessions and is not beyond the threshold. Every other window gets no verdict
+-- (breach NULL): too few sessions, no value (a zero denominator, no session with a value), or
+-- beyond the threshold on too little evidence. A window without a verdict is neither healthy nor a breach: it
+-- does not enter the history and cannot close an alert. A window before the series has a threshold
+-- enters the history when it has a value and at least 10 sessions (breach false).
 --
 -- A window's history is the earlier windows of its series that did not breach, so verdicts depend on
 -- the verdicts before them: the statements between '@loop' and '@end' are one round, repeated until
@@ -63,7 +67,7 @@ series_rows AS (
     FROM history AS h
     SEMI JOIN moving AS s ON h.key = s.key AND h.split_value IS NOT DISTINCT FROM s.split_value
     UNION ALL
-    SELECT j.key, j.split_value, j.window_number, j.value, j.sessions, j.bad, true, NOT j.breach AND j.value IS NOT NULL
+    SELECT j.key, j.split_value, j.window_number, j.value, j.sessions, j.bad, true, coalesce(NOT j.breach, false) AND j.value IS NOT NULL
     FROM judged AS j
     SEMI JOIN moving AS s ON j.key = s.key AND j.split_value IS NOT DISTINCT FROM s.split_value
 ),
@@ -91,17 +95,18 @@ SELECT key, split_value, window_number, baseline, history_windows
 FROM framed
 WHERE is_new;
 
--- round_verdicts: each recomputed window's threshold and whether it breaches.
+-- round_verdicts: each recomputed window's threshold and verdict: breach true (a breach), false (healthy,
+-- or no threshold yet with enough data to be history) or NULL (no verdict: too little data).
 CREATE OR REPLACE TEMP TABLE round_verdicts AS
 SELECT
     *,
-    coalesce(
-        threshold IS NOT NULL
-        AND value IS NOT NULL
-        AND value > threshold
-        AND sessions >= 10
-        AND bad >= 2
-    , false) AS breach
+    CASE
+        WHEN value IS NULL OR sessions < 10 THEN NULL
+        WHEN threshold IS NULL
+          OR NOT coalesce(value > threshold, false) THEN false
+        WHEN bad < 2 THEN NULL
+        ELSE true
+    END AS breach
 FROM (
     SELECT
         j.key, j.split_value, j.window_number, j.value, j.sessions, j.bad, base.baseline, base.history_windows,
