@@ -75,6 +75,8 @@ class Source:
 
     # what the files' paths are recorded relative to (see toolkit.lake.files.base_of)
     base: str = ""
+    # the columns `plimsoll explain` drills into
+    attributes: tuple[str, ...] = ()
 
     @property
     def time_columns(self) -> tuple[str, ...]:
@@ -161,6 +163,8 @@ class Check:
     severity: str
     file: str
     line: int
+    # the columns `plimsoll explain` drills into: the check's own, else the source's
+    attributes: tuple[str, ...] = ()
 
 
 @dataclass(frozen=True)

@@ -59,6 +59,12 @@ def load_check(doc: Located, sources: dict[str, Source], con: duckdb.DuckDBPyCon
         for index, column in enumerate(by):
             if column not in source.columns:
                 top.error(("by", index), f"by: {unknown_column(column, source.columns)} in source '{source.name}'")
+    attributes = top.get("attributes") or (source.attributes if source is not None else [])
+    if binder and source.columns:
+        for index, column in enumerate(top.get("attributes") or []):
+            if column not in source.columns:
+                top.error(("attributes", index),
+                          f"attributes: {unknown_column(column, source.columns)} in source '{source.name}'")
     measure = _measure(doc, top.get("measure"), binder, problems)
     window = _window(doc, top.get("window"), problems)
     baseline = _baseline(doc, top.get("baseline"), measure, problems)
@@ -76,6 +82,7 @@ def load_check(doc: Located, sources: dict[str, Source], con: duckdb.DuckDBPyCon
         name=name, about=about, source=source, where=where, by=tuple(by), measure=measure,
         direction=direction, window=window, baseline=baseline, guard=guard,
         lifecycle=lifecycle, severity=severity, file=doc.file, line=doc.line(("check",)),
+        attributes=tuple(attributes),
     )
 
 

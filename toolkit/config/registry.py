@@ -191,6 +191,8 @@ SOURCE_KEYS = (
     Key("dedup_horizon", "duration", "how far behind the newest data read (in data time) session ids are "
         "remembered to find repeats; an older session arriving later is counted as late and left out",
         False, "3d"),
+    Key("attributes", "columns", "the columns `plimsoll explain` drills into to find where failures "
+        "concentrate (a check may name its own)", False, []),
 )
 
 
@@ -207,6 +209,7 @@ CHECK_KEYS = (
     Key("guard", "mapping", "windows with too little data get no verdict"),
     Key("lifecycle", "mapping", "when an open alert closes"),
     Key("severity", "choice", "carried on alerts", False, "medium", SEVERITIES),
+    Key("attributes", "columns", "the columns `plimsoll explain` drills into (default: the source's)"),
 )
 
 

@@ -9,6 +9,7 @@ from typing import Any
 
 import duckdb
 
+from toolkit.config.expressions import unknown_column
 from toolkit.config.fields import NAME, Section, kind_of
 from toolkit.config.registry import SOURCE_KEYS, STORAGE_KEYS
 from toolkit.config.schema import Binder
@@ -96,7 +97,7 @@ def load_sources(doc: Located, raw: dict[str, Any], root: Path, con: duckdb.Duck
             sources[name] = Source(name, location, session_id or "", event_time or "", None, {})
             continue
         common = {"engine": engine, "storage": settings if remote else None, "base": lake.base_of(location),
-                  **limits}
+                  "attributes": tuple(section.get("attributes") or ()), **limits}
         columns: dict[str, str] = {}
         if check_schema:
             files = (_remote_files(section, name, location, settings, con) if remote
@@ -123,6 +124,10 @@ def load_sources(doc: Located, raw: dict[str, Any], root: Path, con: duckdb.Duck
         binder = Binder(con, source)
         if check_schema:
             binder.column(section, session_id, "session_id")
+            for index, column in enumerate(common["attributes"]):
+                if column not in columns:
+                    section.error((*section.path, "attributes", index),
+                                  f"attributes: {unknown_column(column, columns)} in source '{name}'")
         time = binder.time(section, event_time)
         excl = binder.expr(section, exclude, "exclude", "boolean")
         sources[name] = Source(name, location, session_id or "", event_time or "", excl, columns, time=time,

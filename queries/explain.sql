@@ -1,0 +1,126 @@
+{% import "macros.sql" as m %}
+{% set time = "(" ~ source.time.sql ~ ")::TIMESTAMP" %}
+{% set count_window = check.window.sessions is not none %}
+-- `plimsoll explain`: where in the attributes a window's bad sessions exceed what was expected.
+--
+-- The rows: the sessions of one series ($key: its `by` values) in the window being explained
+-- ($window_start to $window_end{{ ", both ends included: a count window" if count_window else ", end excluded: a time window" }}) and in its history ($history:
+-- the start and end of the series' earlier windows with a healthy verdict), each session once.
+-- Each row carries x, its bad count, and n, its weight:
+{% if check.measure.kind == "rate" %}
+--   rate: x = 1 for a bad session, else 0; n = 1.
+{% else %}
+--   ratio: x = its numerator, n = its denominator (the window's value is Σx ÷ Σn).
+{% endif %}
+-- The attributes examined: {{ attributes | join(", ") }}.
+--
+-- For every combination c of up to {{ depth }} attributes (GROUPING SETS), in the window: X = Σx,
+-- N = Σn; in the history: Xh, Nh. The expected bad count is F = N · r, with the combination's
+-- historical rate shrunk toward the series' (R = ΣXh ÷ ΣNh) by a prior worth {{ prior }} rows' weight:
+--   r = (Xh + k·R) ÷ (Nh + k),   k = {{ prior }} × (ΣNh ÷ history rows)
+-- and its score is the expectation-based Poisson scan statistic (Neill 2009, International Journal
+-- of Forecasting 25:498-517): S = X·ln(X/F) − (X − F) where X > F, else 0. Its share of the
+-- window's excess (explanatory power, Bhagwan et al. 2014, NSDI) is (X − F) ÷ (ΣX − ΣF).
+
+-- @statement explain.rows
+CREATE OR REPLACE TEMP TABLE explain_rows AS
+SELECT
+    {% for a in attributes %}{{ a | ident }}::VARCHAR AS {{ ("a" ~ loop.index0) | ident }}, {% endfor +%}
+    in_window,
+{% if check.measure.kind == "rate" %}
+    (coalesce({{ check.measure.bad.sql }}, false){% if check.measure.split %} AND {{ check.measure.split | ident }}::VARCHAR IS NOT DISTINCT FROM $split_value{% endif %})::INTEGER::DOUBLE AS x,
+    1.0::DOUBLE AS n,
+{% else %}
+    ({{ check.measure.numerator.sql }})::DOUBLE AS x,
+    ({{ check.measure.denominator.sql }})::DOUBLE AS n,
+{% endif %}
+    false AS explained
+FROM (
+    SELECT
+        *,
+        {{ time }} AS __event_time,
+        {{ time }} >= $window_start AND {{ time }} {{ "<=" if count_window else "<" }} $window_end AS in_window
+    FROM read_parquet($files, hive_partitioning = true, union_by_name = true)
+    WHERE {{ source.session_id | ident }} IS NOT NULL
+      AND ({{ time }} >= $window_start AND {{ time }} {{ "<=" if count_window else "<" }} $window_end
+           OR list_bool_or([{{ time }} >= h.window_start AND {{ time }} {{ "<=" if count_window else "<" }} h.window_end FOR h IN $history]))
+{% for column in check.by %}
+      AND {{ column | ident }}::VARCHAR IS NOT DISTINCT FROM $key[{{ column | literal }}]
+{% endfor %}
+{% if check.where %}
+      AND coalesce({{ check.where.sql }}, false)
+{% endif %}
+{% if source.exclude %}
+      AND NOT coalesce({{ source.exclude.sql }}, false)
+{% endif %}
+    -- each session once: its earliest row
+    QUALIFY row_number() OVER (PARTITION BY {{ source.session_id | ident }} ORDER BY {{ time }}) = 1
+)
+{% if check.measure.kind == "ratio" %}
+WHERE x IS NOT NULL AND n IS NOT NULL AND isfinite(x) AND isfinite(n)
+{% endif %};
+
+-- @statement explain.totals
+-- The window's and the history's totals: the excess to share out, and R.
+SELECT
+    coalesce(sum(x) FILTER (WHERE in_window), 0) AS window_bad,
+    coalesce(sum(n) FILTER (WHERE in_window), 0) AS window_weight,
+    coalesce(sum(x) FILTER (WHERE NOT in_window), 0) AS history_bad,
+    coalesce(sum(n) FILTER (WHERE NOT in_window), 0) AS history_weight,
+    count(*) FILTER (WHERE NOT in_window) AS history_rows,
+    count(*) FILTER (WHERE in_window) AS window_rows
+FROM explain_rows;
+
+-- @statement explain.round
+-- One round: every combination over the rows not explained yet with more bad than expected, scored;
+-- the best first. The caller takes the best, made finer while one more attribute value holds nearly
+-- all of its excess (--: what lies outside it is no longer the problem).
+WITH series AS (
+    SELECT sum(x) / nullif(sum(n), 0) AS rate, sum(n) / nullif(count(*), 0) AS row_weight
+    FROM explain_rows
+    WHERE NOT in_window
+),
+cells AS (
+    SELECT
+        map_from_entries(list_filter([
+{% for a in attributes %}
+            CASE WHEN grouping({{ ("a" ~ loop.index0) | ident }}) = 0 THEN {'key': {{ a | literal }}, 'value': {{ ("a" ~ loop.index0) | ident }}} END{{ "," if not loop.last }}
+{% endfor %}
+        ], lambda e: e IS NOT NULL)) AS combination,
+        coalesce(sum(x) FILTER (WHERE in_window), 0) AS bad,
+        coalesce(sum(n) FILTER (WHERE in_window), 0) AS weight,
+        coalesce(sum(x) FILTER (WHERE NOT in_window), 0) AS history_bad,
+        coalesce(sum(n) FILTER (WHERE NOT in_window), 0) AS history_weight
+    FROM explain_rows
+    WHERE NOT explained
+    GROUP BY GROUPING SETS ({% for s in sets %}({% for i in s %}{{ ("a" ~ i) | ident }}{{ ", " if not loop.last }}{% endfor %}){{ ", " if not loop.last }}{% endfor %})
+),
+expected AS (
+    SELECT
+        c.*,
+        c.weight * (c.history_bad + {{ prior }} * s.row_weight * s.rate) / nullif(c.history_weight + {{ prior }} * s.row_weight, 0)
+            AS expected
+    FROM cells AS c, series AS s
+    WHERE c.weight > 0
+)
+SELECT
+    combination,
+    bad,
+    weight,
+    expected,
+    CASE WHEN bad > expected AND expected > 0 THEN bad * ln(bad / expected) - (bad - expected) ELSE 0 END AS score
+FROM expected
+WHERE bad > expected
+ORDER BY score DESC, cardinality(combination), combination::VARCHAR
+LIMIT {{ candidates }};
+
+-- @statement explain.mark
+-- The chosen combination's rows are explained: the next round looks at what is left.
+UPDATE explain_rows
+SET explained = true
+WHERE NOT explained
+  AND list_bool_and([
+{% for a in attributes %}
+      NOT list_contains($names, {{ a | literal }}) OR {{ ("a" ~ loop.index0) | ident }} IS NOT DISTINCT FROM $values[list_position($names, {{ a | literal }})]{{ "," if not loop.last }}
+{% endfor %}
+  ]);
