@@ -38,13 +38,17 @@ P_HIGH = 0.25
 TOP_DETECTED = 0.9
 STEPS_PER_DOUBLING = 8
 
+# the largest decision interval searched for: beyond it a run length is refused
+H_LIMIT = 200
+
 # γ = a/b: the largest numerator and denominator of the fraction the chain uses for γ
 _MAX_A = 48
 _MAX_B = 6000
 
 
-class PrecisionError(ArithmeticError):
-    """The chain's answer kept too few significant digits to be used."""
+class ChainError(ArithmeticError):
+    """The chain cannot give a usable decision interval: it would lie beyond H_LIMIT, or the
+    answer kept too few significant digits."""
 
 
 def chain_arl(cdf: Callable[[np.ndarray], np.ndarray], k: float, h: float, states: int = 400) -> float:
@@ -93,62 +97,89 @@ def lattice(g: float) -> Fraction:
         limit = max(1, limit // 2)
 
 
-def _chain(p: float, g: Fraction, top: int) -> np.ndarray:
+def _sweep(p: float, g: Fraction, visit: Callable[[Callable[[int], float], int, int], bool],
+           top: int | None = None, blocks: int = 1) -> None:
     """The Bernoulli CUSUM B = max(0, B + X − γ), γ = g = a/b, P(X = 1) = p, signalling when
-    B > H/b, solved for every H up to ``top`` at once.
+    B > H/b, solved for every H at once, in one pass.
 
     In units of 1/b the chain is on the integers 0 … H: a bad session moves j to j + b − a, a good
     one to max(0, j − a). The expected sessions to a signal, L, satisfy
     L_j = 1 + p·L_{j+b−a} + (1−p)·L_{max(0, j−a)}, L = 0 above H. Read from the top down, the
     equation at j gives L_{j−a} from L_j and L_{j+b−a}, so with the a top values unknown every L_j
-    is an affine function of them that depends only on H − j; the a equations at j < a then fix
-    them. One pass over H − j = 0 … top thus serves every H, and each H costs an a × a solve.
+    is an affine function of them that depends only on d = H − j; the a equations at j < a then
+    fix them (:func:`_solve_top`). So one pass over d = 0, 1, 2 … serves every H.
+
+    The coefficients grow about as e^(p·d/γ) down the pass, and the answer is their difference;
+    so whenever they pass 10⁴ the pass is restated in terms of the a newest values instead of the
+    a top ones (the rows it still reads, the last b + a, are rewritten), and no precision is lost.
+
+    ``visit(arl, first, last)`` is called after every ``blocks`` blocks of a distances, first …
+    last, with ``arl(h)``, the ARL at a decision interval h/b among them; the pass ends when it
+    returns True, or after ``top``.
     """
     a, b = g.numerator, g.denominator
     q = 1.0 - p
-    # rows[d] = (α, β₀ … β_{a−1}): L at distance d below the top is α + β·x
-    rows = np.zeros((top + 1, a + 1))
-    rows[:min(a, top + 1), 1:] = np.eye(a)[:min(a, top + 1)]
+    # rows[d] = (α, β₀ … β_{a−1}): L at distance d below the top is α + β·x for the current unknowns x
+    rows = np.zeros((max(4 * b, 2 * a), a + 1))
+    rows[:a, 1:] = np.eye(a)
     one = np.zeros(a + 1)
     one[0] = 1.0
-    d = a
-    while d <= top:  # a block of a distances at once: each needs only d − a and d − b, both done
-        end = min(d + a, top + 1)
-        back = np.arange(d, end) - b
-        above = np.where((back >= 0)[:, None], rows[np.maximum(back, 0)], 0.0)
+    d = first = a
+    count = 0
+    while top is None or d <= top:  # a block of a distances at once: each reads only d − a and d − b
+        end = d + a if top is None else min(d + a, top + 1)
+        if end > len(rows):
+            rows = np.vstack([rows, np.zeros((len(rows), a + 1))])
+        if d >= b:
+            above = rows[d - b:end - b]
+        else:
+            back = np.arange(d, end) - b
+            above = np.where((back >= 0)[:, None], rows[np.maximum(back, 0)], 0.0)
         rows[d:end] = (rows[d - a:end - a] - one - p * above) / q
         d = end
-    return rows
+        count += 1
+        if count % blocks and (top is None or d <= top):
+            continue
+        if visit(lambda h: _solve_top(rows, h, a, b, p, q), first, d - 1):
+            return
+        first = d
+        if np.abs(rows[d - a:d, 1:]).max() > 1e4:
+            # x = B⁻¹(y − A) for the newest values y = A + B·x: every row read later in terms of y
+            newest = rows[d - a:d]
+            inverse = np.linalg.inv(newest[:, 1:])
+            kept = rows[max(0, d - b - a):d]
+            kept[:, 1:] = kept[:, 1:] @ inverse
+            kept[:, 0] = kept[:, 0] - kept[:, 1:] @ newest[:, 0]
+            rows[max(0, d - b - a):d] = kept
 
 
 def bernoulli_arl(p: float, g: Fraction, top: int) -> np.ndarray:
     """Zero-state ARLs, in sessions, of the Bernoulli CUSUM B = max(0, B + X − γ), γ = g = a/b,
     P(X = 1) = p, signalling when B > H/b: element H of the result for every H from a to ``top``
-    (the elements below a are NaN). See :func:`_chain` for how the chain is solved."""
-    a, b = g.numerator, g.denominator
-    rows = _chain(p, g, top)
+    (the elements below a are NaN). See :func:`_sweep` for how the chain is solved."""
     arls = np.full(top + 1, np.nan)
-    for h in range(a, top + 1):
-        arls[h] = _solve_top(rows, h, a, b, p, 1.0 - p)
+
+    def visit(arl: Callable[[int], float], first: int, last: int) -> bool:
+        for h in range(first, last + 1):
+            arls[h] = arl(h)
+        return False
+
+    _sweep(p, g, visit, top)
     return arls
 
 
 def _solve_top(rows: np.ndarray, h: int, a: int, b: int, p: float, q: float) -> float:
     """L_0 of the chain on 0 … h from the equations at j = 0 … a−1: L_j = 1 + q·L_0 + p·L_{j+b−a}."""
-    eqs = np.empty((a, a + 1))
-    for j in range(a):
-        row = rows[h - j] - q * rows[h]
-        up = h - (j + b - a)
-        if up >= 0:
-            row = row - p * rows[up]
-        eqs[j] = row
+    j = np.arange(a)
+    up = h - (j + b - a)
+    eqs = rows[h - j] - q * rows[h] - p * np.where((up >= 0)[:, None], rows[np.maximum(up, 0)], 0.0)
     x = np.linalg.solve(eqs[:, 1:], 1.0 - eqs[:, 0])
     arl = float(rows[h, 0] + rows[h, 1:] @ x)
     # The affine coefficients grow about as e^(p·h/γ) down the chain, and the ARL is their
     # difference: refuse an answer that kept fewer than about 7 significant digits.
     scale = abs(rows[h, 0]) + float(np.abs(rows[h, 1:]) @ np.abs(x))
     if not math.isfinite(arl) or scale > 1e9 * max(abs(arl), 1.0):
-        raise PrecisionError(f"the run-length chain loses its precision at p = {p:g}, h = {h / b:g}")
+        raise ChainError(f"the run-length chain loses its precision at p = {p:g}, h = {h / b:g}")
     return arl
 
 
@@ -157,32 +188,50 @@ def bernoulli_arl_at(p: float, g: float, h: float) -> float:
     interval h (h rounded down to the lattice of γ's fraction)."""
     f = lattice(g)
     top = int(math.floor(h * f.denominator + 1e-9))
-    return _solve_top(_chain(p, f, top), top, f.numerator, f.denominator, p, 1.0 - p)
+    return float(bernoulli_arl_lattice(p, f, top))
+
+
+def bernoulli_arl_lattice(p: float, f: Fraction, top: int) -> float:
+    """The ARL at decision interval top/b alone (see :func:`_sweep`)."""
+    found: list[float] = []
+
+    def visit(arl: Callable[[int], float], first: int, last: int) -> bool:
+        if first <= top <= last:
+            found.append(arl(top))
+            return True
+        return False
+
+    _sweep(p, f, visit, top, blocks=16)
+    return found[0]
 
 
 def decision_interval(p0: float, shift: float, sessions: int) -> tuple[float, float]:
     """(γ, h) of the Bernoulli CUSUM for a rise from p₀ to shift × p₀ whose in-control ARL is at
-    least ``sessions``: h the smallest on γ's lattice that reaches it. Raises PrecisionError when
-    that h lies beyond what the chain computes precisely (a small shift with a very long run)."""
+    least ``sessions``: h the smallest on γ's lattice that reaches it. Raises ChainError when that
+    h lies beyond H_LIMIT (a small shift with a very long run)."""
     g = gamma(p0, shift * p0)
     f = lattice(g)
-    a, b = f.numerator, f.denominator
-    top = max(2 * b, a + 1)
-    while True:  # widen by a quarter until h reaches the run length (or the chain's precision ends)
-        rows = _chain(p0, f, top)
-        if _solve_top(rows, top, a, b, p0, 1.0 - p0) >= sessions:
-            break
-        top = int(top * 1.25) + 1
-    low, high = a, top  # the ARL grows with H: the smallest H reaching it lies in (low, high]
-    if _solve_top(rows, low, a, b, p0, 1.0 - p0) >= sessions:
-        return g, low / b
-    while high - low > 1:
-        middle = (low + high) // 2
-        if _solve_top(rows, middle, a, b, p0, 1.0 - p0) >= sessions:
-            high = middle
-        else:
-            low = middle
-    return g, high / b
+    b = f.denominator
+    found: list[int] = []
+
+    def visit(arl: Callable[[int], float], first: int, last: int) -> bool:
+        # the ARL grows with h: the stretch that reaches the run length holds the smallest such h
+        if arl(last) < sessions:
+            if last > H_LIMIT * b:
+                raise ChainError(f"no decision interval up to h = {H_LIMIT} reaches {sessions} sessions at p0 = {p0:g}")
+            return False
+        low, high = first - 1, last  # arl(high) ≥ sessions; arl(low) < sessions or low below the stretch
+        while high - low > 1:
+            middle = (low + high) // 2
+            if arl(middle) >= sessions:
+                high = middle
+            else:
+                low = middle
+        found.append(high)
+        return True
+
+    _sweep(p0, f, visit, blocks=16)
+    return g, found[0] / b
 
 
 def grid(shift: float) -> list[float]:

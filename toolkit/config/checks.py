@@ -17,7 +17,7 @@ from toolkit.config.expressions import unknown_column
 from toolkit.config.yamlsource import Located, load
 from toolkit.model import Baseline, Check, Guard, Lifecycle, Measure, Project, Source, Window
 from toolkit.problems import Problem, display_path
-from toolkit.runlength import PrecisionError, interval_table
+from toolkit.runlength import H_LIMIT, ChainError, interval_table
 
 
 def load_checks(folder: Path, sources: dict[str, Source], con: duckdb.DuckDBPyConnection,
@@ -173,10 +173,10 @@ def _cusum_fits(section: Section, values: dict[str, Any], direction: str | None)
         return True
     try:
         interval_table(float(shift), int(sessions))
-    except PrecisionError:
+    except ChainError:
         section.error(("baseline", "in_control_sessions"),
                       f"baseline.in_control_sessions: {sessions} sessions at shift {shift} needs a decision "
-                      "interval beyond what the run-length chain computes precisely; give a larger shift or fewer sessions")
+                      f"interval above h = {H_LIMIT} for some p0; give a larger shift or fewer sessions")
         return False
     return True
 
