@@ -42,11 +42,11 @@
 --   interpolated here linearly in ln p₀. A p₀ below the grid's first row is taken as that row's
 --   (γ then exceeds what that p₀ needs, so false alarms come less often, never more); above its
 --   last row a window has no threshold.
---   Judged only at window ends, S is never above the per-session statistic at the same session (by
---   induction: per session S_i ≥ S_{i−1} + x_i − γ and S_i ≥ 0, so at the window's end it is at least
---   max(0, S_start + bad − n·γ), which is this window's S when both start equal or this one lower),
---   so a window's S exceeds h only after the per-session statistic has: false alarms come no more
---   often than the chain's run length says.
+--   Judged only at window ends, S is never above the per-session statistic V of the chain at the same
+--   session. By induction over windows: if S ≤ V where a window starts, then since each session gives
+--   V_i ≥ V_{i−1} + x_i − γ and V_i ≥ 0, at its end V ≥ max(0, V_start + bad − n·γ) ≥ max(0,
+--   S_start + bad − n·γ) ≥ S (the ceiling only lowers S). So a window's S exceeds h only once V has:
+--   false alarms come no more often than the chain's run length says.
 --   The ceiling 2h changes nothing before S first exceeds h; after an incident it bounds the
 --   evidence S carries, so S falls back below h within about h ÷ (γ − p₀) in-control sessions.
 {% endif %}
