@@ -4,7 +4,7 @@
 INSERT INTO windows BY NAME
 SELECT
     {{ check_lit }} AS check_name, key, key_text, split_value, window_number, key_window, window_start, window_end,
-    sessions, bad, value, {% if baseline.method == "ewma" %}statistic, {% endif %}baseline, history_windows, threshold, breach,
+    sessions, bad, value, {% if baseline.method in ("ewma", "cusum") %}statistic, {% endif %}baseline, history_windows, threshold, breach,
     $run_id AS run_id
 FROM judged;
 

@@ -31,13 +31,31 @@
 --   target = {{ b.target if b.target is not none else "mean of the series' last " ~ b.history ~ " earlier windows that did not breach" }},
 --   s = {{ b.sigma if b.sigma is not none else "their standard deviation" }};
 --   threshold = target {{ "+" if check.direction == "up" else "−" }} {{ b.sigmas }} × s × √(λ / (2 − λ)), and the window breaches on z, not on its value.
+{% elif b.method == "cusum" %}
+-- cusum (Bernoulli CUSUM, Reynolds and Stoumbos 1999, Journal of Quality Technology 31:87–108):
+--   p₀ = Σ bad ÷ Σ sessions over the series' last {{ b.history }} earlier windows that did not breach (at least {{ b.min_history }}),
+--   p₁ = {{ b.shift }} × p₀ (the rise to detect), γ = ln[(1−p₀)/(1−p₁)] ÷ ln[p₁(1−p₀) / (p₀(1−p₁))];
+--   statistic S = min(2h, max(0, S of the series' previous window + bad − sessions × γ)), starting at 0
+--   (a window without a threshold keeps S); baseline = p₀, threshold = h, and the window breaches on S.
+--   h makes the in-control average run length {{ b.in_control_sessions }} sessions: found for a grid of p₀ by the
+--   Markov chain of Brook and Evans (1972) over the per-session statistic (toolkit/runlength.py),
+--   interpolated here linearly in ln p₀. A p₀ below the grid's first row is taken as that row's
+--   (γ then exceeds what that p₀ needs, so false alarms come less often, never more); above its
+--   last row a window has no threshold.
+--   Judged only at window ends, S is never above the per-session statistic V of the chain at the same
+--   session. By induction over windows: if S ≤ V where a window starts, then since each session gives
+--   V_i ≥ V_{i−1} + x_i − γ and V_i ≥ 0, at its end V ≥ max(0, V_start + bad − n·γ) ≥ max(0,
+--   S_start + bad − n·γ) ≥ S (the ceiling only lowers S). So a window's S exceeds h only once V has:
+--   false alarms come no more often than the chain's run length says.
+--   The ceiling 2h changes nothing before S first exceeds h; after an incident it bounds the
+--   evidence S carries, so S falls back below h within about h ÷ (γ − p₀) in-control sessions.
 {% endif %}
 {% if measure.split %}
 -- A split value first seen after its key's first window has the key's earlier windows as history,
 -- each with value 0: it had no bad sessions in them.
 {% endif %}
 --
--- Verdict: a window breaches when it has a threshold, its {{ "EWMA statistic" if b.method == "ewma" else "value" }} is {{ "above" if check.direction == "up" else "below" }} it, and the data is enough
+-- Verdict: a window breaches when it has a threshold, its {{ "EWMA statistic" if b.method == "ewma" else "CUSUM statistic" if b.method == "cusum" else "value" }} is {{ "above" if check.direction == "up" else "below" }} it, and the data is enough
 -- to say so: at least {{ g.min_sessions }} sessions{% if measure.kind == "rate" %}, {{ g.min_bad }} bad{% endif %}{% if b.confidence %} and the confidence bound below{% endif %}. It is healthy when it has a threshold, a
 -- value, at least {{ g.min_sessions }} sessions and is not beyond the threshold. Every other window gets no verdict
 -- (breach NULL): too few sessions, no value (a zero denominator, no session with a value){% if measure.kind == "rate" or b.confidence %}, or
@@ -119,6 +137,30 @@ chain(key, split_value, step, window_number, z) AS (
 SELECT key, split_value, window_number, z AS statistic FROM chain WHERE step > 0;
 
 {% endif %}
+{% if b.method == "cusum" %}
+-- cusum_intervals: h for shift {{ b.shift }} and an in-control run length of {{ b.in_control_sessions }} sessions at each p₀ of
+-- the grid (log-spaced, {{ intervals | length }} rows), computed by toolkit.runlength.interval_table; each row also
+-- holds the next row's p₀ and h, between which h is interpolated linearly in ln p₀.
+CREATE OR REPLACE TEMP TABLE cusum_intervals AS
+SELECT p0, h, lead(p0) OVER (ORDER BY p0) AS next_p0, lead(h) OVER (ORDER BY p0) AS next_h
+FROM (VALUES
+{% for p0, h in intervals %}
+    ({{ "%.9g" | format(p0) }}::DOUBLE, {{ "%.9g" | format(h) }}::DOUBLE){{ "," if not loop.last }}
+{% endfor %}
+) AS grid(p0, h);
+
+-- cusum_start: each series' statistic where the last run left it (0 for a new series).
+CREATE OR REPLACE TEMP TABLE cusum_start AS
+SELECT s.key, s.split_value, coalesce(l.statistic, 0.0)::DOUBLE AS statistic
+FROM (SELECT DISTINCT key, split_value FROM new_windows) AS s
+LEFT JOIN (
+    SELECT key, split_value, arg_max(statistic, window_number) AS statistic
+    FROM windows
+    WHERE check_name = {{ check_lit }}
+    GROUP BY key, split_value
+) AS l ON {{ m.same_series("s", "l") }};
+
+{% endif %}
 -- judged: the new windows with their verdicts so far; `changed` marks those whose breach flag
 -- changed in the last round (at first, all of them).
 CREATE OR REPLACE TEMP TABLE judged AS
@@ -128,6 +170,9 @@ SELECT
     s.statistic,
 {% else %}
     *,
+{% endif %}
+{% if b.method == "cusum" %}
+    NULL::DOUBLE AS statistic,
 {% endif %}
     NULL::DOUBLE AS baseline,
     NULL::BIGINT AS history_windows,
@@ -179,7 +224,7 @@ framed AS (
         key, split_value, window_number, is_new,
 {% if b.method == "rolling_percentile" %}
         quantile_cont(value, {{ b.q }}) FILTER (WHERE eligible) OVER earlier AS baseline,
-{% elif b.method == "p_chart" %}
+{% elif b.method in ("p_chart", "cusum") %}
         sum(bad) FILTER (WHERE eligible) OVER earlier
             / nullif(sum(sessions) FILTER (WHERE eligible) OVER earlier, 0) AS baseline,
 {% elif b.method == "ewma" %}
@@ -196,6 +241,46 @@ SELECT key, split_value, window_number, baseline, {% if b.method == "ewma" %}spr
 FROM framed
 WHERE is_new;
 
+{% if b.method == "cusum" %}
+-- cusum_chain: each recomputed window's γ and h from its p₀, and the statistic chained window to
+-- window from where the last run left it.
+CREATE OR REPLACE TEMP TABLE cusum_chain AS
+WITH RECURSIVE designed AS (
+    SELECT j.key, j.split_value, j.window_number, j.value, j.sessions, j.bad,
+           greatest(base.baseline, {{ "%.9g" | format(intervals[0][0]) }}) AS p0,
+           base.history_windows >= {{ b.min_history }} AS enough
+    FROM judged AS j
+    JOIN baselines AS base ON j.key = base.key AND j.split_value IS NOT DISTINCT FROM base.split_value AND j.window_number = base.window_number
+),
+steps AS (
+    SELECT d.key, d.split_value, d.window_number, d.value, d.sessions, d.bad,
+           row_number() OVER (PARTITION BY d.key, d.split_value ORDER BY d.window_number) AS step,
+           CASE WHEN d.enough AND g.p0 IS NOT NULL THEN
+               ln((1 - d.p0) / (1 - {{ b.shift }} * d.p0)) / ln({{ b.shift }} * d.p0 * (1 - d.p0) / (d.p0 * (1 - {{ b.shift }} * d.p0)))
+           END AS gamma,
+           CASE WHEN d.enough THEN
+               CASE WHEN g.next_p0 IS NULL THEN g.h
+                    ELSE g.h + (g.next_h - g.h) * (ln(d.p0) - ln(g.p0)) / (ln(g.next_p0) - ln(g.p0)) END
+           END AS h
+    FROM designed AS d
+    LEFT JOIN cusum_intervals AS g
+        ON d.p0 >= g.p0 AND (d.p0 < g.next_p0 OR (g.next_p0 IS NULL AND d.p0 = g.p0))
+),
+chain(key, split_value, step, window_number, statistic, h) AS (
+    SELECT s.key, s.split_value, 0::BIGINT, NULL::BIGINT, s.statistic, NULL::DOUBLE
+    FROM cusum_start AS s
+    SEMI JOIN steps AS t ON {{ m.same_series("s", "t") }}
+    UNION ALL
+    SELECT t.key, t.split_value, t.step, t.window_number,
+           CASE WHEN t.h IS NULL OR t.value IS NULL THEN c.statistic
+                ELSE least(2 * t.h, greatest(0.0, c.statistic + t.bad - t.sessions * t.gamma)) END,
+           t.h
+    FROM chain AS c
+    JOIN steps AS t ON {{ m.same_series("t", "c") }} AND t.step = c.step + 1
+)
+SELECT key, split_value, window_number, statistic, h FROM chain WHERE step > 0;
+
+{% endif %}
 -- round_verdicts: each recomputed window's threshold and verdict: breach true (a breach), false (healthy,
 -- or no threshold yet with enough data to be history) or NULL (no verdict: too little data).
 CREATE OR REPLACE TEMP TABLE round_verdicts AS
@@ -204,7 +289,7 @@ SELECT
     CASE
         WHEN value IS NULL OR sessions < {{ g.min_sessions }} THEN NULL
         WHEN threshold IS NULL
-          OR NOT coalesce({{ "statistic" if b.method == "ewma" else "value" }} {{ ">" if check.direction == "up" else "<" }} threshold, false) THEN false
+          OR NOT coalesce({{ "statistic" if b.method in ("ewma", "cusum") else "value" }} {{ ">" if check.direction == "up" else "<" }} threshold, false) THEN false
 {% if measure.kind == "rate" %}
         WHEN bad < {{ g.min_bad }} THEN NULL
 {% endif %}
@@ -220,7 +305,7 @@ SELECT
     END AS breach
 FROM (
     SELECT
-        j.key, j.split_value, j.window_number, j.value, {% if b.method == "ewma" %}j.statistic, {% endif %}j.sessions, j.bad, base.baseline, base.history_windows,
+        j.key, j.split_value, j.window_number, j.value, {% if b.method == "ewma" %}j.statistic, {% elif b.method == "cusum" %}cs.statistic, {% endif %}j.sessions, j.bad, base.baseline, base.history_windows,
         CASE WHEN base.history_windows >= {{ b.min_history }} THEN
 {% if b.method == "rolling_percentile" %}
 {% set raw = b.factor ~ " * base.baseline" %}
@@ -230,10 +315,15 @@ FROM (
             {%+ if check.direction == "up" %}base.baseline + {{ spread }}{% else %}greatest(0.0, base.baseline - {{ spread }}){% endif +%}
 {% elif b.method == "ewma" %}
             base.baseline {{ "+" if check.direction == "up" else "-" }} {{ b.sigmas }} * base.spread * sqrt({{ b.lam }} / (2 - {{ b.lam }}))
+{% elif b.method == "cusum" %}
+            cs.h
 {% endif %}
         END AS threshold
     FROM judged AS j
     JOIN baselines AS base ON j.key = base.key AND j.split_value IS NOT DISTINCT FROM base.split_value AND j.window_number = base.window_number
+{% if b.method == "cusum" %}
+    JOIN cusum_chain AS cs ON j.key = cs.key AND j.split_value IS NOT DISTINCT FROM cs.split_value AND j.window_number = cs.window_number
+{% endif %}
 );
 
 -- What the round changed: only the windows whose breach flag differs from the last round's.
@@ -244,6 +334,9 @@ SET
     baseline = r.baseline,
     history_windows = r.history_windows,
     threshold = r.threshold,
+{% if b.method == "cusum" %}
+    statistic = r.statistic,
+{% endif %}
     changed = judged.breach IS DISTINCT FROM r.breach,
     breach = r.breach
 FROM round_verdicts AS r

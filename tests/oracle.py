@@ -10,7 +10,10 @@ Baseline methods: ``rolling_percentile`` (factor × quantile of earlier values, 
 ``p_chart`` (p̄ pooled over earlier windows ± sigmas standard errors at this window's n; NIST/SEMATECH
 e-Handbook §6.3.3.2), ``ewma`` (the statistic z = λ·value + (1−λ)·z of the previous window, against
 target ± sigmas·s·√(λ/(2−λ)), target and s given or the mean and sample standard deviation of
-earlier windows; §6.3.2.4), and for rates the Wilson (1927) score bound as a ``confidence`` gate.
+earlier windows; §6.3.2.4), ``cusum`` (the Bernoulli CUSUM S = min(2h, max(0, S + bad − n·γ)) of
+Reynolds and Stoumbos 1999, p₀ pooled as for the p-chart, h interpolated in ln p₀ from the table of
+decision intervals the toolkit computes, the one thing taken from it), and for rates the Wilson
+(1927) score bound as a ``confidence`` gate.
 
 Expressions are given as Python callables over a row dict that return ``None`` for SQL NULL.
 """
@@ -27,6 +30,8 @@ from datetime import datetime, timedelta
 from typing import Any
 
 import numpy as np
+
+from toolkit.runlength import interval_table
 
 Row = dict[str, Any]
 RowFn = Callable[[Row], Any]
@@ -63,6 +68,8 @@ class OracleCheck:
     lam: float | None = None                   # ewma: λ
     target: float | None = None                # ewma: the known mean, else from history
     sigma: float | None = None                 # ewma: the known standard deviation, else from history
+    shift: float | None = None                 # cusum: the rate to detect is shift × p₀
+    in_control_sessions: int | None = None     # cusum: the in-control run length h is chosen for
     confidence: float | None = None            # rate: the Wilson bound's two-sided confidence
     min_sessions: int = 1
     min_bad: int = 0
@@ -321,6 +328,31 @@ def limits(check: OracleCheck, hist: list[Earlier], sessions: int) -> tuple[floa
     raise ValueError(check.method)
 
 
+def cusum_step(s: float, x: float, n: int, k: float, ceiling: float | None) -> float:
+    """One step of a tabular CUSUM over a window of n observations summing to x, reference value k
+    per observation: max(0, s + x − n·k), and never above ``ceiling`` when one is given."""
+    s = max(0.0, s + x - n * k)
+    return s if ceiling is None else min(ceiling, s)
+
+
+def cusum_design(check: OracleCheck, p0: float) -> tuple[float, float] | None:
+    """(γ, h) of the CUSUM at in-control rate p₀: γ = ln[(1−p₀)/(1−p₁)] / ln[p₁(1−p₀)/(p₀(1−p₁))]
+    with p₁ = shift·p₀ (Reynolds and Stoumbos 1999), h linear in ln p₀ between the rows of the
+    toolkit's table; a p₀ below the table is its first row's, above it there is none."""
+    table = interval_table(float(check.shift), int(check.in_control_sessions))
+    p = max(p0, table[0][0])
+    if p > table[-1][0]:
+        return None
+    for (lo, h_lo), (hi, h_hi) in zip(table, table[1:]):
+        if lo <= p < hi:
+            h = h_lo + (h_hi - h_lo) * (math.log(p) - math.log(lo)) / (math.log(hi) - math.log(lo))
+            break
+    else:
+        h = table[-1][1]
+    p1 = check.shift * p
+    return math.log((1 - p) / (1 - p1)) / math.log(p1 * (1 - p) / (p * (1 - p1))), h
+
+
 def wilson(bad: int, n: int, confidence: float, end: str) -> float:
     """Wilson (1927) score interval's lower or upper end for bad of n at a two-sided confidence."""
     z = statistics.NormalDist().inv_cdf(1 - (1 - confidence) / 2)
@@ -349,6 +381,7 @@ def judge(check: OracleCheck, series: list[Row], prior: list[int] | tuple[int, .
     up = check.direction == "up"
     z = check.target if check.method == "ewma" else None   # the EWMA of the previous window
     zeros = not z                                           # only zeros went into z: it is exact
+    cusum = 0.0                                             # the CUSUM of the previous window
     for w in series:
         value = w["value"]
         if check.method == "ewma":
@@ -363,9 +396,20 @@ def judge(check: OracleCheck, series: list[Row], prior: list[int] | tuple[int, .
             w["statistic"] = None
         hist = eligible[-check.history:]
         w["history_windows"] = len(hist)
-        w["baseline"], threshold, exact = limits(check, hist, w["sessions"])
+        if check.method == "cusum":
+            # p₀ pooled as for the p-chart; a window without a design (too little history, p₀ above
+            # the table) or without a value keeps S
+            pooled = sum(h.bad for h in hist) / sum(h.sessions for h in hist) if hist else None
+            design = cusum_design(check, pooled) if len(hist) >= check.min_history else None
+            if design is not None and value is not None:
+                gamma, h = design
+                cusum = cusum_step(cusum, w["bad"], w["sessions"], gamma, 2 * h)
+            w["statistic"] = cusum
+            w["baseline"], threshold, exact = pooled, (design[1] if design else None), False
+        else:
+            w["baseline"], threshold, exact = limits(check, hist, w["sessions"])
         w["threshold"] = threshold
-        judged = w["statistic"] if check.method == "ewma" else value
+        judged = w["statistic"] if check.method in ("ewma", "cusum") else value
         crosses = False
         if threshold is not None and value is not None and judged is not None:
             crosses = judged > threshold if up else judged < threshold

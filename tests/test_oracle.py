@@ -170,6 +170,13 @@ def baselines(draw, kind: str, direction: str, method: str | None = None,
     min_history = draw(st.integers(1, history))
     spec: dict[str, Any] = {"method": method, "history": history, "min_history": min_history}
     fields: dict[str, Any] = {"method": method, "history": history, "min_history": min_history}
+    if method == "cusum":
+        # short in-control run lengths, so that a few dozen sessions can signal
+        shift = draw(st.sampled_from([1.5, 3.0]))
+        sessions = draw(st.sampled_from([30, 300]))
+        spec.update(shift=shift, in_control_sessions=sessions)
+        fields.update(shift=shift, in_control_sessions=sessions)
+        return spec, fields
     if method == "rolling_percentile":
         factor = draw(st.sampled_from([1.0, 1.25, 1.5] if direction == "up" else [1.0, 0.8, 0.5]))
         base_q = draw(st.sampled_from([0.5, 0.75, 0.9]))
@@ -204,7 +211,7 @@ def cases(draw, kind: str, window: str, split: bool | None = None, name: str = "
     """A check of ``kind`` and ``window`` (count windows of ``sessions`` sessions at most and
     least), its other keys drawn; ``method`` and ``confidence`` fix its baseline's."""
     by = draw(st.sampled_from([(), ("site",), ("site", "tier"), ("tier",)]))
-    direction = draw(st.sampled_from(["up", "down"]))
+    direction = "up" if method == "cusum" else draw(st.sampled_from(["up", "down"]))
     measure: dict[str, Any] = {"kind": kind}
     fields: dict[str, Any] = {"kind": kind}
     if kind == "rate":
@@ -407,6 +414,10 @@ def check_against_oracle(cases_: list[Case], rows: list[dict]) -> None:
             ungated = oracle.run_check(replace(case.check, confidence=None), rows)
             held = sum(bool(a["breach"]) and not b["breach"] for a, b in zip(ungated.windows, r.windows))
             event(f"windows the confidence gate held back: {'some' if held else 'none'}")
+        if case.check.method == "cusum":
+            # S above the window's own bad count holds evidence carried from the windows before
+            event(f"breaches on evidence carried from earlier windows: "
+                  f"{'some' if any(w['breach'] and w['statistic'] > w['bad'] for w in r.windows) else 'none'}")
         if case.check.method == "ewma":
             up = case.check.direction == "up"
             alone = [w for w in r.windows if w["breach"] and (w["value"] <= w["threshold"] if up
@@ -555,6 +566,44 @@ def test_oracle_ewma_nist_example() -> None:
         49.5 + 3 * 3.5355339 * math.sqrt(0.3 / 1.7), abs=1e-6)       # s of 52 and 47 = 3.5355339
 
 
+def test_oracle_cusum_step_nist_example() -> None:
+    # NIST/SEMATECH e-Handbook §6.3.2.3, tabular CUSUM (transcribed): target 325, k = 0.3175,
+    # h = 4.1959; the upper sum first exceeds h at observation 14, observations 14–20 signal,
+    # S_hi(20) ≈ 19.04. One observation per step, reference value target + k.
+    data = [324.925, 324.675, 324.725, 324.350, 325.350, 325.225, 324.125, 324.525, 325.225, 324.600,
+            324.625, 325.150, 328.325, 327.250, 327.825, 328.500, 326.675, 327.775, 326.875, 328.350]
+    h, s, sums = 4.1959, 0.0, []
+    for x in data:
+        s = oracle.cusum_step(s, x, 1, 325 + 0.3175, None)
+        sums.append(s)
+    assert [i + 1 for i, v in enumerate(sums) if v > h] == list(range(14, 21))
+    assert sums[-1] == pytest.approx(19.04, abs=0.01)
+    # with the ceiling at 2h the same observations signal, and S stays at most 2h
+    s, capped = 0.0, []
+    for x in data:
+        s = oracle.cusum_step(s, x, 1, 325 + 0.3175, 2 * h)
+        capped.append(s)
+    assert [i + 1 for i, v in enumerate(capped) if v > h] == list(range(14, 21))
+    assert max(capped) == 2 * h
+
+
+def test_oracle_cusum_by_hand() -> None:
+    # 10 windows of 20 sessions, 1 bad each (p₀ = 5 %), then 4 windows of 8 bad: S rises by
+    # 8 − 20γ a window; a shift of 2 and 2,000 sessions between false alarms
+    check = _check(method="cusum", shift=2.0, in_control_sessions=2000, history=10, min_history=3)
+    series = [{"value": b / 20, "sessions": 20, "bad": b, "exact": True} for b in [1] * 10 + [8] * 4]
+    oracle.judge(check, series)
+    gamma, h = oracle.cusum_design(check, 0.05)
+    assert 0.05 < gamma < 0.1 and h > 0
+    assert [w["statistic"] for w in series[:10]] == [0.0] * 10           # 1 bad < 20γ: S stays 0
+    assert series[10]["statistic"] == pytest.approx(8 - 20 * gamma)
+    assert series[11]["statistic"] == pytest.approx(min(2 * h, 2 * (8 - 20 * gamma)))
+    first = next(i for i, w in enumerate(series) if w["breach"])
+    assert series[first]["statistic"] > h >= series[first - 1]["statistic"]
+    assert all(w["baseline"] == pytest.approx(0.05) for w in series[10:])  # breaches are not history
+    assert series[-1]["statistic"] == pytest.approx(2 * h)                # the ceiling
+
+
 def test_oracle_ewma_breaches_on_its_statistic() -> None:
     check = _check(kind="ratio", method="ewma", lam=0.5, sigmas=1.0, target=0.0, sigma=1.0, min_history=1)
     series = [{"value": v, "sessions": 1, "bad": None, "exact": True} for v in (0.0, 4.0, 0.0, None, 0.0)]
@@ -684,6 +733,14 @@ def test_ewma(data: st.DataObject) -> None:
     check_against_oracle([case], burst_rows(data, case))
 
 
+@SETTINGS
+@given(data=st.data())
+def test_cusum(data: st.DataObject) -> None:
+    window = data.draw(st.sampled_from(["count", "time"]))
+    case = data.draw(cases("rate", window, method="cusum", sessions=(4, 12)))
+    check_against_oracle([case], burst_rows(data, case, max_rows=160))
+
+
 # the gate decides a verdict in about one example of six (a window over its threshold whose Wilson
 # bound is not): twice the examples
 @settings(SETTINGS, max_examples=2 * EXAMPLES)
@@ -807,6 +864,12 @@ def multi_run_cases() -> list[Case]:
             {"kind": "quantile", "of": QUANTILE_OF[0].py, "q": 0.5, "every": timedelta(minutes=30)},
             direction="down", baseline={"method": "ewma", "lambda": 0.5, "sigmas": 1.0, "target": 1250.0,
                                         "sigma": 300.0}),
+        # the CUSUM's statistic carried from run to run, and capped at 2h after the burst
+        _multi_case(
+            "count_cusum", ["tier"], {"kind": "rate", "bad": BAD[0].text},
+            {"sessions": 6, "max_wait": "40m"}, {"min_sessions": 3},
+            {"kind": "rate", "bad": BAD[0].py, "sessions": 6, "max_wait": timedelta(minutes=40)},
+            baseline={"method": "cusum", "shift": 2.0, "in_control_sessions": 50}),
     ]
 
 

@@ -154,7 +154,7 @@ def test_chart_data_comes_from_the_windows_with_the_ewma_statistic(tmp_path: Pat
         assert s.window_end == [r[0] for r in expected]
         assert s.plotted == [r[1] if r[1] is not None else r[2] for r in expected]
         assert any(r[1] is not None and r[1] != r[2] for r in expected)  # the statistic, not the value
-        assert s.breach == [r[3] for r in expected]
+        assert s.breach == [bool(r[3]) for r in expected]   # no verdict (NULL) is drawn as no breach
     con.close()
 
 
@@ -199,3 +199,18 @@ def test_report_and_alerts_read_the_published_copies_while_a_run_holds_the_wareh
         assert parse(out.read_text()).charts == 2
         listed = invoke("alerts", "--status", "open", "-p", str(project))
         assert listed.exit_code == 0 and HOSTILE in listed.output
+
+
+def test_a_cusum_alert_shows_its_statistic_and_h_as_counts(tmp_path: Path) -> None:
+    cusum = CHECK.replace("method: rolling_percentile, q: 0.5, history: 10, min_history: 3, factor: 1, floor: 0.1",
+                          "method: cusum, shift: 2, in_control_sessions: 200, history: 10, min_history: 3")
+    project = load_project(known_project(tmp_path, checks={"c.yml": cusum}))
+    assert invoke("run", "-p", str(project.file)).exit_code == 0
+    con = duckdb.connect(str(project.warehouse), read_only=True)
+    (threshold,) = con.execute("SELECT threshold FROM alerts ORDER BY opened_at LIMIT 1").fetchone()
+    con.close()
+    assert invoke("report", "-p", str(project.file), "--out", str(tmp_path / "r.html")).exit_code == 0
+    page = (tmp_path / "r.html").read_text(encoding="utf-8")
+    assert "CUSUM statistic" in page and "EWMA statistic" not in page
+    # h is a count of excess bad sessions, not a rate: shown as a number, not a percentage
+    assert f"{threshold:,.4g}" in page and f"{threshold * 100:.2f} %" not in page

@@ -47,6 +47,9 @@ def variant(old: str, new: str) -> str:
     return GOOD.replace(old, new, 1)
 
 
+CUSUM = variant("  method: rolling_percentile\n  q: 0.9\n",
+                "  method: cusum\n  shift: 1.5\n  in_control_sessions: 100000\n").replace("  factor: 1.5\n  floor: 0.05\n", "")
+
 # (case id, check file text, expected line, expected words in the message)
 CHECK_CASES = [
     ("yaml-syntax", GOOD.replace("by: [site, title_id]", "by: [site, title_id"), 5, "YAML syntax"),
@@ -99,6 +102,21 @@ CHECK_CASES = [
     ("ewma-lambda-range", variant(
         "  method: rolling_percentile\n  q: 0.9\n", "  method: ewma\n  lambda: 1.3\n").replace(
         "  factor: 1.5\n  floor: 0.05\n", ""), 14, "baseline.lambda: must be between 0 and 1"),
+    ("cusum-on-ratio", CUSUM.replace(
+        "  kind: rate\n  bad: error_code IS NOT NULL\n  split: error_code",
+        "  kind: ratio\n  numerator: rebuffer_ms\n  denominator: play_ms").replace("  min_bad: 3\n", ""), 13,
+        "baseline.method: cusum applies to rate measures, not ratio"),
+    ("cusum-shift-not-above-1", CUSUM.replace("  shift: 1.5", "  shift: 1"), 14, "baseline.shift must be above 1"),
+    ("cusum-sessions-positive", CUSUM.replace("  in_control_sessions: 100000", "  in_control_sessions: 0"), 15,
+     "baseline.in_control_sessions: must be at least 1"),
+    ("cusum-sessions-whole", CUSUM.replace("  in_control_sessions: 100000", "  in_control_sessions: 1.5e5"), 15,
+     "baseline.in_control_sessions: expected a whole number"),
+    ("cusum-missing-shift", CUSUM.replace("  shift: 1.5\n", ""), 12, "missing key 'shift' in baseline"),
+    ("cusum-down", CUSUM.replace("severity: high", "severity: high\ndirection: down"), 13,
+     "baseline.method: cusum detects a rise of the rate (direction: up), not a fall"),
+    ("cusum-beyond-the-chain", CUSUM.replace("  shift: 1.5", "  shift: 1.05").replace(
+        "  in_control_sessions: 100000", "  in_control_sessions: 1000000000000"), 15,
+     "needs a decision interval above h = 200 for some p0; give a larger shift or fewer sessions"),
     ("duplicate-key", variant("severity: high", "severity: high\nseverity: low"), 23, "duplicate key 'severity'"),
     ("not-a-mapping", "- just\n- a list\n", 1, "must be a mapping"),
     ("quantile-needs-number", variant(
@@ -341,3 +359,8 @@ def test_validate_command_names_the_clock_function_and_its_line(make_project) ->
     assert result.output.strip().endswith(
         "checks/title_errors.yml:4: where: localtimestamp is not allowed: decisions use data time, never the "
         "clock or chance; allowed functions are listed in README.md under 'SQL expressions'")
+
+
+def test_a_cusum_check_loads(make_project) -> None:
+    check = load_project(make_project({"title_errors.yml": CUSUM})).checks["title_errors"]
+    assert (check.baseline.method, check.baseline.shift, check.baseline.in_control_sessions) == ("cusum", 1.5, 100000)

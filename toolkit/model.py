@@ -126,6 +126,8 @@ class Baseline:
     lam: float | None = None  # EWMA λ (`lambda` in YAML)
     target: float | None = None
     sigma: float | None = None
+    shift: float | None = None  # cusum: p₁ = shift × p₀
+    in_control_sessions: int | None = None  # cusum: the in-control average run length, in sessions
 
 
 @dataclass(frozen=True)

@@ -17,6 +17,7 @@ from toolkit.config.expressions import unknown_column
 from toolkit.config.yamlsource import Located, load
 from toolkit.model import Baseline, Check, Guard, Lifecycle, Measure, Project, Source, Window
 from toolkit.problems import Problem, display_path
+from toolkit.runlength import H_LIMIT, ChainError, interval_table
 
 
 def load_checks(folder: Path, sources: dict[str, Source], con: duckdb.DuckDBPyConnection,
@@ -67,7 +68,7 @@ def load_check(doc: Located, sources: dict[str, Source], con: duckdb.DuckDBPyCon
                           f"attributes: {unknown_column(column, source.columns)} in source '{source.name}'")
     measure = _measure(doc, top.get("measure"), binder, problems)
     window = _window(doc, top.get("window"), problems)
-    baseline = _baseline(doc, top.get("baseline"), measure, problems)
+    baseline = _baseline(doc, top.get("baseline"), measure, problems, direction)
     guard_s = Section(doc, ("guard",), top.get("guard") or {}, GUARD_KEYS, problems)
     guard = Guard(guard_s.get("min_sessions"), guard_s.get("min_bad"))
     if measure is not None and measure.kind != "rate" and "min_bad" in guard_s.raw:
@@ -137,7 +138,8 @@ def _window(doc: Located, raw: Any, problems: list[Problem]) -> Window | None:
     return None
 
 
-def _baseline(doc: Located, raw: Any, measure: Measure | None, problems: list[Problem]) -> Baseline | None:
+def _baseline(doc: Located, raw: Any, measure: Measure | None, problems: list[Problem],
+              direction: str | None = "up") -> Baseline | None:
     if raw is None:
         return None
     method_name = raw.get("method") if isinstance(raw, dict) else None
@@ -153,6 +155,8 @@ def _baseline(doc: Located, raw: Any, measure: Measure | None, problems: list[Pr
         section.error(("baseline", "confidence"),
                       f"baseline.confidence applies to rate measures (a Wilson bound), not {measure.kind}")
         return None
+    if method.name == "cusum" and not _cusum_fits(section, values, direction):
+        return None
     if values.get("history") and values.get("min_history") and values["min_history"] > values["history"]:
         section.error(("baseline", "min_history"),
                       f"baseline.min_history ({values['min_history']}) cannot exceed history ({values['history']})")
@@ -161,6 +165,27 @@ def _baseline(doc: Located, raw: Any, measure: Measure | None, problems: list[Pr
         return None
     renamed = {("lam" if k == "lambda" else k): v for k, v in values.items() if v is not None}
     return Baseline(method=method.name, **renamed)
+
+
+def _cusum_fits(section: Section, values: dict[str, Any], direction: str | None) -> bool:
+    """A CUSUM baseline's keys make sense together, and its decision intervals can be computed."""
+    shift, sessions = values.get("shift"), values.get("in_control_sessions")
+    if direction == "down":
+        section.error(("baseline", "method"), "baseline.method: cusum detects a rise of the rate (direction: up), not a fall")
+        return False
+    if shift is not None and shift <= 1:
+        section.error(("baseline", "shift"), f"baseline.shift must be above 1 (the rate to detect is shift × p0), got {shift}")
+        return False
+    if shift is None or sessions is None:
+        return True
+    try:
+        interval_table(float(shift), int(sessions))
+    except ChainError:
+        section.error(("baseline", "in_control_sessions"),
+                      f"baseline.in_control_sessions: {sessions} sessions at shift {shift} needs a decision "
+                      f"interval above h = {H_LIMIT} for some p0; give a larger shift or fewer sessions")
+        return False
+    return True
 
 
 def validate_check(project: Project, doc: Located) -> tuple[Check | None, list[Problem]]:

@@ -114,6 +114,20 @@ BASELINES: dict[str, Kind] = {
                     "(default: of earlier windows)", minimum=0),
             ),
         ),
+        Kind(
+            "cusum",
+            "Bernoulli CUSUM (Reynolds and Stoumbos 1999): S = max(0, S + bad − n·γ) window after "
+            "window, γ from p₀ (pooled over earlier windows) and p₁ = shift × p₀; the window breaches "
+            "when S > h, h chosen by Markov chain (Brook and Evans 1972) so that false alarms come "
+            "once in in_control_sessions sessions",
+            (
+                Key("shift", "number", "the rise to detect, as a multiple of the in-control rate p₀ (above 1)", True),
+                Key("in_control_sessions", "int", "about how many sessions in control between false alarms "
+                    "(the chart's in-control average run length)", True, minimum=1),
+                *_HISTORY,
+            ),
+            rate_only=True,
+        ),
     )
 }
 

@@ -42,7 +42,8 @@ class Series:
     plotted: list[float | None] = field(default_factory=list)
     threshold: list[float | None] = field(default_factory=list)
     breach: list[bool] = field(default_factory=list)
-    ewma: bool = False
+    ewma: bool = False  # the windows carry a statistic (EWMA or CUSUM): it is plotted, not the value
+    statistic: str = "EWMA statistic"
     span_windows: int = 0
     thinned: bool = False
 
@@ -127,6 +128,10 @@ def _card(project: Project, alert: dict[str, Any], series: Series, earlier: int)
     check = project.checks.get(alert["check_name"])
     kind = check.measure.kind if check else None
     fmt = _format_for(kind)
+    # a CUSUM's threshold h and statistic S count bad sessions, not a rate
+    cusum = check is not None and check.baseline.method == "cusum"
+    if cusum:
+        series.statistic = "CUSUM statistic"
     return {
         "alert": alert,
         "anchor": f"alert-{alert['alert_id']}",
@@ -141,14 +146,14 @@ def _card(project: Project, alert: dict[str, Any], series: Series, earlier: int)
             ("affected sessions", f"{alert['affected_sessions']:,}"),
             ("affected per hour", f"{alert['affected_per_hour']:,.0f}"),
             ("peak value", fmt(alert["peak_value"])),
-            ("threshold at opening", fmt(alert["threshold"])),
+            ("threshold at opening", (_format_for(None) if cusum else fmt)(alert["threshold"])),
             ("earlier incidents of this series", str(earlier)),
             ("alert id", alert["alert_id"]),
             ("fingerprint", alert["fingerprint"]),
         ],
         "about": check.about if check else "",
         "direction": check.direction if check else None,
-        "chart": markupsafe.Markup(chart_svg(alert, series, kind)) if series.shown else None,
+        "chart": markupsafe.Markup(chart_svg(alert, series, None if cusum else kind)) if series.shown else None,
         "series": series,
     }
 
@@ -175,7 +180,7 @@ def chart_svg(alert: dict[str, Any], series: Series, kind: str | None) -> str:
         fig = Figure(figsize=(8.6, 2.7), dpi=72, layout="constrained")
         FigureCanvasSVG(fig)
         ax = fig.add_subplot()
-        label = "EWMA statistic" if series.ewma else "window value"
+        label = series.statistic if series.ewma else "window value"
         ax.plot(series.window_end, ys, color="#1f5f8b", linewidth=1.3, label=label)
         ax.plot(series.window_end, ts, color="#b5651d", linewidth=1.1, linestyle="--", label="threshold")
         hits = [(x, y) for x, y, b in zip(series.window_end, ys, series.breach) if b]

@@ -11,6 +11,7 @@ import hashlib
 from dataclasses import dataclass, field
 
 from toolkit.model import Check, Source
+from toolkit.runlength import interval_table
 from toolkit.sql.script import script
 from toolkit.sql.templates import Stage, render, stage
 
@@ -88,6 +89,9 @@ def compile_check(check: Check) -> CompiledCheck:
         "baseline": check.baseline,
         "guard": check.guard,
         "lifecycle": check.lifecycle,
+        # the CUSUM's decision intervals on a grid of p₀, which the verdict SQL interpolates
+        "intervals": (interval_table(float(check.baseline.shift), int(check.baseline.in_control_sessions))
+                      if check.baseline.method == "cusum" else ()),
     }
     stages = (_source_stage([check]),) + tuple(stage(name, render(f"{name}.sql", **context)) for name in CHECK_STAGES)
     return CompiledCheck(check.name, stages, definition_hash(stages), check.source)

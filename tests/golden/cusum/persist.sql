@@ -1,0 +1,66 @@
+-- ── stage 6 · persist ───────────────────────────────────────────────────────────────────────
+-- Everything below commits in the run's one transaction, with the files read and the run record.
+INSERT INTO windows BY NAME
+SELECT
+    'golden' AS check_name, key, key_text, split_value, window_number, key_window, window_start, window_end,
+    sessions, bad, value, statistic, baseline, history_windows, threshold, breach,
+    $run_id AS run_id
+FROM judged;
+
+INSERT INTO key_windows BY NAME
+SELECT 'golden' AS check_name, key, key_text, key_window, window_number, window_start, window_end, sessions, bad,
+       $run_id AS run_id
+FROM new_key_windows;
+
+DELETE FROM key_state
+WHERE check_name = 'golden' AND key IN (SELECT key FROM new_key_windows);
+
+INSERT INTO key_state BY NAME
+SELECT 'golden' AS check_name, key, max(window_number) AS last_window_number, max(window_end) AS last_end,
+       max(key_window) AS windows
+FROM new_key_windows
+GROUP BY key;
+
+DELETE FROM carry WHERE check_name = 'golden';
+
+INSERT INTO carry BY NAME
+SELECT 'golden' AS check_name, * FROM carry_next;
+
+DELETE FROM alerts
+WHERE alert_id IN (SELECT alert_id FROM alert_rows WHERE touched);
+
+INSERT INTO alerts BY NAME
+SELECT * EXCLUDE (episode, touched, closed_silently)
+FROM alert_rows
+WHERE touched;
+
+INSERT INTO alert_events BY NAME
+SELECT * FROM event_rows;
+
+DELETE FROM check_state WHERE check_name = 'golden';
+
+INSERT INTO check_state BY NAME
+SELECT 'golden' AS check_name, current AS watermark, $definition AS definition_hash, $run_id AS last_run_id
+FROM watermarks;
+
+INSERT INTO files_read BY NAME
+SELECT 'golden' AS check_name, 'sessions' AS source_name, f.path, f.size,
+       f.modified_at, $run_id AS run_id, coalesce(n.rows, 0) AS rows, coalesce(n.invalid_rows, 0) AS invalid_rows
+FROM (SELECT unnest($manifest, recursive := true)) AS f
+LEFT JOIN lake_file_rows AS n ON n.path = f.path;
+
+INSERT INTO run_checks BY NAME
+SELECT
+    $run_id AS run_id, 'golden' AS check_name,
+    len($manifest) AS files_read,
+    c.rows_read, c.invalid_rows, c.rows_excluded, c.rows_filtered, c.duplicate_rows,
+    -- late for its window, or by more than dedup_horizon behind the data already read
+    (SELECT late_rows FROM window_counts) + c.beyond_horizon AS late_rows,
+    c.beyond_horizon,
+    c.nonfinite_values,
+    (SELECT count(*) FROM judged) AS windows_written,
+    (SELECT count(*) FROM judged WHERE breach) AS breach_windows,
+    (SELECT count(*) FROM event_rows WHERE event = 'opened') AS alerts_opened,
+    (SELECT count(*) FROM event_rows WHERE event = 'closed') AS alerts_closed,
+    (SELECT current FROM watermarks) AS watermark
+FROM scan_counts AS c;
