@@ -20,6 +20,7 @@ from toolkit.sql.plans import check_plan
 from toolkit.outputs.listings import alerts_json, alerts_table, list_alerts
 from toolkit.problems import PlimsollError
 from toolkit.config.project import load_project
+from toolkit.engine.explain import explain_alert, explain_at, explain_sql, explanation_json, explanation_table
 from toolkit.engine.runner import run as run_checks
 from toolkit.engine.runner import RunResult, select_checks
 from toolkit.warehouse_demo.generate import MAX_SESSIONS, MIN_SESSIONS
@@ -111,6 +112,9 @@ def show_sql(check: str, project_file: Path) -> None:
     project = load_project(project_file)
     (chosen,) = select_checks(project, [check])
     click.echo(check_plan(chosen).sql, nl=False)
+    explaining = explain_sql(chosen)
+    if explaining:
+        click.echo("\n-- ── plimsoll explain (not part of a run) " + "─" * 58 + "\n" + explaining, nl=False)
 
 
 @main.command()
@@ -145,6 +149,37 @@ def run(project_file: Path, checks: tuple[str, ...], rebuild: bool, wait: float)
         click.echo(str(problem), err=True)
     if result.skipped:
         sys.exit(2)
+
+
+@main.command()
+@click.argument("target")
+@click.option("--at", type=DATA_TIME, default=None,
+              help="TARGET is a check: explain its window holding this data time (else TARGET is an alert id).")
+@click.option("--key", "key_text", default="", help="With --at: the series, as COL=VALUE,... for every 'by' column.")
+@click.option("--by", "by_text", default="", help="The attributes to drill into, COL,... (default: the check's or source's).")
+@click.option("--json", "as_json", is_flag=True, help="JSON for scripts.")
+@project_option
+@reports_errors
+def explain(target: str, at: datetime | None, key_text: str, by_text: str, as_json: bool, project_file: Path) -> None:
+    """Rank where in the attributes a window's bad sessions exceed what was expected.
+
+    TARGET is an alert id (its opening window), or with --at a check name.
+    """
+    project = load_project(project_file)
+    by = tuple(c.strip() for c in by_text.split(",") if c.strip())
+    if at is None:
+        if key_text:
+            raise click.UsageError("--key goes with --at CHECK")
+        found = explain_alert(project, target, by)
+    else:
+        key: dict[str, str] = {}
+        for part in (p for p in key_text.split(",") if p.strip()):
+            column, sep, value = part.partition("=")
+            if not sep:
+                raise click.UsageError(f"--key: '{part}' is not COLUMN=VALUE")
+            key[column.strip()] = value.strip()
+        found = explain_at(project, target, at, key, by)
+    click.echo(explanation_json(found) if as_json else explanation_table(found), nl=False)
 
 
 @main.command()

@@ -9,14 +9,18 @@ answer explains what the first left.
 from __future__ import annotations
 
 import itertools
-import math
+import json
 from dataclasses import dataclass
 from datetime import datetime
 from typing import Any
 
 import duckdb
 
-from toolkit.model import Check
+from toolkit.engine import warehouse
+from toolkit.lake import files as lake
+from toolkit.lake import storage
+from toolkit.model import Check, Project
+from toolkit.problems import PlimsollError
 from toolkit.sql.templates import Named, named
 
 # The weight of the prior that shrinks a combination's own historical rate toward the series', in
@@ -37,8 +41,8 @@ DEPTH = 3
 TOP = 5
 
 
-class ExplainError(ValueError):
-    """A window that cannot be explained, said in one line."""
+class ExplainError(PlimsollError):
+    """A window that cannot be explained, said in one line (exit 1)."""
 
 
 @dataclass(frozen=True)
@@ -187,5 +191,147 @@ def refine(candidates: list[tuple]) -> tuple:
         current = max(finer, key=lambda c: c[4])
 
 
-def finite(value: float | None) -> float | None:
-    return value if value is not None and math.isfinite(value) else None
+@dataclass(frozen=True)
+class Explanation:
+    """The causes of one window of one series."""
+
+    check: str
+    key_text: str
+    split_value: str | None
+    window_start: datetime
+    window_end: datetime
+    attributes: tuple[str, ...]
+    history_windows: int
+    causes: list[Cause]
+
+    def as_json(self) -> list[dict[str, Any]]:
+        return [c.as_json() for c in self.causes]
+
+
+_ALERT = """
+SELECT a.check_name, a.key, a.key_text, a.split_value, w.window_number, w.window_start, w.window_end
+FROM alerts AS a
+LEFT JOIN windows AS w
+    ON w.check_name = a.check_name AND w.key = a.key AND w.split_value IS NOT DISTINCT FROM a.split_value
+   AND w.window_end = a.opened_at AND w.breach
+WHERE a.alert_id = $alert_id
+"""
+
+_SERIES_WINDOWS = """
+SELECT key, key_text, split_value, window_number, window_start, window_end, breach
+FROM windows
+WHERE check_name = $check
+ORDER BY window_number
+"""
+
+
+def explain_alert(project: Project, alert_id: str, by: tuple[str, ...] = (), top: int = TOP) -> Explanation:
+    """The causes of the window that opened alert ``alert_id``."""
+    con = warehouse.open_for_reading(project)
+    try:
+        found = con.execute(_ALERT, {"alert_id": alert_id}).fetchone()
+        if found is None:
+            raise ExplainError(f"no alert {alert_id} in {project.warehouse}")
+        name, key, key_text, split_value, number, start, end = found
+        check = _check(project, name)
+        if number is None:
+            raise ExplainError(f"alert {alert_id}: its opening window is no longer in the warehouse "
+                               f"(check '{name}' was rebuilt since)")
+        windows = [w for w in con.execute(_SERIES_WINDOWS, {"check": name}).fetchall()
+                   if w[0] == key and w[2] == split_value]
+    finally:
+        con.close()
+    return _explain(project, check, key, key_text, split_value, start, end, number, windows, by, top)
+
+
+def explain_at(project: Project, check_name: str, at: datetime, key: dict[str, str] | None = None,
+               by: tuple[str, ...] = (), top: int = TOP) -> Explanation:
+    """The causes of the window of ``check_name``'s series ``key`` that holds data time ``at``
+    (closed, or for a time window still open)."""
+    check = _check(project, check_name)
+    key = key or {}
+    if set(key) != set(check.by):
+        wanted = ", ".join(f"{c}=…" for c in check.by) or "none (the check has no 'by')"
+        raise ExplainError(f"check '{check_name}': --key must give every 'by' column: {wanted}")
+    con = warehouse.open_for_reading(project)
+    try:
+        rows = con.execute(_SERIES_WINDOWS, {"check": check_name}).fetchall()
+    finally:
+        con.close()
+    windows = [w for w in rows if w[0] == key and w[2] is None]
+    text = ", ".join(f"{c}={key[c]}" for c in check.by)
+    if check.window.sessions is not None:
+        holding = [w for w in windows if w[4] <= at <= w[5]]
+        if not holding:
+            raise ExplainError(f"check '{check_name}': no closed window of {text or 'the series'} holds "
+                               f"{at:%Y-%m-%d %H:%M:%S} (a count window is explained once it has closed)")
+        number, start, end = holding[0][3], holding[0][4], holding[0][5]
+    else:
+        width = check.window.every
+        epoch = datetime(1970, 1, 1)
+        number = (at - epoch) // width
+        start = epoch + number * width
+        end = start + width
+    return _explain(project, check, key, text, None, start, end, number, windows, by, top)
+
+
+def _check(project: Project, name: str) -> Check:
+    check = project.checks.get(name)
+    if check is None:
+        raise ExplainError(f"no check '{name}' in {project.file}")
+    return check
+
+
+def _explain(project: Project, check: Check, key: dict[str, str], key_text: str, split_value: str | None,
+             start: datetime, end: datetime, number: int, windows: list[tuple], by: tuple[str, ...],
+             top: int) -> Explanation:
+    attributes = tuple(by) or check.attributes
+    unknown = [c for c in attributes if check.source.columns and c not in check.source.columns]
+    if unknown:
+        raise ExplainError(f"check '{check.name}': --by: no column {', '.join(unknown)} in source "
+                           f"'{check.source.name}'")
+    attributes = tuple(c for c in attributes if c not in check.by and c != check.measure.split)
+    history = [(w[4], w[5]) for w in windows if w[3] < number and w[6] is False][-check.baseline.history:]
+    files = [f.where for f in lake.list_source(check.source)]
+    con = duckdb.connect()
+    try:
+        if check.source.storage is not None:
+            storage.register(con, check.source.storage)
+        causes = explain_rows(con, check, files, start, end, history, attributes, key, split_value, top=top)
+    finally:
+        con.close()
+    return Explanation(check.name, key_text, split_value, start, end, attributes, len(history), causes)
+
+
+def explanation_table(found: Explanation) -> str:
+    """What `plimsoll explain` prints: the window, then one line per cause."""
+    head = (f"{found.check} {found.key_text or '(all sessions)'}"
+            f"{' [' + found.split_value + ']' if found.split_value else ''}, window "
+            f"{found.window_start:%Y-%m-%d %H:%M:%S} to {found.window_end:%Y-%m-%d %H:%M:%S}, against "
+            f"{found.history_windows} earlier healthy windows, by {', '.join(found.attributes)}")
+    if not found.causes:
+        return head + "\nno combination has more bad sessions than expected\n"
+    rows = [("rank", "where", "bad", "expected", "share of excess", "score", "answer")]
+    for c in found.causes:
+        where = ", ".join(f"{k}={v if v is not None else '<null>'}" for k, v in c.key.items())
+        share = f"{100 * c.excess_share:.0f} %" if c.excess_share is not None else "-"
+        rows.append((str(c.rank), where, f"{c.bad:,.0f}", f"{c.expected:,.1f}", share, f"{c.score:,.1f}",
+                     "yes" if c.significant else ""))
+    widths = [max(len(r[i]) for r in rows) for i in range(len(rows[0]))]
+    lines = ["  ".join(v.ljust(w) if i in (1, 6) else v.rjust(w) for i, (v, w) in enumerate(zip(r, widths))).rstrip()
+             for r in rows]
+    return (head + "\n" + "\n".join(lines) + "\n"
+            "answer: significant once the answers above it are set aside; the other rows are the next best "
+            "combinations of the whole window\n")
+
+
+def explain_sql(check: Check, by: tuple[str, ...] = ()) -> str:
+    """The statements `plimsoll explain` runs for ``check``, for `plimsoll sql`."""
+    attributes = tuple(c for c in (by or check.attributes) if c not in check.by and c != check.measure.split)
+    if check.measure.kind not in ("rate", "ratio") or not attributes:
+        return ""
+    return statements(check, attributes).text("explain.")
+
+
+def explanation_json(found: Explanation) -> str:
+    return json.dumps(found.as_json(), indent=2, ensure_ascii=False) + "\n"
