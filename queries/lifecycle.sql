@@ -21,7 +21,7 @@ WITH relevant AS (
 ordered AS (
     SELECT
         j.key, j.key_text, j.split_value, j.window_number, j.window_start, j.window_end, j.value, j.threshold,
-        j.bad, j.sessions, j.breach,
+        j.bad, j.sessions, j.breach, j.affected_sessions, j.excess_sessions, j.viewer_sketch,
         -- no verdict without a value (a zero denominator, an empty window): neither healthy nor a breach
         j.threshold IS NOT NULL AND j.value IS NOT NULL AND NOT j.breach AS healthy,
         coalesce(lag(j.window_end) OVER (PARTITION BY j.key, j.split_value ORDER BY j.window_number), l.last_end) AS prev_end,
@@ -86,7 +86,8 @@ WITH breaches AS (
         min(window_number) FILTER (WHERE opens_here) AS opened_window,
         arg_min(threshold, window_number) FILTER (WHERE opens_here) AS open_threshold,
         count(*) AS breach_windows,
-        sum(coalesce(bad, sessions)) AS affected_sessions,
+        sum(affected_sessions) AS affected_sessions,
+        sum(excess_sessions) AS excess_sessions,
         {{ "max" if check.direction == "up" else "min" }}(value) AS peak_value,
         max(window_end) AS last_breach_at,
         max(window_number) AS last_breach_window
@@ -94,6 +95,23 @@ WITH breaches AS (
     WHERE breach
     GROUP BY key, split_value, episode
 ),
+{% if source.viewer_id %}
+sketches AS (
+    -- each episode's viewer sketch: the largest point of each register over its breaching windows'
+    -- sketches (and the sketch of the alert open before this run)
+    SELECT key, split_value, episode, list(point ORDER BY point) AS viewer_sketch
+    FROM (
+        SELECT key, split_value, episode, max(point) AS point
+        FROM (
+            SELECT key, split_value, episode, unnest(viewer_sketch) AS point FROM episode_steps WHERE breach
+            UNION ALL
+            SELECT key, split_value, 0, unnest(viewer_sketch) FROM open_alerts
+        )
+        GROUP BY key, split_value, episode, point // 64
+    )
+    GROUP BY key, split_value, episode
+),
+{% endif %}
 closes AS (
     SELECT
         key, split_value, episode_before AS episode,
@@ -135,6 +153,8 @@ merged AS (
         coalesce(o.threshold, b.open_threshold) AS threshold,
         coalesce(o.breach_windows, 0) + coalesce(b.breach_windows, 0) AS breach_windows,
         coalesce(o.affected_sessions, 0) + coalesce(b.affected_sessions, 0) AS affected_sessions,
+        {% if measure.kind == "rate" %}coalesce(o.excess_sessions, 0) + coalesce(b.excess_sessions, 0){% else %}NULL::DOUBLE{% endif %} AS excess_sessions,
+        {% if source.viewer_id %}coalesce(v.viewer_sketch, []::INTEGER[]){% else %}NULL::INTEGER[]{% endif %} AS viewer_sketch,
         {{ peak }}(o.peak_value, b.peak_value) AS peak_value,
         coalesce(b.last_breach_at, o.last_breach_at) AS last_breach_at,
         o.first_run_id,
@@ -151,6 +171,9 @@ merged AS (
     LEFT JOIN closes AS c ON {{ m.same_series("a", "c") }} AND a.episode = c.episode
     LEFT JOIN healthy_tail AS t ON {{ m.same_series("a", "t") }}
     LEFT JOIN series_end AS e ON {{ m.same_series("a", "e") }}
+{% if source.viewer_id %}
+    LEFT JOIN sketches AS v ON {{ m.same_series("a", "v") }} AND a.episode = v.episode
+{% endif %}
 )
 SELECT
     *,
@@ -184,6 +207,9 @@ SELECT
     affected_sessions,
     -- sessions hit per hour of data time, over the breaching windows' span (at least one minute)
     affected_sessions / greatest(epoch(last_breach_at - breach_started_at) / 3600.0, 1 / 60.0) AS affected_per_hour,
+    excess_sessions,
+    {{ m.hll_estimate("viewer_sketch") }} AS affected_viewers,
+    viewer_sketch,
     peak_value,
     threshold,
     substr(md5(to_json({'check': {{ check_lit }}, 'key': key, 'split': split_value})::VARCHAR), 1, 16) AS fingerprint,
@@ -203,18 +229,42 @@ WITH breach_events AS (
         s.key, s.split_value, s.episode, s.window_end AS occurred_at,
         CASE WHEN s.opens_here THEN 'opened' ELSE 'updated' END AS event,
         s.value, s.threshold,
-        coalesce(o.affected_sessions, 0) + sum(coalesce(s.bad, s.sessions)) OVER (
+        coalesce(o.affected_sessions, 0) + sum(s.affected_sessions) OVER (
             PARTITION BY s.key, s.split_value, s.episode ORDER BY s.window_number ROWS UNBOUNDED PRECEDING
         ) AS affected_sessions,
+        {% if measure.kind == "rate" %}coalesce(o.excess_sessions, 0) + sum(s.excess_sessions) OVER (
+            PARTITION BY s.key, s.split_value, s.episode ORDER BY s.window_number ROWS UNBOUNDED PRECEDING
+        ){% else %}NULL::DOUBLE{% endif %} AS excess_sessions,
         s.window_number
     FROM episode_steps AS s
     LEFT JOIN open_alerts AS o ON {{ m.same_series("s", "o") }} AND s.episode = 0
     WHERE s.breach
-)
-SELECT a.alert_id, $run_id AS run_id, e.occurred_at, e.event, e.value, e.threshold, e.affected_sessions
+){% if source.viewer_id %},
+event_viewers AS (
+    -- the viewers as of each breach: the episode's sketches up to that window, merged
+    SELECT key, split_value, episode, window_number, {{ m.hll_count("count(*)", "sum(2.0 ^ -(point % 64))") }} AS affected_viewers
+    FROM (
+        SELECT e.key, e.split_value, e.episode, e.window_number, max(p.point) AS point
+        FROM (SELECT key, split_value, episode, window_number FROM episode_steps WHERE breach) AS e
+        JOIN (
+            SELECT key, split_value, episode, window_number, unnest(viewer_sketch) AS point FROM episode_steps WHERE breach
+            UNION ALL
+            SELECT key, split_value, 0, NULL, unnest(viewer_sketch) FROM open_alerts
+        ) AS p ON {{ m.same_series("p", "e") }} AND p.episode = e.episode
+            AND (p.window_number IS NULL OR p.window_number <= e.window_number)
+        GROUP BY e.key, e.split_value, e.episode, e.window_number, p.point // 64
+    )
+    GROUP BY key, split_value, episode, window_number
+){% endif +%}
+SELECT a.alert_id, $run_id AS run_id, e.occurred_at, e.event, e.value, e.threshold, e.affected_sessions,
+       e.excess_sessions, {% if source.viewer_id %}coalesce(v.affected_viewers, 0){% else %}NULL::BIGINT{% endif %} AS affected_viewers
 FROM breach_events AS e
 JOIN alert_rows AS a ON {{ m.same_series("e", "a") }} AND e.episode = a.episode
+{% if source.viewer_id %}
+LEFT JOIN event_viewers AS v ON {{ m.same_series("e", "v") }} AND e.episode = v.episode AND e.window_number = v.window_number
+{% endif %}
 UNION ALL
-SELECT alert_id, $run_id, closed_at, 'closed', close_value, close_threshold, affected_sessions
+SELECT alert_id, $run_id, closed_at, 'closed', close_value, close_threshold, affected_sessions, excess_sessions,
+       affected_viewers
 FROM alert_rows
 WHERE status = 'closed';

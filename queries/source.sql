@@ -35,6 +35,10 @@ FROM (
         {{ source.session_id | ident }}::VARCHAR AS __session_id,
         ({{ source.time.sql }})::TIMESTAMP AS __event_time,
         {% if source.exclude %}coalesce({{ source.exclude.sql }}, false){% else %}false{% endif %} AS __excluded,
+{% if source.viewer_id %}
+        -- the viewer only as its point in the viewer sketch (see macros.sql); the id is not kept
+        {{ m.viewer_point(source.viewer_id | ident) }} AS __viewer_point,
+{% endif %}
 {% for column in columns %}
         {{ column | ident }},
 {% endfor %}
@@ -75,7 +79,7 @@ GROUP BY __id_hash
 HAVING count(*) > 1;
 
 -- A view, not a copy: each check's scan reads it once.
-{% set kept_columns %}__session_id, __id_hash, __event_time, __excluded, {% for column in columns %}{{ column | ident }}, {% endfor %}__file{% endset %}
+{% set kept_columns %}__session_id, __id_hash, __event_time, __excluded, {% if source.viewer_id %}__viewer_point, {% endif %}{% for column in columns %}{{ column | ident }}, {% endfor %}__file{% endset %}
 CREATE OR REPLACE TEMP VIEW lake_sessions AS
 SELECT {{ kept_columns }}
 FROM valid_rows

@@ -17,7 +17,7 @@ WITH relevant AS (
 ordered AS (
     SELECT
         j.key, j.key_text, j.split_value, j.window_number, j.window_start, j.window_end, j.value, j.threshold,
-        j.bad, j.sessions, j.breach,
+        j.bad, j.sessions, j.breach, j.affected_sessions, j.excess_sessions, j.viewer_sketch,
         -- no verdict without a value (a zero denominator, an empty window): neither healthy nor a breach
         j.threshold IS NOT NULL AND j.value IS NOT NULL AND NOT j.breach AS healthy,
         coalesce(lag(j.window_end) OVER (PARTITION BY j.key, j.split_value ORDER BY j.window_number), l.last_end) AS prev_end,
@@ -82,7 +82,8 @@ WITH breaches AS (
         min(window_number) FILTER (WHERE opens_here) AS opened_window,
         arg_min(threshold, window_number) FILTER (WHERE opens_here) AS open_threshold,
         count(*) AS breach_windows,
-        sum(coalesce(bad, sessions)) AS affected_sessions,
+        sum(affected_sessions) AS affected_sessions,
+        sum(excess_sessions) AS excess_sessions,
         max(value) AS peak_value,
         max(window_end) AS last_breach_at,
         max(window_number) AS last_breach_window
@@ -131,6 +132,8 @@ merged AS (
         coalesce(o.threshold, b.open_threshold) AS threshold,
         coalesce(o.breach_windows, 0) + coalesce(b.breach_windows, 0) AS breach_windows,
         coalesce(o.affected_sessions, 0) + coalesce(b.affected_sessions, 0) AS affected_sessions,
+coalesce(o.excess_sessions, 0) + coalesce(b.excess_sessions, 0) AS excess_sessions,
+NULL::INTEGER[] AS viewer_sketch,
         greatest(o.peak_value, b.peak_value) AS peak_value,
         coalesce(b.last_breach_at, o.last_breach_at) AS last_breach_at,
         o.first_run_id,
@@ -180,6 +183,9 @@ SELECT
     affected_sessions,
     -- sessions hit per hour of data time, over the breaching windows' span (at least one minute)
     affected_sessions / greatest(epoch(last_breach_at - breach_started_at) / 3600.0, 1 / 60.0) AS affected_per_hour,
+    excess_sessions,
+    round(CASE WHEN 0.7213 / (1 + 1.079 / 1024) * 1048576 / (1024 - (len(viewer_sketch)) + (coalesce(list_sum(list_transform(viewer_sketch, lambda p: 2.0 ^ -(p % 64))), 0.0))) <= 2560 AND (len(viewer_sketch)) < 1024 THEN 1024 * ln(1024 / (1024 - (len(viewer_sketch)))) ELSE 0.7213 / (1 + 1.079 / 1024) * 1048576 / (1024 - (len(viewer_sketch)) + (coalesce(list_sum(list_transform(viewer_sketch, lambda p: 2.0 ^ -(p % 64))), 0.0))) END)::BIGINT AS affected_viewers,
+    viewer_sketch,
     peak_value,
     threshold,
     substr(md5(to_json({'check': 'golden', 'key': key, 'split': split_value})::VARCHAR), 1, 16) AS fingerprint,
@@ -199,18 +205,23 @@ WITH breach_events AS (
         s.key, s.split_value, s.episode, s.window_end AS occurred_at,
         CASE WHEN s.opens_here THEN 'opened' ELSE 'updated' END AS event,
         s.value, s.threshold,
-        coalesce(o.affected_sessions, 0) + sum(coalesce(s.bad, s.sessions)) OVER (
+        coalesce(o.affected_sessions, 0) + sum(s.affected_sessions) OVER (
             PARTITION BY s.key, s.split_value, s.episode ORDER BY s.window_number ROWS UNBOUNDED PRECEDING
         ) AS affected_sessions,
+coalesce(o.excess_sessions, 0) + sum(s.excess_sessions) OVER (
+            PARTITION BY s.key, s.split_value, s.episode ORDER BY s.window_number ROWS UNBOUNDED PRECEDING
+        ) AS excess_sessions,
         s.window_number
     FROM episode_steps AS s
     LEFT JOIN open_alerts AS o ON s.key = o.key AND s.split_value IS NOT DISTINCT FROM o.split_value AND s.episode = 0
     WHERE s.breach
 )
-SELECT a.alert_id, $run_id AS run_id, e.occurred_at, e.event, e.value, e.threshold, e.affected_sessions
+SELECT a.alert_id, $run_id AS run_id, e.occurred_at, e.event, e.value, e.threshold, e.affected_sessions,
+       e.excess_sessions, NULL::BIGINT AS affected_viewers
 FROM breach_events AS e
 JOIN alert_rows AS a ON e.key = a.key AND e.split_value IS NOT DISTINCT FROM a.split_value AND e.episode = a.episode
 UNION ALL
-SELECT alert_id, $run_id, closed_at, 'closed', close_value, close_threshold, affected_sessions
+SELECT alert_id, $run_id, closed_at, 'closed', close_value, close_threshold, affected_sessions, excess_sessions,
+       affected_viewers
 FROM alert_rows
 WHERE status = 'closed';
