@@ -263,11 +263,14 @@ def measure_rows(check: OracleCheck, windows: list[KeyWindow]) -> list[tuple[str
             num = sum(nums) if nums else None
             den = sum(dens) if dens else None
             value = None if num is None or den is None or den == 0 else num / den
-            out.append((None, {**base, "bad": None, "value": value, "exact": True}))
+            # each session's own value, for the sessions an alert counts as affected
+            own = [None if n is None or d is None or float(d) == 0 else float(n) / float(d)
+                   for n, d in ((check.numerator(r), check.denominator(r)) for r in kw.rows)]
+            out.append((None, {**base, "bad": None, "value": value, "exact": True, "own": own}))
         elif check.kind == "quantile":
             xs = [float(x) for x in (check.of(r) for r in kw.rows) if x is not None]
             value, exact = quantile(xs, check.q)
-            out.append((None, {**base, "bad": None, "value": value, "exact": exact}))
+            out.append((None, {**base, "bad": None, "value": value, "exact": exact, "own": xs}))
         else:
             raise ValueError(check.kind)
     return out
@@ -412,7 +415,9 @@ def lifecycle(check: OracleCheck, series: list[Row], w: datetime, ident: dict[st
         # no verdict without a value (a zero denominator, an empty window): neither healthy nor a breach
         healthy = win["threshold"] is not None and win["value"] is not None and not win["breach"]
         if win["breach"]:
-            affected = win["bad"] if check.kind == "rate" else win["sessions"]
+            # a ratio's or quantile's affected sessions: those whose own value is beyond the threshold
+            affected = win["bad"] if check.kind == "rate" else sum(
+                1 for v in win["own"] if v is not None and (v > win["threshold"] if up else v < win["threshold"]))
             if current is not None:
                 current["breach_windows"] += 1
                 current["affected_sessions"] += affected

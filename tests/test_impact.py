@@ -361,3 +361,17 @@ def test_a_layout_3_file_is_converted_with_its_rate_impact_filled_in(tmp_path: P
                                 "FROM alert_events AS e JOIN alerts USING (alert_id) WHERE check_name = 'failures' "
                                 "ORDER BY e.occurred_at, e.event DESC") == [
         ("opened", 10, 8.0), ("updated", 16, 12.0), ("closed", 16, 12.0)]
+
+
+def test_a_viewer_id_the_lake_does_not_have_is_one_line_naming_the_file_and_line(tmp_path: Path) -> None:
+    from click.testing import CliRunner
+
+    from toolkit.cli import main
+
+    project = impact_project(tmp_path)
+    project.write_text(project.read_text().replace("viewer_id: viewer", "viewer_id: viewr"))
+    result = CliRunner().invoke(main, ["validate", "-p", str(project)])
+    assert result.exit_code == 2
+    assert result.output == (f"{project}:7: sources.sessions.viewer_id: unknown column 'viewr' "
+                             "(did you mean 'viewer'?) in source 'sessions'\n")
+    assert not (tmp_path / "w.duckdb").exists()
