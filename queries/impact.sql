@@ -1,7 +1,7 @@
 {% import "macros.sql" as m %}
 {% set beyond = ">" if check.direction == "up" else "<" %}
 {% set per_session = measure.kind != "rate" or source.viewer_id %}
--- ── stage 5 · impact ───────────────────────────────────────────────────────────────────────
+-- ── stage 4b · impact ──────────────────────────────────────────────────────────────────────
 -- What each breaching window cost: its affected sessions{% if measure.kind == "rate" %}, its excess sessions{% endif %}{% if source.viewer_id %}, and a sketch of
 -- the viewers they belong to{% endif %}. Other windows get NULL.
 {% if measure.kind == "rate" %}

@@ -1,5 +1,5 @@
 {% import "spark/moves.sql" as move %}
--- ── stage 5 · impact, on Spark ─────────────────────────────────────────────────────────────
+-- ── stage 4b · impact, on Spark ────────────────────────────────────────────────────────────
 -- The breaching windows go to Spark, where the sessions are; each one's affected sessions come
 -- back, and the windows get their impact in the warehouse as with DuckDB.
 -- @duckdb breaching

@@ -1,4 +1,4 @@
--- ── stage 5 · impact ───────────────────────────────────────────────────────────────────────
+-- ── stage 4b · impact ──────────────────────────────────────────────────────────────────────
 -- What each breaching window cost: its affected sessions. Other windows get NULL.
 --   affected_sessions = the window's sessions whose own value ("startup_ms") is
 --   above the window's threshold, not every session of the window

@@ -1,4 +1,4 @@
--- ── stage 5 · impact ───────────────────────────────────────────────────────────────────────
+-- ── stage 4b · impact ──────────────────────────────────────────────────────────────────────
 -- What each breaching window cost: its affected sessions, its excess sessions. Other windows get NULL.
 --   affected_sessions = bad (with this error_code value)
 --   excess_sessions = max(0, bad − sessions × baseline): the bad sessions above what the series'
