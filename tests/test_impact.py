@@ -244,6 +244,10 @@ def test_an_alert_open_across_runs_merges_its_sketch(tmp_path: Path) -> None:
     events = ("SELECT alert_id, occurred_at, event, affected_sessions, round(excess_sessions, 9), affected_viewers "
               "FROM alert_events ORDER BY ALL")
     assert _query(twice, events) == _query(once, events)
+    # a rebuild runs every stage in the run's transaction, the sessions on the same connection
+    run(load_project(twice), rebuild=True)
+    assert _query(twice, columns) == _query(once, columns)
+    assert _query(twice, events) == _query(once, events)
 
 
 def test_no_viewer_id_is_stored_or_shown(tmp_path: Path) -> None:
