@@ -379,3 +379,40 @@ def test_a_viewer_id_the_lake_does_not_have_is_one_line_naming_the_file_and_line
     assert result.output == (f"{project}:7: sources.sessions.viewer_id: unknown column 'viewr' "
                              "(did you mean 'viewer'?) in source 'sessions'\n")
     assert not (tmp_path / "w.duckdb").exists()
+
+
+def test_on_the_demo_lake_affected_sessions_are_exact_and_viewers_within_the_error(
+        tmp_path: Path, fernhill_lake) -> None:
+    # The catalogue over the shared 300,000-session demo lake (its viewers retry: several sessions
+    # each). For the ratio and quantile checks, every breaching window's affected sessions and the
+    # distinct viewers among them are recounted from the lake's rows by plain SQL over the files.
+    project_file = fernhill_lake.project(tmp_path / "demo")
+    run(load_project(project_file))
+    con = duckdb.connect()
+    con.execute(f"ATTACH '{tmp_path / 'demo' / 'warehouse.duckdb'}' AS w (READ_ONLY)")
+    lake = f"read_parquet('{fernhill_lake.path}/**/*.parquet', hive_partitioning = true)"
+    own = {"rebuffering_by_site": ("site", "s.rebuffer_ms::DOUBLE / nullif(s.play_ms + s.rebuffer_ms, 0) > b.threshold",
+                                   "true"),
+           "startup_time_by_device": ("device_family", "s.startup_ms > b.threshold", "s.startup_ms IS NOT NULL")}
+    compared = 0
+    for check, (column, beyond, where) in own.items():
+        exact = con.execute(f"""
+            SELECT a.alert_id, count(*), count(DISTINCT s.viewer_id)
+            FROM w.alerts AS a
+            JOIN w.windows AS b ON b.check_name = a.check_name AND b.key = a.key AND b.breach
+                AND b.window_end BETWEEN a.opened_at AND a.last_breach_at
+            JOIN {lake} AS s ON s.{column} = b.key['{column}']
+                AND s.ended_at >= b.window_start AND s.ended_at < b.window_end
+            WHERE a.check_name = '{check}' AND {where} AND {beyond}
+              AND NOT (s.is_bot OR regexp_matches(s.user_agent, '(?i)(bot|crawler|spider)'))
+            GROUP BY a.alert_id ORDER BY 1""").fetchall()
+        stored = con.execute(f"SELECT alert_id, affected_sessions, affected_viewers FROM w.alerts "
+                             f"WHERE check_name = '{check}' ORDER BY 1").fetchall()
+        assert [(a, n) for a, n, _ in stored] == [(a, n) for a, n, _ in exact]
+        for (_, _, estimate), (_, _, viewers) in zip(stored, exact):
+            assert abs(estimate - viewers) <= max(3 * STANDARD_ERROR * viewers, 1), (check, estimate, viewers)
+            compared += 1
+    assert compared >= 1
+    # a viewer counts once however many of its sessions were hit
+    assert con.execute("SELECT bool_and(affected_viewers <= affected_sessions), count(*) FROM w.alerts "
+                       "WHERE affected_viewers IS NOT NULL").fetchone()[0]
