@@ -39,8 +39,14 @@ CASE WHEN {{ v }} IS NULL THEN '<null>' WHEN regexp_matches({{ v }}, '^[\p{L}\p{
     position of the first 1-bit in the other 54 (55 when they are all 0). The session keeps only
     register × 64 + rank, its viewer point; a sketch is the list of the largest point of each
     register it has seen, sorted. Sketches merge by taking each register's largest rank. -#}
+{% macro viewer_hash(v) -%}
+('0x' || substr(md5(({{ v }})::VARCHAR), 1, 16))::UBIGINT
+{%- endmacro %}
+{% macro viewer_point_of(h) -%}
+CASE WHEN {{ h }} IS NOT NULL THEN ({{ h }} >> 54)::INTEGER * 64 + CASE WHEN ({{ h }} & 18014398509481983) = 0 THEN 55 ELSE 55 - length(bin({{ h }} & 18014398509481983)) END END
+{%- endmacro %}
 {% macro viewer_point(v) -%}
-CASE WHEN {{ v }} IS NOT NULL THEN (('0x' || substr(md5(({{ v }})::VARCHAR), 1, 16))::UBIGINT >> 54)::INTEGER * 64 + CASE WHEN (('0x' || substr(md5(({{ v }})::VARCHAR), 1, 16))::UBIGINT & 18014398509481983) = 0 THEN 55 ELSE 55 - length(bin(('0x' || substr(md5(({{ v }})::VARCHAR), 1, 16))::UBIGINT & 18014398509481983)) END END
+{{ viewer_point_of(viewer_hash(v)) }}
 {%- endmacro %}
 {#- The estimate from a sketch's `registers` (how many registers are set) and `inverse_sum` (Σ 2^-rank
     over them): E = α·m² / (empty registers + Σ 2^-rank), α = 0.7213 / (1 + 1.079/m); below 5m/2
