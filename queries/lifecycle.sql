@@ -33,11 +33,12 @@ WITH relevant AS (
 ordered AS (
     SELECT
         j.key, j.key_text, j.split_value, j.window_number, j.window_start, j.window_end, j.value, j.threshold,
-        j.bad, j.sessions, coalesce(j.breach, false) AS breach,
+        j.bad, j.sessions, coalesce(j.breach, false) AS breach, j.viewer_sketch,
         -- breach NULL is no verdict (too little data, no value): neither healthy nor a breach
         coalesce(NOT j.breach, false) AND j.threshold IS NOT NULL AND j.value IS NOT NULL AS healthy,
-        -- the sessions a breaching window adds to its alert's affected_sessions
-        CASE WHEN j.breach THEN coalesce(j.bad, j.sessions) ELSE 0 END AS window_affected,
+        -- what a breaching window adds to its alert's affected and excess sessions
+        CASE WHEN j.breach THEN coalesce(j.affected_sessions, 0) ELSE 0 END AS window_affected,
+        CASE WHEN j.breach THEN j.excess_sessions END AS window_excess,
         coalesce(lag(j.window_end) OVER (PARTITION BY j.key, j.split_value ORDER BY j.window_number), l.last_end) AS prev_end,
         o.alert_id IS NOT NULL AS carried,
         coalesce(o.healthy_streak, 0) AS streak0,
@@ -131,7 +132,10 @@ SELECT
     -- the alert's affected sessions once this window counts
     CASE WHEN n.episode = 0 THEN coalesce(p.affected_sessions, 0) ELSE 0 END + sum(n.window_affected) OVER (
         PARTITION BY n.key, n.split_value, n.episode ORDER BY n.window_number ROWS UNBOUNDED PRECEDING
-    ) AS affected_so_far
+    ) AS affected_so_far,
+    CASE WHEN n.episode = 0 THEN coalesce(p.excess_sessions, 0) ELSE 0 END + coalesce(sum(n.window_excess) OVER (
+        PARTITION BY n.key, n.split_value, n.episode ORDER BY n.window_number ROWS UNBOUNDED PRECEDING
+    ), 0) AS excess_so_far
 FROM numbered AS n
 LEFT JOIN prior_alerts AS p ON {{ m.same_series("n", "p") }};
 
@@ -145,6 +149,7 @@ WITH breaches AS (
         arg_min(threshold, window_number) FILTER (WHERE opens_here AND NOT reopens_here) AS open_threshold,
         count(*) AS breach_windows,
         sum(window_affected) AS affected_sessions,
+        sum(window_excess) AS excess_sessions,
         {{ "max" if check.direction == "up" else "min" }}(value) AS peak_value,
         max(window_end) AS last_breach_at,
         max(window_number) AS last_breach_window
@@ -152,6 +157,23 @@ WITH breaches AS (
     WHERE breach
     GROUP BY key, split_value, episode
 ),
+{% if source.viewer_id %}
+sketches AS (
+    -- each episode's viewer sketch: the largest point of each register over its breaching windows'
+    -- sketches (and the sketch of the alert open before this run)
+    SELECT key, split_value, episode, list(point ORDER BY point) AS viewer_sketch
+    FROM (
+        SELECT key, split_value, episode, max(point) AS point
+        FROM (
+            SELECT key, split_value, episode, unnest(viewer_sketch) AS point FROM episode_steps WHERE breach
+            UNION ALL
+            SELECT key, split_value, 0, unnest(viewer_sketch) FROM prior_alerts
+        )
+        GROUP BY key, split_value, episode, point // 64
+    )
+    GROUP BY key, split_value, episode
+),
+{% endif %}
 closes AS (
     -- an episode's last close (a reopened alert closes more than once); it ends the alert when no
     -- breach of the episode came after it
@@ -194,6 +216,8 @@ merged AS (
         coalesce(o.threshold, b.open_threshold) AS threshold,
         coalesce(o.breach_windows, 0) + coalesce(b.breach_windows, 0) AS breach_windows,
         coalesce(o.affected_sessions, 0) + coalesce(b.affected_sessions, 0) AS affected_sessions,
+        {% if measure.kind == "rate" %}coalesce(o.excess_sessions, 0) + coalesce(b.excess_sessions, 0){% else %}NULL::DOUBLE{% endif %} AS excess_sessions,
+        {% if source.viewer_id %}coalesce(v.viewer_sketch, []::INTEGER[]){% else %}NULL::INTEGER[]{% endif %} AS viewer_sketch,
         {{ peak }}(o.peak_value, b.peak_value) AS peak_value,
         coalesce(b.last_breach_at, o.last_breach_at) AS last_breach_at,
         o.first_run_id,
@@ -211,6 +235,9 @@ merged AS (
         AND c.close_window > coalesce(b.last_breach_window, c.close_window - 1)
     LEFT JOIN healthy_tail AS t ON {{ m.same_series("a", "t") }}
     LEFT JOIN series_end AS e ON {{ m.same_series("a", "e") }}
+{% if source.viewer_id %}
+    LEFT JOIN sketches AS v ON {{ m.same_series("a", "v") }} AND a.episode = v.episode
+{% endif %}
 )
 SELECT
     *,
@@ -244,6 +271,9 @@ SELECT
     affected_sessions,
     -- sessions hit per hour of data time, over the breaching windows' span (at least one minute)
     affected_sessions / greatest(epoch(last_breach_at - breach_started_at) / 3600.0, 1 / 60.0) AS affected_per_hour,
+    excess_sessions,
+    {{ m.hll_estimate("viewer_sketch") }} AS affected_viewers,
+    viewer_sketch,
     peak_value,
     threshold,
     substr(md5(to_json({'check': {{ check_lit }}, 'key': key, 'split': split_value})::VARCHAR), 1, 16) AS fingerprint,
@@ -259,13 +289,13 @@ FROM episodes;
 CREATE OR REPLACE TEMP TABLE event_rows AS
 WITH step_events AS (
     SELECT
-        key, split_value, episode, window_end AS occurred_at,
+        key, split_value, episode, window_number, window_end AS occurred_at,
         CASE
             WHEN reopens_here THEN 'reopened'
             WHEN opens_here THEN 'opened'
             ELSE 'updated'
         END AS event,
-        value, threshold, affected_so_far AS affected_sessions
+        value, threshold, affected_so_far AS affected_sessions, excess_so_far AS excess_sessions
     FROM episode_steps
     WHERE breach
     UNION ALL
@@ -273,20 +303,46 @@ WITH step_events AS (
     -- alert may open the next one, so a close belongs to the episode open before its window
     SELECT
         key, split_value, episode_before,
+        -- the episode's last breaching window before the close, for its viewers
+        max(window_number) FILTER (WHERE breach) OVER (
+            PARTITION BY key, split_value ORDER BY window_number ROWS BETWEEN UNBOUNDED PRECEDING AND 1 PRECEDING
+        ),
         CASE WHEN expires_here THEN prev_end + {{ life.expire_after | interval }} ELSE window_end END,
         'closed',
         CASE WHEN expires_here THEN NULL ELSE value END,
         threshold,
-        CASE WHEN episode = episode_before THEN affected_so_far - window_affected END
+        CASE WHEN episode = episode_before THEN affected_so_far - window_affected END,
+        CASE WHEN episode = episode_before THEN excess_so_far - coalesce(window_excess, 0) END
     FROM episode_steps
-    WHERE expires_here OR recovers_here
-)
+    QUALIFY expires_here OR recovers_here
+){% if source.viewer_id %},
+event_viewers AS (
+    -- the viewers as of each breach: the episode's sketches up to that window, merged
+    SELECT key, split_value, episode, window_number, {{ m.hll_count("count(*)", "sum(2.0 ^ -(point % 64))") }} AS affected_viewers
+    FROM (
+        SELECT e.key, e.split_value, e.episode, e.window_number, max(p.point) AS point
+        FROM (SELECT key, split_value, episode, window_number FROM episode_steps WHERE breach) AS e
+        JOIN (
+            SELECT key, split_value, episode, window_number, unnest(viewer_sketch) AS point FROM episode_steps WHERE breach
+            UNION ALL
+            SELECT key, split_value, 0, NULL, unnest(viewer_sketch) FROM prior_alerts
+        ) AS p ON {{ m.same_series("p", "e") }} AND p.episode = e.episode
+            AND (p.window_number IS NULL OR p.window_number <= e.window_number)
+        GROUP BY e.key, e.split_value, e.episode, e.window_number, p.point // 64
+    )
+    GROUP BY key, split_value, episode, window_number
+){% endif +%}
 SELECT a.alert_id, $run_id AS run_id, e.occurred_at, e.event, e.value, e.threshold,
-       coalesce(e.affected_sessions, a.affected_sessions) AS affected_sessions
+       coalesce(e.affected_sessions, a.affected_sessions) AS affected_sessions,
+       {% if measure.kind == "rate" %}coalesce(e.excess_sessions, a.excess_sessions){% else %}NULL::DOUBLE{% endif %} AS excess_sessions,
+       {% if source.viewer_id %}coalesce(v.affected_viewers, CASE WHEN e.window_number IS NULL AND e.event = 'closed' THEN a.affected_viewers END, 0){% else %}NULL::BIGINT{% endif %} AS affected_viewers
 FROM step_events AS e
 JOIN alert_rows AS a ON {{ m.same_series("e", "a") }} AND e.episode = a.episode
+{% if source.viewer_id %}
+LEFT JOIN event_viewers AS v ON {{ m.same_series("e", "v") }} AND e.episode = v.episode AND e.window_number = v.window_number
+{% endif %}
 UNION ALL
 -- an open alert whose series has been silent for expire_after at the watermark
-SELECT alert_id, $run_id, closed_at, 'closed', NULL, NULL, affected_sessions
+SELECT alert_id, $run_id, closed_at, 'closed', NULL, NULL, affected_sessions, excess_sessions, affected_viewers
 FROM alert_rows
 WHERE closed_silently;

@@ -52,6 +52,7 @@ hooks AS (
 events AS (
     SELECT
         e.alert_id, e.run_id, e.occurred_at, e.event, e.value, e.threshold, e.affected_sessions,
+        e.excess_sessions, e.affected_viewers,
         a.check_name, a.severity, a.key, a.key_text, a.split_value, a.opened_at, a.closed_at,
         a.close_reason, a.fingerprint, a.status AS alert_status,
         CASE e.event WHEN 'opened' THEN 0 WHEN 'reopened' THEN 0 WHEN 'updated' THEN 1 ELSE 2 END AS event_rank,
@@ -163,6 +164,8 @@ SELECT
         'value': CASE WHEN isfinite(f.value) THEN f.value END,
         'threshold': CASE WHEN isfinite(f.threshold) THEN f.threshold END,
         'affected_sessions': f.affected_sessions,
+        'affected_viewers': f.affected_viewers,
+        'excess_sessions': round(f.excess_sessions, 1),
         'breach_windows': f.breach_windows,
         'run_id': f.run_id,
         'sender': 'plimsoll ' || $version

@@ -58,7 +58,8 @@ WHERE check_name = $check AND status = 'open' AND ($keep IS NULL OR definition_h
 INSERT INTO alert_events BY NAME
 SELECT alert_id, $run_id AS run_id,
        coalesce((SELECT max(watermark) FROM check_state WHERE check_name = $check), last_breach_at) AS occurred_at,
-       'closed' AS event, NULL::DOUBLE AS value, NULL::DOUBLE AS threshold, affected_sessions
+       'closed' AS event, NULL::DOUBLE AS value, NULL::DOUBLE AS threshold, affected_sessions, excess_sessions,
+       affected_viewers
 FROM alerts
 WHERE check_name = $check AND status = 'open' AND ($keep IS NULL OR definition_hash IS DISTINCT FROM $keep);
 
@@ -122,7 +123,8 @@ RETURNING path, size_read, size_now, modified_read, modified_now;
 -- The stages that touch every session run on a connection of their own, outside the transaction
 -- (not in a rebuild, nor on Spark). What the transaction's stages read of theirs crosses as Arrow:
 -- each table is read there, registered on the transaction's connection as moved_rows, and made a
--- temp table of the same name.
+-- temp table of the same name. The impact stage's breaching windows cross the other way, to be
+-- read beside the sessions.
 {% for stage, tables in moved.items() %}
 {% for table in tables %}
 

@@ -11,6 +11,9 @@ SELECT
     session_id,
     event_time,
     key,
+{% if source.viewer_id %}
+    viewer_point,
+{% endif %}
 {% if measure.kind == "rate" %}
     is_bad,
     split_value,
@@ -38,6 +41,9 @@ FROM (
             __session_id AS session_id,
             __event_time AS event_time,
             {{ m.key_struct(check.by) }} AS key,
+{% if source.viewer_id %}
+            __viewer_point AS viewer_point,
+{% endif %}
 {% if measure.kind == "rate" %}
             coalesce({{ measure.bad.sql }}, false) AS is_bad,
             {% if measure.split %}{{ measure.split | ident }}::VARCHAR{% else %}NULL::VARCHAR{% endif %} AS split_value

@@ -29,12 +29,20 @@ SELECT
     -- no event time: the row is invalid and never moves the watermark
     CASE WHEN isfinite(r.__event_time) AND r.__event_time <= f.latest_sane THEN r.__event_time END AS __event_time,
     r.__event_time IS NOT NULL AND NOT coalesce(isfinite(r.__event_time) AND r.__event_time <= f.latest_sane, false) AS __insane_time,
-    r.* EXCLUDE (__session_id, __event_time)
+{% if source.viewer_id %}
+    -- the viewer's point in the sketch: register × 64 + rank; neither the id nor the hash is kept
+    {{ m.viewer_point_of("r.__viewer_hash") }} AS __viewer_point,
+{% endif %}
+    r.* EXCLUDE (__session_id, __event_time{% if source.viewer_id %}, __viewer_hash{% endif %})
 FROM (
     SELECT
         {{ source.session_id | ident }}::VARCHAR AS __session_id,
         ({{ source.time.sql }})::TIMESTAMP AS __event_time,
         {% if source.exclude %}coalesce({{ source.exclude.sql }}, false){% else %}false{% endif %} AS __excluded,
+{% if source.viewer_id %}
+        -- the viewer only as a 64-bit hash, made its point in the viewer sketch below (see macros.sql)
+        {{ m.viewer_hash(source.viewer_id | ident) }} AS __viewer_hash,
+{% endif %}
 {% for column in columns %}
         {{ column | ident }},
 {% endfor %}
@@ -75,7 +83,7 @@ GROUP BY __id_hash
 HAVING count(*) > 1;
 
 -- A view, not a copy: each check's scan reads it once.
-{% set kept_columns %}__session_id, __id_hash, __event_time, __excluded, {% for column in columns %}{{ column | ident }}, {% endfor %}__file{% endset %}
+{% set kept_columns %}__session_id, __id_hash, __event_time, __excluded, {% if source.viewer_id %}__viewer_point, {% endif %}{% for column in columns %}{{ column | ident }}, {% endfor %}__file{% endset %}
 CREATE OR REPLACE TEMP VIEW lake_sessions AS
 SELECT {{ kept_columns }}
 FROM valid_rows

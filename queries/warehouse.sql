@@ -203,6 +203,17 @@ ALTER TABLE outbox ADD COLUMN IF NOT EXISTS fingerprint VARCHAR;      -- the inc
 ALTER TABLE outbox ADD COLUMN IF NOT EXISTS opened_at TIMESTAMP;      -- ... and its opening (data time)
 ALTER TABLE outbox ADD COLUMN IF NOT EXISTS event_identity VARCHAR;   -- the event whatever the alert_id: a rebuild's alerts share it
 ALTER TABLE outbox ADD COLUMN IF NOT EXISTS skip_reason VARCHAR;      -- 'growth' | 'rebuilt' | 'catch_up'
+-- layout 4: impact. Sessions beyond the baseline, affected sessions of every measure, and distinct
+-- viewers as HyperLogLog sketches (lists of register × 64 + rank, see queries/macros.sql), never ids
+ALTER TABLE carry ADD COLUMN IF NOT EXISTS viewer_point INTEGER;      -- the session's viewer in the sketch (with viewer_id)
+ALTER TABLE windows ADD COLUMN IF NOT EXISTS affected_sessions BIGINT; -- breaching windows: bad, or sessions beyond the threshold
+ALTER TABLE windows ADD COLUMN IF NOT EXISTS excess_sessions DOUBLE;  -- breaching rate windows: bad − sessions × baseline, at least 0
+ALTER TABLE windows ADD COLUMN IF NOT EXISTS viewer_sketch INTEGER[]; -- breaching windows, with viewer_id: the affected sessions' viewers
+ALTER TABLE alerts ADD COLUMN IF NOT EXISTS excess_sessions DOUBLE;
+ALTER TABLE alerts ADD COLUMN IF NOT EXISTS affected_viewers BIGINT;  -- estimated from viewer_sketch
+ALTER TABLE alerts ADD COLUMN IF NOT EXISTS viewer_sketch INTEGER[];  -- its breaching windows' sketches merged
+ALTER TABLE alert_events ADD COLUMN IF NOT EXISTS excess_sessions DOUBLE;
+ALTER TABLE alert_events ADD COLUMN IF NOT EXISTS affected_viewers BIGINT;
 
 -- The warehouse's layout, so a later release can migrate a file written by an earlier one and a
 -- file written by a later one is refused with a clear message. Paths in files_read,

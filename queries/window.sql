@@ -39,12 +39,12 @@ SELECT
 FROM (
     SELECT *, coalesce(event_time >= (SELECT read_until FROM read_limits), false) AS held
     FROM (
-        SELECT {{ m.from_map("key", check.by) }} AS key, event_time, session_id, {{ m.inputs(measure) }}, false AS late
+        SELECT {{ m.from_map("key", check.by) }} AS key, event_time, session_id, {{ m.inputs(measure, source) }}, false AS late
         FROM carry
         WHERE check_name = {{ check_lit }}
         UNION ALL
         -- late: earlier than the end of a window already closed for the series; it joins the open window
-        SELECT a.key, a.event_time, a.session_id, {% for c in m.inputs(measure).split(", ") %}a.{{ c }}, {% endfor %}
+        SELECT a.key, a.event_time, a.session_id, {% for c in m.inputs(measure, source).split(", ") %}a.{{ c }}, {% endfor %}
                coalesce(a.event_time < s.last_end, false) AS late
         FROM arrivals AS a
         LEFT JOIN series_last AS s ON s.key = a.key
@@ -146,7 +146,7 @@ FROM placed AS p
 JOIN closed_windows AS w ON w.key = p.key AND w.window_first = p.window_first;
 
 CREATE OR REPLACE TEMP TABLE carry_next AS
-SELECT {{ m.to_map("key", check.by) }} AS key, {{ m.key_text("key", check.by) }} AS key_text, event_time, session_id, {{ m.inputs(measure) }}
+SELECT {{ m.to_map("key", check.by) }} AS key, {{ m.key_text("key", check.by) }} AS key_text, event_time, session_id, {{ m.inputs(measure, source) }}
 FROM placed
 WHERE window_first IS NULL;
 
@@ -164,11 +164,11 @@ SELECT
     make_timestamp({{ m.floor_div("epoch_us(p.event_time)", width) }} * {{ width }}) AS window_start,
     make_timestamp({{ m.floor_div("epoch_us(p.event_time)", width) }} * {{ width }} + {{ width }}) AS window_end
 FROM (
-    SELECT {{ m.from_map("key", check.by) }} AS key, event_time, session_id, {{ m.inputs(measure) }}
+    SELECT {{ m.from_map("key", check.by) }} AS key, event_time, session_id, {{ m.inputs(measure, source) }}
     FROM carry
     WHERE check_name = {{ check_lit }}
     UNION ALL
-    SELECT key, event_time, session_id, {{ m.inputs(measure) }}
+    SELECT key, event_time, session_id, {{ m.inputs(measure, source) }}
     FROM arrivals
 ) AS p;
 
@@ -185,7 +185,7 @@ WHERE window_end + {{ window.lateness | interval }} < (SELECT current FROM water
   AND NOT coalesce(window_end + {{ window.lateness | interval }} < (SELECT previous FROM watermarks), false);
 
 CREATE OR REPLACE TEMP TABLE carry_next AS
-SELECT {{ m.to_map("key", check.by) }} AS key, {{ m.key_text("key", check.by) }} AS key_text, event_time, session_id, {{ m.inputs(measure) }}
+SELECT {{ m.to_map("key", check.by) }} AS key, {{ m.key_text("key", check.by) }} AS key_text, event_time, session_id, {{ m.inputs(measure, source) }}
 FROM stamped
 WHERE NOT (window_end + {{ window.lateness | interval }} < (SELECT current FROM watermarks));
 {% endif %}

@@ -271,11 +271,14 @@ def measure_rows(check: OracleCheck, windows: list[KeyWindow]) -> list[tuple[str
             num = sum(nums) if nums else None
             den = sum(dens) if dens else None
             value = None if num is None or den is None or den == 0 else num / den
-            out.append((None, {**base, "bad": None, "value": value, "exact": True}))
+            # each session's own value, for the sessions an alert counts as affected
+            own = [None if n is None or d is None or float(d) == 0 else float(n) / float(d)
+                   for n, d in ((check.numerator(r), check.denominator(r)) for r in kw.rows)]
+            out.append((None, {**base, "bad": None, "value": value, "exact": True, "own": own}))
         elif check.kind == "quantile":
             xs = [float(x) for x in (check.of(r) for r in kw.rows) if x is not None]
             value, exact = quantile(xs, check.q)
-            out.append((None, {**base, "bad": None, "value": value, "exact": exact}))
+            out.append((None, {**base, "bad": None, "value": value, "exact": exact, "own": xs}))
         else:
             raise ValueError(check.kind)
     return out
@@ -472,7 +475,8 @@ def lifecycle(check: OracleCheck, series: list[Row], w: datetime, ident: dict[st
             # a breach soon after a recovery reopens that alert: its counts go on
             current = last_recovered[0]
             last_recovered = None
-            affected = win["bad"] if check.kind == "rate" else win["sessions"]
+            affected = win["bad"] if check.kind == "rate" else sum(
+                1 for v in win["own"] if v is not None and (v > win["threshold"] if up else v < win["threshold"]))
             current.update(status="open", close_reason=None, closed_at=None, healthy_streak=0,
                            last_breach_at=end, breach_windows=current["breach_windows"] + 1,
                            affected_sessions=current["affected_sessions"] + affected,
@@ -481,7 +485,9 @@ def lifecycle(check: OracleCheck, series: list[Row], w: datetime, ident: dict[st
                            "value": win["value"], "threshold": win["threshold"],
                            "affected_sessions": current["affected_sessions"]})
         elif win["breach"]:
-            affected = win["bad"] if check.kind == "rate" else win["sessions"]
+            # a ratio's or quantile's affected sessions: those whose own value is beyond the threshold
+            affected = win["bad"] if check.kind == "rate" else sum(
+                1 for v in win["own"] if v is not None and (v > win["threshold"] if up else v < win["threshold"]))
             if current is not None:
                 current["breach_windows"] += 1
                 current["affected_sessions"] += affected

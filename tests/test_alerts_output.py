@@ -28,10 +28,10 @@ def project(tmp_path: Path) -> Path:
 
 
 TABLE = """\
-status              severity  check         key                                              split  opened            windows  affected  per hour
-------------------  --------  ------------  -----------------------------------------------  -----  ----------------  -------  --------  --------
-open                high      title_errors  site=kids, title_id="<script>alert(1)</script>"         2026-11-02 00:59  1        8         53
-closed (recovered)  high      title_errors  site=kids, title_id=t-1                                 2026-11-02 00:49  2        13        41
+status              severity  check         key                                              split  opened            windows  affected  viewers  excess  per hour
+------------------  --------  ------------  -----------------------------------------------  -----  ----------------  -------  --------  -------  ------  --------
+open                high      title_errors  site=kids, title_id="<script>alert(1)</script>"         2026-11-02 00:59  1        8         -        8       53
+closed (recovered)  high      title_errors  site=kids, title_id=t-1                                 2026-11-02 00:49  2        13        -        13      41
 """
 
 
@@ -71,6 +71,8 @@ def test_alerts_json_is_exact(project: Path) -> None:
             "opened_at": "2026-11-02 00:59:01", "breach_started_at": "2026-11-02 00:50:01",
             "last_breach_at": "2026-11-02 00:59:01", "closed_at": None, "close_reason": None,
             "breach_windows": 1, "affected_sessions": 8, "affected_per_hour": pytest.approx(8 / (9 / 60)),
+            # no viewer_id in the source; every bad session is beyond a baseline rate of 0
+            "affected_viewers": None, "excess_sessions": 8.0,
             "peak_value": 0.8, "threshold": 0.1, "fingerprint": prints[hostile_key],
         },
         {
@@ -80,6 +82,7 @@ def test_alerts_json_is_exact(project: Path) -> None:
             "opened_at": "2026-11-02 00:49:00", "breach_started_at": "2026-11-02 00:40:00",
             "last_breach_at": "2026-11-02 00:59:00", "closed_at": "2026-11-02 01:09:00",
             "close_reason": "recovered", "breach_windows": 2, "affected_sessions": 13,
+            "affected_viewers": None, "excess_sessions": 13.0,
             "affected_per_hour": pytest.approx(13 / (19 / 60)), "peak_value": 0.7, "threshold": 0.1,
             "fingerprint": prints["site=kids, title_id=t-1"],
         },

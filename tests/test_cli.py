@@ -92,11 +92,12 @@ def test_alerts_table_and_json(project: Path) -> None:
     table = invoke("alerts", "-p", str(project))
     assert table.exit_code == 0, table.output
     assert table.output.splitlines()[0].split() == ["status", "severity", "check", "key", "split", "opened",
-                                                    "windows", "affected", "per", "hour"]
+                                                    "windows", "affected", "viewers", "excess", "per", "hour"]
     assert "site=kids" in table.output
     data = json.loads(invoke("alerts", "--json", "-p", str(project)).output)
     assert {a["check_name"] for a in data} == {"startup_p90_by_site"}
-    assert all(set(a) >= {"alert_id", "status", "key_text", "opened_at", "affected_sessions"} for a in data)
+    assert all(set(a) >= {"alert_id", "status", "key_text", "opened_at", "affected_sessions", "affected_viewers",
+                          "excess_sessions"} for a in data)
     assert "session_id" not in json.dumps(data)
     opened = json.loads(invoke("alerts", "--json", "--status", "open", "-p", str(project)).output)
     assert all(a["status"] == "open" for a in opened)

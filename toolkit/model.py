@@ -75,6 +75,9 @@ class Source:
 
     # what the files' paths are recorded relative to (see toolkit.lake.files.base_of)
     base: str = ""
+    # a column naming the viewer: affected viewers are estimated from a HyperLogLog sketch of it
+    # (only the sketch is kept, never the id)
+    viewer_id: str | None = None
     # the columns `plimsoll explain` drills into
     attributes: tuple[str, ...] = ()
 

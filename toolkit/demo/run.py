@@ -35,6 +35,8 @@ sources:
     event_time: ended_at
     # crawlers start sessions too; some say so, others only show it in their user agent
     exclude: is_bot OR regexp_matches(user_agent, '(?i)(bot|crawler|spider)')
+    # viewers retry: alerts count the distinct viewers hit, from a sketch (the ids are never kept)
+    viewer_id: viewer_id
 """
 
 
@@ -152,7 +154,9 @@ def summary(outcome: DemoOutcome) -> str:
         split = f" [{a['split_value']}]" if a["split_value"] else ""
         lines.append(
             f"  {a['opened_at']:%Y-%m-%d %H:%M}  {a['check_name']:<{width}}  {a['key_text']}{split}: "
-            f"{a['affected_sessions']:,} sessions affected over {a['breach_windows']} "
+            f"{a['affected_sessions']:,} sessions affected"
+            f"{'' if a.get('affected_viewers') is None else ' (' + format(a['affected_viewers'], ',') + ' viewers)'}"
+            f" over {a['breach_windows']} "
             f"window{'s' if a['breach_windows'] != 1 else ''}, "
             f"{a['status']}{' (' + a['close_reason'] + ')' if a['close_reason'] else ''} - {verdict}"
         )

@@ -34,7 +34,8 @@ from toolkit.engine import spark as spark_engine
 from toolkit.engine import warehouse
 from toolkit.sql.compiler import CompiledCheck, columns_read
 from toolkit.sql.plans import check_plan, source_plan
-from toolkit.sql.script import MOVED_AFTER, STAGE_CONNECTION_STAGES, STREAMED, run_statements, streams, writes_warehouse
+from toolkit.sql.script import (AFTER_VERDICT, MOVED_AFTER, MOVED_AFTER_VERDICT, MOVED_BEFORE, STAGE_CONNECTION_STAGES,
+                                STREAMED, created_table, run_statements, streams, writes_warehouse)
 from toolkit.sql.templates import Stage, Statement
 from toolkit.model import Check, Project, Source
 from toolkit.problems import DataError, PlimsollError, Problem, ProjectInvalid, WarehouseError, engine_message
@@ -292,6 +293,18 @@ def _run_stage(con: duckdb.DuckDBPyConnection, stages: duckdb.DuckDBPyConnection
     On the stage connection if there is one and the stage is one of its, with the warehouse's
     writes made in the transaction (from a stream of the stage connection's rows where the write
     reads them)."""
+    if stages is not None and stage.name in AFTER_VERDICT and stage.loop is None:
+        for statement in stage.once:
+            if created_table(statement) == AFTER_VERDICT[stage.name]:
+                # the sessions are on the stage connection: the verdicts go there, the result comes back
+                for table in MOVED_BEFORE[stage.name]:
+                    _move(con, stages, table)
+                _execute(stages, who, stage.name, statement, params)
+                for table in MOVED_AFTER_VERDICT[stage.name]:
+                    _move(stages, con, table)
+            else:
+                _execute(con, who, stage.name, statement, params)
+        return 0
     if stages is None or stage.name not in STAGE_CONNECTION_STAGES:
         for statement in stage.once:
             _execute(con, who, stage.name, statement, params)
@@ -352,7 +365,7 @@ def _move(source: duckdb.DuckDBPyConnection, target: duckdb.DuckDBPyConnection, 
 def _needed_columns(source: Source, checks: list[Check]) -> list[str]:
     """Every source column the source stage reads for these checks."""
     names = [source.session_id, *source.time_columns, *(source.exclude.columns if source.exclude else ()),
-             *columns_read(checks)]
+             *([source.viewer_id] if source.viewer_id else []), *columns_read(checks)]
     return list(dict.fromkeys(names))
 
 

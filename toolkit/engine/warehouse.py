@@ -30,8 +30,8 @@ TABLES = ("runs", "run_checks", "files_read", "changed_files", "source_columns",
           "check_state", "key_state", "carry", "key_windows", "windows", "alerts", "alert_events",
           "schema_version")
 # The layout this release writes (the schema_version table): 2 names files relative to their
-# source, 3 renames columns (CHANGELOG.md).
-SCHEMA_VERSION = 3
+# source, 3 renames columns (CHANGELOG.md), 4 adds the impact columns (queries/migrate_4.sql).
+SCHEMA_VERSION = 4
 POLL_SECONDS = 0.25
 # A run's temp tables live until its one transaction commits, so without a limit its memory grows
 # with checks x sessions; at this limit DuckDB spills to disk instead. The limit bounds DuckDB's
@@ -164,6 +164,14 @@ def _layout_3(con: duckdb.DuckDBPyConnection, project: Project) -> None:
     _run_template(con, "migrate_3.sql", {}, renamed=renamed)
 
 
+def _layout_4(con: duckdb.DuckDBPyConnection, project: Project) -> None:
+    """Layout 3 to 4: the impact columns filled from the stored windows where they can be (rate
+    checks' breaching windows and their alerts; see queries/migrate_4.sql)."""
+    rates = [c for c in project.checks.values() if c.measure.kind == "rate"]
+    _run_template(con, "migrate_4.sql", {"up_checks": [c.name for c in rates if c.direction == "up"],
+                                         "down_checks": [c.name for c in rates if c.direction != "up"]})
+
+
 def _layout_2(con: duckdb.DuckDBPyConnection, project: Project) -> None:
     """Layout 1 to 2: file paths relative to their source's path, files_read's source named, and
     remembered session ids given a data time (the source's watermark, so they are kept for a
@@ -179,7 +187,7 @@ def _run_template(con: duckdb.DuckDBPyConnection, name: str, params: dict[str, o
 
 
 # each layout and the step that brings a file of the layout before it there
-_MIGRATIONS = ((2, _layout_2), (3, _layout_3))
+_MIGRATIONS = ((2, _layout_2), (3, _layout_3), (4, _layout_4))
 
 
 def _adopt_definitions(con: duckdb.DuckDBPyConnection, project: Project) -> None:

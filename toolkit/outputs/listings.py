@@ -17,7 +17,8 @@ from toolkit.model import Project
 
 ALERT_COLUMNS = ("alert_id", "status", "severity", "check_name", "key", "key_text", "split_value", "opened_at",
                  "breach_started_at", "last_breach_at", "closed_at", "close_reason", "breach_windows",
-                 "affected_sessions", "affected_per_hour", "peak_value", "threshold", "fingerprint")
+                 "affected_sessions", "affected_viewers", "excess_sessions", "affected_per_hour", "peak_value",
+                 "threshold", "fingerprint")
 
 
 def list_alerts(project: Project, status: str = "all", checks: tuple[str, ...] = (),
@@ -65,12 +66,14 @@ def alerts_table(alerts: list[dict[str, Any]]) -> str:
     """A fixed-width table for a terminal; text from the data cannot move the cursor or add lines."""
     if not alerts:
         return "no alerts"
-    head = ("status", "severity", "check", "key", "split", "opened", "windows", "affected", "per hour")
+    head = ("status", "severity", "check", "key", "split", "opened", "windows", "affected", "viewers", "excess",
+            "per hour")
     body = [
         (
             a["status"] if a["status"] == "open" else f"closed ({a['close_reason']})",
             a["severity"], a["check_name"], printable(a["key_text"] or "(all)"), printable(a["split_value"] or ""),
             a["opened_at"].strftime("%Y-%m-%d %H:%M"), str(a["breach_windows"]), f"{a['affected_sessions']:,}",
+            count_or_dash(a.get("affected_viewers")), count_or_dash(a.get("excess_sessions")),
             f"{a['affected_per_hour']:,.0f}",
         )
         for a in alerts
@@ -79,6 +82,12 @@ def alerts_table(alerts: list[dict[str, Any]]) -> str:
     lines = ["  ".join(str(c).ljust(w) for c, w in zip(row, widths)).rstrip() for row in (head, *body)]
     lines.insert(1, "  ".join("-" * w for w in widths))
     return "\n".join(lines)
+
+
+def count_or_dash(value: float | int | None) -> str:
+    """A count rounded to a whole number with thousands separators, or '-' where there is none (viewers
+    without a source's viewer_id, excess of a ratio or quantile measure)."""
+    return "-" if value is None else f"{round(value):,}"
 
 
 def printable(text: str) -> str:

@@ -27,7 +27,7 @@ from toolkit import __version__
 from toolkit.engine import warehouse
 from toolkit.sql.templates import template_folder
 from toolkit.model import Project
-from toolkit.outputs.listings import alerts_from
+from toolkit.outputs.listings import alerts_from, count_or_dash
 
 CONTEXT_BEFORE = 48   # windows drawn before an alert's first breaching window
 CONTEXT_AFTER = 24    # windows drawn after the window that closed it
@@ -144,6 +144,10 @@ def _card(project: Project, alert: dict[str, Any], series: Series, earlier: int)
             ("closed", _time(alert["closed_at"]) or "still open"),
             ("breaching windows", f"{alert['breach_windows']:,}"),
             ("affected sessions", f"{alert['affected_sessions']:,}"),
+            ("affected viewers", "not counted (the source has no viewer_id)" if alert["affected_viewers"] is None
+             else f"{alert['affected_viewers']:,} (estimated)"),
+            ("excess sessions", "-" if alert["excess_sessions"] is None
+             else f"{count_or_dash(alert['excess_sessions'])} above the baseline rate"),
             ("affected per hour", f"{alert['affected_per_hour']:,.0f}"),
             ("peak value", fmt(alert["peak_value"])),
             ("threshold at opening", (_format_for(None) if cusum else fmt)(alert["threshold"])),
@@ -227,6 +231,7 @@ def _environment() -> jinja2.Environment:
             lstrip_blocks=True,
         )
         _ENV.filters["time"] = _time
+        _ENV.filters["count"] = count_or_dash
     return _ENV
 
 

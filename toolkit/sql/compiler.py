@@ -15,7 +15,7 @@ from toolkit.runlength import interval_table
 from toolkit.sql.script import script
 from toolkit.sql.templates import Stage, render, stage
 
-STAGES = ("source", "scan", "window", "measure", "verdict", "lifecycle", "persist")
+STAGES = ("source", "scan", "window", "measure", "verdict", "impact", "lifecycle", "persist")
 CHECK_STAGES = STAGES[1:]
 
 
@@ -101,8 +101,8 @@ def definition_hash(stages: tuple[Stage, ...]) -> str:
     """A hash of the DuckDB SQL that forms the check's windows and verdicts (stages source to verdict).
 
     When it changes, windows already stored no longer match what the check computes, so the
-    runner asks for a rebuild. The life cycle and severity may change without one: they only
-    shape alerts from now on.
+    runner asks for a rebuild. The impact, the life cycle and severity may change without one: they
+    only shape alerts from now on.
     """
-    computing = [s.text for s in stages if s.name not in ("lifecycle", "persist")]
+    computing = [s.text for s in stages if s.name not in ("impact", "lifecycle", "persist")]
     return hashlib.sha256("\n".join(computing).encode()).hexdigest()[:16]

@@ -10,6 +10,7 @@ from dataclasses import replace
 from toolkit.model import Check
 from toolkit.sql.compiler import CompiledCheck, columns_read, compile_check, compile_source
 from toolkit.sql.spark import SPARK_STAGES, mark_reuse, spark_stage
+from toolkit.sql.script import AFTER_VERDICT, created_table
 from toolkit.sql.templates import Stage
 
 
@@ -19,8 +20,16 @@ def check_plan(check: Check) -> CompiledCheck:
     if check.source.engine.name != "spark":
         return compiled
     columns = columns_read([check])
-    stages = tuple(spark_stage(check, s, columns) if s.name in SPARK_STAGES else s for s in compiled.stages)
+    stages = tuple(spark_stage(check, s, columns) if s.name in SPARK_STAGES or _reads_sessions(s) else s
+                   for s in compiled.stages)
     return replace(compiled, stages=mark_reuse(stages))
+
+
+def _reads_sessions(stage: Stage) -> bool:
+    """A stage after the verdict that reads the sessions again (the impact of a ratio or quantile
+    measure): on Spark, where the sessions are."""
+    session_table = AFTER_VERDICT.get(stage.name)
+    return session_table is not None and any(created_table(s) == session_table for s in stage.once)
 
 
 def source_plan(checks: list[Check]) -> Stage:

@@ -26,6 +26,12 @@ MOVED_AFTER = {
     "source": ("lake_counts", "lake_file_rows"),
     "measure": ("watermarks", "scan_counts", "carry_next", "window_counts", "new_key_windows", "new_windows"),
 }
+# The impact stage reads the sessions again after the verdict, where they are: its statement that
+# makes AFTER_VERDICT's table runs on the stage connection, with the breaching windows moved there
+# before it and its table moved back after it; the rest of the stage runs in the transaction.
+AFTER_VERDICT = {"impact": "affected_registers"}
+MOVED_BEFORE = {"impact": ("breaching",)}
+MOVED_AFTER_VERDICT = {"impact": ("affected_registers",)}
 STREAMED = "kept_ids"
 # The tables analysts read, published as Parquet beside the warehouse after every run.
 PUBLISHED = ("alerts", "alert_events", "windows", "runs")
@@ -38,6 +44,12 @@ def writes_warehouse(statement: Statement) -> bool:
     return statement_kind(statement.sql) in ("INSERT", "UPDATE", "DELETE", "MERGE_INTO", "COPY")
 
 
+def created_table(statement: Statement) -> str | None:
+    """The table a ``CREATE OR REPLACE TEMP TABLE`` statement makes, else None."""
+    found = re.search(r"CREATE\s+OR\s+REPLACE\s+TEMP(?:ORARY)?\s+TABLE\s+(\w+)", statement.sql, re.IGNORECASE)
+    return found.group(1) if found else None
+
+
 def streams(statement: Statement) -> bool:
     """A write to the warehouse that reads the stage connection's rows as a stream (``kept_ids``)."""
     return writes_warehouse(statement) and re.search(rf"\b{STREAMED}\b", statement.sql) is not None
@@ -46,7 +58,8 @@ def streams(statement: Statement) -> bool:
 @lru_cache(maxsize=1)
 def run_statements() -> Named:
     """``queries/run.sql``: the run's own statements."""
-    return named("run.sql", moved=MOVED_AFTER, streamed=STREAMED)
+    moved = {**MOVED_AFTER, **{f"{stage} before": t for stage, t in MOVED_BEFORE.items()}, **MOVED_AFTER_VERDICT}
+    return named("run.sql", moved=moved, streamed=STREAMED)
 
 
 @lru_cache(maxsize=1)
@@ -135,6 +148,16 @@ def _stage_text(stage: Stage, apart: bool, run: Named) -> str:
                                  f"run's transaction, on the warehouse's own connection, reading {STREAMED} from the "
                                  "stage connection as a stream of batches:") \
             + run.text(f"move.{STREAMED}.clear", f"move.{STREAMED}.stream") + "\n" + text[at:]
+    session_table = AFTER_VERDICT.get(stage.name)
+    session_part = [s for s in stage.once if created_table(s) == session_table] if session_table else []
+    if session_part:
+        start = text.index(session_part[0].sql)
+        end = text.index(session_part[-1].sql) + len(session_part[-1].sql) + 1
+        text = (text[:start] + _note("The breaching windows, moved to the stage connection, where the sessions are:")
+                + run.text(*(f"move.{table}." for table in MOVED_BEFORE[stage.name])) + "\n"
+                + _note("On the stage connection:") + text[start:end] + "\n"
+                + _note("Moved back to the run's transaction, where the rest of the stage runs:")
+                + run.text(*(f"move.{table}." for table in MOVED_AFTER_VERDICT[stage.name])) + "\n" + text[end:].lstrip("\n"))
     moved = MOVED_AFTER.get(stage.name, ())
     if moved:
         text = text.rstrip("\n") + "\n\n" + _note(

@@ -201,6 +201,8 @@ def spark_stage(check: Check, duck: Stage, columns: list[str] | None = None) -> 
             statements.append(_spark(check, "to-duckdb", translate(body), _params(body), name))
         elif action == "to-spark":
             statements.append(_spark(check, "to-spark", body, _params(body), name))
+        elif action == "duckdb" and name in creates and not body:  # DuckDB's own statement, as it is
+            statements.append(creates[name])
         elif action == "read":
             statements.append(_spark(check, "read", "", frozenset({"files"}), name, _base(check.source.path)))
         else:

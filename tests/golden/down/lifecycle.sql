@@ -29,11 +29,12 @@ WITH relevant AS (
 ordered AS (
     SELECT
         j.key, j.key_text, j.split_value, j.window_number, j.window_start, j.window_end, j.value, j.threshold,
-        j.bad, j.sessions, coalesce(j.breach, false) AS breach,
+        j.bad, j.sessions, coalesce(j.breach, false) AS breach, j.viewer_sketch,
         -- breach NULL is no verdict (too little data, no value): neither healthy nor a breach
         coalesce(NOT j.breach, false) AND j.threshold IS NOT NULL AND j.value IS NOT NULL AS healthy,
-        -- the sessions a breaching window adds to its alert's affected_sessions
-        CASE WHEN j.breach THEN coalesce(j.bad, j.sessions) ELSE 0 END AS window_affected,
+        -- what a breaching window adds to its alert's affected and excess sessions
+        CASE WHEN j.breach THEN coalesce(j.affected_sessions, 0) ELSE 0 END AS window_affected,
+        CASE WHEN j.breach THEN j.excess_sessions END AS window_excess,
         coalesce(lag(j.window_end) OVER (PARTITION BY j.key, j.split_value ORDER BY j.window_number), l.last_end) AS prev_end,
         o.alert_id IS NOT NULL AS carried,
         coalesce(o.healthy_streak, 0) AS streak0,
@@ -127,7 +128,10 @@ SELECT
     -- the alert's affected sessions once this window counts
     CASE WHEN n.episode = 0 THEN coalesce(p.affected_sessions, 0) ELSE 0 END + sum(n.window_affected) OVER (
         PARTITION BY n.key, n.split_value, n.episode ORDER BY n.window_number ROWS UNBOUNDED PRECEDING
-    ) AS affected_so_far
+    ) AS affected_so_far,
+    CASE WHEN n.episode = 0 THEN coalesce(p.excess_sessions, 0) ELSE 0 END + coalesce(sum(n.window_excess) OVER (
+        PARTITION BY n.key, n.split_value, n.episode ORDER BY n.window_number ROWS UNBOUNDED PRECEDING
+    ), 0) AS excess_so_far
 FROM numbered AS n
 LEFT JOIN prior_alerts AS p ON n.key = p.key AND n.split_value IS NOT DISTINCT FROM p.split_value;
 
@@ -141,6 +145,7 @@ WITH breaches AS (
         arg_min(threshold, window_number) FILTER (WHERE opens_here AND NOT reopens_here) AS open_threshold,
         count(*) AS breach_windows,
         sum(window_affected) AS affected_sessions,
+        sum(window_excess) AS excess_sessions,
         min(value) AS peak_value,
         max(window_end) AS last_breach_at,
         max(window_number) AS last_breach_window
@@ -190,6 +195,8 @@ merged AS (
         coalesce(o.threshold, b.open_threshold) AS threshold,
         coalesce(o.breach_windows, 0) + coalesce(b.breach_windows, 0) AS breach_windows,
         coalesce(o.affected_sessions, 0) + coalesce(b.affected_sessions, 0) AS affected_sessions,
+NULL::DOUBLE AS excess_sessions,
+NULL::INTEGER[] AS viewer_sketch,
         least(o.peak_value, b.peak_value) AS peak_value,
         coalesce(b.last_breach_at, o.last_breach_at) AS last_breach_at,
         o.first_run_id,
@@ -240,6 +247,9 @@ SELECT
     affected_sessions,
     -- sessions hit per hour of data time, over the breaching windows' span (at least one minute)
     affected_sessions / greatest(epoch(last_breach_at - breach_started_at) / 3600.0, 1 / 60.0) AS affected_per_hour,
+    excess_sessions,
+    round(CASE WHEN 0.7213 / (1 + 1.079 / 1024) * 1048576 / (1024 - (len(viewer_sketch)) + (coalesce(list_sum(list_transform(viewer_sketch, lambda p: 2.0 ^ -(p % 64))), 0.0))) <= 2560 AND (len(viewer_sketch)) < 1024 THEN 1024 * ln(1024 / (1024 - (len(viewer_sketch)))) ELSE 0.7213 / (1 + 1.079 / 1024) * 1048576 / (1024 - (len(viewer_sketch)) + (coalesce(list_sum(list_transform(viewer_sketch, lambda p: 2.0 ^ -(p % 64))), 0.0))) END)::BIGINT AS affected_viewers,
+    viewer_sketch,
     peak_value,
     threshold,
     substr(md5(to_json({'check': 'golden', 'key': key, 'split': split_value})::VARCHAR), 1, 16) AS fingerprint,
@@ -255,13 +265,13 @@ FROM episodes;
 CREATE OR REPLACE TEMP TABLE event_rows AS
 WITH step_events AS (
     SELECT
-        key, split_value, episode, window_end AS occurred_at,
+        key, split_value, episode, window_number, window_end AS occurred_at,
         CASE
             WHEN reopens_here THEN 'reopened'
             WHEN opens_here THEN 'opened'
             ELSE 'updated'
         END AS event,
-        value, threshold, affected_so_far AS affected_sessions
+        value, threshold, affected_so_far AS affected_sessions, excess_so_far AS excess_sessions
     FROM episode_steps
     WHERE breach
     UNION ALL
@@ -269,20 +279,27 @@ WITH step_events AS (
     -- alert may open the next one, so a close belongs to the episode open before its window
     SELECT
         key, split_value, episode_before,
+        -- the episode's last breaching window before the close, for its viewers
+        max(window_number) FILTER (WHERE breach) OVER (
+            PARTITION BY key, split_value ORDER BY window_number ROWS BETWEEN UNBOUNDED PRECEDING AND 1 PRECEDING
+        ),
         CASE WHEN expires_here THEN prev_end + INTERVAL 1 DAY ELSE window_end END,
         'closed',
         CASE WHEN expires_here THEN NULL ELSE value END,
         threshold,
-        CASE WHEN episode = episode_before THEN affected_so_far - window_affected END
+        CASE WHEN episode = episode_before THEN affected_so_far - window_affected END,
+        CASE WHEN episode = episode_before THEN excess_so_far - coalesce(window_excess, 0) END
     FROM episode_steps
-    WHERE expires_here OR recovers_here
+    QUALIFY expires_here OR recovers_here
 )
 SELECT a.alert_id, $run_id AS run_id, e.occurred_at, e.event, e.value, e.threshold,
-       coalesce(e.affected_sessions, a.affected_sessions) AS affected_sessions
+       coalesce(e.affected_sessions, a.affected_sessions) AS affected_sessions,
+NULL::DOUBLE AS excess_sessions,
+NULL::BIGINT AS affected_viewers
 FROM step_events AS e
 JOIN alert_rows AS a ON e.key = a.key AND e.split_value IS NOT DISTINCT FROM a.split_value AND e.episode = a.episode
 UNION ALL
 -- an open alert whose series has been silent for expire_after at the watermark
-SELECT alert_id, $run_id, closed_at, 'closed', NULL, NULL, affected_sessions
+SELECT alert_id, $run_id, closed_at, 'closed', NULL, NULL, affected_sessions, excess_sessions, affected_viewers
 FROM alert_rows
 WHERE closed_silently;

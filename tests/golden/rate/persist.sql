@@ -4,6 +4,7 @@ INSERT INTO windows BY NAME
 SELECT
     'golden' AS check_name, key, key_text, split_value, window_number, key_window, window_start, window_end,
     sessions, bad, value, baseline, history_windows, threshold, breach,
+    affected_sessions, excess_sessions, viewer_sketch,
     $run_id AS run_id
 FROM judged;
 

@@ -74,7 +74,8 @@ WHERE check_name = $check AND status = 'open' AND ($keep IS NULL OR definition_h
 INSERT INTO alert_events BY NAME
 SELECT alert_id, $run_id AS run_id,
        coalesce((SELECT max(watermark) FROM check_state WHERE check_name = $check), last_breach_at) AS occurred_at,
-       'closed' AS event, NULL::DOUBLE AS value, NULL::DOUBLE AS threshold, affected_sessions
+       'closed' AS event, NULL::DOUBLE AS value, NULL::DOUBLE AS threshold, affected_sessions, excess_sessions,
+       affected_viewers
 FROM alerts
 WHERE check_name = $check AND status = 'open' AND ($keep IS NULL OR definition_hash IS DISTINCT FROM $keep);
 
@@ -246,6 +247,8 @@ SELECT * FROM "new_windows";
 CREATE OR REPLACE TEMP TABLE "new_windows" AS SELECT * FROM moved_rows;
 
 -- ▶ golden: stage verdict is printed here, as in verdict.sql
+
+-- ▶ golden: stage impact is printed here, as in impact.sql
 
 -- ▶ golden: stage lifecycle is printed here, as in lifecycle.sql
 
