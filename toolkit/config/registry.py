@@ -205,13 +205,10 @@ SOURCE_KEYS = (
     Key("dedup_horizon", "duration", "how far behind the newest data read (in data time) session ids are "
         "remembered to find repeats; an older session arriving later is counted as late and left out",
         False, "3d"),
-<<<<<<< HEAD
     Key("attributes", "columns", "the columns `plimsoll explain` drills into to find where failures "
         "concentrate (a check may name its own)", False, []),
-=======
     Key("viewer_id", "column", "the viewer of a session (a column): alerts then count the distinct viewers hit, "
         "estimated from a HyperLogLog sketch; the id itself is never stored"),
->>>>>>> main
 )
 
 

@@ -125,18 +125,15 @@ def load_sources(doc: Located, raw: dict[str, Any], root: Path, con: duckdb.Duck
         viewer = section.get("viewer_id")
         if check_schema:
             binder.column(section, session_id, "session_id")
-<<<<<<< HEAD
             for index, column in enumerate(common["attributes"]):
                 if column not in columns:
                     section.error((*section.path, "attributes", index),
                                   f"attributes: {unknown_column(column, columns)} in source '{name}'")
-=======
             viewer = binder.column(section, viewer, "viewer_id")
         if viewer is not None and engine.name == "spark":
             section.error((*section.path, "viewer_id"), f"{'.'.join((*section.path, 'viewer_id'))}: cannot run on "
                           "engine spark: the viewer sketch is computed by DuckDB only; leave viewer_id out")
             viewer = None
->>>>>>> main
         time = binder.time(section, event_time)
         excl = binder.expr(section, exclude, "exclude", "boolean")
         sources[name] = Source(name, location, session_id or "", event_time or "", excl, columns, time=time,
