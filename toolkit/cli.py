@@ -161,7 +161,7 @@ def run(project_file: Path, checks: tuple[str, ...], rebuild: bool, wait: float)
 @project_option
 @reports_errors
 def explain(target: str, at: datetime | None, key_text: str, by_text: str, as_json: bool, project_file: Path) -> None:
-    """Rank where in the attributes a window's bad sessions exceed what was expected.
+    """Rank where a window's bad sessions exceed what was expected.
 
     TARGET is an alert id (its opening window), or with --at a check name.
     """
