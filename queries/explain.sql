@@ -23,42 +23,50 @@
 -- window's excess (explanatory power, Bhagwan et al. 2014, NSDI) is (X − F) ÷ (ΣX − ΣF).
 
 -- @statement explain.rows
+-- The rows, summed per leaf (a full combination of the attributes) in the window and in the
+-- history: the rounds below group leaves, not sessions.
 CREATE OR REPLACE TEMP TABLE explain_rows AS
+SELECT {% for a in attributes %}{{ ("a" ~ loop.index0) | ident }}, {% endfor %}in_window, sum(x) AS x, sum(n) AS n, count(*) AS rows, false AS explained
+FROM (
 SELECT
     {% for a in attributes %}{{ a | ident }}::VARCHAR AS {{ ("a" ~ loop.index0) | ident }}, {% endfor +%}
     in_window,
 {% if check.measure.kind == "rate" %}
     (coalesce({{ check.measure.bad.sql }}, false){% if check.measure.split %} AND {{ check.measure.split | ident }}::VARCHAR IS NOT DISTINCT FROM $split_value{% endif %})::INTEGER::DOUBLE AS x,
-    1.0::DOUBLE AS n,
+    1.0::DOUBLE AS n
 {% else %}
     ({{ check.measure.numerator.sql }})::DOUBLE AS x,
-    ({{ check.measure.denominator.sql }})::DOUBLE AS n,
+    ({{ check.measure.denominator.sql }})::DOUBLE AS n
 {% endif %}
-    false AS explained
 FROM (
-    SELECT
-        *,
-        {{ time }} AS __event_time,
-        {{ time }} >= $window_start AND {{ time }} {{ "<=" if count_window else "<" }} $window_end AS in_window
-    FROM read_parquet($files, hive_partitioning = true, union_by_name = true)
-    WHERE {{ source.session_id | ident }} IS NOT NULL
-      AND ({{ time }} >= $window_start AND {{ time }} {{ "<=" if count_window else "<" }} $window_end
-           OR list_bool_or([{{ time }} >= h.window_start AND {{ time }} {{ "<=" if count_window else "<" }} h.window_end FOR h IN $history]))
+    SELECT r.*, h.in_window
+    FROM (
+        SELECT *, {{ time }} AS __event_time
+        FROM read_parquet($files, hive_partitioning = true, union_by_name = true)
+        WHERE {{ source.session_id | ident }} IS NOT NULL
+          -- one span around them all first, which Parquet statistics can skip row groups by
+          AND {{ time }} >= $read_from AND {{ time }} <= $window_end
 {% for column in check.by %}
-      AND {{ column | ident }}::VARCHAR IS NOT DISTINCT FROM $key[{{ column | literal }}]
+          AND {{ column | ident }}::VARCHAR IS NOT DISTINCT FROM $key[{{ column | literal }}]
 {% endfor %}
 {% if check.where %}
-      AND coalesce({{ check.where.sql }}, false)
+          AND coalesce({{ check.where.sql }}, false)
 {% endif %}
 {% if source.exclude %}
-      AND NOT coalesce({{ source.exclude.sql }}, false)
+          AND NOT coalesce({{ source.exclude.sql }}, false)
 {% endif %}
+    ) AS r
+    -- the window and the history windows ($spans: start, end, in_window)
+    JOIN (SELECT unnest($spans, recursive := true)) AS h
+        ON r.__event_time >= h.window_start AND r.__event_time {{ "<=" if count_window else "<" }} h.window_end
     -- each session once: its earliest row
-    QUALIFY row_number() OVER (PARTITION BY {{ source.session_id | ident }} ORDER BY {{ time }}) = 1
+    QUALIFY row_number() OVER (PARTITION BY r.{{ source.session_id | ident }} ORDER BY r.__event_time, h.in_window DESC) = 1
 )
 {% if check.measure.kind == "ratio" %}
 WHERE x IS NOT NULL AND n IS NOT NULL AND isfinite(x) AND isfinite(n)
-{% endif %};
+{% endif %}
+)
+GROUP BY {% for a in attributes %}{{ ("a" ~ loop.index0) | ident }}, {% endfor %}in_window;
 
 -- @statement explain.totals
 -- The window's and the history's totals: the excess to share out, and R.
@@ -67,8 +75,8 @@ SELECT
     coalesce(sum(n) FILTER (WHERE in_window), 0) AS window_weight,
     coalesce(sum(x) FILTER (WHERE NOT in_window), 0) AS history_bad,
     coalesce(sum(n) FILTER (WHERE NOT in_window), 0) AS history_weight,
-    count(*) FILTER (WHERE NOT in_window) AS history_rows,
-    count(*) FILTER (WHERE in_window) AS window_rows
+    coalesce(sum(rows) FILTER (WHERE NOT in_window), 0) AS history_rows,
+    coalesce(sum(rows) FILTER (WHERE in_window), 0) AS window_rows
 FROM explain_rows;
 
 -- @statement explain.round
@@ -76,7 +84,7 @@ FROM explain_rows;
 -- the best first. The caller takes the best, made finer while one more attribute value holds nearly
 -- all of its excess (--: what lies outside it is no longer the problem).
 WITH series AS (
-    SELECT sum(x) / nullif(sum(n), 0) AS rate, sum(n) / nullif(count(*), 0) AS row_weight
+    SELECT sum(x) / nullif(sum(n), 0) AS rate, sum(n) / nullif(sum(rows), 0) AS row_weight
     FROM explain_rows
     WHERE NOT in_window
 ),

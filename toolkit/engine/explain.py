@@ -94,8 +94,10 @@ def explain_rows(con: duckdb.DuckDBPyConnection, check: Check, files: list[str],
     sql = statements(check, attributes, depth)
     params: dict[str, Any] = {
         "files": files, "window_start": window_start, "window_end": window_end,
-        "history": [{"window_start": s, "window_end": e} for s, e in history],
+        "spans": [{"window_start": window_start, "window_end": window_end, "in_window": True}]
+                 + [{"window_start": s, "window_end": e, "in_window": False} for s, e in history],
         "key": key or {}, "split_value": split_value,
+        "read_from": min([window_start, *(s for s, _ in history)]),
     }
     _execute(con, sql, "explain.rows", params)
     (window_bad, window_weight, history_bad, history_weight, history_rows, window_rows), = _execute(
