@@ -114,8 +114,8 @@ class Baseline:
     """How a window's threshold follows from the series' earlier, non-breaching windows."""
 
     method: str
-    history: int
-    min_history: int
+    history: int | None = None       # None for peers, which compares with other series, not history
+    min_history: int | None = None
     q: float | None = None
     factor: float = 1.0
     floor: float | None = None
@@ -124,6 +124,8 @@ class Baseline:
     lam: float | None = None  # EWMA λ (`lambda` in YAML)
     target: float | None = None
     sigma: float | None = None
+    peers_by: tuple[str, ...] = ()  # peers: the columns of `by` a series' peers share
+    min_peers: int | None = None
 
 
 @dataclass(frozen=True)
