@@ -37,12 +37,13 @@
 -- has at least {{ g.min_sessions }} sessions{% if measure.kind != "rate" %} and a value{% endif %}. Fewer than {{ b.min_peers }} peers: no threshold, no verdict.
 {% if measure.kind == "rate" %}
 -- Funnel-plot control limits for a proportion (Spiegelhalter 2005, "Funnel plots for comparing
--- institutional performance", Statistics in Medicine 24:1185-1202), n = this window's sessions:
+-- institutional performance", Statistics in Medicine 24:1185-1202), n = this window's sessions,
+-- N = the peers' sessions (p₀ is itself estimated from N sessions: with many peers 1/N vanishes):
 --   baseline p₀ = Σ bad ÷ Σ sessions over the peers' windows
 {% if check.direction == "up" %}
---   threshold = p₀ + {{ b.sigmas }} × √(φ × p₀ (1 − p₀) / n)
+--   threshold = p₀ + {{ b.sigmas }} × √(φ × p₀ (1 − p₀) × (1/n + 1/N))
 {% else %}
---   threshold = max(0, p₀ − {{ b.sigmas }} × √(φ × p₀ (1 − p₀) / n))
+--   threshold = max(0, p₀ − {{ b.sigmas }} × √(φ × p₀ (1 − p₀) × (1/n + 1/N)))
 {% endif %}
 -- with the over-dispersion factor φ of the peers (Spiegelhalter 2005, "Handling over-dispersion of
 -- performance indicators", Quality and Safety in Health Care 14:347-351): each of the I peers'
@@ -99,7 +100,8 @@ WHERE p.sessions >= {{ g.min_sessions }}{% if measure.kind != "rate" %} AND pw.v
 CREATE OR REPLACE TEMP TABLE peer_figures AS
 {% if measure.kind == "rate" %}
 WITH pooled AS (
-    SELECT key, split_value, window_number, count(*) AS peers, sum(peer_bad) / sum(peer_sessions) AS p0
+    SELECT key, split_value, window_number, count(*) AS peers, sum(peer_sessions) AS peer_sessions,
+           sum(peer_bad) / sum(peer_sessions) AS p0
     FROM peer_pairs
     GROUP BY key, split_value, window_number
 ),
@@ -124,7 +126,7 @@ dispersion AS (
     GROUP BY z.key, z.split_value, z.window_number
 )
 SELECT
-    t.key, t.split_value, t.window_number, t.peers, t.p0 AS baseline,
+    t.key, t.split_value, t.window_number, t.peers, t.peer_sessions, t.p0 AS baseline,
     CASE WHEN t.peers >= 2
               AND t.peers * d.phi_hat > (t.peers - 1) * (1 - 2 / (9 * (t.peers - 1))
                                                          + 1.6448536269514722 * sqrt(2 / (9 * (t.peers - 1)))) ^ 3
@@ -166,7 +168,7 @@ FROM (
         coalesce(f.peers, 0) AS history_windows,
         CASE WHEN f.peers >= {{ b.min_peers }} THEN
 {% if measure.kind == "rate" %}
-{% set width = b.sigmas ~ " * sqrt(f.spread * f.baseline * (1 - f.baseline) / n.sessions)" %}
+{% set width = b.sigmas ~ " * sqrt(f.spread * f.baseline * (1 - f.baseline) * (1 / n.sessions + 1 / f.peer_sessions))" %}
             {%+ if check.direction == "up" %}f.baseline + {{ width }}{% else %}greatest(0.0, f.baseline - {{ width }}){% endif +%}
 {% else %}
             f.baseline {{ "+" if check.direction == "up" else "-" }} {{ b.sigmas }} * 1.482602218505602 * f.spread

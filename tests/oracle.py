@@ -12,7 +12,8 @@ e-Handbook §6.3.3.2), ``ewma`` (the statistic z = λ·value + (1−λ)·z of th
 target ± sigmas·s·√(λ/(2−λ)), target and s given or the mean and sample standard deviation of
 earlier windows; §6.3.2.4), and for rates the Wilson (1927) score bound as a ``confidence`` gate.
 ``peers`` compares each time window of a series with the same window of the series sharing
-``peers_by``, itself left out: for rates funnel-plot limits p₀ ± sigmas·√(φ·p₀(1−p₀)/n) with the
+``peers_by``, itself left out: for rates funnel-plot limits p₀ ± sigmas·√(φ·p₀(1−p₀)·(1/n + 1/N)),
+N the peers' sessions, with the
 winsorised over-dispersion factor φ (Spiegelhalter 2005, both papers), for ratios and quantiles the
 peers' median ± sigmas·1.4826·MAD.
 
@@ -416,6 +417,13 @@ def overdispersion(p0: float, peers: list[tuple[int, float]]) -> tuple[float, bo
     return (phi_hat if len(peers) * phi_hat > limit else 1.0), not _near(len(peers) * phi_hat, limit, 1e-9)
 
 
+def peer_rate_limit(p0: float, n: int, peer_sessions: float, phi: float, sigmas: float, up: bool) -> float:
+    """The funnel-plot limit of a window of n sessions around the peers' pooled rate p₀, estimated
+    from ``peer_sessions`` sessions (math.inf: p₀ known, the funnel plot's own limit)."""
+    width = sigmas * math.sqrt(phi * p0 * (1 - p0) * (1 / n + 1 / peer_sessions))
+    return p0 + width if up else max(0.0, p0 - width)
+
+
 def judge_peers(check: OracleCheck, keyed: list[tuple[tuple[str | None, ...], dict[int, int],
                                                       dict[str | None, list[Row]]]]) -> bool:
     """Fill baseline/history_windows/threshold/breach of every series from its peers; True if a
@@ -453,8 +461,10 @@ def judge_peers(check: OracleCheck, keyed: list[tuple[tuple[str | None, ...], di
                     w["baseline"] = p0
                     if len(peers) >= check.min_peers:
                         phi, exact = overdispersion(p0, [(n, y) for n, y, _ in peers])
-                        width = check.sigmas * math.sqrt(phi * p0 * (1 - p0) / w["sessions"])
-                        threshold = p0 + width if up else max(0.0, p0 - width)
+                        peer_sessions = sum(p[0] for p in peers)
+                        threshold = peer_rate_limit(p0, w["sessions"], peer_sessions, phi, check.sigmas, up)
+                        width = abs(peer_rate_limit(p0, w["sessions"], peer_sessions, phi, check.sigmas, True) - p0)
+                        # no spread (p₀ of 0 or 1), or a lower limit clipped to 0 well below it: exact
                         exact = exact and (width == 0 or (not up and p0 - width < -1e-9 * width))
                 else:
                     median, median_exact = quantile([y for _, y, _ in peers], 0.5)

@@ -167,7 +167,7 @@ def baselines(draw, kind: str, direction: str, method: str | None = None,
     method = draw(st.sampled_from(methods)) if method is None else method
     if method == "peers":
         peers_by = draw(st.sampled_from([by[:1], by[1:]]))
-        min_peers = draw(st.integers(2, 3))
+        min_peers = draw(st.sampled_from([2, 2, 3]))
         sigmas = draw(st.sampled_from([0.5, 1.0, 2.0, 3.0]))
         spec = {"method": method, "peers_by": list(peers_by), "min_peers": min_peers, "sigmas": sigmas}
         return spec, {"method": method, "peers_by": peers_by, "min_peers": min_peers, "sigmas": sigmas}
@@ -687,19 +687,21 @@ def test_peers(data: st.DataObject) -> None:
 
 
 def peer_rows(data: st.DataObject, case: Case) -> list[dict]:
-    """Rows four times as dense as ``tables`` gives, in which the sessions of one site or one tier
+    """Up to 600 rows, six times as dense as ``tables`` gives, in which the sessions of one site or one tier
     go the way the check looks (up: more failures, slower, more rebuffering; down: the opposite)
-    for a stretch, so that one series leaves its peers."""
-    rows = data.draw(tables(hot_burst=data.draw(st.booleans()), max_rows=200))
+    for a stretch, so that one series leaves its peers; tiers 1, 2, 4 and 5."""
+    rows = data.draw(tables(hot_burst=data.draw(st.booleans()), max_rows=600))
     column = data.draw(st.sampled_from(["site", "tier"]))
     value = data.draw(st.sampled_from(sorted({r[column] for r in rows}, key=str)))
+    value = value if column == "site" or value is None else value + 3 * data.draw(st.integers(0, 1))
     times = sorted(r["ended_at"] for r in rows if r["ended_at"] is not None)
     start = data.draw(st.sampled_from(times)) if times else BASE
     length = timedelta(minutes=data.draw(st.sampled_from([60, 180, 600])))
     up = case.check.direction == "up"
     out = []
-    for r in rows:
-        r = dict(r)
+    for i, r in enumerate(rows):
+        # six tiers rather than three, so that a series has more peers
+        r = dict(r, tier=(r["tier"] + 3 * (i % 2) if r["tier"] is not None else None))
         if r["ended_at"] is not None:
             if r[column] == value and start <= r["ended_at"] < start + length:
                 r["failed"] = up if r["failed"] is not None else None
@@ -707,7 +709,7 @@ def peer_rows(data: st.DataObject, case: Case) -> list[dict]:
                     r["startup_ms"] = r["startup_ms"] + 3000.0 if up else r["startup_ms"] / 4
                 if r["rebuffer_ms"] is not None:
                     r["rebuffer_ms"] = 9000.0 if up else 0.0
-            r["ended_at"] = BASE + (r["ended_at"] - BASE) / 4
+            r["ended_at"] = BASE + (r["ended_at"] - BASE) / 6
         out.append(r)
     return out
 

@@ -109,9 +109,10 @@ def exact_funnel_limit(n: int, p0: float, probability: float) -> float:
 
 @pytest.mark.parametrize("n,p0", [(20_000, 0.015), (5_000, 0.05), (2_000, 0.2), (800, 0.3)])
 def test_funnel_limits_approach_the_exact_binomial_limits(tmp_path: Path, n: int, p0: float) -> None:
-    # one release of n sessions and four peers at exactly p0 (no over-dispersion: φ = 1), so the
-    # run's threshold is the funnel limit p0 + 3·√(p0(1−p0)/n) at this n; against the exact limit
-    # at the same one-sided probability Φ(3) from scipy's binomial quantiles.
+    # one release of n sessions and four peers of 10,000 sessions at exactly p0 (no
+    # over-dispersion: φ = 1): the run's threshold is p0 + 3·√(p0(1−p0)·(1/n + 1/N)), N = 40,000
+    # the peers' sessions. Without the 1/N term (p0 known: many peers) it is the funnel limit,
+    # against the exact limit at the same one-sided probability Φ(3) from scipy's binomial quantiles.
     peers = [("tv", f"v{i}", 0, 10_000, round(10_000 * p0)) for i in range(4)]
     lake = counts_lake(tmp_path, [("tv", "new", 0, n, round(n * p0)), *peers, ("tv", "new", 2, 1, 0)])
     project_file = write_project(tmp_path, {"c.yml": RELEASE_CHECK.format(min_peers=2)},
@@ -119,12 +120,14 @@ def test_funnel_limits_approach_the_exact_binomial_limits(tmp_path: Path, n: int
     assert run(load_project(project_file)).status == "ok"
     window = next(w for w in windows_of(project_file, "release_peers") if w["key_text"].endswith("player_version=new"))
     assert window["baseline"] == pytest.approx(p0) and window["history_windows"] == 4
-    normal = p0 + 3 * math.sqrt(p0 * (1 - p0) / n)
-    assert window["threshold"] == pytest.approx(normal, rel=1e-12)
+    assert window["threshold"] == pytest.approx(p0 + 3 * math.sqrt(p0 * (1 - p0) * (1 / n + 1 / 40_000)), rel=1e-12)
+    assert window["threshold"] == pytest.approx(oracle.peer_rate_limit(p0, n, 40_000, 1.0, 3.0, True), rel=1e-12)
+    funnel = oracle.peer_rate_limit(p0, n, math.inf, 1.0, 3.0, True)
+    assert funnel == pytest.approx(p0 + 3 * math.sqrt(p0 * (1 - p0) / n), rel=1e-12)
     exact = exact_funnel_limit(n, p0, stats.norm.cdf(3))
     # the normal limit falls short of the exact one by the binomial's skew: less than 4 % of the
     # limit's distance from p0 once n·p0 is a few hundred
-    assert abs(window["threshold"] - exact) < 0.04 * (exact - p0)
+    assert abs(funnel - exact) < 0.04 * (exact - p0)
 
 
 def test_the_over_dispersion_test_uses_the_chi_square_95th_percentile() -> None:
@@ -201,8 +204,13 @@ def test_over_dispersed_peers_do_not_flag_a_share_of_the_family(family) -> None:
     assert len(others) == 24 * 4 and all(w["threshold"] is not None for w in others)
     ordinary = [w for w in others if w["key_text"] < "device_family=android, player_version=8.21"]
     assert len(ordinary) == 21 * 4
-    binomial_only = sum(w["value"] > w["baseline"] + 3 * math.sqrt(w["baseline"] * (1 - w["baseline"]) / w["sessions"])
-                        and w["bad"] >= 5 for w in others)
+    hour_sessions: dict[int, int] = {}
+    for w in windows:
+        hour_sessions[w["window_number"]] = hour_sessions.get(w["window_number"], 0) + w["sessions"]
+    binomial_only = sum(
+        w["value"] > oracle.peer_rate_limit(w["baseline"], w["sessions"], hour_sessions[w["window_number"]] - w["sessions"],
+                                            1.0, 3.0, True) and w["bad"] >= 5
+        for w in others)
     assert binomial_only >= 0.15 * len(others), binomial_only
     assert not any(w["breach"] for w in ordinary)
     assert sum(w["breach"] for w in others) <= 0.05 * len(others)
@@ -223,7 +231,9 @@ def test_each_threshold_is_the_funnel_limit_of_its_peers(family) -> None:
         assert exact
         phi_used += phi > 1
         assert w["baseline"] == pytest.approx(p0, rel=1e-12) and w["history_windows"] == len(peers)
-        assert w["threshold"] == pytest.approx(p0 + 3 * math.sqrt(phi * p0 * (1 - p0) / w["sessions"]), rel=1e-9)
+        peer_sessions = sum(p["sessions"] for p in peers)
+        assert w["threshold"] == pytest.approx(
+            p0 + 3 * math.sqrt(phi * p0 * (1 - p0) * (1 / w["sessions"] + 1 / peer_sessions)), rel=1e-9)
     assert phi_used >= 0.9 * len(windows)
 
 
@@ -314,5 +324,5 @@ def test_a_good_peers_check_compiles_its_formula_into_the_sql(tmp_path: Path) ->
     assert check.baseline.peers_by == ("site",) and check.baseline.min_peers == 3 and check.baseline.sigmas == 3.0
     result = CliRunner().invoke(main, ["sql", "peers_probe", "-p", str(tmp_path / "plimsoll.yml")])
     assert result.exit_code == 0, result.output
-    assert "threshold = p₀ + 3.0 × √(φ × p₀ (1 − p₀) / n)" in result.output
+    assert "threshold = p₀ + 3.0 × √(φ × p₀ (1 − p₀) × (1/n + 1/N))" in result.output
     assert "-- @loop" not in result.output

@@ -6,9 +6,10 @@
 -- site, the series itself left out; a peer's window counts when it
 -- has at least 3 sessions. Fewer than 2 peers: no threshold, no verdict.
 -- Funnel-plot control limits for a proportion (Spiegelhalter 2005, "Funnel plots for comparing
--- institutional performance", Statistics in Medicine 24:1185-1202), n = this window's sessions:
+-- institutional performance", Statistics in Medicine 24:1185-1202), n = this window's sessions,
+-- N = the peers' sessions (p₀ is itself estimated from N sessions: with many peers 1/N vanishes):
 --   baseline p₀ = Σ bad ÷ Σ sessions over the peers' windows
---   threshold = p₀ + 2.5 × √(φ × p₀ (1 − p₀) / n)
+--   threshold = p₀ + 2.5 × √(φ × p₀ (1 − p₀) × (1/n + 1/N))
 -- with the over-dispersion factor φ of the peers (Spiegelhalter 2005, "Handling over-dispersion of
 -- performance indicators", Quality and Safety in Health Care 14:347-351): each of the I peers'
 -- z = (yᵢ − p₀) / √(p₀ (1 − p₀) / nᵢ), winsorised to their 10th and 90th percentiles; φ̂ = Σ z² / I;
@@ -43,7 +44,8 @@ WHERE p.sessions >= 3;
 -- peer_figures: per window, how many peers, the pooled figure and the spread its limit uses.
 CREATE OR REPLACE TEMP TABLE peer_figures AS
 WITH pooled AS (
-    SELECT key, split_value, window_number, count(*) AS peers, sum(peer_bad) / sum(peer_sessions) AS p0
+    SELECT key, split_value, window_number, count(*) AS peers, sum(peer_sessions) AS peer_sessions,
+           sum(peer_bad) / sum(peer_sessions) AS p0
     FROM peer_pairs
     GROUP BY key, split_value, window_number
 ),
@@ -68,7 +70,7 @@ dispersion AS (
     GROUP BY z.key, z.split_value, z.window_number
 )
 SELECT
-    t.key, t.split_value, t.window_number, t.peers, t.p0 AS baseline,
+    t.key, t.split_value, t.window_number, t.peers, t.peer_sessions, t.p0 AS baseline,
     CASE WHEN t.peers >= 2
               AND t.peers * d.phi_hat > (t.peers - 1) * (1 - 2 / (9 * (t.peers - 1))
                                                          + 1.6448536269514722 * sqrt(2 / (9 * (t.peers - 1)))) ^ 3
@@ -93,7 +95,7 @@ FROM (
         f.baseline,
         coalesce(f.peers, 0) AS history_windows,
         CASE WHEN f.peers >= 2 THEN
-            f.baseline + 2.5 * sqrt(f.spread * f.baseline * (1 - f.baseline) / n.sessions)
+            f.baseline + 2.5 * sqrt(f.spread * f.baseline * (1 - f.baseline) * (1 / n.sessions + 1 / f.peer_sessions))
         END AS threshold
     FROM new_windows AS n
     LEFT JOIN peer_figures AS f ON n.key = f.key AND n.split_value IS NOT DISTINCT FROM f.split_value AND n.window_number = f.window_number
