@@ -117,8 +117,8 @@ BASELINES: dict[str, Kind] = {
         Kind(
             "peers",
             "each window against the same time window of its peers (the series sharing peers_by), itself "
-            "left out: rate, p₀ ± sigmas × √(φ p₀(1−p₀)/n), p₀ the peers' pooled rate and φ their "
-            "over-dispersion (funnel plot, Spiegelhalter 2005); ratio and quantile, the peers' median ± "
+            "left out: rate, p₀ ± sigmas × √(φ p₀(1−p₀)(1/n + 1/N)), p₀ the peers' pooled rate over N sessions "
+            "and φ their over-dispersion (funnel plot, Spiegelhalter 2005); ratio and quantile, the peers' median ± "
             "sigmas × 1.4826 × their median absolute deviation",
             (
                 Key("peers_by", "columns", "the columns of 'by' that peers share: each series is compared "
