@@ -77,10 +77,11 @@
 -- windows of all series for one time close at the same watermark (the check's), so a new window's
 -- peers are all among this run's new windows (new_key_windows: every key's window of that time).
 
--- peer_pairs: each new window of a series beside each window of its peers of the same time.
+-- peer_pairs: each new window of a series (by its row in new_windows: the pairs grow with the square
+-- of a peer group, so they carry no key) beside each window of its peers of the same time.
 CREATE OR REPLACE TEMP TABLE peer_pairs AS
 SELECT
-    s.key, s.split_value, s.window_number, p.sessions AS peer_sessions,
+    s.rowid AS window_id, p.sessions AS peer_sessions,
 {% if measure.kind == "rate" %}
     -- a peer without a row for this split value had no bad session with it
     coalesce(pw.bad, 0) AS peer_bad,
@@ -100,52 +101,51 @@ WHERE p.sessions >= {{ g.min_sessions }}{% if measure.kind != "rate" %} AND pw.v
 CREATE OR REPLACE TEMP TABLE peer_figures AS
 {% if measure.kind == "rate" %}
 WITH pooled AS (
-    SELECT key, split_value, window_number, count(*) AS peers, sum(peer_sessions) AS peer_sessions,
+    SELECT window_id, count(*) AS peers, sum(peer_sessions) AS peer_sessions,
            sum(peer_bad) / sum(peer_sessions) AS p0
     FROM peer_pairs
-    GROUP BY key, split_value, window_number
+    GROUP BY window_id
 ),
 scored AS (
     -- each peer's z-score against p₀ (none when p₀ is 0 or 1: no binomial spread to scale by)
-    SELECT x.key, x.split_value, x.window_number,
-           (x.peer_value - t.p0) / sqrt(t.p0 * (1 - t.p0) / x.peer_sessions) AS z
+    SELECT x.window_id, (x.peer_value - t.p0) / sqrt(t.p0 * (1 - t.p0) / x.peer_sessions) AS z
     FROM peer_pairs AS x
-    JOIN pooled AS t ON {{ m.same_series("x", "t") }} AND x.window_number = t.window_number
+    JOIN pooled AS t ON x.window_id = t.window_id
     WHERE t.p0 > 0 AND t.p0 < 1
 ),
 bounds AS (
-    SELECT key, split_value, window_number, quantile_cont(z, 0.1) AS low, quantile_cont(z, 0.9) AS high
+    SELECT window_id, quantile_cont(z, 0.1) AS low, quantile_cont(z, 0.9) AS high
     FROM scored
-    GROUP BY key, split_value, window_number
+    GROUP BY window_id
 ),
 dispersion AS (
     -- φ̂: the mean square of the winsorised z-scores
-    SELECT z.key, z.split_value, z.window_number, avg(least(greatest(z.z, b.low), b.high) ^ 2) AS phi_hat
+    SELECT z.window_id, avg(least(greatest(z.z, b.low), b.high) ^ 2) AS phi_hat
     FROM scored AS z
-    JOIN bounds AS b ON {{ m.same_series("z", "b") }} AND z.window_number = b.window_number
-    GROUP BY z.key, z.split_value, z.window_number
+    JOIN bounds AS b ON z.window_id = b.window_id
+    GROUP BY z.window_id
 )
 SELECT
-    t.key, t.split_value, t.window_number, t.peers, t.peer_sessions, t.p0 AS baseline,
+    t.window_id, t.peers, t.peer_sessions, t.p0 AS baseline,
     CASE WHEN t.peers >= 2
               AND t.peers * d.phi_hat > (t.peers - 1) * (1 - 2 / (9 * (t.peers - 1))
                                                          + 1.6448536269514722 * sqrt(2 / (9 * (t.peers - 1)))) ^ 3
          THEN d.phi_hat ELSE 1.0 END AS spread
 FROM pooled AS t
-LEFT JOIN dispersion AS d ON {{ m.same_series("t", "d") }} AND t.window_number = d.window_number;
+LEFT JOIN dispersion AS d ON t.window_id = d.window_id;
 {% else %}
 WITH centre AS (
-    SELECT key, split_value, window_number, count(*) AS peers, quantile_cont(peer_value, 0.5) AS median
+    SELECT window_id, count(*) AS peers, quantile_cont(peer_value, 0.5) AS median
     FROM peer_pairs
-    GROUP BY key, split_value, window_number
+    GROUP BY window_id
 )
 SELECT
-    c.key, c.split_value, c.window_number, c.peers, c.median AS baseline,
+    c.window_id, c.peers, c.median AS baseline,
     -- the median absolute deviation from the median
     quantile_cont(abs(x.peer_value - c.median), 0.5) AS spread
 FROM centre AS c
-JOIN peer_pairs AS x ON {{ m.same_series("x", "c") }} AND x.window_number = c.window_number
-GROUP BY c.key, c.split_value, c.window_number, c.peers, c.median;
+JOIN peer_pairs AS x ON x.window_id = c.window_id
+GROUP BY c.window_id, c.peers, c.median;
 {% endif %}
 
 -- judged: every new window with its peers' figure, threshold and verdict.
@@ -175,7 +175,7 @@ FROM (
 {% endif %}
         END AS threshold
     FROM new_windows AS n
-    LEFT JOIN peer_figures AS f ON {{ m.same_series("n", "f") }} AND n.window_number = f.window_number
+    LEFT JOIN peer_figures AS f ON f.window_id = n.rowid
 );
 {% else %}
 -- A window's history is the earlier windows of its series that did not breach, so verdicts depend on

@@ -26,10 +26,11 @@
 -- windows of all series for one time close at the same watermark (the check's), so a new window's
 -- peers are all among this run's new windows (new_key_windows: every key's window of that time).
 
--- peer_pairs: each new window of a series beside each window of its peers of the same time.
+-- peer_pairs: each new window of a series (by its row in new_windows: the pairs grow with the square
+-- of a peer group, so they carry no key) beside each window of its peers of the same time.
 CREATE OR REPLACE TEMP TABLE peer_pairs AS
 SELECT
-    s.key, s.split_value, s.window_number, p.sessions AS peer_sessions,
+    s.rowid AS window_id, p.sessions AS peer_sessions,
     -- a peer without a row for this split value had no bad session with it
     coalesce(pw.bad, 0) AS peer_bad,
     coalesce(pw.bad, 0) / p.sessions AS peer_value
@@ -44,39 +45,38 @@ WHERE p.sessions >= 3;
 -- peer_figures: per window, how many peers, the pooled figure and the spread its limit uses.
 CREATE OR REPLACE TEMP TABLE peer_figures AS
 WITH pooled AS (
-    SELECT key, split_value, window_number, count(*) AS peers, sum(peer_sessions) AS peer_sessions,
+    SELECT window_id, count(*) AS peers, sum(peer_sessions) AS peer_sessions,
            sum(peer_bad) / sum(peer_sessions) AS p0
     FROM peer_pairs
-    GROUP BY key, split_value, window_number
+    GROUP BY window_id
 ),
 scored AS (
     -- each peer's z-score against p₀ (none when p₀ is 0 or 1: no binomial spread to scale by)
-    SELECT x.key, x.split_value, x.window_number,
-           (x.peer_value - t.p0) / sqrt(t.p0 * (1 - t.p0) / x.peer_sessions) AS z
+    SELECT x.window_id, (x.peer_value - t.p0) / sqrt(t.p0 * (1 - t.p0) / x.peer_sessions) AS z
     FROM peer_pairs AS x
-    JOIN pooled AS t ON x.key = t.key AND x.split_value IS NOT DISTINCT FROM t.split_value AND x.window_number = t.window_number
+    JOIN pooled AS t ON x.window_id = t.window_id
     WHERE t.p0 > 0 AND t.p0 < 1
 ),
 bounds AS (
-    SELECT key, split_value, window_number, quantile_cont(z, 0.1) AS low, quantile_cont(z, 0.9) AS high
+    SELECT window_id, quantile_cont(z, 0.1) AS low, quantile_cont(z, 0.9) AS high
     FROM scored
-    GROUP BY key, split_value, window_number
+    GROUP BY window_id
 ),
 dispersion AS (
     -- φ̂: the mean square of the winsorised z-scores
-    SELECT z.key, z.split_value, z.window_number, avg(least(greatest(z.z, b.low), b.high) ^ 2) AS phi_hat
+    SELECT z.window_id, avg(least(greatest(z.z, b.low), b.high) ^ 2) AS phi_hat
     FROM scored AS z
-    JOIN bounds AS b ON z.key = b.key AND z.split_value IS NOT DISTINCT FROM b.split_value AND z.window_number = b.window_number
-    GROUP BY z.key, z.split_value, z.window_number
+    JOIN bounds AS b ON z.window_id = b.window_id
+    GROUP BY z.window_id
 )
 SELECT
-    t.key, t.split_value, t.window_number, t.peers, t.peer_sessions, t.p0 AS baseline,
+    t.window_id, t.peers, t.peer_sessions, t.p0 AS baseline,
     CASE WHEN t.peers >= 2
               AND t.peers * d.phi_hat > (t.peers - 1) * (1 - 2 / (9 * (t.peers - 1))
                                                          + 1.6448536269514722 * sqrt(2 / (9 * (t.peers - 1)))) ^ 3
          THEN d.phi_hat ELSE 1.0 END AS spread
 FROM pooled AS t
-LEFT JOIN dispersion AS d ON t.key = d.key AND t.split_value IS NOT DISTINCT FROM d.split_value AND t.window_number = d.window_number;
+LEFT JOIN dispersion AS d ON t.window_id = d.window_id;
 
 -- judged: every new window with its peers' figure, threshold and verdict.
 CREATE OR REPLACE TEMP TABLE judged AS
@@ -98,5 +98,5 @@ FROM (
             f.baseline + 2.5 * sqrt(f.spread * f.baseline * (1 - f.baseline) * (1 / n.sessions + 1 / f.peer_sessions))
         END AS threshold
     FROM new_windows AS n
-    LEFT JOIN peer_figures AS f ON n.key = f.key AND n.split_value IS NOT DISTINCT FROM f.split_value AND n.window_number = f.window_number
+    LEFT JOIN peer_figures AS f ON f.window_id = n.rowid
 );
