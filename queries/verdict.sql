@@ -49,6 +49,31 @@
 --   false alarms come no more often than the chain's run length says.
 --   The ceiling 2h changes nothing before S first exceeds h; after an incident it bounds the
 --   evidence S carries, so S falls back below h within about h ÷ (γ − p₀) in-control sessions.
+{% elif b.method == "peers" %}
+-- peers: each window against the same time window of its peers, the other series with the same
+-- {{ b.peers_by | join(", ") }}{% if measure.split %} and the same {{ measure.split }} value{% endif %}, the series itself left out; a peer's window counts when it
+-- has at least {{ g.min_sessions }} sessions{% if measure.kind != "rate" %} and a value{% endif %}. Fewer than {{ b.min_peers }} peers: no threshold, no verdict.
+{% if measure.kind == "rate" %}
+-- Funnel-plot control limits for a proportion (Spiegelhalter 2005, "Funnel plots for comparing
+-- institutional performance", Statistics in Medicine 24:1185-1202), n = this window's sessions,
+-- N = the peers' sessions (p₀ is itself estimated from N sessions: with many peers 1/N vanishes):
+--   baseline p₀ = Σ bad ÷ Σ sessions over the peers' windows
+{% if check.direction == "up" %}
+--   threshold = p₀ + {{ b.sigmas }} × √(φ × p₀ (1 − p₀) × (1/n + 1/N))
+{% else %}
+--   threshold = max(0, p₀ − {{ b.sigmas }} × √(φ × p₀ (1 − p₀) × (1/n + 1/N)))
+{% endif %}
+-- with the over-dispersion factor φ of the peers (Spiegelhalter 2005, "Handling over-dispersion of
+-- performance indicators", Quality and Safety in Health Care 14:347-351): each of the I peers'
+-- z = (yᵢ − p₀) / √(p₀ (1 − p₀) / nᵢ), winsorised to their 10th and 90th percentiles; φ̂ = Σ z² / I;
+-- φ = φ̂ when I·φ̂ is above the 95th percentile of χ² with I − 1 degrees of freedom (Wilson and
+-- Hilferty 1931: ν (1 − 2/9ν + 1.6448536 √(2/9ν))³), else 1.
+{% else %}
+-- A robust comparison with the peers' values: baseline = their median, s = 1.4826 × their median
+-- absolute deviation (1.4826 = 1 / Φ⁻¹(0.75): s estimates a standard deviation for normal data):
+--   threshold = median {{ "+" if check.direction == "up" else "−" }} {{ b.sigmas }} × s
+{% endif %}
+-- history_windows holds the number of peers.
 {% endif %}
 {% if measure.split %}
 -- A split value first seen after its key's first window has the key's earlier windows as history,
@@ -68,6 +93,113 @@
 --   bound = (p̂ + z²/2n {{ "−" if check.direction == "up" else "+" }} z·√(p̂(1−p̂)/n + z²/4n²)) / (1 + z²/n),  p̂ = bad / sessions
 {% endif %}
 --
+{% if b.method == "peers" %}
+-- A window's threshold needs no history, only the windows of its peers, so one pass decides every
+-- verdict: no loop. A time window has the same window_number in every series of the check, and the
+-- windows of all series for one time close at the same watermark (the check's), so a new window's
+-- peers are all among this run's new windows (new_key_windows: every key's window of that time).
+
+-- peer_pairs: each new window of a series (by its row in new_windows: the pairs grow with the square
+-- of a peer group, so they carry no key) beside each window of its peers of the same time.
+CREATE OR REPLACE TEMP TABLE peer_pairs AS
+SELECT
+    s.rowid AS window_id, p.sessions AS peer_sessions,
+{% if measure.kind == "rate" %}
+    -- a peer without a row for this split value had no bad session with it
+    coalesce(pw.bad, 0) AS peer_bad,
+    coalesce(pw.bad, 0) / p.sessions AS peer_value
+{% else %}
+    pw.value AS peer_value
+{% endif %}
+FROM new_windows AS s
+JOIN new_key_windows AS p
+    ON p.window_number = s.window_number AND p.key IS DISTINCT FROM s.key
+    AND {{ m.from_map("p.key", b.peers_by) }} IS NOT DISTINCT FROM {{ m.from_map("s.key", b.peers_by) }}
+LEFT JOIN new_windows AS pw
+    ON pw.key = p.key AND pw.window_number = p.window_number AND pw.split_value IS NOT DISTINCT FROM s.split_value
+WHERE p.sessions >= {{ g.min_sessions }}{% if measure.kind != "rate" %} AND pw.value IS NOT NULL{% endif %};
+
+-- peer_figures: per window, how many peers, the pooled figure and the spread its limit uses.
+CREATE OR REPLACE TEMP TABLE peer_figures AS
+{% if measure.kind == "rate" %}
+WITH pooled AS (
+    SELECT window_id, count(*) AS peers, sum(peer_sessions) AS peer_sessions,
+           sum(peer_bad) / sum(peer_sessions) AS p0
+    FROM peer_pairs
+    GROUP BY window_id
+),
+scored AS (
+    -- each peer's z-score against p₀ (none when p₀ is 0 or 1: no binomial spread to scale by)
+    SELECT x.window_id, (x.peer_value - t.p0) / sqrt(t.p0 * (1 - t.p0) / x.peer_sessions) AS z
+    FROM peer_pairs AS x
+    JOIN pooled AS t ON x.window_id = t.window_id
+    WHERE t.p0 > 0 AND t.p0 < 1
+),
+bounds AS (
+    SELECT window_id, quantile_cont(z, 0.1) AS low, quantile_cont(z, 0.9) AS high
+    FROM scored
+    GROUP BY window_id
+),
+dispersion AS (
+    -- φ̂: the mean square of the winsorised z-scores
+    SELECT z.window_id, avg(least(greatest(z.z, b.low), b.high) ^ 2) AS phi_hat
+    FROM scored AS z
+    JOIN bounds AS b ON z.window_id = b.window_id
+    GROUP BY z.window_id
+)
+SELECT
+    t.window_id, t.peers, t.peer_sessions, t.p0 AS baseline,
+    CASE WHEN t.peers >= 2
+              AND t.peers * d.phi_hat > (t.peers - 1) * (1 - 2 / (9 * (t.peers - 1))
+                                                         + 1.6448536269514722 * sqrt(2 / (9 * (t.peers - 1)))) ^ 3
+         THEN d.phi_hat ELSE 1.0 END AS spread
+FROM pooled AS t
+LEFT JOIN dispersion AS d ON t.window_id = d.window_id;
+{% else %}
+WITH centre AS (
+    SELECT window_id, count(*) AS peers, quantile_cont(peer_value, 0.5) AS median
+    FROM peer_pairs
+    GROUP BY window_id
+)
+SELECT
+    c.window_id, c.peers, c.median AS baseline,
+    -- the median absolute deviation from the median
+    quantile_cont(abs(x.peer_value - c.median), 0.5) AS spread
+FROM centre AS c
+JOIN peer_pairs AS x ON x.window_id = c.window_id
+GROUP BY c.window_id, c.peers, c.median;
+{% endif %}
+
+-- judged: every new window with its peers' figure, threshold and verdict (breach NULL: no verdict,
+-- as for the other methods: too few sessions, no value, or beyond the limit on too few bad sessions).
+CREATE OR REPLACE TEMP TABLE judged AS
+SELECT
+    *,
+    CASE
+        WHEN value IS NULL OR sessions < {{ g.min_sessions }} THEN NULL
+        WHEN threshold IS NULL OR NOT coalesce(value {{ ">" if check.direction == "up" else "<" }} threshold, false) THEN false
+{% if measure.kind == "rate" %}
+        WHEN bad < {{ g.min_bad }} THEN NULL
+{% endif %}
+        ELSE true
+    END AS breach
+FROM (
+    SELECT
+        n.*,
+        f.baseline,
+        coalesce(f.peers, 0) AS history_windows,
+        CASE WHEN f.peers >= {{ b.min_peers }} THEN
+{% if measure.kind == "rate" %}
+{% set width = b.sigmas ~ " * sqrt(f.spread * f.baseline * (1 - f.baseline) * (1 / n.sessions + 1 / f.peer_sessions))" %}
+            {%+ if check.direction == "up" %}f.baseline + {{ width }}{% else %}greatest(0.0, f.baseline - {{ width }}){% endif +%}
+{% else %}
+            f.baseline {{ "+" if check.direction == "up" else "-" }} {{ b.sigmas }} * 1.482602218505602 * f.spread
+{% endif %}
+        END AS threshold
+    FROM new_windows AS n
+    LEFT JOIN peer_figures AS f ON f.window_id = n.rowid
+);
+{% else %}
 -- A window's history is the earlier windows of its series that did not breach, so verdicts depend on
 -- the verdicts before them: the statements between '@loop' and '@end' are one round, repeated until
 -- no breach flag changes. A round recomputes only the series still changing, all of them at once.
@@ -346,3 +478,4 @@ WHERE judged.key = r.key AND judged.split_value IS NOT DISTINCT FROM r.split_val
 -- The end of a round: how many breach flags it changed. The loop stops at 0.
 SELECT count(*) FILTER (WHERE changed) AS still_changing FROM judged;
 -- @end
+{% endif %}

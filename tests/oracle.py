@@ -14,6 +14,11 @@ earlier windows; §6.3.2.4), ``cusum`` (the Bernoulli CUSUM S = min(2h, max(0, S
 Reynolds and Stoumbos 1999, p₀ pooled as for the p-chart, h interpolated in ln p₀ from the table of
 decision intervals the toolkit computes, the one thing taken from it), and for rates the Wilson
 (1927) score bound as a ``confidence`` gate.
+``peers`` compares each time window of a series with the same window of the series sharing
+``peers_by``, itself left out: for rates funnel-plot limits p₀ ± sigmas·√(φ·p₀(1−p₀)·(1/n + 1/N)),
+N the peers' sessions, with the
+winsorised over-dispersion factor φ (Spiegelhalter 2005, both papers), for ratios and quantiles the
+peers' median ± sigmas·1.4826·MAD.
 
 Expressions are given as Python callables over a row dict that return ``None`` for SQL NULL.
 """
@@ -71,6 +76,8 @@ class OracleCheck:
     shift: float | None = None                 # cusum: the rate to detect is shift × p₀
     in_control_sessions: int | None = None     # cusum: the in-control run length h is chosen for
     confidence: float | None = None            # rate: the Wilson bound's two-sided confidence
+    peers_by: tuple[str, ...] = ()             # peers: the columns of `by` a series' peers share
+    min_peers: int = 3                         # peers: fewer peers than this, no threshold
     min_sessions: int = 1
     min_bad: int = 0
     recover_after: int = 2
@@ -440,6 +447,109 @@ def judge(check: OracleCheck, series: list[Row], prior: list[int] | tuple[int, .
 
 
 # ----------------------------------------------------------------------------------------------
+# peers: the same time window of the other series that share peers_by
+
+# the 95th percentile of the standard normal, and the MAD's consistency factor 1 / Φ⁻¹(0.75)
+Z95 = statistics.NormalDist().inv_cdf(0.95)
+MAD_SCALE = 1 / statistics.NormalDist().inv_cdf(0.75)
+
+
+def chi2_95(df: int) -> float:
+    """The 95th percentile of χ² with ``df`` degrees of freedom, by Wilson and Hilferty (1931)."""
+    return df * (1 - 2 / (9 * df) + Z95 * math.sqrt(2 / (9 * df))) ** 3
+
+
+def overdispersion(p0: float, peers: list[tuple[int, float]]) -> tuple[float, bool]:
+    """(φ, exact) for peers' (sessions, rate) around p₀: the mean square of their z-scores
+    winsorised to the 10th and 90th percentiles, used when I·φ̂ passes χ²(I−1)'s 95th percentile,
+    else 1. ``exact`` is False when I·φ̂ lies within rounding of that percentile."""
+    if not 0 < p0 < 1 or len(peers) < 2:
+        return 1.0, True
+    z = [(y - p0) / math.sqrt(p0 * (1 - p0) / n) for n, y in peers]
+    low, _ = quantile(z, 0.1)
+    high, _ = quantile(z, 0.9)
+    phi_hat = statistics.fmean([min(max(x, low), high) ** 2 for x in z])
+    limit = chi2_95(len(peers) - 1)
+    return (phi_hat if len(peers) * phi_hat > limit else 1.0), not _near(len(peers) * phi_hat, limit, 1e-9)
+
+
+def peer_rate_limit(p0: float, n: int, peer_sessions: float, phi: float, sigmas: float, up: bool) -> float:
+    """The funnel-plot limit of a window of n sessions around the peers' pooled rate p₀, estimated
+    from ``peer_sessions`` sessions (math.inf: p₀ known, the funnel plot's own limit)."""
+    width = sigmas * math.sqrt(phi * p0 * (1 - p0) * (1 / n + 1 / peer_sessions))
+    return p0 + width if up else max(0.0, p0 - width)
+
+
+def judge_peers(check: OracleCheck, keyed: list[tuple[tuple[str | None, ...], dict[int, int],
+                                                      dict[str | None, list[Row]]]]) -> bool:
+    """Fill baseline/history_windows/threshold/breach of every series from its peers; True if a
+    verdict is ambiguous. ``keyed``: per key, its values, its windows' sessions by window number,
+    and its series (split value → windows)."""
+    ambiguous = False
+    up = check.direction == "up"
+    shared = [check.by.index(c) for c in check.peers_by]
+    by_number: dict[tuple[tuple[str | None, ...], str | None], dict[int, Row]] = {}
+    for values, _, series in keyed:
+        for split, rows in series.items():
+            by_number[(values, split)] = {r["window_number"]: r for r in rows}
+    for values, _, series in keyed:
+        group = [values[i] for i in shared]
+        others = [(v, sizes) for v, sizes, _ in keyed
+                  if v != values and [v[i] for i in shared] == group]
+        for split, rows in series.items():
+            for w in rows:
+                k = w["window_number"]
+                peers: list[tuple[int, float, int | None]] = []     # (sessions, value, bad)
+                for v, sizes in others:
+                    if k not in sizes or sizes[k] < check.min_sessions:
+                        continue
+                    row = by_number.get((v, split), {}).get(k)
+                    if check.kind == "rate":
+                        bad = row["bad"] if row is not None else 0
+                        peers.append((sizes[k], bad / sizes[k], bad))
+                    elif row is not None and row["value"] is not None:
+                        peers.append((sizes[k], row["value"], None))
+                w["statistic"] = None
+                w["history_windows"] = len(peers)
+                threshold, exact = None, True
+                if check.kind == "rate":
+                    p0 = sum(p[2] for p in peers) / sum(p[0] for p in peers) if peers else None
+                    w["baseline"] = p0
+                    if len(peers) >= check.min_peers:
+                        phi, exact = overdispersion(p0, [(n, y) for n, y, _ in peers])
+                        peer_sessions = sum(p[0] for p in peers)
+                        threshold = peer_rate_limit(p0, w["sessions"], peer_sessions, phi, check.sigmas, up)
+                        width = abs(peer_rate_limit(p0, w["sessions"], peer_sessions, phi, check.sigmas, True) - p0)
+                        # no spread (p₀ of 0 or 1), or a lower limit clipped to 0 well below it: exact
+                        exact = exact and (width == 0 or (not up and p0 - width < -1e-9 * width))
+                else:
+                    median, median_exact = quantile([y for _, y, _ in peers], 0.5)
+                    w["baseline"] = median
+                    if len(peers) >= check.min_peers:
+                        mad, _ = quantile([abs(y - median) for _, y, _ in peers], 0.5)
+                        width = check.sigmas * MAD_SCALE * mad
+                        threshold = median + width if up else median - width
+                        exact = median_exact and width == 0
+                w["threshold"] = threshold
+                value = w["value"]
+                crosses = threshold is not None and value is not None and (
+                    value > threshold if up else value < threshold)
+                if threshold is not None and value is not None and _near(value, threshold) and not (
+                        exact and w["exact"]):
+                    ambiguous = True
+                # as for the other methods: None is no verdict (too little data)
+                if value is None or w["sessions"] < check.min_sessions:
+                    w["breach"] = None
+                elif not crosses:
+                    w["breach"] = False
+                elif check.kind == "rate" and w["bad"] < check.min_bad:
+                    w["breach"] = None
+                else:
+                    w["breach"] = True
+    return ambiguous
+
+
+# ----------------------------------------------------------------------------------------------
 # lifecycle
 
 
@@ -543,6 +653,7 @@ def run_check(check: OracleCheck, rows: list[Row], session_id: str = "session_id
     keys: dict[tuple[str | None, ...], list[Row]] = {}
     for r in selected_sessions(check, rows, session_id, event_time):
         keys.setdefault(tuple(as_text(r[c]) for c in check.by), []).append(r)
+    keyed = []
     for values, members in keys.items():
         if check.sessions is not None:
             kws = count_windows(members, check.sessions, check.max_wait, w, session_id, event_time)
@@ -552,9 +663,14 @@ def run_check(check: OracleCheck, rows: list[Row], session_id: str = "session_id
         series: dict[str | None, list[Row]] = {}
         for split, row in measure_rows(check, kws):
             series.setdefault(split, []).append({"key_text": text, "split_value": split, **row})
+        keyed.append((values, {kw.seq: len(kw.rows) for kw in kws}, series, kws, text))
+    if check.method == "peers":
+        result.ambiguous |= judge_peers(check, [(v, sizes, series) for v, sizes, series, _, _ in keyed])
+    for values, _, series, kws, text in keyed:
         for split, rows_of in series.items():
             first = rows_of[0]["key_window"] if check.split is not None else 1
-            result.ambiguous |= judge(check, rows_of, [len(kw.rows) for kw in kws[:first - 1]])
+            if check.method != "peers":
+                result.ambiguous |= judge(check, rows_of, [len(kw.rows) for kw in kws[:first - 1]])
             ident = {"key_text": text, "split_value": split, "_by": check.by, "_values": values}
             alerts, events = lifecycle(check, rows_of, w, ident)
             result.alerts += alerts

@@ -32,6 +32,8 @@ EXPECTED_LABELS = [
      T("2026-11-16 14:00"), T("2026-11-16 17:00")),
     ("incident", "title_errors", "site=kids, title_id=t-3001",
      T("2026-11-17 12:00"), T("2026-11-19 12:00")),
+    ("incident", "release_errors_against_peers", "device_family=android, player_version=8.4.0",
+     T("2026-11-19 15:00"), T("2026-11-21 00:00")),
     ("incident", "rebuffering_by_site", "site=sport", T("2026-11-20 19:00"), T("2026-11-20 22:00")),
 ]
 SCHEMA = [
@@ -414,6 +416,39 @@ def test_smart_tv_release_rollout_and_rollback(con: duckdb.DuckDBPyConnection) -
                median(startup_ms) FILTER (WHERE ended_at < '2026-11-12')
         FROM people WHERE device_family = 'smart_tv'""").fetchone()
     assert 1.8 <= new / old <= 2.4 and 0.9 <= old / before <= 1.1
+
+
+def test_android_release_broken_from_its_first_hour(con: duckdb.DuckDBPyConnection) -> None:
+    families, first, last = con.execute("""
+        SELECT list(DISTINCT device_family), min(ended_at), max(ended_at) FROM s
+        WHERE player_version = '8.4.0'""").fetchone()
+    assert families == ["android"]
+    assert T("2026-11-19 15:00") <= first < T("2026-11-19 16:00")
+    assert T("2026-11-20 23:00") < last < T("2026-11-21 00:00")
+    span = ("device_family = 'android' AND ended_at >= '2026-11-19 15:00' "
+            "AND ended_at < '2026-11-21 00:00'")
+    assert 0.12 <= one(con, f"SELECT avg((player_version = '8.4.0')::INT) FROM people WHERE {span}") <= 0.18
+    # bad from the first hour on, against the family's other releases over the same hours
+    rates = dict(con.execute(f"""
+        SELECT player_version = '8.4.0', avg({FAILED}) FROM people WHERE {span} GROUP BY 1""").fetchall())
+    assert 0.03 <= rates[True] <= 0.065 and 0.01 <= rates[False] <= 0.02 and rates[True] >= 2.5 * rates[False]
+    first_hours = one(con, f"""
+        SELECT avg({FAILED}) FROM people
+        WHERE {span} AND player_version = '8.4.0' AND ended_at < '2026-11-19 21:00'""")
+    assert first_hours >= 2 * rates[False]
+    p90 = dict(con.execute(f"""
+        SELECT player_version = '8.4.0', quantile_cont(startup_ms, 0.9) FROM people
+        WHERE {span} GROUP BY 1""").fetchall())
+    assert 3200 <= p90[True] <= 4400 and 1500 <= p90[False] <= 2000
+    # a share too small to make the family as a whole breach startup_time_by_device (factor 1.4 on
+    # the 95th percentile of its earlier hours): the family's p90 over those hours against the day before
+    family, before = con.execute("""
+        SELECT quantile_cont(startup_ms, 0.9) FILTER (WHERE ended_at >= '2026-11-19 15:00'
+                                                      AND ended_at < '2026-11-21 00:00'),
+               quantile_cont(startup_ms, 0.9) FILTER (WHERE ended_at >= '2026-11-18 15:00'
+                                                      AND ended_at < '2026-11-19 12:00')
+        FROM people WHERE device_family = 'android'""").fetchone()
+    assert family / before < 1.4
 
 
 def test_live_match_traffic_and_rebuffering(con: duckdb.DuckDBPyConnection) -> None:

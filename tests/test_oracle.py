@@ -161,10 +161,16 @@ SIGMAS = {"rate": (0.05, 0.2), "ratio": (0.01, 0.05), "quantile": (0.8, 800.0)}
 
 @st.composite
 def baselines(draw, kind: str, direction: str, method: str | None = None,
-              confidence: bool | None = None) -> tuple[dict[str, Any], dict[str, Any]]:
+              confidence: bool | None = None, by: tuple[str, ...] = ()) -> tuple[dict[str, Any], dict[str, Any]]:
     """A baseline section of a check file and the oracle's fields for it."""
     methods = ["rolling_percentile", "p_chart", "ewma"] if kind == "rate" else ["rolling_percentile", "ewma"]
     method = draw(st.sampled_from(methods)) if method is None else method
+    if method == "peers":
+        peers_by = draw(st.sampled_from([by[:1], by[1:]]))
+        min_peers = draw(st.sampled_from([2, 2, 3]))
+        sigmas = draw(st.sampled_from([0.5, 1.0, 2.0, 3.0]))
+        spec = {"method": method, "peers_by": list(peers_by), "min_peers": min_peers, "sigmas": sigmas}
+        return spec, {"method": method, "peers_by": peers_by, "min_peers": min_peers, "sigmas": sigmas}
     # an EWMA whose spread comes from history needs two earlier windows for a standard deviation
     history = draw(st.integers(2 if method == "ewma" else 1, 5))
     min_history = draw(st.integers(1, history))
@@ -210,7 +216,8 @@ def cases(draw, kind: str, window: str, split: bool | None = None, name: str = "
           method: str | None = None, confidence: bool | None = None, sessions: tuple[int, int] = (1, 6)) -> Case:
     """A check of ``kind`` and ``window`` (count windows of ``sessions`` sessions at most and
     least), its other keys drawn; ``method`` and ``confidence`` fix its baseline's."""
-    by = draw(st.sampled_from([(), ("site",), ("site", "tier"), ("tier",)]))
+    by = draw(st.sampled_from([(), ("site",), ("site", "tier"), ("tier",)] if method != "peers"
+                              else [("site", "tier"), ("tier", "site")]))
     direction = "up" if method == "cusum" else draw(st.sampled_from(["up", "down"]))
     measure: dict[str, Any] = {"kind": kind}
     fields: dict[str, Any] = {"kind": kind}
@@ -239,7 +246,7 @@ def cases(draw, kind: str, window: str, split: bool | None = None, name: str = "
         late = draw(st.sampled_from(["0s", "10m", "45m"]))
         win = {"every": every, "lateness": late}
         fields.update(every=parse_duration(every), lateness=parse_duration(late))
-    baseline, baseline_fields = draw(baselines(kind, direction, method, confidence))
+    baseline, baseline_fields = draw(baselines(kind, direction, method, confidence, by))
     fields.update(baseline_fields)
     guard = {"min_sessions": draw(st.integers(0, 4))}
     if kind == "rate":
@@ -750,6 +757,44 @@ def test_confidence_gate(data: st.DataObject) -> None:
     method = data.draw(st.sampled_from(["rolling_percentile", "p_chart"]))
     case = data.draw(cases("rate", window, method=method, confidence=True, sessions=(4, 12)))
     check_against_oracle([case], burst_rows(data, case, max_rows=160))
+
+
+@SETTINGS
+@given(data=st.data())
+def test_peers(data: st.DataObject) -> None:
+    # each (site, tier) series against the others of its site or of its tier, hour by hour; more
+    # sessions, so that a window has peers with a few sessions each
+    kind = data.draw(st.sampled_from(["rate", "ratio", "quantile"]))
+    case = data.draw(cases(kind, "time", method="peers"))
+    check_against_oracle([case], peer_rows(data, case))
+
+
+def peer_rows(data: st.DataObject, case: Case) -> list[dict]:
+    """Up to 600 rows, six times as dense as ``tables`` gives, in which the sessions of one site or one tier
+    go the way the check looks (up: more failures, slower, more rebuffering; down: the opposite)
+    for a stretch, so that one series leaves its peers; tiers 1, 2, 4 and 5."""
+    rows = data.draw(tables(hot_burst=data.draw(st.booleans()), max_rows=600))
+    column = data.draw(st.sampled_from(["site", "tier"]))
+    value = data.draw(st.sampled_from(sorted({r[column] for r in rows}, key=str)))
+    value = value if column == "site" or value is None else value + 3 * data.draw(st.integers(0, 1))
+    times = sorted(r["ended_at"] for r in rows if r["ended_at"] is not None)
+    start = data.draw(st.sampled_from(times)) if times else BASE
+    length = timedelta(minutes=data.draw(st.sampled_from([60, 180, 600])))
+    up = case.check.direction == "up"
+    out = []
+    for i, r in enumerate(rows):
+        # six tiers rather than three, so that a series has more peers
+        r = dict(r, tier=(r["tier"] + 3 * (i % 2) if r["tier"] is not None else None))
+        if r["ended_at"] is not None:
+            if r[column] == value and start <= r["ended_at"] < start + length:
+                r["failed"] = up if r["failed"] is not None else None
+                if r["startup_ms"] is not None:
+                    r["startup_ms"] = r["startup_ms"] + 3000.0 if up else r["startup_ms"] / 4
+                if r["rebuffer_ms"] is not None:
+                    r["rebuffer_ms"] = 9000.0 if up else 0.0
+            r["ended_at"] = BASE + (r["ended_at"] - BASE) / 6
+        out.append(r)
+    return out
 
 
 @SETTINGS

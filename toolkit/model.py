@@ -119,8 +119,8 @@ class Baseline:
     """How a window's threshold follows from the series' earlier, non-breaching windows."""
 
     method: str
-    history: int
-    min_history: int
+    history: int | None = None       # None for peers, which compares with other series, not history
+    min_history: int | None = None
     q: float | None = None
     factor: float = 1.0
     floor: float | None = None
@@ -131,6 +131,8 @@ class Baseline:
     sigma: float | None = None
     shift: float | None = None  # cusum: p₁ = shift × p₀
     in_control_sessions: int | None = None  # cusum: the in-control average run length, in sessions
+    peers_by: tuple[str, ...] = ()  # peers: the columns of `by` a series' peers share
+    min_peers: int | None = None
 
 
 @dataclass(frozen=True)

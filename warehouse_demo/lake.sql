@@ -88,6 +88,16 @@ SELECT
     0.75::DOUBLE AS rollout_share,
     2.1::DOUBLE AS rollout_startup_factor,
     TIMESTAMP '2026-11-13 18:00:00' AS rollback_at,
+    -- (e) an android player release broken from its first hour: it fails about three times as
+    -- often as the family's other releases and starts videos about twice as slowly, at a share too
+    -- small to move the family as a whole; its own history is all bad, its peers are not
+    'android' AS launch_family,
+    '8.4.0' AS launch_version,
+    TIMESTAMP '2026-11-19 15:00:00' AS launch_from,
+    TIMESTAMP '2026-11-21 00:00:00' AS launch_to,
+    0.15::DOUBLE AS launch_share,
+    3.4::DOUBLE AS launch_fail_factor,
+    2.15::DOUBLE AS launch_startup_factor,
     -- (d) a live match: extra viewers on one live sport title, and congestion for all of sport
     'sport' AS match_site,
     4 AS match_title_rank,
@@ -218,6 +228,8 @@ WITH versions AS (
     SELECT device_family, unnest([oldest, middle, newest]) AS player_version FROM player_versions
     UNION
     SELECT rollout_family, rollout_version FROM scenario
+    UNION
+    SELECT launch_family, launch_version FROM scenario
 )
 SELECT v.device_family, v.player_version, h.hardware,
        'FernhillPlayer/' || v.player_version || ' (' || v.device_family || '; ' || h.hardware || ')'
@@ -280,6 +292,8 @@ SELECT printf('t-%04d', release_title_no)::title_code AS release_title,
     decode_code::error_name AS decode_code,
     rollout_family::device_name AS rollout_family,
     rollout_version::version_name AS rollout_version,
+    launch_family::device_name AS launch_family,
+    launch_version::version_name AS launch_version,
     match_site::site_name AS match_site,
     burst_site::site_name AS burst_site,
     burst_cdn::cdn_name AS burst_cdn,
@@ -743,6 +757,10 @@ WITH aged AS (
                         < sc.rollout_share
                           * least(1.0, epoch(a.ended_at - sc.rollout_from) / epoch(sc.rollout_ramp))
                    THEN sc.rollout_version
+               WHEN a.device_family = sc.launch_family
+                    AND a.ended_at >= sc.launch_from AND a.ended_at < sc.launch_to
+                    AND unit(a.seed, a.row_no, 'launch') < sc.launch_share
+                   THEN sc.launch_version
                WHEN a.version_pick < f.oldest_from + (f.oldest_to - f.oldest_from) * a.age
                    THEN f.oldest
                WHEN a.version_pick < f.oldest_from + (f.oldest_to - f.oldest_from) * a.age
@@ -762,8 +780,9 @@ WITH aged AS (
            v.ended_at >= sc.match_from AND v.ended_at < sc.match_to
                AND v.site = sc.match_site AS in_match,
            d.startup_median_ms * n.startup_mult * c.startup_mult
-               * CASE WHEN v.player_version = sc.rollout_version
-                      THEN sc.rollout_startup_factor ELSE 1.0 END AS startup_median_ms,
+               * CASE WHEN v.player_version = sc.rollout_version THEN sc.rollout_startup_factor
+                      WHEN v.player_version = sc.launch_version THEN sc.launch_startup_factor
+                      ELSE 1.0 END AS startup_median_ms,
            d.bitrate_kbps AS bitrate_base,
            sc.stall_share * d.stall_mult * n.stall_mult AS base_stall_share,
            s.play_median_s * 1000 * CASE WHEN v.is_live THEN 3.0 ELSE 1.0 END AS play_median_ms,
@@ -772,6 +791,7 @@ WITH aged AS (
                WHEN 'burst' THEN sc.burst_fail_share
                WHEN 'tiny' THEN 0.0
                ELSE sc.fatal_share * d.error_mult * n.error_mult * c.error_mult * v.title_error_mult
+                    * CASE WHEN v.player_version = sc.launch_version THEN sc.launch_fail_factor ELSE 1.0 END
            END AS fatal_share,
            CASE WHEN v.kind IN ('viewer', 'match') THEN sc.exit_share
                 WHEN v.kind = 'tiny' THEN 0.0
@@ -924,6 +944,15 @@ SELECT * FROM (
                   || 'start-up %.1fx slower until rolled back',
                   rollout_version, 100 * rollout_share, rollout_family,
                   epoch(rollout_ramp) / 3600, rollout_startup_factor)
+    FROM scenario
+    UNION ALL
+    SELECT 'incident', 'release_errors_against_peers',
+           printf('device_family=%s, player_version=%s', launch_family, launch_version),
+           launch_from, launch_to,
+           printf('player %s on %s, on %.0f%% of the family''s sessions from its first hour, fails '
+                  || '%.1fx as often as the family''s other releases and starts %.2fx slower',
+                  launch_version, launch_family, 100 * launch_share, launch_fail_factor,
+                  launch_startup_factor)
     FROM scenario
     UNION ALL
     SELECT 'incident', 'rebuffering_by_site', printf('site=%s', match_site), match_from, match_to,

@@ -77,6 +77,8 @@ def load_check(doc: Located, sources: dict[str, Source], con: duckdb.DuckDBPyCon
     lifecycle = Lifecycle(life_s.get("recover_after"), life_s.get("expire_after"), life_s.get("reopen_within"))
     if measure is not None and measure.split and set(by) & {measure.split}:
         top.error(("measure", "split"), f"measure.split: '{measure.split}' is already in 'by'")
+    if baseline is not None and baseline.method == "peers":
+        _peers(top, baseline, by, window)
     if len(problems) > before or None in (name, source, measure, window, baseline):
         return None
     return Check(
@@ -164,6 +166,8 @@ def _baseline(doc: Located, raw: Any, measure: Measure | None, problems: list[Pr
     if any(values.get(k.name) is None for k in method.keys if k.required):
         return None
     renamed = {("lam" if k == "lambda" else k): v for k, v in values.items() if v is not None}
+    if "peers_by" in renamed:
+        renamed["peers_by"] = tuple(renamed["peers_by"])
     return Baseline(method=method.name, **renamed)
 
 
@@ -186,6 +190,20 @@ def _cusum_fits(section: Section, values: dict[str, Any], direction: str | None)
                       f"interval above h = {H_LIMIT} for some p0; give a larger shift or fewer sessions")
         return False
     return True
+
+
+def _peers(top: Section, baseline: Baseline, by: list[str], window: Window | None) -> None:
+    """A peers baseline compares series that share some of `by` over one common time window."""
+    shared = baseline.peers_by
+    if window is not None and window.kind == "count":
+        top.error(("baseline", "method"), "baseline.method: peers compares series over the same time window; "
+                  "count windows (window.sessions) share no common time: use window.every")
+    outside = [c for c in shared if c not in by]
+    if outside:
+        top.error(("baseline", "peers_by"), f"baseline.peers_by: {', '.join(map(repr, outside))} not in 'by'")
+    elif not shared or len(shared) >= len(by):
+        top.error(("baseline", "peers_by"), "baseline.peers_by must name some of the columns of 'by', not none "
+                  "and not all: a series' peers share those and differ in the rest")
 
 
 def validate_check(project: Project, doc: Located) -> tuple[Check | None, list[Problem]]:

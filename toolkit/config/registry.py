@@ -128,6 +128,21 @@ BASELINES: dict[str, Kind] = {
             ),
             rate_only=True,
         ),
+        Kind(
+            "peers",
+            "each window against the same time window of its peers (the series sharing peers_by), itself "
+            "left out: rate, p₀ ± sigmas × √(φ p₀(1−p₀)(1/n + 1/N)), p₀ the peers' pooled rate over N sessions "
+            "and φ their over-dispersion (funnel plot, Spiegelhalter 2005); ratio and quantile, the peers' median ± "
+            "sigmas × 1.4826 × their median absolute deviation",
+            (
+                Key("peers_by", "columns", "the columns of 'by' that peers share: each series is compared "
+                    "with the other series of the same values", True),
+                Key("min_peers", "int", "fewer peers with a window of the same time than this: no verdict",
+                    False, 3, minimum=2),
+                Key("sigmas", "number", "how many standard errors (rate) or robust deviations (ratio, "
+                    "quantile) from the peers' figure the limit lies", False, 3.0, minimum=0),
+            ),
+        ),
     )
 }
 

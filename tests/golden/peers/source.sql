@@ -1,0 +1,148 @@
+-- ── stage 0 · source ───────────────────────────────────────────────────────────────────────
+-- Source sessions: the sessions of the files not read before ($files, read from where they are;
+-- $paths, their names relative to the source's path), read once for every check that has read the
+-- same files before ($reader is the first of them), each session id once per check, in this run and
+-- across runs. Rows without a session id or a sane event time are counted and skipped; excluded
+-- sessions never count. A session id is kept only as its md5 (a 128-bit number).
+-- Each new file: its place in $files, its name, and the latest event time a session in it can
+-- sanely have: INTERVAL 1 DAY (max_future) after the file was written.
+CREATE OR REPLACE TEMP TABLE run_files AS
+SELECT m.i AS file_index, m.f.path AS path, m.f.modified_at + INTERVAL 1 DAY AS latest_sane
+FROM (SELECT unnest($manifest) AS f, generate_subscripts($manifest, 1) - 1 AS i) AS m;
+
+-- The reader's data time before this run: sessions more than INTERVAL 3 DAY (dedup_horizon)
+-- older than it can no longer be told from repeats, whose ids are forgotten by then. And when a
+-- backlog is read in several runs, the earliest event time of the files left for the next runs
+-- ($read_until): the watermark stays before it, and count windows wait for the sessions after it.
+CREATE OR REPLACE TEMP TABLE read_limits AS
+SELECT
+    (SELECT watermark FROM check_state WHERE check_name = $reader) - INTERVAL 3 DAY AS remembered_from,
+    $read_until::TIMESTAMP AS read_until;
+
+CREATE OR REPLACE TEMP TABLE lake_rows AS
+SELECT
+    r.__session_id,
+    md5_number(r.__session_id) AS __id_hash,
+    -- an event time that cannot be right (infinite, or after its file was written + max_future) is
+    -- no event time: the row is invalid and never moves the watermark
+    CASE WHEN isfinite(r.__event_time) AND r.__event_time <= f.latest_sane THEN r.__event_time END AS __event_time,
+    r.__event_time IS NOT NULL AND NOT coalesce(isfinite(r.__event_time) AND r.__event_time <= f.latest_sane, false) AS __insane_time,
+    r.* EXCLUDE (__session_id, __event_time)
+FROM (
+    SELECT
+        "session_id"::VARCHAR AS __session_id,
+        ("ended_at")::TIMESTAMP AS __event_time,
+coalesce("is_bot", false) AS __excluded,
+        "site",
+        "title_id",
+        "error_code",
+        file_index::INTEGER AS __file
+    FROM read_parquet($files, hive_partitioning = true, union_by_name = true)
+) AS r
+JOIN run_files AS f ON f.file_index = r.__file;
+
+-- Session ids the reader has counted before (from a file it has read): repeats. Checks read a
+-- source's files together only when they have read the same files before, so it is every one's.
+CREATE OR REPLACE TEMP TABLE read_before AS
+SELECT DISTINCT id_hash
+FROM session_ids
+WHERE source_name = 'sessions'
+  AND first_path IN (SELECT path FROM files_read WHERE check_name = $reader)
+  AND id_hash IN (SELECT __id_hash FROM lake_rows WHERE __id_hash IS NOT NULL);
+
+-- Valid rows, and those too old to be told from repeats.
+CREATE OR REPLACE TEMP VIEW valid_rows AS
+SELECT
+    *,
+    coalesce(__event_time < (SELECT remembered_from FROM read_limits), false) AS __beyond_horizon
+FROM lake_rows
+WHERE __session_id IS NOT NULL AND __event_time IS NOT NULL;
+
+-- One copy of each new session id: the earliest, then by file, so every run keeps the same one.
+CREATE OR REPLACE TEMP TABLE repeated_ids AS
+SELECT __id_hash
+FROM valid_rows
+WHERE NOT __beyond_horizon
+GROUP BY __id_hash
+HAVING count(*) > 1;
+
+-- A view, not a copy: each check's scan reads it once.
+CREATE OR REPLACE TEMP VIEW lake_sessions AS
+SELECT __session_id, __id_hash, __event_time, __excluded, "site", "title_id", "error_code", __file
+FROM valid_rows
+WHERE NOT __beyond_horizon
+  AND __id_hash NOT IN (SELECT __id_hash FROM repeated_ids)
+  AND __id_hash NOT IN (SELECT id_hash FROM read_before)
+UNION ALL
+SELECT __session_id, __id_hash, __event_time, __excluded, "site", "title_id", "error_code", __file
+FROM valid_rows
+WHERE NOT __beyond_horizon
+  AND __id_hash IN (SELECT __id_hash FROM repeated_ids)
+  AND __id_hash NOT IN (SELECT id_hash FROM read_before)
+QUALIFY row_number() OVER (PARTITION BY __id_hash ORDER BY __event_time, __file) = 1;
+
+CREATE OR REPLACE TEMP TABLE lake_counts AS
+WITH kept AS (
+    SELECT count(*) AS sessions, count(*) FILTER (WHERE __excluded) AS excluded FROM lake_sessions
+),
+valid AS (
+    SELECT count(*) AS rows_valid, count(*) FILTER (WHERE __beyond_horizon) AS beyond_horizon FROM valid_rows
+)
+SELECT
+    count(*) AS rows_read,
+    count(*) FILTER (WHERE __session_id IS NULL OR __event_time IS NULL) AS invalid_rows,
+    any_value(valid.rows_valid) - any_value(valid.beyond_horizon) - any_value(kept.sessions) AS duplicate_rows,
+    any_value(valid.beyond_horizon) AS beyond_horizon,
+    any_value(kept.excluded) AS rows_excluded,
+    -- the watermark's candidate: every possible event time read (an impossible one is NULL by now)
+    max(__event_time) AS latest
+FROM lake_rows, kept, valid;
+
+-- What each file held: its rows, and those without a session id or a sane event time.
+CREATE OR REPLACE TEMP TABLE lake_file_rows AS
+SELECT
+    f.path,
+    count(r.__file) AS rows,
+    count(r.__file) FILTER (WHERE r.__session_id IS NULL OR r.__event_time IS NULL) AS invalid_rows,
+    count(r.__file) FILTER (WHERE r.__insane_time) AS insane_times
+FROM run_files AS f
+LEFT JOIN lake_rows AS r ON r.__file = f.file_index
+GROUP BY f.path;
+
+-- The kept sessions' id hashes as two 64-bit halves, which is how they reach the warehouse's
+-- connection when the stages run on a connection of their own (Arrow has no 128-bit integer).
+CREATE OR REPLACE TEMP VIEW kept_ids AS
+SELECT (__id_hash >> 64)::UBIGINT AS hash_high, (__id_hash & 18446744073709551615)::UBIGINT AS hash_low,
+       __file, __event_time
+FROM lake_sessions;
+
+-- The statements above ran on the stage connection. The INSERT below runs in the run's transaction,
+-- on the warehouse's own connection, reading kept_ids from the stage connection as a stream of
+-- batches:
+-- @statement move.kept_ids.clear
+-- A run before this one in the same call that ran the source stage in the transaction (the first
+-- run of a rebuild over a backlog) left its kept_ids view on the transaction's connection;
+-- the stream takes its name.
+DROP VIEW IF EXISTS "kept_ids";
+
+-- @statement move.kept_ids.stream
+-- The kept sessions' id hashes, streamed in batches to the transaction's connection for the source
+-- stage's INSERT INTO session_ids, which reads them as kept_ids.
+SELECT * FROM "kept_ids";
+
+-- Remember each kept id with the file it was kept from (hashes only); only pairs not yet known.
+INSERT INTO session_ids BY NAME
+SELECT 'sessions' AS source_name, k.id_hash, k.first_path, k.event_time
+FROM (SELECT (hash_high::UHUGEINT << 64) | hash_low AS id_hash, $paths[__file + 1] AS first_path, __event_time AS event_time FROM kept_ids) AS k
+ANTI JOIN (
+    SELECT id_hash, first_path
+    FROM session_ids
+    WHERE source_name = 'sessions' AND list_contains($paths, first_path)
+) AS known
+    ON known.id_hash = k.id_hash AND known.first_path = k.first_path;
+
+-- Forget ids more than dedup_horizon behind the data every check of the source has read.
+DELETE FROM session_ids
+WHERE source_name = 'sessions'
+  AND event_time < (SELECT min(watermark) FROM check_state WHERE list_contains($source_checks, check_name))
+                   - INTERVAL 3 DAY;
