@@ -272,7 +272,8 @@ SELECT
     -- sessions hit per hour of data time, over the breaching windows' span (at least one minute)
     affected_sessions / greatest(epoch(last_breach_at - breach_started_at) / 3600.0, 1 / 60.0) AS affected_per_hour,
     excess_sessions,
-    {{ m.hll_estimate("viewer_sketch") }} AS affected_viewers,
+    -- an estimate: never more viewers than sessions (every affected session has one viewer)
+    CASE WHEN viewer_sketch IS NOT NULL THEN least({{ m.hll_estimate("viewer_sketch") }}, affected_sessions) END AS affected_viewers,
     viewer_sketch,
     peak_value,
     threshold,
@@ -335,7 +336,7 @@ event_viewers AS (
 SELECT a.alert_id, $run_id AS run_id, e.occurred_at, e.event, e.value, e.threshold,
        coalesce(e.affected_sessions, a.affected_sessions) AS affected_sessions,
        {% if measure.kind == "rate" %}coalesce(e.excess_sessions, a.excess_sessions){% else %}NULL::DOUBLE{% endif %} AS excess_sessions,
-       {% if source.viewer_id %}coalesce(v.affected_viewers, CASE WHEN e.window_number IS NULL AND e.event = 'closed' THEN a.affected_viewers END, 0){% else %}NULL::BIGINT{% endif %} AS affected_viewers
+       {% if source.viewer_id %}least(coalesce(v.affected_viewers, CASE WHEN e.window_number IS NULL AND e.event = 'closed' THEN a.affected_viewers END, 0), coalesce(e.affected_sessions, a.affected_sessions)){% else %}NULL::BIGINT{% endif %} AS affected_viewers
 FROM step_events AS e
 JOIN alert_rows AS a ON {{ m.same_series("e", "a") }} AND e.episode = a.episode
 {% if source.viewer_id %}

@@ -17,7 +17,7 @@ import pytest
 
 from video_stalls import score_all
 
-REACHED = {"top1": 0.777, "top3": 0.911, "top5": 0.944, "f1": 0.70}
+REACHED = {"top1": 0.777, "top3": 0.9, "top5": 0.944, "f1": 0.70}
 
 
 @pytest.mark.slow

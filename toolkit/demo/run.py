@@ -37,6 +37,8 @@ sources:
     exclude: is_bot OR regexp_matches(user_agent, '(?i)(bot|crawler|spider)')
     # viewers retry: alerts count the distinct viewers hit, from a sketch (the ids are never kept)
     viewer_id: viewer_id
+    # where `plimsoll explain` looks for the place a series' failures concentrate
+    attributes: [site, cdn, country, device_family, player_version, title_id]
 """
 
 

@@ -30,6 +30,9 @@ PRIOR_ROWS = 5
 # A finer combination (one attribute value more) replaces a coarser one when what lies outside it
 # has at most this share of its relative excess (X/F − 1).
 FINER_REST = 0.05
+# ... and when it holds at least this share of the coarser one's excess: a handful of sessions with
+# an expected count near zero has a huge lift, but says nothing of where the problem is.
+FINER_HOLDS = 0.5
 # An answer must hold at least this share of the window's excess.
 MIN_SHARE = 0.05
 # 2·S above the 99.9 % point of chi-square with one degree of freedom: the likelihood-ratio test of
@@ -174,8 +177,9 @@ def merged(answers: list[tuple], first: list[tuple]) -> list[tuple]:
 
 def refine(candidates: list[tuple]) -> tuple:
     """The best-scoring candidate, made finer while the rest of it is no longer the problem: a finer
-    combination (one attribute value more) replaces it when what lies outside the finer one fails at
-    close to its expected rate (its relative excess X/F − 1 at most FINER_REST of the finer one's)."""
+    combination (one attribute value more) replaces it when it holds at least FINER_HOLDS of its
+    excess and what lies outside it fails at close to its expected rate (its relative excess X/F − 1
+    at most FINER_REST of the finer one's)."""
     current = candidates[0]
     while True:
         items = set(current[0].items())
@@ -186,7 +190,8 @@ def refine(candidates: list[tuple]) -> tuple:
             rest_bad, rest_expected = current[1] - c[1], current[3] - c[3]
             lift = c[1] / c[3] - 1
             rest_lift = rest_bad / rest_expected - 1 if rest_expected > 0 else 0.0
-            if rest_lift <= FINER_REST * lift:
+            holds = c[1] - c[3] >= FINER_HOLDS * (current[1] - current[3])
+            if holds and rest_lift <= FINER_REST * lift:
                 finer.append(c)
         if not finer:
             return current

@@ -248,7 +248,8 @@ SELECT
     -- sessions hit per hour of data time, over the breaching windows' span (at least one minute)
     affected_sessions / greatest(epoch(last_breach_at - breach_started_at) / 3600.0, 1 / 60.0) AS affected_per_hour,
     excess_sessions,
-    round(CASE WHEN 0.7213 / (1 + 1.079 / 1024) * 1048576 / (1024 - (len(viewer_sketch)) + (coalesce(list_sum(list_transform(viewer_sketch, lambda p: 2.0 ^ -(p % 64))), 0.0))) <= 2560 AND (len(viewer_sketch)) < 1024 THEN 1024 * ln(1024 / (1024 - (len(viewer_sketch)))) ELSE 0.7213 / (1 + 1.079 / 1024) * 1048576 / (1024 - (len(viewer_sketch)) + (coalesce(list_sum(list_transform(viewer_sketch, lambda p: 2.0 ^ -(p % 64))), 0.0))) END)::BIGINT AS affected_viewers,
+    -- an estimate: never more viewers than sessions (every affected session has one viewer)
+    CASE WHEN viewer_sketch IS NOT NULL THEN least(round(CASE WHEN 0.7213 / (1 + 1.079 / 1024) * 1048576 / (1024 - (len(viewer_sketch)) + (coalesce(list_sum(list_transform(viewer_sketch, lambda p: 2.0 ^ -(p % 64))), 0.0))) <= 2560 AND (len(viewer_sketch)) < 1024 THEN 1024 * ln(1024 / (1024 - (len(viewer_sketch)))) ELSE 0.7213 / (1 + 1.079 / 1024) * 1048576 / (1024 - (len(viewer_sketch)) + (coalesce(list_sum(list_transform(viewer_sketch, lambda p: 2.0 ^ -(p % 64))), 0.0))) END)::BIGINT, affected_sessions) END AS affected_viewers,
     viewer_sketch,
     peak_value,
     threshold,
