@@ -4,6 +4,7 @@ lake adds nothing."""
 
 from __future__ import annotations
 
+import json
 from pathlib import Path
 
 import duckdb
@@ -131,3 +132,14 @@ def test_no_alert_counts_more_viewers_than_sessions(demo: tuple[Path, str]) -> N
     viewers = con.execute("SELECT count(affected_viewers) FROM alerts").fetchone()[0]
     con.close()
     assert viewers > 0 and over == 0 and events == 0
+
+
+@pytest.mark.slow
+def test_the_summary_shows_how_to_explain_a_site_alert_and_it_finds_the_cdn(demo: tuple[Path, str]) -> None:
+    workdir, output = demo
+    line = next(x for x in output.splitlines() if " explain " in x and x.strip().endswith("plimsoll.yml"))
+    alert_id = line.split(" explain ")[1].split()[0]
+    result = CliRunner().invoke(main, ["explain", alert_id, "-p", str(workdir / "plimsoll.yml"), "--json"])
+    assert result.exit_code == 0, result.output
+    first = json.loads(result.output)[0]
+    assert first["key"] == {"cdn": "birch", "country": "DE"} and first["significant"]

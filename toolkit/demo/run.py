@@ -127,6 +127,19 @@ def build_and_run(workdir: Path, sessions: int = 2_000_000, seed: int = 7,
     return outcome
 
 
+def _explain_hint(o: DemoOutcome) -> list[str]:
+    """How to ask where a broad alert's failures lie: the first site alert during another incident."""
+    broad = [m.alert for m in sorted(o.matches, key=lambda m: m.alert["opened_at"])
+             if m.alert["check_name"] == "site_errors" and m.during is not None]
+    if not broad:
+        return []
+    a = broad[0]
+    return [
+        f"Ask where an alert's failures lie in the attributes (here the {a['check_name']} {a['key_text']} alert):",
+        f"  {_command('plimsoll')} explain {a['alert_id']} -p {o.workdir / 'plimsoll.yml'}",
+    ]
+
+
 def _command(name: str) -> str:
     """The command as this installation has it, so the hint works outside an activated venv."""
     here = Path(sys.executable).parent
@@ -178,6 +191,7 @@ def summary(outcome: DemoOutcome) -> str:
         "",
         "See each alert as a picture (a static page; open it in any browser):",
         f"  {_command('plimsoll')} report -p {o.workdir / 'plimsoll.yml'} --out {o.workdir / 'report.html'}",
+        *_explain_hint(o),
         "Replay a check with a changed threshold, scored against the labels:",
         f"  {_command('plimsoll')} backtest title_errors -p {o.workdir / 'plimsoll.yml'} "
         f"--from 2026-11-09 --to 2026-11-23 --labels {o.workdir / 'labels.csv'} "
