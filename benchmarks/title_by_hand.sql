@@ -8,10 +8,12 @@
 --             (largest ended_at read) has passed that moment
 --   series:   one per error_code seen for the title, from the window it is first seen in; the
 --             title's earlier windows count as history at 0
---   verdict:  threshold = max(0.05, 2 × quantile_cont 0.9 of the last 30 non-breaching values),
---             once there are 4; breach = value > threshold, sessions >= 100, bad >= 10
+--   verdict:  threshold = max(0.05, 2 × quantile_cont 0.9 of the last 30 healthy values),
+--             once there are 4; fewer than 100 sessions: no verdict; value <= threshold: healthy
+--             (history); above it: a breach with 10 bad or more, else no verdict
 --   alerts:   open on a breach, close after 2 healthy windows in a row, or expire 3 days after
---             the series' last window
+--             the series' last window; a breach whose window starts within 6 hours of the
+--             series' last recovery reopens that alert
 -- Statements end with a semicolon at the end of a line; benchmarks/bench.py runs them in order.
 
 CREATE OR REPLACE TEMP TABLE raw AS
@@ -118,28 +120,41 @@ LEFT JOIN bad_by_code AS b ON b.k = c.k AND b.seq = w.seq AND b.error_code = c.e
 -- every series steps through its windows in order, all series at once: history, verdict, alert
 CREATE OR REPLACE TEMP TABLE judged AS
 WITH RECURSIVE step(sid, r, hist, threshold, breach, is_open, streak, episode, opens, recovers,
-                    expires_before, close_episode, window_end) AS (
+                    expires_before, close_episode, window_end, last_recovery, reopens) AS (
     SELECT sid, 0::BIGINT, list_transform(range(least(since - 1, 30)), lambda x: 0.0::DOUBLE),
-           NULL::DOUBLE, false, false, 0, 0, false, false, false, NULL::INTEGER, NULL::TIMESTAMP
+           NULL::DOUBLE, false, false, 0, 0, false, false, false, NULL::INTEGER, NULL::TIMESTAMP,
+           NULL::TIMESTAMP, false
     FROM series_windows WHERE r = 1
     UNION ALL
     SELECT sid, r,
-           CASE WHEN is_breach THEN hist ELSE list_append(hist, value)[-30:] END,
-           thr, is_breach,
+           CASE WHEN verdict IS NOT DISTINCT FROM false THEN list_append(hist, value)[-30:] ELSE hist END,
+           thr, verdict,
            CASE WHEN is_breach THEN true
-                WHEN thr IS NOT NULL AND still_open AND streak + 1 >= 2 THEN false
+                WHEN healthy AND still_open AND streak + 1 >= 2 THEN false
                 ELSE still_open END,
-           CASE WHEN is_breach THEN 0 WHEN thr IS NOT NULL AND still_open THEN streak + 1 ELSE streak END,
-           CASE WHEN is_breach AND NOT still_open THEN episode + 1 ELSE episode END,
+           CASE WHEN is_breach THEN 0 WHEN healthy AND still_open THEN streak + 1 ELSE streak END,
+           CASE WHEN is_breach AND NOT still_open AND NOT reopening THEN episode + 1 ELSE episode END,
            is_breach AND NOT still_open,
-           NOT is_breach AND thr IS NOT NULL AND still_open AND streak + 1 >= 2,
+           healthy AND still_open AND streak + 1 >= 2,
            expired,
            episode,
-           window_end
+           window_end,
+           CASE WHEN healthy AND still_open AND streak + 1 >= 2 THEN window_end
+                WHEN expired OR (is_breach AND NOT still_open) THEN NULL
+                ELSE last_recovery END,
+           is_breach AND NOT still_open AND reopening
     FROM (
-        SELECT s.sid, w.r, s.hist, w.value, w.window_end, s.episode,
+        SELECT *,
+               coalesce(verdict, false) AS is_breach,
+               coalesce(verdict = false AND thr IS NOT NULL, false) AS healthy,
+               coalesce(NOT expired AND window_start < last_recovery + INTERVAL 6 HOUR, false) AS reopening
+        FROM (
+        SELECT s.sid, w.r, s.hist, w.value, w.window_start, w.window_end, s.episode, s.last_recovery,
                t.thr,
-               coalesce(w.value > t.thr AND w.sessions >= 100 AND w.bad >= 10, false) AS is_breach,
+               CASE WHEN w.sessions < 100 THEN NULL
+                    WHEN t.thr IS NULL OR NOT (w.value > t.thr) THEN false
+                    WHEN w.bad < 10 THEN NULL
+                    ELSE true END AS verdict,
                s.is_open AND w.window_end > s.window_end + INTERVAL 3 DAY AS expired,
                s.is_open AND NOT (w.window_end > s.window_end + INTERVAL 3 DAY) AS still_open,
                CASE WHEN s.is_open AND NOT (w.window_end > s.window_end + INTERVAL 3 DAY) THEN s.streak ELSE 0 END AS streak
@@ -147,10 +162,11 @@ WITH RECURSIVE step(sid, r, hist, threshold, breach, is_open, streak, episode, o
         JOIN series_windows AS w ON w.sid = s.sid AND w.r = s.r + 1,
         LATERAL (SELECT CASE WHEN len(s.hist) >= 4
                              THEN greatest(0.05, 2.0 * list_aggregate(s.hist, 'quantile_cont', 0.9)) END AS thr) AS t
+        )
     )
 )
 SELECT w.*, s.threshold, s.breach, s.is_open, s.episode, s.opens, s.recovers, s.expires_before,
-       s.close_episode
+       s.close_episode, s.reopens
 FROM step AS s JOIN series_windows AS w ON w.sid = s.sid AND w.r = s.r
 WHERE s.r > 0;
 
@@ -173,18 +189,30 @@ WITH closes AS (
     SELECT sid, episode, window_end + INTERVAL 3 DAY, 'expired'
     FROM (SELECT * FROM judged QUALIFY r = max(r) OVER (PARTITION BY sid)), watermark
     WHERE is_open AND window_end + INTERVAL 3 DAY < w
+),
+episodes AS (
+    SELECT j.sid, j.episode,
+           'site=' || coalesce(any_value(j.site), '<null>') || ', title_id=' || coalesce(any_value(j.title_id), '<null>') AS key_text,
+           any_value(j.error_code) AS split_value,
+           min(j.window_end) FILTER (WHERE j.opens AND NOT j.reopens) AS opened_at,
+           max(j.window_end) AS last_breach_end,
+           count(*) AS breach_windows,
+           sum(j.bad) AS affected_sessions,
+           max(j.value) AS peak_value,
+           arg_min(j.threshold, j.r) AS threshold
+    FROM judged AS j
+    WHERE j.breach
+    GROUP BY j.sid, j.episode
+),
+last_close AS (
+    -- a reopened alert closes more than once: its last close, if no breach came after it
+    SELECT c.*
+    FROM closes AS c
+    JOIN episodes AS e ON e.sid = c.sid AND e.episode = c.episode AND c.closed_at > e.last_breach_end
+    QUALIFY row_number() OVER (PARTITION BY c.sid, c.episode ORDER BY c.closed_at DESC) = 1
 )
-SELECT 'site=' || coalesce(any_value(j.site), '<null>') || ', title_id=' || coalesce(any_value(j.title_id), '<null>') AS key_text,
-       any_value(j.error_code) AS split_value,
-       CASE WHEN any_value(c.closed_at) IS NULL THEN 'open' ELSE 'closed' END AS status,
-       any_value(c.close_reason) AS close_reason,
-       min(j.window_end) FILTER (WHERE j.opens) AS opened_at,
-       any_value(c.closed_at) AS closed_at,
-       count(*) AS breach_windows,
-       sum(j.bad) AS affected_sessions,
-       max(j.value) AS peak_value,
-       arg_min(j.threshold, j.r) AS threshold
-FROM judged AS j
-LEFT JOIN closes AS c ON c.sid = j.sid AND c.episode = j.episode
-WHERE j.breach
-GROUP BY j.sid, j.episode;
+SELECT e.key_text, e.split_value,
+       CASE WHEN c.closed_at IS NULL THEN 'open' ELSE 'closed' END AS status,
+       c.close_reason, e.opened_at, c.closed_at, e.breach_windows, e.affected_sessions, e.peak_value, e.threshold
+FROM episodes AS e
+LEFT JOIN last_close AS c ON c.sid = e.sid AND c.episode = e.episode;

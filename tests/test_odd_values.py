@@ -175,7 +175,7 @@ def test_a_window_without_a_value_gives_no_verdict_and_cannot_close_an_alert(tmp
     project_file = lake_project(tmp_path, {"r.yml": REBUFFERING}, RATIO_SCHEMA, {"1.parquet": rows})
     run(load_project(project_file))
     found = query(project_file, "SELECT value IS NULL, threshold IS NOT NULL, breach FROM windows ORDER BY window_number")
-    assert found[8] == (True, True, False)
+    assert found[8] == (True, True, None)   # no value: no verdict (breach NULL)
     assert query(project_file, "SELECT breach_windows, close_reason, closed_at FROM alerts") == [
         (3, "recovered", T0 + timedelta(hours=11))]
 

@@ -31,8 +31,8 @@ def project(make_project) -> Path:
 def test_the_verdict_stage_holds_its_loop(project: Path) -> None:
     compiled = check_plan(load_project(project).checks[CHECK])
     verdict = next(s for s in compiled.stages if s.name == "verdict")
-    assert [s.name for s in compiled.stages] == ["source", "scan", "window", "measure", "verdict", "lifecycle",
-                                                  "persist"]
+    assert [s.name for s in compiled.stages] == ["source", "scan", "window", "measure", "verdict", "impact",
+                                                  "lifecycle", "persist"]
     assert verdict.loop is not None and verdict.after == ()
     assert (verdict.loop.until_name, verdict.loop.limit_name) == ("still_changing", "round_limit")
     assert verdict.loop.until.sql.endswith("SELECT count(*) FILTER (WHERE changed) AS still_changing FROM judged;")
