@@ -6,19 +6,18 @@
 -- 'reopened'; its counts go on) instead of opening a new one. A window without a verdict (breach
 -- NULL) is neither healthy nor a breach. All in data time, one pass over every series' new windows
 -- in order.
-CREATE OR REPLACE TEMP TABLE open_alerts AS
-SELECT *
-FROM alerts
-WHERE check_name = 'golden' AND status = 'open' AND definition_hash = $definition;
-
--- prior_alerts: each series' latest alert of this definition that is open, or closed: the alert a
--- breach of this run continues (open) or may reopen (closed as 'recovered').
+-- prior_alerts: each series' latest alert of this definition: every open one (a series has at most
+-- one), and for a series with new windows its last closed one, which a breach may reopen (when it
+-- closed as 'recovered'). open_alerts: the open ones among them.
 CREATE OR REPLACE TEMP TABLE prior_alerts AS
 SELECT *
 FROM alerts AS a
 WHERE check_name = 'golden' AND definition_hash = $definition
   AND (status = 'open' OR EXISTS (SELECT 1 FROM judged AS j WHERE j.key = a.key AND j.split_value IS NOT DISTINCT FROM a.split_value))
 QUALIFY row_number() OVER (PARTITION BY key, split_value ORDER BY status = 'open' DESC, closed_at DESC, opened_at DESC) = 1;
+
+CREATE OR REPLACE TEMP VIEW open_alerts AS
+SELECT * FROM prior_alerts WHERE status = 'open';
 
 CREATE OR REPLACE TEMP TABLE steps AS
 WITH relevant AS (
