@@ -20,7 +20,8 @@ from toolkit.sql.plans import check_plan
 from toolkit.outputs.listings import alerts_json, alerts_table, list_alerts
 from toolkit.problems import PlimsollError
 from toolkit.config.project import load_project
-from toolkit.engine.explain import explain_alert, explain_at, explain_sql, explanation_json, explanation_table
+from toolkit.engine.explain import (explain_alert, explain_at, explain_sql, explanation_json, explanation_table,
+                                    parse_key)
 from toolkit.engine.runner import run as run_checks
 from toolkit.engine.runner import RunResult, select_checks
 from toolkit.warehouse_demo.generate import MAX_SESSIONS, MIN_SESSIONS
@@ -172,13 +173,7 @@ def explain(target: str, at: datetime | None, key_text: str, by_text: str, as_js
             raise click.UsageError("--key goes with --at CHECK")
         found = explain_alert(project, target, by)
     else:
-        key: dict[str, str] = {}
-        for part in (p for p in key_text.split(",") if p.strip()):
-            column, sep, value = part.partition("=")
-            if not sep:
-                raise click.UsageError(f"--key: '{part}' is not COLUMN=VALUE")
-            key[column.strip()] = value.strip()
-        found = explain_at(project, target, at, key, by)
+        found = explain_at(project, target, at, parse_key(key_text), by)
     click.echo(explanation_json(found) if as_json else explanation_table(found), nl=False)
 
 

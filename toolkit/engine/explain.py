@@ -224,12 +224,19 @@ LEFT JOIN windows AS w
 WHERE a.alert_id = $alert_id
 """
 
+# one series' windows: its key as the lists of its `by` columns and their values, in `by` order
 _SERIES_WINDOWS = """
 SELECT key, key_text, split_value, window_number, window_start, window_end, breach
 FROM windows
-WHERE check_name = $check
+WHERE check_name = $check AND key = MAP($names, $values) AND split_value IS NOT DISTINCT FROM $split
 ORDER BY window_number
 """
+
+
+def _series_windows(con: duckdb.DuckDBPyConnection, check: Check, key: dict[str, str | None],
+                    split_value: str | None) -> list[tuple]:
+    return con.execute(_SERIES_WINDOWS, {"check": check.name, "names": list(check.by),
+                                         "values": [key[c] for c in check.by], "split": split_value}).fetchall()
 
 
 def explain_alert(project: Project, alert_id: str, by: tuple[str, ...] = (), top: int = TOP) -> Explanation:
@@ -244,8 +251,7 @@ def explain_alert(project: Project, alert_id: str, by: tuple[str, ...] = (), top
         if number is None:
             raise ExplainError(f"alert {alert_id}: its opening window is no longer in the warehouse "
                                f"(check '{name}' was rebuilt since)")
-        windows = [w for w in con.execute(_SERIES_WINDOWS, {"check": name}).fetchall()
-                   if w[0] == key and w[2] == split_value]
+        windows = _series_windows(con, check, key, split_value)
     finally:
         con.close()
     return _explain(project, check, key, key_text, split_value, start, end, number, windows, by, top)
@@ -262,10 +268,9 @@ def explain_at(project: Project, check_name: str, at: datetime, key: dict[str, s
         raise ExplainError(f"check '{check_name}': --key must give every 'by' column: {wanted}")
     con = warehouse.open_for_reading(project)
     try:
-        rows = con.execute(_SERIES_WINDOWS, {"check": check_name}).fetchall()
+        windows = _series_windows(con, check, key, None)
     finally:
         con.close()
-    windows = [w for w in rows if w[0] == key and w[2] is None]
     text = ", ".join(f"{c}={key[c]}" for c in check.by)
     if check.window.sessions is not None:
         holding = [w for w in windows if w[4] <= at <= w[5]]
@@ -280,6 +285,17 @@ def explain_at(project: Project, check_name: str, at: datetime, key: dict[str, s
         start = epoch + number * width
         end = start + width
     return _explain(project, check, key, text, None, start, end, number, windows, by, top)
+
+
+def parse_key(text: str) -> dict[str, str]:
+    """``COL=VALUE,...`` as a dict; a part without '=' is one line naming it."""
+    key: dict[str, str] = {}
+    for part in (p for p in text.split(",") if p.strip()):
+        column, sep, value = part.partition("=")
+        if not sep:
+            raise ExplainError(f"--key: '{part}' is not COLUMN=VALUE")
+        key[column.strip()] = value.strip()
+    return key
 
 
 def _check(project: Project, name: str) -> Check:
