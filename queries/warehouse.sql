@@ -215,6 +215,59 @@ ALTER TABLE alerts ADD COLUMN IF NOT EXISTS viewer_sketch INTEGER[];  -- its bre
 ALTER TABLE alert_events ADD COLUMN IF NOT EXISTS excess_sessions DOUBLE;
 ALTER TABLE alert_events ADD COLUMN IF NOT EXISTS affected_viewers BIGINT;
 
+-- layout 5: causes and incidents (queries/causes.sql, queries/incidents.sql)
+ALTER TABLE alerts ADD COLUMN IF NOT EXISTS incident_id VARCHAR;     -- the incident the alert belongs to
+ALTER TABLE outbox ADD COLUMN IF NOT EXISTS incident_id VARCHAR;     -- an incident's event (webhooks with `per: incident`)
+
+CREATE TABLE IF NOT EXISTS alert_causes (  -- where an alert's excess lies in the attributes, best first
+    alert_id VARCHAR,
+    rank INTEGER,                    -- 1, 2, 3 … in the order the rounds chose them
+    key MAP(VARCHAR, VARCHAR),       -- the combination: attribute -> value (NULL for a missing value)
+    key_text VARCHAR,                -- 'cdn=birch, country=DE'
+    bad DOUBLE,                      -- its bad sessions in the explained windows (Σ numerator for a ratio)
+    expected DOUBLE,                 -- what its own history's rate gives on its sessions there
+    sessions DOUBLE,                 -- its sessions there (Σ denominator for a ratio)
+    excess_share DOUBLE,             -- (bad − expected) ÷ the explained windows' whole excess
+    score DOUBLE,                    -- the expectation-based Poisson scan statistic
+    significant BOOLEAN,             -- an answer: significant once the answers above it are set aside
+    windows BIGINT,                  -- the breaching windows explained (the alert's latest ones)
+    history_windows BIGINT,          -- the earlier healthy windows they were compared with
+    run_id BIGINT                    -- the run that computed them (when the alert opened or last grew)
+);
+
+CREATE TABLE IF NOT EXISTS incidents (     -- alerts of one problem: one cause, the alerts it explains
+    incident_id VARCHAR,
+    status VARCHAR,                  -- 'open' while any of its alerts is open, else 'closed'
+    opened_at TIMESTAMP,             -- data time: its first alert's opening
+    closed_at TIMESTAMP,             -- data time: its last alert's closing
+    cause_alert_id VARCHAR,
+    cause_check VARCHAR,
+    cause_key MAP(VARCHAR, VARCHAR),
+    cause_key_text VARCHAR,
+    cause_split_value VARCHAR,
+    severity VARCHAR,                -- the highest of its alerts'
+    alerts BIGINT,
+    alert_ids VARCHAR[],             -- in order of opening
+    affected_sessions BIGINT,        -- the cause alert's: its series holds the others' excess
+    affected_viewers BIGINT,
+    excess_sessions DOUBLE,
+    first_run_id BIGINT,
+    last_run_id BIGINT               -- the last run that changed it
+);
+
+CREATE TABLE IF NOT EXISTS incident_events (
+    incident_id VARCHAR,
+    run_id BIGINT,
+    occurred_at TIMESTAMP,           -- data time
+    event VARCHAR,                   -- 'opened' | 'updated' | 'closed'
+    status VARCHAR,
+    cause_alert_id VARCHAR,
+    alerts BIGINT,
+    alert_ids VARCHAR[],
+    affected_sessions BIGINT,
+    affected_viewers BIGINT
+);
+
 -- The warehouse's layout, so a later release can migrate a file written by an earlier one and a
 -- file written by a later one is refused with a clear message. Paths in files_read,
 -- changed_files, session_ids and source_columns are relative to their source's path from version 2.

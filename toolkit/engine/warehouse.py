@@ -28,10 +28,11 @@ from toolkit.problems import DataError, RunLocked, WarehouseError, engine_messag
 
 TABLES = ("runs", "run_checks", "files_read", "changed_files", "source_columns", "session_ids",
           "check_state", "key_state", "carry", "key_windows", "windows", "alerts", "alert_events",
-          "schema_version")
+          "alert_causes", "incidents", "incident_events", "schema_version")
 # The layout this release writes (the schema_version table): 2 names files relative to their
-# source, 3 renames columns (CHANGELOG.md), 4 adds the impact columns (queries/migrate_4.sql).
-SCHEMA_VERSION = 4
+# source, 3 renames columns (CHANGELOG.md), 4 adds the impact columns (queries/migrate_4.sql), 5
+# adds causes and incidents (new tables and alerts.incident_id; the next run fills them).
+SCHEMA_VERSION = 5
 POLL_SECONDS = 0.25
 # A run's temp tables live until its one transaction commits, so without a limit its memory grows
 # with checks x sessions; at this limit DuckDB spills to disk instead. The limit bounds DuckDB's
@@ -187,7 +188,13 @@ def _run_template(con: duckdb.DuckDBPyConnection, name: str, params: dict[str, o
 
 
 # each layout and the step that brings a file of the layout before it there
-_MIGRATIONS = ((2, _layout_2), (3, _layout_3), (4, _layout_4))
+def _layout_5(con: duckdb.DuckDBPyConnection, project: Project) -> None:
+    """Layout 4 to 5: the causes and incidents tables are new (queries/warehouse.sql made them).
+    Nothing is filled after the fact: an earlier alert gets its causes when it next grows, and every
+    run groups the alerts into incidents afresh."""
+
+
+_MIGRATIONS = ((2, _layout_2), (3, _layout_3), (4, _layout_4), (5, _layout_5))
 
 
 def _adopt_definitions(con: duckdb.DuckDBPyConnection, project: Project) -> None:

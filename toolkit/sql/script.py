@@ -34,7 +34,7 @@ MOVED_BEFORE = {"impact": ("breaching",)}
 MOVED_AFTER_VERDICT = {"impact": ("affected_registers",)}
 STREAMED = "kept_ids"
 # The tables analysts read, published as Parquet beside the warehouse after every run.
-PUBLISHED = ("alerts", "alert_events", "windows", "runs")
+PUBLISHED = ("alerts", "alert_events", "windows", "runs", "alert_causes", "incidents", "incident_events")
 # How the partition check of lake.sql is shown: it is rendered per file, with the column and its type
 PARTITION_SHOWN = {"column": "COLUMN", "type": "TYPE"}
 
