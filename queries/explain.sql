@@ -1,14 +1,27 @@
 {% import "macros.sql" as m %}
 {% set time = "(" ~ source.time.sql ~ ")::TIMESTAMP" %}
 {% set count_window = check.window.sessions is not none %}
+{% set by_cutoff = check.measure.kind == "quantile" or (check.measure.kind == "ratio" and check.direction != "up") %}
+{% set beyond = ">" if check.direction == "up" else "<" %}
+{% set peers = check.baseline.method == "peers" %}
 -- `plimsoll explain`: where in the attributes a window's bad sessions exceed what was expected.
 --
--- The rows: the sessions of one series ($key: its `by` values) in the window being explained
--- ($window_start to $window_end{{ ", both ends included: a count window" if count_window else ", end excluded: a time window" }}) and in its history ($history:
--- the start and end of the series' earlier windows with a healthy verdict), each session once.
--- Each row carries x, its bad count, and n, its weight:
+-- The rows: the sessions of one series ($key: its `by` values) in the windows being explained
+-- ($spans with in_window: one window, or an alert's breaching windows{{ ", both ends included: count windows" if count_window else ", end excluded: time windows" }})
+-- and in its history ($spans without: the series' earlier windows with a healthy verdict), each
+-- session once. Each row carries x, its bad count, and n, its weight:
+{% if peers %}
+-- A peers check compares a series with its peers in the same windows, not with its own past: its
+-- "history" is the sessions of its peers ($key's {{ check.baseline.peers_by | join(", ") }}, another {{ (check.by | reject("in", check.baseline.peers_by)) | join(", ") }}) in the
+-- windows being explained, so a combination's expected count comes from how its peers fail there.
+{% endif %}
 {% if check.measure.kind == "rate" %}
 --   rate: x = 1 for a bad session, else 0; n = 1.
+{% elif by_cutoff %}
+--   {{ check.measure.kind }}{{ " falling" if check.direction != "up" }}: x = 1 for a session whose own value ({% if check.measure.kind == "ratio" %}numerator ÷ denominator{% else %}{{ check.measure.of.sql }}{% endif %}) is
+--   {{ "above" if check.direction == "up" else "below" }} $cutoff (the threshold the window breached), else 0; n = 1: the
+--   affected sessions, as the impact stage counts them, against how often the history's sessions
+--   were beyond the same cut-off.
 {% else %}
 --   ratio: x = its numerator, n = its denominator (the window's value is Σx ÷ Σn).
 {% endif %}
@@ -34,19 +47,25 @@ SELECT
 {% if check.measure.kind == "rate" %}
     (coalesce({{ check.measure.bad.sql }}, false){% if check.measure.split %} AND {{ check.measure.split | ident }}::VARCHAR IS NOT DISTINCT FROM $split_value{% endif %})::INTEGER::DOUBLE AS x,
     1.0::DOUBLE AS n
+{% elif by_cutoff %}
+{% set v = "((" ~ check.measure.numerator.sql ~ ")::DOUBLE / nullif((" ~ check.measure.denominator.sql ~ ")::DOUBLE, 0))" if check.measure.kind == "ratio" else "(" ~ check.measure.of.sql ~ ")::DOUBLE" %}
+    -- a session without a finite value is left out, as its window left it out
+    CASE WHEN isfinite({{ v }}) THEN ({{ v }} {{ beyond }} $cutoff)::INTEGER::DOUBLE END AS x,
+    1.0::DOUBLE AS n
 {% else %}
     ({{ check.measure.numerator.sql }})::DOUBLE AS x,
     ({{ check.measure.denominator.sql }})::DOUBLE AS n
 {% endif %}
 FROM (
-    SELECT r.*, h.in_window
+    SELECT r.*, {{ "r.__in_series" if peers else "h.in_window" }} AS in_window
     FROM (
-        SELECT *, {{ time }} AS __event_time
+        SELECT *, {{ time }} AS __event_time{% if peers %},
+            {% for column in check.by %}{{ column | ident }}::VARCHAR IS NOT DISTINCT FROM $key[{{ column | literal }}]{{ " AND " if not loop.last }}{% endfor %} AS __in_series{% endif +%}
         FROM read_parquet($files, hive_partitioning = true, union_by_name = true)
         WHERE {{ source.session_id | ident }} IS NOT NULL
           -- one span around them all first, which Parquet statistics can skip row groups by
-          AND {{ time }} >= $read_from AND {{ time }} <= $window_end
-{% for column in check.by %}
+          AND {{ time }} >= $read_from AND {{ time }} <= $read_until
+{% for column in (check.baseline.peers_by if peers else check.by) %}
           AND {{ column | ident }}::VARCHAR IS NOT DISTINCT FROM $key[{{ column | literal }}]
 {% endfor %}
 {% if check.where %}
@@ -60,9 +79,9 @@ FROM (
     JOIN (SELECT unnest($spans, recursive := true)) AS h
         ON r.__event_time >= h.window_start AND r.__event_time {{ "<=" if count_window else "<" }} h.window_end
     -- each session once: its earliest row
-    QUALIFY row_number() OVER (PARTITION BY r.{{ source.session_id | ident }} ORDER BY r.__event_time, h.in_window DESC) = 1
+    QUALIFY row_number() OVER (PARTITION BY r.{{ source.session_id | ident }} ORDER BY r.__event_time, {{ "r.__in_series" if peers else "h.in_window" }} DESC) = 1
 )
-{% if check.measure.kind == "ratio" %}
+{% if check.measure.kind != "rate" %}
 WHERE x IS NOT NULL AND n IS NOT NULL AND isfinite(x) AND isfinite(n)
 {% endif %}
 )

@@ -16,7 +16,8 @@ from toolkit.backtest.labels import label_matches
 from toolkit.outputs.listings import alerts_from
 from toolkit.warehouse_demo.generate import read_labels
 
-TABLES = ("windows", "alerts", "alert_events", "carry", "files_read", "key_state", "check_state")
+TABLES = ("windows", "alerts", "alert_events", "carry", "files_read", "key_state", "check_state", "alert_causes",
+          "incidents", "incident_events")
 
 
 @pytest.fixture(scope="module")
@@ -51,7 +52,7 @@ def test_demo_finds_every_incident_and_no_decoy(demo: tuple[Path, str]) -> None:
         assert all(incident.start <= a["opened_at"] <= incident.end for a in hits)
     for decoy in decoys:
         assert not [a for a in alerts if label_matches(a, decoy)], decoy
-    assert "Labelled incidents found: 5 of 5" in output
+    assert "Labelled problems found: 5 of 5" in output
     assert "Decoys alerted: 0" in output
 
 
@@ -143,3 +144,25 @@ def test_the_summary_shows_how_to_explain_a_site_alert_and_it_finds_the_cdn(demo
     assert result.exit_code == 0, result.output
     first = json.loads(result.output)[0]
     assert first["key"] == {"cdn": "birch", "country": "DE"} and first["significant"]
+
+
+@pytest.mark.slow
+def test_each_labelled_problem_is_one_incident_caused_by_its_labelled_check_and_key(demo: tuple[Path, str]) -> None:
+    # 13 alerts: the CDN in its country pages once (its CUSUM check, two sites' and two releases'
+    # alerts join it), the title once (its site joins it), each other problem once
+    workdir, output = demo
+    labels = [lab for lab in read_labels(workdir / "labels.csv") if lab.kind == "incident"]
+    con = duckdb.connect(str(workdir / "warehouse.duckdb"), read_only=True)
+    incidents = con.execute("SELECT cause_check, cause_key_text, alerts, opened_at FROM incidents").fetchall()
+    alerts = con.execute("SELECT count(*), count(incident_id) FROM alerts").fetchone()
+    con.close()
+    for label in labels:
+        caused = [i for i in incidents if (i[0], i[1]) == (label.check, label.key)]
+        assert len(caused) == 1, (label, incidents)
+        # no other incident starts during the problem with its alerts inside the problem's key
+    by_cause = {(i[0], i[1]): i[2] for i in incidents}
+    assert by_cause[("cdn_country_errors", "cdn=birch, country=DE")] == 7
+    assert by_cause[("title_errors", "site=kids, title_id=t-3001")] == 2
+    assert alerts[0] == alerts[1] == sum(i[2] for i in incidents)
+    assert f"{len(incidents)} incidents, {alerts[0]} alerts" in output
+    assert "incidents whose cause is a labelled problem's check and key: 5" in output

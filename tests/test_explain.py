@@ -135,7 +135,7 @@ def test_by_chooses_the_attributes(project_file: Path) -> None:
 @pytest.mark.parametrize(("args", "message"), [
     (("nosuchalert",), "no alert nosuchalert in"),
     (("site_failures", "--at", "2026-11-03 06:10"), "--key must give every 'by' column: site=…"),
-    (("startup", "--at", "2026-11-03 06:10", "--key", "site=news"), "explain needs a rate or ratio measure"),
+    (("startup", "--at", "2026-11-02 02:10", "--key", "site=news"), "the window has no threshold"),
     (("site_failures", "--at", "2026-11-03 06:10", "--key", "site=news", "--by", "cdnn"), "no column cdnn"),
     (("site_failures", "--at", "2026-11-01 06:10", "--key", "site=news"), "no sessions of the series in the window"),
     (("nosuch", "--at", "2026-11-03 06:10"), "no check 'nosuch'"),
@@ -149,10 +149,22 @@ def test_what_cannot_be_explained_is_one_line(project_file: Path, args: tuple[st
 def test_sql_shows_the_explain_statements(project_file: Path) -> None:
     result = invoke("sql", "site_failures", "-p", str(project_file))
     assert result.exit_code == 0
-    text = result.output[result.output.index("plimsoll explain (not part of a run)"):]
-    for name in ("explain.rows", "explain.totals", "explain.round", "explain.mark"):
+    text = result.output[result.output.index("after every check: causes and incidents"):]
+    for name in ("causes.touched", "causes.windows", "causes.store", "explain.rows", "explain.totals",
+                 "explain.round", "explain.mark", "incidents.group", "incidents.store"):
         assert f"-- @statement {name}" in text
     assert "GROUPING SETS" in text and "ln(bad / expected)" in text
+
+
+def test_a_quantile_counts_the_sessions_beyond_the_threshold(project_file: Path) -> None:
+    # start-up times are uniform and healthy: the sessions beyond the 90th-percentile threshold are
+    # spread as in the history, so no combination is an answer
+    result = invoke("explain", "startup", "--at", "2026-11-03 06:10", "--key", "site=news", "--json",
+                    "-p", str(project_file))
+    assert result.exit_code == 0, result.output
+    causes = json.loads(result.output)
+    assert not any(c["significant"] for c in causes)
+    assert all(c["bad"] <= c["sessions"] for c in causes)
 
 
 def test_a_finer_combination_must_hold_most_of_the_excess_to_replace_a_coarser_one() -> None:

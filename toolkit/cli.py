@@ -20,7 +20,8 @@ from toolkit.sql.plans import check_plan
 from toolkit.outputs.listings import alerts_json, alerts_table, list_alerts
 from toolkit.problems import PlimsollError
 from toolkit.config.project import load_project
-from toolkit.engine.explain import (explain_alert, explain_at, explain_sql, explanation_json, explanation_table,
+from toolkit.sql.script import with_after_checks
+from toolkit.engine.explain import (after_checks_sql, explain_alert, explain_at, explanation_json, explanation_table,
                                     parse_key)
 from toolkit.engine.runner import run as run_checks
 from toolkit.engine.runner import RunResult, select_checks
@@ -112,10 +113,7 @@ def show_sql(check: str, project_file: Path) -> None:
     """Print the SQL a run executes for CHECK, stage by stage."""
     project = load_project(project_file)
     (chosen,) = select_checks(project, [check])
-    click.echo(check_plan(chosen).sql, nl=False)
-    explaining = explain_sql(chosen)
-    if explaining:
-        click.echo("\n-- ── plimsoll explain (not part of a run) " + "─" * 58 + "\n" + explaining, nl=False)
+    click.echo(with_after_checks(check_plan(chosen).sql, after_checks_sql(chosen)), nl=False)
 
 
 @main.command()

@@ -58,6 +58,7 @@ class DemoOutcome:
     result: RunResult
     labels: list[Label]
     matches: list[Match] = field(default_factory=list)
+    incidents: list[dict[str, Any]] = field(default_factory=list)
 
     @property
     def found(self) -> list[Label]:
@@ -122,9 +123,55 @@ def build_and_run(workdir: Path, sessions: int = 2_000_000, seed: int = 7,
     con = connect(project, read_only=True)
     try:
         outcome.matches = [Match(a, match_label(a, labels), overlapping(a, labels)) for a in alerts_from(con)]
+        outcome.incidents = incidents_with_causes(con)
     finally:
         con.close()
     return outcome
+
+
+_INCIDENTS = """
+SELECT i.incident_id, i.opened_at, i.status, i.cause_alert_id, i.cause_check, i.cause_key_text, i.alerts,
+       i.affected_sessions, i.affected_viewers,
+       (SELECT list(c.key_text || ': ' || round(100 * c.excess_share)::INTEGER || ' %' ORDER BY c.rank)
+        FROM alert_causes AS c WHERE c.alert_id = i.cause_alert_id AND c.significant) AS answers,
+       (SELECT list(a.check_name || ' ' || a.key_text ORDER BY a.opened_at, a.alert_id)
+        FROM alerts AS a WHERE list_contains(i.alert_ids, a.alert_id) AND a.alert_id <> i.cause_alert_id) AS explained
+FROM incidents AS i
+ORDER BY i.opened_at, i.incident_id
+"""
+
+
+def incidents_with_causes(con: Any) -> list[dict[str, Any]]:
+    """The incidents, each with where its cause's excess lies and the alerts it explains."""
+    cursor = con.execute(_INCIDENTS)
+    names = [d[0] for d in cursor.description]
+    return [dict(zip(names, row)) for row in cursor.fetchall()]
+
+
+def _incident_lines(o: DemoOutcome) -> list[str]:
+    """Each incident: its cause, where the cause's excess lies, the alerts it explains, its label."""
+    by_alert = {m.alert["alert_id"]: m for m in o.matches}
+    lines = []
+    for i in o.incidents:
+        cause = by_alert.get(i["cause_alert_id"])
+        verdict = ("the labelled problem" if cause and cause.label and cause.label.kind == "incident"
+                   else "DECOY (should not alert)" if cause and cause.label
+                   else f"during the labelled {cause.during.check} problem" if cause and cause.during
+                   else "not labelled")
+        viewers = "" if i["affected_viewers"] is None else f" ({i['affected_viewers']:,} viewers)"
+        lines.append(f"  {i['opened_at']:%Y-%m-%d %H:%M}  {i['cause_check']} {i['cause_key_text']}: "
+                     f"{i['affected_sessions'] or 0:,} sessions affected{viewers}, "
+                     f"{i['alerts']} alert{'s' if i['alerts'] != 1 else ''}, {i['status']} - {verdict}")
+        if i["answers"]:
+            lines.append(f"      where: {'; '.join(i['answers'][:3])} of the excess")
+        if i["explained"]:
+            lines.append(f"      explains: {'; '.join(i['explained'])}")
+    return lines
+
+
+def _cause_is_labelled(o: DemoOutcome, incident: dict[str, Any]) -> bool:
+    return any(m.alert["alert_id"] == incident["cause_alert_id"] and m.label is not None
+               and m.label.kind == "incident" for m in o.matches)
 
 
 def _explain_hint(o: DemoOutcome) -> list[str]:
@@ -158,6 +205,10 @@ def summary(outcome: DemoOutcome) -> str:
         f"run {o.result.run_id}: {len(o.result.checks)} checks over {o.result.files_read} files "
         f"in {o.seconds_run:.1f} s",
         "",
+        f"{len(o.incidents)} incident{'s' if len(o.incidents) != 1 else ''}, {len(o.matches)} alerts: "
+        "each incident is the alerts of one problem, its cause the alert whose key explains the others",
+        *_incident_lines(o),
+        "",
         f"Alerts ({len(o.matches)}):",
     ]
     width = max((len(m.alert["check_name"]) for m in o.matches), default=0)
@@ -177,7 +228,8 @@ def summary(outcome: DemoOutcome) -> str:
         )
     lines += [
         "",
-        f"Labelled incidents found: {len(o.found)} of {len(incidents)}"
+        f"Labelled problems found: {len(o.found)} of {len(incidents)}; incidents whose cause is a labelled "
+        f"problem's check and key: {sum(1 for i in o.incidents if _cause_is_labelled(o, i))}"
         + ("" if not o.missed else "; missed: " + "; ".join(f"{m.check} {m.key}" for m in o.missed)),
         f"Decoys alerted: {len(o.decoys_hit)}; other alerts during a labelled incident: {len(o.related)}; "
         f"alerts matching no label: {len(o.unlabelled)}",

@@ -9,8 +9,11 @@ answer explains what the first left.
 from __future__ import annotations
 
 import itertools
+import math
 import json
+from collections.abc import Callable
 from dataclasses import dataclass
+from functools import lru_cache
 from datetime import datetime
 from typing import Any
 
@@ -42,6 +45,12 @@ SIGNIFICANT_2S = 10.828
 CANDIDATES = 200
 DEPTH = 3
 TOP = 5
+# An alert's causes: its latest breaching windows, at most this many (a long alert is explained by
+# what it is now) ...
+CAUSE_WINDOWS = 12
+# ... against at most this many healthy windows of its series before its first breach: enough for
+# each combination's own rate, and a bounded read of the lake in the run that explains it.
+CAUSE_HISTORY = 36
 
 
 class ExplainError(PlimsollError):
@@ -82,31 +91,50 @@ def _execute(con: duckdb.DuckDBPyConnection, sql: Named, name: str, params: dict
     return rows
 
 
+def by_cutoff(check: Check) -> bool:
+    """Whether the check's bad sessions are those beyond the breached threshold (a quantile, or a
+    ratio that alerts when it falls), rather than its own bad sessions or numerator."""
+    return check.measure.kind == "quantile" or (check.measure.kind == "ratio" and check.direction != "up")
+
+
 def explain_rows(con: duckdb.DuckDBPyConnection, check: Check, files: list[str], window_start: datetime,
                  window_end: datetime, history: list[tuple[datetime, datetime]], attributes: tuple[str, ...],
                  key: dict[str, str | None] | None = None, split_value: str | None = None,
-                 depth: int = DEPTH, top: int = TOP) -> list[Cause]:
-    """The ranked causes of one window of ``check``'s series ``key``, against its ``history``
-    (the start and end of earlier windows), reading ``files``."""
-    if check.measure.kind not in ("rate", "ratio"):
-        raise ExplainError(f"check '{check.name}': explain needs a rate or ratio measure, "
+                 depth: int = DEPTH, top: int = TOP, spans: list[tuple[datetime, datetime]] | None = None,
+                 cutoff: float | None = None) -> list[Cause]:
+    """The ranked causes of one window of ``check``'s series ``key`` (or of several: ``spans``, the
+    start and end of each, e.g. an alert's breaching windows), against its ``history`` (the start
+    and end of earlier windows), reading ``files``. A quantile, or a ratio that alerts when it falls,
+    counts the sessions beyond ``cutoff`` (the threshold breached) as its bad sessions."""
+    if check.measure.kind not in ("rate", "ratio", "quantile"):
+        raise ExplainError(f"check '{check.name}': explain needs a rate, ratio or quantile measure, "
                            f"not {check.measure.kind}")
+    if by_cutoff(check) and cutoff is None:
+        raise ExplainError(f"check '{check.name}': the window has no threshold to count the sessions beyond "
+                           "(a window before the series had a baseline)")
     if not attributes:
         raise ExplainError(f"check '{check.name}': no attributes to explain by: give --by, or "
                            "'attributes' in the source or the check")
+    explained = spans or [(window_start, window_end)]
+    if check.baseline.method == "peers":
+        history = []  # the peers in the same windows are the comparison
     sql = statements(check, attributes, depth)
     params: dict[str, Any] = {
-        "files": files, "window_start": window_start, "window_end": window_end,
-        "spans": [{"window_start": window_start, "window_end": window_end, "in_window": True}]
+        "files": files,
+        "spans": [{"window_start": s, "window_end": e, "in_window": True} for s, e in explained]
                  + [{"window_start": s, "window_end": e, "in_window": False} for s, e in history],
-        "key": key or {}, "split_value": split_value,
-        "read_from": min([window_start, *(s for s, _ in history)]),
+        "key": key or {}, "split_value": split_value, "cutoff": cutoff,
+        "read_from": min([*(s for s, _ in explained), *(s for s, _ in history)]),
+        "read_until": max(e for _, e in explained),
     }
     _execute(con, sql, "explain.rows", params)
     (window_bad, window_weight, history_bad, history_weight, history_rows, window_rows), = _execute(
         con, sql, "explain.totals", params)
     if window_rows == 0:
         raise ExplainError(f"check '{check.name}': no sessions of the series in the window "
+                           f"{window_start:%Y-%m-%d %H:%M:%S} to {window_end:%Y-%m-%d %H:%M:%S}")
+    if check.baseline.method == "peers" and (history_rows == 0 or history_weight <= 0):
+        raise ExplainError(f"check '{check.name}': the series has no peers with sessions in the window "
                            f"{window_start:%Y-%m-%d %H:%M:%S} to {window_end:%Y-%m-%d %H:%M:%S}")
     if history_rows == 0 or history_weight <= 0:
         raise ExplainError(f"check '{check.name}': the series has no healthy history before "
@@ -188,7 +216,7 @@ def refine(candidates: list[tuple]) -> tuple:
             if len(c[0]) != len(current[0]) + 1 or not items < set(c[0].items()):
                 continue
             rest_bad, rest_expected = current[1] - c[1], current[3] - c[3]
-            lift = c[1] / c[3] - 1
+            lift = c[1] / c[3] - 1 if c[3] > 0 else math.inf
             rest_lift = rest_bad / rest_expected - 1 if rest_expected > 0 else 0.0
             holds = c[1] - c[3] >= FINER_HOLDS * (current[1] - current[3])
             if holds and rest_lift <= FINER_REST * lift:
@@ -210,23 +238,98 @@ class Explanation:
     attributes: tuple[str, ...]
     history_windows: int
     causes: list[Cause]
+    windows: int = 1
+
 
     def as_json(self) -> list[dict[str, Any]]:
         return [c.as_json() for c in self.causes]
 
 
-_ALERT = """
-SELECT a.check_name, a.key, a.key_text, a.split_value, w.window_number, w.window_start, w.window_end
-FROM alerts AS a
-LEFT JOIN windows AS w
-    ON w.check_name = a.check_name AND w.key = a.key AND w.split_value IS NOT DISTINCT FROM a.split_value
-   AND w.window_end = a.opened_at AND w.breach
-WHERE a.alert_id = $alert_id
-"""
+@lru_cache(maxsize=1)
+def cause_statements() -> Named:
+    """``queries/causes.sql``: which alerts a run explains, their windows, and storing the causes."""
+    return named("causes.sql")
+
+
+def cause_attributes(check: Check, by: tuple[str, ...] = ()) -> tuple[str, ...]:
+    """The columns an explanation of ``check`` drills into: ``by``, else the check's (or its
+    source's) attributes; never the series' own columns or its split."""
+    return tuple(c for c in (by or check.attributes) if c not in check.by and c != check.measure.split)
+
+
+def explainable(check: Check) -> bool:
+    """Whether a run stores causes for ``check``'s alerts."""
+    return check.measure.kind in ("rate", "ratio", "quantile") and bool(cause_attributes(check))
+
+
+@dataclass(frozen=True)
+class AlertWindows:
+    """What explaining an alert reads: its series, its latest breaching windows, its history."""
+
+    check_name: str
+    key: dict[str, str | None]
+    key_text: str
+    split_value: str | None
+    threshold: float | None
+    explained: list[tuple[datetime, datetime]]
+    history: list[tuple[datetime, datetime]]
+
+
+def alert_windows(con: duckdb.DuckDBPyConnection, alert_id: str) -> AlertWindows | None:
+    """The windows explaining alert ``alert_id`` reads (None: no such alert)."""
+    sql = cause_statements()
+    found = _execute(con, sql, "causes.alert", {"alert_id": alert_id})
+    if not found:
+        return None
+    name, key, key_text, split_value, threshold = found[0]
+    rows = _execute(con, sql, "causes.windows", {"alert_id": alert_id, "explained": CAUSE_WINDOWS,
+                                                 "history": CAUSE_HISTORY})
+    return AlertWindows(name, dict(key), key_text, split_value, threshold,
+                        [(r[2], r[3]) for r in rows if r[0]], [(r[2], r[3]) for r in rows if not r[0]])
+
+
+def explain_windows(con: duckdb.DuckDBPyConnection, check: Check, found: AlertWindows, files: list[str],
+                    by: tuple[str, ...] = (), top: int = TOP) -> list[Cause]:
+    """The causes of an alert's windows (``found``), reading ``files`` on ``con``."""
+    if not found.explained:
+        raise ExplainError(f"check '{check.name}': the alert's breaching windows are no longer in the warehouse "
+                           "(the check was rebuilt since)")
+    first, last = found.explained[0], found.explained[-1]
+    return explain_rows(con, check, files, first[0], last[1], found.history, cause_attributes(check, by),
+                        found.key, found.split_value, top=top, spans=found.explained, cutoff=found.threshold)
+
+
+def store_causes(con: duckdb.DuckDBPyConnection, checks: list[Check], run_id: int,
+                 files_of: Callable[[Check], list[str]]) -> int:
+    """In a run, inside its transaction: the causes of every alert of ``checks`` that this run
+    opened or added breaching windows to, replacing what earlier runs stored; how many alerts.
+    ``files_of`` gives the files a check has read (what its alerts are explained from)."""
+    sql = cause_statements()
+    by_name = {c.name: c for c in checks if explainable(c)}
+    touched = _execute(con, sql, "causes.touched", {"run_id": run_id, "checks": sorted(by_name)})
+    for (alert_id,) in touched:
+        found = alert_windows(con, alert_id)
+        assert found is not None
+        check = by_name[found.check_name]
+        try:
+            causes = explain_windows(con, check, found, files_of(check))
+        except ExplainError:
+            causes = []  # no healthy history yet, say: nothing to say
+        rows = [{"rank": c.rank, "names": list(c.key), "values": list(c.key.values()), "key_text": key_text(c.key),
+                 "bad": c.bad, "expected": c.expected, "sessions": c.sessions, "excess_share": c.excess_share,
+                 "score": c.score, "significant": c.significant} for c in causes]
+        _execute(con, sql, "causes.store", {"alert_id": alert_id, "causes": rows, "run_id": run_id,
+                                            "windows": len(found.explained), "history_windows": len(found.history)})
+    return len(touched)
+
+
+def key_text(key: dict[str, str | None]) -> str:
+    """'cdn=birch, country=DE'."""
+    return ", ".join(f"{k}={v if v is not None else '<null>'}" for k, v in key.items())
 
 # one series' windows: its key as the lists of its `by` columns and their values, in `by` order
 _SERIES_WINDOWS = """
-SELECT key, key_text, split_value, window_number, window_start, window_end, breach
+SELECT key, key_text, split_value, window_number, window_start, window_end, breach, threshold
 FROM windows
 WHERE check_name = $check AND key = MAP($names, $values) AND split_value IS NOT DISTINCT FROM $split
 ORDER BY window_number
@@ -240,21 +343,29 @@ def _series_windows(con: duckdb.DuckDBPyConnection, check: Check, key: dict[str,
 
 
 def explain_alert(project: Project, alert_id: str, by: tuple[str, ...] = (), top: int = TOP) -> Explanation:
-    """The causes of the window that opened alert ``alert_id``."""
+    """The causes of alert ``alert_id``: its latest breaching windows (at most CAUSE_WINDOWS)
+    against the healthy windows of its series before it opened (at most CAUSE_HISTORY), as a run
+    stores them in alert_causes."""
     con = warehouse.open_for_reading(project)
     try:
-        found = con.execute(_ALERT, {"alert_id": alert_id}).fetchone()
-        if found is None:
-            raise ExplainError(f"no alert {alert_id} in {project.warehouse}")
-        name, key, key_text, split_value, number, start, end = found
-        check = _check(project, name)
-        if number is None:
-            raise ExplainError(f"alert {alert_id}: its opening window is no longer in the warehouse "
-                               f"(check '{name}' was rebuilt since)")
-        windows = _series_windows(con, check, key, split_value)
+        found = alert_windows(con, alert_id)
     finally:
         con.close()
-    return _explain(project, check, key, key_text, split_value, start, end, number, windows, by, top)
+    if found is None:
+        raise ExplainError(f"no alert {alert_id} in {project.warehouse}")
+    check = _check(project, found.check_name)
+    attributes = _attributes(check, by)
+    files = [f.where for f in lake.list_source(check.source)]
+    con = duckdb.connect()
+    try:
+        if check.source.storage is not None:
+            storage.register(con, check.source.storage)
+        causes = explain_windows(con, check, found, files, attributes, top)
+    finally:
+        con.close()
+    start = found.explained[0][0]
+    return Explanation(check.name, found.key_text, found.split_value, start, found.explained[-1][1], attributes,
+                       len(found.history), causes, len(found.explained))
 
 
 def explain_at(project: Project, check_name: str, at: datetime, key: dict[str, str] | None = None,
@@ -305,22 +416,27 @@ def _check(project: Project, name: str) -> Check:
     return check
 
 
-def _explain(project: Project, check: Check, key: dict[str, str], key_text: str, split_value: str | None,
-             start: datetime, end: datetime, number: int, windows: list[tuple], by: tuple[str, ...],
-             top: int) -> Explanation:
-    attributes = tuple(by) or check.attributes
-    unknown = [c for c in attributes if check.source.columns and c not in check.source.columns]
+def _attributes(check: Check, by: tuple[str, ...]) -> tuple[str, ...]:
+    unknown = [c for c in by or check.attributes if check.source.columns and c not in check.source.columns]
     if unknown:
         raise ExplainError(f"check '{check.name}': --by: no column {', '.join(unknown)} in source "
                            f"'{check.source.name}'")
-    attributes = tuple(c for c in attributes if c not in check.by and c != check.measure.split)
-    history = [(w[4], w[5]) for w in windows if w[3] < number and w[6] is False][-check.baseline.history:]
+    return cause_attributes(check, by)
+
+
+def _explain(project: Project, check: Check, key: dict[str, str], key_text: str, split_value: str | None,
+             start: datetime, end: datetime, number: int, windows: list[tuple], by: tuple[str, ...],
+             top: int) -> Explanation:
+    attributes = _attributes(check, by)
+    history = [(w[4], w[5]) for w in windows if w[3] < number and w[6] is False][-(check.baseline.history or 1):]
+    cutoff = next((w[7] for w in windows if w[3] == number), None)
     files = [f.where for f in lake.list_source(check.source)]
     con = duckdb.connect()
     try:
         if check.source.storage is not None:
             storage.register(con, check.source.storage)
-        causes = explain_rows(con, check, files, start, end, history, attributes, key, split_value, top=top)
+        causes = explain_rows(con, check, files, start, end, history, attributes, key, split_value, top=top,
+                              cutoff=cutoff)
     finally:
         con.close()
     return Explanation(check.name, key_text, split_value, start, end, attributes, len(history), causes)
@@ -329,7 +445,8 @@ def _explain(project: Project, check: Check, key: dict[str, str], key_text: str,
 def explanation_table(found: Explanation) -> str:
     """What `plimsoll explain` prints: the window, then one line per cause."""
     head = (f"{found.check} {found.key_text or '(all sessions)'}"
-            f"{' [' + found.split_value + ']' if found.split_value else ''}, window "
+            f"{' [' + found.split_value + ']' if found.split_value else ''}, "
+            f"{'window' if found.windows == 1 else f'{found.windows} breaching windows'} "
             f"{found.window_start:%Y-%m-%d %H:%M:%S} to {found.window_end:%Y-%m-%d %H:%M:%S}, against "
             f"{found.history_windows} earlier healthy windows, by {', '.join(found.attributes)}")
     if not found.causes:
@@ -350,10 +467,25 @@ def explanation_table(found: Explanation) -> str:
 
 def explain_sql(check: Check, by: tuple[str, ...] = ()) -> str:
     """The statements `plimsoll explain` runs for ``check``, for `plimsoll sql`."""
-    attributes = tuple(c for c in (by or check.attributes) if c not in check.by and c != check.measure.split)
-    if check.measure.kind not in ("rate", "ratio") or not attributes:
+    attributes = cause_attributes(check, by)
+    if check.measure.kind not in ("rate", "ratio", "quantile") or not attributes:
         return ""
     return statements(check, attributes).text("explain.")
+
+
+def after_checks_sql(check: Check) -> str:
+    """What a run executes after its checks, for `plimsoll sql`: the causes of ``check``'s alerts
+    (queries/causes.sql around the explain statements, also those of `plimsoll explain`), then
+    the grouping of every alert into incidents (queries/incidents.sql)."""
+    explaining = explain_sql(check)
+    causes = cause_statements()
+    text = causes.text("causes.touched", "causes.alert", "causes.windows")
+    if explaining:
+        text += "\n" + explaining
+    else:
+        text += ("\n-- (check '" + check.name + "' has no attributes to explain by: its alerts get no causes)\n")
+    text += "\n" + causes.text("causes.store")
+    return text + "\n" + named("incidents.sql").text("incidents.")
 
 
 def explanation_json(found: Explanation) -> str:

@@ -31,10 +31,10 @@ from toolkit.lake import files as lake
 
 from toolkit.engine import spark as spark_engine
 
-from toolkit.engine import warehouse
+from toolkit.engine import explain, warehouse
 from toolkit.sql.compiler import CompiledCheck, columns_read
 from toolkit.sql.plans import check_plan, source_plan
-from toolkit.sql.script import (AFTER_VERDICT, MOVED_AFTER, MOVED_AFTER_VERDICT, MOVED_BEFORE, STAGE_CONNECTION_STAGES,
+from toolkit.sql.script import (AFTER_VERDICT, incident_statements, MOVED_AFTER, MOVED_AFTER_VERDICT, MOVED_BEFORE, STAGE_CONNECTION_STAGES,
                                 STREAMED, created_table, run_statements, streams, writes_warehouse)
 from toolkit.sql.templates import Stage, Statement
 from toolkit.model import Check, Project, Source
@@ -49,6 +49,11 @@ RUN = "run"
 MOVED_ROWS = "moved_rows"  # what a moved table's rows are registered as on the transaction's connection
 DEFAULT_MAX_READ = 4 * 10**9  # bytes of Parquet per check and run: about 60M demo sessions
 STREAM_BATCH = 1_000_000
+# Alert A explains alert B (one incident, A its cause) when B's answers inside A's key carry at
+# least this share of B's excess ...
+INCIDENT_INSIDE = 0.5
+# ... and its answers outside A's key at most this share: what lies outside is no longer the problem.
+INCIDENT_OUTSIDE = 0.25
 
 
 @dataclass
@@ -211,6 +216,7 @@ def _run(con: duckdb.DuckDBPyConnection, project: Project, run_id: int, checks: 
                 done = result.checks[-1]
                 progress(f"{step}: {_plural(done.files_read, 'file')}, {_plural(done.windows_written, 'window')}, "
                          f"alerts opened {done.alerts_opened}, closed {done.alerts_closed}")
+        _causes_and_incidents(con, run_id, checks, listings, progress)
         repeats = _mostly_repeats(con)
         if repeats:
             result.warnings.append(repeats)
@@ -240,6 +246,25 @@ def _run(con: duckdb.DuckDBPyConnection, project: Project, run_id: int, checks: 
     finally:
         _close(stages)
     return result
+
+
+def _causes_and_incidents(con: duckdb.DuckDBPyConnection, run_id: int, checks: list[Check],
+                          listings: dict[str, list[lake.LakeFile]], progress: Progress) -> None:
+    """After every check: the causes of the alerts this run opened or grew (read from the files
+    each check has read), then every alert grouped into incidents afresh; in the run's transaction."""
+    def files_of(check: Check) -> list[str]:
+        read = {row[0] for row in _run_named(con, "begin.files_read_by", {"check": check.name}, fetch="all")}
+        return [f.where for f in listings.get(check.source.name, []) if f.path in read]
+
+    try:
+        explained = explain.store_causes(con, checks, run_id, files_of)
+    except duckdb.Error as err:
+        raise DataError(f"causes of the run's alerts: {_engine_message(err)}") from err
+    if explained:
+        progress(f"causes: {_plural(explained, 'alert')} explained")
+    for statement in incident_statements():
+        _execute(con, "incidents", "incidents", statement,
+                 {"run_id": run_id, "inside": INCIDENT_INSIDE, "outside": INCIDENT_OUTSIDE})
 
 
 def _plural(n: int, noun: str) -> str:

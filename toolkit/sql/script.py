@@ -79,6 +79,12 @@ def publish_statements(copies: tuple[tuple[str, str], ...] = ()) -> Named:
     return named("publish.sql", tables=PUBLISHED, copies=copies)
 
 
+@lru_cache(maxsize=1)
+def incident_statements() -> tuple[Statement, ...]:
+    """``queries/incidents.sql``: grouping every alert into incidents, at the end of each run."""
+    return tuple(statement for _, _, statements_ in named("incidents.sql").sections for statement in statements_)
+
+
 def layout_statements() -> Named:
     """``queries/layout.sql``: the warehouse's layout and its conversion."""
     return named("layout.sql")
@@ -123,7 +129,7 @@ def script(source: Source, stages: tuple[Stage, ...]) -> str:
     parts += [
         _heading("the check's record", "how many rounds its verdicts took, and what it did"),
         run.text("check."),
-        _heading("the run ends", "its record, and the commit"),
+        _heading(RUN_ENDS, "its record, and the commit"),
         run.text("end.repeats", "end.record", "end.files_read", "end.commit"),
         _note("a run that fails rolls back, then writes its 'failed' record alone: begin.transaction, "
               "end.record, end.commit"),
@@ -164,6 +170,20 @@ def _stage_text(stage: Stage, apart: bool, run: Named) -> str:
             "The tables the transaction's stages read, moved there from the stage connection:") + run.text(
             *(f"move.{table}." for table in moved))
     return text
+
+
+RUN_ENDS = "the run ends"
+
+
+def with_after_checks(script_text: str, after_checks: str) -> str:
+    """A check's script with what the run executes after every check and before it ends (the
+    causes of the alerts it opened or grew, and the incidents), in its place."""
+    at = script_text.index(f"-- ══ {RUN_ENDS} ")
+    part = _heading("after every check: causes and incidents", "the causes of each alert the run opened or "
+                    "added breaching windows to (for each: causes.alert, causes.windows, then the explain "
+                    "statements, explain.round and explain.mark in turns, and causes.store); then every alert "
+                    "grouped into incidents") + after_checks.rstrip("\n") + "\n"
+    return script_text[:at] + part + script_text[at:]
 
 
 def _heading(title: str, what: str) -> str:
