@@ -10,6 +10,7 @@ each measurement in a fresh process, so its peak memory (max RSS: VmHWM) is its 
   title      `plimsoll run --check title_errors` on a fresh warehouse
   oracle     the pandas oracle (tests/oracle.py) doing the same check
   catalogue  `plimsoll run` of the whole catalogue on a fresh warehouse
+  no_causes  the same without `attributes` (so no alert is explained), on a fresh warehouse
   increment  the catalogue over the first 30 days, then one incremental run adding the 31st
 
 and prints seconds, peak MiB, DuckDB's own peak, the windows and alerts each produced, the ratios
@@ -49,6 +50,7 @@ RATIOS = (
     ("title", "oracle", 0.25, "Plimsoll against the pandas oracle"),
     ("catalogue", "title", 3.0, "the whole catalogue against the title check alone"),
     ("increment", "catalogue", 0.1, "one new day after 30 against a full run"),
+    ("catalogue", "no_causes", 1.2, "the catalogue with its alerts' causes and incidents against it without causes"),
 )
 ORACLE_SHARE = 2_500_000  # sessions the oracle holds at a time (about 3 GiB as Python dicts)
 MEMORY_TARGET_MIB = 2048  # the catalogue's peak with the default memory limit
@@ -191,14 +193,23 @@ class _Stages:
                 "duckdb_peak_mib": self.duckdb_peak / 2**20}
 
 
-def _plimsoll(workdir: Path, checks: list[str] | None) -> dict[str, Any]:
+def _without_attributes(workdir: Path) -> Path:
+    """The demo project without its source's `attributes`: the same run, no causes computed."""
+    bare = workdir / "plimsoll-no-causes.yml"
+    text = (workdir / "plimsoll.yml").read_text(encoding="utf-8")
+    bare.write_text("\n".join(line for line in text.splitlines() if not line.strip().startswith("attributes:")) + "\n",
+                    encoding="utf-8")
+    return bare
+
+
+def _plimsoll(workdir: Path, checks: list[str] | None, project_file: Path | None = None) -> dict[str, Any]:
     from toolkit.config.project import load_project
     from toolkit.engine.runner import run
 
     stages = _Stages()
     stages.install()
     t = time.perf_counter()
-    project = load_project(workdir / "plimsoll.yml")
+    project = load_project(project_file or workdir / "plimsoll.yml")
     loading = time.perf_counter() - t
     result = run(project, checks)
     import duckdb
@@ -217,6 +228,7 @@ CHILDREN = {
     "title": lambda w: _plimsoll(w, ["title_errors"]),
     "oracle": _child_oracle,
     "catalogue": lambda w: _plimsoll(w, None),
+    "no_causes": lambda w: _plimsoll(w, None, _without_attributes(w)),
     "increment": lambda w: _plimsoll(w, None),
 }
 
@@ -291,7 +303,7 @@ def say(text: str) -> None:
 
 def measure_all(workdir: Path, skip: set[str]) -> dict[str, dict[str, Any]]:
     results: dict[str, dict[str, Any]] = {}
-    for name in ("floor", "by_hand", "title", "oracle", "catalogue"):
+    for name in ("floor", "by_hand", "title", "oracle", "catalogue", "no_causes"):
         if name in skip:
             continue
         fresh_warehouse(workdir)

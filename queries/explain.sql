@@ -151,3 +151,6 @@ WHERE NOT explained
       NOT list_contains($names, {{ a | literal }}) OR {{ ("a" ~ loop.index0) | ident }} IS NOT DISTINCT FROM $values[list_position($names, {{ a | literal }})]{{ "," if not loop.last }}
 {% endfor %}
   ]);
+
+-- @statement explain.drop
+DROP TABLE IF EXISTS explain_rows;

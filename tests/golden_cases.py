@@ -27,7 +27,9 @@ from conftest import FIXTURE_LAKE, PROJECT, write_project
 from toolkit.config.project import load_project
 from toolkit.engine.runner import run
 from toolkit.sql.compiler import STAGES
+from toolkit.engine.explain import after_checks_sql
 from toolkit.sql.plans import check_plan
+from toolkit.sql.script import with_after_checks
 
 GOLDEN = Path(__file__).parent / "golden"
 SCRIPT = "script"
@@ -148,7 +150,8 @@ def script_pieces(check_file: Path, folder: Path, project: str = PROJECT) -> dic
     loaded = load_project(case_project(check_file, folder, project))
     (name,) = loaded.checks
     compiled = check_plan(loaded.checks[name])
-    return printed_pieces(compiled.sql, [s.name for s in compiled.stages], [s.text for s in compiled.stages])
+    printed = with_after_checks(compiled.sql, after_checks_sql(loaded.checks[name]))
+    return printed_pieces(printed, [s.name for s in compiled.stages], [s.text for s in compiled.stages])
 
 
 def spark_stages(check_file: Path, folder: Path) -> dict[str, str]:

@@ -24,7 +24,7 @@ from toolkit.lake import files as lake
 from toolkit.lake import storage
 from toolkit.model import Check, Project
 from toolkit.problems import PlimsollError
-from toolkit.sql.templates import Named, named
+from toolkit.sql.templates import Named, Statement, named
 
 # The weight of the prior that shrinks a combination's own historical rate toward the series', in
 # rows of the history (sessions, for a rate): a combination seen in a handful of rows is expected to
@@ -84,10 +84,21 @@ def statements(check: Check, attributes: tuple[str, ...], depth: int = DEPTH) ->
                  sets=sets, prior=PRIOR_ROWS, candidates=CANDIDATES)
 
 
-def _execute(con: duckdb.DuckDBPyConnection, sql: Named, name: str, params: dict[str, Any]) -> list[tuple]:
+# How a statement is executed: on its own (`plimsoll explain`), or by a run's one helper for every
+# statement it executes (toolkit.engine.runner), which names what failed and is timed by the benchmark.
+Executor = Callable[[duckdb.DuckDBPyConnection, Statement, dict[str, Any]], list[tuple]]
+
+
+def _plain(con: duckdb.DuckDBPyConnection, statement: Statement, params: dict[str, Any]) -> list[tuple]:
+    cursor = con.execute(statement.sql, statement.bound(params))
+    return cursor.fetchall() if cursor.description else []
+
+
+def _execute(con: duckdb.DuckDBPyConnection, sql: Named, name: str, params: dict[str, Any],
+             run: Executor | None = None) -> list[tuple]:
     rows: list[tuple] = []
     for statement in sql[name]:
-        rows = con.execute(statement.sql, statement.bound(params)).fetchall()
+        rows = (run or _plain)(con, statement, params)
     return rows
 
 
@@ -101,7 +112,7 @@ def explain_rows(con: duckdb.DuckDBPyConnection, check: Check, files: list[str],
                  window_end: datetime, history: list[tuple[datetime, datetime]], attributes: tuple[str, ...],
                  key: dict[str, str | None] | None = None, split_value: str | None = None,
                  depth: int = DEPTH, top: int = TOP, spans: list[tuple[datetime, datetime]] | None = None,
-                 cutoff: float | None = None) -> list[Cause]:
+                 cutoff: float | None = None, run: Executor | None = None) -> list[Cause]:
     """The ranked causes of one window of ``check``'s series ``key`` (or of several: ``spans``, the
     start and end of each, e.g. an alert's breaching windows), against its ``history`` (the start
     and end of earlier windows), reading ``files``. A quantile, or a ratio that alerts when it falls,
@@ -127,9 +138,9 @@ def explain_rows(con: duckdb.DuckDBPyConnection, check: Check, files: list[str],
         "read_from": min([*(s for s, _ in explained), *(s for s, _ in history)]),
         "read_until": max(e for _, e in explained),
     }
-    _execute(con, sql, "explain.rows", params)
+    _execute(con, sql, "explain.rows", params, run)
     (window_bad, window_weight, history_bad, history_weight, history_rows, window_rows), = _execute(
-        con, sql, "explain.totals", params)
+        con, sql, "explain.totals", params, run)
     if window_rows == 0:
         raise ExplainError(f"check '{check.name}': no sessions of the series in the window "
                            f"{window_start:%Y-%m-%d %H:%M:%S} to {window_end:%Y-%m-%d %H:%M:%S}")
@@ -148,7 +159,7 @@ def explain_rows(con: duckdb.DuckDBPyConnection, check: Check, files: list[str],
                      significant=significant)
 
     # the answers: round after round, the best combination of what is left, while it is significant
-    first = _execute(con, sql, "explain.round", params)
+    first = _execute(con, sql, "explain.round", params, run)
     answers: list[tuple] = []
     candidates = first
     while candidates and len(answers) < top:
@@ -157,8 +168,8 @@ def explain_rows(con: duckdb.DuckDBPyConnection, check: Check, files: list[str],
             break
         answers.append(chosen)
         names = list(chosen[0])
-        _execute(con, sql, "explain.mark", {**params, "names": names, "values": [chosen[0][n] for n in names]})
-        candidates = _execute(con, sql, "explain.round", params)
+        _execute(con, sql, "explain.mark", {**params, "names": names, "values": [chosen[0][n] for n in names]}, run)
+        candidates = _execute(con, sql, "explain.round", params, run)
     answers = merged(answers, first)
     causes = [cause(c, True, i + 1) for i, c in enumerate(answers)]
     # then the other combinations of the whole window, best first, each refined, as less likely causes
@@ -171,7 +182,7 @@ def explain_rows(con: duckdb.DuckDBPyConnection, check: Check, files: list[str],
             continue
         chosen_keys.append(dict(candidate[0]))
         causes.append(cause(candidate, False, len(causes) + 1))
-    con.execute("DROP TABLE IF EXISTS explain_rows")
+    _execute(con, sql, "explain.drop", {}, run)
     return causes
 
 
@@ -275,51 +286,53 @@ class AlertWindows:
     history: list[tuple[datetime, datetime]]
 
 
-def alert_windows(con: duckdb.DuckDBPyConnection, alert_id: str) -> AlertWindows | None:
+def alert_windows(con: duckdb.DuckDBPyConnection, alert_id: str, run: Executor | None = None) -> AlertWindows | None:
     """The windows explaining alert ``alert_id`` reads (None: no such alert)."""
     sql = cause_statements()
-    found = _execute(con, sql, "causes.alert", {"alert_id": alert_id})
+    found = _execute(con, sql, "causes.alert", {"alert_id": alert_id}, run)
     if not found:
         return None
     name, key, key_text, split_value, threshold = found[0]
     rows = _execute(con, sql, "causes.windows", {"alert_id": alert_id, "explained": CAUSE_WINDOWS,
-                                                 "history": CAUSE_HISTORY})
+                                                 "history": CAUSE_HISTORY}, run)
     return AlertWindows(name, dict(key), key_text, split_value, threshold,
                         [(r[2], r[3]) for r in rows if r[0]], [(r[2], r[3]) for r in rows if not r[0]])
 
 
 def explain_windows(con: duckdb.DuckDBPyConnection, check: Check, found: AlertWindows, files: list[str],
-                    by: tuple[str, ...] = (), top: int = TOP) -> list[Cause]:
+                    by: tuple[str, ...] = (), top: int = TOP, run: Executor | None = None) -> list[Cause]:
     """The causes of an alert's windows (``found``), reading ``files`` on ``con``."""
     if not found.explained:
         raise ExplainError(f"check '{check.name}': the alert's breaching windows are no longer in the warehouse "
                            "(the check was rebuilt since)")
     first, last = found.explained[0], found.explained[-1]
     return explain_rows(con, check, files, first[0], last[1], found.history, cause_attributes(check, by),
-                        found.key, found.split_value, top=top, spans=found.explained, cutoff=found.threshold)
+                        found.key, found.split_value, top=top, spans=found.explained, cutoff=found.threshold,
+                        run=run)
 
 
 def store_causes(con: duckdb.DuckDBPyConnection, checks: list[Check], run_id: int,
-                 files_of: Callable[[Check], list[str]]) -> int:
+                 files_of: Callable[[Check], list[str]], run: Executor | None = None) -> int:
     """In a run, inside its transaction: the causes of every alert of ``checks`` that this run
     opened or added breaching windows to, replacing what earlier runs stored; how many alerts.
     ``files_of`` gives the files a check has read (what its alerts are explained from)."""
     sql = cause_statements()
     by_name = {c.name: c for c in checks if explainable(c)}
-    touched = _execute(con, sql, "causes.touched", {"run_id": run_id, "checks": sorted(by_name)})
+    touched = _execute(con, sql, "causes.touched", {"run_id": run_id, "checks": sorted(by_name)}, run)
     for (alert_id,) in touched:
-        found = alert_windows(con, alert_id)
+        found = alert_windows(con, alert_id, run)
         assert found is not None
         check = by_name[found.check_name]
         try:
-            causes = explain_windows(con, check, found, files_of(check))
+            causes = explain_windows(con, check, found, files_of(check), run=run)
         except ExplainError:
             causes = []  # no healthy history yet, say: nothing to say
         rows = [{"rank": c.rank, "names": list(c.key), "values": list(c.key.values()), "key_text": key_text(c.key),
                  "bad": c.bad, "expected": c.expected, "sessions": c.sessions, "excess_share": c.excess_share,
                  "score": c.score, "significant": c.significant} for c in causes]
         _execute(con, sql, "causes.store", {"alert_id": alert_id, "causes": rows, "run_id": run_id,
-                                            "windows": len(found.explained), "history_windows": len(found.history)})
+                                            "windows": len(found.explained), "history_windows": len(found.history)},
+                 run)
     return len(touched)
 
 

@@ -256,10 +256,10 @@ def _causes_and_incidents(con: duckdb.DuckDBPyConnection, run_id: int, checks: l
         read = {row[0] for row in _run_named(con, "begin.files_read_by", {"check": check.name}, fetch="all")}
         return [f.where for f in listings.get(check.source.name, []) if f.path in read]
 
-    try:
-        explained = explain.store_causes(con, checks, run_id, files_of)
-    except duckdb.Error as err:
-        raise DataError(f"causes of the run's alerts: {_engine_message(err)}") from err
+    def through_the_runner(on: duckdb.DuckDBPyConnection, statement: Statement, params: dict[str, Any]) -> Any:
+        return _execute(on, "causes of the run's alerts", "causes", statement, params, fetch="all")
+
+    explained = explain.store_causes(con, checks, run_id, files_of, through_the_runner)
     if explained:
         progress(f"causes: {_plural(explained, 'alert')} explained")
     for statement in incident_statements():
