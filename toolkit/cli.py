@@ -17,7 +17,8 @@ import click
 
 from toolkit import __version__
 from toolkit.sql.plans import check_plan
-from toolkit.outputs.listings import alerts_json, alerts_table, list_alerts
+from toolkit.outputs.listings import (alerts_json, alerts_table, incidents_json, incidents_table, list_alerts,
+                                      list_incidents)
 from toolkit.problems import PlimsollError
 from toolkit.config.project import load_project
 from toolkit.engine.explain import (explain_alert, explain_at, explain_sql, explanation_json, explanation_table,
@@ -190,6 +191,22 @@ def alerts(project_file: Path, status: str, checks: tuple[str, ...], since: date
     project = load_project(project_file, check_schema=False)
     found = list_alerts(project, status, checks, since)
     click.echo(alerts_json(found) if as_json else alerts_table(found))
+
+
+@main.command()
+@project_option
+@click.option("--status", type=click.Choice(["open", "closed", "all"]), default="all", show_default=True,
+              help="Only open or only closed incidents.")
+@click.option("--json", "as_json", is_flag=True, help="JSON for scripts.")
+@reports_errors
+def incidents(project_file: Path, status: str, as_json: bool) -> None:
+    """List incidents, newest first: alerts of one problem under the alert that explains them.
+
+    Each incident's cause (check and key), its alerts, and where the cause's excess lies.
+    """
+    project = load_project(project_file, check_schema=False)
+    found = list_incidents(project, status)
+    click.echo(incidents_json(found) if as_json else incidents_table(found))
 
 
 @main.command()
