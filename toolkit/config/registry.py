@@ -184,6 +184,8 @@ WEBHOOK_KEYS = (
         "newest data read) are skipped instead of sent, except the opening of an alert still open", False, "1d"),
     Key("headers", "mapping", "headers sent with every POST, each mapped to the NAME of the environment variable "
         "holding its value (e.g. Authorization: FERNHILL_HOOK_AUTH)"),
+    Key("per", "choice", "alert: one POST per alert event; incident: one per incident event (opened, updated, "
+        "closed)", False, "alert", ("alert", "incident")),
 )
 
 
