@@ -217,15 +217,17 @@ def incidents(project_file: Path, status: str, as_json: bool) -> None:
 @click.option("--since", type=click.DateTime(), default=None, help="Only alerts opened at or after this data time.")
 @reports_errors
 def report(project_file: Path, out: Path, checks: tuple[str, ...], since: datetime | None) -> None:
-    """Write one static HTML page of the alerts and their series.
+    """Write one static HTML page of the incidents, the alerts and their series.
 
-    Open alerts first; each alert's windows charted against its threshold.
+    Incidents first (cause, where its excess lies, its alerts), then open alerts; each alert's windows
+    charted against its threshold.
     """
     from toolkit.outputs.report import write_report
 
     project = load_project(project_file, check_schema=False)
     done = write_report(project, out, checks, since)
-    click.echo(f"{done.path}: {done.alerts} alerts ({done.open_alerts} open), {done.bytes / 1024:,.0f} KiB")
+    click.echo(f"{done.path}: {done.alerts} alerts ({done.open_alerts} open), {done.incidents} incidents, "
+               f"{done.bytes / 1024:,.0f} KiB")
 
 
 @main.command()
