@@ -191,7 +191,7 @@ WEBHOOK_KEYS = (
 
 NOTIFY_KEYS = (
     Key("growth", "number", "send an 'updated' event once affected_sessions grew by this share over the last "
-        "one sent for the alert (0: every update)", False, 0.5, minimum=0),
+        "one sent for the alert, or the incident with per: incident (0: every update)", False, 0.5, minimum=0),
     Key("max_attempts", "int", "failed attempts before a delivery is abandoned", False, 8, minimum=1),
     Key("backoff", "duration", "wait after the first failed attempt; doubled after each further one", False, "30s"),
     Key("max_backoff", "duration", "the longest wait between two attempts", False, "1h"),
