@@ -200,9 +200,10 @@ def alerts(project_file: Path, status: str, checks: tuple[str, ...], since: date
 @click.option("--json", "as_json", is_flag=True, help="JSON for scripts.")
 @reports_errors
 def incidents(project_file: Path, status: str, as_json: bool) -> None:
-    """List incidents, newest first: alerts of one problem under the alert that explains them.
+    """List incidents, newest first.
 
-    Each incident's cause (check and key), its alerts, and where the cause's excess lies.
+    An incident is the alerts of one problem under the alert that explains them: its cause. Each
+    shows its cause (check and key), its alerts, and where the cause's excess lies.
     """
     project = load_project(project_file, check_schema=False)
     found = list_incidents(project, status)
@@ -217,7 +218,7 @@ def incidents(project_file: Path, status: str, as_json: bool) -> None:
 @click.option("--since", type=click.DateTime(), default=None, help="Only alerts opened at or after this data time.")
 @reports_errors
 def report(project_file: Path, out: Path, checks: tuple[str, ...], since: datetime | None) -> None:
-    """Write one static HTML page of the incidents, the alerts and their series.
+    """Write one static HTML page of incidents, alerts and their series.
 
     Incidents first (cause, where its excess lies, its alerts), then open alerts; each alert's windows
     charted against its threshold.
