@@ -159,3 +159,20 @@ def test_incident_table_shows_control_characters_as_escapes() -> None:
     lines = incidents_table([incident]).splitlines()
     assert len(lines) == 4 and not any("\x1b" in line or "\r" in line for line in lines)
     assert lines[3] == "  └ site=a\\x0afake: 3 failing sessions in cdn=x\\x0d"
+
+
+def test_a_warehouse_of_layout_4_is_read_without_incidents(project: Path, tmp_path: Path) -> None:
+    import duckdb
+
+    con = duckdb.connect(str(load_project(project).warehouse))
+    for table in ("alert_causes", "incidents", "incident_events"):
+        con.execute(f"DROP TABLE {table}")
+    con.execute("ALTER TABLE alerts DROP COLUMN incident_id")
+    con.execute("UPDATE schema_version SET version = 4")
+    con.close()
+    listed = invoke("alerts", "-p", str(project))
+    assert listed.exit_code == 0 and len(listed.output.splitlines()) == 4
+    assert [a["causes"] for a in json.loads(invoke("alerts", "--json", "-p", str(project)).output)] == [[], []]
+    assert invoke("incidents", "-p", str(project)).output == "no incidents\n"
+    report = invoke("report", "--out", str(tmp_path / "r.html"), "-p", str(project))
+    assert report.exit_code == 0 and ", 0 incidents, " in report.output

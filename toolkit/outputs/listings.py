@@ -38,9 +38,16 @@ def list_alerts(project: Project, status: str = "all", checks: tuple[str, ...] =
         con.close()
 
 
+def has_incidents(con: duckdb.DuckDBPyConnection) -> bool:
+    """Whether the warehouse has layout 5's causes and incidents: a file of an earlier release is read
+    as it is until the next run converts it, without them."""
+    return con.execute("SELECT count(*) FROM information_schema.tables WHERE table_name = 'incidents'").fetchone()[0] > 0
+
+
 def alerts_from(con: duckdb.DuckDBPyConnection, status: str = "all", checks: tuple[str, ...] = (),
                 since: datetime | None = None) -> list[dict[str, Any]]:
-    cols = ", ".join(ALERT_COLUMNS)
+    layout_5 = has_incidents(con)
+    cols = ", ".join(c if layout_5 or c != "incident_id" else "NULL AS incident_id" for c in ALERT_COLUMNS)
     rows = con.execute(
         f"""
         SELECT {cols} FROM alerts
@@ -52,7 +59,7 @@ def alerts_from(con: duckdb.DuckDBPyConnection, status: str = "all", checks: tup
         {"status": status, "checks": list(checks), "since": since},
     ).fetchall()
     alerts = [dict(zip(ALERT_COLUMNS, row)) for row in rows]
-    causes = causes_for(con, [a["alert_id"] for a in alerts])
+    causes = causes_for(con, [a["alert_id"] for a in alerts]) if layout_5 else {}
     for alert in alerts:
         alert["causes"] = causes.get(alert["alert_id"], [])
     return alerts
@@ -173,6 +180,8 @@ def list_incidents(project: Project, status: str = "all") -> list[dict[str, Any]
 def incidents_from(con: duckdb.DuckDBPyConnection, status: str = "all",
                    alert_ids: list[str] | None = None) -> list[dict[str, Any]]:
     """Incidents of ``status``, newest first; with ``alert_ids``, only those holding one of them."""
+    if not has_incidents(con):
+        return []
     rows = con.execute(
         f"""
         SELECT {", ".join(INCIDENT_COLUMNS)} FROM incidents
