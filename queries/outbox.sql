@@ -17,7 +17,10 @@
 -- catch_up (seconds), in data time before the newest data the warehouse has read, are kept as
 -- 'skipped' ('catch_up'), except the opening of an alert still open, so the receiver learns of the
 -- problems going on now.
--- The payload carries keys and counts, never a session or viewer id.
+-- The payload carries keys and counts, never a session or viewer id: the alert's incident and the
+-- significant causes (alert_causes) of the run that last computed them by the event's run.
+--
+-- Webhooks with per 'incident' are given the events of incident_events instead (after the alerts').
 CREATE OR REPLACE TEMP MACRO outbox_event_identity(fingerprint, opened_at, event, occurred_at, close_reason,
                                                    definition_hash, after_reopening) AS
     md5(to_json({
@@ -38,23 +41,39 @@ SET fingerprint = a.fingerprint,
 FROM alerts AS a
 WHERE a.alert_id = outbox.alert_id AND outbox.event_identity IS NULL;
 
+-- each alert's significant causes as one run computed them, best first, for the payloads
+CREATE OR REPLACE TEMP TABLE outbox_cause_sets AS
+SELECT
+    alert_id, run_id,
+    coalesce(list({
+        'rank': rank, 'key': key, 'key_text': key_text, 'bad': bad,
+        'expected': CASE WHEN isfinite(expected) THEN round(expected, 2) END,
+        'excess_share': CASE WHEN isfinite(excess_share) THEN round(excess_share, 4) END
+    } ORDER BY rank) FILTER (WHERE significant), []) AS causes
+FROM alert_causes
+GROUP BY alert_id, run_id;
+
 CREATE OR REPLACE TEMP TABLE outbox_new AS
 WITH RECURSIVE
 hooks AS (
     SELECT
         *,
-        NOT EXISTS (SELECT 1 FROM outbox AS o WHERE o.webhook = w.name) AS first_pass,
+        NOT EXISTS (SELECT 1 FROM outbox AS o WHERE o.webhook = w.name AND o.incident_id IS NULL) AS first_pass,
         -- data time, not the clock: lakes lag, and every decision in a run is made in data time
         greatest((SELECT max(watermark) FROM check_state), (SELECT max(occurred_at) FROM alert_events))
             - to_seconds(w.catch_up) AS catch_up_from
     FROM (SELECT unnest($webhooks, recursive := true)) AS w
+    WHERE w.per = 'alert'
+),
+cause_sets AS (
+    SELECT * FROM outbox_cause_sets
 ),
 events AS (
     SELECT
         e.alert_id, e.run_id, e.occurred_at, e.event, e.value, e.threshold, e.affected_sessions,
         e.excess_sessions, e.affected_viewers,
         a.check_name, a.severity, a.key, a.key_text, a.split_value, a.opened_at, a.closed_at,
-        a.close_reason, a.fingerprint, a.status AS alert_status,
+        a.close_reason, a.fingerprint, a.status AS alert_status, a.incident_id, coalesce(cs.causes, []) AS causes,
         CASE e.event WHEN 'opened' THEN 0 WHEN 'reopened' THEN 0 WHEN 'updated' THEN 1 ELSE 2 END AS event_rank,
         outbox_event_identity(a.fingerprint, a.opened_at, e.event, e.occurred_at, a.close_reason,
                               a.definition_hash, e.event = 'closed' AND EXISTS (
@@ -69,6 +88,7 @@ events AS (
         ) AS rebuilt
     FROM (SELECT DISTINCT * FROM alert_events) AS e
     JOIN alerts AS a ON a.alert_id = e.alert_id
+    ASOF LEFT JOIN cause_sets AS cs ON cs.alert_id = e.alert_id AND e.run_id >= cs.run_id
 ),
 numbered AS (
     SELECT
@@ -103,14 +123,14 @@ fresh AS (
     WHERE NOT EXISTS (SELECT 1 FROM outbox AS o WHERE o.idempotency_key = c.idempotency_key)
       AND NOT EXISTS (SELECT 1 FROM outbox AS o WHERE o.webhook = c.webhook AND o.event_identity = c.event_identity)
       AND NOT EXISTS (SELECT 1 FROM outbox AS o
-                      WHERE o.webhook = c.webhook AND o.alert_id = c.alert_id AND o.event = c.event
+                      WHERE o.webhook = c.webhook AND o.incident_id IS NULL AND o.alert_id = c.alert_id AND o.event = c.event
                         AND o.occurred_at = c.occurred_at AND o.affected_sessions = c.affected_sessions)
 ),
 seeds AS (
     -- the affected sessions of the last event queued to be sent, per incident and webhook
     SELECT webhook, fingerprint, opened_at, max(affected_sessions) AS last_sent
     FROM outbox
-    WHERE status <> 'skipped' AND event <> 'closed'
+    WHERE status <> 'skipped' AND event <> 'closed' AND incident_id IS NULL
     GROUP BY webhook, fingerprint, opened_at
 ),
 decided AS (
@@ -167,6 +187,8 @@ SELECT
         'affected_viewers': f.affected_viewers,
         'excess_sessions': round(f.excess_sessions, 1),
         'breach_windows': f.breach_windows,
+        'incident_id': f.incident_id,
+        'causes': f.causes,
         'run_id': f.run_id,
         'sender': 'plimsoll ' || $version
     })::VARCHAR AS payload,
@@ -182,10 +204,153 @@ SELECT
     f.fingerprint,
     f.opened_at,
     f.event_identity,
-    d.why AS skip_reason
+    d.why AS skip_reason,
+    NULL::VARCHAR AS incident_id
 FROM fresh AS f
 JOIN decided AS d
   ON d.webhook = f.webhook AND d.fingerprint = f.fingerprint AND d.opened_at = f.opened_at AND d.n = f.n;
+
+-- Webhooks with per 'incident': each event of incident_events once per webhook. An event is known by
+-- its incident and kind, and for 'closed' its data time, for 'updated' also its alerts and size (so a
+-- rebuild that derives the same events again sends nothing twice). 'opened' and 'closed' are sent; an
+-- 'updated' one when an alert joined, the cause changed, or affected_sessions grew by $growth over
+-- the last event queued for the incident and webhook, else it is kept as 'skipped' ('growth'). The
+-- catch_up rule of a webhook's first pass is the alerts' rule, the opening of an incident still open
+-- standing for the opening of an alert still open.
+CREATE OR REPLACE TEMP TABLE outbox_incident_new AS
+WITH RECURSIVE
+hooks AS (
+    SELECT
+        *,
+        NOT EXISTS (SELECT 1 FROM outbox AS o WHERE o.webhook = w.name AND o.incident_id IS NOT NULL) AS first_pass,
+        greatest((SELECT max(watermark) FROM check_state), (SELECT max(occurred_at) FROM alert_events),
+                 (SELECT max(occurred_at) FROM incident_events)) - to_seconds(w.catch_up) AS catch_up_from
+    FROM (SELECT unnest($webhooks, recursive := true)) AS w
+    WHERE w.per = 'incident'
+),
+events AS (
+    SELECT
+        e.incident_id, e.run_id, e.occurred_at, e.event, e.status, e.cause_alert_id, e.alerts, e.alert_ids,
+        e.affected_sessions, e.affected_viewers,
+        i.status AS incident_status, i.opened_at, i.severity,
+        a.check_name, a.key, a.key_text, a.split_value,
+        coalesce(cs.causes, []) AS causes,
+        CASE e.event WHEN 'opened' THEN 0 WHEN 'updated' THEN 1 ELSE 2 END AS event_rank,
+        md5(to_json({
+            'incident': e.incident_id,
+            'event': e.event,
+            'occurred_at': CASE WHEN e.event <> 'opened' THEN e.occurred_at END,
+            'alert_ids': CASE WHEN e.event = 'updated' THEN e.alert_ids END,
+            'affected_sessions': CASE WHEN e.event = 'updated' THEN e.affected_sessions END
+        })::VARCHAR) AS event_identity
+    FROM (SELECT DISTINCT * FROM incident_events) AS e
+    LEFT JOIN incidents AS i ON i.incident_id = e.incident_id
+    LEFT JOIN alerts AS a ON a.alert_id = e.cause_alert_id
+    ASOF LEFT JOIN outbox_cause_sets AS cs ON cs.alert_id = e.cause_alert_id AND e.run_id >= cs.run_id
+    QUALIFY row_number() OVER (PARTITION BY event_identity ORDER BY e.run_id DESC) = 1
+),
+candidates AS (
+    SELECT
+        h.name AS webhook, h.url, n.*,
+        md5(to_json({'event': n.event_identity, 'webhook': h.name})::VARCHAR) AS idempotency_key,
+        coalesce(h.first_pass AND n.occurred_at < h.catch_up_from
+                 AND NOT (n.event = 'opened' AND n.incident_status = 'open'), false) AS stale
+    FROM events AS n
+    CROSS JOIN hooks AS h
+),
+fresh AS (
+    SELECT
+        c.*,
+        row_number() OVER (PARTITION BY webhook, incident_id ORDER BY occurred_at, event_rank, run_id) AS n
+    FROM candidates AS c
+    WHERE NOT EXISTS (SELECT 1 FROM outbox AS o WHERE o.idempotency_key = c.idempotency_key)
+      AND NOT EXISTS (SELECT 1 FROM outbox AS o WHERE o.webhook = c.webhook AND o.event_identity = c.event_identity)
+),
+seeds AS (
+    -- the last event queued to be sent, per incident and webhook: its size, alerts and cause
+    SELECT webhook, incident_id,
+           arg_max(affected_sessions, seq) AS last_sent,
+           arg_max((payload::JSON ->> 'alerts')::BIGINT, seq) AS last_alerts,
+           arg_max(alert_id, seq) AS last_cause
+    FROM outbox
+    WHERE status <> 'skipped' AND event <> 'closed' AND incident_id IS NOT NULL
+    GROUP BY webhook, incident_id
+),
+decided AS (
+    SELECT f.webhook, f.incident_id, f.n, d.send, d.why,
+           CASE WHEN d.send AND f.event <> 'closed' THEN f.affected_sessions ELSE s.last_sent END AS last_sent,
+           CASE WHEN d.send AND f.event <> 'closed' THEN f.alerts ELSE s.last_alerts END AS last_alerts,
+           CASE WHEN d.send AND f.event <> 'closed' THEN f.cause_alert_id ELSE s.last_cause END AS last_cause
+    FROM fresh AS f
+    LEFT JOIN seeds AS s ON s.webhook = f.webhook AND s.incident_id = f.incident_id
+    CROSS JOIN LATERAL (
+        SELECT f.event <> 'updated' OR s.last_sent IS NULL OR f.alerts > s.last_alerts
+               OR f.cause_alert_id IS DISTINCT FROM s.last_cause
+               OR f.affected_sessions >= s.last_sent * (1 + $growth) AS grown
+    ) AS g
+    CROSS JOIN LATERAL (
+        SELECT NOT f.stale AND g.grown AS send,
+               CASE WHEN f.stale THEN 'catch_up' WHEN NOT g.grown THEN 'growth' END AS why
+    ) AS d
+    WHERE f.n = 1
+    UNION ALL
+    SELECT f.webhook, f.incident_id, f.n, d.send, d.why,
+           CASE WHEN d.send AND f.event <> 'closed' THEN f.affected_sessions ELSE w.last_sent END,
+           CASE WHEN d.send AND f.event <> 'closed' THEN f.alerts ELSE w.last_alerts END,
+           CASE WHEN d.send AND f.event <> 'closed' THEN f.cause_alert_id ELSE w.last_cause END
+    FROM decided AS w
+    JOIN fresh AS f ON f.webhook = w.webhook AND f.incident_id = w.incident_id AND f.n = w.n + 1
+    CROSS JOIN LATERAL (
+        SELECT f.event <> 'updated' OR w.last_sent IS NULL OR f.alerts > w.last_alerts
+               OR f.cause_alert_id IS DISTINCT FROM w.last_cause
+               OR f.affected_sessions >= w.last_sent * (1 + $growth) AS grown
+    ) AS g
+    CROSS JOIN LATERAL (
+        SELECT NOT f.stale AND g.grown AS send,
+               CASE WHEN f.stale THEN 'catch_up' WHEN NOT g.grown THEN 'growth' END AS why
+    ) AS d
+)
+SELECT
+    f.idempotency_key, f.webhook, f.url, f.cause_alert_id AS alert_id, f.run_id, f.event, f.occurred_at,
+    f.affected_sessions,
+    to_json({
+        'idempotency_key': f.idempotency_key,
+        'event': f.event,
+        'occurred_at': strftime(f.occurred_at, '%Y-%m-%dT%H:%M:%SZ'),
+        'incident_id': f.incident_id,
+        'status': f.status,
+        'opened_at': strftime(f.opened_at, '%Y-%m-%dT%H:%M:%SZ'),
+        'closed_at': CASE WHEN f.event = 'closed' THEN strftime(f.occurred_at, '%Y-%m-%dT%H:%M:%SZ') END,
+        'cause': {'check': f.check_name, 'key': f.key, 'key_text': f.key_text, 'split_value': f.split_value,
+                  'alert_id': f.cause_alert_id},
+        'alert_ids': f.alert_ids,
+        'alerts': f.alerts,
+        'severity': f.severity,
+        'affected_sessions': f.affected_sessions,
+        'affected_viewers': f.affected_viewers,
+        'causes': f.causes,
+        'run_id': f.run_id,
+        'sender': 'plimsoll ' || $version
+    })::VARCHAR AS payload,
+    CASE WHEN d.send THEN 'queued' ELSE 'skipped' END AS status,
+    0 AS attempts,
+    NULL::VARCHAR AS last_error,
+    (SELECT coalesce(max(seq), 0) FROM outbox) + (SELECT count(*) FROM outbox_new)
+        + row_number() OVER (ORDER BY f.occurred_at, f.event_rank, f.incident_id, f.webhook) AS seq,
+    $now::TIMESTAMP AS enqueued_at,
+    NULL::TIMESTAMP AS last_attempt_at,
+    CASE WHEN d.send THEN $now::TIMESTAMP END AS next_attempt_at,
+    NULL::TIMESTAMP AS delivered_at,
+    NULL::VARCHAR AS fingerprint,
+    f.opened_at,
+    f.event_identity,
+    d.why AS skip_reason,
+    f.incident_id
+FROM fresh AS f
+JOIN decided AS d ON d.webhook = f.webhook AND d.incident_id = f.incident_id AND d.n = f.n;
+
+INSERT INTO outbox_new BY NAME
+SELECT * FROM outbox_incident_new;
 
 INSERT INTO outbox BY NAME
 SELECT * FROM outbox_new;

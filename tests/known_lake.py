@@ -70,3 +70,57 @@ def warehouse_held(path: Path) -> Iterator[subprocess.Popen]:
         holder.kill()
         holder.wait()
         holder.stdout.close()
+
+
+# Causes and incidents written by hand over the known lake's two alerts, as a run of layout 5 fills
+# them: the closed alert of t-1 is the cause of a closed incident and its excess lies in
+# cdn=birch, country=DE (a second, non-significant row below it); the open hostile alert is the cause
+# of an open incident whose excess lies in a hostile player version.
+HOSTILE_PLAYER = "<img src=x onerror=alert(2)>"
+
+
+def fill_incidents(warehouse_file: Path) -> dict[str, str]:
+    """Fill alert_causes, incidents, incident_events and alerts.incident_id; the alert ids by title."""
+    import duckdb
+
+    con = duckdb.connect(str(warehouse_file))
+    try:
+        ids = dict(con.execute("SELECT key['title_id'], alert_id FROM alerts").fetchall())
+        closed, hostile = ids["t-1"], ids[HOSTILE]
+        con.execute("UPDATE alerts SET incident_id = 'inc-closed' WHERE alert_id = $a", {"a": closed})
+        con.execute("UPDATE alerts SET incident_id = 'inc-open' WHERE alert_id = $a", {"a": hostile})
+        con.execute(
+            """
+            INSERT INTO alert_causes VALUES
+            ($closed, 1, MAP {'cdn': 'birch', 'country': 'DE'}, 'cdn=birch, country=DE', 11, 1.5, 12, 0.81,
+             20.5, true, 2, 4, 1),
+            ($closed, 2, MAP {'device_family': 'tv'}, 'device_family=tv', 4, 2.0, 7, 0.2, 1.1, false, 2, 4, 1),
+            ($hostile, 1, MAP {'player_version': $player}, 'player_version=' || $player, 7, 0.5, 8, 0.9,
+             12.25, true, 1, 4, 1)
+            """,
+            {"closed": closed, "hostile": hostile, "player": HOSTILE_PLAYER},
+        )
+        con.execute(
+            """
+            INSERT INTO incidents
+            SELECT 'inc-' || CASE WHEN a.status = 'open' THEN 'open' ELSE 'closed' END, a.status, a.opened_at,
+                   a.closed_at, a.alert_id, a.check_name, a.key, a.key_text, a.split_value, a.severity, 1,
+                   [a.alert_id], a.affected_sessions, a.affected_viewers, a.excess_sessions, 1, 1
+            FROM alerts AS a
+            """
+        )
+        con.execute(
+            """
+            INSERT INTO incident_events
+            SELECT incident_id, 1, opened_at, 'opened', 'open', cause_alert_id, 1, alert_ids, affected_sessions,
+                   affected_viewers
+            FROM incidents
+            UNION ALL
+            SELECT incident_id, 1, closed_at, 'closed', 'closed', cause_alert_id, 1, alert_ids, affected_sessions,
+                   affected_viewers
+            FROM incidents WHERE status = 'closed'
+            """
+        )
+    finally:
+        con.close()
+    return {"closed": closed, "hostile": hostile}

@@ -28,10 +28,10 @@ def project(tmp_path: Path) -> Path:
 
 
 TABLE = """\
-status              severity  check         key                                              split  opened            windows  affected  viewers  excess  per hour
-------------------  --------  ------------  -----------------------------------------------  -----  ----------------  -------  --------  -------  ------  --------
-open                high      title_errors  site=kids, title_id="<script>alert(1)</script>"         2026-11-02 00:59  1        8         -        8       53
-closed (recovered)  high      title_errors  site=kids, title_id=t-1                                 2026-11-02 00:49  2        13        -        13      41
+status              severity  check         key                                              split  opened            windows  affected  viewers  excess  per hour  incident
+------------------  --------  ------------  -----------------------------------------------  -----  ----------------  -------  --------  -------  ------  --------  --------
+open                high      title_errors  site=kids, title_id="<script>alert(1)</script>"         2026-11-02 00:59  1        8         -        8       53        -
+closed (recovered)  high      title_errors  site=kids, title_id=t-1                                 2026-11-02 00:49  2        13        -        13      41        -
 """
 
 
@@ -74,6 +74,7 @@ def test_alerts_json_is_exact(project: Path) -> None:
             # no viewer_id in the source; every bad session is beyond a baseline rate of 0
             "affected_viewers": None, "excess_sessions": 8.0,
             "peak_value": 0.8, "threshold": 0.1, "fingerprint": prints[hostile_key],
+            "incident_id": None, "causes": [],  # filled by hand in tests/test_incidents_output.py
         },
         {
             "alert_id": ids["site=kids, title_id=t-1"], "status": "closed", "severity": "high",
@@ -84,7 +85,7 @@ def test_alerts_json_is_exact(project: Path) -> None:
             "close_reason": "recovered", "breach_windows": 2, "affected_sessions": 13,
             "affected_viewers": None, "excess_sessions": 13.0,
             "affected_per_hour": pytest.approx(13 / (19 / 60)), "peak_value": 0.7, "threshold": 0.1,
-            "fingerprint": prints["site=kids, title_id=t-1"],
+            "fingerprint": prints["site=kids, title_id=t-1"], "incident_id": None, "causes": [],
         },
     ]
     assert len(set(ids.values())) == 2 and all(len(f) == 16 for f in prints.values())

@@ -92,7 +92,7 @@ def test_alerts_table_and_json(project: Path) -> None:
     table = invoke("alerts", "-p", str(project))
     assert table.exit_code == 0, table.output
     assert table.output.splitlines()[0].split() == ["status", "severity", "check", "key", "split", "opened",
-                                                    "windows", "affected", "viewers", "excess", "per", "hour"]
+                                                    "windows", "affected", "viewers", "excess", "per", "hour", "incident"]
     assert "site=kids" in table.output
     data = json.loads(invoke("alerts", "--json", "-p", str(project)).output)
     assert {a["check_name"] for a in data} == {"startup_p90_by_site"}

@@ -301,7 +301,7 @@ def test_listings_report_and_payloads_show_viewers_and_excess_and_no_viewer_id(t
     alerts = list_alerts(project)
     table = alerts_table(alerts).splitlines()
     assert table[0].split() == ["status", "severity", "check", "key", "split", "opened", "windows", "affected",
-                                "viewers", "excess", "per", "hour"]
+                                "viewers", "excess", "per", "hour", "incident"]
     # from the check on: check, key, opened (two words), windows, affected, viewers, excess, per hour
     rows = {words[words.index("medium") + 1]: words[words.index("medium") + 1:] for words in map(str.split, table[2:])}
     assert rows["failures"][5:8] == ["16", "6", "12"]

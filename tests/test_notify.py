@@ -35,7 +35,8 @@ from toolkit.engine.runner import run
 
 PAYLOAD_KEYS = {"idempotency_key", "event", "occurred_at", "check", "severity", "alert_id", "fingerprint", "key",
                 "key_text", "split_value", "opened_at", "closed_at", "close_reason", "value", "threshold",
-                "affected_sessions", "affected_viewers", "excess_sessions", "breach_windows", "run_id", "sender"}
+                "affected_sessions", "affected_viewers", "excess_sessions", "breach_windows", "incident_id", "causes",
+                "run_id", "sender"}
 
 
 @dataclass
@@ -240,6 +241,8 @@ def test_the_payload_carries_keys_and_counts_only(tmp_path: Path, hook: Hook) ->
             closed["breach_windows"]) == ("closed", "recovered", "2026-11-02T01:09:00Z", 13, 2)
     # the known lake's source names no viewers; every bad session is above a baseline rate of 0
     assert (closed["affected_viewers"], closed["excess_sessions"]) == (None, 13.0)
+    # no incidents or causes in this warehouse (tests/test_notify_incidents.py fills them)
+    assert (closed["incident_id"], closed["causes"]) == (None, [])
     assert json.loads(hook.received[2].body)["key"]["title_id"] == HOSTILE
 
 

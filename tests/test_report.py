@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import re
 import subprocess
 from datetime import timedelta
 from html.parser import HTMLParser
@@ -14,7 +15,7 @@ from click.testing import CliRunner
 import browser
 from browser import open_page
 from conftest import PLAIN_PROJECT, write_project, write_rows
-from known_lake import CHECK, HOSTILE, START, known_project, warehouse_held
+from known_lake import CHECK, HOSTILE, HOSTILE_PLAYER, START, fill_incidents, known_project, warehouse_held
 from toolkit.cli import main
 from toolkit.config.project import load_project
 from toolkit.outputs.report import MAX_POINTS, series_for
@@ -214,3 +215,73 @@ def test_a_cusum_alert_shows_its_statistic_and_h_as_counts(tmp_path: Path) -> No
     assert "CUSUM statistic" in page and "EWMA statistic" not in page
     # h is a count of excess bad sessions, not a rate: shown as a number, not a percentage
     assert f"{threshold:,.4g}" in page and f"{threshold * 100:.2f} %" not in page
+
+
+# ── incidents ───────────────────────────────────────────────────────────────────────────────────────
+
+
+@pytest.fixture
+def with_incidents(project: Path) -> tuple[Path, dict[str, str]]:
+    """The known lake's warehouse with its causes and incidents written by hand (tests/known_lake.py)."""
+    return project, fill_incidents(load_project(project).warehouse)
+
+
+def test_the_page_opens_with_the_incidents(with_incidents, tmp_path: Path) -> None:
+    project, ids = with_incidents
+    out = tmp_path / "report.html"
+    result = invoke("report", "--out", str(out), "-p", str(project))
+    assert result.exit_code == 0 and result.output.startswith(f"{out}: 2 alerts (1 open), 2 incidents, ")
+    html = out.read_text()
+    dom = parse(html)
+    assert dom.charts == 4  # each incident's cause, then each alert
+    head = html[html.index('id="incidents"'):html.index('id="open"')]
+    assert "Incidents (2), newest first" in head
+    assert head.index('id="incident-inc-open"') < head.index('id="incident-inc-closed"')
+    closed = head[head.index('id="incident-inc-closed"'):]
+    assert "cause: title_errors site=kids, title_id=t-1" in closed
+    assert "<li>cdn=birch, country=DE: 11 failing sessions (1.5 expected), 81 % of the excess</li>" in closed
+    assert "device_family=tv" not in html  # not significant: not an answer
+    # the alerts it explains link to their cards, and every link has its target on the page
+    assert f'<a href="#alert-{ids["closed"]}">title_errors: site=kids, title_id=t-1 (closed)</a>' in closed
+    targets = set(re.findall(r' id="([^"]+)"', html))
+    assert all(link[1:] in targets for link in dom.links if link.startswith("#alert-"))
+    # hostile text from the data is text
+    assert "&lt;img src=x onerror=alert(2)&gt;" in head and HOSTILE_PLAYER not in html
+    assert "script" not in dom.tags and "img" not in dom.tags
+    # each alert's card names its incident and where its excess lies
+    card = html[html.index(f'id="alert-{ids["closed"]}"'):]
+    assert "<dt>incident</dt><dd>inc-closed</dd>" in card
+    assert ("<dt>excess lies in</dt><dd>site=kids, title_id=t-1: 11 failing sessions, 81 % of the excess in "
+            "cdn=birch, country=DE</dd>") in card
+
+
+def test_the_incidents_follow_the_alerts_chosen(with_incidents, tmp_path: Path) -> None:
+    project, _ = with_incidents
+    out = tmp_path / "late.html"
+    result = invoke("report", "--out", str(out), "--since", "2026-11-02 00:50:00", "-p", str(project))
+    assert "1 alerts (1 open), 1 incidents" in result.output
+    html = out.read_text()
+    assert 'id="incident-inc-open"' in html and "inc-closed" not in html
+    assert parse(html).charts == 2
+
+
+def test_a_report_without_incidents_says_so(project: Path, tmp_path: Path) -> None:
+    out = tmp_path / "report.html"
+    result = invoke("report", "--out", str(out), "-p", str(project))
+    assert result.exit_code == 0 and ", 0 incidents, " in result.output
+    html = out.read_text()
+    assert "Incidents (0), newest first" in html and "No incidents" in html
+    assert "<dt>incident</dt><dd>none</dd>" in html and "<dt>excess lies in</dt><dd>no cause found</dd>" in html
+    assert parse(html).charts == 2
+
+
+def test_the_incidents_page_in_a_headless_browser(with_incidents, tmp_path: Path) -> None:
+    project, _ = with_incidents
+    out = tmp_path / "report.html"
+    assert invoke("report", "--out", str(out), "-p", str(project)).exit_code == 0
+    page = open_page(out, tmp_path / "report.png")
+    assert page.console == []
+    dom = parse(page.dom)
+    assert dom.charts == 4
+    assert "script" not in dom.tags and "img" not in dom.tags
+    assert any(HOSTILE_PLAYER in t for t in dom.text)

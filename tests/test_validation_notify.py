@@ -27,6 +27,8 @@ CASES = [
     ("webhook-bad-timeout", "webhooks:\n  - url: http://x\n    timeout: soon\n", 9, "webhooks.0.timeout: bad duration 'soon'"),
     ("webhook-bad-catch-up", "webhooks:\n  - url: http://x\n    catch_up: forever\n", 9,
      "webhooks.0.catch_up: bad duration 'forever'"),
+    ("webhook-bad-per", "webhooks:\n  - url: http://x\n    per: incidents\n", 9,
+     "webhooks.0.per: 'incidents' is not one of alert, incident"),
     ("webhook-zero-timeout", "webhooks:\n  - url: http://x\n    timeout: 0s\n", 9, "webhooks.0.timeout must be longer than 0s"),
     ("webhook-name-twice", "webhooks:\n  - {name: a, url: 'http://x'}\n  - name: a\n    url: http://y\n", 9,
      "webhooks.1: the name 'a' is already used by webhooks.0"),
@@ -88,4 +90,8 @@ def test_delivery_keys_load_with_their_defaults(make_project) -> None:
                 timedelta(days=1)),
     )
     assert project.notify == Notify(growth=1.0)
+    assert {h.per for h in project.webhooks} == {"alert"}
+    per_incident = load_project(make_project({}, project=BASE.format(lake=FIXTURE_LAKE) + (
+        "webhooks:\n  - url: http://127.0.0.1:8080/in\n    per: incident\n")))
+    assert per_incident.webhooks[0].per == "incident"
     assert load_project(make_project({}, project=BASE.format(lake=FIXTURE_LAKE))).webhooks == ()

@@ -17,7 +17,8 @@ import click
 
 from toolkit import __version__
 from toolkit.sql.plans import check_plan
-from toolkit.outputs.listings import alerts_json, alerts_table, list_alerts
+from toolkit.outputs.listings import (alerts_json, alerts_table, incidents_json, incidents_table, list_alerts,
+                                      list_incidents)
 from toolkit.problems import PlimsollError
 from toolkit.config.project import load_project
 from toolkit.sql.script import with_after_checks
@@ -192,21 +193,40 @@ def alerts(project_file: Path, status: str, checks: tuple[str, ...], since: date
 
 @main.command()
 @project_option
+@click.option("--status", type=click.Choice(["open", "closed", "all"]), default="all", show_default=True,
+              help="Only open or only closed incidents.")
+@click.option("--json", "as_json", is_flag=True, help="JSON for scripts.")
+@reports_errors
+def incidents(project_file: Path, status: str, as_json: bool) -> None:
+    """List incidents, newest first.
+
+    An incident is the alerts of one problem under the alert that explains them: its cause. Each
+    shows its cause (check and key), its alerts, and where the cause's excess lies.
+    """
+    project = load_project(project_file, check_schema=False)
+    found = list_incidents(project, status)
+    click.echo(incidents_json(found) if as_json else incidents_table(found))
+
+
+@main.command()
+@project_option
 @click.option("--out", "out", required=True, type=click.Path(dir_okay=False, path_type=Path),
               help="The HTML file to write.")
 @click.option("--check", "checks", multiple=True, help="Only alerts of this check (repeatable).")
 @click.option("--since", type=click.DateTime(), default=None, help="Only alerts opened at or after this data time.")
 @reports_errors
 def report(project_file: Path, out: Path, checks: tuple[str, ...], since: datetime | None) -> None:
-    """Write one static HTML page of the alerts and their series.
+    """Write one static HTML page of incidents, alerts and their series.
 
-    Open alerts first; each alert's windows charted against its threshold.
+    Incidents first (cause, where its excess lies, its alerts), then open alerts; each alert's windows
+    charted against its threshold.
     """
     from toolkit.outputs.report import write_report
 
     project = load_project(project_file, check_schema=False)
     done = write_report(project, out, checks, since)
-    click.echo(f"{done.path}: {done.alerts} alerts ({done.open_alerts} open), {done.bytes / 1024:,.0f} KiB")
+    click.echo(f"{done.path}: {done.alerts} alerts ({done.open_alerts} open), {done.incidents} incidents, "
+               f"{done.bytes / 1024:,.0f} KiB")
 
 
 @main.command()
@@ -216,7 +236,9 @@ def report(project_file: Path, out: Path, checks: tuple[str, ...], since: dateti
 @click.option("--retry-abandoned", is_flag=True, help="Queue abandoned deliveries again, from attempt 1.")
 @reports_errors
 def notify(project_file: Path, retry_text: str, retry_abandoned: bool) -> None:
-    """POST new alert events to the project's webhooks.
+    """POST new alert and incident events to the project's webhooks.
+
+    Alert events by default; a webhook with per: incident gets its incidents' events.
 
     Exit 1 while a delivery fails or waits for a retry.
     """

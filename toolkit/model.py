@@ -188,6 +188,7 @@ class Webhook:
     timeout: timedelta = timedelta(seconds=10)
     headers: tuple[tuple[str, str], ...] = ()   # (header name, environment variable name)
     catch_up: timedelta = timedelta(days=1)     # first notify: events older than this in data time are skipped
+    per: str = "alert"                          # 'alert': alert events; 'incident': incident events
 
     @property
     def endpoint(self) -> str:

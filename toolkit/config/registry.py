@@ -184,12 +184,14 @@ WEBHOOK_KEYS = (
         "newest data read) are skipped instead of sent, except the opening of an alert still open", False, "1d"),
     Key("headers", "mapping", "headers sent with every POST, each mapped to the NAME of the environment variable "
         "holding its value (e.g. Authorization: FERNHILL_HOOK_AUTH)"),
+    Key("per", "choice", "alert: one POST per alert event; incident: one per incident event (opened, updated, "
+        "closed)", False, "alert", ("alert", "incident")),
 )
 
 
 NOTIFY_KEYS = (
     Key("growth", "number", "send an 'updated' event once affected_sessions grew by this share over the last "
-        "one sent for the alert (0: every update)", False, 0.5, minimum=0),
+        "one sent for the alert, or the incident with per: incident (0: every update)", False, 0.5, minimum=0),
     Key("max_attempts", "int", "failed attempts before a delivery is abandoned", False, 8, minimum=1),
     Key("backoff", "duration", "wait after the first failed attempt; doubled after each further one", False, "30s"),
     Key("max_backoff", "duration", "the longest wait between two attempts", False, "1h"),

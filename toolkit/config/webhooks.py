@@ -29,7 +29,7 @@ def load_webhooks(doc: Located, raw: list[Any], problems: list[Problem]) -> tupl
     for index, body in enumerate(raw):
         section = Section(doc, ("webhooks", index), body, WEBHOOK_KEYS, problems)
         url, name, timeout = section.get("url"), section.get("name"), section.get("timeout")
-        catch_up = section.get("catch_up")
+        catch_up, per = section.get("catch_up"), section.get("per")
         if url is not None:
             parts = urllib.parse.urlsplit(url)
             if "@" in parts.netloc:  # never repeated in the message: it holds a password
@@ -52,8 +52,9 @@ def load_webhooks(doc: Located, raw: list[Any], problems: list[Problem]) -> tupl
                           f"webhooks.{index}: the name '{name}' is already used by webhooks.{names[name]}{hint}")
         elif name is not None:
             names[name] = index
-        if url is not None and name is not None and timeout is not None and headers is not None and catch_up is not None:
-            found.append(Webhook(name, url, timeout, headers, catch_up))
+        if (url is not None and name is not None and timeout is not None and headers is not None
+                and catch_up is not None and per is not None):
+            found.append(Webhook(name, url, timeout, headers, catch_up, per))
     return tuple(found)
 
 

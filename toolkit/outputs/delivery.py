@@ -74,6 +74,7 @@ class Attempt:
     next_attempt_at: datetime | None = None
     key: str = ""                  # the row's idempotency key
     at: datetime | None = None     # when the POST ended (wall clock, UTC)
+    incident_id: str | None = None  # an incident's event (webhooks with per: incident)
 
 
 @dataclass
@@ -138,8 +139,8 @@ def _queue(con: duckdb.DuckDBPyConnection, project: Project, now: datetime, retr
     try:
         _upgrade(con, project)
         if project.webhooks:
-            params = {"webhooks": [{"name": h.name, "url": h.endpoint, "catch_up": h.catch_up.total_seconds()}
-                                   for h in project.webhooks],
+            params = {"webhooks": [{"name": h.name, "url": h.endpoint, "catch_up": h.catch_up.total_seconds(),
+                                    "per": h.per} for h in project.webhooks],
                       "growth": project.notify.growth, "now": now, "version": __version__}
             for statement in con.extract_statements((template_folder() / "outbox.sql").read_text(encoding="utf-8")):
                 con.execute(statement.query, {k: params[k] for k in statement.named_parameters})
@@ -208,6 +209,7 @@ class _Row:
     event: str
     alert_id: str
     key_text: str
+    incident_id: str | None = None
 
 
 def _pending(con: duckdb.DuckDBPyConnection, names: list[str]) -> dict[str, list[_Row]]:
@@ -215,7 +217,7 @@ def _pending(con: duckdb.DuckDBPyConnection, names: list[str]) -> dict[str, list
     rows = con.execute(
         """
         SELECT o.webhook, o.idempotency_key, o.payload, o.attempts, o.next_attempt_at, o.event, o.alert_id,
-               coalesce(a.key_text, '')
+               coalesce(a.key_text, ''), o.incident_id
         FROM outbox AS o
         LEFT JOIN alerts AS a ON a.alert_id = o.alert_id
         WHERE o.status = 'queued' AND list_contains($h, o.webhook)
@@ -332,7 +334,7 @@ def _attempt(project: Project, hook: Webhook, headers: dict[str, str], row: _Row
             wait = min(settings.max_backoff, max(wait, retry_after))
         status, next_at = "queued", now + wait
     return Attempt(hook.name, row.event, row.alert_id, row.key_text, ok, status, attempts, error, next_at,
-                   row.key, now)
+                   row.key, now, row.incident_id)
 
 
 def _record(project: Project, attempt: Attempt) -> None:
@@ -353,7 +355,8 @@ def _record(project: Project, attempt: Attempt) -> None:
             )
     except RunLocked as err:
         outcome = "was delivered" if attempt.ok else "failed"
-        raise RunLocked(f"{attempt.webhook}: {attempt.event} of alert {attempt.alert_id} {outcome} but could not "
+        what = f"incident {attempt.incident_id}" if attempt.incident_id is not None else f"alert {attempt.alert_id}"
+        raise RunLocked(f"{attempt.webhook}: {attempt.event} of {what} {outcome} but could not "
                         f"be recorded: {err}; the next `plimsoll notify` sends it again with the same "
                         "Idempotency-Key") from None
 
@@ -596,6 +599,9 @@ def describe(project: Project, result: NotifyResult) -> str:
         lines.append(f"  not sent   {line}")
     for a in result.attempts:
         what = f"{a.webhook}: {a.event} {printable(a.key_text) or '(all sessions)'} [{a.alert_id}]"
+        if a.incident_id is not None:
+            what = f"{a.webhook}: incident {a.event}, cause {printable(a.key_text) or '(all sessions)'} " \
+                   f"[{printable(a.incident_id)}]"
         if a.ok:
             lines.append(f"  delivered  {what}")
         elif a.status == "abandoned":

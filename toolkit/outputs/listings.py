@@ -1,4 +1,4 @@
-"""Reading results back for people and scripts: alert listings as a table or JSON.
+"""Reading results back for people and scripts: alert and incident listings as a table or JSON.
 
 Listings carry keys and counts only, never a session or viewer identifier.
 """
@@ -18,7 +18,11 @@ from toolkit.model import Project
 ALERT_COLUMNS = ("alert_id", "status", "severity", "check_name", "key", "key_text", "split_value", "opened_at",
                  "breach_started_at", "last_breach_at", "closed_at", "close_reason", "breach_windows",
                  "affected_sessions", "affected_viewers", "excess_sessions", "affected_per_hour", "peak_value",
-                 "threshold", "fingerprint")
+                 "threshold", "fingerprint", "incident_id")
+CAUSE_FIELDS = ("rank", "key", "key_text", "bad", "expected", "excess_share", "score", "significant")
+INCIDENT_COLUMNS = ("incident_id", "status", "severity", "opened_at", "closed_at", "cause_alert_id", "cause_check",
+                    "cause_key", "cause_key_text", "cause_split_value", "alerts", "alert_ids", "affected_sessions",
+                    "affected_viewers", "excess_sessions", "first_run_id", "last_run_id")
 
 
 def list_alerts(project: Project, status: str = "all", checks: tuple[str, ...] = (),
@@ -34,9 +38,16 @@ def list_alerts(project: Project, status: str = "all", checks: tuple[str, ...] =
         con.close()
 
 
+def has_incidents(con: duckdb.DuckDBPyConnection) -> bool:
+    """Whether the warehouse has layout 5's causes and incidents: a file of an earlier release is read
+    as it is until the next run converts it, without them."""
+    return con.execute("SELECT count(*) FROM information_schema.tables WHERE table_name = 'incidents'").fetchone()[0] > 0
+
+
 def alerts_from(con: duckdb.DuckDBPyConnection, status: str = "all", checks: tuple[str, ...] = (),
                 since: datetime | None = None) -> list[dict[str, Any]]:
-    cols = ", ".join(ALERT_COLUMNS)
+    layout_5 = has_incidents(con)
+    cols = ", ".join(c if layout_5 or c != "incident_id" else "NULL AS incident_id" for c in ALERT_COLUMNS)
     rows = con.execute(
         f"""
         SELECT {cols} FROM alerts
@@ -47,7 +58,48 @@ def alerts_from(con: duckdb.DuckDBPyConnection, status: str = "all", checks: tup
         """,
         {"status": status, "checks": list(checks), "since": since},
     ).fetchall()
-    return [dict(zip(ALERT_COLUMNS, row)) for row in rows]
+    alerts = [dict(zip(ALERT_COLUMNS, row)) for row in rows]
+    causes = causes_for(con, [a["alert_id"] for a in alerts]) if layout_5 else {}
+    for alert in alerts:
+        alert["causes"] = causes.get(alert["alert_id"], [])
+    return alerts
+
+
+def causes_for(con: duckdb.DuckDBPyConnection, alert_ids: list[str],
+               significant_only: bool = False) -> dict[str, list[dict[str, Any]]]:
+    """Each alert's causes from ``alert_causes`` (its latest run's, by rank): where its excess lies."""
+    if not alert_ids:
+        return {}
+    rows = con.execute(
+        f"""
+        SELECT alert_id, {", ".join(CAUSE_FIELDS)}
+        FROM alert_causes
+        WHERE list_contains($ids, alert_id) AND (NOT $significant_only OR significant)
+        QUALIFY run_id IS NOT DISTINCT FROM max(run_id) OVER (PARTITION BY alert_id)
+        ORDER BY alert_id, rank
+        """,
+        {"ids": alert_ids, "significant_only": significant_only},
+    ).fetchall()
+    found: dict[str, list[dict[str, Any]]] = {}
+    for alert_id, *fields in rows:
+        found.setdefault(alert_id, []).append(dict(zip(CAUSE_FIELDS, fields)))
+    return found
+
+
+def cause_line(key_text: str | None, causes: list[dict[str, Any]]) -> str | None:
+    """Where an alert's excess lies, from its first significant cause:
+    'site=news: 69 failing sessions, 81 % of the excess in cdn=birch, country=DE'; None without one."""
+    answers = [c for c in causes if c["significant"]]
+    if not answers:
+        return None
+    top = answers[0]
+    share = "" if top["excess_share"] is None or not math.isfinite(top["excess_share"]) \
+        else f", {100 * top['excess_share']:.0f} % of the excess"
+    line = (f"{printable(key_text or '(all sessions)')}: {top['bad']:,.0f} failing sessions{share} in "
+            f"{printable(top['key_text'] or '(all sessions)')}")
+    if len(answers) > 1:
+        line += f" (and {len(answers) - 1} more cause{'s' if len(answers) > 2 else ''})"
+    return line
 
 
 def alerts_json(alerts: list[dict[str, Any]]) -> str:
@@ -58,8 +110,15 @@ def alerts_json(alerts: list[dict[str, Any]]) -> str:
             return None  # NaN and infinity are not JSON: strict parsers refuse them
         return value.isoformat(sep=" ") if isinstance(value, datetime) else value
 
-    return json.dumps([{k: encode(v) for k, v in a.items()} for a in alerts], indent=2, ensure_ascii=False,
-                      allow_nan=False)
+    def shown(alert: dict[str, Any]) -> dict[str, Any]:
+        out = {k: encode(v) for k, v in alert.items() if k != "causes"}
+        out["causes"] = [{k: encode(c[k]) for k in JSON_CAUSE_FIELDS} for c in alert.get("causes", [])]
+        return out
+
+    return json.dumps([shown(a) for a in alerts], indent=2, ensure_ascii=False, allow_nan=False)
+
+
+JSON_CAUSE_FIELDS = ("rank", "key", "bad", "expected", "excess_share", "score", "significant")
 
 
 def alerts_table(alerts: list[dict[str, Any]]) -> str:
@@ -67,20 +126,30 @@ def alerts_table(alerts: list[dict[str, Any]]) -> str:
     if not alerts:
         return "no alerts"
     head = ("status", "severity", "check", "key", "split", "opened", "windows", "affected", "viewers", "excess",
-            "per hour")
+            "per hour", "incident")
     body = [
         (
             a["status"] if a["status"] == "open" else f"closed ({a['close_reason']})",
             a["severity"], a["check_name"], printable(a["key_text"] or "(all)"), printable(a["split_value"] or ""),
             a["opened_at"].strftime("%Y-%m-%d %H:%M"), str(a["breach_windows"]), f"{a['affected_sessions']:,}",
             count_or_dash(a.get("affected_viewers")), count_or_dash(a.get("excess_sessions")),
-            f"{a['affected_per_hour']:,.0f}",
+            f"{a['affected_per_hour']:,.0f}", printable(a.get("incident_id") or "-"),
         )
         for a in alerts
     ]
+    below = [cause_line(a["key_text"], a.get("causes", [])) for a in alerts]
+    return _table(head, body, below)
+
+
+def _table(head: tuple[str, ...], body: list[tuple[str, ...]], below: list[str | None]) -> str:
+    """Fixed-width columns; a row's line ``below`` it (where its excess lies), indented, when it has one."""
     widths = [max(len(str(r[i])) for r in (head, *body)) for i in range(len(head))]
-    lines = ["  ".join(str(c).ljust(w) for c, w in zip(row, widths)).rstrip() for row in (head, *body)]
-    lines.insert(1, "  ".join("-" * w for w in widths))
+    lines = ["  ".join(str(c).ljust(w) for c, w in zip(head, widths)).rstrip(),
+             "  ".join("-" * w for w in widths)]
+    for row, line in zip(body, below):
+        lines.append("  ".join(str(c).ljust(w) for c, w in zip(row, widths)).rstrip())
+        if line:
+            lines.append(f"  └ {line}")
     return "\n".join(lines)
 
 
@@ -94,3 +163,89 @@ def printable(text: str) -> str:
     """``text`` with control characters (newlines, terminal escapes) written as ``\\x..`` escapes."""
     return "".join(ch if ch.isprintable() else f"\\x{ord(ch):02x}" if ord(ch) < 256 else f"\\u{ord(ch):04x}"
                    for ch in text)
+
+
+def list_incidents(project: Project, status: str = "all") -> list[dict[str, Any]]:
+    """Incidents, newest first, each with its cause alert's significant causes.
+
+    While a run holds the warehouse, this reads the copy the last run published.
+    """
+    con = warehouse.open_for_reading(project)
+    try:
+        return incidents_from(con, status)
+    finally:
+        con.close()
+
+
+def incidents_from(con: duckdb.DuckDBPyConnection, status: str = "all",
+                   alert_ids: list[str] | None = None) -> list[dict[str, Any]]:
+    """Incidents of ``status``, newest first; with ``alert_ids``, only those holding one of them."""
+    if not has_incidents(con):
+        return []
+    rows = con.execute(
+        f"""
+        SELECT {", ".join(INCIDENT_COLUMNS)} FROM incidents
+        WHERE ($status = 'all' OR status = $status)
+          AND ($all OR len(list_intersect(alert_ids, $ids::VARCHAR[])) > 0)
+        ORDER BY opened_at DESC, incident_id
+        """,
+        {"status": status, "all": alert_ids is None, "ids": alert_ids or []},
+    ).fetchall()
+    incidents = [dict(zip(INCIDENT_COLUMNS, row)) for row in rows]
+    causes = causes_for(con, [i["cause_alert_id"] for i in incidents if i["cause_alert_id"]], significant_only=True)
+    for incident in incidents:
+        incident["alert_ids"] = list(incident["alert_ids"] or [])
+        incident["causes"] = causes.get(incident["cause_alert_id"], [])
+    return incidents
+
+
+def incidents_json(incidents: list[dict[str, Any]]) -> str:
+    """A JSON list for scripts: the cause as an object, data times as ``YYYY-MM-DD HH:MM:SS``."""
+
+    def encode(value: Any) -> Any:
+        if isinstance(value, float) and not math.isfinite(value):
+            return None
+        return value.isoformat(sep=" ") if isinstance(value, datetime) else value
+
+    shown = [
+        {
+            "incident_id": i["incident_id"], "status": i["status"], "severity": i["severity"],
+            "opened_at": encode(i["opened_at"]), "closed_at": encode(i["closed_at"]),
+            "cause": {"check": i["cause_check"], "key": i["cause_key"], "key_text": i["cause_key_text"],
+                      "split_value": i["cause_split_value"], "alert_id": i["cause_alert_id"]},
+            "alerts": i["alerts"], "alert_ids": i["alert_ids"],
+            "affected_sessions": i["affected_sessions"], "affected_viewers": i["affected_viewers"],
+            "excess_sessions": encode(i["excess_sessions"]),
+            "causes": [{k: encode(c[k]) for k in JSON_CAUSE_FIELDS} for c in i["causes"]],
+            "first_run_id": i["first_run_id"], "last_run_id": i["last_run_id"],
+        }
+        for i in incidents
+    ]
+    return json.dumps(shown, indent=2, ensure_ascii=False, allow_nan=False)
+
+
+def incidents_table(incidents: list[dict[str, Any]]) -> str:
+    """A fixed-width table for a terminal, each incident's top cause on the line below it."""
+    if not incidents:
+        return "no incidents"
+    head = ("incident", "status", "severity", "opened", "closed", "cause", "alerts", "affected", "viewers")
+    body = [
+        (
+            printable(i["incident_id"]), i["status"], i["severity"] or "-",
+            i["opened_at"].strftime("%Y-%m-%d %H:%M") if i["opened_at"] else "-",
+            i["closed_at"].strftime("%Y-%m-%d %H:%M") if i["closed_at"] else "-",
+            incident_cause(i), f"{i['alerts'] or 0:,}", count_or_dash(i["affected_sessions"]),
+            count_or_dash(i["affected_viewers"]),
+        )
+        for i in incidents
+    ]
+    below = [cause_line(i["cause_key_text"], i["causes"]) for i in incidents]
+    return _table(head, body, below)
+
+
+def incident_cause(incident: dict[str, Any]) -> str:
+    """'site_errors site=news', with the split value in brackets: the cause alert's series."""
+    text = f"{incident['cause_check'] or '?'} {incident['cause_key_text'] or '(all sessions)'}"
+    if incident["cause_split_value"] is not None:
+        text += f" [{incident['cause_split_value']}]"
+    return printable(text)

@@ -1,4 +1,5 @@
-"""The HTML report: one static page with every alert's series drawn against its threshold.
+"""The HTML report: one static page, the incidents first (each cause, where its excess lies, the alerts
+it explains and the cause's series), then every alert's series drawn against its threshold.
 
 The page needs no network to be read: styles are inline, every chart is an SVG drawn by matplotlib
 and written into the page, and a Content-Security-Policy forbids scripts and any outside load. Text
@@ -27,7 +28,7 @@ from toolkit import __version__
 from toolkit.engine import warehouse
 from toolkit.sql.templates import template_folder
 from toolkit.model import Project
-from toolkit.outputs.listings import alerts_from, count_or_dash
+from toolkit.outputs.listings import alerts_from, cause_line, count_or_dash, incident_cause, incidents_from
 
 CONTEXT_BEFORE = 48   # windows drawn before an alert's first breaching window
 CONTEXT_AFTER = 24    # windows drawn after the window that closed it
@@ -58,6 +59,7 @@ class ReportResult:
     alerts: int
     open_alerts: int
     bytes: int
+    incidents: int = 0
 
 
 def write_report(project: Project, out: Path, checks: tuple[str, ...] = (),
@@ -66,17 +68,24 @@ def write_report(project: Project, out: Path, checks: tuple[str, ...] = (),
     con = warehouse.open_for_reading(project)  # the published copies while a run holds the file
     try:
         alerts = alerts_from(con, "all", checks, since)
-        series = series_for(con, [a["alert_id"] for a in alerts])
+        incidents = incidents_from(con, "all", [a["alert_id"] for a in alerts])
+        causes = [i["cause_alert_id"] for i in incidents if i["cause_alert_id"]]
+        series = series_for(con, sorted({a["alert_id"] for a in alerts} | set(causes)))
+        cause_alerts = {a["alert_id"]: a for a in alerts_from(con, "all")} if causes else {}
         earlier = earlier_incidents(con, alerts)
         newest = con.execute("SELECT max(window_end) FROM windows").fetchone()[0]
     finally:
         con.close()
     cards = [_card(project, a, series.get(a["alert_id"], Series()), earlier.get(a["alert_id"], 0)) for a in alerts]
+    shown = {a["alert_id"]: a for a in alerts}
+    incident_cards = [_incident_card(project, i, shown, cause_alerts.get(i["cause_alert_id"]),
+                                     series.get(i["cause_alert_id"], Series()))
+                      for i in incidents]
     html = render_page(
         title=f"Plimsoll report: {project.file.parent.name}",
         project=str(project.file), warehouse=str(project.warehouse),
         generated=datetime.now(timezone.utc).strftime("%Y-%m-%d %H:%M UTC"),
-        newest=_time(newest), filters=_filters(checks, since), cards=cards,
+        newest=_time(newest), filters=_filters(checks, since), cards=cards, incidents=incident_cards,
         context=(CONTEXT_BEFORE, CONTEXT_AFTER, MAX_POINTS), version=__version__,
     )
     out = Path(out)
@@ -84,7 +93,8 @@ def write_report(project: Project, out: Path, checks: tuple[str, ...] = (),
     partial = out.with_name(out.name + ".partial")
     partial.write_text(html, encoding="utf-8")
     partial.replace(out)  # never a half-written page under the real name
-    return ReportResult(out, len(alerts), sum(a["status"] == "open" for a in alerts), len(html.encode()))
+    return ReportResult(out, len(alerts), sum(a["status"] == "open" for a in alerts), len(html.encode()),
+                        len(incidents))
 
 
 def series_for(con: duckdb.DuckDBPyConnection, alert_ids: list[str]) -> dict[str, Series]:
@@ -124,6 +134,57 @@ def earlier_incidents(con: duckdb.DuckDBPyConnection, alerts: list[dict[str, Any
     return dict(rows)
 
 
+def _incident_card(project: Project, incident: dict[str, Any], shown: dict[str, dict[str, Any]],
+                   cause: dict[str, Any] | None, series: Series) -> dict[str, Any]:
+    """One incident: its cause, where the cause's excess lies, the alerts it explains, the cause's chart."""
+    explained = []
+    for alert_id in incident["alert_ids"]:
+        alert = shown.get(alert_id)
+        label = (f"{alert['check_name']}: {alert['key_text'] or '(all sessions)'}"
+                 + (f" [{alert['split_value']}]" if alert["split_value"] is not None else "")
+                 + f" ({alert['status']})") if alert else f"alert {alert_id} (not in this report)"
+        explained.append({"alert_id": alert_id, "label": label, "anchor": f"alert-{alert_id}" if alert else None,
+                          "cause": alert_id == incident["cause_alert_id"]})
+    check = project.checks.get(incident["cause_check"] or "")
+    cusum = check is not None and check.baseline.method == "cusum"
+    if cusum:
+        series.statistic = "CUSUM statistic"
+    chart = None
+    if cause is not None and series.shown:
+        chart = markupsafe.Markup(chart_svg(cause, series, None if cusum or check is None else check.measure.kind,
+                                            salt=f"incident-{incident['incident_id']}"))
+    return {
+        "incident": incident,
+        "anchor": f"incident-{incident['incident_id']}",
+        "cause": incident_cause(incident),
+        "excess": [_cause_text(c) for c in incident["causes"]],
+        "explained": explained,
+        "figures": [
+            ("status", incident["status"]),
+            ("severity", incident["severity"] or "-"),
+            ("opened", _time(incident["opened_at"])),
+            ("closed", _time(incident["closed_at"]) or "still open"),
+            ("alerts", f"{incident['alerts'] or 0:,}"),
+            ("affected sessions", count_or_dash(incident["affected_sessions"])),
+            ("affected viewers", "not counted" if incident["affected_viewers"] is None
+             else f"{incident['affected_viewers']:,} (estimated)"),
+            ("excess sessions", count_or_dash(incident["excess_sessions"])),
+            ("incident id", incident["incident_id"]),
+        ],
+        "chart": chart,
+        "series": series,
+        "direction": check.direction if check else None,
+    }
+
+
+def _cause_text(cause: dict[str, Any]) -> str:
+    """'cdn=birch, country=DE: 69 failing sessions (1.5 expected), 81 % of the excess'."""
+    share = cause["excess_share"]
+    return (f"{cause['key_text'] or '(all sessions)'}: {cause['bad']:,.0f} failing sessions "
+            f"({cause['expected']:,.1f} expected)"
+            + (f", {100 * share:.0f} % of the excess" if share is not None and share == share else ""))
+
+
 def _card(project: Project, alert: dict[str, Any], series: Series, earlier: int) -> dict[str, Any]:
     check = project.checks.get(alert["check_name"])
     kind = check.measure.kind if check else None
@@ -151,7 +212,9 @@ def _card(project: Project, alert: dict[str, Any], series: Series, earlier: int)
             ("affected per hour", f"{alert['affected_per_hour']:,.0f}"),
             ("peak value", fmt(alert["peak_value"])),
             ("threshold at opening", (_format_for(None) if cusum else fmt)(alert["threshold"])),
-            ("earlier incidents of this series", str(earlier)),
+            ("earlier alerts of this series", str(earlier)),
+            ("incident", alert.get("incident_id") or "none"),
+            ("excess lies in", cause_line(alert["key_text"], alert.get("causes", [])) or "no cause found"),
             ("alert id", alert["alert_id"]),
             ("fingerprint", alert["fingerprint"]),
         ],
@@ -162,8 +225,10 @@ def _card(project: Project, alert: dict[str, Any], series: Series, earlier: int)
     }
 
 
-def chart_svg(alert: dict[str, Any], series: Series, kind: str | None) -> str:
-    """One alert's series against its threshold, breaching windows marked, as an inline SVG element."""
+def chart_svg(alert: dict[str, Any], series: Series, kind: str | None, salt: str | None = None) -> str:
+    """One alert's series against its threshold, breaching windows marked, as an inline SVG element.
+
+    ``salt`` keeps the SVG's element ids apart from another chart of the same alert on the page."""
     import matplotlib
     from matplotlib.backends.backend_svg import FigureCanvasSVG
     from matplotlib.dates import AutoDateLocator, ConciseDateFormatter
@@ -175,7 +240,7 @@ def chart_svg(alert: dict[str, Any], series: Series, kind: str | None) -> str:
     ts = [nan if v is None else v for v in series.threshold]
     # svg.fonttype none: text stays <text> (small, selectable, escaped by matplotlib); the alert id as
     # hash salt keeps element ids deterministic and distinct between the charts of one page
-    style = {"svg.fonttype": "none", "svg.hashsalt": alert["alert_id"], "font.size": 9,
+    style = {"svg.fonttype": "none", "svg.hashsalt": salt or alert["alert_id"], "font.size": 9,
              "font.family": "sans-serif", "font.sans-serif": ["DejaVu Sans"],
              "axes.spines.top": False, "axes.spines.right": False}
     with matplotlib.rc_context(style), warnings.catch_warnings():
