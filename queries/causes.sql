@@ -2,7 +2,8 @@
 -- alert or adds breaching windows to it, inside the run's transaction. Each alert is explained
 -- with the statements of queries/explain.sql (what `plimsoll explain ALERT_ID` runs): its latest
 -- breaching windows (at most $explained of them) against the series' healthy windows before the
--- alert's first breach (at most $history), over the files its check has read.
+-- alert's first breach (at most $history, leaving out the $gap just before it), over the files its
+-- check has read.
 
 -- @statement causes.touched
 -- The alerts of $checks (those that can be explained) with a breaching window this run wrote.
@@ -37,8 +38,11 @@ explained AS (
     FROM series WHERE explained ORDER BY window_number DESC LIMIT $explained
 ),
 history AS (
+    -- a guard band: the $gap healthy windows just before the first breach may already hold the
+    -- problem's start (a release ramping up, a CDN degrading), which would teach its combinations
+    -- that failing is their normal; the history ends before them
     SELECT false AS explained, window_number, window_start, window_end
-    FROM series WHERE healthy_before ORDER BY window_number DESC LIMIT $history
+    FROM series WHERE healthy_before ORDER BY window_number DESC LIMIT $history OFFSET $gap
 )
 SELECT * FROM explained
 UNION ALL

@@ -51,6 +51,9 @@ CAUSE_WINDOWS = 12
 # ... against at most this many healthy windows of its series before its first breach: enough for
 # each combination's own rate, and a bounded read of the lake in the run that explains it.
 CAUSE_HISTORY = 36
+# ... leaving out the healthy windows just before the first breach, which may already hold the
+# problem's start (a release's first hours): a guard band of this many windows.
+CAUSE_GAP = 3
 
 
 class ExplainError(PlimsollError):
@@ -294,7 +297,7 @@ def alert_windows(con: duckdb.DuckDBPyConnection, alert_id: str, run: Executor |
         return None
     name, key, key_text, split_value, threshold = found[0]
     rows = _execute(con, sql, "causes.windows", {"alert_id": alert_id, "explained": CAUSE_WINDOWS,
-                                                 "history": CAUSE_HISTORY}, run)
+                                                 "history": CAUSE_HISTORY, "gap": CAUSE_GAP}, run)
     return AlertWindows(name, dict(key), key_text, split_value, threshold,
                         [(r[2], r[3]) for r in rows if r[0]], [(r[2], r[3]) for r in rows if not r[0]])
 

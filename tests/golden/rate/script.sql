@@ -301,8 +301,11 @@ explained AS (
     FROM series WHERE explained ORDER BY window_number DESC LIMIT $explained
 ),
 history AS (
+    -- a guard band: the $gap healthy windows just before the first breach may already hold the
+    -- problem's start (a release ramping up, a CDN degrading), which would teach its combinations
+    -- that failing is their normal; the history ends before them
     SELECT false AS explained, window_number, window_start, window_end
-    FROM series WHERE healthy_before ORDER BY window_number DESC LIMIT $history
+    FROM series WHERE healthy_before ORDER BY window_number DESC LIMIT $history OFFSET $gap
 )
 SELECT * FROM explained
 UNION ALL
