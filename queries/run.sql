@@ -71,8 +71,12 @@ WHERE check_name = $check AND status = 'open' AND ($keep IS NULL OR definition_h
 
 -- @statement begin.forget_rebuilt_alerts
 -- A rebuild derives the alerts of the current definition $definition again, with the same ids: they
--- go, with their events. Alerts of earlier definitions stay as history.
+-- go, with their events and causes (the run explains them again). Alerts of earlier definitions stay
+-- as history.
 DELETE FROM alert_events
+WHERE alert_id IN (SELECT alert_id FROM alerts WHERE check_name = $check AND definition_hash = $definition);
+
+DELETE FROM alert_causes
 WHERE alert_id IN (SELECT alert_id FROM alerts WHERE check_name = $check AND definition_hash = $definition);
 
 DELETE FROM alerts WHERE check_name = $check AND definition_hash = $definition;

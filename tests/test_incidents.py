@@ -247,3 +247,12 @@ def test_the_history_leaves_out_the_hours_before_the_breach_that_hold_its_start(
                          "WHERE a.key_text = 'device=tv' AND c.significant ORDER BY c.rank")
     found = bool(causes) and causes[0][0] == "title=v2" and causes[0][1] > 0.8
     assert found == (gap == 3), causes
+
+
+def test_a_rebuild_derives_the_same_causes_and_incidents_and_leaves_no_orphans(tmp_path: Path) -> None:
+    path = make(tmp_path, CHECKS, sessions())
+    assert run(load_project(path)).status == "ok"
+    before = table(path, INCIDENTS), table(path, CAUSES)
+    assert run(load_project(path), ["site"], rebuild=True).status == "ok"
+    assert (table(path, INCIDENTS), table(path, CAUSES)) == before
+    assert table(path, "SELECT count(*) FROM alert_causes WHERE alert_id NOT IN (SELECT alert_id FROM alerts)") == [(0,)]
