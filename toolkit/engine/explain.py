@@ -253,6 +253,7 @@ class Explanation:
     history_windows: int
     causes: list[Cause]
     windows: int = 1
+    peers_by: tuple[str, ...] = ()   # a peers check: compared with its peers in the same windows
 
 
     def as_json(self) -> list[dict[str, Any]]:
@@ -381,7 +382,7 @@ def explain_alert(project: Project, alert_id: str, by: tuple[str, ...] = (), top
         con.close()
     start = found.explained[0][0]
     return Explanation(check.name, found.key_text, found.split_value, start, found.explained[-1][1], attributes,
-                       len(found.history), causes, len(found.explained))
+                       len(found.history), causes, len(found.explained), _peers_by(check))
 
 
 def explain_at(project: Project, check_name: str, at: datetime, key: dict[str, str] | None = None,
@@ -455,7 +456,12 @@ def _explain(project: Project, check: Check, key: dict[str, str], key_text: str,
                               cutoff=cutoff)
     finally:
         con.close()
-    return Explanation(check.name, key_text, split_value, start, end, attributes, len(history), causes)
+    return Explanation(check.name, key_text, split_value, start, end, attributes, len(history), causes,
+                       peers_by=_peers_by(check))
+
+
+def _peers_by(check: Check) -> tuple[str, ...]:
+    return tuple(check.baseline.peers_by) if check.baseline.method == "peers" else ()
 
 
 def explanation_table(found: Explanation) -> str:
@@ -464,7 +470,9 @@ def explanation_table(found: Explanation) -> str:
             f"{' [' + found.split_value + ']' if found.split_value else ''}, "
             f"{'window' if found.windows == 1 else f'{found.windows} breaching windows'} "
             f"{found.window_start:%Y-%m-%d %H:%M:%S} to {found.window_end:%Y-%m-%d %H:%M:%S}, against "
-            f"{found.history_windows} earlier healthy windows, by {', '.join(found.attributes)}")
+            + (f"its peers (the series of the same {', '.join(found.peers_by)}, in the same windows)" if found.peers_by
+               else f"{found.history_windows} earlier healthy windows")
+            + f", by {', '.join(found.attributes)}")
     if not found.causes:
         return head + "\nno combination has more bad sessions than expected\n"
     rows = [("rank", "where", "bad", "expected", "share of excess", "score", "answer")]
