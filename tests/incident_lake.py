@@ -111,7 +111,8 @@ _BUILT: dict[str, Path] = {}
 
 def built(tmp_path_factory) -> Path:
     """The project folder after a run per file, built once per test session; ``snapshots/N.duckdb``
-    holds the warehouse as it was after the run of file N (counting from 0)."""
+    holds the warehouse as it was after the run of file N (counting from 0), ``snapshots/N_tables``
+    the copy of its tables that run published."""
     from toolkit.config.project import load_project
     from toolkit.engine.runner import run
 
@@ -123,6 +124,8 @@ def built(tmp_path_factory) -> Path:
         def after(i: int) -> None:
             assert run(load_project(project)).status == "ok"
             shutil.copyfile(folder / "warehouse.duckdb", folder / "snapshots" / f"{i}.duckdb")
+            if (folder / "warehouse_tables").exists():  # the copy a run publishes for readers
+                shutil.copytree(folder / "warehouse_tables", folder / "snapshots" / f"{i}_tables")
 
         land(folder, len(files()), after)
         _BUILT["folder"] = folder
@@ -138,4 +141,6 @@ def at(tmp_path_factory, to: Path, step: int | None = None, extra_project: str =
     for name, _, _ in files()[:last + 1]:
         shutil.copyfile(folder / "lake" / name, to / "lake" / name)
     shutil.copyfile(folder / "snapshots" / f"{last}.duckdb", to / "warehouse.duckdb")
+    if (folder / "snapshots" / f"{last}_tables").exists():
+        shutil.copytree(folder / "snapshots" / f"{last}_tables", to / "warehouse_tables")
     return project
