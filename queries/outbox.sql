@@ -17,8 +17,9 @@
 -- catch_up (seconds), in data time before the newest data the warehouse has read, are kept as
 -- 'skipped' ('catch_up'), except the opening of an alert still open, so the receiver learns of the
 -- problems going on now.
--- The payload carries keys and counts, never a session or viewer id: the alert's incident and the
--- significant causes (alert_causes) of the run that last computed them by the event's run.
+-- The payload carries keys and counts, never a session or viewer id: the alert's incident and its
+-- significant causes (alert_causes: a run replaces an alert's causes when it grows it, so these are
+-- the latest run's, which may be later than the event's when notify runs after several runs).
 --
 -- Webhooks with per 'incident' are given the events of incident_events instead (after the alerts').
 CREATE OR REPLACE TEMP MACRO outbox_event_identity(fingerprint, opened_at, event, occurred_at, close_reason,
@@ -41,17 +42,17 @@ SET fingerprint = a.fingerprint,
 FROM alerts AS a
 WHERE a.alert_id = outbox.alert_id AND outbox.event_identity IS NULL;
 
--- each alert's significant causes as one run computed them, best first, for the payloads
+-- each alert's significant causes as the last run that grew it computed them, best first
 CREATE OR REPLACE TEMP TABLE outbox_cause_sets AS
 SELECT
-    alert_id, run_id,
+    alert_id,
     coalesce(list({
         'rank': rank, 'key': key, 'key_text': key_text, 'bad': bad,
         'expected': CASE WHEN isfinite(expected) THEN round(expected, 2) END,
         'excess_share': CASE WHEN isfinite(excess_share) THEN round(excess_share, 4) END
     } ORDER BY rank) FILTER (WHERE significant), []) AS causes
 FROM alert_causes
-GROUP BY alert_id, run_id;
+GROUP BY alert_id;
 
 CREATE OR REPLACE TEMP TABLE outbox_new AS
 WITH RECURSIVE
@@ -88,7 +89,7 @@ events AS (
         ) AS rebuilt
     FROM (SELECT DISTINCT * FROM alert_events) AS e
     JOIN alerts AS a ON a.alert_id = e.alert_id
-    ASOF LEFT JOIN cause_sets AS cs ON cs.alert_id = e.alert_id AND e.run_id >= cs.run_id
+    LEFT JOIN cause_sets AS cs ON cs.alert_id = e.alert_id
 ),
 numbered AS (
     SELECT
@@ -211,8 +212,10 @@ JOIN decided AS d
   ON d.webhook = f.webhook AND d.fingerprint = f.fingerprint AND d.opened_at = f.opened_at AND d.n = f.n;
 
 -- Webhooks with per 'incident': each event of incident_events once per webhook. An event is known by
--- its incident and kind, and for 'closed' its data time, for 'updated' also its alerts and size (so a
--- rebuild that derives the same events again sends nothing twice). 'opened' and 'closed' are sent; an
+-- its incident and kind, and for 'closed' and 'reopened' its data time, for 'updated' also its alerts
+-- and size (so a rebuild that derives the same events again sends nothing twice). 'opened',
+-- 'reopened' and 'closed' are sent, a close with status 'merged' too (its alerts joined another
+-- incident, named by merged_into: the receiver folds its page into that one's); an
 -- 'updated' one when an alert joined, the cause changed, or affected_sessions grew by $growth over
 -- the last event queued for the incident and webhook, else it is kept as 'skipped' ('growth'). The
 -- catch_up rule of a webhook's first pass is the alerts' rule, the opening of an incident still open
@@ -232,10 +235,14 @@ events AS (
     SELECT
         e.incident_id, e.run_id, e.occurred_at, e.event, e.status, e.cause_alert_id, e.alerts, e.alert_ids,
         e.affected_sessions, e.affected_viewers,
-        i.status AS incident_status, i.opened_at, i.severity,
+        -- an incident merged into another is gone from incidents: its opening from its events,
+        -- its severity its cause alert's, and the incident that now holds its cause alert
+        i.status AS incident_status, coalesce(i.opened_at, o.opened_at) AS opened_at,
+        coalesce(i.severity, a.severity) AS severity,
+        CASE WHEN e.status = 'merged' THEN a.incident_id END AS merged_into,
         a.check_name, a.key, a.key_text, a.split_value,
         coalesce(cs.causes, []) AS causes,
-        CASE e.event WHEN 'opened' THEN 0 WHEN 'updated' THEN 1 ELSE 2 END AS event_rank,
+        CASE e.event WHEN 'opened' THEN 0 WHEN 'reopened' THEN 0 WHEN 'updated' THEN 1 ELSE 2 END AS event_rank,
         md5(to_json({
             'incident': e.incident_id,
             'event': e.event,
@@ -246,7 +253,9 @@ events AS (
     FROM (SELECT DISTINCT * FROM incident_events) AS e
     LEFT JOIN incidents AS i ON i.incident_id = e.incident_id
     LEFT JOIN alerts AS a ON a.alert_id = e.cause_alert_id
-    ASOF LEFT JOIN outbox_cause_sets AS cs ON cs.alert_id = e.cause_alert_id AND e.run_id >= cs.run_id
+    LEFT JOIN outbox_cause_sets AS cs ON cs.alert_id = e.cause_alert_id
+    LEFT JOIN (SELECT incident_id, min(occurred_at) AS opened_at FROM incident_events WHERE event = 'opened'
+               GROUP BY incident_id) AS o ON o.incident_id = e.incident_id
     QUALIFY row_number() OVER (PARTITION BY event_identity ORDER BY e.run_id DESC) = 1
 ),
 candidates AS (
@@ -254,7 +263,8 @@ candidates AS (
         h.name AS webhook, h.url, n.*,
         md5(to_json({'event': n.event_identity, 'webhook': h.name})::VARCHAR) AS idempotency_key,
         coalesce(h.first_pass AND n.occurred_at < h.catch_up_from
-                 AND NOT (n.event = 'opened' AND n.incident_status = 'open'), false) AS stale
+                 -- (an incident merged into another is gone from incidents: not open, history)
+                 AND NOT (n.event = 'opened' AND coalesce(n.incident_status = 'open', false)), false) AS stale
     FROM events AS n
     CROSS JOIN hooks AS h
 ),
@@ -321,6 +331,7 @@ SELECT
         'status': f.status,
         'opened_at': strftime(f.opened_at, '%Y-%m-%dT%H:%M:%SZ'),
         'closed_at': CASE WHEN f.event = 'closed' THEN strftime(f.occurred_at, '%Y-%m-%dT%H:%M:%SZ') END,
+        'merged_into': f.merged_into,
         'cause': {'check': f.check_name, 'key': f.key, 'key_text': f.key_text, 'split_value': f.split_value,
                   'alert_id': f.cause_alert_id},
         'alert_ids': f.alert_ids,

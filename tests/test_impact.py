@@ -22,6 +22,7 @@ from conftest import PLAIN_PROJECT, write_project, write_rows
 
 from toolkit.config.project import load_project
 from toolkit.engine.runner import run
+from toolkit.engine import warehouse
 from toolkit.sql.templates import shared
 
 M = 1024
@@ -345,13 +346,18 @@ def test_a_layout_3_file_is_converted_with_its_rate_impact_filled_in(tmp_path: P
     con.execute("UPDATE alerts SET affected_sessions = 20 WHERE check_name <> 'failures'")
     con.execute("UPDATE alert_events SET affected_sessions = 20 WHERE alert_id IN "
                 "(SELECT alert_id FROM alerts WHERE check_name <> 'failures')")
+    # nor the causes and incidents of layout 5
+    for table in ("alert_causes", "incidents", "incident_events"):
+        con.execute(f"DROP TABLE {table}")
+    con.execute("ALTER TABLE alerts DROP COLUMN incident_id")
+    con.execute("ALTER TABLE outbox DROP COLUMN incident_id")
     con.execute("UPDATE schema_version SET version = 3")
     con.close()
 
     # the last hour lands: the rate alert closes, the others stay open (one healthy window)
     write_rows(lake, SCHEMA, [r for r in rows if r[1] >= START + timedelta(hours=6)], "b.parquet")
     run(load_project(project_file))
-    assert _query(project_file, "SELECT version FROM schema_version") == [(4,)]
+    assert _query(project_file, "SELECT version FROM schema_version") == [(warehouse.SCHEMA_VERSION,)]
     assert _query(project_file, "SELECT check_name, window_end, affected_sessions, round(excess_sessions, 9) "
                                 "FROM windows WHERE breach ORDER BY 1, 2") == [
         ("failures", START + timedelta(hours=4, minutes=57), 10, 8.0),
@@ -365,6 +371,8 @@ def test_a_layout_3_file_is_converted_with_its_rate_impact_filled_in(tmp_path: P
                                 "FROM alert_events AS e JOIN alerts USING (alert_id) WHERE check_name = 'failures' "
                                 "ORDER BY e.occurred_at, e.event DESC") == [
         ("opened", 10, 8.0), ("updated", 16, 12.0), ("closed", 16, 12.0)]
+    # the run after the conversion groups every alert, the earlier ones too, into incidents
+    assert _query(project_file, "SELECT count(*) FROM alerts WHERE incident_id IS NULL") == [(0,)]
 
 
 def test_a_viewer_id_the_lake_does_not_have_is_one_line_naming_the_file_and_line(tmp_path: Path) -> None:

@@ -1,6 +1,6 @@
 """Webhooks and incidents: alert payloads carry their incident and causes, and a webhook with
-`per: incident` is sent each incident event once, over the known lake's warehouse with its causes
-and incidents written by hand (see tests/known_lake.py) and the local HTTP receiver of
+`per: incident` is sent each incident event once, over the incidents and causes real runs computed
+on the lake of tests/incident_lake.py (read file by file), with the local HTTP receiver of
 tests/test_notify.py."""
 
 from __future__ import annotations
@@ -10,9 +10,11 @@ from datetime import timedelta
 from pathlib import Path
 
 import duckdb
+import pytest
 from click.testing import CliRunner
 
-from known_lake import HOSTILE, HOSTILE_PLAYER, fill_incidents, known_project
+import incident_lake
+from incident_lake import HOSTILE_PLAYER, at, files, land
 from test_notify import Hook, PretendClock, hook  # noqa: F401 (hook is a fixture)
 from toolkit.cli import main
 from toolkit.config.project import load_project
@@ -20,8 +22,18 @@ from toolkit.engine.runner import run
 from toolkit.outputs.delivery import notify
 
 INCIDENT_KEYS = {"idempotency_key", "event", "occurred_at", "incident_id", "status", "opened_at", "closed_at",
-                 "cause", "alert_ids", "alerts", "severity", "affected_sessions", "affected_viewers", "causes",
-                 "run_id", "sender"}
+                 "merged_into", "cause", "alert_ids", "alerts", "severity", "affected_sessions", "affected_viewers",
+                 "causes", "run_id", "sender"}
+# the incidents of the lake (tests/incident_lake.py): the CDN in DE, the site incident that merged
+# into it, a short CDN alert in FR, and at the end the open CDN incident in FR and its merged site one
+BIRCH_DE, NEWS, BIRCH_FR, CEDAR_FR, SPORT = ("4c07b99f730be766", "b89c19f64bc820fd", "63d519f975e17d6a",
+                                             "54f1a9fe05d4bea6", "e74f0dbe3f04c38f")
+# the events of incident_events, in order, each sent once (nothing waits for growth here)
+EVENTS = [(BIRCH_DE, "opened", "open"), (NEWS, "opened", "open"), (BIRCH_DE, "updated", "open"),
+          (NEWS, "closed", "merged"), (BIRCH_DE, "updated", "open"), (BIRCH_DE, "closed", "closed"),
+          (BIRCH_DE, "reopened", "open"), (BIRCH_FR, "opened", "open"), (BIRCH_DE, "updated", "open"),
+          (BIRCH_DE, "closed", "closed"), (BIRCH_FR, "closed", "closed"), (CEDAR_FR, "opened", "open"),
+          (SPORT, "opened", "open"), (CEDAR_FR, "updated", "open"), (SPORT, "closed", "merged")]
 
 
 def hooks(*entries: tuple[str, str], growth: float = 0.5, catch_up: str = "52w") -> str:
@@ -31,115 +43,145 @@ def hooks(*entries: tuple[str, str], growth: float = 0.5, catch_up: str = "52w")
     return f"webhooks:\n{text}notify:\n  growth: {growth}\n  max_attempts: 3\n  backoff: 1s\n  max_backoff: 4s\n"
 
 
-def filled(tmp_path: Path, extra: str):
-    project = load_project(known_project(tmp_path, extra))
-    run(project)
-    return project, fill_incidents(project.warehouse)
+@pytest.fixture
+def made(tmp_path: Path, tmp_path_factory: pytest.TempPathFactory):
+    """The lake's project as after the run of file ``step`` (None: the last), with ``extra`` webhooks."""
+    def make(extra: str, step: int | None = None):
+        return load_project(at(tmp_path_factory, tmp_path / "p", step, extra))
+    return make
 
 
-def add_events(project, rows: list[tuple]) -> None:
-    """More events of the open incident: (run_id, minutes after its opening, event, alerts, affected)."""
-    con = duckdb.connect(str(project.warehouse))
+def query(project, sql: str) -> list[tuple]:
+    con = duckdb.connect(str(project.warehouse), read_only=True)
     try:
-        for run_id, minutes, event, alerts, affected in rows:
-            con.execute(
-                "INSERT INTO incident_events SELECT incident_id, $run, opened_at + to_minutes($m), $event, "
-                "CASE WHEN $event = 'closed' THEN 'closed' ELSE 'open' END, cause_alert_id, $alerts, "
-                "alert_ids || list_transform(range($alerts - 1), lambda n: 'joined-' || n), $affected, NULL "
-                "FROM incidents WHERE incident_id = 'inc-open'",
-                {"run": run_id, "m": minutes, "event": event, "alerts": alerts, "affected": affected})
+        return con.execute(sql).fetchall()
     finally:
         con.close()
-
-
-def test_alert_payloads_carry_their_incident_and_significant_causes(tmp_path: Path, hook: Hook) -> None:
-    project, ids = filled(tmp_path, hooks((hook.url, "alert")))
-    notify(project, clock=PretendClock())
-    bodies = [json.loads(r.body) for r in hook.accepted]
-    assert [b["event"] for b in bodies] == ["opened", "updated", "opened", "closed"]
-    assert {b["alert_id"]: b["incident_id"] for b in bodies} == {ids["closed"]: "inc-closed",
-                                                                 ids["hostile"]: "inc-open"}
-    closed = [b for b in bodies if b["alert_id"] == ids["closed"]]
-    # only the significant cause, never the row below it
-    assert all(b["causes"] == [{"rank": 1, "key": {"cdn": "birch", "country": "DE"}, "key_text": "cdn=birch, country=DE",
-                                "bad": 11.0, "expected": 1.5, "excess_share": 0.81}] for b in closed)
-    hostile = [b for b in bodies if b["alert_id"] == ids["hostile"]]
-    assert hostile[0]["causes"][0]["key"] == {"player_version": HOSTILE_PLAYER}
-    assert all(b"s-0-" not in r.body and b"s-1-" not in r.body for r in hook.accepted)  # no session ids
-    assert all(incident is None for *_, incident in outbox_incidents(project))  # alert rows, not incident rows
 
 
 def outbox_incidents(project) -> list[tuple]:
-    con = duckdb.connect(str(project.warehouse), read_only=True)
-    try:
-        return con.execute("SELECT webhook, event, status, incident_id FROM outbox ORDER BY seq").fetchall()
-    finally:
-        con.close()
+    return query(project, "SELECT webhook, event, status, incident_id FROM outbox ORDER BY seq")
 
 
-def test_a_webhook_per_incident_gets_each_incident_event_once(tmp_path: Path, hook: Hook) -> None:
-    project, ids = filled(tmp_path, hooks((hook.url, "incident")))
-    result = notify(project, clock=PretendClock())
-    assert (result.queued, result.skipped, result.exit_code) == (3, 0, 0)
+def test_alert_payloads_carry_their_incident_and_significant_causes(made, hook: Hook) -> None:
+    project = made(hooks((hook.url, "alert")))
+    notify(project, clock=PretendClock())
     bodies = [json.loads(r.body) for r in hook.accepted]
-    assert [(b["incident_id"], b["event"]) for b in bodies] == [
-        ("inc-closed", "opened"), ("inc-open", "opened"), ("inc-closed", "closed")]
+    incidents = dict(query(project, "SELECT alert_id, incident_id FROM alerts"))
+    assert bodies and all(b["incident_id"] == incidents[b["alert_id"]] for b in bodies)
+    # each alert's significant causes, never the rows below them, as the last run that grew it stored them
+    stored: dict[str, list] = {}
+    for alert_id, rank, key, key_text in query(project, "SELECT alert_id, rank, key, key_text FROM alert_causes "
+                                                        "WHERE significant ORDER BY alert_id, rank"):
+        stored.setdefault(alert_id, []).append((rank, dict(key), key_text))
+    for b in bodies:
+        assert [(c["rank"], c["key"], c["key_text"]) for c in b["causes"]] == stored.get(b["alert_id"], [])
+    cedar = [b for b in bodies if b["key_text"] == "cdn=cedar, country=FR"]
+    assert cedar and all(b["causes"][0]["key"] == {"player": HOSTILE_PLAYER} for b in cedar)
+    assert all(b"s-" not in r.body for r in hook.accepted)  # no session ids
+    assert all(incident is None for *_, incident in outbox_incidents(project))  # alert rows, not incident rows
+
+
+def test_an_alert_opened_before_its_causes_were_recomputed_is_sent_with_them(made, hook: Hook) -> None:
+    # The site alerts opened in the run of file 16 and grew in later runs, each replacing their
+    # causes: notified only now, their opening carries the causes the warehouse holds (it once
+    # looked for causes computed by the opening's run, which the later runs had replaced).
+    project = made(hooks((hook.url, "alert")))
+    notify(project, clock=PretendClock())
+    opened = [json.loads(r.body) for r in hook.accepted]
+    opened = [b for b in opened if b["event"] == "opened" and b["key_text"] == "site=news"
+              and b["opened_at"] == "2026-11-02T16:30:00Z"]
+    assert len(opened) == 1 and opened[0]["run_id"] < query(project, "SELECT max(run_id) FROM alert_causes")[0][0]
+    assert [c["key_text"] for c in opened[0]["causes"]] == ["cdn=birch, country=DE"]
+
+
+def test_a_webhook_per_incident_gets_each_incident_event_once(made, hook: Hook) -> None:
+    project = made(hooks((hook.url, "incident")))
+    result = notify(project, clock=PretendClock())
+    assert (result.queued, result.skipped, result.exit_code) == (len(EVENTS), 0, 0)
+    bodies = [json.loads(r.body) for r in hook.accepted]
+    assert [(b["incident_id"], b["event"], b["status"]) for b in bodies] == EVENTS
     for r, body in zip(hook.accepted, bodies):
         assert set(body) == INCIDENT_KEYS
         assert r.headers["Idempotency-Key"] == body["idempotency_key"]
-        assert b"s-0-" not in r.body and b"s-1-" not in r.body
-    assert bodies[2] == {
-        "idempotency_key": bodies[2]["idempotency_key"], "event": "closed", "occurred_at": "2026-11-02T01:09:00Z",
-        "incident_id": "inc-closed", "status": "closed", "opened_at": "2026-11-02T00:49:00Z",
-        "closed_at": "2026-11-02T01:09:00Z",
-        "cause": {"check": "title_errors", "key": {"site": "kids", "title_id": "t-1"},
-                  "key_text": "site=kids, title_id=t-1", "split_value": None, "alert_id": ids["closed"]},
-        "alert_ids": [ids["closed"]], "alerts": 1, "severity": "high", "affected_sessions": 13,
+        assert b"s-" not in r.body
+    (alert_id,) = query(project, "SELECT alert_id FROM alerts WHERE key_text = 'cdn=birch, country=FR'")[0]
+    assert bodies[10] == {
+        "idempotency_key": bodies[10]["idempotency_key"], "event": "closed", "occurred_at": "2026-11-03T01:00:00Z",
+        "incident_id": BIRCH_FR, "status": "closed", "opened_at": "2026-11-02T23:00:00Z",
+        "closed_at": "2026-11-03T01:00:00Z", "merged_into": None,
+        "cause": {"check": "cdn_country", "key": {"cdn": "birch", "country": "FR"},
+                  "key_text": "cdn=birch, country=FR", "split_value": None, "alert_id": alert_id},
+        "alert_ids": [alert_id], "alerts": 1, "severity": "high", "affected_sessions": 8,
         "affected_viewers": None,
-        "causes": [{"rank": 1, "key": {"cdn": "birch", "country": "DE"}, "key_text": "cdn=birch, country=DE",
-                    "bad": 11.0, "expected": 1.5, "excess_share": 0.81}],
-        "run_id": 1, "sender": bodies[2]["sender"],
+        "causes": [{"rank": 1, "key": {"player": HOSTILE_PLAYER}, "key_text": f"player={HOSTILE_PLAYER}",
+                    "bad": 5.0, "expected": 0.48, "excess_share": 0.6979}],
+        "run_id": bodies[10]["run_id"], "sender": bodies[10]["sender"],
     }
-    assert bodies[1]["cause"]["key"] == {"site": "kids", "title_id": HOSTILE}
-    assert [(e, s, i) for _, e, s, i in outbox_incidents(project)] == [
-        ("opened", "delivered", "inc-closed"), ("opened", "delivered", "inc-open"), ("closed", "delivered", "inc-closed")]
+    assert [(e, s, i) for _, e, s, i in outbox_incidents(project)] == [(e, "delivered", i) for i, e, _ in EVENTS]
     # nothing queued or sent twice
     again = notify(project, clock=PretendClock())
     assert (again.queued, again.skipped, again.attempts) == (0, 0, [])
-    assert len(hook.received) == 3
+    assert len(hook.received) == len(EVENTS)
 
 
-def test_updates_are_sent_when_alerts_join_or_the_incident_grows(tmp_path: Path, hook: Hook) -> None:
-    project, _ = filled(tmp_path, hooks((hook.url, "incident")))
+def test_a_merged_incident_is_closed_naming_the_incident_it_joined(made, hook: Hook) -> None:
+    # its row is gone from incidents: the close still says when it opened, how severe it was, and where it went
+    project = made(hooks((hook.url, "incident")))
     notify(project, clock=PretendClock())
-    assert len(hook.accepted) == 3
-    # the open incident (8 affected when opened): an alert joins; it grows 8 -> 10 (+25 %: kept back);
-    # 8 -> 12 (+50 %: sent); then it closes
-    add_events(project, [(2, 10, "updated", 2, 8), (3, 20, "updated", 2, 10), (4, 30, "updated", 2, 12),
-                         (5, 40, "closed", 2, 12)])
+    merged = [json.loads(r.body) for r in hook.accepted if json.loads(r.body)["status"] == "merged"]
+    assert [(b["incident_id"], b["event"], b["merged_into"], b["opened_at"], b["severity"]) for b in merged] == [
+        (NEWS, "closed", BIRCH_DE, "2026-11-02T16:30:00Z", "medium"),
+        (SPORT, "closed", CEDAR_FR, "2026-11-03T08:30:00Z", "medium")]
+    assert all(b["closed_at"] == b["occurred_at"] and b["cause"]["key_text"].startswith("site=") for b in merged)
+    # the incident it joined was updated first, with the merged one's alert among its own
+    bodies = [json.loads(r.body) for r in hook.accepted]
+    news = [b for b in bodies if b["incident_id"] == NEWS]
+    joined = bodies[bodies.index(news[-1]) - 1]
+    assert (joined["incident_id"], joined["event"]) == (BIRCH_DE, "updated")
+    assert news[0]["alert_ids"][0] in joined["alert_ids"]
+
+
+def test_a_reopened_incident_is_sent_as_it_reopens(made, hook: Hook) -> None:
+    project = made(hooks((hook.url, "incident")))
+    notify(project, clock=PretendClock())
+    birch = [json.loads(r.body) for r in hook.accepted if json.loads(r.body)["incident_id"] == BIRCH_DE]
+    assert [(b["event"], b["status"], b["closed_at"]) for b in birch] == [
+        ("opened", "open", None), ("updated", "open", None), ("updated", "open", None),
+        ("closed", "closed", "2026-11-02T20:00:00Z"), ("reopened", "open", None), ("updated", "open", None),
+        ("closed", "closed", "2026-11-03T01:00:00Z")]
+    assert birch[4]["occurred_at"] == "2026-11-02T22:30:00Z" and birch[4]["opened_at"] == "2026-11-02T16:30:00Z"
+
+
+def test_updates_wait_for_growth_unless_an_alert_joins(made, tmp_path: Path, hook: Hook) -> None:
+    # with growth 3 (+300 %), the CDN incident's updates are sent only when alerts join or its cause changes
+    project = made(hooks((hook.url, "incident"), growth=3))
     result = notify(project, clock=PretendClock())
-    assert (result.queued, result.skipped, result.skipped_for) == (3, 1, {"growth": 1})
-    sent = [json.loads(r.body) for r in hook.accepted[3:]]
-    assert [(b["event"], b["alerts"], b["affected_sessions"]) for b in sent] == [
-        ("updated", 2, 8), ("updated", 2, 12), ("closed", 2, 12)]
-    assert sent[0]["alert_ids"][1] == "joined-0"
-    statuses = [(e, s) for _, e, s, _ in outbox_incidents(project)][3:]
-    assert statuses == [("updated", "delivered"), ("updated", "skipped"), ("updated", "delivered"),
-                        ("closed", "delivered")]
-    assert notify(project, clock=PretendClock()).queued == 0 and len(hook.received) == 6
+    assert result.skipped_for == {"growth": 2}
+    sent = [json.loads(r.body) for r in hook.accepted]
+    updates = [(b["incident_id"], b["alerts"], b["affected_sessions"]) for b in sent if b["event"] == "updated"]
+    # the CDN alert joins the site's incident (1 -> 3 alerts); 54 -> 118 and -> 183 are kept back;
+    # at the end the site alerts join the CDN in FR (2 -> 4)
+    assert updates == [(BIRCH_DE, 3, 54), (CEDAR_FR, 4, 34)]
+    assert [s for _, e, s, i in outbox_incidents(project) if e == "updated"] == [
+        "delivered", "skipped", "skipped", "delivered"]
 
 
-def test_growth_is_measured_against_what_earlier_notifies_sent(tmp_path: Path, hook: Hook) -> None:
-    project, _ = filled(tmp_path, hooks((hook.url, "incident")))
+def test_growth_is_measured_against_what_earlier_notifies_sent(made, hook: Hook) -> None:
+    # notified after the run of file 18 (hour 17: the CDN incident's update to 54 sent), then the
+    # runs of the rest of the lake, file by file, and notified again
+    project = made(hooks((hook.url, "incident"), growth=1), step=18)
     notify(project, clock=PretendClock())
-    add_events(project, [(2, 10, "updated", 1, 11)])   # +37 % over the 8 sent: kept back
-    assert notify(project, clock=PretendClock()).skipped_for == {"growth": 1}
-    add_events(project, [(3, 20, "updated", 1, 12)])   # +50 % over the 8 sent: sent
-    assert notify(project, clock=PretendClock()).queued == 1
-    assert json.loads(hook.accepted[-1].body)["affected_sessions"] == 12
+    assert [json.loads(r.body)["affected_sessions"] for r in hook.accepted
+            if json.loads(r.body)["incident_id"] == BIRCH_DE] == [15, 54]
+    folder = project.file.parent
+    land(folder, 20, lambda i: run(project), start=19)
+    result = notify(project, clock=PretendClock())
+    # 54 -> 118 is more than double what was sent: sent
+    assert json.loads(hook.accepted[-1].body)["affected_sessions"] == 118 and result.queued == 1
 
 
-def test_alert_and_incident_webhooks_side_by_side(tmp_path: Path, hook: Hook) -> None:
+def test_alert_and_incident_webhooks_side_by_side(made, hook: Hook) -> None:
     other = Hook()
     from test_notify import _handler
     from http.server import ThreadingHTTPServer
@@ -150,43 +192,42 @@ def test_alert_and_incident_webhooks_side_by_side(tmp_path: Path, hook: Hook) ->
     threading.Thread(target=server.serve_forever, daemon=True).start()
     try:
         url = f"http://127.0.0.1:{server.server_address[1]}/incidents"
-        project, _ = filled(tmp_path, hooks((hook.url, "alert"), (url, "incident")))
+        project = made(hooks((hook.url, "alert"), (url, "incident")))
         result = notify(project, clock=PretendClock())
-        assert result.queued == 7 and result.exit_code == 0
-        assert [json.loads(r.body)["event"] for r in hook.accepted] == ["opened", "updated", "opened", "closed"]
+        assert result.exit_code == 0 and result.queued == len(hook.accepted) + len(EVENTS)
         assert all("check" in json.loads(r.body) for r in hook.accepted)
-        assert [json.loads(r.body)["incident_id"] for r in other.accepted] == ["inc-closed", "inc-open", "inc-closed"]
-        assert all("cause" in json.loads(r.body) for r in other.accepted)
+        assert [(json.loads(r.body)["incident_id"], json.loads(r.body)["event"]) for r in other.accepted] == [
+            (i, e) for i, e, _ in EVENTS]
         assert notify(project, clock=PretendClock()).queued == 0
     finally:
         server.shutdown()
         server.server_close()
 
 
-def test_a_new_incident_webhook_starts_from_now(tmp_path: Path, hook: Hook) -> None:
-    project, _ = filled(tmp_path, hooks((hook.url, "incident"), catch_up="0s"))
+def test_a_new_incident_webhook_starts_from_now(made, hook: Hook) -> None:
+    project = made(hooks((hook.url, "incident"), catch_up="0s"))
     result = notify(project, clock=PretendClock())
-    # the closed incident is history; the opening of the open one is sent however old
-    assert (result.queued, result.skipped_for) == (1, {"catch_up": 2})
+    # the history is skipped; the opening of the incident still open is sent however old
+    assert (result.queued, result.skipped_for) == (1, {"catch_up": len(EVENTS) - 1})
     assert [(json.loads(r.body)["incident_id"], json.loads(r.body)["event"]) for r in hook.accepted] == [
-        ("inc-open", "opened")]
-    add_events(project, [(2, 10, "updated", 2, 8)])
-    assert notify(project, clock=PretendClock()).queued == 1  # after the first pass, every new event
+        (CEDAR_FR, "opened")]
 
 
-def test_the_command_line_names_the_incident(tmp_path: Path, hook: Hook) -> None:
-    project, _ = filled(tmp_path, hooks((hook.url, "incident")))
+def test_the_command_line_names_the_incident(made, hook: Hook) -> None:
+    project = made(hooks((hook.url, "incident")))
     result = CliRunner().invoke(main, ["notify", "-p", str(project.file)])
     assert result.exit_code == 0, result.output
     lines = result.output.splitlines()
-    assert lines[0] == "notify: queued 3 events for 1 webhook"
-    assert lines[1] == "  delivered  hook0: incident opened, cause site=kids, title_id=t-1 [inc-closed]"
-    assert lines[-1] == "notify: 3 delivered, 0 failed, 0 waiting, 0 abandoned now"
+    assert lines[0] == f"notify: queued {len(EVENTS)} events for 1 webhook"
+    assert lines[1] == f"  delivered  hook0: incident opened, cause site=sport [{BIRCH_DE}]"
+    assert lines[3] == f"  delivered  hook0: incident updated, cause cdn=birch, country=DE [{BIRCH_DE}]"
+    assert lines[4] == f"  delivered  hook0: incident closed (merged into {BIRCH_DE}), cause site=news [{NEWS}]"
+    assert lines[-1] == f"notify: {len(EVENTS)} delivered, 0 failed, 0 waiting, 0 abandoned now"
 
 
-def test_a_failed_incident_delivery_is_retried_with_the_same_key(tmp_path: Path, hook: Hook) -> None:
+def test_a_failed_incident_delivery_is_retried_with_the_same_key(made, hook: Hook) -> None:
     hook.script = ["500"]
-    project, _ = filled(tmp_path, hooks((hook.url, "incident")))
+    project = made(hooks((hook.url, "incident")))
     result = notify(project, clock=PretendClock(), retry_for=timedelta(minutes=1))
-    assert result.exit_code == 0 and len(result.delivered) == 3 and len(hook.received) == 4
+    assert result.exit_code == 0 and len(result.delivered) == len(EVENTS) and len(hook.received) == len(EVENTS) + 1
     assert (hook.received[0].key, hook.received[0].body) == (hook.received[1].key, hook.received[1].body)

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import hashlib
 import re
 import subprocess
 from datetime import timedelta
@@ -15,7 +16,8 @@ from click.testing import CliRunner
 import browser
 from browser import open_page
 from conftest import PLAIN_PROJECT, write_project, write_rows
-from known_lake import CHECK, HOSTILE, HOSTILE_PLAYER, START, fill_incidents, known_project, warehouse_held
+from incident_lake import HOSTILE_PLAYER, at
+from known_lake import CHECK, HOSTILE, START, known_project, warehouse_held
 from toolkit.cli import main
 from toolkit.config.project import load_project
 from toolkit.outputs.report import MAX_POINTS, series_for
@@ -86,7 +88,7 @@ def test_report_in_a_headless_browser(project: Path, tmp_path: Path, monkeypatch
     assert page.console == []
     assert page.screenshot.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
     dom = parse(page.dom)
-    assert dom.charts == 2  # one per alert
+    assert dom.charts == 4  # each alert is its own incident: the incident's cause, then each alert
     assert "script" not in dom.tags  # the hostile title is text, not markup, in the page and in the SVG
     assert any(HOSTILE in t for t in dom.text)
     assert any(HOSTILE in t for t in dom.svg_text)
@@ -123,8 +125,8 @@ def test_open_alerts_come_first(project: Path, tmp_path: Path) -> None:
 def test_report_filters(project: Path, tmp_path: Path) -> None:
     out = tmp_path / "late.html"
     result = invoke("report", "--out", str(out), "--since", "2026-11-02 00:50:00", "-p", str(project))
-    assert result.exit_code == 0 and "1 alerts (1 open)" in result.output
-    assert parse(out.read_text()).charts == 1
+    assert result.exit_code == 0 and "1 alerts (1 open), 1 incidents" in result.output
+    assert parse(out.read_text()).charts == 2  # its incident's cause, and the alert
     result = invoke("report", "--out", str(out), "--check", "other", "-p", str(project))
     assert "0 alerts" in result.output and "No alerts match." in out.read_text()
 
@@ -197,7 +199,7 @@ def test_report_and_alerts_read_the_published_copies_while_a_run_holds_the_wareh
         out = tmp_path / "while-running.html"
         result = invoke("report", "--out", str(out), "-p", str(project))
         assert result.exit_code == 0, result.output
-        assert parse(out.read_text()).charts == 2
+        assert parse(out.read_text()).charts == 4
         listed = invoke("alerts", "--status", "open", "-p", str(project))
         assert listed.exit_code == 0 and HOSTILE in listed.output
 
@@ -218,70 +220,91 @@ def test_a_cusum_alert_shows_its_statistic_and_h_as_counts(tmp_path: Path) -> No
 
 
 # ── incidents ───────────────────────────────────────────────────────────────────────────────────────
+# over the incidents and causes real runs computed on the lake of tests/incident_lake.py
 
 
 @pytest.fixture
-def with_incidents(project: Path) -> tuple[Path, dict[str, str]]:
-    """The known lake's warehouse with its causes and incidents written by hand (tests/known_lake.py)."""
-    return project, fill_incidents(load_project(project).warehouse)
+def with_incidents(tmp_path: Path, tmp_path_factory: pytest.TempPathFactory) -> Path:
+    return at(tmp_path_factory, tmp_path / "p")
 
 
-def test_the_page_opens_with_the_incidents(with_incidents, tmp_path: Path) -> None:
-    project, ids = with_incidents
+def test_the_page_opens_with_the_incidents(with_incidents: Path, tmp_path: Path) -> None:
+    project = with_incidents
     out = tmp_path / "report.html"
     result = invoke("report", "--out", str(out), "-p", str(project))
-    assert result.exit_code == 0 and result.output.startswith(f"{out}: 2 alerts (1 open), 2 incidents, ")
+    assert result.exit_code == 0 and result.output.startswith(f"{out}: 8 alerts (3 open), 3 incidents, ")
     html = out.read_text()
     dom = parse(html)
-    assert dom.charts == 4  # each incident's cause, then each alert
+    assert dom.charts == 3 + 8  # each incident's cause, then each alert
     head = html[html.index('id="incidents"'):html.index('id="open"')]
-    assert "Incidents (2), newest first" in head
-    assert head.index('id="incident-inc-open"') < head.index('id="incident-inc-closed"')
-    closed = head[head.index('id="incident-inc-closed"'):]
-    assert "cause: title_errors site=kids, title_id=t-1" in closed
-    assert "<li>cdn=birch, country=DE: 11 failing sessions (1.5 expected), 81 % of the excess</li>" in closed
-    assert "device_family=tv" not in html  # not significant: not an answer
+    assert "Incidents (3), newest first" in head
+    order = [head.index(f'id="incident-{i}"') for i in ("54f1a9fe05d4bea6", "63d519f975e17d6a", "4c07b99f730be766")]
+    assert order == sorted(order)
+    birch = head[head.index('id="incident-4c07b99f730be766"'):]
+    assert "cause: cdn_country cdn=birch, country=DE" in birch
+    # only the cause alert's significant causes, never the rows below them
+    assert "<li>site=sport: 95 failing sessions (3.1 expected), 52 % of the excess</li>" in birch
+    assert "<li>site=news: 88 failing sessions (3.0 expected), 48 % of the excess</li>" in birch
+    assert "country=DE: 103" not in birch and "player=7.1" not in head
     # the alerts it explains link to their cards, and every link has its target on the page
-    assert f'<a href="#alert-{ids["closed"]}">title_errors: site=kids, title_id=t-1 (closed)</a>' in closed
+    ids = dict(_query(project, "SELECT key_text || ' ' || strftime(opened_at, '%H:%M'), alert_id FROM alerts"))
+    assert f'<a href="#alert-{ids["site=news 16:30"]}">site: site=news (closed)</a>' in birch
     targets = set(re.findall(r' id="([^"]+)"', html))
     assert all(link[1:] in targets for link in dom.links if link.startswith("#alert-"))
     # hostile text from the data is text
-    assert "&lt;img src=x onerror=alert(2)&gt;" in head and HOSTILE_PLAYER not in html
-    assert "script" not in dom.tags and "img" not in dom.tags
+    assert "player=&lt;img src=x onerror=alert(2)&gt;: 5 failing sessions (0.5 expected), 70 % of the excess" in head
+    assert HOSTILE_PLAYER not in html and "script" not in dom.tags and "img" not in dom.tags
     # each alert's card names its incident and where its excess lies
-    card = html[html.index(f'id="alert-{ids["closed"]}"'):]
-    assert "<dt>incident</dt><dd>inc-closed</dd>" in card
-    assert ("<dt>excess lies in</dt><dd>site=kids, title_id=t-1: 11 failing sessions, 81 % of the excess in "
+    card = html[html.index(f'id="alert-{ids["site=news 16:30"]}"'):]
+    assert "<dt>incident</dt><dd>4c07b99f730be766</dd>" in card
+    assert ("<dt>excess lies in</dt><dd>site=news: 88 failing sessions, 95 % of the excess in "
             "cdn=birch, country=DE</dd>") in card
 
 
-def test_the_incidents_follow_the_alerts_chosen(with_incidents, tmp_path: Path) -> None:
-    project, _ = with_incidents
+def _query(project: Path, sql: str) -> list[tuple]:
+    con = duckdb.connect(str(load_project(project).warehouse), read_only=True)
+    try:
+        return con.execute(sql).fetchall()
+    finally:
+        con.close()
+
+
+def test_the_incidents_follow_the_alerts_chosen(with_incidents: Path, tmp_path: Path) -> None:
     out = tmp_path / "late.html"
-    result = invoke("report", "--out", str(out), "--since", "2026-11-02 00:50:00", "-p", str(project))
-    assert "1 alerts (1 open), 1 incidents" in result.output
+    result = invoke("report", "--out", str(out), "--since", "2026-11-03 05:00:00", "-p", str(with_incidents))
+    assert "4 alerts (3 open), 1 incidents" in result.output
     html = out.read_text()
-    assert 'id="incident-inc-open"' in html and "inc-closed" not in html
-    assert parse(html).charts == 2
+    assert 'id="incident-54f1a9fe05d4bea6"' in html and "4c07b99f730be766" not in html
+    assert parse(html).charts == 1 + 4
 
 
-def test_a_report_without_incidents_says_so(project: Path, tmp_path: Path) -> None:
+def test_a_report_without_incidents_says_so(tmp_path: Path, tmp_path_factory: pytest.TempPathFactory) -> None:
+    project = at(tmp_path_factory, tmp_path / "p", step=3)  # four hours read: no alert yet
     out = tmp_path / "report.html"
     result = invoke("report", "--out", str(out), "-p", str(project))
     assert result.exit_code == 0 and ", 0 incidents, " in result.output
     html = out.read_text()
     assert "Incidents (0), newest first" in html and "No incidents" in html
-    assert "<dt>incident</dt><dd>none</dd>" in html and "<dt>excess lies in</dt><dd>no cause found</dd>" in html
-    assert parse(html).charts == 2
+    assert parse(html).charts == 0
 
 
-def test_the_incidents_page_in_a_headless_browser(with_incidents, tmp_path: Path) -> None:
-    project, _ = with_incidents
+def test_an_alert_without_causes_says_so(project: Path, tmp_path: Path) -> None:
+    # the known lake has no attributes: each alert is its own incident, with nothing to explain it by
     out = tmp_path / "report.html"
     assert invoke("report", "--out", str(out), "-p", str(project)).exit_code == 0
+    html = out.read_text()
+    assert html.count("<dt>excess lies in</dt><dd>no cause found</dd>") == 2
+    for (alert_id,) in _query(project, "SELECT alert_id FROM alerts"):
+        incident = hashlib.md5(f"incident {alert_id}".encode()).hexdigest()[:16]
+        assert f"<dt>incident</dt><dd>{incident}</dd>" in html[html.index(f'id="alert-{alert_id}"'):]
+
+
+def test_the_incidents_page_in_a_headless_browser(with_incidents: Path, tmp_path: Path) -> None:
+    out = tmp_path / "report.html"
+    assert invoke("report", "--out", str(out), "-p", str(with_incidents)).exit_code == 0
     page = open_page(out, tmp_path / "report.png")
     assert page.console == []
     dom = parse(page.dom)
-    assert dom.charts == 4
+    assert dom.charts == 3 + 8
     assert "script" not in dom.tags and "img" not in dom.tags
     assert any(HOSTILE_PLAYER in t for t in dom.text)

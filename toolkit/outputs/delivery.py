@@ -75,6 +75,7 @@ class Attempt:
     key: str = ""                  # the row's idempotency key
     at: datetime | None = None     # when the POST ended (wall clock, UTC)
     incident_id: str | None = None  # an incident's event (webhooks with per: incident)
+    merged_into: str | None = None  # a close of an incident whose alerts joined this one
 
 
 @dataclass
@@ -210,6 +211,7 @@ class _Row:
     alert_id: str
     key_text: str
     incident_id: str | None = None
+    merged_into: str | None = None
 
 
 def _pending(con: duckdb.DuckDBPyConnection, names: list[str]) -> dict[str, list[_Row]]:
@@ -217,7 +219,8 @@ def _pending(con: duckdb.DuckDBPyConnection, names: list[str]) -> dict[str, list
     rows = con.execute(
         """
         SELECT o.webhook, o.idempotency_key, o.payload, o.attempts, o.next_attempt_at, o.event, o.alert_id,
-               coalesce(a.key_text, ''), o.incident_id
+               coalesce(a.key_text, ''), o.incident_id,
+               CASE WHEN o.incident_id IS NOT NULL THEN o.payload::JSON ->> 'merged_into' END
         FROM outbox AS o
         LEFT JOIN alerts AS a ON a.alert_id = o.alert_id
         WHERE o.status = 'queued' AND list_contains($h, o.webhook)
@@ -334,7 +337,7 @@ def _attempt(project: Project, hook: Webhook, headers: dict[str, str], row: _Row
             wait = min(settings.max_backoff, max(wait, retry_after))
         status, next_at = "queued", now + wait
     return Attempt(hook.name, row.event, row.alert_id, row.key_text, ok, status, attempts, error, next_at,
-                   row.key, now, row.incident_id)
+                   row.key, now, row.incident_id, row.merged_into)
 
 
 def _record(project: Project, attempt: Attempt) -> None:
@@ -600,7 +603,8 @@ def describe(project: Project, result: NotifyResult) -> str:
     for a in result.attempts:
         what = f"{a.webhook}: {a.event} {printable(a.key_text) or '(all sessions)'} [{a.alert_id}]"
         if a.incident_id is not None:
-            what = f"{a.webhook}: incident {a.event}, cause {printable(a.key_text) or '(all sessions)'} " \
+            merged = f" (merged into {printable(a.merged_into)})" if a.merged_into else ""
+            what = f"{a.webhook}: incident {a.event}{merged}, cause {printable(a.key_text) or '(all sessions)'} " \
                    f"[{printable(a.incident_id)}]"
         if a.ok:
             lines.append(f"  delivered  {what}")

@@ -93,13 +93,22 @@ def cause_line(key_text: str | None, causes: list[dict[str, Any]]) -> str | None
     if not answers:
         return None
     top = answers[0]
-    share = "" if top["excess_share"] is None or not math.isfinite(top["excess_share"]) \
-        else f", {100 * top['excess_share']:.0f} % of the excess"
+    share = excess_share_text(top["excess_share"])
+    share = f", {share}" if share else ""
     line = (f"{printable(key_text or '(all sessions)')}: {top['bad']:,.0f} failing sessions{share} in "
             f"{printable(top['key_text'] or '(all sessions)')}")
     if len(answers) > 1:
         line += f" (and {len(answers) - 1} more cause{'s' if len(answers) > 2 else ''})"
     return line
+
+
+def excess_share_text(share: float | None) -> str:
+    """'81 % of the excess'; 'all of the excess' from 99.5 % (a combination can hold more than the
+    window's excess when the rest failed less than expected: '107 %' would read as a mistake);
+    '' without a share."""
+    if share is None or not math.isfinite(share):
+        return ""
+    return "all of the excess" if share >= 0.995 else f"{100 * share:.0f} % of the excess"
 
 
 def alerts_json(alerts: list[dict[str, Any]]) -> str:

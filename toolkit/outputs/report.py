@@ -28,7 +28,8 @@ from toolkit import __version__
 from toolkit.engine import warehouse
 from toolkit.sql.templates import template_folder
 from toolkit.model import Project
-from toolkit.outputs.listings import alerts_from, cause_line, count_or_dash, incident_cause, incidents_from
+from toolkit.outputs.listings import (alerts_from, cause_line, count_or_dash, excess_share_text, incident_cause,
+                                      incidents_from)
 
 CONTEXT_BEFORE = 48   # windows drawn before an alert's first breaching window
 CONTEXT_AFTER = 24    # windows drawn after the window that closed it
@@ -179,10 +180,9 @@ def _incident_card(project: Project, incident: dict[str, Any], shown: dict[str, 
 
 def _cause_text(cause: dict[str, Any]) -> str:
     """'cdn=birch, country=DE: 69 failing sessions (1.5 expected), 81 % of the excess'."""
-    share = cause["excess_share"]
+    share = excess_share_text(cause["excess_share"])
     return (f"{cause['key_text'] or '(all sessions)'}: {cause['bad']:,.0f} failing sessions "
-            f"({cause['expected']:,.1f} expected)"
-            + (f", {100 * share:.0f} % of the excess" if share is not None and share == share else ""))
+            f"({cause['expected']:,.1f} expected)" + (f", {share}" if share else ""))
 
 
 def _card(project: Project, alert: dict[str, Any], series: Series, earlier: int) -> dict[str, Any]:
