@@ -86,20 +86,29 @@ def causes_for(con: duckdb.DuckDBPyConnection, alert_ids: list[str],
     return found
 
 
-def cause_line(key_text: str | None, causes: list[dict[str, Any]]) -> str | None:
-    """Where an alert's excess lies, from its first significant cause:
-    'site=news: 69 failing sessions, 81 % of the excess in cdn=birch, country=DE'; None without one."""
+def cause_line(key_text: str | None, causes: list[dict[str, Any]], affected: int | None = None) -> str | None:
+    """Where an alert's excess lies, from its significant causes (up to three), with the alert's
+    affected sessions: 'site=news: 69 sessions affected, 81 % of the excess in cdn=birch,
+    country=DE'; several answers each with their share ('…: the excess 52 % in site=sport; 45 % in site=news'),
+    so failures spread over one attribute's values do not read as one value's; None without one."""
     answers = [c for c in causes if c["significant"]]
     if not answers:
         return None
-    top = answers[0]
-    share = excess_share_text(top["excess_share"])
-    share = f", {share}" if share else ""
-    line = (f"{printable(key_text or '(all sessions)')}: {top['bad']:,.0f} failing sessions{share} in "
-            f"{printable(top['key_text'] or '(all sessions)')}")
-    if len(answers) > 1:
-        line += f" (and {len(answers) - 1} more cause{'s' if len(answers) > 2 else ''})"
-    return line
+    count = f" {affected:,} sessions affected," if affected is not None else ""
+    head = f"{printable(key_text or '(all sessions)')}:{count}"
+    if len(answers) == 1:
+        share = excess_share_text(answers[0]["excess_share"]) or "the excess"
+        return f"{head} {share} in {printable(answers[0]['key_text'])}"
+    parts = [f"{_share_number(c['excess_share'])} in {printable(c['key_text'])}" for c in answers[:3]]
+    more = f" and {len(answers) - 3} more" if len(answers) > 3 else ""
+    return f"{head} the excess {'; '.join(parts)}{more}"
+
+
+def _share_number(share: float | None) -> str:
+    """'52 %'; 'all' from 99.5 %; '?' without a share."""
+    if share is None or not math.isfinite(share):
+        return "?"
+    return "all" if share >= 0.995 else f"{100 * share:.0f} %"
 
 
 def excess_share_text(share: float | None) -> str:
@@ -146,7 +155,7 @@ def alerts_table(alerts: list[dict[str, Any]]) -> str:
         )
         for a in alerts
     ]
-    below = [cause_line(a["key_text"], a.get("causes", [])) for a in alerts]
+    below = [cause_line(a["key_text"], a.get("causes", []), a.get("affected_sessions")) for a in alerts]
     return _table(head, body, below)
 
 
@@ -248,7 +257,7 @@ def incidents_table(incidents: list[dict[str, Any]]) -> str:
         )
         for i in incidents
     ]
-    below = [cause_line(i["cause_key_text"], i["causes"]) for i in incidents]
+    below = [cause_line(i["cause_key_text"], i["causes"], i.get("affected_sessions")) for i in incidents]
     return _table(head, body, below)
 
 

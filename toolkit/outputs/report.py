@@ -27,7 +27,7 @@ from toolkit import __version__
 
 from toolkit.engine import warehouse
 from toolkit.sql.templates import template_folder
-from toolkit.model import Project
+from toolkit.model import Check, Project
 from toolkit.outputs.listings import (alerts_from, cause_line, count_or_dash, excess_share_text, incident_cause,
                                       incidents_from)
 
@@ -158,7 +158,7 @@ def _incident_card(project: Project, incident: dict[str, Any], shown: dict[str, 
         "incident": incident,
         "anchor": f"incident-{incident['incident_id']}",
         "cause": incident_cause(incident),
-        "excess": [_cause_text(c) for c in incident["causes"]],
+        "excess": [_cause_text(c, check) for c in incident["causes"]],
         "explained": explained,
         "figures": [
             ("status", incident["status"]),
@@ -178,11 +178,19 @@ def _incident_card(project: Project, incident: dict[str, Any], shown: dict[str, 
     }
 
 
-def _cause_text(cause: dict[str, Any]) -> str:
-    """'cdn=birch, country=DE: 69 failing sessions (1.5 expected), 81 % of the excess'."""
+def _cause_text(cause: dict[str, Any], check: Check | None) -> str:
+    """'cdn=birch, country=DE: 69 failing sessions (1.5 expected), 81 % of the excess'; what is
+    counted follows the measure (failing sessions of a rate, sessions beyond the threshold of a
+    quantile or a falling ratio, the numerator of a rising ratio)."""
     share = excess_share_text(cause["excess_share"])
-    return (f"{cause['key_text'] or '(all sessions)'}: {cause['bad']:,.0f} failing sessions "
-            f"({cause['expected']:,.1f} expected)" + (f", {share}" if share else ""))
+    where = cause["key_text"] or "the whole series (spread over every attribute value)"
+    if check is None or check.measure.kind == "rate":
+        counted = "failing sessions"
+    elif check.measure.kind == "quantile" or check.direction != "up":
+        counted = "sessions beyond the threshold"
+    else:
+        counted = "of the numerator"
+    return f"{where}: {cause['bad']:,.0f} {counted} ({cause['expected']:,.1f} expected)" + (f", {share}" if share else "")
 
 
 def _card(project: Project, alert: dict[str, Any], series: Series, earlier: int) -> dict[str, Any]:
@@ -214,7 +222,8 @@ def _card(project: Project, alert: dict[str, Any], series: Series, earlier: int)
             ("threshold at opening", (_format_for(None) if cusum else fmt)(alert["threshold"])),
             ("earlier alerts of this series", str(earlier)),
             ("incident", alert.get("incident_id") or "none"),
-            ("excess lies in", cause_line(alert["key_text"], alert.get("causes", [])) or "no cause found"),
+            ("excess lies in", cause_line(alert["key_text"], alert.get("causes", []), alert.get("affected_sessions"))
+             or "no cause found"),
             ("alert id", alert["alert_id"]),
             ("fingerprint", alert["fingerprint"]),
         ],
