@@ -16,7 +16,9 @@
 -- cause); following parents ends at a root, the incident's cause: an alert nothing explains.
 -- Better cause: more columns in its key (more specific), higher severity, more affected sessions,
 -- opened earlier, then the smaller alert_id, so every choice is deterministic.
--- The incident's id is made from its earliest alert's (earliest opened, then smallest alert_id).
+-- The incident's id is made from its earliest alert's (earliest opened; of alerts opened together,
+-- the cause, else the smallest alert_id): an alert that leaves an incident when its causes change
+-- does not take the incident's id with it when it opened with the cause.
 
 -- @statement incidents.group
 CREATE OR REPLACE TEMP TABLE incident_alerts AS
@@ -92,7 +94,8 @@ roots AS (
     GROUP BY u.alert_id
 )
 SELECT n.*, r.cause_alert_id,
-       first_value(n.alert_id) OVER (PARTITION BY r.cause_alert_id ORDER BY n.opened_at, n.alert_id) AS first_alert_id
+       first_value(n.alert_id) OVER (PARTITION BY r.cause_alert_id
+                                     ORDER BY n.opened_at, n.alert_id <> r.cause_alert_id, n.alert_id) AS first_alert_id
 FROM nodes AS n
 JOIN roots AS r USING (alert_id);
 

@@ -232,19 +232,20 @@ def test_the_page_opens_with_the_incidents(with_incidents: Path, tmp_path: Path)
     project = with_incidents
     out = tmp_path / "report.html"
     result = invoke("report", "--out", str(out), "-p", str(project))
-    assert result.exit_code == 0 and result.output.startswith(f"{out}: 8 alerts (3 open), 3 incidents, ")
+    assert result.exit_code == 0 and result.output.startswith(f"{out}: 8 alerts (3 open), 4 incidents, ")
     html = out.read_text()
     dom = parse(html)
-    assert dom.charts == 3 + 8  # each incident's cause, then each alert
+    assert dom.charts == 4 + 8  # each incident's cause, then each alert
     head = html[html.index('id="incidents"'):html.index('id="open"')]
-    assert "Incidents (3), newest first" in head
-    order = [head.index(f'id="incident-{i}"') for i in ("54f1a9fe05d4bea6", "63d519f975e17d6a", "4c07b99f730be766")]
+    assert "Incidents (4), newest first" in head
+    order = [head.index(f'id="incident-{i}"') for i in ("3a44a3b20dcbabd9", "54f1a9fe05d4bea6", "63d519f975e17d6a",
+                                                        "4c07b99f730be766")]
     assert order == sorted(order)
     birch = head[head.index('id="incident-4c07b99f730be766"'):]
     assert "cause: cdn_country cdn=birch, country=DE" in birch
     # only the cause alert's significant causes, never the rows below them
-    assert "<li>site=sport: 95 failing sessions (3.1 expected), 52 % of the excess</li>" in birch
-    assert "<li>site=news: 88 failing sessions (3.0 expected), 48 % of the excess</li>" in birch
+    assert "<li>site=sport: 95 failing sessions (2.1 expected), 52 % of the excess</li>" in birch
+    assert "<li>site=news: 88 failing sessions (3.2 expected), 48 % of the excess</li>" in birch
     assert "country=DE: 103" not in birch and "player=7.1" not in head
     # the alerts it explains link to their cards, and every link has its target on the page
     ids = dict(_query(project, "SELECT key_text || ' ' || strftime(opened_at, '%H:%M'), alert_id FROM alerts"))
@@ -257,7 +258,7 @@ def test_the_page_opens_with_the_incidents(with_incidents: Path, tmp_path: Path)
     # each alert's card names its incident and where its excess lies
     card = html[html.index(f'id="alert-{ids["site=news 16:30"]}"'):]
     assert "<dt>incident</dt><dd>4c07b99f730be766</dd>" in card
-    assert ("<dt>excess lies in</dt><dd>site=news: 88 failing sessions, 95 % of the excess in "
+    assert ("<dt>excess lies in</dt><dd>site=news: 107 sessions affected, 95 % of the excess in "
             "cdn=birch, country=DE</dd>") in card
 
 
@@ -272,10 +273,11 @@ def _query(project: Path, sql: str) -> list[tuple]:
 def test_the_incidents_follow_the_alerts_chosen(with_incidents: Path, tmp_path: Path) -> None:
     out = tmp_path / "late.html"
     result = invoke("report", "--out", str(out), "--since", "2026-11-03 05:00:00", "-p", str(with_incidents))
-    assert "4 alerts (3 open), 1 incidents" in result.output
+    assert "4 alerts (3 open), 2 incidents" in result.output
     html = out.read_text()
-    assert 'id="incident-54f1a9fe05d4bea6"' in html and "4c07b99f730be766" not in html
-    assert parse(html).charts == 1 + 4
+    assert 'id="incident-3a44a3b20dcbabd9"' in html and 'id="incident-54f1a9fe05d4bea6"' in html
+    assert "4c07b99f730be766" not in html
+    assert parse(html).charts == 2 + 4
 
 
 def test_a_report_without_incidents_says_so(tmp_path: Path, tmp_path_factory: pytest.TempPathFactory) -> None:
@@ -305,6 +307,6 @@ def test_the_incidents_page_in_a_headless_browser(with_incidents: Path, tmp_path
     page = open_page(out, tmp_path / "report.png")
     assert page.console == []
     dom = parse(page.dom)
-    assert dom.charts == 3 + 8
+    assert dom.charts == 4 + 8
     assert "script" not in dom.tags and "img" not in dom.tags
     assert any(HOSTILE_PLAYER in t for t in dom.text)
