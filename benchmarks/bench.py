@@ -379,6 +379,7 @@ SHOWN = {
     "title": "`plimsoll run --check title_errors`",
     "oracle": "the same check in plain Python and pandas (the test suite's oracle)",
     "catalogue": "`plimsoll run`, the whole catalogue of the demo",
+    "no_causes": "the same without `attributes`: no alert explained (causes are the difference)",
     "first_30_days": "the catalogue over the first 30 days",
     "increment": "`plimsoll run` after one more day lands",
 }

@@ -252,9 +252,13 @@ def _causes_and_incidents(con: duckdb.DuckDBPyConnection, run_id: int, checks: l
                           listings: dict[str, list[lake.LakeFile]], progress: Progress) -> None:
     """After every check: the causes of the alerts this run opened or grew (read from the files
     each check has read), then every alert grouped into incidents afresh; in the run's transaction."""
+    files: dict[str, list[str]] = {}
+
     def files_of(check: Check) -> list[str]:
-        read = {row[0] for row in _run_named(con, "begin.files_read_by", {"check": check.name}, fetch="all")}
-        return [f.where for f in listings.get(check.source.name, []) if f.path in read]
+        if check.name not in files:
+            read = {row[0] for row in _run_named(con, "begin.files_read_by", {"check": check.name}, fetch="all")}
+            files[check.name] = [f.where for f in listings.get(check.source.name, []) if f.path in read]
+        return files[check.name]
 
     def through_the_runner(on: duckdb.DuckDBPyConnection, statement: Statement, params: dict[str, Any]) -> Any:
         return _execute(on, "causes of the run's alerts", "causes", statement, params, fetch="all")
