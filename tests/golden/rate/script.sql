@@ -87,8 +87,12 @@ WHERE check_name = $check AND status = 'open' AND ($keep IS NULL OR definition_h
 
 -- @statement begin.forget_rebuilt_alerts
 -- A rebuild derives the alerts of the current definition $definition again, with the same ids: they
--- go, with their events. Alerts of earlier definitions stay as history.
+-- go, with their events and causes (the run explains them again). Alerts of earlier definitions stay
+-- as history.
 DELETE FROM alert_events
+WHERE alert_id IN (SELECT alert_id FROM alerts WHERE check_name = $check AND definition_hash = $definition);
+
+DELETE FROM alert_causes
 WHERE alert_id IN (SELECT alert_id FROM alerts WHERE check_name = $check AND definition_hash = $definition);
 
 DELETE FROM alerts WHERE check_name = $check AND definition_hash = $definition;
@@ -402,7 +406,8 @@ roots AS (
     GROUP BY u.alert_id
 )
 SELECT n.*, r.cause_alert_id,
-       first_value(n.alert_id) OVER (PARTITION BY r.cause_alert_id ORDER BY n.opened_at, n.alert_id) AS first_alert_id
+       first_value(n.alert_id) OVER (PARTITION BY r.cause_alert_id
+                                     ORDER BY n.opened_at, n.alert_id <> r.cause_alert_id, n.alert_id) AS first_alert_id
 FROM nodes AS n
 JOIN roots AS r USING (alert_id);
 
