@@ -234,8 +234,9 @@ def summary(outcome: DemoOutcome) -> str:
         f"Decoys alerted: {len(o.decoys_hit)}; other alerts during a labelled incident: {len(o.related)}; "
         f"alerts matching no label: {len(o.unlabelled)}",
         "",
-        "List the alerts, or query the warehouse straight away (any DuckDB client; the file is",
-        f"{o.workdir / 'warehouse.duckdb'}):",
+        "List the incidents and the alerts, or query the warehouse straight away (any DuckDB client; the",
+        f"file is {o.workdir / 'warehouse.duckdb'}):",
+        f"  {_command('plimsoll')} incidents -p {o.workdir / 'plimsoll.yml'}",
         f"  {_command('plimsoll')} alerts -p {o.workdir / 'plimsoll.yml'}",
         f"  {_command('python')} -c \"import duckdb; print(duckdb.connect('"
         f"{o.workdir / 'warehouse.duckdb'}', read_only=True).sql('SELECT check_name, key_text, opened_at, "
