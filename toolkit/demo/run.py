@@ -15,7 +15,7 @@ from pathlib import Path
 from typing import Any
 
 from toolkit.backtest.labels import Label, match_label, overlapping
-from toolkit.outputs.listings import alerts_from
+from toolkit.outputs.listings import alerts_from, cause_line, incidents_from
 from toolkit.problems import PlimsollError
 from toolkit.config.project import load_project
 from toolkit.engine.runner import RunResult, run
@@ -123,33 +123,15 @@ def build_and_run(workdir: Path, sessions: int = 2_000_000, seed: int = 7,
     con = connect(project, read_only=True)
     try:
         outcome.matches = [Match(a, match_label(a, labels), overlapping(a, labels)) for a in alerts_from(con)]
-        outcome.incidents = incidents_with_causes(con)
+        outcome.incidents = sorted(incidents_from(con), key=lambda i: (i["opened_at"], i["incident_id"]))
     finally:
         con.close()
     return outcome
 
 
-_INCIDENTS = """
-SELECT i.incident_id, i.opened_at, i.status, i.cause_alert_id, i.cause_check, i.cause_key_text, i.alerts,
-       i.affected_sessions, i.affected_viewers,
-       (SELECT list(c.key_text || ': ' || round(100 * c.excess_share)::INTEGER || ' %' ORDER BY c.rank)
-        FROM alert_causes AS c WHERE c.alert_id = i.cause_alert_id AND c.significant) AS answers,
-       (SELECT list(a.check_name || ' ' || a.key_text ORDER BY a.opened_at, a.alert_id)
-        FROM alerts AS a WHERE list_contains(i.alert_ids, a.alert_id) AND a.alert_id <> i.cause_alert_id) AS explained
-FROM incidents AS i
-ORDER BY i.opened_at, i.incident_id
-"""
-
-
-def incidents_with_causes(con: Any) -> list[dict[str, Any]]:
-    """The incidents, each with where its cause's excess lies and the alerts it explains."""
-    cursor = con.execute(_INCIDENTS)
-    names = [d[0] for d in cursor.description]
-    return [dict(zip(names, row)) for row in cursor.fetchall()]
-
-
 def _incident_lines(o: DemoOutcome) -> list[str]:
-    """Each incident: its cause, where the cause's excess lies, the alerts it explains, its label."""
+    """Each incident: its cause, where the cause's excess lies (as `plimsoll incidents` says it),
+    the alerts it explains, and the label its cause matches."""
     by_alert = {m.alert["alert_id"]: m for m in o.matches}
     lines = []
     for i in o.incidents:
@@ -162,10 +144,13 @@ def _incident_lines(o: DemoOutcome) -> list[str]:
         lines.append(f"  {i['opened_at']:%Y-%m-%d %H:%M}  {i['cause_check']} {i['cause_key_text']}: "
                      f"{i['affected_sessions'] or 0:,} sessions affected{viewers}, "
                      f"{i['alerts']} alert{'s' if i['alerts'] != 1 else ''}, {i['status']} - {verdict}")
-        if i["answers"]:
-            lines.append(f"      where: {'; '.join(i['answers'][:3])} of the excess")
-        if i["explained"]:
-            lines.append(f"      explains: {'; '.join(i['explained'])}")
+        where = cause_line(None, i["causes"])
+        if where:
+            lines.append(f"      where: {where.removeprefix('(all sessions): ')}")
+        explained = [f"{by_alert[a].alert['check_name']} {by_alert[a].alert['key_text']}"
+                     for a in i["alert_ids"] if a != i["cause_alert_id"] and a in by_alert]
+        if explained:
+            lines.append(f"      explains: {'; '.join(explained)}")
     return lines
 
 

@@ -11,7 +11,8 @@ from __future__ import annotations
 import itertools
 import math
 import json
-from collections.abc import Callable
+from collections.abc import Callable, Iterator
+from contextlib import contextmanager
 from dataclasses import dataclass
 from functools import lru_cache
 from datetime import datetime
@@ -373,13 +374,8 @@ def explain_alert(project: Project, alert_id: str, by: tuple[str, ...] = (), top
     check = _check(project, found.check_name)
     attributes = _attributes(check, by)
     files = [f.where for f in lake.list_source(check.source)]
-    con = duckdb.connect()
-    try:
-        if check.source.storage is not None:
-            storage.register(con, check.source.storage)
+    with _lake_connection(check) as con:
         causes = explain_windows(con, check, found, files, attributes, top)
-    finally:
-        con.close()
     start = found.explained[0][0]
     return Explanation(check.name, found.key_text, found.split_value, start, found.explained[-1][1], attributes,
                        len(found.history), causes, len(found.explained), _peers_by(check))
@@ -448,16 +444,23 @@ def _explain(project: Project, check: Check, key: dict[str, str], key_text: str,
     history = [(w[4], w[5]) for w in windows if w[3] < number and w[6] is False][-(check.baseline.history or 1):]
     cutoff = next((w[7] for w in windows if w[3] == number), None)
     files = [f.where for f in lake.list_source(check.source)]
+    with _lake_connection(check) as con:
+        causes = explain_rows(con, check, files, start, end, history, attributes, key, split_value, top=top,
+                              cutoff=cutoff)
+    return Explanation(check.name, key_text, split_value, start, end, attributes, len(history), causes,
+                       peers_by=_peers_by(check))
+
+
+@contextmanager
+def _lake_connection(check: Check) -> Iterator[duckdb.DuckDBPyConnection]:
+    """A connection of its own that reads ``check``'s source (its object storage registered)."""
     con = duckdb.connect()
     try:
         if check.source.storage is not None:
             storage.register(con, check.source.storage)
-        causes = explain_rows(con, check, files, start, end, history, attributes, key, split_value, top=top,
-                              cutoff=cutoff)
+        yield con
     finally:
         con.close()
-    return Explanation(check.name, key_text, split_value, start, end, attributes, len(history), causes,
-                       peers_by=_peers_by(check))
 
 
 def _peers_by(check: Check) -> tuple[str, ...]:
