@@ -43,3 +43,53 @@ FROM (
 WHERE isfinite(t) AND t <= $limits[file_index::BIGINT + 1]
 GROUP BY file_index;
 {% endif %}
+
+-- @statement lake.delta_added
+-- A Delta table's commits after the version a check read ($logs: their _delta_log/<version>.json
+-- files): the data files they appended (add actions with dataChange), each at its latest add,
+-- leaving out those a later commit removed as a change of data (deleted or rewritten before any run
+-- read them). Files removed since only by compaction (dataChange false) hold rows no run has
+-- counted: they are read from their own files while storage still holds them (still_held false).
+WITH actions AS (
+    SELECT regexp_extract(filename, '([0-9]+)\.json$', 1)::BIGINT AS version, json
+    FROM read_json_objects($logs, filename = true, format = 'newline_delimited')
+),
+added AS (
+    SELECT json ->> '$.add.path' AS path, (json ->> '$.add.size')::BIGINT AS size,
+           (json ->> '$.add.modificationTime')::BIGINT AS modified_ms, version,
+           (json ->> '$.add.deletionVector') IS NOT NULL AS deletion_vector
+    FROM actions
+    WHERE json ->> '$.add.path' IS NOT NULL AND coalesce((json ->> '$.add.dataChange')::BOOLEAN, true)
+    QUALIFY row_number() OVER (PARTITION BY json ->> '$.add.path' ORDER BY version DESC) = 1
+),
+removed AS (
+    SELECT json ->> '$.remove.path' AS path, version,
+           coalesce((json ->> '$.remove.dataChange')::BOOLEAN, true) AS data_change
+    FROM actions
+    WHERE json ->> '$.remove.path' IS NOT NULL
+)
+SELECT
+    a.path, a.size, a.modified_ms, a.version, a.deletion_vector,
+    NOT EXISTS (SELECT 1 FROM removed AS r WHERE r.path = a.path AND r.version > a.version) AS still_held
+FROM added AS a
+WHERE NOT EXISTS (SELECT 1 FROM removed AS r WHERE r.path = a.path AND r.version > a.version AND r.data_change)
+ORDER BY a.path;
+
+-- @statement lake.delta_changes
+-- The same commits' changes of data that a run reports: each commit that removed files as a
+-- change of data (a delete, update, merge or overwrite), with how many files it removed and wrote.
+WITH actions AS (
+    SELECT regexp_extract(filename, '([0-9]+)\.json$', 1)::BIGINT AS version, json
+    FROM read_json_objects($logs, filename = true, format = 'newline_delimited')
+)
+SELECT
+    version,
+    any_value(json ->> '$.commitInfo.operation') AS operation,
+    count(*) FILTER (WHERE json ->> '$.remove.path' IS NOT NULL
+                       AND coalesce((json ->> '$.remove.dataChange')::BOOLEAN, true)) AS removed,
+    count(*) FILTER (WHERE json ->> '$.add.path' IS NOT NULL
+                       AND coalesce((json ->> '$.add.dataChange')::BOOLEAN, true)) AS written
+FROM actions
+GROUP BY version
+HAVING removed > 0
+ORDER BY version;

@@ -96,6 +96,8 @@ DELETE FROM check_state WHERE check_name = $check;
 
 DELETE FROM files_read WHERE check_name = $check;
 
+DELETE FROM table_versions WHERE check_name = $check;
+
 DELETE FROM session_ids AS i
 WHERE NOT EXISTS (SELECT 1 FROM files_read AS f WHERE f.source_name = i.source_name AND f.path = i.first_path);
 
@@ -105,6 +107,10 @@ WHERE NOT EXISTS (SELECT 1 FROM files_read AS f WHERE f.source_name = i.source_n
 SELECT check_name, md5(string_agg(path, chr(10) ORDER BY path)) AS history
 FROM files_read
 GROUP BY check_name;
+
+-- @statement begin.table_versions
+-- How far each check has read its Delta or Iceberg source: it reads on from there.
+SELECT check_name, table_version, snapshot_id, complete FROM table_versions;
 
 -- @statement begin.files_read_by
 -- The files $check has read: the others in its source's listing are new.
@@ -171,6 +177,13 @@ WHERE run_id = $run_id AND check_name = $check
 RETURNING rows_read, windows_written, alerts_opened, alerts_closed;
 
 -- ════ the run ends ════
+
+-- @statement end.table_version
+-- How far $check has now read its Delta or Iceberg source ($source, $format): up to $version
+-- ($snapshot_id), in full unless $complete is false.
+DELETE FROM table_versions WHERE check_name = $check;
+
+INSERT INTO table_versions VALUES ($check, $source, $format, $version, $snapshot_id, $complete, $run_id);
 
 -- @statement end.repeats
 -- Valid sessions read, and those that repeated sessions already counted: a run of mostly repeats

@@ -48,6 +48,20 @@ CREATE TABLE IF NOT EXISTS files_read (
     PRIMARY KEY (check_name, path)
 );
 
+-- What each check has read of a Delta or Iceberg source: every commit up to table_version (a Delta
+-- version, an Iceberg snapshot's sequence number; snapshot_id names the Iceberg snapshot), written in
+-- the run's transaction with the files read. complete is false while a first read of the table's
+-- snapshot at that version is left in part to the next runs (a backlog).
+CREATE TABLE IF NOT EXISTS table_versions (
+    check_name VARCHAR PRIMARY KEY,
+    source_name VARCHAR,
+    table_format VARCHAR,            -- 'delta' | 'iceberg'
+    table_version BIGINT,
+    snapshot_id BIGINT,
+    complete BOOLEAN,
+    run_id BIGINT
+);
+
 CREATE TABLE IF NOT EXISTS changed_files (  -- a file whose size or time differs from when it was read
     run_id BIGINT,                   -- the run that noticed it
     check_name VARCHAR,

@@ -160,6 +160,7 @@ KEY_TABLES = {
     "WEBHOOK_KEYS": r"Each webhook \(`webhooks:` is a list\):",
     "NOTIFY_KEYS": r"`notify`:",
     "STORAGE_KEYS": r"`storage` \(.*\):",
+    "CATALOG_KEYS": r"`iceberg_catalog`:",
     "CHECK_KEYS": r"### Check files",
     "WINDOW_KEYS": r"`window`: .*",
     "GUARD_KEYS": r"`guard`:",

@@ -316,3 +316,34 @@ def test_an_error_raised_inside_s3fs_reads_as_its_exception_line():
                           "LINE 1: SELECT * FROM read_parquet(...)")
     assert engine_message(raised) == "FileNotFoundError: The specified key does not exist."
     assert engine_message(duckdb.Error("Binder Error: column x\nLINE 1: ...")) == "Binder Error: column x"
+
+
+def test_a_delta_table_in_s3_is_read_by_version_as_a_local_one_is(tmp_path, endpoint, bucket):
+    """format: delta on s3://: the table opened by delta-rs and its log read by DuckDB, both through
+    the project's storage settings; an append, a compaction and an append read as loose files."""
+    import pyarrow.parquet as pq
+    from deltalake import DeltaTable, write_deltalake
+
+    name, _client = bucket
+    url = f"s3://{name}/sessions_delta"
+    writer = {"AWS_ENDPOINT_URL": endpoint, "AWS_ALLOW_HTTP": "true", "AWS_REGION": "eu-west-1",
+              "AWS_ACCESS_KEY_ID": "fernhill-test-key", "AWS_SECRET_ACCESS_KEY": "fernhill-test-secret",
+              "AWS_S3_ALLOW_UNSAFE_RENAME": "true"}
+    days = [pq.read_table(FIXTURE_LAKE / day / "part-0.parquet") for day in DAYS]
+    remote = project(tmp_path / "remote", endpoint, url,
+                     body=PROJECT.replace("    path: {path}\n", "    format: delta\n    path: {path}\n"))
+    write_deltalake(url, days[0], storage_options=writer)
+    run(load_project(remote))
+    write_deltalake(url, days[1], mode="append", storage_options=writer)
+    DeltaTable(url, storage_options=writer).optimize.compact()
+    done = run(load_project(remote))
+    assert done.files_read == 1     # the appended file; not the compacted one
+
+    local = project(tmp_path / "local", "unused", "lake/", body=WITHOUT_STORAGE)
+    (tmp_path / "local" / "lake").mkdir()
+    shutil.copyfile(FIXTURE_LAKE / DAYS[0] / "part-0.parquet", tmp_path / "local" / "lake" / "a.parquet")
+    run(load_project(local))
+    shutil.copyfile(FIXTURE_LAKE / DAYS[1] / "part-0.parquet", tmp_path / "local" / "lake" / "b.parquet")
+    run(load_project(local))
+    windows, alerts = results(remote)
+    assert windows and (windows, alerts) == results(local)

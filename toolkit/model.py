@@ -53,6 +53,17 @@ class Storage:
 
 
 @dataclass(frozen=True)
+class Catalog:
+    """An Iceberg catalog (``iceberg_catalog``): a SQL catalog at a SQLAlchemy URL (e.g. a SQLite
+    file) or a REST catalog at an http(s) URL, with pyiceberg's further properties."""
+
+    uri: str
+    warehouse: str | None = None
+    name: str = "plimsoll"
+    properties: tuple[tuple[str, str], ...] = ()
+
+
+@dataclass(frozen=True)
 class Source:
     """A table of sessions in the lake, and the engine that reads it (the project's)."""
 
@@ -80,6 +91,10 @@ class Source:
     viewer_id: str | None = None
     # the columns `plimsoll explain` drills into
     attributes: tuple[str, ...] = ()
+    # parquet: a folder of files, read by listing; delta or iceberg: a table, read by version
+    format: str = "parquet"
+    table: str | None = None         # iceberg: the table's identifier in the catalog (namespace.name)
+    catalog: Catalog | None = None   # iceberg: the project's catalog
 
     @property
     def time_columns(self) -> tuple[str, ...]:

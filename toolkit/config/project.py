@@ -16,7 +16,7 @@ import duckdb
 from toolkit.config.checks import load_checks
 from toolkit.config.fields import Section, size_of
 from toolkit.config.registry import NOTIFY_KEYS, PROJECT_KEYS
-from toolkit.config.sources import engine_settings, load_sources, storage_settings
+from toolkit.config.sources import catalog_settings, engine_settings, load_sources, storage_settings
 from toolkit.config.webhooks import load_webhooks
 from toolkit.config.yamlsource import load
 from toolkit.model import Check, Notify, Project
@@ -41,8 +41,10 @@ def load_project(path: Path | str = "plimsoll.yml", check_schema: bool = True) -
     max_read = size_of(top, "max_read_per_run")
     engine = engine_settings(top)
     settings = storage_settings(doc, top.get("storage"), problems)
+    catalog = catalog_settings(doc, top.get("iceberg_catalog"), root, problems)
     con = duckdb.connect()
-    sources = load_sources(doc, top.get("sources") or {}, root, con, problems, check_schema, engine, settings)
+    sources = load_sources(doc, top.get("sources") or {}, root, con, problems, check_schema, engine, settings,
+                           catalog)
     checks: dict[str, Check] = {}
     folder = (root / (checks_dir or "checks/")).resolve()
     if checks_dir is not None and not folder.is_dir():

@@ -171,6 +171,18 @@ PROJECT_KEYS = (
         "(default local[*])"),
     Key("spark_conf", "mapping", "engine spark: Spark settings for the session, e.g. spark.executor.memory: 4g"),
     Key("storage", "mapping", "how s3:// sources are reached: endpoint, region, credentials"),
+    Key("iceberg_catalog", "mapping", "the Iceberg catalog that format: iceberg sources' tables are in"),
+)
+
+
+CATALOG_KEYS = (
+    Key("uri", "text", "a SQL catalog's SQLAlchemy URL (e.g. sqlite:///catalog.db, relative to plimsoll.yml) or "
+        "a REST catalog's http(s):// URL", True),
+    Key("warehouse", "text", "where the catalog keeps new tables' files (a folder or s3:// URL); needed by "
+        "some catalogs, not for reading"),
+    Key("name", "text", "the catalog's name", False, "plimsoll"),
+    Key("properties", "mapping", "further catalog properties, as pyiceberg names them (e.g. s3.endpoint, "
+        "token); values are text"),
 )
 
 
@@ -212,7 +224,12 @@ STORAGE_KEYS = (
 
 
 SOURCE_KEYS = (
-    Key("path", "text", "folder, glob or file of Parquet, or an s3:// URL of them; hive partitions are read", True),
+    Key("path", "text", "folder, glob or file of Parquet, or an s3:// URL of them; hive partitions are read; "
+        "format delta: the table's folder or s3:// URL (required unless format is iceberg)"),
+    Key("format", "choice", "parquet: loose files, read by listing; delta or iceberg: a table, read by version "
+        "(each run reads what the commits after the last version read added)", False, "parquet",
+        ("parquet", "delta", "iceberg")),
+    Key("table", "text", "format iceberg: the table's identifier in iceberg_catalog, e.g. fernhill.sessions"),
     Key("session_id", "column", "unique per session: duplicates are counted once", True),
     Key("event_time", "expr", "the data time that orders sessions and closes windows: a timestamp column, "
         "or an expression giving one (e.g. epoch_ms(ended_ms), ended_iso::TIMESTAMP)", True),

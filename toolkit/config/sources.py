@@ -11,12 +11,14 @@ import duckdb
 
 from toolkit.config.expressions import unknown_column
 from toolkit.config.fields import NAME, Section, kind_of
-from toolkit.config.registry import SOURCE_KEYS, STORAGE_KEYS
+from toolkit.config.registry import CATALOG_KEYS, SOURCE_KEYS, STORAGE_KEYS
 from toolkit.config.schema import Binder
 from toolkit.config.yamlsource import Located
 from toolkit.lake import files as lake
 from toolkit.lake import storage
-from toolkit.model import Engine, Source, Storage
+from toolkit.lake import tables
+from toolkit.model import Catalog, Engine, Source, Storage
+from toolkit.problems import DataError
 from toolkit.problems import Problem, engine_message
 
 
@@ -54,6 +56,42 @@ def storage_settings(doc: Located, raw: Any, problems: list[Problem]) -> Storage
     return Storage(**{k: v for k, v in values.items() if v is not None})
 
 
+def catalog_settings(doc: Located, raw: Any, root: Path, problems: list[Problem]) -> Catalog | None:
+    """The ``iceberg_catalog`` mapping; a SQLite file or local warehouse relative to plimsoll.yml."""
+    if raw is None:
+        return None
+    section = Section(doc, ("iceberg_catalog",), raw, CATALOG_KEYS, problems)
+    uri, warehouse = section.get("uri"), section.get("warehouse")
+    if uri is None:
+        return None
+    if uri.startswith("sqlite:///") and not uri.startswith("sqlite:////"):
+        uri = "sqlite:///" + str(root / uri[len("sqlite:///"):])
+    if warehouse and "://" not in warehouse:
+        warehouse = "file://" + str(root / warehouse)
+    properties = []
+    for key, value in (section.get("properties") or {}).items():
+        if isinstance(value, (dict, list)) or value is None:
+            section.error(("iceberg_catalog", "properties", key),
+                          f"iceberg_catalog.properties.{key}: expected one value, got {kind_of(value)}")
+        else:
+            properties.append((str(key), str(value).lower() if isinstance(value, bool) else str(value)))
+    return Catalog(uri, warehouse, section.get("name") or "plimsoll", tuple(properties))
+
+
+def _table_files(section: Section, name: str, source: Source) -> tuple[list[str] | None, str]:
+    """A Delta or Iceberg source's current data files, and where its files lie (the table's root);
+    None after a problem."""
+    try:
+        listing = tables.listing(source)
+    except DataError as err:
+        section.error((*section.path, "table" if source.format == "iceberg" else "path"), str(err))
+        return None, source.path
+    root = source.path
+    if source.format == "iceberg":
+        root = tables.iceberg_root(listing)
+    return [f.where for f in listing.active], root
+
+
 def _remote_files(section: Section, name: str, where: str, settings: Storage | None,
                   con: duckdb.DuckDBPyConnection) -> list[str] | None:
     """The source's object URLs, with the filesystem registered on ``con``; None after a problem."""
@@ -75,7 +113,7 @@ def _remote_files(section: Section, name: str, where: str, settings: Storage | N
 
 def load_sources(doc: Located, raw: dict[str, Any], root: Path, con: duckdb.DuckDBPyConnection,
                   problems: list[Problem], check_schema: bool, engine: Engine,
-                  settings: Storage | None) -> dict[str, Source]:
+                  settings: Storage | None, catalog: Catalog | None = None) -> dict[str, Source]:
     sources: dict[str, Source] = {}
     if not raw:
         problems.append(Problem(doc.file, doc.line(("sources",)), "at least one source is needed"))
@@ -87,9 +125,30 @@ def load_sources(doc: Located, raw: dict[str, Any], root: Path, con: duckdb.Duck
         session_id, event_time, exclude = section.get("session_id"), section.get("event_time"), section.get("exclude")
         limits = {"max_future": section.get("max_future"), "dedup_horizon": section.get("dedup_horizon")}
         limits = {k: v for k, v in limits.items() if v is not None}
+        fmt, table = section.get("format") or "parquet", section.get("table")
+        if fmt == "iceberg":
+            if table is None:
+                section.error((*section.path, "format"), f"source '{name}': format: iceberg needs table "
+                              "(the table's identifier in iceberg_catalog, e.g. fernhill.sessions)")
+                continue
+            if catalog is None:
+                section.error((*section.path, "format"), f"source '{name}': format: iceberg needs "
+                              "iceberg_catalog in plimsoll.yml (uri: sqlite:///catalog.db or a REST URL)")
+                continue
+            if where is not None:
+                section.error((*section.path, "path"), f"source '{name}': an iceberg source is found by its "
+                              "table in the catalog; leave path out")
+                continue
+            where = f"iceberg:{table}"
+        else:
+            if table is not None:
+                section.error((*section.path, "table"), f"source '{name}': table applies to format: iceberg")
+            if where is None:
+                section.error(section.path, f"'sources.{name}': 'path' is required")
+                continue
         if where is None:
             continue
-        location = where if "://" in where else str((root / where))
+        location = where if "://" in where or fmt == "iceberg" else str((root / where))
         remote = storage.is_remote(location)
         if "://" in where and not remote:
             section.error((*section.path, "path"), f"source '{name}': only local paths and s3:// URLs "
@@ -97,17 +156,41 @@ def load_sources(doc: Located, raw: dict[str, Any], root: Path, con: duckdb.Duck
             sources[name] = Source(name, location, session_id or "", event_time or "", None, {})
             continue
         common = {"engine": engine, "storage": settings if remote else None, "base": lake.base_of(location),
-                  "attributes": tuple(section.get("attributes") or ()), **limits}
+                  "attributes": tuple(section.get("attributes") or ()), "format": fmt, "table": table,
+                  "catalog": catalog if fmt == "iceberg" else None, **limits}
+        if fmt != "parquet":
+            common["base"] = location.rstrip("/")
+            if fmt == "iceberg":
+                common["storage"] = settings
+            if fmt == "delta" and not tables.available("delta"):
+                section.error((*section.path, "format"), f"source '{name}': {tables.DELTA_HINT}")
+                continue
+            if fmt == "iceberg" and not tables.available("iceberg"):
+                section.error((*section.path, "format"), f"source '{name}': {tables.ICEBERG_HINT}")
+                continue
         columns: dict[str, str] = {}
         if check_schema:
-            files = (_remote_files(section, name, location, settings, con) if remote
-                     else [f.path for f in lake.list_files(location)])
+            if fmt != "parquet":
+                draft = Source(name, location, session_id or "", event_time or "", None, {}, **common)
+                files, table_root = _table_files(section, name, draft)
+                if files is not None and table_root != location:
+                    location, common["base"] = table_root, table_root
+                    if storage.is_remote(table_root):
+                        storage.register(con, settings)
+            else:
+                files = (_remote_files(section, name, location, settings, con) if remote
+                         else [f.path for f in lake.list_files(location)])
             unreadable = None
-            if files == []:
+            if files == [] and fmt != "parquet":
+                unreadable = f"source '{name}': the {fmt} table at '{where}' has no data files yet"
+            elif files == []:
                 unreadable = f"source '{name}': no Parquet files at '{where}'"
             elif files is not None:
                 try:
-                    columns = _readable_schema(con, files, settings if remote else None)
+                    remote_files = any(storage.is_remote(f) for f in files)
+                    if remote_files and fmt != "parquet":
+                        storage.register(con, settings)
+                    columns = _readable_schema(con, files, settings if remote_files else None)
                 except duckdb.Error as err:
                     unreadable = f"source '{name}': cannot read Parquet schema: {engine_message(err)}"
             if unreadable:

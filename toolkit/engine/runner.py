@@ -28,6 +28,7 @@ from typing import Any
 import duckdb
 
 from toolkit.lake import files as lake
+from toolkit.lake import tables
 
 from toolkit.engine import spark as spark_engine
 
@@ -189,7 +190,7 @@ def _run(con: duckdb.DuckDBPyConnection, project: Project, run_id: int, checks: 
         _retire_removed(con, project, run_id, progress)
         if rebuild:
             _forget(con, checks, compiled, run_id)
-        groups, result.more = _groups(con, checks, compiled, listings, budget)
+        groups, result.more = _groups(con, checks, compiled, listings, budget, result.warnings)
         result.changed_files = _note_changes(con, run_id, checks, listings)
         for change in result.changed_files:
             progress(f"changed after it was read, not read again: {change}")
@@ -213,6 +214,8 @@ def _run(con: duckdb.DuckDBPyConnection, project: Project, run_id: int, checks: 
                 params = _params(project, new_files, run_id, sql.definition_hash, check.name, group.read_until,
                                  check.source)
                 result.checks.append(_run_check(con, stages, check, sql, new_files, params))
+                if check.name in group.versions:
+                    _record_version(con, check, group.versions[check.name], run_id)
                 done = result.checks[-1]
                 progress(f"{step}: {_plural(done.files_read, 'file')}, {_plural(done.windows_written, 'window')}, "
                          f"alerts opened {done.alerts_opened}, closed {done.alerts_closed}")
@@ -255,6 +258,9 @@ def _causes_and_incidents(con: duckdb.DuckDBPyConnection, run_id: int, checks: l
     files: dict[str, list[str]] = {}
 
     def files_of(check: Check) -> list[str]:
+        if check.name not in files and tables.is_table(check.source):
+            # a table's files are rewritten by compaction: its current files hold what the check read
+            files[check.name] = [f.where for f in listings.get(check.source.name, [])]
         if check.name not in files:
             read = {row[0] for row in _run_named(con, "begin.files_read_by", {"check": check.name}, fetch="all")}
             files[check.name] = [f.where for f in listings.get(check.source.name, []) if f.path in read]
@@ -481,26 +487,43 @@ class Group:
     checks: list[tuple[Check, CompiledCheck]]
     files: list[lake.LakeFile]
     read_until: datetime | None = None
+    # a Delta or Iceberg source: how far each check will have read the table once the run commits
+    versions: dict[str, tables.TableState] = field(default_factory=dict)
 
 
 def _groups(con: duckdb.DuckDBPyConnection, checks: list[Check], compiled: list[CompiledCheck],
-            listings: dict[str, list[lake.LakeFile]], budget: int) -> tuple[list[Group], bool]:
+            listings: dict[str, list[lake.LakeFile]], budget: int, notes: list[str]) -> tuple[list[Group], bool]:
     """The run's groups, and whether any check has more new files than ``budget`` bytes of them
     (read by a next run).
 
     A check takes its new files up to ``budget``, and at least one. When they do not all fit, it
     takes them in data-time order (by each file's earliest event time), so the first of several
     runs never reads one partition's last day before another's first; ``read_until``, the
-    earliest event time of the files it leaves, then bounds the run's watermark."""
+    earliest event time of the files it leaves, then bounds the run's watermark.
+
+    A Delta or Iceberg source's candidates are what the commits after the check's recorded
+    version added (:mod:`toolkit.lake.tables`); what those commits report goes to ``notes``."""
     history = dict(_run_named(con, "begin.read_histories", {}, fetch="all"))
+    versions = {name: tables.TableState(int(version), snapshot, bool(complete))
+                for name, version, snapshot, complete in _run_named(con, "begin.table_versions", {}, fetch="all")}
+    found: dict[str, tables.TableListing] = {}
     groups: dict[tuple[str, tuple[str, ...], str | None], Group] = {}
     more = False
     for check, sql in zip(checks, compiled):
         source = check.source
-        if source.name not in listings:
-            listings[source.name] = lake.list_source(source)
+        if tables.is_table(source):
+            if source.name not in found:
+                found[source.name] = tables.listing(source)
+                listings[source.name] = found[source.name].active
+            reading = found[source.name].since(versions.get(check.name))
+            notes.extend(n for n in reading.notes if n not in notes)
+            candidates = reading.files
+        else:
+            if source.name not in listings:
+                listings[source.name] = lake.list_source(source)
+            candidates = listings[source.name]
         seen = {row[0] for row in _run_named(con, "begin.files_read_by", {"check": check.name}, fetch="all")}
-        new = sorted((f for f in listings[source.name] if f.path not in seen), key=lambda f: f.path)
+        new = sorted((f for f in candidates if f.path not in seen), key=lambda f: f.path)
         taken, read_until = new, None
         if sum(f.size for f in new) > budget and len(new) > 1:
             taken, read_until = _first_by_data_time(con, source, new, budget)
@@ -508,7 +531,26 @@ def _groups(con: duckdb.DuckDBPyConnection, checks: list[Check], compiled: list[
         key = (source.name, tuple(f.path for f in taken), history.get(check.name))
         group = groups.setdefault(key, Group([], sorted(taken, key=lambda f: f.path), read_until))
         group.checks.append((check, sql))
+        if source.name in found:
+            group.versions[check.name] = _read_to(found[source.name], versions.get(check.name), len(taken) == len(new))
     return list(groups.values()), more
+
+
+def _read_to(table: tables.TableListing, before: tables.TableState | None, all_taken: bool) -> tables.TableState:
+    """How far a check has read a table after this run: to the table's version when it took every
+    file it had to read; else where it was, or, on its first read, the snapshot it began (in part)."""
+    if all_taken:
+        return table.state
+    if before is None:
+        return tables.TableState(table.version, table.snapshot_id, complete=False)
+    return before
+
+
+def _record_version(con: duckdb.DuckDBPyConnection, check: Check, state: tables.TableState, run_id: int) -> None:
+    _run_named(con, "end.table_version", {"check": check.name, "source": check.source.name,
+                                          "format": check.source.format, "version": state.version,
+                                          "snapshot_id": state.snapshot_id, "complete": state.complete,
+                                          "run_id": run_id})
 
 
 def _first_by_data_time(con: duckdb.DuckDBPyConnection, source: Source, new: list[lake.LakeFile],

@@ -28,11 +28,12 @@ from toolkit.problems import DataError, RunLocked, WarehouseError, engine_messag
 
 TABLES = ("runs", "run_checks", "files_read", "changed_files", "source_columns", "session_ids",
           "check_state", "key_state", "carry", "key_windows", "windows", "alerts", "alert_events",
-          "alert_causes", "incidents", "incident_events", "schema_version")
+          "alert_causes", "incidents", "incident_events", "table_versions", "schema_version")
 # The layout this release writes (the schema_version table): 2 names files relative to their
 # source, 3 renames columns (CHANGELOG.md), 4 adds the impact columns (queries/migrate_4.sql), 5
-# adds causes and incidents (new tables and alerts.incident_id; the next run fills them).
-SCHEMA_VERSION = 5
+# adds causes and incidents (new tables and alerts.incident_id; the next run fills them), 6 the
+# table versions Delta and Iceberg sources are read by.
+SCHEMA_VERSION = 6
 POLL_SECONDS = 0.25
 # A run's temp tables live until its one transaction commits, so without a limit its memory grows
 # with checks x sessions; at this limit DuckDB spills to disk instead. The limit bounds DuckDB's
@@ -194,7 +195,12 @@ def _layout_5(con: duckdb.DuckDBPyConnection, project: Project) -> None:
     run groups the alerts into incidents afresh."""
 
 
-_MIGRATIONS = ((2, _layout_2), (3, _layout_3), (4, _layout_4), (5, _layout_5))
+def _layout_6(con: duckdb.DuckDBPyConnection, project: Project) -> None:
+    """Layout 5 to 6: table_versions is new (queries/warehouse.sql made it); until then every source
+    was Parquet, read by listing, so there is nothing to fill."""
+
+
+_MIGRATIONS = ((2, _layout_2), (3, _layout_3), (4, _layout_4), (5, _layout_5), (6, _layout_6))
 
 
 def _adopt_definitions(con: duckdb.DuckDBPyConnection, project: Project) -> None:

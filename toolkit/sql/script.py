@@ -113,7 +113,9 @@ def script(source: Source, stages: tuple[Stage, ...]) -> str:
               "changed', for alerts of earlier definitions), begin.forget_rebuilt_alerts and begin.drop_state"),
         run.text("begin.close_alerts", "begin.forget_rebuilt_alerts", "begin.drop_state"),
         _note("which files are new for each check"),
-        run.text("begin.read_histories", "begin.files_read_by"),
+        run.text("begin.read_histories", "begin.table_versions", "begin.files_read_by"),
+        *([_note("a Delta table: its commits after the version the check read (on a connection of their own)"),
+           lake.text("lake.delta_added", "lake.delta_changes")] if source.format == "delta" else []),
         _note("a backlog larger than max_read_per_run: the new files in data-time order"),
         lake.text("lake.first_event_times"),
         run.text("begin.note_changed_files"),
@@ -129,6 +131,7 @@ def script(source: Source, stages: tuple[Stage, ...]) -> str:
     parts += [
         _heading("the check's record", "how many rounds its verdicts took, and what it did"),
         run.text("check."),
+        *([run.text("end.table_version")] if source.format in ("delta", "iceberg") else []),
         _heading(RUN_ENDS, "its record, and the commit"),
         run.text("end.repeats", "end.record", "end.files_read", "end.commit"),
         _note("a run that fails rolls back, then writes its 'failed' record alone: begin.transaction, "

@@ -112,6 +112,8 @@ DELETE FROM check_state WHERE check_name = $check;
 
 DELETE FROM files_read WHERE check_name = $check;
 
+DELETE FROM table_versions WHERE check_name = $check;
+
 DELETE FROM session_ids AS i
 WHERE NOT EXISTS (SELECT 1 FROM files_read AS f WHERE f.source_name = i.source_name AND f.path = i.first_path);
 
@@ -123,6 +125,10 @@ WHERE NOT EXISTS (SELECT 1 FROM files_read AS f WHERE f.source_name = i.source_n
 SELECT check_name, md5(string_agg(path, chr(10) ORDER BY path)) AS history
 FROM files_read
 GROUP BY check_name;
+
+-- @statement begin.table_versions
+-- How far each check has read its Delta or Iceberg source: it reads on from there.
+SELECT check_name, table_version, snapshot_id, complete FROM table_versions;
 
 -- @statement begin.files_read_by
 -- The files $check has read: the others in its source's listing are new.

@@ -1,0 +1,286 @@
+"""Delta Lake and Iceberg sources are read exactly once by table version.
+
+A table's files are appended, compacted (the same rows rewritten into new files), deleted from and
+vacuumed by its writers. Plimsoll reads what each commit after the last version read added, so the
+windows and alerts of a table source equal those of the same sessions arriving as loose Parquet
+files, whatever the commits between two runs and however many runs were skipped; a run killed with
+SIGKILL changes nothing, and the rerun reads what it would have read.
+
+The sessions are the shared 300,000-session Fernhill lake's (21 days, cut into four batches of
+days), through three catalogue checks: time windows of a rate and of a quantile, and count windows.
+"""
+
+from __future__ import annotations
+
+import os
+import shutil
+import signal
+import subprocess
+import time
+from pathlib import Path
+
+import duckdb
+import pyarrow as pa
+import pyarrow.parquet as pq
+import pytest
+from conftest import plimsoll_command, warehouse_contents
+from table_lake import DeltaLake, IcebergLake, day_batches
+
+from toolkit.config.project import load_project
+from toolkit.demo.run import PROJECT_YML
+from toolkit.engine.runner import run
+from toolkit.problems import ProjectInvalid
+
+CHECKS = ("site_errors.yml", "startup_time_by_device.yml", "title_errors.yml")
+CATALOGUE = Path(__file__).parent.parent / "checks"
+DELETED = "site = 'kids'"
+
+
+@pytest.fixture(scope="module")
+def batches(fernhill_lake) -> list[pa.Table]:
+    """The shared lake's sessions in four batches of consecutive days."""
+    return day_batches(fernhill_lake.days(), (6, 11, 16))
+
+
+def write_project(folder: Path, source: str, top: str = "") -> Path:
+    """The demo project's source, read from ``source`` (its format and where), with two checks."""
+    folder.mkdir(parents=True, exist_ok=True)
+    text = PROJECT_YML.replace("    path: lake/sessions/\n", source)
+    (folder / "plimsoll.yml").write_text(text + top, encoding="utf-8")
+    (folder / "checks").mkdir(exist_ok=True)
+    for name in CHECKS:
+        shutil.copyfile(CATALOGUE / name, folder / "checks" / name)
+    return folder / "plimsoll.yml"
+
+
+def results(project: Path) -> dict[str, list[tuple]]:
+    """What analysts read: the windows and the alerts, without run ids."""
+    con = duckdb.connect(str(project.parent / "warehouse.duckdb"), read_only=True)
+    try:
+        return {
+            "windows": con.execute("SELECT check_name, key_text, split_value, window_start, window_end, sessions, "
+                                   "bad, value, threshold, breach FROM windows ORDER BY ALL").fetchall(),
+            "alerts": con.execute("SELECT alert_id, check_name, key_text, status, close_reason, opened_at, closed_at, "
+                                  "breach_windows, affected_sessions, peak_value FROM alerts ORDER BY ALL").fetchall(),
+        }
+    finally:
+        con.close()
+
+
+class Plain:
+    """The reference: the same sessions as loose Parquet files, one per batch."""
+
+    def __init__(self, folder: Path):
+        self.lake = folder / "lake"
+        self.lake.mkdir(parents=True)
+        self.count = 0
+
+    def source(self) -> str:
+        return f"    path: {self.lake}/\n"
+
+    def append(self, batch: pa.Table) -> None:
+        pq.write_table(batch, self.lake / f"batch-{self.count}.parquet")
+        self.count += 1
+
+
+def table_of(fmt: str, folder: Path):
+    return DeltaLake(folder / "delta") if fmt == "delta" else IcebergLake(folder / "iceberg")
+
+
+def project_of(fmt: str, folder: Path, table) -> Path:
+    return write_project(folder, table.source(), table.catalog_yml() if fmt == "iceberg" else "")
+
+
+def run_project(project: Path) -> list[str]:
+    """One `plimsoll run` through the API; its warnings."""
+    return run(load_project(project)).warnings
+
+
+def without_kids(batch: pa.Table) -> pa.Table:
+    import pyarrow.compute as pc
+
+    return batch.filter(pc.invert(pc.equal(batch["site"], "kids")))
+
+
+@pytest.mark.parametrize("fmt", ["delta", "iceberg"])
+def test_append_append_compact_append_delete_append_gives_what_loose_files_give(
+        fmt: str, batches: list[pa.Table], tmp_path: Path) -> None:
+    table = table_of(fmt, tmp_path / "table")
+    project = project_of(fmt, tmp_path / "table", table)
+    plain = Plain(tmp_path / "plain")
+    reference = write_project(tmp_path / "plain", plain.source())
+
+    table.append(batches[0])
+    plain.append(batches[0])
+    run_project(project)
+    run_project(reference)
+    table.append(batches[1])
+    table.compact()             # no run between the append and the compaction: it was skipped
+    plain.append(batches[1])
+    run_project(project)
+    run_project(reference)
+    table.append(batches[2])
+    plain.append(batches[2])
+    run_project(project)
+    run_project(reference)
+    table.delete(DELETED)       # sessions already counted: not un-counted
+    table.append(batches[3])    # and the run after the delete skipped
+    plain.append(batches[3])
+    warnings = run_project(project)
+    run_project(reference)
+    assert any("not un-counted" in w for w in warnings), warnings
+    assert not any("was the lake copied" in w for w in warnings), warnings
+    assert run_project(project) == []   # nothing new, nothing reported twice
+
+    con = duckdb.connect(str(project.parent / "warehouse.duckdb"), read_only=True)
+    read = con.execute("SELECT run_id, rows_read FROM runs ORDER BY run_id").fetchall()
+    con.close()
+    # each run read the sessions its commits appended, the compaction nothing; only the delete's
+    # rewritten files are read again, their sessions known by their ids
+    assert [rows for _, rows in read[:3]] == [batches[0].num_rows, batches[1].num_rows, batches[2].num_rows]
+    assert read[3][1] > batches[3].num_rows
+
+    got, want = results(project), results(reference)
+    assert len(want["windows"]) > 1000 and len(want["alerts"]) >= 1
+    assert got == want
+    con = duckdb.connect(str(project.parent / "warehouse.duckdb"), read_only=True)
+    versions = con.execute("SELECT DISTINCT table_version, complete FROM table_versions").fetchall()
+    con.close()
+    assert versions == [(table.version(), True)]
+
+
+@pytest.mark.parametrize("fmt", ["delta", "iceberg"])
+def test_sessions_deleted_before_any_run_read_them_are_never_counted(
+        fmt: str, batches: list[pa.Table], tmp_path: Path) -> None:
+    table = table_of(fmt, tmp_path / "table")
+    project = project_of(fmt, tmp_path / "table", table)
+    plain = Plain(tmp_path / "plain")
+    reference = write_project(tmp_path / "plain", plain.source())
+    table.append(batches[0])
+    plain.append(batches[0])
+    run_project(project)
+    run_project(reference)
+    table.append(batches[1])
+    table.delete(DELETED)       # batch 1's kids sessions go before any run read them
+    plain.append(without_kids(batches[1]))
+    run_project(project)
+    run_project(reference)
+    assert results(project) == results(reference)
+
+
+@pytest.mark.parametrize("fmt", ["delta", "iceberg"])
+def test_files_compacted_and_vacuumed_before_they_were_read_are_read_through_their_compaction(
+        fmt: str, batches: list[pa.Table], tmp_path: Path) -> None:
+    table = table_of(fmt, tmp_path / "table")
+    project = project_of(fmt, tmp_path / "table", table)
+    plain = Plain(tmp_path / "plain")
+    reference = write_project(tmp_path / "plain", plain.source())
+    table.append(batches[0])
+    plain.append(batches[0])
+    run_project(project)
+    run_project(reference)
+    table.append(batches[1])
+    table.compact()
+    table.vacuum()              # batch 1's own files are gone before any run read them
+    plain.append(batches[1])
+    warnings = run_project(project)
+    run_project(reference)
+    assert any("removed from storage before Plimsoll read them" in w for w in warnings), warnings
+    assert results(project) == results(reference)
+
+
+def test_a_check_added_later_reads_the_table_as_it_is_now(batches: list[pa.Table], tmp_path: Path) -> None:
+    """Its first read is the table's current files, compacted or not, not the commits since the table began."""
+    table = DeltaLake(tmp_path / "table" / "delta")
+    project = project_of("delta", tmp_path / "table", table)
+    (project.parent / "checks" / "title_errors.yml").unlink()
+    for batch in batches[:2]:
+        table.append(batch)
+    run_project(project)
+    table.compact()
+    table.append(batches[2])
+    shutil.copyfile(CATALOGUE / "title_errors.yml", project.parent / "checks" / "title_errors.yml")
+    run_project(project)
+
+    plain = Plain(tmp_path / "plain")
+    reference = write_project(tmp_path / "plain", plain.source())
+    (reference.parent / "checks" / "title_errors.yml").unlink()
+    for batch in batches[:2]:
+        plain.append(batch)
+    run_project(reference)
+    plain.append(batches[2])
+    shutil.copyfile(CATALOGUE / "title_errors.yml", reference.parent / "checks" / "title_errors.yml")
+    run_project(reference)
+    assert results(project) == results(reference)
+
+
+def test_a_backlog_of_a_table_is_read_in_several_runs_and_gives_what_one_run_gives(
+        batches: list[pa.Table], tmp_path: Path) -> None:
+    """max_read_per_run cuts a first read of the table's snapshot; the runs after finish it."""
+    table = DeltaLake(tmp_path / "whole" / "delta")
+    for batch in batches:
+        table.append(batch)
+    whole = project_of("delta", tmp_path / "whole", table)
+    run_project(whole)
+    parts = write_project(tmp_path / "parts", table.source(), "max_read_per_run: 1MB\n")
+    result = run(load_project(parts))
+    assert result.first_run_id is not None and result.run_id > result.first_run_id   # several runs
+    assert results(parts) == results(whole)
+
+
+@pytest.mark.parametrize("fmt", ["delta", "iceberg"])
+def test_a_run_killed_with_sigkill_changes_nothing_and_the_rerun_reads_what_it_would_have(
+        fmt: str, batches: list[pa.Table], tmp_path: Path) -> None:
+    table = table_of(fmt, tmp_path / "table")
+    project = project_of(fmt, tmp_path / "table", table)
+    table.append(batches[0])
+    run_project(project)
+    table.append(batches[1])
+    table.compact()
+    before = warehouse_contents(project.parent / "warehouse.duckdb")
+
+    env = dict(os.environ, PYTHONUNBUFFERED="1")
+    child = subprocess.Popen([*plimsoll_command(), "run", "-p", str(project)], stderr=subprocess.PIPE,
+                             stdout=subprocess.DEVNULL, text=True, env=env, start_new_session=True)
+    seen = []
+    try:
+        for line in child.stderr:
+            seen.append(line)
+            if "[1/3]" in line:   # the sessions are read and the first check is under way
+                break
+        os.killpg(child.pid, signal.SIGKILL)
+    finally:
+        child.wait(timeout=60)
+        child.stderr.close()
+    assert child.returncode == -signal.SIGKILL, seen
+    assert warehouse_contents(project.parent / "warehouse.duckdb") == before
+
+    run_project(project)
+    # what the same sessions give read without a kill: the first batch, then the second
+    assert results(project) == _uninterrupted(batches, tmp_path / "control")
+
+
+def _uninterrupted(batches: list[pa.Table], folder: Path) -> dict[str, list[tuple]]:
+    plain = Plain(folder)
+    reference = write_project(folder, plain.source())
+    plain.append(batches[0])
+    run_project(reference)
+    plain.append(batches[1])
+    run_project(reference)
+    return results(reference)
+
+
+def test_a_table_source_needs_its_package_and_its_catalog(tmp_path: Path, batches: list[pa.Table]) -> None:
+    table = DeltaLake(tmp_path / "delta")
+    table.append(batches[0].slice(0, 1000))
+    bad = write_project(tmp_path / "p1", "    format: iceberg\n    table: fernhill.sessions\n")
+    with pytest.raises(ProjectInvalid, match="format: iceberg needs iceberg_catalog"):
+        load_project(bad)
+    bad = write_project(tmp_path / "p2", f"    format: delta\n    path: {tmp_path / 'nowhere'}\n")
+    with pytest.raises(ProjectInvalid, match="cannot read the delta table"):
+        load_project(bad)
+    bad = write_project(tmp_path / "p3", f"    format: delta\n    path: {table.path}\n    table: x.y\n")
+    with pytest.raises(ProjectInvalid, match="table applies to format: iceberg"):
+        load_project(bad)
+    good = write_project(tmp_path / "p4", table.source())
+    assert load_project(good).sources["sessions"].format == "delta"
