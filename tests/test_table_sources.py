@@ -284,3 +284,18 @@ def test_a_table_source_needs_its_package_and_its_catalog(tmp_path: Path, batche
         load_project(bad)
     good = write_project(tmp_path / "p4", table.source())
     assert load_project(good).sources["sessions"].format == "delta"
+
+
+def test_an_iceberg_rest_catalog_that_does_not_answer_is_one_line_naming_the_source(tmp_path: Path) -> None:
+    """An http(s) uri is a REST catalog; one that cannot be reached fails validation in one line."""
+    import socket
+
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        port = s.getsockname()[1]
+    project = write_project(tmp_path, "    format: iceberg\n    table: fernhill.sessions\n",
+                            f"iceberg_catalog:\n  uri: http://127.0.0.1:{port}\n")
+    with pytest.raises(ProjectInvalid) as caught:
+        load_project(project)
+    (line,) = str(caught.value).splitlines()
+    assert "source 'sessions'" in line and "fernhill.sessions" in line and f"127.0.0.1:{port}" in line, line

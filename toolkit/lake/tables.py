@@ -136,7 +136,9 @@ def listing(source: Source) -> TableListing:
 
 
 def where(source: Source) -> str:
-    return source.table if source.format == "iceberg" and source.table else source.path
+    if source.format == "iceberg" and source.table:
+        return f"{source.table} in the catalog at {source.catalog.uri if source.catalog else '(none)'}"
+    return source.path
 
 
 def _first_line(err: BaseException) -> str:
