@@ -26,6 +26,7 @@ its whole history. Every data file is named relative to the table's root, and th
 from __future__ import annotations
 
 import os
+import re
 import urllib.parse
 from dataclasses import dataclass, field
 from datetime import datetime, timezone
@@ -137,7 +138,8 @@ def listing(source: Source) -> TableListing:
 
 def where(source: Source) -> str:
     if source.format == "iceberg" and source.table:
-        return f"{source.table} in the catalog at {source.catalog.uri if source.catalog else '(none)'}"
+        uri = re.sub(r"//[^/@]*@", "//", source.catalog.uri) if source.catalog else "(none)"  # no user:password
+        return f"{source.table} in the catalog at {uri}"
     return source.path
 
 
