@@ -299,3 +299,34 @@ def test_an_iceberg_rest_catalog_that_does_not_answer_is_one_line_naming_the_sou
         load_project(project)
     (line,) = str(caught.value).splitlines()
     assert "source 'sessions'" in line and "fernhill.sessions" in line and f"127.0.0.1:{port}" in line, line
+
+
+def test_a_commit_that_changes_a_columns_kind_of_type_is_named_as_in_a_parquet_lake(
+        batches: list[pa.Table], tmp_path: Path) -> None:
+    """Schema evolution follows the Parquet sources' rules: a column a check reads keeps its kind of type."""
+    from deltalake import write_deltalake
+
+    from toolkit.problems import DataError
+
+    table = DeltaLake(tmp_path / "delta")
+    first = batches[0].slice(0, 20_000)
+    table.append(first)
+    project = write_project(tmp_path, table.source())
+    run_project(project)
+    # a writer replaces the table with the sessions' site as a number
+    renumbered = first.set_column(first.schema.get_field_index("site"), "site",
+                                  pa.array(range(first.num_rows), pa.int64()))
+    write_deltalake(str(table.path), renumbered, mode="overwrite", schema_mode="overwrite")
+    before = warehouse_contents(project.parent / "warehouse.duckdb")
+    with pytest.raises(DataError, match=r"column 'site' is BIGINT, but source 'sessions' has it as VARCHAR"):
+        run(_load_runnable(project))
+    after = warehouse_contents(project.parent / "warehouse.duckdb", skip=("runs", "run_checks"))
+    assert after == {k: v for k, v in before.items() if k not in ("runs", "run_checks")}
+
+
+def _load_runnable(project: Path):
+    """The project as a run loads it (validation reads the table's current schema, now all numbers)."""
+    try:
+        return load_project(project)
+    except ProjectInvalid as err:
+        pytest.fail(f"the project should still load: {err}")
