@@ -136,5 +136,11 @@ class IcebergLake:
             if str(data) not in held:
                 data.unlink()
 
+    def snapshot_id(self) -> int:
+        return self._table().current_snapshot().snapshot_id
+
+    def roll_back_to(self, snapshot_id: int) -> None:
+        self._table().manage_snapshots().rollback_to_snapshot(snapshot_id).commit()
+
     def version(self) -> int:
         return self._table().current_snapshot().sequence_number

@@ -330,3 +330,26 @@ def _load_runnable(project: Path):
         return load_project(project)
     except ProjectInvalid as err:
         pytest.fail(f"the project should still load: {err}")
+
+
+def test_an_iceberg_table_rolled_back_reads_on_from_its_current_snapshot(batches: list[pa.Table],
+                                                                         tmp_path: Path) -> None:
+    """A rollback leaves the snapshot read last out of the table's history: sessions counted stay
+    counted, the run says so, and what is appended after is read once."""
+    table = IcebergLake(tmp_path / "table" / "iceberg")
+    project = project_of("iceberg", tmp_path / "table", table)
+    plain = Plain(tmp_path / "plain")
+    reference = write_project(tmp_path / "plain", plain.source())
+    for batch in batches[:2]:
+        table.append(batch)
+        plain.append(batch)
+        run_project(project)
+        run_project(reference)
+    table.roll_back_to(table._table().current_snapshot().parent_snapshot_id)
+    warnings = run_project(project)
+    assert any("no longer in the table's history" in w for w in warnings), warnings
+    table.append(batches[2])
+    plain.append(batches[2])
+    assert run_project(project) == []
+    run_project(reference)
+    assert results(project) == results(reference)

@@ -91,7 +91,9 @@ class TableListing:
     def _since(self, state: TableState | None) -> Reading:
         if state is None:
             return Reading(list(self.active))
-        if state.version > self.version:
+        if state.version > self.version and self.source.format == "delta":
+            # Delta versions only grow (a restore is a new version): the table was made afresh.
+            # (An Iceberg rollback leaves a snapshot out of the current history instead: see there.)
             raise DataError(f"source '{self.source.name}': the table is at version {self.version}, but Plimsoll "
                             f"has read it up to version {state.version}: was it replaced or restored? "
                             "Rebuild its checks (plimsoll run --rebuild) to read it afresh")
@@ -365,6 +367,8 @@ class _IcebergCommits:
             rewrite = operation == "replace"
             removed = written = 0
             for manifest in snapshot.manifests(self.table.io):
+                if manifest.added_snapshot_id != snapshot.snapshot_id:
+                    continue  # written by an earlier snapshot: holds nothing this one added or removed
                 for entry in manifest.fetch_manifest_entry(self.table.io, discard_deleted=False):
                     if entry.snapshot_id != snapshot.snapshot_id:
                         continue
