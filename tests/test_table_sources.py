@@ -42,13 +42,13 @@ def batches(fernhill_lake) -> list[pa.Table]:
     return day_batches(fernhill_lake.days(), (6, 11, 16))
 
 
-def write_project(folder: Path, source: str, top: str = "") -> Path:
-    """The demo project's source, read from ``source`` (its format and where), with two checks."""
+def write_project(folder: Path, source: str, top: str = "", checks: tuple[str, ...] = CHECKS) -> Path:
+    """The demo project's source, read from ``source`` (its format and where), with the ``checks``."""
     folder.mkdir(parents=True, exist_ok=True)
     text = PROJECT_YML.replace("    path: lake/sessions/\n", source)
     (folder / "plimsoll.yml").write_text(text + top, encoding="utf-8")
     (folder / "checks").mkdir(exist_ok=True)
-    for name in CHECKS:
+    for name in checks:
         shutil.copyfile(CATALOGUE / name, folder / "checks" / name)
     return folder / "plimsoll.yml"
 
@@ -353,3 +353,30 @@ def test_an_iceberg_table_rolled_back_reads_on_from_its_current_snapshot(batches
     assert run_project(project) == []
     run_project(reference)
     assert results(project) == results(reference)
+
+
+SPARK = ("engine: spark\nspark_master: local[2]\nspark_conf:\n  spark.sql.shuffle.partitions: 4\n"
+         "  spark.driver.memory: 1g\n")
+
+
+@pytest.mark.spark
+def test_a_delta_source_through_engine_spark_gives_what_duckdb_gives(batches: list[pa.Table], tmp_path: Path) -> None:
+    """The files a table's commits added are the files Spark reads: the same windows, appended and
+    compacted, as DuckDB's."""
+    table = DeltaLake(tmp_path / "delta")
+    on_spark = write_project(tmp_path / "spark", table.source(), SPARK, checks=("site_errors.yml",))
+    on_duckdb = write_project(tmp_path / "duckdb", table.source(), checks=("site_errors.yml",))
+    for project in (on_spark, on_duckdb):   # the viewer sketch is DuckDB's alone
+        text = project.read_text(encoding="utf-8")
+        project.write_text(text.replace("    viewer_id: viewer_id\n", ""), encoding="utf-8")
+    table.append(batches[0])
+    for project in (on_spark, on_duckdb):
+        run_project(project)
+    table.append(batches[1])
+    table.compact()
+    for project in (on_spark, on_duckdb):
+        run_project(project)
+    spark, duck = results(on_spark), results(on_duckdb)
+    assert len(duck["windows"]) > 100
+    assert [w[:7] + w[9:] for w in spark["windows"]] == [w[:7] + w[9:] for w in duck["windows"]]
+    assert [a[:9] for a in spark["alerts"]] == [a[:9] for a in duck["alerts"]]
