@@ -80,6 +80,12 @@ class Source:
     viewer_id: str | None = None
     # the columns `plimsoll explain` drills into
     attributes: tuple[str, ...] = ()
+    # source alarms, in wall-clock time (the one place it enters a decision): a run opens a 'silent'
+    # alert when no new file has arrived for max_silence, a 'lagging' one when the newest data time
+    # read is more than max_lag behind the clock; None: not watched
+    max_silence: timedelta | None = None
+    max_lag: timedelta | None = None
+    alarm_severity: str = "high"
 
     @property
     def time_columns(self) -> tuple[str, ...]:
