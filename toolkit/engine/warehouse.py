@@ -31,8 +31,9 @@ TABLES = ("runs", "run_checks", "files_read", "changed_files", "source_columns",
           "alert_causes", "incidents", "incident_events", "schema_version")
 # The layout this release writes (the schema_version table): 2 names files relative to their
 # source, 3 renames columns (CHANGELOG.md), 4 adds the impact columns (queries/migrate_4.sql), 5
-# adds causes and incidents (new tables and alerts.incident_id; the next run fills them).
-SCHEMA_VERSION = 5
+# adds causes and incidents (new tables and alerts.incident_id; the next run fills them), 6 adds
+# source alarms (columns of alerts, alert_events and incidents; nothing to fill).
+SCHEMA_VERSION = 6
 POLL_SECONDS = 0.25
 # A run's temp tables live until its one transaction commits, so without a limit its memory grows
 # with checks x sessions; at this limit DuckDB spills to disk instead. The limit bounds DuckDB's
@@ -194,7 +195,12 @@ def _layout_5(con: duckdb.DuckDBPyConnection, project: Project) -> None:
     run groups the alerts into incidents afresh."""
 
 
-_MIGRATIONS = ((2, _layout_2), (3, _layout_3), (4, _layout_4), (5, _layout_5))
+def _layout_6(con: duckdb.DuckDBPyConnection, project: Project) -> None:
+    """Layout 5 to 6: the source alarms' columns are new (queries/warehouse.sql added them, NULL: every
+    earlier alert is a check's). Nothing is filled after the fact."""
+
+
+_MIGRATIONS = ((2, _layout_2), (3, _layout_3), (4, _layout_4), (5, _layout_5), (6, _layout_6))
 
 
 def _adopt_definitions(con: duckdb.DuckDBPyConnection, project: Project) -> None:
