@@ -4,7 +4,8 @@
 -- so an incident that spans runs is grouped the same as if one run had read everything.
 --
 -- Alert A explains alert B when their breaching spans (first breaching window's start to last
--- breaching window's end) overlap in data time, and
+-- breaching window's end) overlap in data time, both are a check's or both a source alarm (whose
+-- times are wall clock: never compared with a check's), and
 --   · A and B watch the same series (the same key) in two checks: share 1; or
 --   · B's excess lies inside A's key: of B's causes that are answers (alert_causes.significant),
 --     those whose combination, with B's own key, holds every column=value of A's key carry at
@@ -15,7 +16,8 @@
 -- Each alert's parent is the alert that explains the largest share of it (on a tie the better
 -- cause); following parents ends at a root, the incident's cause: an alert nothing explains.
 -- Better cause: more columns in its key (more specific), higher severity, more affected sessions,
--- opened earlier, then the smaller alert_id, so every choice is deterministic.
+-- a source's silence before its lag, opened earlier, then the smaller alert_id, so every choice is
+-- deterministic.
 -- The incident's id is made from its earliest alert's (earliest opened; of alerts opened together,
 -- the cause, else the smallest alert_id): an alert that leaves an incident when its causes change
 -- does not take the incident's id with it when it opened with the cause.
@@ -26,11 +28,13 @@ WITH RECURSIVE
 nodes AS (
     SELECT
         alert_id, check_name, key, split_value, status, opened_at, closed_at, breach_started_at, last_breach_at,
-        severity, affected_sessions, affected_viewers, excess_sessions, last_run_id,
+        severity, affected_sessions, affected_viewers, excess_sessions, last_run_id, alarm,
         list_transform(map_entries(key), lambda e: e.key || '=' || coalesce(e.value, chr(0))) AS items,
         row_number() OVER (ORDER BY cardinality(key) DESC,
                                     CASE severity WHEN 'high' THEN 0 WHEN 'medium' THEN 1 ELSE 2 END,
-                                    coalesce(affected_sessions, 0) DESC, opened_at, alert_id) AS cause_order
+                                    coalesce(affected_sessions, 0) DESC,
+                                    -- a source both silent and lagging: the silence explains the lag
+                                    alarm IS NOT DISTINCT FROM 'lagging', opened_at, alert_id) AS cause_order
     FROM alerts
     WHERE close_reason IS DISTINCT FROM 'check changed'
 ),
@@ -50,6 +54,7 @@ pairs AS (
     JOIN nodes AS b
         ON a.alert_id <> b.alert_id
        AND a.breach_started_at < b.last_breach_at AND b.breach_started_at < a.last_breach_at
+       AND (a.alarm IS NULL) = (b.alarm IS NULL)
 ),
 edges AS (
     SELECT p.explainer, p.explained, p.cause_order, 1.0::DOUBLE AS share
@@ -119,7 +124,8 @@ SELECT
     any_value(c.affected_sessions) AS affected_sessions,
     any_value(c.affected_viewers) AS affected_viewers,
     any_value(c.excess_sessions) AS excess_sessions,
-    max(i.last_breach_at) AS last_breach_at
+    max(i.last_breach_at) AS last_breach_at,
+    any_value(c.alarm) AS cause_alarm
 FROM incident_alerts AS i
 JOIN alerts AS c ON c.alert_id = i.cause_alert_id
 GROUP BY i.cause_alert_id, i.first_alert_id;
@@ -155,7 +161,10 @@ FROM incidents_now AS n
 LEFT JOIN incidents AS o USING (incident_id)
 WHERE n.status = 'closed' AND o.status IS DISTINCT FROM 'closed'
 UNION ALL
-SELECT o.incident_id, $run_id, (SELECT max(last_breach_at) FROM incidents_now), 'closed', 'merged',
+SELECT o.incident_id, $run_id,
+       -- a source alarm's incident in wall clock, a check's in data time
+       (SELECT max(m.last_breach_at) FROM incidents_now AS m WHERE (m.cause_alarm IS NULL) = (o.cause_alarm IS NULL)),
+       'closed', 'merged',
        o.cause_alert_id, o.alerts, o.alert_ids, o.affected_sessions, o.affected_viewers
 FROM incidents AS o
 WHERE o.incident_id NOT IN (SELECT incident_id FROM incidents_now);
@@ -167,7 +176,7 @@ CREATE OR REPLACE TEMP TABLE incidents_next AS
 SELECT
     n.incident_id, n.status, n.opened_at, n.closed_at, n.cause_alert_id, n.cause_check, n.cause_key,
     n.cause_key_text, n.cause_split_value, n.severity, n.alerts, n.alert_ids, n.affected_sessions,
-    n.affected_viewers, n.excess_sessions,
+    n.affected_viewers, n.excess_sessions, n.cause_alarm,
     coalesce(o.first_run_id, $run_id) AS first_run_id,
     CASE WHEN o.incident_id IS NULL OR o.status <> n.status OR o.alert_ids <> n.alert_ids
               OR o.cause_alert_id <> n.cause_alert_id OR o.affected_sessions IS DISTINCT FROM n.affected_sessions
@@ -177,7 +186,7 @@ LEFT JOIN incidents AS o USING (incident_id);
 
 DELETE FROM incidents;
 
-INSERT INTO incidents SELECT * FROM incidents_next;
+INSERT INTO incidents BY NAME SELECT * FROM incidents_next;
 
 UPDATE alerts
 SET incident_id = i.incident_id

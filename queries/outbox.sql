@@ -22,6 +22,12 @@
 -- the latest run's, which may be later than the event's when notify runs after several runs).
 --
 -- Webhooks with per 'incident' are given the events of incident_events instead (after the alerts').
+--
+-- A source alarm's event (alerts.alarm 'silent' or 'lagging', queries/alarms.sql) has a payload of
+-- its own: no check, windows or sessions, but the source, how long it was silent or behind and the
+-- limit (seconds), its newest file's arrival and its newest data time. Its times are wall clock, so
+-- its age for catch_up is measured against $now, and the newest data time against which check
+-- events' age is measured leaves it out.
 CREATE OR REPLACE TEMP MACRO outbox_event_identity(fingerprint, opened_at, event, occurred_at, close_reason,
                                                    definition_hash, after_reopening) AS
     md5(to_json({
@@ -61,8 +67,12 @@ hooks AS (
         *,
         NOT EXISTS (SELECT 1 FROM outbox AS o WHERE o.webhook = w.name AND o.incident_id IS NULL) AS first_pass,
         -- data time, not the clock: lakes lag, and every decision in a run is made in data time
-        greatest((SELECT max(watermark) FROM check_state), (SELECT max(occurred_at) FROM alert_events))
-            - to_seconds(w.catch_up) AS catch_up_from
+        greatest((SELECT max(watermark) FROM check_state),
+                 (SELECT max(occurred_at) FROM alert_events
+                  WHERE alert_id IN (SELECT alert_id FROM alerts WHERE alarm IS NULL)))
+            - to_seconds(w.catch_up) AS catch_up_from,
+        -- a source alarm's events are in wall-clock time
+        $now::TIMESTAMP - to_seconds(w.catch_up) AS alarm_catch_up_from
     FROM (SELECT unnest($webhooks, recursive := true)) AS w
     WHERE w.per = 'alert'
 ),
@@ -75,6 +85,7 @@ events AS (
         e.excess_sessions, e.affected_viewers,
         a.check_name, a.severity, a.key, a.key_text, a.split_value, a.opened_at, a.closed_at,
         a.close_reason, a.fingerprint, a.status AS alert_status, a.incident_id, coalesce(cs.causes, []) AS causes,
+        a.alarm, a.source_name, e.last_file_at, e.newest_data_at,
         CASE e.event WHEN 'opened' THEN 0 WHEN 'reopened' THEN 0 WHEN 'updated' THEN 1 ELSE 2 END AS event_rank,
         outbox_event_identity(a.fingerprint, a.opened_at, e.event, e.occurred_at, a.close_reason,
                               a.definition_hash, e.event = 'closed' AND EXISTS (
@@ -107,7 +118,8 @@ candidates AS (
     SELECT
         h.name AS webhook, h.url, n.*,
         md5(to_json({'event': n.event_identity, 'webhook': h.name})::VARCHAR) AS idempotency_key,
-        coalesce(h.first_pass AND n.occurred_at < h.catch_up_from
+        coalesce(h.first_pass
+                 AND n.occurred_at < CASE WHEN n.alarm IS NULL THEN h.catch_up_from ELSE h.alarm_catch_up_from END
                  AND NOT (n.event = 'opened' AND n.alert_status = 'open'), false) AS stale
     FROM numbered AS n
     CROSS JOIN hooks AS h
@@ -165,7 +177,7 @@ decided AS (
 )
 SELECT
     f.idempotency_key, f.webhook, f.url, f.alert_id, f.run_id, f.event, f.occurred_at, f.affected_sessions,
-    to_json({
+    CASE WHEN f.alarm IS NULL THEN to_json({
         'idempotency_key': f.idempotency_key,
         'event': f.event,
         'occurred_at': strftime(f.occurred_at, '%Y-%m-%dT%H:%M:%SZ'),
@@ -192,7 +204,31 @@ SELECT
         'causes': f.causes,
         'run_id': f.run_id,
         'sender': 'plimsoll ' || $version
-    })::VARCHAR AS payload,
+    })::VARCHAR ELSE to_json({
+        -- a source alarm: times are wall clock, but newest_data_at (data time)
+        'idempotency_key': f.idempotency_key,
+        'event': f.event,
+        'occurred_at': strftime(f.occurred_at, '%Y-%m-%dT%H:%M:%SZ'),
+        'check': NULL::VARCHAR,
+        'alarm': f.alarm,
+        'source': f.source_name,
+        'severity': f.severity,
+        'alert_id': f.alert_id,
+        'fingerprint': f.fingerprint,
+        'key': f.key,
+        'key_text': f.key_text,
+        'opened_at': strftime(f.opened_at, '%Y-%m-%dT%H:%M:%SZ'),
+        'closed_at': CASE WHEN f.event = 'closed' THEN strftime(f.occurred_at, '%Y-%m-%dT%H:%M:%SZ') END,
+        'close_reason': CASE WHEN f.event = 'closed' THEN f.close_reason END,
+        -- how long silent (a closed silence: until the first new file) or behind the clock, and the limit
+        'duration_seconds': CASE WHEN isfinite(f.value) THEN round(f.value)::BIGINT END,
+        'limit_seconds': CASE WHEN isfinite(f.threshold) THEN round(f.threshold)::BIGINT END,
+        'last_file_at': strftime(f.last_file_at, '%Y-%m-%dT%H:%M:%SZ'),
+        'newest_data_at': strftime(f.newest_data_at, '%Y-%m-%dT%H:%M:%SZ'),
+        'incident_id': f.incident_id,
+        'run_id': f.run_id,
+        'sender': 'plimsoll ' || $version
+    })::VARCHAR END AS payload,
     CASE WHEN d.send THEN 'queued' ELSE 'skipped' END AS status,
     0 AS attempts,
     NULL::VARCHAR AS last_error,
@@ -226,8 +262,13 @@ hooks AS (
     SELECT
         *,
         NOT EXISTS (SELECT 1 FROM outbox AS o WHERE o.webhook = w.name AND o.incident_id IS NOT NULL) AS first_pass,
-        greatest((SELECT max(watermark) FROM check_state), (SELECT max(occurred_at) FROM alert_events),
-                 (SELECT max(occurred_at) FROM incident_events)) - to_seconds(w.catch_up) AS catch_up_from
+        greatest((SELECT max(watermark) FROM check_state),
+                 (SELECT max(occurred_at) FROM alert_events
+                  WHERE alert_id IN (SELECT alert_id FROM alerts WHERE alarm IS NULL)),
+                 (SELECT max(occurred_at) FROM incident_events
+                  WHERE cause_alert_id NOT IN (SELECT alert_id FROM alerts WHERE alarm IS NOT NULL)))
+            - to_seconds(w.catch_up) AS catch_up_from,
+        $now::TIMESTAMP - to_seconds(w.catch_up) AS alarm_catch_up_from
     FROM (SELECT unnest($webhooks, recursive := true)) AS w
     WHERE w.per = 'incident'
 ),
@@ -240,7 +281,7 @@ events AS (
         i.status AS incident_status, coalesce(i.opened_at, o.opened_at) AS opened_at,
         coalesce(i.severity, a.severity) AS severity,
         CASE WHEN e.status = 'merged' THEN a.incident_id END AS merged_into,
-        a.check_name, a.key, a.key_text, a.split_value,
+        a.check_name, a.key, a.key_text, a.split_value, a.alarm,
         coalesce(cs.causes, []) AS causes,
         CASE e.event WHEN 'opened' THEN 0 WHEN 'reopened' THEN 0 WHEN 'updated' THEN 1 ELSE 2 END AS event_rank,
         md5(to_json({
@@ -262,7 +303,8 @@ candidates AS (
     SELECT
         h.name AS webhook, h.url, n.*,
         md5(to_json({'event': n.event_identity, 'webhook': h.name})::VARCHAR) AS idempotency_key,
-        coalesce(h.first_pass AND n.occurred_at < h.catch_up_from
+        coalesce(h.first_pass
+                 AND n.occurred_at < CASE WHEN n.alarm IS NULL THEN h.catch_up_from ELSE h.alarm_catch_up_from END
                  -- (an incident merged into another is gone from incidents: not open, history)
                  AND NOT (n.event = 'opened' AND coalesce(n.incident_status = 'open', false)), false) AS stale
     FROM events AS n
@@ -333,7 +375,7 @@ SELECT
         'closed_at': CASE WHEN f.event = 'closed' THEN strftime(f.occurred_at, '%Y-%m-%dT%H:%M:%SZ') END,
         'merged_into': f.merged_into,
         'cause': {'check': f.check_name, 'key': f.key, 'key_text': f.key_text, 'split_value': f.split_value,
-                  'alert_id': f.cause_alert_id},
+                  'alert_id': f.cause_alert_id, 'alarm': f.alarm},
         'alert_ids': f.alert_ids,
         'alerts': f.alerts,
         'severity': f.severity,

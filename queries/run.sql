@@ -33,10 +33,10 @@ BEGIN TRANSACTION;
 
 -- @statement begin.known_checks
 -- Checks the warehouse knows, by their state or an open alert; those no longer in the project are
--- retired.
+-- retired. (A source alarm's alert is no check's: queries/alarms.sql retires those.)
 SELECT check_name FROM check_state
 UNION
-SELECT check_name FROM alerts WHERE status = 'open'
+SELECT check_name FROM alerts WHERE status = 'open' AND check_name IS NOT NULL
 ORDER BY 1;
 
 -- @statement begin.forget_removed_sources

@@ -282,6 +282,20 @@ CREATE TABLE IF NOT EXISTS incident_events (
     affected_viewers BIGINT
 );
 
+-- ── layout 6: source alarms (queries/alarms.sql) ──────────────────────────────────────────────
+-- An alert about a source itself, not about a check's series: 'silent' (no new file for the
+-- source's max_silence) or 'lagging' (its newest data time more than max_lag behind the clock). Its
+-- check_name is NULL, its key {source: NAME}; its times are wall clock (UTC), its value and
+-- threshold seconds (how long silent or behind, and the limit).
+ALTER TABLE alerts ADD COLUMN IF NOT EXISTS alarm VARCHAR;              -- 'silent' | 'lagging'; NULL: a check's alert
+ALTER TABLE alerts ADD COLUMN IF NOT EXISTS source_name VARCHAR;        -- the source a source alarm is about
+ALTER TABLE alerts ADD COLUMN IF NOT EXISTS last_file_at TIMESTAMP;     -- wall clock: when its newest file arrived
+ALTER TABLE alerts ADD COLUMN IF NOT EXISTS newest_data_at TIMESTAMP;   -- data time: the newest sane event time read from it
+ALTER TABLE alert_events ADD COLUMN IF NOT EXISTS last_file_at TIMESTAMP;   -- source alarms: as of the event
+ALTER TABLE alert_events ADD COLUMN IF NOT EXISTS newest_data_at TIMESTAMP;
+ALTER TABLE incidents ADD COLUMN IF NOT EXISTS cause_alarm VARCHAR;     -- the cause alert's alarm, if a source alarm
+-- ── end of layout 6 ───────────────────────────────────────────────────────────────────────────
+
 -- The warehouse's layout, so a later release can migrate a file written by an earlier one and a
 -- file written by a later one is refused with a clear message. Paths in files_read,
 -- changed_files, session_ids and source_columns are relative to their source's path from version 2.

@@ -150,7 +150,7 @@ def script_pieces(check_file: Path, folder: Path, project: str = PROJECT) -> dic
     loaded = load_project(case_project(check_file, folder, project))
     (name,) = loaded.checks
     compiled = check_plan(loaded.checks[name])
-    printed = with_after_checks(compiled.sql, after_checks_sql(loaded.checks[name]))
+    printed = with_after_checks(compiled.sql, after_checks_sql(loaded.checks[name]), loaded.checks[name].source)
     return printed_pieces(printed, [s.name for s in compiled.stages], [s.text for s in compiled.stages])
 
 

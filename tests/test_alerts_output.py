@@ -82,7 +82,10 @@ def test_alerts_json_is_exact(project: Path) -> None:
             # no viewer_id in the source; every bad session is beyond a baseline rate of 0
             "affected_viewers": None, "excess_sessions": 8.0,
             "peak_value": 0.8, "threshold": 0.1, "fingerprint": prints[hostile_key],
-            "incident_id": incident_of(ids[hostile_key]), "causes": [],  # no attributes: nothing to explain by
+            "incident_id": incident_of(ids[hostile_key]),
+            # a check's alert: no source alarm's fields
+            "alarm": None, "source_name": None, "last_file_at": None, "newest_data_at": None,
+            "causes": [],  # no attributes: nothing to explain by
         },
         {
             "alert_id": ids["site=kids, title_id=t-1"], "status": "closed", "severity": "high",
@@ -94,7 +97,8 @@ def test_alerts_json_is_exact(project: Path) -> None:
             "affected_viewers": None, "excess_sessions": 13.0,
             "affected_per_hour": pytest.approx(13 / (19 / 60)), "peak_value": 0.7, "threshold": 0.1,
             "fingerprint": prints["site=kids, title_id=t-1"],
-            "incident_id": incident_of(ids["site=kids, title_id=t-1"]), "causes": [],
+            "incident_id": incident_of(ids["site=kids, title_id=t-1"]),
+            "alarm": None, "source_name": None, "last_file_at": None, "newest_data_at": None, "causes": [],
         },
     ]
     assert len(set(ids.values())) == 2 and all(len(f) == 16 for f in prints.values())

@@ -151,7 +151,7 @@ def test_incidents_json(project: Path) -> None:
         "opened_at": "2026-11-02 16:30:00", "closed_at": "2026-11-03 01:00:00",
         "cause": {"check": "cdn_country", "key": {"cdn": "birch", "country": "DE"},
                   "key_text": "cdn=birch, country=DE", "split_value": None,
-                  "alert_id": ids["cdn=birch, country=DE 17:00"]},
+                  "alert_id": ids["cdn=birch, country=DE 17:00"], "alarm": None},  # a check's, not a source alarm
         "alerts": 3,  # in order of opening; the two site alerts opened together, by id
         "alert_ids": [ids["site=sport 16:30"], ids["site=news 16:30"], ids["cdn=birch, country=DE 17:00"]],
         "affected_sessions": 183, "affected_viewers": None, "excess_sessions": excess,

@@ -114,7 +114,8 @@ def test_a_webhook_per_incident_gets_each_incident_event_once(made, hook: Hook) 
         "incident_id": BIRCH_FR, "status": "closed", "opened_at": "2026-11-02T23:00:00Z",
         "closed_at": "2026-11-03T01:00:00Z", "merged_into": None,
         "cause": {"check": "cdn_country", "key": {"cdn": "birch", "country": "FR"},
-                  "key_text": "cdn=birch, country=FR", "split_value": None, "alert_id": alert_id},
+                  "key_text": "cdn=birch, country=FR", "split_value": None, "alert_id": alert_id,
+                  "alarm": None},  # a check's, not a source alarm
         "alert_ids": [alert_id], "alerts": 1, "severity": "high", "affected_sessions": 8,
         "affected_viewers": None,
         "causes": [{"rank": 1, "key": {"player": HOSTILE_PLAYER}, "key_text": f"player={HOSTILE_PLAYER}",

@@ -198,3 +198,25 @@ def test_named_statements_keep_their_order_and_leave_the_next_heading_out() -> N
     assert read.text("a.") == read.text("a.one", "a.two")
     with pytest.raises(KeyError):
         read["a.three"]
+
+
+def test_a_runs_source_alarms_are_statements_the_script_shows(tmp_path: Path, recorded: list[str]) -> None:
+    # max_silence and max_lag on the source: after the checks, the alarms are judged (queries/alarms.sql)
+    from datetime import datetime, timedelta
+
+    project_file = write_project(tmp_path, {"a.yml": (GOLDEN / "title_decode_errors.yml").read_text()},
+                                 project=PROJECT.format(lake=FIXTURE_LAKE) + "    max_silence: 30m\n    max_lag: 1h\n")
+    _, judged = run_recorded(recorded, project_file, clock=lambda: datetime(2030, 1, 1))
+    _, again = run_recorded(recorded, project_file, clock=lambda: datetime(2030, 1, 1) + timedelta(hours=1))
+    con = duckdb.connect(str(tmp_path / "warehouse.duckdb"), read_only=True)
+    try:
+        assert con.execute("SELECT alarm, status FROM alerts WHERE alarm IS NOT NULL ORDER BY 1").fetchall() == [
+            ("lagging", "open"), ("silent", "open")]
+    finally:
+        con.close()
+    script = shown(project_file, "title_decode_errors")
+    for seen in (judged, again):
+        assert_shown_in_order(seen, script)
+    sections = {part.split("\n", 1)[0]: part for part in script.split("-- @statement ")[1:]}
+    for name in ("alarms.retire", "alarms.arrivals", "alarms.verdicts", "alarms.record", "alarms.summary"):
+        assert any(sql in sections[name] for sql in judged), name

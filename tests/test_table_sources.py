@@ -380,3 +380,29 @@ def test_a_delta_source_through_engine_spark_gives_what_duckdb_gives(batches: li
     assert len(duck["windows"]) > 100
     assert [w[:7] + w[9:] for w in spark["windows"]] == [w[:7] + w[9:] for w in duck["windows"]]
     assert [a[:9] for a in spark["alerts"]] == [a[:9] for a in duck["alerts"]]
+
+
+def test_a_compaction_is_no_new_data_for_a_silent_table(batches: list[pa.Table], tmp_path: Path) -> None:
+    """max_silence on a table: files a compaction rewrote are not data arriving; an append is."""
+    from datetime import datetime, timedelta, timezone
+
+    # the runs' pretend clock starts an hour before the real one: the table's files carry the real
+    # time they were written, and a file counts as arrived no later than the run that found it
+    start = datetime.now(timezone.utc).replace(tzinfo=None) - timedelta(hours=1)
+
+    def at(minutes: int):
+        return lambda: start + timedelta(minutes=minutes)
+
+    table = DeltaLake(tmp_path / "delta")
+    table.append(batches[0].slice(0, 5_000))
+    table.append(batches[0].slice(5_000, 5_000))
+    project = write_project(tmp_path, table.source() + "    max_silence: 30m\n", checks=("site_errors.yml",))
+    assert run(load_project(project), clock=at(5)).alarms == []
+    silent = run(load_project(project), clock=at(45)).alarms
+    assert [(a.alarm, a.action) for a in silent] == [("silent", "opened")]
+    table.compact()
+    still = run(load_project(project), clock=at(50)).alarms
+    assert [(a.alarm, a.action) for a in still] == [("silent", "continued")]
+    table.append(batches[0].slice(10_000, 5_000))   # written now: an hour after the start
+    flowing = run(load_project(project), clock=at(75)).alarms
+    assert [(a.alarm, a.action, a.close_reason) for a in flowing] == [("silent", "closed", "data flowing again")]

@@ -114,7 +114,7 @@ def show_sql(check: str, project_file: Path) -> None:
     """Print the SQL a run executes for CHECK, stage by stage."""
     project = load_project(project_file)
     (chosen,) = select_checks(project, [check])
-    click.echo(with_after_checks(check_plan(chosen).sql, after_checks_sql(chosen)), nl=False)
+    click.echo(with_after_checks(check_plan(chosen).sql, after_checks_sql(chosen), chosen.source), nl=False)
 
 
 @main.command()
@@ -145,6 +145,8 @@ def run(project_file: Path, checks: tuple[str, ...], rebuild: bool, wait: float)
         + (f"; WARNING: {len(result.warnings)} (see above)" if result.warnings else "")
         + (f"; {_plural(len(result.skipped), 'changed check')} not run" if result.skipped else "")
     )
+    for alarm in result.alarms:  # the sources' silent and lagging alerts (wall clock)
+        click.echo(alarm.line)
     for problem in result.skipped:
         click.echo(str(problem), err=True)
     if result.skipped:

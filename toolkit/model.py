@@ -95,6 +95,12 @@ class Source:
     format: str = "parquet"
     table: str | None = None         # iceberg: the table's identifier in the catalog (namespace.name)
     catalog: Catalog | None = None   # iceberg: the project's catalog
+    # source alarms, in wall-clock time (the one place it enters a decision): a run opens a 'silent'
+    # alert when no new file has arrived for max_silence, a 'lagging' one when the newest data time
+    # read is more than max_lag behind the clock; None: not watched
+    max_silence: timedelta | None = None
+    max_lag: timedelta | None = None
+    alarm_severity: str = "high"
 
     @property
     def time_columns(self) -> tuple[str, ...]:

@@ -41,6 +41,13 @@ def parse_duration(text: Any) -> timedelta:
     return timedelta(weeks=weeks, days=days, hours=hours, minutes=minutes, seconds=seconds)
 
 
+def duration_text(delta: timedelta) -> str:
+    """A duration as ``parse_duration`` reads it: ``30m``, ``1h30m``, ``2d``, ``0s``."""
+    seconds = int(delta.total_seconds())
+    parts = [(seconds // 86400, "d"), (seconds % 86400 // 3600, "h"), (seconds % 3600 // 60, "m"), (seconds % 60, "s")]
+    return "".join(f"{n}{unit}" for n, unit in parts if n) or "0s"
+
+
 class Section:
     """Validation of one YAML mapping against its key table, collecting problems with lines."""
 

@@ -243,6 +243,13 @@ SOURCE_KEYS = (
         "concentrate (a check may name its own)", False, []),
     Key("viewer_id", "column", "the viewer of a session (a column): alerts then count the distinct viewers hit, "
         "estimated from a HyperLogLog sketch; the id itself is never stored"),
+    # the source alarms (wall clock, the one place it enters a decision; toolkit/engine/alarms.py)
+    Key("max_silence", "duration", "wall-clock time without a new file after which a run opens a 'silent' "
+        "alert for the source, closed when files arrive again"),
+    Key("max_lag", "duration", "how far the source's newest data time may fall behind the wall clock before a "
+        "run opens a 'lagging' alert for it, closed when it catches up"),
+    Key("alarm_severity", "choice", "the severity of the source's silent and lagging alerts", False, "high",
+        SEVERITIES),
 )
 
 

@@ -4,6 +4,7 @@
 from __future__ import annotations
 
 import importlib.util
+from datetime import timedelta
 from pathlib import Path
 from typing import Any
 
@@ -124,7 +125,7 @@ def load_sources(doc: Located, raw: dict[str, Any], root: Path, con: duckdb.Duck
         where = section.get("path")
         session_id, event_time, exclude = section.get("session_id"), section.get("event_time"), section.get("exclude")
         limits = {"max_future": section.get("max_future"), "dedup_horizon": section.get("dedup_horizon")}
-        limits = {k: v for k, v in limits.items() if v is not None}
+        limits = {k: v for k, v in limits.items() if v is not None} | _alarm_settings(section)
         fmt, table = section.get("format") or "parquet", section.get("table")
         if fmt == "iceberg":
             if table is None:
@@ -222,6 +223,21 @@ def load_sources(doc: Located, raw: dict[str, Any], root: Path, con: duckdb.Duck
         sources[name] = Source(name, location, session_id or "", event_time or "", excl, columns, time=time,
                                viewer_id=viewer, **common)
     return sources
+
+
+def _alarm_settings(section: Section) -> dict[str, Any]:
+    """The source alarms' keys: ``max_silence`` and ``max_lag`` (longer than 0s), and their severity."""
+    found: dict[str, Any] = {}
+    for key in ("max_silence", "max_lag"):
+        value = section.get(key)
+        if value is not None and value <= timedelta(0):
+            section.error((*section.path, key), f"{'.'.join((*section.path, key))} must be longer than 0s")
+        elif value is not None:
+            found[key] = value
+    severity = section.get("alarm_severity")
+    if severity is not None:
+        found["alarm_severity"] = severity
+    return found
 
 
 def _readable_schema(con: duckdb.DuckDBPyConnection, files: list[str], settings: Storage | None) -> dict[str, str]:

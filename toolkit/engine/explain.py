@@ -282,7 +282,7 @@ def explainable(check: Check) -> bool:
 class AlertWindows:
     """What explaining an alert reads: its series, its latest breaching windows, its history."""
 
-    check_name: str
+    check_name: str | None  # None: a source alarm (no check, no windows)
     key: dict[str, str | None]
     key_text: str
     split_value: str | None
@@ -371,6 +371,9 @@ def explain_alert(project: Project, alert_id: str, by: tuple[str, ...] = (), top
         con.close()
     if found is None:
         raise ExplainError(f"no alert {alert_id} in {project.warehouse}")
+    if found.check_name is None:
+        raise ExplainError(f"alert {alert_id} is a source alarm ({found.key_text}), not a check's: it has no windows "
+                           "or sessions to explain; `plimsoll alerts` says what it found")
     check = _check(project, found.check_name)
     attributes = _attributes(check, by)
     files = [f.where for f in lake.list_source(check.source)]

@@ -33,6 +33,7 @@ from toolkit.lake import tables
 from toolkit.engine import spark as spark_engine
 
 from toolkit.engine import explain, warehouse
+from toolkit.engine.alarms import SourceAlarm, record as record_alarms
 from toolkit.sql.compiler import CompiledCheck, columns_read
 from toolkit.sql.plans import check_plan, source_plan
 from toolkit.sql.script import (AFTER_VERDICT, incident_statements, MOVED_AFTER, MOVED_AFTER_VERDICT, MOVED_BEFORE, STAGE_CONNECTION_STAGES,
@@ -43,6 +44,7 @@ from toolkit.problems import DataError, PlimsollError, Problem, ProjectInvalid, 
 from toolkit.sql.quoting import interval
 
 Progress = Callable[[str], None]
+Clock = Callable[[], datetime]  # the wall clock, naive UTC
 
 # The run's own statements (queries/run.sql) run as this stage: a failure among them is the
 # warehouse's (a full disk, a lost file), reported as the engine says it, not as a check's.
@@ -81,6 +83,8 @@ class RunResult:
     more: bool = False                # files were left for a next run (max_read_per_run)
     skipped: list[Problem] = field(default_factory=list)  # changed checks not run: each needs a rebuild
     warnings: list[str] = field(default_factory=list)     # what a scheduler's log should show
+    # the sources' silent and lagging alerts: opened, still open or closed (wall clock; engine/alarms.py)
+    alarms: list[SourceAlarm] = field(default_factory=list)
 
     @property
     def files_read(self) -> int:
@@ -103,7 +107,7 @@ def select_checks(project: Project, names: list[str] | tuple[str, ...] | None) -
 
 
 def run(project: Project, names: list[str] | None = None, rebuild: bool = False,
-        progress: Progress | None = None, wait: float = 0.0) -> RunResult:
+        progress: Progress | None = None, wait: float = 0.0, clock: Clock | None = None) -> RunResult:
     """Runs of the selected checks until they have read every file; returns what they did, raises
     on failure after rolling back the failing run.
 
@@ -114,6 +118,9 @@ def run(project: Project, names: list[str] | None = None, rebuild: bool = False,
     rebuild) while the others run; the result lists it. Waits up to ``wait`` seconds for another
     run to release the warehouse. After every run (failed or not) the tables analysts read are
     published as Parquet beside the warehouse.
+
+    ``clock`` gives the wall clock (naive UTC; default the system's): the run record's times and the
+    source alarms, the one decision it enters. Tests pass one that only pretends.
     """
     checks = select_checks(project, names)
     compiled = [check_plan(c) for c in checks]
@@ -134,7 +141,8 @@ def run(project: Project, names: list[str] | None = None, rebuild: bool = False,
             run_id = int(_run_named(con, "open.next_run_id", {})[0])
             with warehouse.claimed(project, run_id, [c.name for c in checks]):
                 try:
-                    result = _run(con, project, run_id, checks, compiled, rebuild and not done, say, budget)
+                    result = _run(con, project, run_id, checks, compiled, rebuild and not done, say, budget,
+                                  clock or _now)
                 except PlimsollError:
                     _publish_quietly(con, project)
                     raise
@@ -174,12 +182,14 @@ def _together(runs: list[RunResult]) -> RunResult:
     return RunResult(runs[-1].run_id, runs[-1].status, list(by_check.values()),
                      distinct_files=sum(r.distinct_files for r in runs),
                      changed_files=[f for r in runs for f in r.changed_files], first_run_id=runs[0].run_id,
-                     warnings=[w for r in runs for w in r.warnings])
+                     warnings=[w for r in runs for w in r.warnings], alarms=[a for r in runs for a in r.alarms])
 
 
 def _run(con: duckdb.DuckDBPyConnection, project: Project, run_id: int, checks: list[Check],
-         compiled: list[CompiledCheck], rebuild: bool, progress: Progress, budget: int) -> RunResult:
-    started = _now()
+         compiled: list[CompiledCheck], rebuild: bool, progress: Progress, budget: int,
+         clock: Clock | None = None) -> RunResult:
+    clock = clock or _now
+    started = clock()
     listings: dict[str, list[lake.LakeFile]] = {}
     result = RunResult(run_id, "ok")
     record = {"run_id": run_id, "started": started, "checks": [c.name for c in checks], "rebuild": rebuild}
@@ -219,11 +229,12 @@ def _run(con: duckdb.DuckDBPyConnection, project: Project, run_id: int, checks: 
                 done = result.checks[-1]
                 progress(f"{step}: {_plural(done.files_read, 'file')}, {_plural(done.windows_written, 'window')}, "
                          f"alerts opened {done.alerts_opened}, closed {done.alerts_closed}")
+        result.alarms = _source_alarms(con, project, run_id, checks, started, listings, groups, progress)
         _causes_and_incidents(con, run_id, checks, listings, progress)
         repeats = _mostly_repeats(con)
         if repeats:
             result.warnings.append(repeats)
-        _record(con, record, "ok", None, repeats)
+        _record(con, record, "ok", None, repeats, clock)
         result.distinct_files = int(_run_named(con, "end.files_read", {"run_id": run_id})[0])
         _run_named(con, "end.commit", {})
     except BaseException as err:
@@ -238,7 +249,7 @@ def _run(con: duckdb.DuckDBPyConnection, project: Project, run_id: int, checks: 
             raise
         try:
             _run_named(con, "begin.transaction", {})
-            _record(con, record, "failed", str(message), None)
+            _record(con, record, "failed", str(message), None, clock)
             _run_named(con, "end.commit", {})
         except duckdb.Error as record_err:
             raise WarehouseError(f"{message}; the run was rolled back, and its failure could not be recorded "
@@ -249,6 +260,30 @@ def _run(con: duckdb.DuckDBPyConnection, project: Project, run_id: int, checks: 
     finally:
         _close(stages)
     return result
+
+
+def _source_alarms(con: duckdb.DuckDBPyConnection, project: Project, run_id: int, checks: list[Check],
+                   now: datetime, listings: dict[str, list[lake.LakeFile]], groups: list[Group],
+                   progress: Progress) -> list[SourceAlarm]:
+    """After every check, before the incidents: the sources' silent and lagging alerts, judged at
+    ``now`` (the run's clock reading as it began), in the run's transaction."""
+    def through_the_runner(on: duckdb.DuckDBPyConnection, statement: Statement, params: dict[str, Any]) -> Any:
+        return _execute(on, "source alarms", "alarms", statement, params, fetch="all")
+
+    # a backlog holds back a source's reading: its watermark is where this run stopped, not the lake's
+    held_back = {group.checks[0][0].source.name for group in groups if group.read_until is not None}
+    # a table's current files include what compaction rewrote, which is no new data: what its
+    # commits appended (the files its checks read now) is the evidence of arrival
+    arrived = {name: files for name, files in listings.items() if not tables.is_table(project.sources[name])}
+    for group in groups:
+        source = group.checks[0][0].source
+        if tables.is_table(source):
+            arrived.setdefault(source.name, [])
+            arrived[source.name] += [f for f in group.files if f not in arrived[source.name]]
+    found = record_alarms(con, project, checks, run_id, now, arrived, held_back, through_the_runner)
+    for alarm in found:
+        progress(alarm.line)
+    return found
 
 
 def _causes_and_incidents(con: duckdb.DuckDBPyConnection, run_id: int, checks: list[Check],
@@ -668,9 +703,10 @@ def _forget(con: duckdb.DuckDBPyConnection, checks: list[Check], compiled: list[
 
 
 def _record(con: duckdb.DuckDBPyConnection, record: dict[str, Any], status: str, error: str | None,
-            warning: str | None) -> None:
+            warning: str | None, clock: Clock | None = None) -> None:
     """The run record: what every scan read (once per scan) and what every check wrote."""
-    _run_named(con, "end.record", record | {"finished": _now(), "status": status, "error": error, "warning": warning})
+    _run_named(con, "end.record", record | {"finished": (clock or _now)(), "status": status, "error": error,
+                                            "warning": warning})
 
 
 def _now() -> datetime:

@@ -32,7 +32,8 @@ TABLES = ("runs", "run_checks", "files_read", "changed_files", "source_columns",
 # The layout this release writes (the schema_version table): 2 names files relative to their
 # source, 3 renames columns (CHANGELOG.md), 4 adds the impact columns (queries/migrate_4.sql), 5
 # adds causes and incidents (new tables and alerts.incident_id; the next run fills them), 6 the
-# table versions Delta and Iceberg sources are read by.
+# table versions Delta and Iceberg sources are read by, and source alarms (columns of alerts,
+# alert_events and incidents); nothing to fill.
 SCHEMA_VERSION = 6
 POLL_SECONDS = 0.25
 # A run's temp tables live until its one transaction commits, so without a limit its memory grows
@@ -196,8 +197,9 @@ def _layout_5(con: duckdb.DuckDBPyConnection, project: Project) -> None:
 
 
 def _layout_6(con: duckdb.DuckDBPyConnection, project: Project) -> None:
-    """Layout 5 to 6: table_versions is new (queries/warehouse.sql made it); until then every source
-    was Parquet, read by listing, so there is nothing to fill."""
+    """Layout 5 to 6: table_versions and the source alarms' columns are new (queries/warehouse.sql
+    made them; the alarms' columns NULL: every earlier alert is a check's). Until then every source
+    was Parquet, read by listing, and no source was watched, so nothing is filled after the fact."""
 
 
 _MIGRATIONS = ((2, _layout_2), (3, _layout_3), (4, _layout_4), (5, _layout_5), (6, _layout_6))

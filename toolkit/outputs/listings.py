@@ -7,22 +7,26 @@ from __future__ import annotations
 
 import json
 import math
-from datetime import datetime
+from datetime import datetime, timedelta
 from typing import Any
 
 import duckdb
 
+from toolkit.config.fields import duration_text
 from toolkit.engine import warehouse
+from toolkit.engine.alarms import spoken
 from toolkit.model import Project
 
 ALERT_COLUMNS = ("alert_id", "status", "severity", "check_name", "key", "key_text", "split_value", "opened_at",
                  "breach_started_at", "last_breach_at", "closed_at", "close_reason", "breach_windows",
                  "affected_sessions", "affected_viewers", "excess_sessions", "affected_per_hour", "peak_value",
-                 "threshold", "fingerprint", "incident_id")
+                 "threshold", "fingerprint", "incident_id",
+                 # a source alarm's (layout 6): check_name is NULL, alarm 'silent' or 'lagging'
+                 "alarm", "source_name", "last_file_at", "newest_data_at")
 CAUSE_FIELDS = ("rank", "key", "key_text", "bad", "expected", "excess_share", "score", "significant")
 INCIDENT_COLUMNS = ("incident_id", "status", "severity", "opened_at", "closed_at", "cause_alert_id", "cause_check",
                     "cause_key", "cause_key_text", "cause_split_value", "alerts", "alert_ids", "affected_sessions",
-                    "affected_viewers", "excess_sessions", "first_run_id", "last_run_id")
+                    "affected_viewers", "excess_sessions", "first_run_id", "last_run_id", "cause_alarm")
 
 
 def list_alerts(project: Project, status: str = "all", checks: tuple[str, ...] = (),
@@ -44,10 +48,18 @@ def has_incidents(con: duckdb.DuckDBPyConnection) -> bool:
     return con.execute("SELECT count(*) FROM information_schema.tables WHERE table_name = 'incidents'").fetchone()[0] > 0
 
 
+def present_columns(con: duckdb.DuckDBPyConnection, table: str) -> set[str]:
+    """The columns ``table`` has: a file (or a published copy) of an earlier layout lacks later ones,
+    which listings read as NULL until the next run converts it."""
+    return {row[0] for row in con.execute(
+        "SELECT column_name FROM information_schema.columns WHERE table_name = $table", {"table": table}).fetchall()}
+
+
 def alerts_from(con: duckdb.DuckDBPyConnection, status: str = "all", checks: tuple[str, ...] = (),
                 since: datetime | None = None) -> list[dict[str, Any]]:
     layout_5 = has_incidents(con)
-    cols = ", ".join(c if layout_5 or c != "incident_id" else "NULL AS incident_id" for c in ALERT_COLUMNS)
+    present = present_columns(con, "alerts")
+    cols = ", ".join(c if c in present else f"NULL AS {c}" for c in ALERT_COLUMNS)
     rows = con.execute(
         f"""
         SELECT {cols} FROM alerts
@@ -148,14 +160,16 @@ def alerts_table(alerts: list[dict[str, Any]]) -> str:
     body = [
         (
             a["status"] if a["status"] == "open" else f"closed ({a['close_reason']})",
-            a["severity"], a["check_name"], printable(a["key_text"] or "(all)"), printable(a["split_value"] or ""),
-            a["opened_at"].strftime("%Y-%m-%d %H:%M"), str(a["breach_windows"]), f"{a['affected_sessions']:,}",
-            count_or_dash(a.get("affected_viewers")), count_or_dash(a.get("excess_sessions")),
-            f"{a['affected_per_hour']:,.0f}", printable(a.get("incident_id") or "-"),
+            a["severity"], check_label(a), printable(a["key_text"] or "(all)"), printable(a["split_value"] or ""),
+            a["opened_at"].strftime("%Y-%m-%d %H:%M"), count_or_dash(a["breach_windows"]),
+            count_or_dash(a["affected_sessions"]), count_or_dash(a.get("affected_viewers")),
+            count_or_dash(a.get("excess_sessions")), count_or_dash(a["affected_per_hour"]),
+            printable(a.get("incident_id") or "-"),
         )
         for a in alerts
     ]
-    below = [cause_line(a["key_text"], a.get("causes", []), a.get("affected_sessions")) for a in alerts]
+    below = [alarm_line(a) if a.get("alarm") else cause_line(a["key_text"], a.get("causes", []), a.get("affected_sessions"))
+             for a in alerts]
     return _table(head, body, below)
 
 
@@ -200,9 +214,10 @@ def incidents_from(con: duckdb.DuckDBPyConnection, status: str = "all",
     """Incidents of ``status``, newest first; with ``alert_ids``, only those holding one of them."""
     if not has_incidents(con):
         return []
+    present = present_columns(con, "incidents")
     rows = con.execute(
         f"""
-        SELECT {", ".join(INCIDENT_COLUMNS)} FROM incidents
+        SELECT {", ".join(c if c in present else f"NULL AS {c}" for c in INCIDENT_COLUMNS)} FROM incidents
         WHERE ($status = 'all' OR status = $status)
           AND ($all OR len(list_intersect(alert_ids, $ids::VARCHAR[])) > 0)
         ORDER BY opened_at DESC, incident_id
@@ -230,7 +245,8 @@ def incidents_json(incidents: list[dict[str, Any]]) -> str:
             "incident_id": i["incident_id"], "status": i["status"], "severity": i["severity"],
             "opened_at": encode(i["opened_at"]), "closed_at": encode(i["closed_at"]),
             "cause": {"check": i["cause_check"], "key": i["cause_key"], "key_text": i["cause_key_text"],
-                      "split_value": i["cause_split_value"], "alert_id": i["cause_alert_id"]},
+                      "split_value": i["cause_split_value"], "alert_id": i["cause_alert_id"],
+                      "alarm": i.get("cause_alarm")},
             "alerts": i["alerts"], "alert_ids": i["alert_ids"],
             "affected_sessions": i["affected_sessions"], "affected_viewers": i["affected_viewers"],
             "excess_sessions": encode(i["excess_sessions"]),
@@ -261,9 +277,48 @@ def incidents_table(incidents: list[dict[str, Any]]) -> str:
     return _table(head, body, below)
 
 
+def check_label(alert: dict[str, Any]) -> str:
+    """What the 'check' column shows: the check's name, or a source alarm's in brackets, '(silent)'
+    (no check is named so)."""
+    return f"({alert['alarm']})" if alert.get("alarm") else str(alert["check_name"])
+
+
+def alarm_line(alert: dict[str, Any]) -> str:
+    """What a source alarm found, for the line below it: 'source=sessions: no new file since
+    2026-11-02 03:00:00 UTC, 47 min at the last run (max_silence 30m)'. Its times are wall clock."""
+    limit = timedelta(seconds=alert["threshold"]) if alert.get("threshold") is not None else None
+    where = printable(alert["key_text"] or f"source={alert.get('source_name')}")
+    still = alert["status"] == "open"
+    if alert["alarm"] == "silent":
+        key, last = "max_silence", alert.get("last_file_at")
+        said = f"no new file since {_clock(last)}"
+        if still and last and alert.get("last_breach_at"):
+            said += f", {spoken((alert['last_breach_at'] - last).total_seconds())} at the last run"
+        elif not still and alert.get("close_reason") == "data flowing again":
+            said = (f"no new file from {_clock(alert['breach_started_at'])} to {_clock(alert['closed_at'])}, "
+                    f"{spoken((alert['closed_at'] - alert['breach_started_at']).total_seconds())}")
+    else:
+        key = "max_lag"
+        said = (f"newest data {_time_text(alert.get('newest_data_at'))} (data time), more than {key} behind the "
+                f"clock since {_clock(alert['opened_at'])}") if still else \
+            f"newest data more than {key} behind the clock from {_clock(alert['opened_at'])} to {_clock(alert['closed_at'])}"
+        said += f", at most {spoken(alert.get('peak_value'))}"
+    return f"{where}: {said} ({key} {duration_text(limit) if limit else '?'})"
+
+
+def _clock(value: datetime | None) -> str:
+    return f"{_time_text(value)} UTC"
+
+
+def _time_text(value: datetime | None) -> str:
+    return value.strftime("%Y-%m-%d %H:%M:%S") if value else "?"
+
+
 def incident_cause(incident: dict[str, Any]) -> str:
-    """'site_errors site=news', with the split value in brackets: the cause alert's series."""
-    text = f"{incident['cause_check'] or '?'} {incident['cause_key_text'] or '(all sessions)'}"
+    """'site_errors site=news', with the split value in brackets: the cause alert's series ('(silent)
+    source=sessions' for a source alarm's)."""
+    check = f"({incident['cause_alarm']})" if incident.get("cause_alarm") else incident["cause_check"] or "?"
+    text = f"{check} {incident['cause_key_text'] or '(all sessions)'}"
     if incident["cause_split_value"] is not None:
         text += f" [{incident['cause_split_value']}]"
     return printable(text)

@@ -14,7 +14,7 @@ import io
 import re
 import warnings
 from dataclasses import dataclass, field
-from datetime import datetime, timezone
+from datetime import datetime, timedelta, timezone
 from importlib.resources import files
 from pathlib import Path
 from typing import Any
@@ -28,8 +28,9 @@ from toolkit import __version__
 from toolkit.engine import warehouse
 from toolkit.sql.templates import template_folder
 from toolkit.model import Check, Project
-from toolkit.outputs.listings import (alerts_from, cause_line, count_or_dash, excess_share_text, incident_cause,
-                                      incidents_from)
+from toolkit.config.fields import duration_text
+from toolkit.outputs.listings import (alarm_line, alerts_from, cause_line, check_label, count_or_dash, excess_share_text,
+                                      incident_cause, incidents_from)
 
 CONTEXT_BEFORE = 48   # windows drawn before an alert's first breaching window
 CONTEXT_AFTER = 24    # windows drawn after the window that closed it
@@ -141,7 +142,7 @@ def _incident_card(project: Project, incident: dict[str, Any], shown: dict[str, 
     explained = []
     for alert_id in incident["alert_ids"]:
         alert = shown.get(alert_id)
-        label = (f"{alert['check_name']}: {alert['key_text'] or '(all sessions)'}"
+        label = (f"{check_label(alert)}: {alert['key_text'] or '(all sessions)'}"
                  + (f" [{alert['split_value']}]" if alert["split_value"] is not None else "")
                  + f" ({alert['status']})") if alert else f"alert {alert_id} (not in this report)"
         explained.append({"alert_id": alert_id, "label": label, "anchor": f"alert-{alert_id}" if alert else None,
@@ -173,8 +174,49 @@ def _incident_card(project: Project, incident: dict[str, Any], shown: dict[str, 
             ("incident id", incident["incident_id"]),
         ],
         "chart": chart,
+        "alarm": alarm_line(cause) if cause is not None and cause.get("alarm") else None,
+        "no_chart": NO_ALARM_CHART if incident.get("cause_alarm") else "No windows of the cause's series are in the warehouse.",
         "series": series,
         "direction": check.direction if check else None,
+    }
+
+
+NO_ALARM_CHART = "A source alarm has no windows: it compares the wall clock with the source's files and data."
+ALARM_ABOUT = {
+    "silent": "No new file arrived for the source for longer than its max_silence (wall-clock time).",
+    "lagging": "The source's newest data time fell behind the wall clock by more than its max_lag.",
+}
+
+
+def _alarm_card(alert: dict[str, Any], earlier: int) -> dict[str, Any]:
+    """A source alarm's card: what it found and when (wall clock), no windows to chart."""
+    limit = duration_text(timedelta(seconds=alert["threshold"])) if alert["threshold"] is not None else "?"
+    silent = alert["alarm"] == "silent"
+    return {
+        "alert": alert,
+        "label": check_label(alert),
+        "anchor": f"alert-{alert['alert_id']}",
+        "figures": [
+            ("status", alert["status"] + (f" ({alert['close_reason']})" if alert["close_reason"] else "")),
+            ("severity", alert["severity"]),
+            ("source", alert["source_name"] or "?"),
+            ("max_silence" if silent else "max_lag", limit),
+            ("newest file arrived" if silent else "newest data (data time)",
+             _time(alert["last_file_at"] if silent else alert["newest_data_at"])),
+            ("opened (wall clock, UTC)", _time(alert["opened_at"])),
+            ("last found", _time(alert["last_breach_at"])),
+            ("closed", _time(alert["closed_at"]) or "still open"),
+            ("what it found", alarm_line(alert)),
+            ("earlier alerts of this alarm", str(earlier)),
+            ("incident", alert.get("incident_id") or "none"),
+            ("alert id", alert["alert_id"]),
+            ("fingerprint", alert["fingerprint"]),
+        ],
+        "about": ALARM_ABOUT.get(alert["alarm"], ""),
+        "direction": None,
+        "chart": None,
+        "no_chart": NO_ALARM_CHART,
+        "series": Series(),
     }
 
 
@@ -194,6 +236,8 @@ def _cause_text(cause: dict[str, Any], check: Check | None) -> str:
 
 
 def _card(project: Project, alert: dict[str, Any], series: Series, earlier: int) -> dict[str, Any]:
+    if alert.get("alarm"):
+        return _alarm_card(alert, earlier)
     check = project.checks.get(alert["check_name"])
     kind = check.measure.kind if check else None
     fmt = _format_for(kind)
@@ -203,6 +247,7 @@ def _card(project: Project, alert: dict[str, Any], series: Series, earlier: int)
         series.statistic = "CUSUM statistic"
     return {
         "alert": alert,
+        "label": check_label(alert),
         "anchor": f"alert-{alert['alert_id']}",
         "figures": [
             ("status", alert["status"] + (f" ({alert['close_reason']})" if alert["close_reason"] else "")),
@@ -230,6 +275,7 @@ def _card(project: Project, alert: dict[str, Any], series: Series, earlier: int)
         "about": check.about if check else "",
         "direction": check.direction if check else None,
         "chart": markupsafe.Markup(chart_svg(alert, series, None if cusum else kind)) if series.shown else None,
+        "no_chart": "No windows of this series are in the warehouse.",
         "series": series,
     }
 

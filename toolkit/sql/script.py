@@ -85,6 +85,12 @@ def incident_statements() -> tuple[Statement, ...]:
     return tuple(statement for _, _, statements_ in named("incidents.sql").sections for statement in statements_)
 
 
+@lru_cache(maxsize=1)
+def alarm_statements() -> Named:
+    """``queries/alarms.sql``: the source alarms (silent, lagging) a run judges after its checks."""
+    return named("alarms.sql")
+
+
 def layout_statements() -> Named:
     """``queries/layout.sql``: the warehouse's layout and its conversion."""
     return named("layout.sql")
@@ -178,15 +184,30 @@ def _stage_text(stage: Stage, apart: bool, run: Named) -> str:
 RUN_ENDS = "the run ends"
 
 
-def with_after_checks(script_text: str, after_checks: str) -> str:
+def with_after_checks(script_text: str, after_checks: str, source: Source | None = None) -> str:
     """A check's script with what the run executes after every check and before it ends (the
-    causes of the alerts it opened or grew, and the incidents), in its place."""
+    alarms of ``source`` when it has any, the causes of the alerts it opened or grew, and the
+    incidents), in its place."""
     at = script_text.index(f"-- ══ {RUN_ENDS} ")
-    part = _heading("after every check: causes and incidents", "the causes of each alert the run opened or "
+    part = alarms_text(source) if source is not None else ""
+    part += _heading("after every check: causes and incidents", "the causes of each alert the run opened or "
                     "added breaching windows to (for each: causes.alert, causes.windows, then the explain "
                     "statements, explain.round and explain.mark in turns, and causes.store); then every alert "
                     "grouped into incidents") + after_checks.rstrip("\n") + "\n"
     return script_text[:at] + part + script_text[at:]
+
+
+def alarms_text(source: Source) -> str:
+    """What a run executes for ``source``'s alarms, for `plimsoll sql`: nothing but the retiring of
+    alarms no longer watched when it has neither max_silence nor max_lag."""
+    alarms = alarm_statements()
+    watched = [name for name, limit in (("max_silence", source.max_silence), ("max_lag", source.max_lag)) if limit]
+    if not watched:
+        return (_heading("after every check: source alarms", "open alarms of sources no longer watched close "
+                         f"(source {source.name} has no max_silence or max_lag)") + alarms.text("alarms.retire") + "\n")
+    return (_heading("after every check: source alarms", "open alarms of sources no longer watched close; then "
+                     f"source {source.name}'s {' and '.join(watched)}, judged in wall-clock time (not in a backtest)")
+            + alarms.text("alarms.") + "\n")
 
 
 def _heading(title: str, what: str) -> str:

@@ -45,10 +45,10 @@ BEGIN TRANSACTION;
 
 -- @statement begin.known_checks
 -- Checks the warehouse knows, by their state or an open alert; those no longer in the project are
--- retired.
+-- retired. (A source alarm's alert is no check's: queries/alarms.sql retires those.)
 SELECT check_name FROM check_state
 UNION
-SELECT check_name FROM alerts WHERE status = 'open'
+SELECT check_name FROM alerts WHERE status = 'open' AND check_name IS NOT NULL
 ORDER BY 1;
 
 -- @statement begin.forget_removed_sources
@@ -274,6 +274,34 @@ SET rounds = $rounds
 WHERE run_id = $run_id AND check_name = $check
 RETURNING rows_read, windows_written, alerts_opened, alerts_closed;
 
+-- ══ after every check: source alarms ═════════════════════════════════════════════════════
+-- open alarms of sources no longer watched close (source sessions has no max_silence or max_lag)
+-- @statement alarms.retire
+-- Open alarms no longer watched close, at $now: their source gone from the project ($sources), or
+-- its max_silence ($silent_sources: the sources that have one) or max_lag ($lagging_sources) taken
+-- out. Returns what closed, for the run's summary.
+CREATE OR REPLACE TEMP TABLE alarm_retired AS
+SELECT alert_id, source_name, alarm,
+       CASE WHEN list_contains($sources::VARCHAR[], source_name) THEN 'limit removed' ELSE 'source removed' END
+           AS close_reason
+FROM alerts
+WHERE status = 'open' AND alarm IS NOT NULL
+  AND NOT list_contains(CASE alarm WHEN 'silent' THEN $silent_sources::VARCHAR[] ELSE $lagging_sources::VARCHAR[] END,
+                        source_name);
+
+INSERT INTO alert_events BY NAME
+SELECT a.alert_id, $run_id AS run_id, $now::TIMESTAMP AS occurred_at, 'closed' AS event, NULL::DOUBLE AS value,
+       a.threshold, a.last_file_at, a.newest_data_at
+FROM alerts AS a
+SEMI JOIN alarm_retired AS r ON r.alert_id = a.alert_id;
+
+UPDATE alerts
+SET status = 'closed', close_reason = r.close_reason, closed_at = $now::TIMESTAMP, last_run_id = $run_id
+FROM alarm_retired AS r
+WHERE alerts.alert_id = r.alert_id;
+
+SELECT source_name, alarm, close_reason FROM alarm_retired ORDER BY source_name, alarm DESC;
+
 -- ══ after every check: causes and incidents ══════════════════════════════════════════════
 -- the causes of each alert the run opened or added breaching windows to (for each: causes.alert,
 -- causes.windows, then the explain statements, explain.round and explain.mark in turns, and
@@ -344,11 +372,13 @@ WITH RECURSIVE
 nodes AS (
     SELECT
         alert_id, check_name, key, split_value, status, opened_at, closed_at, breach_started_at, last_breach_at,
-        severity, affected_sessions, affected_viewers, excess_sessions, last_run_id,
+        severity, affected_sessions, affected_viewers, excess_sessions, last_run_id, alarm,
         list_transform(map_entries(key), lambda e: e.key || '=' || coalesce(e.value, chr(0))) AS items,
         row_number() OVER (ORDER BY cardinality(key) DESC,
                                     CASE severity WHEN 'high' THEN 0 WHEN 'medium' THEN 1 ELSE 2 END,
-                                    coalesce(affected_sessions, 0) DESC, opened_at, alert_id) AS cause_order
+                                    coalesce(affected_sessions, 0) DESC,
+                                    -- a source both silent and lagging: the silence explains the lag
+                                    alarm IS NOT DISTINCT FROM 'lagging', opened_at, alert_id) AS cause_order
     FROM alerts
     WHERE close_reason IS DISTINCT FROM 'check changed'
 ),
@@ -368,6 +398,7 @@ pairs AS (
     JOIN nodes AS b
         ON a.alert_id <> b.alert_id
        AND a.breach_started_at < b.last_breach_at AND b.breach_started_at < a.last_breach_at
+       AND (a.alarm IS NULL) = (b.alarm IS NULL)
 ),
 edges AS (
     SELECT p.explainer, p.explained, p.cause_order, 1.0::DOUBLE AS share
@@ -437,7 +468,8 @@ SELECT
     any_value(c.affected_sessions) AS affected_sessions,
     any_value(c.affected_viewers) AS affected_viewers,
     any_value(c.excess_sessions) AS excess_sessions,
-    max(i.last_breach_at) AS last_breach_at
+    max(i.last_breach_at) AS last_breach_at,
+    any_value(c.alarm) AS cause_alarm
 FROM incident_alerts AS i
 JOIN alerts AS c ON c.alert_id = i.cause_alert_id
 GROUP BY i.cause_alert_id, i.first_alert_id;
@@ -473,7 +505,10 @@ FROM incidents_now AS n
 LEFT JOIN incidents AS o USING (incident_id)
 WHERE n.status = 'closed' AND o.status IS DISTINCT FROM 'closed'
 UNION ALL
-SELECT o.incident_id, $run_id, (SELECT max(last_breach_at) FROM incidents_now), 'closed', 'merged',
+SELECT o.incident_id, $run_id,
+       -- a source alarm's incident in wall clock, a check's in data time
+       (SELECT max(m.last_breach_at) FROM incidents_now AS m WHERE (m.cause_alarm IS NULL) = (o.cause_alarm IS NULL)),
+       'closed', 'merged',
        o.cause_alert_id, o.alerts, o.alert_ids, o.affected_sessions, o.affected_viewers
 FROM incidents AS o
 WHERE o.incident_id NOT IN (SELECT incident_id FROM incidents_now);
@@ -485,7 +520,7 @@ CREATE OR REPLACE TEMP TABLE incidents_next AS
 SELECT
     n.incident_id, n.status, n.opened_at, n.closed_at, n.cause_alert_id, n.cause_check, n.cause_key,
     n.cause_key_text, n.cause_split_value, n.severity, n.alerts, n.alert_ids, n.affected_sessions,
-    n.affected_viewers, n.excess_sessions,
+    n.affected_viewers, n.excess_sessions, n.cause_alarm,
     coalesce(o.first_run_id, $run_id) AS first_run_id,
     CASE WHEN o.incident_id IS NULL OR o.status <> n.status OR o.alert_ids <> n.alert_ids
               OR o.cause_alert_id <> n.cause_alert_id OR o.affected_sessions IS DISTINCT FROM n.affected_sessions
@@ -495,7 +530,7 @@ LEFT JOIN incidents AS o USING (incident_id);
 
 DELETE FROM incidents;
 
-INSERT INTO incidents SELECT * FROM incidents_next;
+INSERT INTO incidents BY NAME SELECT * FROM incidents_next;
 
 UPDATE alerts
 SET incident_id = i.incident_id
