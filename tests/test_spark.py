@@ -113,10 +113,10 @@ def differences(con: duckdb.DuckDBPyConnection, table: str, columns: str) -> lis
         "ORDER BY ALL LIMIT 20").fetchall()
 
 
-def assert_same_results(con: duckdb.DuckDBPyConnection) -> None:
+def assert_same_results(con: duckdb.DuckDBPyConnection, min_windows: int = 10_000) -> None:
     counts = con.execute("SELECT (SELECT count(*) FROM ref.windows WHERE check_name IN (SELECT check_name FROM got.check_state)), "
                          "(SELECT count(*) FROM got.windows), (SELECT count(*) FROM got.alerts)").fetchone()
-    assert counts[0] == counts[1] and counts[0] > 10_000, counts
+    assert counts[0] == counts[1] and counts[0] > min_windows, counts
     assert counts[2] > 0, "the demo lake at this size must raise alerts, or the comparison proves little"
     assert differences(con, "windows", WINDOW_COLUMNS) == []
     assert differences(con, "key_windows", "check_name, key_text, key_window, window_number, window_start, window_end, sessions, bad") == []
