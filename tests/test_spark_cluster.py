@@ -1,5 +1,5 @@
 """engine: spark on a Spark standalone cluster: a master and one worker on 127.0.0.1, started from
-the installed pyspark package alone, whose executors are JVMs of their own.
+the installed pyspark package alone, whose executors are JVMs of their own (and have no Python).
 
 Local mode runs the driver and the executors in one JVM, so whatever a step keeps on the driver
 (a file, a Python object, a setting of the driver's JVM) reaches the executors there by accident. On
@@ -64,13 +64,17 @@ START_TIMEOUT = 120.0           # seconds for the master and the worker to start
 STOP_TIMEOUT = 20.0             # seconds for a killed process group to be gone
 WORKER_TIME_ZONE = "Pacific/Chatham"  # UTC+12:45 or +13:45: nobody's default
 # The driver runs in the test process; it binds to 127.0.0.1 like the cluster, and asks for what one
-# worker of one core and 1 GiB has.
-CLUSTER_CONF = """\
+# worker of one core and 1 GiB has. The executors are given no Python: every step on Spark is SQL,
+# so a step that needed a Python worker there (a UDF, an RDD of Python objects) fails the test.
+NO_PYTHON = "/nonexistent/python-on-the-executors"
+CLUSTER_CONF = f"""\
 engine: spark
-spark_master: {url}
+spark_master: {{url}}
 spark_conf:
   spark.driver.host: 127.0.0.1
   spark.driver.bindAddress: 127.0.0.1
+  spark.pyspark.python: {NO_PYTHON}
+  spark.executorEnv.PYSPARK_PYTHON: {NO_PYTHON}
   spark.executor.memory: 768m
   spark.executor.cores: 1
   spark.cores.max: 1
