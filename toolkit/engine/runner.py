@@ -20,6 +20,7 @@ executes for a check, ``plimsoll sql`` prints in the same order (:mod:`toolkit.s
 
 from __future__ import annotations
 
+import time
 from collections.abc import Callable
 from dataclasses import dataclass, field
 from datetime import datetime, timezone
@@ -548,10 +549,12 @@ def _run_check(con: duckdb.DuckDBPyConnection, stages: duckdb.DuckDBPyConnection
     result = CheckResult(check.name, files_read=len(new))
     if not new:
         return result
+    started = time.monotonic()
     run_id = params["run_id"]
     for stage in sql.stages[1:]:
         result.rounds += _run_stage(con, stages, f"check {check.name}", stage, params)
-    row = _run_named(con, "check.result", {"rounds": result.rounds, "run_id": run_id, "check": check.name})
+    row = _run_named(con, "check.result", {"rounds": result.rounds, "run_id": run_id, "check": check.name,
+                                           "seconds": round(time.monotonic() - started, 3)})
     result.rows_read, result.windows_written, result.alerts_opened, result.alerts_closed = row
     return result
 
