@@ -39,10 +39,14 @@ from toolkit.sql.script import (AFTER_VERDICT, incident_statements, MOVED_AFTER,
                                 STREAMED, created_table, run_statements, streams, writes_warehouse)
 from toolkit.sql.templates import Stage, Statement
 from toolkit.model import Check, Project, Source
-from toolkit.problems import DataError, PlimsollError, Problem, ProjectInvalid, WarehouseError, engine_message
+from toolkit.problems import (ChecksChanged, DataError, PlimsollError, Problem, ProjectInvalid, WarehouseError,
+                              engine_message)
 from toolkit.sql.quoting import interval
 
 Progress = Callable[[str], None]
+# Called after each run with the warehouse connection (still held), the run's id and its result
+# (None when it failed): its records are committed, ok or failed, and no other run can start yet.
+AfterRun = Callable[[duckdb.DuckDBPyConnection, int, "RunResult | None"], None]
 
 # The run's own statements (queries/run.sql) run as this stage: a failure among them is the
 # warehouse's (a full disk, a lost file), reported as the engine says it, not as a check's.
@@ -103,7 +107,7 @@ def select_checks(project: Project, names: list[str] | tuple[str, ...] | None) -
 
 
 def run(project: Project, names: list[str] | None = None, rebuild: bool = False,
-        progress: Progress | None = None, wait: float = 0.0) -> RunResult:
+        progress: Progress | None = None, wait: float = 0.0, after_run: AfterRun | None = None) -> RunResult:
     """Runs of the selected checks until they have read every file; returns what they did, raises
     on failure after rolling back the failing run.
 
@@ -113,7 +117,8 @@ def run(project: Project, names: list[str] | None = None, rebuild: bool = False,
     again. A check whose definition changed since its windows were computed is skipped (it needs a
     rebuild) while the others run; the result lists it. Waits up to ``wait`` seconds for another
     run to release the warehouse. After every run (failed or not) the tables analysts read are
-    published as Parquet beside the warehouse.
+    published as Parquet beside the warehouse, and ``after_run`` is called (to read its records
+    before another process can take the warehouse).
     """
     checks = select_checks(project, names)
     compiled = [check_plan(c) for c in checks]
@@ -125,7 +130,7 @@ def run(project: Project, names: list[str] | None = None, rebuild: bool = False,
         changed = {} if rebuild else _changed(con, checks, compiled)
         skipped = list(changed.values())
         if skipped and len(skipped) == len(checks):
-            raise ProjectInvalid(skipped)
+            raise ChecksChanged(skipped)
         chosen = [(c, s) for c, s in zip(checks, compiled) if c.name not in changed]
         checks, compiled = [c for c, _ in chosen], [s for _, s in chosen]
         for problem in skipped:
@@ -137,7 +142,11 @@ def run(project: Project, names: list[str] | None = None, rebuild: bool = False,
                     result = _run(con, project, run_id, checks, compiled, rebuild and not done, say, budget)
                 except PlimsollError:
                     _publish_quietly(con, project)
+                    if after_run is not None:
+                        after_run(con, run_id, None)
                     raise
+                if after_run is not None:
+                    after_run(con, run_id, result)
                 _publish(con, project, run_id)
             done.append(result)
             if not result.more:
