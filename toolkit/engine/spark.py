@@ -121,6 +121,15 @@ def _to_duckdb(spark: Any, con: duckdb.DuckDBPyConnection, statement: SparkState
 _STEPS = {"read": _read, "spark": _spark_sql, "to-spark": _to_spark, "to-duckdb": _to_duckdb}
 
 
+# How Py4J begins the message of a Java exception that pyspark does not turn into one of its own
+# (a file system, an executor's failure): its first line names only the method called
+_PY4J_CALL = "An error occurred while calling "
+
+
 def _first_line(err: BaseException) -> str:
-    text = str(err).strip()
-    return text.splitlines()[0] if text else type(err).__name__
+    lines = [line.strip() for line in str(err).strip().splitlines() if line.strip()]
+    if not lines:
+        return type(err).__name__
+    if lines[0].startswith(_PY4J_CALL) and len(lines) > 1:
+        return lines[1].removeprefix(":").strip()  # the Java exception and its message
+    return lines[0]
