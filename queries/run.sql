@@ -170,9 +170,10 @@ SELECT path, insane_times FROM lake_file_rows WHERE insane_times > 0 ORDER BY pa
 -- ════ after each check's stages ════
 
 -- @statement check.result
--- How many rounds $check's verdicts took ($rounds), and what the check did, for the run's summary.
+-- How many rounds $check's verdicts took ($rounds), the seconds its own stages took ($seconds: wall
+-- clock, from its scan to its persist), and what the check did, for the run's summary.
 UPDATE run_checks
-SET rounds = $rounds
+SET rounds = $rounds, seconds = $seconds
 WHERE run_id = $run_id AND check_name = $check
 RETURNING rows_read, windows_written, alerts_opened, alerts_closed;
 

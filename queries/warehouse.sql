@@ -209,6 +209,7 @@ ALTER TABLE runs ADD COLUMN IF NOT EXISTS nonfinite_values BIGINT;  -- measure i
 ALTER TABLE runs ADD COLUMN IF NOT EXISTS warning VARCHAR;          -- what a scheduler's log should shout about
 ALTER TABLE run_checks ADD COLUMN IF NOT EXISTS nonfinite_values BIGINT;
 ALTER TABLE run_checks ADD COLUMN IF NOT EXISTS beyond_horizon BIGINT;  -- late by more than dedup_horizon: left out
+ALTER TABLE run_checks ADD COLUMN IF NOT EXISTS seconds DOUBLE;         -- wall clock: the check's own stages, scan to persist
 ALTER TABLE files_read ADD COLUMN IF NOT EXISTS source_name VARCHAR;
 ALTER TABLE files_read ADD COLUMN IF NOT EXISTS invalid_rows BIGINT;   -- rows without id or a sane event time
 ALTER TABLE session_ids ADD COLUMN IF NOT EXISTS event_time TIMESTAMP; -- the session's data time: ids are kept within dedup_horizon

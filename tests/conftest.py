@@ -189,7 +189,7 @@ def write_rows(lake: Path, schema: str, rows: list[tuple], name: str = "part.par
     return lake
 
 
-WALL_CLOCK = {"runs": ("started_at", "finished_at")}
+WALL_CLOCK = {"runs": ("started_at", "finished_at"), "run_checks": ("seconds",)}
 
 
 def _normal(value):

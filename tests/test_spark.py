@@ -113,10 +113,10 @@ def differences(con: duckdb.DuckDBPyConnection, table: str, columns: str) -> lis
         "ORDER BY ALL LIMIT 20").fetchall()
 
 
-def assert_same_results(con: duckdb.DuckDBPyConnection) -> None:
+def assert_same_results(con: duckdb.DuckDBPyConnection, min_windows: int = 10_000) -> None:
     counts = con.execute("SELECT (SELECT count(*) FROM ref.windows WHERE check_name IN (SELECT check_name FROM got.check_state)), "
                          "(SELECT count(*) FROM got.windows), (SELECT count(*) FROM got.alerts)").fetchone()
-    assert counts[0] == counts[1] and counts[0] > 10_000, counts
+    assert counts[0] == counts[1] and counts[0] > min_windows, counts
     assert counts[2] > 0, "the demo lake at this size must raise alerts, or the comparison proves little"
     assert differences(con, "windows", WINDOW_COLUMNS) == []
     assert differences(con, "key_windows", "check_name, key_text, key_window, window_number, window_start, window_end, sessions, bad") == []
@@ -213,3 +213,21 @@ def test_a_spark_failure_names_the_stage_and_writes_nothing(tmp_path: Path) -> N
     assert con.execute("SELECT status FROM runs").fetchall() == [("failed",)]
     assert con.execute("SELECT (SELECT count(*) FROM windows) + (SELECT count(*) FROM files_read) "
                        "+ (SELECT count(*) FROM check_state)").fetchone() == (0,)
+
+
+def test_a_java_error_is_named_by_its_own_message(tmp_path: Path) -> None:
+    """A Java exception pyspark does not translate (here: a file system Spark has no connector for,
+    as an executor's failure would be) is named by its class and message, not by Py4J's line
+    'An error occurred while calling o42.parquet.'."""
+    from toolkit.engine.spark import execute
+    from toolkit.model import Engine
+    from toolkit.problems import DataError
+    from toolkit.sql.spark import SparkStatement
+
+    engine = Engine("spark", "local[2]", (("spark.sql.shuffle.partitions", "4"), ("spark.driver.memory", "1g"),
+                                          ("spark.sql.codegen.wholeStage", "false")))
+    read = SparkStatement("", frozenset({"files"}), engine, "read", "lake_files", str(tmp_path))
+    with pytest.raises(DataError) as caught:
+        execute(duckdb.connect(), "source sessions", "source", read, {"files": ["s3://fernhill-lake/sessions/a.parquet"]})
+    assert str(caught.value) == ('source sessions, stage source (Spark): org.apache.hadoop.fs.'
+                                 'UnsupportedFileSystemException: No FileSystem for scheme "s3"')

@@ -406,3 +406,19 @@ def test_a_compaction_is_no_new_data_for_a_silent_table(batches: list[pa.Table],
     table.append(batches[0].slice(10_000, 5_000))   # written now: an hour after the start
     flowing = run(load_project(project), clock=at(75)).alarms
     assert [(a.alarm, a.action, a.close_reason) for a in flowing] == [("silent", "closed", "data flowing again")]
+
+
+def test_run_json_gives_each_checks_table_version_and_the_source_alarms(batches: list[pa.Table],
+                                                                         tmp_path: Path) -> None:
+    import json
+
+    table = DeltaLake(tmp_path / "delta")
+    table.append(batches[0].slice(0, 5_000))
+    project = write_project(tmp_path, table.source() + "    max_silence: 1d\n", checks=("site_errors.yml",))
+    table.append(batches[0].slice(5_000, 5_000))
+    done = subprocess.run([*plimsoll_command(), "run", "-p", str(project), "--json"], capture_output=True,
+                          text=True)
+    assert done.returncode == 0, done.stderr
+    (only,) = json.loads(done.stdout)["runs"]
+    assert [c["table_version"] for c in only["checks"]] == [table.version()]
+    assert only["alarms"] == []

@@ -123,13 +123,17 @@ def show_sql(check: str, project_file: Path) -> None:
 @click.option("--rebuild", is_flag=True, help="Forget these checks' state and read the whole lake again.")
 @click.option("--wait", default=0.0, show_default=True, type=click.FloatRange(min=0),
               help="Seconds to wait for another run to release the warehouse.")
+@click.option("--json", "as_json", is_flag=True,
+              help="Print every run's record and its checks' as one JSON document, also on failure.")
 @reports_errors
-def run(project_file: Path, checks: tuple[str, ...], rebuild: bool, wait: float) -> None:
+def run(project_file: Path, checks: tuple[str, ...], rebuild: bool, wait: float, as_json: bool) -> None:
     """Run the checks over the lake files not read before.
 
     One run, or several in turn when the backlog exceeds max_read_per_run; exit 2 when a changed check
     was left out (run it with --rebuild).
     """
+    if as_json:
+        _run_json(project_file, checks, rebuild, wait)
     project = load_project(project_file)
     with _Progress() as progress:
         result = run_checks(project, list(checks), rebuild, progress, wait=wait)
@@ -314,6 +318,19 @@ def backtest(checks: tuple[str, ...], project_file: Path, start: datetime, end: 
     with _Progress() as progress:
         outcome = replay(project, list(checks), start, end, compared, labels, keep, progress)
     click.echo(backtest_json(outcome) if as_json else backtest_table(outcome))
+
+
+def _run_json(project_file: Path, checks: tuple[str, ...], rebuild: bool, wait: float) -> None:
+    """`run --json`: the records on stdout, whatever happened; progress, warnings and the error line
+    on stderr as without it; the same exit codes."""
+    from toolkit.outputs.runs import records_json, run_with_records
+
+    with _Progress() as progress:
+        records = run_with_records(project_file, list(checks), rebuild, progress, wait)
+    for line in records.lines():
+        click.echo(line, err=True)
+    click.echo(records_json(records))
+    sys.exit(records.exit_code)
 
 
 def _plural(n: int, noun: str) -> str:

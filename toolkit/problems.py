@@ -34,6 +34,11 @@ class ProjectInvalid(PlimsollError):
         super().__init__("\n".join(str(p) for p in self.problems))
 
 
+class ChecksChanged(ProjectInvalid):
+    """Every check a run was to run has changed since its windows were computed: each needs a
+    rebuild, and nothing ran (exit 2, like any other invalid project)."""
+
+
 class DataError(PlimsollError):
     """The lake's data cannot be read as the project says (a file, a column, a type); exit 1."""
 

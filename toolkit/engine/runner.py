@@ -20,6 +20,7 @@ executes for a check, ``plimsoll sql`` prints in the same order (:mod:`toolkit.s
 
 from __future__ import annotations
 
+import time
 from collections.abc import Callable
 from dataclasses import dataclass, field
 from datetime import datetime, timezone
@@ -40,11 +41,15 @@ from toolkit.sql.script import (AFTER_VERDICT, incident_statements, MOVED_AFTER,
                                 STREAMED, created_table, run_statements, streams, writes_warehouse)
 from toolkit.sql.templates import Stage, Statement
 from toolkit.model import Check, Project, Source
-from toolkit.problems import DataError, PlimsollError, Problem, ProjectInvalid, WarehouseError, engine_message
+from toolkit.problems import (ChecksChanged, DataError, PlimsollError, Problem, ProjectInvalid, WarehouseError,
+                              engine_message)
 from toolkit.sql.quoting import interval
 
 Progress = Callable[[str], None]
 Clock = Callable[[], datetime]  # the wall clock, naive UTC
+# Called after each run with the warehouse connection (still held), the run's id and its result
+# (None when it failed): its records are committed, ok or failed, and no other run can start yet.
+AfterRun = Callable[[duckdb.DuckDBPyConnection, int, "RunResult | None"], None]
 
 # The run's own statements (queries/run.sql) run as this stage: a failure among them is the
 # warehouse's (a full disk, a lost file), reported as the engine says it, not as a check's.
@@ -107,7 +112,8 @@ def select_checks(project: Project, names: list[str] | tuple[str, ...] | None) -
 
 
 def run(project: Project, names: list[str] | None = None, rebuild: bool = False,
-        progress: Progress | None = None, wait: float = 0.0, clock: Clock | None = None) -> RunResult:
+        progress: Progress | None = None, wait: float = 0.0, clock: Clock | None = None,
+        after_run: AfterRun | None = None) -> RunResult:
     """Runs of the selected checks until they have read every file; returns what they did, raises
     on failure after rolling back the failing run.
 
@@ -117,7 +123,8 @@ def run(project: Project, names: list[str] | None = None, rebuild: bool = False,
     again. A check whose definition changed since its windows were computed is skipped (it needs a
     rebuild) while the others run; the result lists it. Waits up to ``wait`` seconds for another
     run to release the warehouse. After every run (failed or not) the tables analysts read are
-    published as Parquet beside the warehouse.
+    published as Parquet beside the warehouse, and ``after_run`` is called (to read its records
+    before another process can take the warehouse).
 
     ``clock`` gives the wall clock (naive UTC; default the system's): the run record's times and the
     source alarms, the one decision it enters. Tests pass one that only pretends.
@@ -132,7 +139,7 @@ def run(project: Project, names: list[str] | None = None, rebuild: bool = False,
         changed = {} if rebuild else _changed(con, checks, compiled)
         skipped = list(changed.values())
         if skipped and len(skipped) == len(checks):
-            raise ProjectInvalid(skipped)
+            raise ChecksChanged(skipped)
         chosen = [(c, s) for c, s in zip(checks, compiled) if c.name not in changed]
         checks, compiled = [c for c, _ in chosen], [s for _, s in chosen]
         for problem in skipped:
@@ -145,7 +152,11 @@ def run(project: Project, names: list[str] | None = None, rebuild: bool = False,
                                   clock or _now)
                 except PlimsollError:
                     _publish_quietly(con, project)
+                    if after_run is not None:
+                        after_run(con, run_id, None)
                     raise
+                if after_run is not None:
+                    after_run(con, run_id, result)
                 _publish(con, project, run_id)
             done.append(result)
             if not result.more:
@@ -625,10 +636,12 @@ def _run_check(con: duckdb.DuckDBPyConnection, stages: duckdb.DuckDBPyConnection
     result = CheckResult(check.name, files_read=len(new))
     if not new:
         return result
+    started = time.monotonic()
     run_id = params["run_id"]
     for stage in sql.stages[1:]:
         result.rounds += _run_stage(con, stages, f"check {check.name}", stage, params)
-    row = _run_named(con, "check.result", {"rounds": result.rounds, "run_id": run_id, "check": check.name})
+    row = _run_named(con, "check.result", {"rounds": result.rounds, "run_id": run_id, "check": check.name,
+                                           "seconds": round(time.monotonic() - started, 3)})
     result.rows_read, result.windows_written, result.alerts_opened, result.alerts_closed = row
     return result
 

@@ -19,7 +19,7 @@ from toolkit.engine.warehouse import finish_pending
 from toolkit.problems import DataError
 from toolkit.sql.spark import FILES_VIEW, SPARK_FILE, SparkStatement
 
-__all__ = ["SparkStatement", "execute", "session"]
+__all__ = ["SparkStatement", "execute", "session", "stop"]
 
 INSTALL_HINT = "pip install 'plimsoll[spark]'"
 DEFAULT_MASTER = "local[*]"
@@ -35,9 +35,16 @@ _SESSIONS: dict[Engine, Any] = {}
 
 
 def session(engine: Engine) -> Any:
-    """The Spark session for ``engine``, started on first use and kept for the process."""
+    """The Spark session for ``engine``, started on first use and kept for the process.
+
+    A process holds one Spark context, and Spark hands a new builder the running one whatever its
+    master: a project on another master or with other settings (a backtest, a test) would run in
+    the session of the one before it, on a local JVM instead of the cluster or the reverse. So the
+    session of another engine setting is stopped first.
+    """
     if engine in _SESSIONS:
         return _SESSIONS[engine]
+    stop()
     try:
         from pyspark.sql import SparkSession
     except ImportError:
@@ -52,6 +59,13 @@ def session(engine: Engine) -> Any:
     spark.sparkContext.setLogLevel("FATAL")
     _SESSIONS[engine] = spark
     return spark
+
+
+def stop() -> None:
+    """Stop the Spark session this process started, if any."""
+    while _SESSIONS:
+        _, spark = _SESSIONS.popitem()
+        spark.stop()
 
 
 def execute(con: duckdb.DuckDBPyConnection, who: str, stage: str, statement: SparkStatement,
@@ -107,6 +121,15 @@ def _to_duckdb(spark: Any, con: duckdb.DuckDBPyConnection, statement: SparkState
 _STEPS = {"read": _read, "spark": _spark_sql, "to-spark": _to_spark, "to-duckdb": _to_duckdb}
 
 
+# How Py4J begins the message of a Java exception that pyspark does not turn into one of its own
+# (a file system, an executor's failure): its first line names only the method called
+_PY4J_CALL = "An error occurred while calling "
+
+
 def _first_line(err: BaseException) -> str:
-    text = str(err).strip()
-    return text.splitlines()[0] if text else type(err).__name__
+    lines = [line.strip() for line in str(err).strip().splitlines() if line.strip()]
+    if not lines:
+        return type(err).__name__
+    if lines[0].startswith(_PY4J_CALL) and len(lines) > 1:
+        return lines[1].removeprefix(":").strip()  # the Java exception and its message
+    return lines[0]

@@ -268,9 +268,10 @@ CREATE OR REPLACE TEMP TABLE "new_windows" AS SELECT * FROM moved_rows;
 -- how many rounds its verdicts took, and what it did
 
 -- @statement check.result
--- How many rounds $check's verdicts took ($rounds), and what the check did, for the run's summary.
+-- How many rounds $check's verdicts took ($rounds), the seconds its own stages took ($seconds: wall
+-- clock, from its scan to its persist), and what the check did, for the run's summary.
 UPDATE run_checks
-SET rounds = $rounds
+SET rounds = $rounds, seconds = $seconds
 WHERE run_id = $run_id AND check_name = $check
 RETURNING rows_read, windows_written, alerts_opened, alerts_closed;
 
