@@ -226,3 +226,14 @@ def plimsoll_command(*args: str) -> list[str]:
     """The installed ``plimsoll`` command (the console script beside this Python), for tests that
     need a real process: what a user or a scheduler runs, its entry point included."""
     return [str(Path(sys.executable).with_name("plimsoll")), *args]
+
+
+def warehouse_query(project, sql: str) -> list[tuple]:
+    """Every row of ``sql`` over a loaded project's warehouse, opened read-only for the query."""
+    import duckdb
+
+    con = duckdb.connect(str(project.warehouse), read_only=True)
+    try:
+        return con.execute(sql).fetchall()
+    finally:
+        con.close()

@@ -24,7 +24,7 @@ import duckdb
 import pytest
 from click.testing import CliRunner
 
-from conftest import plimsoll_command, write_rows
+from conftest import plimsoll_command, write_rows, warehouse_query
 from known_lake import CHECK, HOSTILE, SCHEMA, START, known_project, session_rows, warehouse_held
 from oracle import key_value
 from toolkit.cli import main
@@ -561,11 +561,7 @@ def rebuild(project, old: str, new: str):
 
 
 def query(project, sql: str) -> list[tuple]:
-    con = duckdb.connect(str(project.warehouse), read_only=True)
-    try:
-        return con.execute(sql).fetchall()
-    finally:
-        con.close()
+    return warehouse_query(project, sql)
 
 
 def test_a_rebuild_with_a_changed_factor_sends_no_incident_again(tmp_path: Path, hook: Hook) -> None:

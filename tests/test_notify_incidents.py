@@ -9,8 +9,8 @@ import json
 from datetime import timedelta
 from pathlib import Path
 
-import duckdb
 import pytest
+from conftest import warehouse_query
 from click.testing import CliRunner
 
 import incident_lake
@@ -54,11 +54,7 @@ def made(tmp_path: Path, tmp_path_factory: pytest.TempPathFactory):
 
 
 def query(project, sql: str) -> list[tuple]:
-    con = duckdb.connect(str(project.warehouse), read_only=True)
-    try:
-        return con.execute(sql).fetchall()
-    finally:
-        con.close()
+    return warehouse_query(project, sql)
 
 
 def outbox_incidents(project) -> list[tuple]:

@@ -102,91 +102,87 @@ def without_kids(batch: pa.Table) -> pa.Table:
     return batch.filter(pc.invert(pc.equal(batch["site"], "kids")))
 
 
+class Twins:
+    """A table source and its reference, the same sessions as loose Parquet files, each a project;
+    a batch appended to one is appended to the other, and a run runs both."""
+
+    def __init__(self, fmt: str, folder: Path):
+        self.table = table_of(fmt, folder / "table")
+        self.project = project_of(fmt, folder / "table", self.table)
+        self.plain = Plain(folder / "plain")
+        self.reference = write_project(folder / "plain", self.plain.source())
+
+    def append(self, batch: pa.Table, reference: pa.Table | None = None) -> None:
+        self.table.append(batch)
+        self.plain.append(batch if reference is None else reference)
+
+    def run(self) -> list[str]:
+        """A run of each; the table's warnings."""
+        warnings = run_project(self.project)
+        run_project(self.reference)
+        return warnings
+
+    def same(self) -> bool:
+        return results(self.project) == results(self.reference)
+
+
 @pytest.mark.parametrize("fmt", ["delta", "iceberg"])
 def test_append_append_compact_append_delete_append_gives_what_loose_files_give(
         fmt: str, batches: list[pa.Table], tmp_path: Path) -> None:
-    table = table_of(fmt, tmp_path / "table")
-    project = project_of(fmt, tmp_path / "table", table)
-    plain = Plain(tmp_path / "plain")
-    reference = write_project(tmp_path / "plain", plain.source())
-
-    table.append(batches[0])
-    plain.append(batches[0])
-    run_project(project)
-    run_project(reference)
-    table.append(batches[1])
-    table.compact()             # no run between the append and the compaction: it was skipped
-    plain.append(batches[1])
-    run_project(project)
-    run_project(reference)
-    table.append(batches[2])
-    plain.append(batches[2])
-    run_project(project)
-    run_project(reference)
-    table.delete(DELETED)       # sessions already counted: not un-counted
-    table.append(batches[3])    # and the run after the delete skipped
-    plain.append(batches[3])
-    warnings = run_project(project)
-    run_project(reference)
+    twins = Twins(fmt, tmp_path)
+    twins.append(batches[0])
+    twins.run()
+    twins.append(batches[1])
+    twins.table.compact()       # no run between the append and the compaction: it was skipped
+    twins.run()
+    twins.append(batches[2])
+    twins.run()
+    twins.table.delete(DELETED)  # sessions already counted: not un-counted
+    twins.append(batches[3])     # and the run after the delete skipped
+    warnings = twins.run()
     assert any("not un-counted" in w for w in warnings), warnings
     assert not any("was the lake copied" in w for w in warnings), warnings
-    assert run_project(project) == []   # nothing new, nothing reported twice
+    assert run_project(twins.project) == []   # nothing new, nothing reported twice
 
-    con = duckdb.connect(str(project.parent / "warehouse.duckdb"), read_only=True)
+    con = duckdb.connect(str(twins.project.parent / "warehouse.duckdb"), read_only=True)
     read = con.execute("SELECT run_id, rows_read FROM runs ORDER BY run_id").fetchall()
+    versions = con.execute("SELECT DISTINCT table_version, complete FROM table_versions").fetchall()
     con.close()
     # each run read the sessions its commits appended, the compaction nothing; only the delete's
     # rewritten files are read again, their sessions known by their ids
     assert [rows for _, rows in read[:3]] == [batches[0].num_rows, batches[1].num_rows, batches[2].num_rows]
     assert read[3][1] > batches[3].num_rows
+    assert versions == [(twins.table.version(), True)]
 
-    got, want = results(project), results(reference)
+    got, want = results(twins.project), results(twins.reference)
     assert len(want["windows"]) > 1000 and len(want["alerts"]) >= 1
     assert got == want
-    con = duckdb.connect(str(project.parent / "warehouse.duckdb"), read_only=True)
-    versions = con.execute("SELECT DISTINCT table_version, complete FROM table_versions").fetchall()
-    con.close()
-    assert versions == [(table.version(), True)]
 
 
 @pytest.mark.parametrize("fmt", ["delta", "iceberg"])
 def test_sessions_deleted_before_any_run_read_them_are_never_counted(
         fmt: str, batches: list[pa.Table], tmp_path: Path) -> None:
-    table = table_of(fmt, tmp_path / "table")
-    project = project_of(fmt, tmp_path / "table", table)
-    plain = Plain(tmp_path / "plain")
-    reference = write_project(tmp_path / "plain", plain.source())
-    table.append(batches[0])
-    plain.append(batches[0])
-    run_project(project)
-    run_project(reference)
-    table.append(batches[1])
-    table.delete(DELETED)       # batch 1's kids sessions go before any run read them
-    plain.append(without_kids(batches[1]))
-    run_project(project)
-    run_project(reference)
-    assert results(project) == results(reference)
+    twins = Twins(fmt, tmp_path)
+    twins.append(batches[0])
+    twins.run()
+    twins.append(batches[1], reference=without_kids(batches[1]))
+    twins.table.delete(DELETED)   # batch 1's kids sessions go before any run read them
+    twins.run()
+    assert twins.same()
 
 
 @pytest.mark.parametrize("fmt", ["delta", "iceberg"])
 def test_files_compacted_and_vacuumed_before_they_were_read_are_read_through_their_compaction(
         fmt: str, batches: list[pa.Table], tmp_path: Path) -> None:
-    table = table_of(fmt, tmp_path / "table")
-    project = project_of(fmt, tmp_path / "table", table)
-    plain = Plain(tmp_path / "plain")
-    reference = write_project(tmp_path / "plain", plain.source())
-    table.append(batches[0])
-    plain.append(batches[0])
-    run_project(project)
-    run_project(reference)
-    table.append(batches[1])
-    table.compact()
-    table.vacuum()              # batch 1's own files are gone before any run read them
-    plain.append(batches[1])
-    warnings = run_project(project)
-    run_project(reference)
+    twins = Twins(fmt, tmp_path)
+    twins.append(batches[0])
+    twins.run()
+    twins.append(batches[1])
+    twins.table.compact()
+    twins.table.vacuum()          # batch 1's own files are gone before any run read them
+    warnings = twins.run()
     assert any("removed from storage before Plimsoll read them" in w for w in warnings), warnings
-    assert results(project) == results(reference)
+    assert twins.same()
 
 
 def test_a_check_added_later_reads_the_table_as_it_is_now(batches: list[pa.Table], tmp_path: Path) -> None:
@@ -336,23 +332,16 @@ def test_an_iceberg_table_rolled_back_reads_on_from_its_current_snapshot(batches
                                                                          tmp_path: Path) -> None:
     """A rollback leaves the snapshot read last out of the table's history: sessions counted stay
     counted, the run says so, and what is appended after is read once."""
-    table = IcebergLake(tmp_path / "table" / "iceberg")
-    project = project_of("iceberg", tmp_path / "table", table)
-    plain = Plain(tmp_path / "plain")
-    reference = write_project(tmp_path / "plain", plain.source())
+    twins = Twins("iceberg", tmp_path)
     for batch in batches[:2]:
-        table.append(batch)
-        plain.append(batch)
-        run_project(project)
-        run_project(reference)
-    table.roll_back_to(table._table().current_snapshot().parent_snapshot_id)
-    warnings = run_project(project)
+        twins.append(batch)
+        twins.run()
+    twins.table.roll_back_to(twins.table._table().current_snapshot().parent_snapshot_id)
+    warnings = run_project(twins.project)
     assert any("no longer in the table's history" in w for w in warnings), warnings
-    table.append(batches[2])
-    plain.append(batches[2])
-    assert run_project(project) == []
-    run_project(reference)
-    assert results(project) == results(reference)
+    twins.append(batches[2])
+    assert twins.run() == []
+    assert twins.same()
 
 
 SPARK = ("engine: spark\nspark_master: local[2]\nspark_conf:\n  spark.sql.shuffle.partitions: 4\n"

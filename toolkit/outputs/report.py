@@ -188,17 +188,25 @@ ALARM_ABOUT = {
 }
 
 
+def _card_head(alert: dict[str, Any]) -> dict[str, Any]:
+    """What every card starts with: the alert, its label and its anchor in the page."""
+    return {"alert": alert, "label": check_label(alert), "anchor": f"alert-{alert['alert_id']}"}
+
+
+def _status_figures(alert: dict[str, Any]) -> list[tuple[str, str]]:
+    """A card's first figures: its status (with the close reason) and severity."""
+    return [("status", alert["status"] + (f" ({alert['close_reason']})" if alert["close_reason"] else "")),
+            ("severity", alert["severity"])]
+
+
 def _alarm_card(alert: dict[str, Any], earlier: int) -> dict[str, Any]:
     """A source alarm's card: what it found and when (wall clock), no windows to chart."""
     limit = duration_text(timedelta(seconds=alert["threshold"])) if alert["threshold"] is not None else "?"
     silent = alert["alarm"] == "silent"
     return {
-        "alert": alert,
-        "label": check_label(alert),
-        "anchor": f"alert-{alert['alert_id']}",
+        **_card_head(alert),
         "figures": [
-            ("status", alert["status"] + (f" ({alert['close_reason']})" if alert["close_reason"] else "")),
-            ("severity", alert["severity"]),
+            *_status_figures(alert),
             ("source", alert["source_name"] or "?"),
             ("max_silence" if silent else "max_lag", limit),
             ("newest file arrived" if silent else "newest data (data time)",
@@ -246,12 +254,9 @@ def _card(project: Project, alert: dict[str, Any], series: Series, earlier: int)
     if cusum:
         series.statistic = "CUSUM statistic"
     return {
-        "alert": alert,
-        "label": check_label(alert),
-        "anchor": f"alert-{alert['alert_id']}",
+        **_card_head(alert),
         "figures": [
-            ("status", alert["status"] + (f" ({alert['close_reason']})" if alert["close_reason"] else "")),
-            ("severity", alert["severity"]),
+            *_status_figures(alert),
             ("breach started", _time(alert["breach_started_at"])),
             ("opened", _time(alert["opened_at"])),
             ("last breach", _time(alert["last_breach_at"])),
