@@ -275,8 +275,9 @@ def _stand_ins(source: Source, missing: list[tuple[str, int]], files: list[LakeF
 def _change_note(source: Source, version: int, operation: str | None, removed: int, added: int) -> str:
     what = operation or "a commit"
     return (f"source {source.name}: Delta version {version} ({what}) removed {removed} file(s) of data and wrote "
-            f"{added}: sessions counted before are not un-counted; rows it wrote that were counted before are "
-            "recognised by their session ids")
+            f"{added}, which are read: sessions counted before are not un-counted, and the rows it rewrote are "
+            "recognised by their session ids and counted in no window again (the run counts them as duplicate "
+            "rows, or as late rows when older than dedup_horizon)")
 
 
 # ── Apache Iceberg ──────────────────────────────────────────────────────────────────────────────
@@ -391,9 +392,10 @@ class _IcebergCommits:
                             deleted_by_change.add(path)
             if removed and not rewrite:
                 notes.append(f"source {self.source.name}: Iceberg snapshot {snapshot.snapshot_id} ({operation}) "
-                             f"removed {removed} file(s) of data and wrote {written}: sessions counted before are "
-                             "not un-counted; rows it wrote that were counted before are recognised by their "
-                             "session ids")
+                             f"removed {removed} file(s) of data and wrote {written}, which are read: sessions "
+                             "counted before are not un-counted, and the rows it rewrote are recognised by their "
+                             "session ids and counted in no window again (the run counts them as duplicate rows, "
+                             "or as late rows when older than dedup_horizon)")
         files, missing = [], []
         for path, (lake_file, sequence) in added.items():
             if path in deleted_by_change:
