@@ -347,3 +347,15 @@ def test_a_delta_table_in_s3_is_read_by_version_as_a_local_one_is(tmp_path, endp
     run(load_project(local))
     windows, alerts = results(remote)
     assert windows and (windows, alerts) == results(local)
+
+
+def test_an_s3_source_on_engine_spark_is_refused_at_validation_in_one_line(tmp_path, endpoint, bucket):
+    """Spark's executors have no S3 connector here: the project says so before any run starts."""
+    name, client = bucket
+    upload(client, name, DAYS[0])
+    spark = project(tmp_path, endpoint, f"s3://{name}/sessions/",
+                    body="engine: spark\nspark_master: local[1]\n" + PROJECT)
+    with pytest.raises(ProjectInvalid) as caught:
+        load_project(spark)
+    (line,) = str(caught.value).splitlines()
+    assert "cannot run on engine spark" in line and f"s3://{name}/sessions/" in line, line

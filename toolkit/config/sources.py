@@ -214,6 +214,11 @@ def load_sources(doc: Located, raw: dict[str, Any], root: Path, con: duckdb.Duck
                     section.error((*section.path, "attributes", index),
                                   f"attributes: {unknown_column(column, columns)} in source '{name}'")
             viewer = binder.column(section, viewer, "viewer_id")
+        if engine.name == "spark" and storage.is_remote(location):
+            section.error((*section.path, "path" if fmt != "iceberg" else "table"),
+                          f"source '{name}': cannot run on engine spark: its files are in object storage "
+                          f"({location}), which Spark's executors cannot read here (pyspark has no S3 connector); "
+                          "use engine: duckdb, or mount the bucket at one path on every worker and name that path")
         if viewer is not None and engine.name == "spark":
             section.error((*section.path, "viewer_id"), f"{'.'.join((*section.path, 'viewer_id'))}: cannot run on "
                           "engine spark: the viewer sketch is computed by DuckDB only; leave viewer_id out")
