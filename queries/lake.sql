@@ -76,19 +76,37 @@ WHERE NOT EXISTS (SELECT 1 FROM removed AS r WHERE r.path = a.path AND r.version
 ORDER BY a.path;
 
 -- @statement lake.delta_changes
--- The same commits' changes of data that a run reports: each commit that removed files as a
--- change of data (a delete, update, merge or overwrite), with how many files it removed and wrote.
+-- The same commits' changes of data, which a run reports: each commit that removed files as a
+-- change of data (a delete, update, merge or overwrite), its operation, and the files it wrote and
+-- removed. Of those it removed, the ones that a commit after the version read had added: the files
+-- before it were all counted by the check, those after it maybe not; and how many of them a
+-- compaction had written (see toolkit/lake/tables.py).
 WITH actions AS (
     SELECT regexp_extract(filename, '([0-9]+)\.json$', 1)::BIGINT AS version, json
     FROM read_json_objects($logs, filename = true, format = 'newline_delimited')
+),
+added_since AS (
+    SELECT json ->> '$.add.path' AS path,
+           bool_and(NOT coalesce((json ->> '$.add.dataChange')::BOOLEAN, true)) AS by_compaction
+    FROM actions
+    WHERE json ->> '$.add.path' IS NOT NULL
+    GROUP BY ALL
 )
 SELECT
     version,
     any_value(json ->> '$.commitInfo.operation') AS operation,
     count(*) FILTER (WHERE json ->> '$.remove.path' IS NOT NULL
                        AND coalesce((json ->> '$.remove.dataChange')::BOOLEAN, true)) AS removed,
-    count(*) FILTER (WHERE json ->> '$.add.path' IS NOT NULL
-                       AND coalesce((json ->> '$.add.dataChange')::BOOLEAN, true)) AS written
+    list(json ->> '$.add.path' ORDER BY json ->> '$.add.path')
+        FILTER (WHERE json ->> '$.add.path' IS NOT NULL
+                  AND coalesce((json ->> '$.add.dataChange')::BOOLEAN, true)) AS written,
+    list(json ->> '$.remove.path' ORDER BY json ->> '$.remove.path')
+        FILTER (WHERE json ->> '$.remove.path' IN (SELECT path FROM added_since)
+                  AND coalesce((json ->> '$.remove.dataChange')::BOOLEAN, true)) AS removed_since,
+    -- files a compaction after the version read wrote, which this commit deleted from or rewrote:
+    -- the files compacted into them then no longer say which of their rows are still in the table
+    count(*) FILTER (WHERE json ->> '$.remove.path' IN (SELECT path FROM added_since WHERE by_compaction)
+                       AND coalesce((json ->> '$.remove.dataChange')::BOOLEAN, true)) AS removed_compacted
 FROM actions
 GROUP BY version
 HAVING removed > 0

@@ -238,16 +238,22 @@ class _DeltaCommits:
                 raise DataError(f"source '{self.source.name}': cannot read the Delta log after version "
                                 f"{state.version} ({engine_message(err)}); if the log was cleaned up, rebuild "
                                 "the source's checks (plimsoll run --rebuild)") from None
+        if any(row[5] for row in changed):
+            return self._through_compaction(state, changed)
+        rewrites = _counted_rewrites(changed) if state.complete else set()
         files, missing = [], []
-        vectors = [path for path, *_, vector, _held in rows if vector]
+        vectors = [path for path, *_, vector, _held in rows if vector and path not in rewrites]
         for path, size, modified_ms, version, _vector, still_held in rows:
+            if path in rewrites:
+                continue
             name = urllib.parse.unquote(path)
             lake_file = LakeFile(name, int(size), _from_ms(modified_ms), f"{root}/{name}")
             if still_held or _exists(lake_file.where, self.source.storage):
                 files.append(lake_file)
             else:
                 missing.append((name, version))
-        notes = [_change_note(self.source, *row) for row in changed]
+        notes = [_change_note(self.source, version, operation, removed, written or [], rewrites)
+                 for version, operation, removed, written, *_ in changed]
         if vectors:
             notes.append(f"source {self.source.name}: {len(vectors)} file(s) read carry a deletion vector (first: "
                          f"{urllib.parse.unquote(vectors[0])}); Plimsoll reads them whole, so rows it deletes count")
@@ -257,6 +263,19 @@ class _DeltaCommits:
 
     def snapshot(self, state: TableState) -> list[LakeFile]:
         return _delta_files(self.source, _delta_table(self.source, state.version))
+
+    def _through_compaction(self, state: TableState, changed: list[tuple]) -> Reading:
+        """A delete or rewrite of files that a compaction after the version read wrote: the files
+        compacted into them may hold rows it deleted, so the table's current files are read instead
+        (every one the check has not read), the sessions counted before recognised by their ids."""
+        (version, operation, *_), *_ = [row for row in changed if row[5]]
+        notes = [_change_note(self.source, v, op, removed, written or [], set()) for v, op, removed, written, *_ in
+                 changed]
+        notes.append(f"source {self.source.name}: Delta version {version} ({operation}) changed files a compaction "
+                     f"after version {state.version} had written: the table's current files are read in place of "
+                     "the files compacted into them, so no row it deleted is counted; sessions counted before are "
+                     "recognised by their ids")
+        return Reading(_delta_files(self.source, _delta_table(self.source)), notes)
 
 
 def _stand_ins(source: Source, missing: list[tuple[str, int]], files: list[LakeFile],
@@ -272,12 +291,37 @@ def _stand_ins(source: Source, missing: list[tuple[str, int]], files: list[LakeF
     return current
 
 
-def _change_note(source: Source, version: int, operation: str | None, removed: int, added: int) -> str:
+# Delta operations that write no row that was not in the files they remove: their files hold only
+# sessions already counted when every file they removed was counted
+REWRITING_ONLY = ("DELETE", "UPDATE")
+
+
+def _counted_rewrites(changed: list[tuple]) -> set[str]:
+    """The files (log paths) that deletes and updates after the version a check read in full wrote
+    in place of files the check had counted: none of their rows is new, so they are not read.
+
+    A file that existed at that version was counted; one a commit after it added was counted only if
+    it is itself such a rewrite (a delete of a delete). A merge or an overwrite may bring new rows:
+    its files are read, the rows it only rewrote recognised by their session ids."""
+    counted: set[str] = set()
+    for _version, operation, _removed, written, removed_since, _compacted in changed:
+        if operation in REWRITING_ONLY and set(removed_since or []) <= counted:
+            counted |= set(written or [])
+    return counted
+
+
+def _change_note(source: Source, version: int, operation: str | None, removed: int, written: list[str],
+                 rewrites: set[str]) -> str:
     what = operation or "a commit"
-    return (f"source {source.name}: Delta version {version} ({what}) removed {removed} file(s) of data and wrote "
-            f"{added}, which are read: sessions counted before are not un-counted, and the rows it rewrote are "
-            "recognised by their session ids and counted in no window again (the run counts them as duplicate "
-            "rows, or as late rows when older than dedup_horizon)")
+    head = (f"source {source.name}: Delta version {version} ({what}) removed {removed} file(s) of data and wrote "
+            f"{len(written)}: sessions counted before are not un-counted")
+    if written and set(written) <= rewrites:
+        return head + "; the files it wrote hold only sessions already counted and are not read"
+    if not written:
+        return head
+    return (head + "; the files it wrote are read, and the rows it only rewrote are recognised by their session "
+            "ids and counted in no window again (the run counts them as duplicate rows, or as late rows when "
+            "older than dedup_horizon)")
 
 
 # ── Apache Iceberg ──────────────────────────────────────────────────────────────────────────────
@@ -363,6 +407,8 @@ class _IcebergCommits:
         root = _iceberg_location(self.table.location())
         added: dict[str, tuple[LakeFile, int]] = {}
         deleted_by_change: set[str] = set()
+        compacted: set[str] = set()      # what replace snapshots after the one read wrote
+        through: Any = None              # a change of data to one of those: the snapshot that made it
         for snapshot in after:
             operation = str(snapshot.summary.operation.value if snapshot.summary else "append")
             rewrite = operation == "replace"
@@ -383,6 +429,8 @@ class _IcebergCommits:
                     path = _iceberg_location(data_file.file_path)
                     if entry.status == ManifestEntryStatus.ADDED:
                         written += 1
+                        if rewrite:
+                            compacted.add(path)
                         if not rewrite:
                             added[path] = (_iceberg_file(root, data_file, snapshot.timestamp_ms),
                                            int(snapshot.sequence_number))
@@ -390,12 +438,22 @@ class _IcebergCommits:
                         removed += 1
                         if not rewrite:
                             deleted_by_change.add(path)
+                            if path in compacted and through is None:
+                                through = snapshot
             if removed and not rewrite:
                 notes.append(f"source {self.source.name}: Iceberg snapshot {snapshot.snapshot_id} ({operation}) "
                              f"removed {removed} file(s) of data and wrote {written}, which are read: sessions "
                              "counted before are not un-counted, and the rows it rewrote are recognised by their "
                              "session ids and counted in no window again (the run counts them as duplicate rows, "
                              "or as late rows when older than dedup_horizon)")
+        if through is not None:
+            # the files compacted into what it changed may hold rows it deleted: read the table's
+            # current files instead (those the check has not read), counted sessions known by id
+            notes.append(f"source {self.source.name}: Iceberg snapshot {through.snapshot_id} changed files a "
+                         f"compaction after snapshot {state.snapshot_id} had written: the table's current files "
+                         "are read in place of the files compacted into them, so no row it deleted is counted; "
+                         "sessions counted before are recognised by their ids")
+            return Reading(_iceberg_snapshot_files(self.table, self.table.current_snapshot()), notes)
         files, missing = [], []
         for path, (lake_file, sequence) in added.items():
             if path in deleted_by_change:
