@@ -87,10 +87,7 @@ def _table_files(section: Section, name: str, source: Source) -> tuple[list[str]
     except DataError as err:
         section.error((*section.path, "table" if source.format == "iceberg" else "path"), str(err))
         return None, source.path
-    root = source.path
-    if source.format == "iceberg":
-        root = tables.iceberg_root(listing)
-    return [f.where for f in listing.active], root
+    return [f.where for f in listing.active], listing.root if source.format == "iceberg" else source.path
 
 
 def _remote_files(section: Section, name: str, where: str, settings: Storage | None,

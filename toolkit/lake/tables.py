@@ -95,7 +95,7 @@ class TableListing:
             # Delta versions only grow (a restore is a new version): the table was made afresh.
             # (An Iceberg rollback leaves a snapshot out of the current history instead: see there.)
             raise DataError(f"source '{self.source.name}': the table is at version {self.version}, but Plimsoll "
-                            f"has read it up to version {state.version}: was it replaced or restored? "
+                            f"has read it up to version {state.version}: was it made afresh? "
                             "Rebuild its checks (plimsoll run --rebuild) to read it afresh")
         reading = self._commits(state)
         if not state.complete:
@@ -115,10 +115,6 @@ def available(fmt: str) -> bool:
     import importlib.util
 
     return importlib.util.find_spec({"delta": "deltalake", "iceberg": "pyiceberg"}[fmt]) is not None
-
-
-def iceberg_root(found: TableListing) -> str:
-    return found.root
 
 
 def listing(source: Source) -> TableListing:
