@@ -416,3 +416,19 @@ def test_run_json_gives_each_checks_table_version_and_the_source_alarms(batches:
     (only,) = json.loads(done.stdout)["runs"]
     assert [c["table_version"] for c in only["checks"]] == [table.version()]
     assert only["alarms"] == []
+
+
+@pytest.mark.parametrize("fmt", ["delta", "iceberg"])
+def test_a_table_source_without_its_package_is_one_line_naming_the_extra(
+        fmt: str, tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    """Not installed: one line for the source, none for the checks that read it."""
+    from toolkit.lake import tables
+
+    monkeypatch.setattr(tables, "available", lambda _fmt: False)
+    source = (f"    format: delta\n    path: {tmp_path / 'delta'}\n" if fmt == "delta"
+              else "    format: iceberg\n    table: fernhill.sessions\n")
+    top = f"iceberg_catalog:\n  uri: sqlite:///{tmp_path / 'catalog.db'}\n" if fmt == "iceberg" else ""
+    with pytest.raises(ProjectInvalid) as caught:
+        load_project(write_project(tmp_path, source, top))
+    (line,) = str(caught.value).splitlines()
+    assert f"pip install 'plimsoll[{fmt}]'" in line, line

@@ -124,18 +124,23 @@ def load_sources(doc: Located, raw: dict[str, Any], root: Path, con: duckdb.Duck
         limits = {"max_future": section.get("max_future"), "dedup_horizon": section.get("dedup_horizon")}
         limits = {k: v for k, v in limits.items() if v is not None} | _alarm_settings(section)
         fmt, table = section.get("format") or "parquet", section.get("table")
+        # a source that cannot be read is kept without columns, so its checks report only their own problems
+        unreadable = Source(name, where or "", session_id or "", event_time or "", None, {})
         if fmt == "iceberg":
             if table is None:
                 section.error((*section.path, "format"), f"source '{name}': format: iceberg needs table "
                               "(the table's identifier in iceberg_catalog, e.g. fernhill.sessions)")
+                sources[name] = unreadable
                 continue
             if catalog is None:
                 section.error((*section.path, "format"), f"source '{name}': format: iceberg needs "
                               "iceberg_catalog in plimsoll.yml (uri: sqlite:///catalog.db or a REST URL)")
+                sources[name] = unreadable
                 continue
             if where is not None:
                 section.error((*section.path, "path"), f"source '{name}': an iceberg source is found by its "
                               "table in the catalog; leave path out")
+                sources[name] = unreadable
                 continue
             where = f"iceberg:{table}"
         else:
@@ -143,6 +148,7 @@ def load_sources(doc: Located, raw: dict[str, Any], root: Path, con: duckdb.Duck
                 section.error((*section.path, "table"), f"source '{name}': table applies to format: iceberg")
             if where is None:
                 section.error(section.path, f"'sources.{name}': 'path' is required")
+                sources[name] = unreadable
                 continue
         if where is None:
             continue
@@ -162,9 +168,11 @@ def load_sources(doc: Located, raw: dict[str, Any], root: Path, con: duckdb.Duck
                 common["storage"] = settings
             if fmt == "delta" and not tables.available("delta"):
                 section.error((*section.path, "format"), f"source '{name}': {tables.DELTA_HINT}")
+                sources[name] = unreadable
                 continue
             if fmt == "iceberg" and not tables.available("iceberg"):
                 section.error((*section.path, "format"), f"source '{name}': {tables.ICEBERG_HINT}")
+                sources[name] = unreadable
                 continue
         columns: dict[str, str] = {}
         if check_schema:
