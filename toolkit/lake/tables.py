@@ -204,9 +204,8 @@ def _delta_files(source: Source, table: Any) -> list[LakeFile]:
 
 def _delta_listing(source: Source) -> TableListing:
     table = _delta_table(source)
-    version = int(table.version())
-    return TableListing(source, version, None, _delta_files(source, table), source.path.rstrip("/"),
-                        _DeltaCommits(source, version))
+    version, active = int(table.version()), _delta_files(source, table)
+    return TableListing(source, version, None, active, source.path.rstrip("/"), _DeltaCommits(source, version, active))
 
 
 @dataclass
@@ -215,6 +214,7 @@ class _DeltaCommits:
 
     source: Source
     version: int
+    active: list[LakeFile]   # the table's current files (the listing's)
 
     def __call__(self, state: TableState) -> Reading:
         if state.version >= self.version:
@@ -254,7 +254,7 @@ class _DeltaCommits:
             notes.append(f"source {self.source.name}: {len(vectors)} file(s) read carry a deletion vector (first: "
                          f"{urllib.parse.unquote(vectors[0])}); Plimsoll reads them whole, so rows it deletes count")
         if missing:
-            files += _stand_ins(self.source, missing, files, notes)
+            files += _stand_ins(self.source, missing, files, notes, self.active)
         return Reading(sorted(files), notes)
 
     def snapshot(self, state: TableState) -> list[LakeFile]:
@@ -271,15 +271,15 @@ class _DeltaCommits:
                      f"after version {state.version} had written: the table's current files are read in place of "
                      "the files compacted into them, so no row it deleted is counted; sessions counted before are "
                      "recognised by their ids")
-        return Reading(_delta_files(self.source, _delta_table(self.source)), notes)
+        return Reading(list(self.active), notes)
 
 
 def _stand_ins(source: Source, missing: list[tuple[str, int]], files: list[LakeFile],
-               notes: list[str]) -> list[LakeFile]:
+               notes: list[str], active: list[LakeFile]) -> list[LakeFile]:
     """Appended files compacted and vacuumed before any run read them: the current files that
     compaction wrote since, read in their place (sessions counted before are known by their ids)."""
     known = {f.path for f in files}
-    current = [f for f in _delta_files(source, _delta_table(source)) if f.path not in known]
+    current = [f for f in active if f.path not in known]
     notes.append(f"source {source.name}: {len(missing)} appended file(s) were compacted and removed from storage "
                  f"before Plimsoll read them (first: {missing[0][0]}, version {missing[0][1]}); the table's "
                  "current files were read in their place, repeats of counted sessions recognised by their ids. "
@@ -368,8 +368,9 @@ def _iceberg_listing(source: Source) -> TableListing:
     current = table.current_snapshot()
     version = int(current.sequence_number) if current is not None else 0
     snapshot_id = int(current.snapshot_id) if current is not None else None
-    return TableListing(source, version, snapshot_id, _iceberg_snapshot_files(table, current),
-                        _iceberg_location(table.location()).rstrip("/"), _IcebergCommits(source, table))
+    active = _iceberg_snapshot_files(table, current)
+    return TableListing(source, version, snapshot_id, active, _iceberg_location(table.location()).rstrip("/"),
+                        _IcebergCommits(source, table, active))
 
 
 @dataclass
@@ -378,6 +379,7 @@ class _IcebergCommits:
 
     source: Source
     table: Any
+    active: list[LakeFile]   # the current snapshot's files (the listing's)
 
     def _ancestry(self) -> list[Any]:
         chain, snapshot = [], self.table.current_snapshot()
@@ -397,7 +399,7 @@ class _IcebergCommits:
             notes.append(f"source {self.source.name}: snapshot {state.snapshot_id}, read last, is no longer in the "
                          "table's history (rolled back or expired): the current snapshot's files not read before "
                          "are read, repeats of counted sessions recognised by their ids")
-            return Reading(_iceberg_snapshot_files(self.table, self.table.current_snapshot()), notes)
+            return Reading(list(self.active), notes)
         after = chain[ids.index(state.snapshot_id) + 1:] if state.snapshot_id is not None else \
             [s for s in chain if s.sequence_number > state.version]
         root = _iceberg_location(self.table.location())
@@ -449,7 +451,7 @@ class _IcebergCommits:
                          f"compaction after snapshot {state.snapshot_id} had written: the table's current files "
                          "are read in place of the files compacted into them, so no row it deleted is counted; "
                          "sessions counted before are recognised by their ids")
-            return Reading(_iceberg_snapshot_files(self.table, self.table.current_snapshot()), notes)
+            return Reading(list(self.active), notes)
         files, missing = [], []
         for path, (lake_file, sequence) in added.items():
             if path in deleted_by_change:
@@ -460,8 +462,7 @@ class _IcebergCommits:
                 missing.append((lake_file.path, sequence))
         if missing:
             known = {f.path for f in files}
-            files += [f for f in _iceberg_snapshot_files(self.table, self.table.current_snapshot())
-                      if f.path not in known]
+            files += [f for f in self.active if f.path not in known]
             notes.append(f"source {self.source.name}: {len(missing)} appended file(s) were rewritten and removed "
                          f"from storage before Plimsoll read them (first: {missing[0][0]}); the table's current "
                          "files were read in their place, repeats of counted sessions recognised by their ids")
