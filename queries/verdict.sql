@@ -328,19 +328,22 @@ FROM (SELECT count(*) AS windows FROM judged GROUP BY key, split_value);
 
 -- @loop until still_changing = 0, at most round_limit rounds
 -- baselines: each window's baseline, from the eligible windows before it as the breach flags stand
--- now (only the series with a window that changed in the last round).
+-- now. Only what can have moved is recomputed: in each series with a window that changed in the last
+-- round, the windows from the first of them on (`since`). Every window before it saw the same flags
+-- in the last round as now, so its verdict is final; the first round, when every window is
+-- `changed`, computes them all. The rows read are those windows and the {{ b.history }} eligible ones before them.
 CREATE OR REPLACE TEMP TABLE baselines AS
 WITH moving AS (
-    SELECT DISTINCT key, split_value FROM judged WHERE changed
+    SELECT key, split_value, min(window_number) AS since FROM judged WHERE changed GROUP BY key, split_value
 ),
 series_rows AS (
-    SELECT h.key, h.split_value, h.window_number, h.value, h.sessions, h.bad, false AS is_new, true AS eligible
+    SELECT h.key, h.split_value, h.window_number, h.value, h.sessions, h.bad, false AS is_new, true AS eligible, s.since
     FROM history AS h
-    SEMI JOIN moving AS s ON h.key = s.key AND h.split_value IS NOT DISTINCT FROM s.split_value
+    JOIN moving AS s ON {{ m.same_series("h", "s") }}
     UNION ALL
-    SELECT j.key, j.split_value, j.window_number, j.value, j.sessions, j.bad, true, coalesce(NOT j.breach, false) AND j.value IS NOT NULL
+    SELECT j.key, j.split_value, j.window_number, j.value, j.sessions, j.bad, true, coalesce(NOT j.breach, false) AND j.value IS NOT NULL, s.since
     FROM judged AS j
-    SEMI JOIN moving AS s ON j.key = s.key AND j.split_value IS NOT DISTINCT FROM s.split_value
+    JOIN moving AS s ON {{ m.same_series("j", "s") }}
 ),
 numbered AS (
     -- hb: how many eligible windows come before this one; history is the eligible rows with hb in
@@ -350,6 +353,16 @@ numbered AS (
             PARTITION BY key, split_value ORDER BY window_number ROWS BETWEEN UNBOUNDED PRECEDING AND 1 PRECEDING
         ), 0) AS hb
     FROM series_rows
+),
+reached AS (
+    -- what the windows from `since` on can look back on: the rows from the {{ b.history }}th eligible one
+    -- before `since` (hb_since: the eligible rows before it)
+    SELECT *
+    FROM (
+        SELECT *, max(hb) FILTER (WHERE window_number <= since) OVER (PARTITION BY key, split_value) AS hb_since
+        FROM numbered
+    )
+    WHERE window_number >= since OR hb >= hb_since - {{ b.history }}
 ),
 framed AS (
     SELECT
@@ -363,19 +376,21 @@ framed AS (
         {% if b.target is not none %}{{ b.target }}::DOUBLE{% else %}avg(value) FILTER (WHERE eligible) OVER earlier{% endif %} AS baseline,
         {% if b.sigma is not none %}{{ b.sigma }}::DOUBLE{% else %}stddev_samp(value) FILTER (WHERE eligible) OVER earlier{% endif %} AS spread,
 {% endif %}
-        count(*) FILTER (WHERE eligible) OVER earlier AS history_windows
-    FROM numbered
+        count(*) FILTER (WHERE eligible) OVER earlier AS history_windows,
+        since
+    FROM reached
     WINDOW earlier AS (
         PARTITION BY key, split_value ORDER BY hb RANGE BETWEEN {{ b.history }} PRECEDING AND 1 PRECEDING
     )
 )
 SELECT key, split_value, window_number, baseline, {% if b.method == "ewma" %}spread, {% endif %}history_windows
 FROM framed
-WHERE is_new;
+WHERE is_new AND window_number >= since;
 
 {% if b.method == "cusum" %}
 -- cusum_chain: each recomputed window's γ and h from its p₀, and the statistic chained window to
--- window from where the last run left it.
+-- window from the series' last window before them (where the last round left it), else from where
+-- the last run left it.
 CREATE OR REPLACE TEMP TABLE cusum_chain AS
 WITH RECURSIVE designed AS (
     SELECT j.key, j.split_value, j.window_number, j.value, j.sessions, j.bad,
@@ -398,10 +413,22 @@ steps AS (
     LEFT JOIN cusum_intervals AS g
         ON d.p0 >= g.p0 AND (d.p0 < g.next_p0 OR (g.next_p0 IS NULL AND d.p0 = g.p0))
 ),
+resumed AS (
+    SELECT s.key, s.split_value, coalesce(b.statistic, s.statistic) AS statistic
+    FROM cusum_start AS s
+    JOIN (SELECT key, split_value, min(window_number) AS since FROM designed GROUP BY key, split_value) AS r
+        ON {{ m.same_series("s", "r") }}
+    LEFT JOIN (
+        SELECT j.key, j.split_value, arg_max(j.statistic, j.window_number) AS statistic
+        FROM judged AS j
+        JOIN (SELECT key, split_value, min(window_number) AS since FROM designed GROUP BY key, split_value) AS f
+            ON {{ m.same_series("j", "f") }} AND j.window_number < f.since
+        GROUP BY j.key, j.split_value
+    ) AS b ON {{ m.same_series("s", "b") }}
+),
 chain(key, split_value, step, window_number, statistic, h) AS (
     SELECT s.key, s.split_value, 0::BIGINT, NULL::BIGINT, s.statistic, NULL::DOUBLE
-    FROM cusum_start AS s
-    SEMI JOIN steps AS t ON {{ m.same_series("s", "t") }}
+    FROM resumed AS s
     UNION ALL
     SELECT t.key, t.split_value, t.step, t.window_number,
            CASE WHEN t.h IS NULL OR t.value IS NULL THEN c.statistic
@@ -473,6 +500,24 @@ SET
     breach = r.breach
 FROM round_verdicts AS r
 WHERE judged.key = r.key AND judged.split_value IS NOT DISTINCT FROM r.split_value AND judged.window_number = r.window_number;
+
+{% set judged_on = "statistic" if b.method in ("ewma", "cusum") else "value" %}
+-- A guess for the next round that only speeds the loop: in a series still changing, each window after
+-- the first that changed whose {{ judged_on }} is {{ "at least" if check.direction == "up" else "at most" }} that of a breach this round found is taken
+-- as a breach, so a run of breaches settles in a round or two rather than a few windows a round.
+-- Every window up to the first that changed keeps its verdict, so each round still settles at least
+-- one more window, and the loop ends only when a round's verdicts are those it started from.
+UPDATE judged
+SET breach = true
+FROM (
+    SELECT key, split_value, min(window_number) FILTER (WHERE changed) AS frontier,
+           {{ "min" if check.direction == "up" else "max" }}({{ judged_on }}) FILTER (WHERE breach) AS edge
+    FROM judged
+    SEMI JOIN (SELECT DISTINCT key, split_value FROM judged WHERE changed) AS c ON {{ m.same_series("judged", "c") }}
+    GROUP BY key, split_value
+) AS g
+WHERE {{ m.same_series("judged", "g") }} AND judged.window_number > g.frontier
+  AND judged.{{ judged_on }} {{ ">=" if check.direction == "up" else "<=" }} g.edge AND judged.breach IS DISTINCT FROM true;
 
 -- @statement still_changing
 -- The end of a round: how many breach flags it changed. The loop stops at 0.

@@ -12,6 +12,7 @@ from typing import Any
 import duckdb
 import pytest
 from click.testing import CliRunner
+from conftest import write_project
 
 from toolkit.cli import main
 from toolkit.config.project import load_project
@@ -140,3 +141,56 @@ def test_directives_that_make_no_sense_are_refused(text: str, message: str) -> N
     with pytest.raises(TemplateError) as refused:
         stage("s", text)
     assert str(refused.value) == message
+
+
+def test_a_long_run_of_breaches_settles_in_a_few_rounds(tmp_path: Path) -> None:
+    """One series, 50 quiet windows then 50 at ten times the rate. With history 30 and the 90th
+    percentile, a round that counts a breach as history lets only the next three or four windows
+    breach, so a round per few windows would take about 15 rounds; a round's guess (a window after
+    the first change at least as high as a breach found is taken as one) settles it in two, and
+    the verdicts are those the definition gives: every high window a breach, no quiet one."""
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+    from datetime import datetime, timedelta
+
+    lake = tmp_path / "lake"
+    lake.mkdir()
+    start, rows = datetime(2026, 11, 2), []
+    for w in range(100):
+        errors = 10 if w >= 50 else 1 + w % 2
+        for i in range(20):
+            rows.append({"session_id": f"s{w:03d}-{i:02d}", "ended_at": start + timedelta(minutes=20 * w + i),
+                         "is_bot": False, "error_code": "E1" if i < errors else None})
+    pq.write_table(pa.Table.from_pylist(rows), lake / "part-0.parquet")
+    check = """\
+        check: steady_then_broken
+        source: sessions
+        measure:
+          kind: rate
+          bad: error_code IS NOT NULL
+        window:
+          sessions: 20
+          max_wait: 1d
+        baseline:
+          method: rolling_percentile
+          q: 0.9
+          history: 30
+          min_history: 4
+          factor: 2.0
+          floor: 0.05
+        guard:
+          min_sessions: 20
+          min_bad: 3
+        """
+    project = write_project(tmp_path / "p", {"steady_then_broken.yml": check}, lake=lake)
+    result = runner.run(load_project(project))
+    con = duckdb.connect(str(project.parent / "warehouse.duckdb"), read_only=True)
+    try:
+        breaches = con.execute("SELECT window_number FROM windows WHERE breach ORDER BY window_number").fetchall()
+        quiet = con.execute("SELECT count(*) FROM windows WHERE window_number <= 50 AND breach IS NOT DISTINCT FROM false"
+                            ).fetchone()[0]
+    finally:
+        con.close()
+    assert [b[0] for b in breaches] == list(range(51, 101))
+    assert quiet == 50
+    assert result.checks[0].rounds <= 3

@@ -75,19 +75,22 @@ FROM (SELECT count(*) AS windows FROM judged GROUP BY key, split_value);
 
 -- @loop until still_changing = 0, at most round_limit rounds
 -- baselines: each window's baseline, from the eligible windows before it as the breach flags stand
--- now (only the series with a window that changed in the last round).
+-- now. Only what can have moved is recomputed: in each series with a window that changed in the last
+-- round, the windows from the first of them on (`since`). Every window before it saw the same flags
+-- in the last round as now, so its verdict is final; the first round, when every window is
+-- `changed`, computes them all. The rows read are those windows and the 10 eligible ones before them.
 CREATE OR REPLACE TEMP TABLE baselines AS
 WITH moving AS (
-    SELECT DISTINCT key, split_value FROM judged WHERE changed
+    SELECT key, split_value, min(window_number) AS since FROM judged WHERE changed GROUP BY key, split_value
 ),
 series_rows AS (
-    SELECT h.key, h.split_value, h.window_number, h.value, h.sessions, h.bad, false AS is_new, true AS eligible
+    SELECT h.key, h.split_value, h.window_number, h.value, h.sessions, h.bad, false AS is_new, true AS eligible, s.since
     FROM history AS h
-    SEMI JOIN moving AS s ON h.key = s.key AND h.split_value IS NOT DISTINCT FROM s.split_value
+    JOIN moving AS s ON h.key = s.key AND h.split_value IS NOT DISTINCT FROM s.split_value
     UNION ALL
-    SELECT j.key, j.split_value, j.window_number, j.value, j.sessions, j.bad, true, coalesce(NOT j.breach, false) AND j.value IS NOT NULL
+    SELECT j.key, j.split_value, j.window_number, j.value, j.sessions, j.bad, true, coalesce(NOT j.breach, false) AND j.value IS NOT NULL, s.since
     FROM judged AS j
-    SEMI JOIN moving AS s ON j.key = s.key AND j.split_value IS NOT DISTINCT FROM s.split_value
+    JOIN moving AS s ON j.key = s.key AND j.split_value IS NOT DISTINCT FROM s.split_value
 ),
 numbered AS (
     -- hb: how many eligible windows come before this one; history is the eligible rows with hb in
@@ -98,19 +101,30 @@ numbered AS (
         ), 0) AS hb
     FROM series_rows
 ),
+reached AS (
+    -- what the windows from `since` on can look back on: the rows from the 10th eligible one
+    -- before `since` (hb_since: the eligible rows before it)
+    SELECT *
+    FROM (
+        SELECT *, max(hb) FILTER (WHERE window_number <= since) OVER (PARTITION BY key, split_value) AS hb_since
+        FROM numbered
+    )
+    WHERE window_number >= since OR hb >= hb_since - 10
+),
 framed AS (
     SELECT
         key, split_value, window_number, is_new,
         quantile_cont(value, 0.9) FILTER (WHERE eligible) OVER earlier AS baseline,
-        count(*) FILTER (WHERE eligible) OVER earlier AS history_windows
-    FROM numbered
+        count(*) FILTER (WHERE eligible) OVER earlier AS history_windows,
+        since
+    FROM reached
     WINDOW earlier AS (
         PARTITION BY key, split_value ORDER BY hb RANGE BETWEEN 10 PRECEDING AND 1 PRECEDING
     )
 )
 SELECT key, split_value, window_number, baseline, history_windows
 FROM framed
-WHERE is_new;
+WHERE is_new AND window_number >= since;
 
 -- round_verdicts: each recomputed window's threshold and verdict: breach true (a breach), false (healthy,
 -- or no threshold yet with enough data to be history) or NULL (no verdict: too little data).
@@ -146,6 +160,23 @@ SET
     breach = r.breach
 FROM round_verdicts AS r
 WHERE judged.key = r.key AND judged.split_value IS NOT DISTINCT FROM r.split_value AND judged.window_number = r.window_number;
+
+-- A guess for the next round that only speeds the loop: in a series still changing, each window after
+-- the first that changed whose value is at least that of a breach this round found is taken
+-- as a breach, so a run of breaches settles in a round or two rather than a few windows a round.
+-- Every window up to the first that changed keeps its verdict, so each round still settles at least
+-- one more window, and the loop ends only when a round's verdicts are those it started from.
+UPDATE judged
+SET breach = true
+FROM (
+    SELECT key, split_value, min(window_number) FILTER (WHERE changed) AS frontier,
+           min(value) FILTER (WHERE breach) AS edge
+    FROM judged
+    SEMI JOIN (SELECT DISTINCT key, split_value FROM judged WHERE changed) AS c ON judged.key = c.key AND judged.split_value IS NOT DISTINCT FROM c.split_value
+    GROUP BY key, split_value
+) AS g
+WHERE judged.key = g.key AND judged.split_value IS NOT DISTINCT FROM g.split_value AND judged.window_number > g.frontier
+  AND judged.value >= g.edge AND judged.breach IS DISTINCT FROM true;
 
 -- @statement still_changing
 -- The end of a round: how many breach flags it changed. The loop stops at 0.
