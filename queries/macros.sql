@@ -98,14 +98,14 @@ WHERE source_name = {{ source.name | literal }}
 {#- The walk over a count window's spans (see window.sql): from each series' span at position 0,
     on to the span that starts just behind its cut, while that cut times out. Sequential within a
     series, so a recursive query; it reads a row per span, never a row per session. -#}
-{% macro walk_spans(span_ends) -%}
+{% macro walk_spans(span_ends, series="key") -%}
 WITH RECURSIVE walk AS (
-    SELECT key, span_start, cut_start, cut_end, cut_closes FROM {{ span_ends }} WHERE span_start = 0
+    SELECT {{ series }}, span_start, cut_start, cut_end, cut_closes FROM {{ span_ends }} WHERE span_start = 0
     UNION ALL
-    SELECT n.key, n.span_start, n.cut_start, n.cut_end, n.cut_closes
+    SELECT n.{{ series }}, n.span_start, n.cut_start, n.cut_end, n.cut_closes
     FROM walk AS w
-    JOIN {{ span_ends }} AS n ON n.key = w.key AND n.span_start = w.cut_end + 1
+    JOIN {{ span_ends }} AS n ON n.{{ series }} = w.{{ series }} AND n.span_start = w.cut_end + 1
     WHERE w.cut_closes
 )
-SELECT key, span_start, cut_start, cut_end, cut_closes FROM walk
+SELECT {{ series }}, span_start, cut_start, cut_end, cut_closes FROM walk
 {%- endmacro %}

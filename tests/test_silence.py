@@ -429,7 +429,7 @@ def test_a_layout_5_file_gets_the_alarm_columns_and_runs_on(tmp_path: Path) -> N
     assert [a.action for a in result.alarms] == ["opened"]
     con = duckdb.connect(str(tmp_path / "w.duckdb"), read_only=True)
     try:
-        assert con.execute("SELECT version FROM schema_version").fetchall() == [(warehouse.SCHEMA_VERSION,)] == [(6,)]
+        assert con.execute("SELECT version FROM schema_version").fetchall() == [(warehouse.SCHEMA_VERSION,)]
         # the earlier alert is a check's: its row as it was, the new columns NULL
         assert con.execute("SELECT * EXCLUDE (alarm, source_name, last_file_at, newest_data_at) FROM alerts "
                            "WHERE alarm IS NULL ORDER BY alert_id").fetchall() == before

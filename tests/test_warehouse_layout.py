@@ -135,3 +135,33 @@ def test_a_file_of_a_later_layout_is_refused_with_one_line(tmp_path) -> None:
     assert result.exit_code == 1
     assert result.output == (f"{project.warehouse}: written by a newer Plimsoll (warehouse layout 99; this one "
                              f"reads layout {warehouse.SCHEMA_VERSION} and earlier); upgrade plimsoll\n")
+
+
+def test_a_layout_6_file_takes_the_rewritten_sql_without_a_rebuild(tmp_path) -> None:
+    """Layout 7 changed no table, but the count-window and verdict SQL did: a check unchanged in its
+    file compiles to a new definition hash. The upgrade adopts it, so no check stops for a rebuild."""
+    project = load_project(known_project(tmp_path))
+    run(project)
+    con = duckdb.connect(str(project.warehouse))
+    now = dict(con.execute("SELECT check_name, definition_hash FROM check_state").fetchall())
+    # as the previous release's SQL hashed them
+    con.execute("UPDATE check_state SET definition_hash = 'layout6' || check_name")
+    con.execute("UPDATE alerts SET definition_hash = 'layout6' || check_name WHERE check_name IS NOT NULL")
+    con.execute("UPDATE schema_version SET version = 6")
+    con.close()
+    before = warehouse_contents(project.warehouse, skip=("runs", "run_checks", "schema_version", "check_state",
+                                                         "alerts", "alert_events"))
+    result = CliRunner().invoke(main, ["run", "-p", str(project.file)])
+    assert result.exit_code == 0, result.output
+    assert "--rebuild" not in result.output
+    con = duckdb.connect(str(project.warehouse), read_only=True)
+    try:
+        assert con.execute("SELECT version FROM schema_version").fetchall() == [(warehouse.SCHEMA_VERSION,)] == [(7,)]
+        assert dict(con.execute("SELECT check_name, definition_hash FROM check_state").fetchall()) == now
+        # open alerts carry on under the new hash (closed ones keep theirs, as history)
+        assert con.execute("SELECT count(*) FROM alerts WHERE status = 'open' AND definition_hash LIKE 'layout6%'"
+                           ).fetchone() == (0,)
+    finally:
+        con.close()
+    assert warehouse_contents(project.warehouse, skip=("runs", "run_checks", "schema_version", "check_state",
+                                                       "alerts", "alert_events")) == before

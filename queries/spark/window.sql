@@ -8,18 +8,20 @@
 {{ move.to_spark("carry", "check_name = " ~ check_lit, check.by) }}
 -- @translate series_last
 {% if window.kind == "count" %}
+-- @translate series_ids
 -- @translate pooled
+-- @translate tie_positions
 -- @translate cuts
 -- @translate span_ends
 -- @to-duckdb spark_span_ends
-SELECT key, span_start, cut_start, cut_end, cut_closes FROM span_ends;
+SELECT series, span_start, cut_start, cut_end, cut_closes FROM span_ends;
 -- @duckdb full_window_spans
 -- The walk is sequential within a series: it runs in the warehouse over the spans (a row per
 -- span, not per session), and its spans go back to Spark to place the sessions.
 CREATE OR REPLACE TEMP TABLE full_window_spans AS
-{{ m.walk_spans("spark_span_ends") }};
+{{ m.walk_spans("spark_span_ends", "series") }};
 -- @to-spark full_window_spans
-SELECT key, span_start, cut_start, cut_end, cut_closes FROM full_window_spans;
+SELECT series, span_start, cut_start, cut_end, cut_closes FROM full_window_spans;
 -- @translate placed
 -- @translate closed_windows
 -- @translate window_sessions

@@ -34,7 +34,7 @@ TABLES = ("runs", "run_checks", "files_read", "changed_files", "source_columns",
 # adds causes and incidents (new tables and alerts.incident_id; the next run fills them), 6 the
 # table versions Delta and Iceberg sources are read by, and source alarms (columns of alerts,
 # alert_events and incidents); nothing to fill.
-SCHEMA_VERSION = 6
+SCHEMA_VERSION = 7
 POLL_SECONDS = 0.25
 # A run's temp tables live until its one transaction commits, so without a limit its memory grows
 # with checks x sessions; at this limit DuckDB spills to disk instead. The limit bounds DuckDB's
@@ -202,7 +202,14 @@ def _layout_6(con: duckdb.DuckDBPyConnection, project: Project) -> None:
     was Parquet, read by listing, and no source was watched, so nothing is filled after the fact."""
 
 
-_MIGRATIONS = ((2, _layout_2), (3, _layout_3), (4, _layout_4), (5, _layout_5), (6, _layout_6))
+def _layout_7(con: duckdb.DuckDBPyConnection, project: Project) -> None:
+    """Layout 6 to 7: no table changes. The count-window and verdict SQL was rewritten to do the same
+    work faster (a series sorted by its key's hash, only the windows a breach can move judged again),
+    so an unchanged check compiles to a new definition hash; the step exists so that
+    `_adopt_definitions` takes the new hashes instead of asking for a rebuild of every check."""
+
+
+_MIGRATIONS = ((2, _layout_2), (3, _layout_3), (4, _layout_4), (5, _layout_5), (6, _layout_6), (7, _layout_7))
 
 
 def _adopt_definitions(con: duckdb.DuckDBPyConnection, project: Project) -> None:
