@@ -98,7 +98,8 @@ class SparkTarget(Spark):
 
 
 # DuckDB functions sqlglot passes through by name, and their Spark names
-_RENAMED = {"epoch_us": "UNIX_MICROS", "url_decode": "URL_DECODE"}
+# hash: a 64-bit hash in both (Spark's own HASH has 32 bits)
+_RENAMED = {"epoch_us": "UNIX_MICROS", "url_decode": "URL_DECODE", "hash": "XXHASH64"}
 _SPARK_OWN = {"ARRAYS_OVERLAP"}  # Spark functions the rewrites below write by name
 
 

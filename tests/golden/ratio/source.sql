@@ -59,10 +59,14 @@ FROM lake_rows
 WHERE __session_id IS NOT NULL AND __event_time IS NOT NULL;
 
 -- One copy of each new session id: the earliest, then by file, so every run keeps the same one.
+-- The ids read more than once: candidates first, those whose 64-bit hash is read more than once (a
+-- grouping on 8 bytes, not 16), then the exact test on their md5 for the candidates only.
 CREATE OR REPLACE TEMP TABLE repeated_ids AS
 SELECT __id_hash
 FROM valid_rows
 WHERE NOT __beyond_horizon
+  AND hash(__session_id) IN (
+      SELECT hash(__session_id) FROM valid_rows WHERE NOT __beyond_horizon GROUP BY ALL HAVING count(*) > 1)
 GROUP BY __id_hash
 HAVING count(*) > 1;
 
