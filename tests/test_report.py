@@ -149,7 +149,8 @@ def test_chart_data_comes_from_the_windows_with_the_ewma_statistic(tmp_path: Pat
     series = series_for(con, ids)
     for alert_id in ids:
         expected = con.execute(
-            "SELECT w.window_end, w.statistic, w.value, w.breach FROM windows w JOIN alerts a "
+            "SELECT w.window_end, w.statistic, w.value, w.breach AND w.window_end BETWEEN a.opened_at AND "
+            "a.last_breach_at FROM windows w JOIN alerts a "
             "ON a.key = w.key AND a.check_name = w.check_name WHERE a.alert_id = $a ORDER BY w.window_number",
             {"a": alert_id}).fetchall()
         s = series[alert_id]
@@ -159,6 +160,27 @@ def test_chart_data_comes_from_the_windows_with_the_ewma_statistic(tmp_path: Pat
         assert any(r[1] is not None and r[1] != r[2] for r in expected)  # the statistic, not the value
         assert s.breach == [bool(r[3]) for r in expected]   # no verdict (NULL) is drawn as no breach
     con.close()
+
+
+def test_each_chart_marks_only_its_own_alerts_breaching_windows(tmp_path: Path) -> None:
+    # one series with two alerts (no reopening): each chart spans the other's windows too
+    from known_lake import SCHEMA, session_rows
+    bad = [0, 0, 0, 0, 6, 7, 0, 0, 0, 0, 0, 0, 8, 9, 0, 0]
+    lake = write_rows(tmp_path / "lake", SCHEMA, session_rows({"t-1": bad}))
+    check = CHECK.replace("lifecycle: {recover_after: 1, expire_after: 7d}",
+                          "lifecycle: {recover_after: 1, expire_after: 7d, reopen_within: 0s}")
+    project = load_project(write_project(tmp_path, {"c.yml": check}, PLAIN_PROJECT.format(lake=lake)))
+    assert invoke("run", "-p", str(project.file)).exit_code == 0
+    con = duckdb.connect(str(project.warehouse), read_only=True)
+    alerts = con.execute("SELECT alert_id, opened_at, last_breach_at FROM alerts ORDER BY opened_at").fetchall()
+    assert len(alerts) == 2
+    series = series_for(con, [a[0] for a in alerts])
+    con.close()
+    for alert_id, opened, last in alerts:
+        marked = [end for end, hit in zip(series[alert_id].window_end, series[alert_id].breach) if hit]
+        assert len(series[alert_id].window_end) == len(bad)   # both alerts' windows are drawn
+        assert marked and all(opened <= end <= last for end in marked), (alert_id, marked)
+        assert len(marked) == 2
 
 
 def test_a_long_series_is_thinned_and_keeps_its_spikes(tmp_path: Path) -> None:

@@ -19,7 +19,7 @@ from toolkit import __version__
 from toolkit.sql.plans import check_plan
 from toolkit.outputs.listings import (alerts_json, alerts_table, incidents_json, incidents_table, list_alerts,
                                       list_incidents)
-from toolkit.problems import PlimsollError
+from toolkit.problems import PlimsollError, display_path
 from toolkit.config.project import load_project
 from toolkit.sql.script import with_after_checks
 from toolkit.engine.explain import (after_checks_sql, explain_alert, explain_at, explanation_json, explanation_table,
@@ -30,7 +30,7 @@ from toolkit.warehouse_demo.generate import MAX_SESSIONS, MIN_SESSIONS
 
 project_option = click.option(
     "-p", "--project", "project_file", default="plimsoll.yml", show_default=True,
-    type=click.Path(dir_okay=False, path_type=Path), help="The project file.",
+    type=click.Path(path_type=Path), help="The project file, or a folder holding plimsoll.yml.",
 )
 
 DATA_TIME = click.DateTime(["%Y-%m-%d", "%Y-%m-%d %H:%M", "%Y-%m-%d %H:%M:%S", "%Y-%m-%dT%H:%M",
@@ -103,7 +103,8 @@ def validate(project_file: Path) -> None:
     One line per problem, file:line: message; exit 2 if there is any.
     """
     project = load_project(project_file)
-    click.echo(f"{project_file}: {_plural(len(project.checks), 'check')}, {_plural(len(project.sources), 'source')}: ok")
+    click.echo(f"{display_path(project.file)}: {_plural(len(project.checks), 'check')}, "
+               f"{_plural(len(project.sources), 'source')}: ok")
 
 
 @main.command("sql")
@@ -187,7 +188,8 @@ def explain(target: str, at: datetime | None, key_text: str, by_text: str, as_js
 @click.option("--status", type=click.Choice(["open", "closed", "all"]), default="all", show_default=True,
               help="Only open or only closed alerts.")
 @click.option("--check", "checks", multiple=True, help="Only alerts of this check (repeatable).")
-@click.option("--since", type=click.DateTime(), default=None, help="Only alerts opened at or after this data time.")
+@click.option("--since", type=DATA_TIME, default=None, metavar="TIME",
+              help="Only alerts opened at or after this data time (UTC, YYYY-MM-DD[ HH:MM[:SS]]).")
 @click.option("--json", "as_json", is_flag=True, help="JSON for scripts.")
 @reports_errors
 def alerts(project_file: Path, status: str, checks: tuple[str, ...], since: datetime | None, as_json: bool) -> None:
@@ -219,7 +221,8 @@ def incidents(project_file: Path, status: str, as_json: bool) -> None:
 @click.option("--out", "out", required=True, type=click.Path(dir_okay=False, path_type=Path),
               help="The HTML file to write.")
 @click.option("--check", "checks", multiple=True, help="Only alerts of this check (repeatable).")
-@click.option("--since", type=click.DateTime(), default=None, help="Only alerts opened at or after this data time.")
+@click.option("--since", type=DATA_TIME, default=None, metavar="TIME",
+              help="Only alerts opened at or after this data time (UTC, YYYY-MM-DD[ HH:MM[:SS]]).")
 @reports_errors
 def report(project_file: Path, out: Path, checks: tuple[str, ...], since: datetime | None) -> None:
     """Write one static HTML page of incidents, alerts and their series.

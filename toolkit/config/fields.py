@@ -33,7 +33,10 @@ _DURATION = re.compile(r"^(?:(\d+)w)?(?:(\d+)d)?(?:(\d+)h)?(?:(\d+)m)?(?:(\d+)s)
 
 
 def parse_duration(text: Any) -> timedelta:
-    """``90m``, ``2h``, ``3d``, ``1w``, ``1h30m``: a whole number of seconds or more."""
+    """``90m``, ``2h``, ``3d``, ``1w``, ``1h30m``: a whole number of seconds or more; a bare ``0`` is
+    no time at all, as it reads in any unit."""
+    if not isinstance(text, bool) and isinstance(text, (str, int)) and str(text).strip() == "0":
+        return timedelta(0)
     match = _DURATION.match(str(text).strip()) if isinstance(text, (str, int)) else None
     if not match or not str(text).strip() or not any(match.groups()):
         raise ValueError(f"bad duration {text!r}: write a number and a unit, e.g. 90m, 2h, 3d, 1w")

@@ -23,12 +23,35 @@ from toolkit.model import Check, Notify, Project
 from toolkit.problems import Problem, ProjectInvalid, display_path
 
 
+PROJECT_FILE = "plimsoll.yml"
+
+
+def project_file(path: Path) -> Path:
+    """The project file ``-p`` names: the file itself, or ``plimsoll.yml`` in a folder. A file that is
+    not there is refused in one line naming the folder searched."""
+    if path.is_dir():
+        found = path / PROJECT_FILE
+        if not found.is_file():
+            raise ProjectInvalid([Problem(display_path(path), 0, f"no {PROJECT_FILE} in this folder "
+                                          f"({path.resolve()})")])
+        return found
+    if not path.is_file():
+        folder = path.parent.resolve()
+        if not folder.is_dir():
+            where = f"the folder {folder} does not exist"
+        elif path.suffix in (".yml", ".yaml"):
+            where = f"no {path.name} in {folder}"
+        else:
+            where = f"no file or folder {path.name} in {folder}"
+        raise ProjectInvalid([Problem(display_path(path), 0, f"project file not found: {where} "
+                                      "(-p takes the project file or the folder holding plimsoll.yml)")])
+    return path
+
+
 def load_project(path: Path | str = "plimsoll.yml", check_schema: bool = True) -> Project:
     """Load and validate a project; raise :class:`ProjectInvalid` listing every problem."""
-    file = Path(path)
+    file = project_file(Path(path))
     shown = display_path(file)
-    if not file.is_file():
-        raise ProjectInvalid([Problem(shown, 0, "project file not found")])
     root = file.resolve().parent
     problems: list[Problem] = []
     doc, found = load(file, shown)

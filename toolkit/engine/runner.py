@@ -222,8 +222,7 @@ def _run(con: duckdb.DuckDBPyConnection, project: Project, run_id: int, checks: 
                 readers = [check for check, _ in group.checks]
                 progress(f"source {source.name}: reading {_plural(len(new_files), 'new file')} for "
                          f"{_plural(len(readers), 'check')}")
-                lake.check_new_files(con, source, new_files, _needed_columns(source, readers),
-                                     [c.name for c in readers])
+                lake.check_new_files(con, source, new_files, _needed_columns(source, readers), readers)
                 source_stage = source_plan(readers)
                 params = _params(project, new_files, run_id, "", readers[0].name, group.read_until, source)
                 _run_stage(con, stages, f"source {source.name}", source_stage, params)

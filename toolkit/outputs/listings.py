@@ -5,6 +5,7 @@ Listings carry keys and counts only, never a session or viewer identifier.
 
 from __future__ import annotations
 
+import difflib
 import json
 import math
 from datetime import datetime, timedelta
@@ -16,6 +17,7 @@ from toolkit.config.fields import duration_text
 from toolkit.engine import warehouse
 from toolkit.engine.alarms import spoken
 from toolkit.model import Project
+from toolkit.problems import Problem, ProjectInvalid, display_path
 
 ALERT_COLUMNS = ("alert_id", "status", "severity", "check_name", "key", "key_text", "split_value", "opened_at",
                  "breach_started_at", "last_breach_at", "closed_at", "close_reason", "breach_windows",
@@ -37,9 +39,30 @@ def list_alerts(project: Project, status: str = "all", checks: tuple[str, ...] =
     """
     con = warehouse.open_for_reading(project)
     try:
+        refuse_unknown_checks(project, con, checks)
         return alerts_from(con, status, checks, since)
     finally:
         con.close()
+
+
+def refuse_unknown_checks(project: Project, con: duckdb.DuckDBPyConnection, checks: tuple[str, ...]) -> None:
+    """``--check NAME`` naming no check of the project and no check with alerts in the warehouse (a
+    check since removed) is a mistake, not 'no alerts': exit 2 naming the checks there are."""
+    if not checks:
+        return
+    known = set(project.checks) | {row[0] for row in con.execute(
+        "SELECT DISTINCT check_name FROM alerts WHERE check_name IS NOT NULL").fetchall()}
+    unknown = [name for name in checks if name not in known]
+    if unknown:
+        names = ", ".join(sorted(known)) or "none"
+        raise ProjectInvalid([Problem(display_path(project.file), 0,
+                                      f"--check: no check named '{printable(name)}'{_close(name, known)}; "
+                                      f"the checks are: {names}") for name in unknown])
+
+
+def _close(name: str, known: set[str]) -> str:
+    close = difflib.get_close_matches(name, sorted(known), n=1)
+    return f" (did you mean '{close[0]}'?)" if close else ""
 
 
 def has_incidents(con: duckdb.DuckDBPyConnection) -> bool:

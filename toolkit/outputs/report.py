@@ -30,7 +30,7 @@ from toolkit.sql.templates import template_folder
 from toolkit.model import Check, Project
 from toolkit.config.fields import duration_text
 from toolkit.outputs.listings import (alarm_line, alerts_from, cause_line, check_label, count_or_dash, excess_share_text,
-                                      incident_cause, incidents_from)
+                                      incident_cause, incidents_from, refuse_unknown_checks)
 
 CONTEXT_BEFORE = 48   # windows drawn before an alert's first breaching window
 CONTEXT_AFTER = 24    # windows drawn after the window that closed it
@@ -69,6 +69,7 @@ def write_report(project: Project, out: Path, checks: tuple[str, ...] = (),
     """Render the report of the alerts matching ``checks`` and ``since`` into ``out``."""
     con = warehouse.open_for_reading(project)  # the published copies while a run holds the file
     try:
+        refuse_unknown_checks(project, con, checks)
         alerts = alerts_from(con, "all", checks, since)
         incidents = incidents_from(con, "all", [a["alert_id"] for a in alerts])
         causes = [i["cause_alert_id"] for i in incidents if i["cause_alert_id"]]

