@@ -108,3 +108,13 @@ def test_a_missing_project_file_names_the_folder_searched(tmp_path: Path) -> Non
     named = invoke("alerts", "-p", str(empty / "fernhill.yml"))
     assert f"project file not found: no fernhill.yml in {empty}" in named.output
     assert not list(empty.iterdir())
+
+
+def test_notify_without_a_warehouse_says_so_and_creates_nothing(tmp_path: Path) -> None:
+    project = known_project(tmp_path, "webhooks:\n  - url: http://127.0.0.1:9/hook\n")
+    before = sorted(p.name for p in tmp_path.iterdir())
+    result = invoke("notify", "-p", str(project))
+    assert result.exit_code == 1
+    assert result.output.strip() == (f"{tmp_path / 'w.duckdb'}: no warehouse yet, so no events to send; "
+                                     "run `plimsoll run` first")
+    assert sorted(p.name for p in tmp_path.iterdir()) == before   # no warehouse, no lock file

@@ -332,7 +332,8 @@ def test_notify_delivers_a_source_alarm_once(tmp_path: Path, hook: Hook) -> None
         "opened_at": "2026-11-02T03:25:00Z", "closed_at": None, "close_reason": None,
         "duration_seconds": 2700, "limit_seconds": 1800, "last_file_at": "2026-11-02T02:55:00Z",
         "newest_data_at": "2026-11-02T02:59:00Z", "incident_id": opened["incident_id"], "run_id": 1,
-        "sender": opened["sender"]}
+        "sender": opened["sender"],
+        "summary": "high opened: source sessions silent: no new file for 45 min (max_silence 30 min)"}
     assert isinstance(opened["duration_seconds"], int)  # whole seconds
     assert b"a-1" not in hook.accepted[-1].body  # no session id
 

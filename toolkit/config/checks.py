@@ -108,6 +108,11 @@ def _measure(doc: Located, raw: Any, binder: Binder | None, problems: list[Probl
         elif key.type == "column":
             value = binder.column(section, value, key.name)
         values[key.name] = value
+    unit = values.get("unit")
+    if unit is not None and (not unit.strip() or len(unit) > 16 or not unit.isprintable()):
+        section.error(("measure", "unit"), "measure.unit: write a short unit such as ms, kbps or % "
+                                           "(at most 16 characters, no line breaks)")
+        return None
     if any(values.get(k.name) is None for k in kind.keys if k.required):
         return None
     return Measure(**values)

@@ -9,12 +9,14 @@ validated by the modules beside this one: :mod:`~toolkit.config.sources`,
 
 from __future__ import annotations
 
+import urllib.parse
 from pathlib import Path
 
 import duckdb
 
 from toolkit.config.checks import load_checks
 from toolkit.config.fields import Section, size_of
+from toolkit.config.mail import load_mailboxes, load_smtp
 from toolkit.config.registry import NOTIFY_KEYS, PROJECT_KEYS
 from toolkit.config.sources import catalog_settings, engine_settings, load_sources, storage_settings
 from toolkit.config.webhooks import load_webhooks
@@ -75,7 +77,17 @@ def load_project(path: Path | str = "plimsoll.yml", check_schema: bool = True) -
     elif folder.is_dir():
         checks = load_checks(folder, sources, con, problems)
     con.close()
-    webhooks = load_webhooks(doc, top.get("webhooks") or [], problems)
+    report_url = top.get("report_url")
+    if report_url is not None:
+        parts = urllib.parse.urlsplit(report_url)
+        if parts.scheme not in ("http", "https") or not parts.hostname or "@" in parts.netloc:
+            top.error(("report_url",), f"report_url: '{report_url}' is not an http:// or https:// URL with a host "
+                                       "(and no user name or password)")
+            report_url = None
+    webhooks = load_webhooks(doc, top.get("webhooks") or [], problems, root, report_url)
+    smtp = load_smtp(doc, top.get("smtp"), root, problems)
+    taken = {h.name: f"webhooks.{i}" for i, h in enumerate(webhooks)}
+    mailboxes = load_mailboxes(doc, top.get("email") or [], smtp, top.get("smtp") is not None, taken, problems)
     notify_s = Section(doc, ("notify",), top.get("notify") or {}, NOTIFY_KEYS, problems)
     notify = Notify(**{k.name: notify_s.get(k.name) for k in NOTIFY_KEYS})
     if notify.max_backoff is not None and notify.backoff is not None and notify.max_backoff < notify.backoff:
@@ -86,4 +98,5 @@ def load_project(path: Path | str = "plimsoll.yml", check_schema: bool = True) -
         file=file.resolve(), root=root, warehouse=(root / warehouse).resolve(), checks_dir=folder,
         sources=sources, checks=checks, memory_limit=memory_limit, threads=threads,
         max_read_per_run=max_read, webhooks=webhooks, notify=notify, engine=engine, storage=settings,
+        mailboxes=mailboxes, report_url=report_url,
     )

@@ -15,7 +15,7 @@ import duckdb
 
 from toolkit.config.fields import duration_text
 from toolkit.engine import warehouse
-from toolkit.engine.alarms import spoken
+from toolkit.words import spoken
 from toolkit.model import Project
 from toolkit.problems import Problem, ProjectInvalid, display_path
 
