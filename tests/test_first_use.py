@@ -118,3 +118,60 @@ def test_notify_without_a_warehouse_says_so_and_creates_nothing(tmp_path: Path) 
     assert result.output.strip() == (f"{tmp_path / 'w.duckdb'}: no warehouse yet, so no events to send; "
                                      "run `plimsoll run` first")
     assert sorted(p.name for p in tmp_path.iterdir()) == before   # no warehouse, no lock file
+
+
+def test_windows_that_judge_nothing_for_long_are_warned_at_validate_time(tmp_path: Path) -> None:
+    monthly = CHECK.replace("window: {sessions: 10, max_wait: 1d}", "window: {every: 30d}").replace(
+        "history: 10, min_history: 3", "history: 30, min_history: 24")
+    project = known_project(tmp_path, checks={"title_errors.yml": monthly})
+    result = invoke("validate", "-p", str(project))
+    assert result.exit_code == 0, result.output
+    warning, ok = result.output.splitlines()
+    assert warning.endswith("checks/title_errors.yml:1: warning: window: a series' first verdict comes 750 days of "
+                            "data after its first session at the earliest (25 windows of 30 days: 24 earlier windows "
+                            "(baseline.min_history), then the window judged); its alerts wait as long")
+    assert ok.endswith(": 1 check, 1 source: ok")
+
+
+def test_a_count_window_the_traffic_never_fills_is_warned_with_its_time(tmp_path: Path) -> None:
+    huge = CHECK.replace("window: {sessions: 10, max_wait: 1d}", "window: {sessions: 10000000, max_wait: 1d}")
+    project = known_project(tmp_path, checks={"title_errors.yml": huge})
+    result = invoke("validate", "-p", str(project))
+    assert result.exit_code == 0, result.output
+    # the known lake: 140 sessions over 79 minutes of event time
+    assert "warning: window.sessions: 10,000,000 sessions are never reached: at the lake's 2,552 sessions a day" \
+        in result.output
+    assert "every window closes at max_wait (1 day) with what it has; a series' first verdict comes 4 days of data " \
+           "after its first session at the earliest (4 windows: 3 earlier windows (baseline.min_history), then the " \
+           "window judged)" in result.output
+    never = huge.replace("guard: {min_sessions: 5, min_bad: 2}", "guard: {min_sessions: 9000, min_bad: 2}")
+    (tmp_path / "checks" / "title_errors.yml").write_text(never, encoding="utf-8")
+    result = invoke("validate", "-p", str(project))
+    assert "with fewer than guard.min_sessions (9,000) sessions: no window can ever get a verdict" in result.output
+    small = CHECK.replace("guard: {min_sessions: 5, min_bad: 2}", "guard: {min_sessions: 50, min_bad: 2}")
+    (tmp_path / "checks" / "title_errors.yml").write_text(small, encoding="utf-8")
+    result = invoke("validate", "-p", str(project))
+    assert ("warning: guard.min_sessions: 50 sessions is more than a window holds (window.sessions 10): no window "
+            "can ever get a verdict") in result.output
+
+
+def test_the_catalogues_windows_judge_within_a_day_or_two_on_a_plain_lake(tmp_path: Path) -> None:
+    result = invoke("validate", "-p", str(known_project(tmp_path)))
+    assert result.exit_code == 0 and "warning" not in result.output
+
+
+def test_a_misspelt_column_in_by_peers_by_and_explain_by_gets_a_suggestion(make_project, ran: Path) -> None:
+    from toolkit.problems import ProjectInvalid
+
+    explained = invoke("explain", "title_errors", "--at", "2026-11-02 00:45", "--key", "site=kids,title_id=t-1",
+                       "--by", "titel_id", "-p", str(ran))
+    assert explained.exit_code != 0
+    assert "--by: unknown column 'titel_id' (did you mean 'title_id'?) in source 'sessions'" in explained.output
+    text = CHECK.replace("by: [site, title_id]", "by: [site, titel_id]")
+    with pytest.raises(ProjectInvalid, match=r"by: unknown column 'titel_id' \(did you mean 'title_id'\?\)"):
+        load_project(make_project({"c.yml": text}))
+    peers = CHECK.replace("window: {sessions: 10, max_wait: 1d}", "window: {every: 1h}").replace(
+        "baseline: {method: rolling_percentile, q: 0.5, history: 10, min_history: 3, factor: 1, floor: 0.1}",
+        "baseline: {method: peers, peers_by: [sites]}")
+    with pytest.raises(ProjectInvalid, match=r"baseline.peers_by: 'sites' \(did you mean 'site'\?\) not in 'by'"):
+        load_project(make_project({"c.yml": peers}))

@@ -20,6 +20,8 @@ from toolkit.sql.plans import check_plan
 from toolkit.outputs.listings import (alerts_json, alerts_table, incidents_json, incidents_table, list_alerts,
                                       list_incidents)
 from toolkit.problems import PlimsollError, display_path
+from toolkit.words import plural, readings
+from toolkit.config.judging import judging_warnings
 from toolkit.config.project import load_project
 from toolkit.sql.script import with_after_checks
 from toolkit.engine.explain import (after_checks_sql, explain_alert, explain_at, explanation_json, explanation_table,
@@ -103,8 +105,10 @@ def validate(project_file: Path) -> None:
     One line per problem, file:line: message; exit 2 if there is any.
     """
     project = load_project(project_file)
-    click.echo(f"{display_path(project.file)}: {_plural(len(project.checks), 'check')}, "
-               f"{_plural(len(project.sources), 'source')}: ok")
+    for warning in judging_warnings(project):  # valid, but a check that judges nothing for a long time
+        click.echo(str(warning))
+    click.echo(f"{display_path(project.file)}: {plural(len(project.checks), 'check')}, "
+               f"{plural(len(project.sources), 'source')}: ok")
 
 
 @main.command("sql")
@@ -144,11 +148,11 @@ def run(project_file: Path, checks: tuple[str, ...], rebuild: bool, wait: float,
         click.echo(f"warning: {warning}", err=True)
     closed = sum(c.alerts_closed for c in result.checks)
     click.echo(
-        f"{_runs(result)}: {_plural(result.files_read, 'new file')}, "
-        f"{_plural(sum(c.windows_written for c in result.checks), 'window')}, "
-        f"{_plural(result.alerts_opened, 'alert')} opened, {closed} closed"
+        f"{_runs(result)}: {plural(result.files_read, 'new file')}, "
+        f"{plural(sum(c.windows_written for c in result.checks), 'window')}, "
+        f"{plural(result.alerts_opened, 'alert')} opened, {closed} closed"
         + (f"; WARNING: {len(result.warnings)} (see above)" if result.warnings else "")
-        + (f"; {_plural(len(result.skipped), 'changed check')} not run" if result.skipped else "")
+        + (f"; {plural(len(result.skipped), 'changed check')} not run" if result.skipped else "")
     )
     for alarm in result.alarms:  # the sources' silent and lagging alerts (wall clock)
         click.echo(alarm.line)
@@ -196,7 +200,7 @@ def alerts(project_file: Path, status: str, checks: tuple[str, ...], since: date
     """List alerts, open ones first."""
     project = load_project(project_file, check_schema=False)
     found = list_alerts(project, status, checks, since)
-    click.echo(alerts_json(found) if as_json else alerts_table(found))
+    click.echo(alerts_json(found) if as_json else alerts_table(found, readings(project)))
 
 
 @main.command()
@@ -234,7 +238,8 @@ def report(project_file: Path, out: Path, checks: tuple[str, ...], since: dateti
 
     project = load_project(project_file, check_schema=False)
     done = write_report(project, out, checks, since)
-    click.echo(f"{done.path}: {done.alerts} alerts ({done.open_alerts} open), {done.incidents} incidents, "
+    click.echo(f"{done.path}: {plural(done.alerts, 'alert')} ({done.open_alerts} open), "
+               f"{plural(done.incidents, 'incident')}, "
                f"{done.bytes / 1024:,.0f} KiB")
 
 
@@ -334,11 +339,6 @@ def _run_json(project_file: Path, checks: tuple[str, ...], rebuild: bool, wait: 
         click.echo(line, err=True)
     click.echo(records_json(records))
     sys.exit(records.exit_code)
-
-
-def _plural(n: int, noun: str) -> str:
-    """'1 alert', '2 alerts'."""
-    return f"{n:,} {noun}{'' if n == 1 else 's'}"
 
 
 def _runs(result: RunResult) -> str:

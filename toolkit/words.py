@@ -44,8 +44,8 @@ def number_text(value: float | int | None) -> str:
     if isinstance(value, int) or float(value).is_integer() and abs(value) < 1e15:
         return f"{int(value):,}"
     size = abs(value)
-    if size >= 100:
-        return f"{round(value):,}"
+    if size >= 100:  # halves up, as people round (Python's round() goes to even)
+        return f"{int(math.copysign(math.floor(size + 0.5), value)):,}"
     digits = 2 - math.floor(math.log10(size)) if size > 0 else 0
     text = f"{value:.{max(0, digits)}f}"
     if "." in text:
@@ -94,9 +94,16 @@ def plural(n: int | float, noun: str) -> str:
 
 
 def series_text(check: str | None, key_text: str | None, split_value: str | None) -> str:
-    """'title_errors site=kids, title_id=t-1 [DRM-LICENSE]'; '(all sessions)' for a check without 'by'."""
+    """'title_errors site=kids, title_id=t-1 [DRM-LICENSE]'; '(all sessions)' for a check without 'by'.
+    Control characters in the key are escaped: a key cannot add a line to what people read."""
     text = f"{check or '?'} {key_text or '(all sessions)'}"
-    return text + (f" [{split_value}]" if split_value is not None else "")
+    return printable(text + (f" [{split_value}]" if split_value is not None else ""))
+
+
+def printable(text: str) -> str:
+    """``text`` with control characters (newlines, terminal escapes) written as ``\\x..`` escapes."""
+    return "".join(ch if ch.isprintable() else f"\\x{ord(ch):02x}" if ord(ch) < 256 else f"\\u{ord(ch):04x}"
+                   for ch in text)
 
 
 EVENT_WORDS = {"opened": "opened", "reopened": "reopened", "updated": "grew", "closed": "closed"}
@@ -133,7 +140,7 @@ def alarm_event_line(payload: dict[str, Any]) -> str:
     head = f"{payload.get('severity')} {EVENT_WORDS.get(payload.get('event'), payload.get('event'))}"
     if payload.get("event") == "closed" and payload.get("close_reason"):
         head += f" ({payload['close_reason']})"
-    return f"{head}: source {payload.get('source')} {payload.get('alarm')}: {what} ({key} {limit_text})"
+    return f"{head}: source {printable(str(payload.get('source')))} {payload.get('alarm')}: {what} ({key} {limit_text})"
 
 
 def spoken(seconds: float | None) -> str:
@@ -158,8 +165,8 @@ def incident_event_line(payload: dict[str, Any], reading: Reading, value: float 
     event = payload.get("event")
     head = f"{payload.get('severity')} incident {EVENT_WORDS.get(event, event)}"
     if payload.get("status") == "merged":
-        head += f" (merged into {payload.get('merged_into')})"
-    series = f"({cause['alarm']}) {cause.get('key_text')}" if cause.get("alarm") else \
+        head += f" (merged into {printable(str(payload.get('merged_into')))})"
+    series = printable(f"({cause['alarm']}) {cause.get('key_text')}") if cause.get("alarm") else \
         series_text(cause.get("check"), cause.get("key_text"), cause.get("split_value"))
     said = f"{head}: cause {series}"
     if value is not None:

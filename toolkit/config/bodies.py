@@ -23,7 +23,7 @@ import json
 import math
 from typing import Any
 
-from jinja2 import StrictUndefined, TemplateError
+from jinja2 import StrictUndefined, TemplateError, Undefined
 from jinja2.sandbox import SandboxedEnvironment
 
 from toolkit.words import Reading, event_line, incident_event_line, measure_text
@@ -46,6 +46,8 @@ def is_text_type(content_type: str) -> bool:
 def _json_value(value: Any) -> JsonText:
     if isinstance(value, JsonText):
         return value
+    if isinstance(value, Undefined):
+        str(value)  # raises: the name is not defined
     return JsonText(json.dumps(_plain(value), ensure_ascii=False, allow_nan=False))
 
 
@@ -116,7 +118,10 @@ def variables(payload: dict[str, Any], reading: Reading, report_url: str | None)
         summary = event_line(payload, reading)
         value, threshold = payload.get("value"), payload.get("threshold")
         anchor = f"alert-{payload.get('alert_id')}"
-    found = dict(payload)
+    # every event to a webhook of alerts has the fields of a check's alert event, null where it has
+    # none (a source alarm's split value, say), so one template serves them all
+    found = {} if incident else dict.fromkeys(ALERT_FIELDS)
+    found.update(payload)
     found.update(
         summary=summary,
         value_text=measure_text(value, reading) if not payload.get("alarm") else None,
@@ -125,6 +130,13 @@ def variables(payload: dict[str, Any], reading: Reading, report_url: str | None)
         payload=JsonText(json.dumps(_plain(payload), ensure_ascii=False, allow_nan=False)),
     )
     return found
+
+
+ALERT_FIELDS = ("idempotency_key", "event", "occurred_at", "check", "severity", "alert_id", "fingerprint", "key",
+                "key_text", "split_value", "opened_at", "closed_at", "close_reason", "value", "threshold",
+                "affected_sessions", "affected_viewers", "excess_sessions", "breach_windows", "incident_id",
+                "causes", "run_id", "sender", "measure", "unit", "value_text", "threshold_text", "summary",
+                "alarm", "source", "duration_seconds", "limit_seconds", "last_file_at", "newest_data_at")
 
 
 # ── sample events: what validation renders each template with ─────────────────────────────────────

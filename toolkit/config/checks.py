@@ -205,7 +205,9 @@ def _peers(top: Section, baseline: Baseline, by: list[str], window: Window | Non
                   "count windows (window.sessions) share no common time: use window.every")
     outside = [c for c in shared if c not in by]
     if outside:
-        top.error(("baseline", "peers_by"), f"baseline.peers_by: {', '.join(map(repr, outside))} not in 'by'")
+        hints = [difflib.get_close_matches(c, by, n=1) for c in outside]
+        said = ", ".join(f"{c!r}" + (f" (did you mean '{h[0]}'?)" if h else "") for c, h in zip(outside, hints))
+        top.error(("baseline", "peers_by"), f"baseline.peers_by: {said} not in 'by'")
     elif not shared or len(shared) >= len(by):
         top.error(("baseline", "peers_by"), "baseline.peers_by must name some of the columns of 'by', not none "
                   "and not all: a series' peers share those and differ in the rest")

@@ -107,8 +107,9 @@ def typed(key: Key, value: Any) -> Any:
             raise ValueError(f"expected text, got {kind_of(value)}")
         value = str(value)
         if t == "envvar" and not ENV_NAME.match(value):
-            raise ValueError(f"'{value}' is not an environment variable name: write the variable's name, "
-                             "not its value")
+            # the value is never repeated: it may be the secret itself, pasted by mistake
+            raise ValueError("this is not an environment variable name (letters, digits and _): write the "
+                             "variable's name, not its value")
         if t == "name" and not NAME.match(value):
             raise ValueError(f"'{value}' is not a valid name: use [a-z][a-z0-9_]*")
         if t == "choice" and value not in key.choices:

@@ -15,7 +15,7 @@ import duckdb
 
 from toolkit.config.fields import duration_text
 from toolkit.engine import warehouse
-from toolkit.words import spoken
+from toolkit.words import Reading, measure_text, number_text, plural, printable, spoken
 from toolkit.model import Project
 from toolkit.problems import Problem, ProjectInvalid, display_path
 
@@ -129,7 +129,7 @@ def cause_line(key_text: str | None, causes: list[dict[str, Any]], affected: int
     answers = [c for c in causes if c["significant"]]
     if not answers:
         return None
-    count = f" {affected:,} sessions affected," if affected is not None else ""
+    count = f" {plural(affected, 'session')} affected," if affected is not None else ""
     head = f"{printable(key_text or '(all sessions)')}:{count}"
     if len(answers) == 1:
         share = excess_share_text(answers[0]["excess_share"]) or "the excess"
@@ -174,16 +174,19 @@ def alerts_json(alerts: list[dict[str, Any]]) -> str:
 JSON_CAUSE_FIELDS = ("rank", "key", "bad", "expected", "excess_share", "score", "significant")
 
 
-def alerts_table(alerts: list[dict[str, Any]]) -> str:
-    """A fixed-width table for a terminal; text from the data cannot move the cursor or add lines."""
+def alerts_table(alerts: list[dict[str, Any]], known: dict[str, Reading] | None = None) -> str:
+    """A fixed-width table for a terminal; text from the data cannot move the cursor or add lines.
+    ``worst`` and ``threshold`` are in each check's unit (``known``: how each check's figures read)."""
     if not alerts:
         return "no alerts"
-    head = ("status", "severity", "check", "key", "split", "opened", "windows", "affected", "viewers", "excess",
-            "per hour", "incident")
+    known = known or {}
+    head = ("status", "severity", "check", "key", "split", "worst", "threshold", "opened", "windows", "affected",
+            "viewers", "excess", "per hour", "incident")
     body = [
         (
             a["status"] if a["status"] == "open" else f"closed ({a['close_reason']})",
             a["severity"], check_label(a), printable(a["key_text"] or "(all)"), printable(a["split_value"] or ""),
+            *figures(a, known.get(a["check_name"] or "", Reading())),
             a["opened_at"].strftime("%Y-%m-%d %H:%M"), count_or_dash(a["breach_windows"]),
             count_or_dash(a["affected_sessions"]), count_or_dash(a.get("affected_viewers")),
             count_or_dash(a.get("excess_sessions")), count_or_dash(a["affected_per_hour"]),
@@ -194,6 +197,19 @@ def alerts_table(alerts: list[dict[str, Any]]) -> str:
     below = [alarm_line(a) if a.get("alarm") else cause_line(a["key_text"], a.get("causes", []), a.get("affected_sessions"))
              for a in alerts]
     return _table(head, body, below)
+
+
+def figures(alert: dict[str, Any], reading: Reading) -> tuple[str, str]:
+    """An alert's worst value and its threshold as people read them: in the measure's unit, rounded
+    (a CUSUM's threshold is its decision interval h; a source alarm's, durations)."""
+    if alert.get("alarm"):
+        return spoken(alert.get("peak_value")), spoken(alert.get("threshold"))
+    threshold = alert.get("threshold")
+    if reading.method == "cusum":
+        shown = f"h {number_text(threshold)}" if threshold is not None else "-"
+    else:
+        shown = measure_text(threshold, reading)
+    return measure_text(alert.get("peak_value"), reading), shown
 
 
 def _table(head: tuple[str, ...], body: list[tuple[str, ...]], below: list[str | None]) -> str:
@@ -212,12 +228,6 @@ def count_or_dash(value: float | int | None) -> str:
     """A count rounded to a whole number with thousands separators, or '-' where there is none (viewers
     without a source's viewer_id, excess of a ratio or quantile measure)."""
     return "-" if value is None else f"{round(value):,}"
-
-
-def printable(text: str) -> str:
-    """``text`` with control characters (newlines, terminal escapes) written as ``\\x..`` escapes."""
-    return "".join(ch if ch.isprintable() else f"\\x{ord(ch):02x}" if ord(ch) < 256 else f"\\u{ord(ch):04x}"
-                   for ch in text)
 
 
 def list_incidents(project: Project, status: str = "all") -> list[dict[str, Any]]:

@@ -140,11 +140,12 @@ def send(box: Mailbox, text: str, password: str | None) -> tuple[bool, bool, str
     try:
         with deadline:
             try:
+                # connecting is bounded by the socket's timeout, everything after it by the deadline
                 if smtp_settings.security == "tls":
-                    client = smtplib.SMTP_SSL(timeout=seconds, context=context)
+                    client = smtplib.SMTP_SSL(smtp_settings.host, smtp_settings.port, timeout=seconds,
+                                              context=context)
                 else:
-                    client = smtplib.SMTP(timeout=seconds)
-                client.connect(smtp_settings.host, smtp_settings.port)
+                    client = smtplib.SMTP(smtp_settings.host, smtp_settings.port, timeout=seconds)
                 deadline.watch(client.sock)
                 client.ehlo()
                 if smtp_settings.security == "starttls":
