@@ -159,6 +159,8 @@ KEY_TABLES = {
     "SOURCE_KEYS": r"Each source:",
     "WEBHOOK_KEYS": r"Each webhook \(`webhooks:` is a list\):",
     "NOTIFY_KEYS": r"`notify`:",
+    "SMTP_KEYS": r"`smtp` \(for `email`\):",
+    "EMAIL_KEYS": r"Each list of mail recipients \(`email:` is a list\):",
     "STORAGE_KEYS": r"`storage` \(.*\):",
     "CATALOG_KEYS": r"`iceberg_catalog`:",
     "CHECK_KEYS": r"### Check files",

@@ -125,7 +125,7 @@ def test_open_alerts_come_first(project: Path, tmp_path: Path) -> None:
 def test_report_filters(project: Path, tmp_path: Path) -> None:
     out = tmp_path / "late.html"
     result = invoke("report", "--out", str(out), "--since", "2026-11-02 00:50:00", "-p", str(project))
-    assert result.exit_code == 0 and "1 alerts (1 open), 1 incidents" in result.output
+    assert result.exit_code == 0 and "1 alert (1 open), 1 incident" in result.output
     assert parse(out.read_text()).charts == 2  # its incident's cause, and the alert
     result = invoke("report", "--out", str(out), "--check", "other", "-p", str(project))
     assert "0 alerts" in result.output and "No alerts match." in out.read_text()

@@ -250,9 +250,9 @@ def report(project_file: Path, out: Path, checks: tuple[str, ...], since: dateti
 @click.option("--retry-abandoned", is_flag=True, help="Queue abandoned deliveries again, from attempt 1.")
 @reports_errors
 def notify(project_file: Path, retry_text: str, retry_abandoned: bool) -> None:
-    """POST new alert and incident events to the project's webhooks.
+    """Send new alert and incident events to webhooks and by mail.
 
-    Alert events by default; a webhook with per: incident gets its incidents' events.
+    Alert events by default; a webhook or mail list with per: incident gets its incidents' events.
 
     Exit 1 while a delivery fails or waits for a retry.
     """

@@ -29,6 +29,7 @@ from toolkit.engine import warehouse
 from toolkit.sql.templates import template_folder
 from toolkit.model import Check, Project
 from toolkit.config.fields import duration_text
+from toolkit.words import Reading, measure_text
 from toolkit.outputs.listings import (alarm_line, alerts_from, cause_line, check_label, count_or_dash, excess_share_text,
                                       incident_cause, incidents_from, refuse_unknown_checks)
 
@@ -249,7 +250,11 @@ def _card(project: Project, alert: dict[str, Any], series: Series, earlier: int)
         return _alarm_card(alert, earlier)
     check = project.checks.get(alert["check_name"])
     kind = check.measure.kind if check else None
-    fmt = _format_for(kind)
+    reading = Reading(kind, check.measure.unit if check else None)
+
+    def fmt(value: float | None) -> str:  # in the measure's unit, rounded for reading, as the listings say it
+        return measure_text(value, reading)
+
     # a CUSUM's threshold h and statistic S count bad sessions, not a rate
     cusum = check is not None and check.baseline.method == "cusum"
     if cusum:
