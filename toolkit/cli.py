@@ -217,7 +217,7 @@ def incidents(project_file: Path, status: str, as_json: bool) -> None:
     """
     project = load_project(project_file, check_schema=False)
     found = list_incidents(project, status)
-    click.echo(incidents_json(found) if as_json else incidents_table(found))
+    click.echo(incidents_json(found) if as_json else incidents_table(found, readings(project)))
 
 
 @main.command()

@@ -219,7 +219,7 @@ def _dress(con: duckdb.DuckDBPyConnection, project: Project, now: datetime) -> l
                 error = f"body template ({hook.body_origin}): {err}"
                 what = f"incident {payload.get('incident_id')}" if "cause" in payload else f"alert {payload.get('alert_id')}"
                 failed.append(f"{name}: {payload.get('event')} of {what}: {error}")
-        dressed.append({"idempotency_key": key, "payload": json.dumps(payload, ensure_ascii=False, allow_nan=False),
+        dressed.append({"idempotency_key": key, "payload": json.dumps(payload, ensure_ascii=False, allow_nan=False, separators=(",", ":")),
                         "body": body, "content_type": content_type, "error": error})
     import pyarrow as pa
 

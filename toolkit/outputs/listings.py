@@ -258,8 +258,15 @@ def incidents_from(con: duckdb.DuckDBPyConnection, status: str = "all",
         {"status": status, "all": alert_ids is None, "ids": alert_ids or []},
     ).fetchall()
     incidents = [dict(zip(INCIDENT_COLUMNS, row)) for row in rows]
-    causes = causes_for(con, [i["cause_alert_id"] for i in incidents if i["cause_alert_id"]], significant_only=True)
+    cause_ids = [i["cause_alert_id"] for i in incidents if i["cause_alert_id"]]
+    figures_of = {alert_id: (peak, threshold) for alert_id, peak, threshold in con.execute(
+        "SELECT alert_id, peak_value, threshold FROM alerts WHERE list_contains($ids, alert_id)",
+        {"ids": cause_ids}).fetchall()} if cause_ids else {}
+    causes = causes_for(con, cause_ids, significant_only=True)
     for incident in incidents:
+        # the cause alert's worst value and threshold, for the words people read (not in --json)
+        incident["cause_peak_value"], incident["cause_threshold"] = figures_of.get(incident["cause_alert_id"],
+                                                                                   (None, None))
         incident["alert_ids"] = list(incident["alert_ids"] or [])
         incident["causes"] = causes.get(incident["cause_alert_id"], [])
     return incidents
@@ -291,17 +298,23 @@ def incidents_json(incidents: list[dict[str, Any]]) -> str:
     return json.dumps(shown, indent=2, ensure_ascii=False, allow_nan=False)
 
 
-def incidents_table(incidents: list[dict[str, Any]]) -> str:
-    """A fixed-width table for a terminal, each incident's top cause on the line below it."""
+def incidents_table(incidents: list[dict[str, Any]], known: dict[str, Reading] | None = None) -> str:
+    """A fixed-width table for a terminal, each incident's top cause on the line below it; ``worst``
+    and ``threshold`` are the cause alert's, in its check's unit."""
     if not incidents:
         return "no incidents"
-    head = ("incident", "status", "severity", "opened", "closed", "cause", "alerts", "affected", "viewers")
+    known = known or {}
+    head = ("incident", "status", "severity", "opened", "closed", "cause", "worst", "threshold", "alerts", "affected",
+            "viewers")
     body = [
         (
             printable(i["incident_id"]), i["status"], i["severity"] or "-",
             i["opened_at"].strftime("%Y-%m-%d %H:%M") if i["opened_at"] else "-",
             i["closed_at"].strftime("%Y-%m-%d %H:%M") if i["closed_at"] else "-",
-            incident_cause(i), f"{i['alerts'] or 0:,}", count_or_dash(i["affected_sessions"]),
+            incident_cause(i),
+            *figures({"alarm": i.get("cause_alarm"), "peak_value": i.get("cause_peak_value"),
+                      "threshold": i.get("cause_threshold")}, known.get(i["cause_check"] or "", Reading())),
+            f"{i['alerts'] or 0:,}", count_or_dash(i["affected_sessions"]),
             count_or_dash(i["affected_viewers"]),
         )
         for i in incidents
