@@ -134,6 +134,14 @@ def test_an_event_the_template_cannot_render_is_abandoned_with_its_error(tmp_pat
     rows = outbox_rows(project)
     assert sorted((r[2], r[4] is not None) for r in rows) == [("abandoned", True)] * 3 + [("delivered", False)]
     assert len(hook.accepted) == 1   # the other title's event went out
+    # the template fixed, --retry-abandoned renders those rows with it and sends them
+    text = project.file.read_text(encoding="utf-8").replace("{% if key_text.endswith(\"t-1\") %}{{ 1 // 0 }}{% endif %}",
+                                                           "fixed: ")
+    project.file.write_text(text, encoding="utf-8")
+    again = CliRunner().invoke(main, ["notify", "--retry-abandoned", "-p", str(project.file)])
+    assert again.exit_code == 0, again.output
+    assert [json.loads(r.body)["t"][:20] for r in hook.accepted[1:]] == ["fixed: high opened: ", "fixed: high grew: ti",
+                                                                         "fixed: high closed (r"[:20]]
 
 
 # ── mail ─────────────────────────────────────────────────────────────────────────────────────────
@@ -372,3 +380,32 @@ def test_a_server_without_starttls_is_not_sent_to_in_clear(tmp_path: Path) -> No
     assert room.accepted == []
     assert result.attempts[0].status == "abandoned"
     assert "does not offer STARTTLS" in result.attempts[0].error
+
+
+def test_a_message_for_each_kind_of_event_is_one_subject_and_readable_lines() -> None:
+    from toolkit.config.bodies import samples, variables
+    from toolkit.model import Mailbox, Smtp
+    from toolkit.outputs.mail import message
+
+    box = Mailbox("on-call-mail", ("oncall@fernhill.example",), Smtp("127.0.0.1", 25, "none", "plimsoll@fernhill.example"))
+    now = dt.datetime(2026, 11, 16, 9, 43)
+    for per in ("alert", "incident"):
+        for what, payload, reading in samples(per):
+            words = variables(payload, reading, "https://plimsoll.fernhill.example/report.html")
+            text = message(box, payload, words, "ab" * 16, now)
+            parsed = email.message_from_string(text, policy=email.policy.default)
+            assert len(parsed.get_all("Subject")) == 1, what
+            summary = printable(words["summary"])   # a long one is cut in the subject, whole in the body
+            assert parsed["Subject"] == "[plimsoll] " + (summary if len(summary) <= 160 else summary[:159] + "…"), what
+            assert parsed["Message-ID"] == f"<{'ab' * 16}@fernhill.example>"
+            assert parsed["Date"] == "Mon, 16 Nov 2026 09:43:00 +0000"
+            body = parsed.get_content()
+            assert "\n" not in body.split("\r\n")[0] and body.startswith(printable(words["summary"])), what
+            assert not any(ch in body for ch in "\x1b\u2028"), what   # control characters escaped
+            anchor = "#incident-" if per == "incident" else "#alert-"
+            assert f"report: https://plimsoll.fernhill.example/report.html{anchor}" in body, what
+    (_, alarm, reading) = samples("alert")[3]
+    body = email.message_from_string(message(box, alarm, variables(alarm, reading, None), "c" * 32, now),
+                                     policy=email.policy.default).get_content()
+    assert body.startswith("high opened: source sessions\"\\x0a silent: no new file for 47 min (max_silence 30 min)")
+    assert re.search(r"^opened\s+2026-11-16 09:42 UTC \(wall clock\)$", body.replace("\r\n", "\n"), re.M)

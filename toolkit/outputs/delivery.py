@@ -160,7 +160,9 @@ def _queue(con: duckdb.DuckDBPyConnection, project: Project, now: datetime, retr
                 "FROM outbox_new").fetchone()
             result.skipped_for = dict(con.execute(
                 "SELECT skip_reason, count(*) FROM outbox_new WHERE status = 'skipped' GROUP BY skip_reason").fetchall())
-            result.unrendered = _dress(con, project, now)
+            new_rows = con.execute("SELECT idempotency_key, webhook, status, payload FROM outbox_new "
+                                   "ORDER BY seq").fetchall()
+            result.unrendered = _dress(con, project, now, new_rows)
             result.queued -= len(result.unrendered)
         result.orphaned = con.execute(
             "UPDATE outbox SET status = 'abandoned', last_error = 'webhook no longer in the project file' "
@@ -169,6 +171,15 @@ def _queue(con: duckdb.DuckDBPyConnection, project: Project, now: datetime, retr
             result.retried_abandoned = con.execute(
                 "UPDATE outbox SET status = 'queued', attempts = 0, next_attempt_at = $now "
                 "WHERE status = 'abandoned' AND list_contains($h, webhook)", {"h": names, "now": now}).fetchone()[0]
+            # a row abandoned because its template failed has no body: render it now, with the
+            # template as it is now (a row that was sent keeps its bytes)
+            rendered = [h.name for h in destinations(project) if isinstance(h, Mailbox) or h.body is not None]
+            again = con.execute(
+                "SELECT idempotency_key, webhook, status, payload FROM outbox WHERE status = 'queued' AND attempts = 0 "
+                "AND body IS NULL AND list_contains($h, webhook) ORDER BY seq", {"h": rendered}).fetchall()
+            failed = _dress(con, project, now, again)
+            result.unrendered += failed
+            result.retried_abandoned -= len(failed)
         con.execute("COMMIT")
     except BaseException:
         con.execute("ROLLBACK")
@@ -181,13 +192,13 @@ def destinations(project: Project) -> tuple[Webhook | Mailbox, ...]:
     return (*project.webhooks, *project.mailboxes)
 
 
-def _dress(con: duckdb.DuckDBPyConnection, project: Project, now: datetime) -> list[str]:
-    """The rows just queued, in the queue's transaction: each payload given its words (``summary``; a
+def _dress(con: duckdb.DuckDBPyConnection, project: Project, now: datetime,
+           rows: list[tuple[str, str, str, str]]) -> list[str]:
+    """The rows just queued (key, destination, status, payload), in the queue's transaction: each payload given its words (``summary``; a
     check's ``measure`` and ``unit``; values without binary noise), and the bytes each destination
     sends when not the payload (a webhook's template rendered, a mail message) fixed now, so every
     attempt sends the same. A template that fails for an event abandons that row now, with the error.
     Returns the lines saying which."""
-    rows = con.execute("SELECT idempotency_key, webhook, status, payload FROM outbox_new ORDER BY seq").fetchall()
     if not rows:
         return []
     known = readings(project)
