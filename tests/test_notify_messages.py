@@ -385,7 +385,7 @@ def test_a_server_without_starttls_is_not_sent_to_in_clear(tmp_path: Path) -> No
 def test_a_message_for_each_kind_of_event_is_one_subject_and_readable_lines() -> None:
     from toolkit.config.bodies import samples, variables
     from toolkit.model import Mailbox, Smtp
-    from toolkit.outputs.mail import message
+    from toolkit.outputs.mail import message, subject_text
 
     box = Mailbox("on-call-mail", ("oncall@fernhill.example",), Smtp("127.0.0.1", 25, "none", "plimsoll@fernhill.example"))
     now = dt.datetime(2026, 11, 16, 9, 43)
@@ -395,8 +395,9 @@ def test_a_message_for_each_kind_of_event_is_one_subject_and_readable_lines() ->
             text = message(box, payload, words, "ab" * 16, now)
             parsed = email.message_from_string(text, policy=email.policy.default)
             assert len(parsed.get_all("Subject")) == 1, what
-            summary = printable(words["summary"])   # a long one is cut in the subject, whole in the body
-            assert parsed["Subject"] == "[plimsoll] " + (summary if len(summary) <= 160 else summary[:159] + "…"), what
+            summary = printable(words["summary"])   # a long one is cut after a word in the subject, whole in the body
+            assert parsed["Subject"] == "[plimsoll] " + subject_text(summary), what
+            assert len(parsed["Subject"]) <= 211 and subject_text(summary).rstrip("…") in summary
             assert parsed["Message-ID"] == f"<{'ab' * 16}@fernhill.example>"
             assert parsed["Date"] == "Mon, 16 Nov 2026 09:43:00 +0000"
             body = parsed.get_content()

@@ -32,7 +32,7 @@ from toolkit.outputs.deadline import Deadline
 from toolkit.outputs.listings import cause_line, printable
 from toolkit.problems import PlimsollError
 
-SUBJECT_LENGTH = 160  # characters of the summary in a subject; the whole line opens the body
+SUBJECT_LENGTH = 200  # characters of the summary in a subject; the whole line opens the body
 
 
 def secrets(box: Mailbox) -> dict[str, str]:
@@ -53,13 +53,22 @@ def message(box: Mailbox, payload: dict[str, Any], words: dict[str, Any], key: s
     mail = EmailMessage(policy=email.policy.SMTP)
     mail["From"] = box.smtp.sender
     mail["To"] = ", ".join(box.to)
-    mail["Subject"] = "[plimsoll] " + (summary if len(summary) <= SUBJECT_LENGTH else summary[:SUBJECT_LENGTH - 1] + "…")
+    mail["Subject"] = "[plimsoll] " + subject_text(summary)
     mail["Date"] = email.utils.format_datetime(now.replace(tzinfo=timezone.utc))
     domain = box.smtp.sender.rpartition("@")[2]
     mail["Message-ID"] = f"<{key}@{domain}>"
     mail["X-Plimsoll-Event"] = f"{payload.get('event')}"
     mail.set_content(_text(payload, words, summary), subtype="plain", charset="utf-8")
     return mail.as_string()
+
+
+def subject_text(summary: str) -> str:
+    """The summary, cut after its last whole word within ``SUBJECT_LENGTH`` when longer (the body has it
+    whole)."""
+    if len(summary) <= SUBJECT_LENGTH:
+        return summary
+    cut = summary[:SUBJECT_LENGTH - 1]
+    return (cut.rsplit(" ", 1)[0] if " " in cut else cut).rstrip(";,:") + "…"
 
 
 def _text(payload: dict[str, Any], words: dict[str, Any], summary: str) -> str:
