@@ -170,6 +170,11 @@ def test_a_misspelt_column_in_by_peers_by_and_explain_by_gets_a_suggestion(make_
     text = CHECK.replace("by: [site, title_id]", "by: [site, titel_id]")
     with pytest.raises(ProjectInvalid, match=r"by: unknown column 'titel_id' \(did you mean 'title_id'\?\)"):
         load_project(make_project({"c.yml": text}))
+    # a list written without its brackets is one name holding a comma: say so, not 'did you mean'
+    text = CHECK.replace("by: [site, title_id]", "by: site, title_id")
+    with pytest.raises(ProjectInvalid, match=r"c.yml:4: by: 'site, title_id' reads as one column name; write a "
+                                             r"list: \[site, title_id\]"):
+        load_project(make_project({"c.yml": text}))
     peers = CHECK.replace("window: {sessions: 10, max_wait: 1d}", "window: {every: 1h}").replace(
         "baseline: {method: rolling_percentile, q: 0.5, history: 10, min_history: 3, factor: 1, floor: 0.1}",
         "baseline: {method: peers, peers_by: [sites]}")

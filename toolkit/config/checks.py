@@ -58,7 +58,11 @@ def load_check(doc: Located, sources: dict[str, Source], con: duckdb.DuckDBPyCon
     by = top.get("by") or []
     if binder and source.columns:
         for index, column in enumerate(by):
-            if column not in source.columns:
+            parts = [p.strip() for p in column.strip("[]").split(",")]
+            if column not in source.columns and len(parts) > 1 and all(p in source.columns for p in parts):
+                top.error(("by", index), f"by: '{column}' reads as one column name; write a list: "
+                                         f"[{', '.join(parts)}]")
+            elif column not in source.columns:
                 top.error(("by", index), f"by: {unknown_column(column, source.columns)} in source '{source.name}'")
     attributes = top.get("attributes") or (source.attributes if source is not None else [])
     if binder and source.columns:

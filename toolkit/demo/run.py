@@ -17,7 +17,7 @@ from typing import Any
 from toolkit.backtest.labels import Label, match_label, overlapping
 from toolkit.outputs.listings import alerts_from, cause_line, incidents_from
 from toolkit.problems import PlimsollError
-from toolkit.words import plural
+from toolkit.words import Reading, against_text, plural, readings
 from toolkit.config.project import load_project
 from toolkit.engine.runner import RunResult, run
 from toolkit.engine.warehouse import connect
@@ -60,6 +60,7 @@ class DemoOutcome:
     labels: list[Label]
     matches: list[Match] = field(default_factory=list)
     incidents: list[dict[str, Any]] = field(default_factory=list)
+    readings: dict[str, Reading] = field(default_factory=dict)   # how each check's figures read
 
     @property
     def found(self) -> list[Label]:
@@ -120,7 +121,7 @@ def build_and_run(workdir: Path, sessions: int = 2_000_000, seed: int = 7,
     project = load_project(write_project(workdir))
     result = run(project, progress=say)
     t2 = time.perf_counter()
-    outcome = DemoOutcome(workdir, sessions, t1 - t0, t2 - t1, result, labels)
+    outcome = DemoOutcome(workdir, sessions, t1 - t0, t2 - t1, result, labels, readings=readings(project))
     con = connect(project, read_only=True)
     try:
         outcome.matches = [Match(a, match_label(a, labels), overlapping(a, labels)) for a in alerts_from(con)]
@@ -206,6 +207,7 @@ def summary(outcome: DemoOutcome) -> str:
         split = f" [{a['split_value']}]" if a["split_value"] else ""
         lines.append(
             f"  {a['opened_at']:%Y-%m-%d %H:%M}  {a['check_name']:<{width}}  {a['key_text']}{split}: "
+            f"at worst {against_text(a['peak_value'], a['threshold'], o.readings.get(a['check_name'], Reading()))}; "
             f"{plural(a['affected_sessions'], 'session')} affected"
             f"{'' if a.get('affected_viewers') is None else ' (' + plural(a['affected_viewers'], 'viewer') + ')'}"
             f" over {a['breach_windows']} "
