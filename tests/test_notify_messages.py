@@ -110,12 +110,12 @@ def test_the_readmes_default_template_gives_the_default_body(tmp_path: Path, hoo
 
 
 def test_a_text_template_is_sent_as_text(tmp_path: Path, hook: Hook) -> None:
-    extra = (f"webhooks:\n  - url: {hook.url}\n    content_type: text/plain; charset=utf-8\n"
+    extra = (f"webhooks:\n  - url: {hook.url}\n    content_type: text/plain\n"
              "    body: '{{ summary }} [{{ key_text }}]'\n")
     project = nasty_project(tmp_path, extra)
     notify(project, clock=PretendClock())
     bodies = [r.body.decode() for r in hook.accepted]
-    assert {r.headers["Content-Type"] for r in hook.accepted} == {"text/plain; charset=utf-8"}
+    assert {r.headers["Content-Type"] for r in hook.accepted} == {"text/plain; charset=utf-8"}  # charset added
     (key_text,) = {json.loads(r[5])["key_text"] for r in outbox_rows(project) if "say" in r[5]}
     assert any(f"[{key_text}]" in b for b in bodies)  # text is written as it is
 

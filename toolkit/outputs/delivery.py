@@ -39,7 +39,7 @@ from toolkit import __version__
 
 from toolkit.engine import warehouse
 from toolkit.sql.templates import template_folder
-from toolkit.config.bodies import BodyError, compile_body, render_body, variables
+from toolkit.config.bodies import BodyError, compile_body, is_text_type, render_body, variables
 from toolkit.model import Mailbox, Project, Webhook, endpoint
 from toolkit.outputs import mail
 from toolkit.outputs.deadline import Deadline as _Deadline
@@ -222,6 +222,8 @@ def _dress(con: duckdb.DuckDBPyConnection, project: Project, now: datetime,
             body, content_type = mail.message(hook, payload, found, key, now), "message/rfc822"
         elif status == "queued" and isinstance(hook, Webhook) and hook.body is not None:
             content_type = hook.content_type
+            if is_text_type(content_type) and "charset" not in content_type.lower():
+                content_type += "; charset=utf-8"   # the body is UTF-8: say so, or a receiver may guess Latin-1
             try:
                 if name not in templates:
                     templates[name] = compile_body(hook.body, hook.content_type)
