@@ -180,3 +180,10 @@ def test_a_misspelt_column_in_by_peers_by_and_explain_by_gets_a_suggestion(make_
         "baseline: {method: peers, peers_by: [sites]}")
     with pytest.raises(ProjectInvalid, match=r"baseline.peers_by: 'sites' \(did you mean 'site'\?\) not in 'by'"):
         load_project(make_project({"c.yml": peers}))
+
+
+def test_notify_without_a_warehouse_or_anywhere_to_send_says_there_is_nothing_to_send(tmp_path: Path) -> None:
+    project = known_project(tmp_path)
+    result = invoke("notify", "-p", str(project))
+    assert (result.exit_code, result.output) == (0, "notify: no webhooks or email in the project file; nothing to send\n")
+    assert not (tmp_path / "w.duckdb").exists() and not list(tmp_path.glob("*.lock"))

@@ -122,9 +122,11 @@ def notify(project: Project, clock: Clock | None = None, retry_for: timedelta = 
     """Queue new alert events, then deliver due rows; keep retrying those due within ``retry_for``."""
     clock = clock or Clock()
     result = NotifyResult()
-    if not Path(project.warehouse).exists():  # nothing to send, and no warehouse or lock file made for it
+    if not Path(project.warehouse).exists() and destinations(project):  # no warehouse or lock file made for it
         raise PlimsollError(f"{project.warehouse}: no warehouse yet, so no events to send; run `plimsoll run` "
                             "first")
+    if not Path(project.warehouse).exists():
+        return result   # nowhere to send, nothing to send: describe() says so
     with _single_notifier(project):
         with _warehouse(project) as con:
             _queue(con, project, clock.now(), retry_abandoned, result)
