@@ -127,8 +127,14 @@ def test_report_filters(project: Path, tmp_path: Path) -> None:
     result = invoke("report", "--out", str(out), "--since", "2026-11-02 00:50:00", "-p", str(project))
     assert result.exit_code == 0 and "1 alert (1 open), 1 incident" in result.output
     assert parse(out.read_text()).charts == 2  # its incident's cause, and the alert
-    result = invoke("report", "--out", str(out), "--check", "other", "-p", str(project))
+    result = invoke("report", "--out", str(out), "--since", "2030-01-01", "-p", str(project))
     assert "0 alerts" in result.output and "No alerts match." in out.read_text()
+    # a check no one has is a mistake, not an empty page: exit 2 naming the checks, the page left as it was
+    before = out.read_text()
+    result = invoke("report", "--out", str(out), "--check", "other", "-p", str(project))
+    assert result.exit_code == 2 and result.output.endswith("--check: no check named 'other'; the checks are: "
+                                                            "title_errors\n")
+    assert out.read_text() == before
 
 
 def test_report_before_any_run_says_so(tmp_path: Path) -> None:

@@ -175,10 +175,11 @@ def _queue(con: duckdb.DuckDBPyConnection, project: Project, now: datetime, retr
                 "WHERE status = 'abandoned' AND list_contains($h, webhook)", {"h": names, "now": now}).fetchone()[0]
             # a row abandoned because its template failed has no body: render it now, with the
             # template as it is now (a row that was sent keeps its bytes)
-            rendered = [h.name for h in destinations(project) if isinstance(h, Mailbox) or h.body is not None]
+            rendered = [h.name for h in project.webhooks if h.body is not None]
             again = con.execute(
                 "SELECT idempotency_key, webhook, status, payload FROM outbox WHERE status = 'queued' AND attempts = 0 "
-                "AND body IS NULL AND list_contains($h, webhook) ORDER BY seq", {"h": rendered}).fetchall()
+                "AND body IS NULL AND starts_with(last_error, 'body template') AND list_contains($h, webhook) "
+                "ORDER BY seq", {"h": rendered}).fetchall()
             failed = _dress(con, project, now, again)
             result.unrendered += failed
             result.retried_abandoned -= len(failed)
@@ -196,8 +197,9 @@ def destinations(project: Project) -> tuple[Webhook | Mailbox, ...]:
 
 def _dress(con: duckdb.DuckDBPyConnection, project: Project, now: datetime,
            rows: list[tuple[str, str, str, str]]) -> list[str]:
-    """The rows just queued (key, destination, status, payload), in the queue's transaction: each payload given its words (``summary``; a
-    check's ``measure`` and ``unit``; values without binary noise), and the bytes each destination
+    """The rows just queued (key, destination, status, payload), in the queue's transaction: each
+    payload given its words (``summary``; a check's ``measure``, ``unit``, ``value_text`` and
+    ``threshold_text``; values without binary noise), and the bytes each destination
     sends when not the payload (a webhook's template rendered, a mail message) fixed now, so every
     attempt sends the same. A template that fails for an event abandons that row now, with the error.
     Returns the lines saying which."""
