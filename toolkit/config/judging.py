@@ -19,6 +19,7 @@ import duckdb
 from toolkit.lake.files import list_source
 from toolkit.model import Check, Project
 from toolkit.problems import PlimsollError, Problem, display_path
+from toolkit.words import plural
 
 LONG = timedelta(days=30)     # a first verdict later than this after a series starts is worth a word
 FOOTERS = 500                 # the newest files whose footers the traffic is estimated from
@@ -48,7 +49,7 @@ def _warning(check: Check, rate: float | None) -> str | None:
         first = windows * window.every + window.lateness
         if first > LONG:
             return (f"window: a series' first verdict comes {spoken_span(first)} of data after its first session at "
-                    f"the earliest ({windows:,} windows of {spoken_span(window.every)}: {history}); its alerts "
+                    f"the earliest ({plural(windows, 'window')} of {spoken_span(window.every)}: {history}); its alerts "
                     "wait as long")
         return None
     size, wait = window.sessions or 0, window.max_wait or timedelta(0)
@@ -69,11 +70,11 @@ def _warning(check: Check, rate: float | None) -> str | None:
         return (f"window.sessions: {size:,} sessions are never reached: at the lake's {rate * 86400:,.0f} sessions a "
                 f"day (the whole source's; a series gets a part) a window would fill in about {spoken_span(fill)}, so "
                 f"every window closes at max_wait ({spoken_span(wait)}) with what it has; a series' first verdict comes "
-                f"{spoken_span(first)} of data after its first session at the earliest ({windows:,} windows: "
+                f"{spoken_span(first)} of data after its first session at the earliest ({plural(windows, 'window')}: "
                 f"{history})")
     if first > LONG:
         return (f"window: a series' first verdict comes {spoken_span(first)} of data after its first session at the "
-                f"earliest ({windows:,} windows of {size:,} sessions, each closing after "
+                f"earliest ({plural(windows, 'window')} of {size:,} sessions, each closing after "
                 f"{spoken_span(each)} at the lake's {rate * 86400:,.0f} sessions a day, or at max_wait: {history}); "
                 "its alerts wait as long")
     return None

@@ -659,9 +659,11 @@ def describe(project: Project, result: NotifyResult) -> str:
     lines = [f"notify: queued {plural(result.queued, 'event')} for {' and '.join(receivers)}"
              + (f" ({', '.join(_skips(result.skipped_for))} skipped)" if result.skipped else "")]
     if result.retried_abandoned:
-        lines.append(f"  {result.retried_abandoned} abandoned deliveries queued again")
+        lines.append(f"  {result.retried_abandoned} abandoned deliver{'y' if result.retried_abandoned == 1 else 'ies'} "
+                     "queued again")
     if result.orphaned:
-        lines.append(f"  abandoned {result.orphaned} deliveries to webhooks no longer in the project file")
+        lines.append(f"  abandoned {result.orphaned} deliver{'y' if result.orphaned == 1 else 'ies'} to webhooks no "
+                     "longer in the project file")
     for line in result.unsent:
         lines.append(f"  not sent   {line}")
     for line in result.unrendered:
