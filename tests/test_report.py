@@ -338,3 +338,20 @@ def test_the_incidents_page_in_a_headless_browser(with_incidents: Path, tmp_path
     assert dom.charts == 4 + 8
     assert "script" not in dom.tags and "img" not in dom.tags
     assert any(HOSTILE_PLAYER in t for t in dom.text)
+
+
+def test_figures_and_charts_read_in_the_checks_unit(tmp_path: Path) -> None:
+    ratio = CHECK.replace("measure: {kind: rate, bad: error_code IS NOT NULL}",
+                          "measure: {kind: ratio, numerator: 'CASE WHEN error_code IS NULL THEN 0 ELSE 1000 END', "
+                          "denominator: '1', unit: ms}").replace("guard: {min_sessions: 5, min_bad: 2}",
+                                                                  "guard: {min_sessions: 5}").replace(
+        "floor: 0.1", "floor: 100")
+    project = known_project(tmp_path, checks={"c.yml": ratio})
+    assert invoke("run", "-p", str(project)).exit_code == 0
+    out = tmp_path / "r.html"
+    assert invoke("report", "--out", str(out), "-p", str(project)).exit_code == 0
+    page = out.read_text()
+    assert "peak value</dt><dd>800 ms<" in page and "threshold at opening</dt><dd>100 ms<" in page
+    assert "window value (ms)" in page
+    listed = invoke("alerts", "-p", str(project)).output
+    assert "800 ms" in listed and "100 ms" in listed

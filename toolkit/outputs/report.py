@@ -156,7 +156,8 @@ def _incident_card(project: Project, incident: dict[str, Any], shown: dict[str, 
     chart = None
     if cause is not None and series.shown:
         chart = markupsafe.Markup(chart_svg(cause, series, None if cusum or check is None else check.measure.kind,
-                                            salt=f"incident-{incident['incident_id']}"))
+                                            salt=f"incident-{incident['incident_id']}",
+                                            unit=check.measure.unit if check is not None else None))
     return {
         "incident": incident,
         "anchor": f"incident-{incident['incident_id']}",
@@ -285,13 +286,15 @@ def _card(project: Project, alert: dict[str, Any], series: Series, earlier: int)
         ],
         "about": check.about if check else "",
         "direction": check.direction if check else None,
-        "chart": markupsafe.Markup(chart_svg(alert, series, None if cusum else kind)) if series.shown else None,
+        "chart": markupsafe.Markup(chart_svg(alert, series, None if cusum else kind, unit=reading.unit))
+        if series.shown else None,
         "no_chart": "No windows of this series are in the warehouse.",
         "series": series,
     }
 
 
-def chart_svg(alert: dict[str, Any], series: Series, kind: str | None, salt: str | None = None) -> str:
+def chart_svg(alert: dict[str, Any], series: Series, kind: str | None, salt: str | None = None,
+              unit: str | None = None) -> str:
     """One alert's series against its threshold, breaching windows marked, as an inline SVG element.
 
     ``salt`` keeps the SVG's element ids apart from another chart of the same alert on the page."""
@@ -328,11 +331,11 @@ def chart_svg(alert: dict[str, Any], series: Series, kind: str | None, salt: str
         if alert["split_value"] is not None:
             title += f" [{alert['split_value']}]"
         ax.set_title(title, loc="left", fontsize=9, parse_math=False)
-        ax.set_ylabel(label, parse_math=False)
+        ax.set_ylabel(f"{label} ({unit})" if unit and unit != "%" and kind != "rate" else label, parse_math=False)
         locator = AutoDateLocator()
         ax.xaxis.set_major_locator(locator)
         ax.xaxis.set_major_formatter(ConciseDateFormatter(locator))
-        if kind == "rate":
+        if kind == "rate" or (kind is not None and unit == "%"):  # the check's unit: a fraction read as %
             ax.yaxis.set_major_formatter(PercentFormatter(1.0))
         ax.grid(True, color="#e5e5e5", linewidth=0.6)
         fig.legend(loc="outside lower center", fontsize=8, frameon=False, ncols=3)
