@@ -282,6 +282,9 @@ events AS (
         coalesce(i.severity, a.severity) AS severity,
         CASE WHEN e.status = 'merged' THEN a.incident_id END AS merged_into,
         a.check_name, a.key, a.key_text, a.split_value, a.alarm,
+        -- the cause alert's worst value and its threshold, for the words a message says
+        CASE WHEN isfinite(a.peak_value) THEN a.peak_value END AS cause_peak_value,
+        CASE WHEN isfinite(a.threshold) THEN a.threshold END AS cause_threshold,
         coalesce(cs.causes, []) AS causes,
         CASE e.event WHEN 'opened' THEN 0 WHEN 'reopened' THEN 0 WHEN 'updated' THEN 1 ELSE 2 END AS event_rank,
         md5(to_json({
@@ -375,7 +378,8 @@ SELECT
         'closed_at': CASE WHEN f.event = 'closed' THEN strftime(f.occurred_at, '%Y-%m-%dT%H:%M:%SZ') END,
         'merged_into': f.merged_into,
         'cause': {'check': f.check_name, 'key': f.key, 'key_text': f.key_text, 'split_value': f.split_value,
-                  'alert_id': f.cause_alert_id, 'alarm': f.alarm},
+                  'alert_id': f.cause_alert_id, 'alarm': f.alarm, 'peak_value': f.cause_peak_value,
+                  'threshold': f.cause_threshold},
         'alert_ids': f.alert_ids,
         'alerts': f.alerts,
         'severity': f.severity,

@@ -3,9 +3,11 @@
 -- closed it (to the series' last window while it is open). The plotted value is the EWMA statistic
 -- where the baseline has one, else the window's value. A span longer than $max_points windows is
 -- thinned into buckets of consecutive windows, each keeping its lowest and highest window and its
--- first breaching one, so spikes and every bucket with a breach stay visible.
+-- first breaching one, so spikes and every bucket with a breach stay visible. Only the alert's own
+-- breaching windows (from its opening to its last breach) are marked: the span drawn can hold
+-- another alert of the same series, before or after it, whose windows are not this alert's.
 WITH chosen AS (
-    SELECT alert_id, check_name, key, split_value, opened_at, closed_at
+    SELECT alert_id, check_name, key, split_value, opened_at, closed_at, last_breach_at
     FROM alerts
     WHERE list_contains($alert_ids, alert_id)
 ),
@@ -13,7 +15,7 @@ series AS (
     SELECT
         c.alert_id, c.opened_at, c.closed_at,
         w.window_number, w.window_start, w.window_end, w.sessions, w.bad, w.value, w.statistic, w.threshold,
-        coalesce(w.breach, false) AS breach,
+        coalesce(w.breach AND w.window_end BETWEEN c.opened_at AND c.last_breach_at, false) AS breach,
         coalesce(w.statistic, w.value) AS plotted,
         row_number() OVER (PARTITION BY c.alert_id ORDER BY w.window_number) AS n
     FROM chosen AS c

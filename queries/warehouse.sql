@@ -297,6 +297,11 @@ ALTER TABLE alert_events ADD COLUMN IF NOT EXISTS newest_data_at TIMESTAMP;
 ALTER TABLE incidents ADD COLUMN IF NOT EXISTS cause_alarm VARCHAR;     -- the cause alert's alarm, if a source alarm
 -- ── end of layout 6 ───────────────────────────────────────────────────────────────────────────
 
+-- What `plimsoll notify` sends when it is not the JSON payload: a webhook's body template rendered, or
+-- a mail message, fixed when queued so every attempt sends the same bytes. NULL: the payload is sent.
+ALTER TABLE outbox ADD COLUMN IF NOT EXISTS body VARCHAR;
+ALTER TABLE outbox ADD COLUMN IF NOT EXISTS content_type VARCHAR;   -- of body: the webhook's, or message/rfc822 for mail
+
 -- The warehouse's layout, so a later release can migrate a file written by an earlier one and a
 -- file written by a later one is refused with a clear message. Paths in files_read,
 -- changed_files, session_ids and source_columns are relative to their source's path from version 2.

@@ -91,7 +91,7 @@ def test_alerts_table_and_json(project: Path) -> None:
     invoke("run", "-p", str(project))
     table = invoke("alerts", "-p", str(project))
     assert table.exit_code == 0, table.output
-    assert table.output.splitlines()[0].split() == ["status", "severity", "check", "key", "split", "opened",
+    assert table.output.splitlines()[0].split() == ["status", "severity", "check", "key", "split", "worst", "threshold", "opened",
                                                     "windows", "affected", "viewers", "excess", "per", "hour", "incident"]
     assert "site=kids" in table.output
     data = json.loads(invoke("alerts", "--json", "-p", str(project)).output)

@@ -159,6 +159,8 @@ KEY_TABLES = {
     "SOURCE_KEYS": r"Each source:",
     "WEBHOOK_KEYS": r"Each webhook \(`webhooks:` is a list\):",
     "NOTIFY_KEYS": r"`notify`:",
+    "SMTP_KEYS": r"`smtp` \(for `email`\):",
+    "EMAIL_KEYS": r"Each list of mail recipients \(`email:` is a list\):",
     "STORAGE_KEYS": r"`storage` \(.*\):",
     "CATALOG_KEYS": r"`iceberg_catalog`:",
     "CHECK_KEYS": r"### Check files",
@@ -325,3 +327,27 @@ def test_every_constant_the_contributor_guide_names_exists() -> None:
     assert len(constants) >= 5
     missing = sorted(c for c in constants if not re.search(rf"\b{c}\b", corpus))
     assert not missing, f"DEVELOPERS.md names constants the code does not have: {missing}"
+
+
+@pytest.mark.parametrize("doc", [README, DEVELOPERS], ids=lambda p: p.name)
+def test_no_table_is_split_or_ragged(doc: Path) -> None:
+    """A blank line inside a Markdown table ends it: the rows after it show as a paragraph of pipes
+    (the baselines table once lost its `ewma` row so). Every row has its header's number of cells."""
+    lines = doc.read_text(encoding="utf-8").split("\n")
+    fenced = False
+    header: int | None = None
+    for number, line in enumerate(lines, 1):
+        if line.startswith("```"):
+            fenced = not fenced
+        if fenced:
+            continue
+        if line.startswith("|"):
+            cells = len(re.findall(r"(?<!\\)\|", line)) - 1
+            if header is None:
+                header = cells
+            assert cells == header, f"{doc.name}:{number}: {cells} cells, the table's header has {header}"
+            continue
+        header = None
+        if not line.strip() and number < len(lines) and lines[number].startswith("|"):
+            previous = lines[number - 2] if number >= 2 else ""
+            assert not previous.startswith("|"), f"{doc.name}:{number}: a blank line splits a table"

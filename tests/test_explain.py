@@ -136,7 +136,8 @@ def test_by_chooses_the_attributes(project_file: Path) -> None:
     (("nosuchalert",), "no alert nosuchalert in"),
     (("site_failures", "--at", "2026-11-03 06:10"), "--key must give every 'by' column: site=…"),
     (("startup", "--at", "2026-11-02 02:10", "--key", "site=news"), "the window has no threshold"),
-    (("site_failures", "--at", "2026-11-03 06:10", "--key", "site=news", "--by", "cdnn"), "no column cdnn"),
+    (("site_failures", "--at", "2026-11-03 06:10", "--key", "site=news", "--by", "cdnn"),
+     "--by: unknown column 'cdnn' (did you mean 'cdn'?) in source 'sessions'"),
     (("site_failures", "--at", "2026-11-01 06:10", "--key", "site=news"), "no sessions of the series in the window"),
     (("nosuch", "--at", "2026-11-03 06:10"), "no check 'nosuch'"),
 ])

@@ -301,12 +301,12 @@ def test_listings_report_and_payloads_show_viewers_and_excess_and_no_viewer_id(t
 
     alerts = list_alerts(project)
     table = alerts_table(alerts).splitlines()
-    assert table[0].split() == ["status", "severity", "check", "key", "split", "opened", "windows", "affected",
-                                "viewers", "excess", "per", "hour", "incident"]
-    # from the check on: check, key, opened (two words), windows, affected, viewers, excess, per hour
+    assert table[0].split() == ["status", "severity", "check", "key", "split", "worst", "threshold", "opened",
+                                "windows", "affected", "viewers", "excess", "per", "hour", "incident"]
+    # from the check on: check, key, worst, threshold, opened (two words), windows, affected, viewers, excess
     rows = {words[words.index("medium") + 1]: words[words.index("medium") + 1:] for words in map(str.split, table[2:])}
-    assert rows["failures"][5:8] == ["16", "6", "12"]
-    assert rows["stalls"][5:8] == ["5", "2", "-"]
+    assert rows["failures"][7:10] == ["16", "6", "12"]
+    assert rows["stalls"][7:10] == ["5", "2", "-"]
     listed = {a["check_name"]: a for a in json.loads(alerts_json(alerts))}
     assert (listed["failures"]["affected_viewers"], listed["failures"]["excess_sessions"]) == (6, pytest.approx(12.0))
     assert (listed["slow_starts"]["affected_viewers"], listed["slow_starts"]["excess_sessions"]) == (6, None)

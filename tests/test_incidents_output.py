@@ -46,36 +46,36 @@ def query(project: Path, sql: str) -> list[tuple]:
 # that CDN explains; the last site=news alert's answer (country=FR and the hostile player, not the
 # CDN) leaves it an incident of its own: on 21 affected sessions the rounds did not narrow to cedar.
 ALERTS = """\
-status              severity  check        key                    split  opened            windows  affected  viewers  excess  per hour  incident
-------------------  --------  -----------  ---------------------  -----  ----------------  -------  --------  -------  ------  --------  ----------------
-open                high      cdn_country  cdn=birch, country=FR         2026-11-03 09:00  1        7         -        5       7         3a44a3b20dcbabd9
+status              severity  check        key                    split  worst   threshold  opened            windows  affected  viewers  excess  per hour  incident
+------------------  --------  -----------  ---------------------  -----  ------  ---------  ----------------  -------  --------  -------  ------  --------  ----------------
+open                high      cdn_country  cdn=birch, country=FR         6.73 %  5.91 %     2026-11-03 09:00  1        7         -        5       7         3a44a3b20dcbabd9
   └ cdn=birch, country=FR: 7 sessions affected, 96 % of the excess in site=sport
-open                high      cdn_country  cdn=cedar, country=FR         2026-11-03 08:00  2        34        -        31      17        3a44a3b20dcbabd9
+open                high      cdn_country  cdn=cedar, country=FR         19.1 %  5.2 %      2026-11-03 08:00  2        34        -        31      17        3a44a3b20dcbabd9
   └ cdn=cedar, country=FR: 34 sessions affected, all of the excess in player=<img src=x onerror=alert(2)>
-open                medium    site         site=news                     2026-11-03 08:00  2        21        -        16      14        54f1a9fe05d4bea6
+open                medium    site         site=news                     8.21 %  5.21 %     2026-11-03 08:00  2        21        -        16      14        54f1a9fe05d4bea6
   └ site=news: 21 sessions affected, 76 % of the excess in country=FR, player=<img src=x onerror=alert(2)>
-closed (recovered)  medium    site         site=sport                    2026-11-03 08:30  1        13        -        9       26        3a44a3b20dcbabd9
+closed (recovered)  medium    site         site=sport                    8.39 %  6.2 %      2026-11-03 08:30  1        13        -        9       26        3a44a3b20dcbabd9
   └ site=sport: 13 sessions affected, 73 % of the excess in cdn=cedar, country=FR, player=<img src=x onerror=alert(2)>
-closed (recovered)  high      cdn_country  cdn=birch, country=FR         2026-11-02 23:00  1        8         -        6       8         63d519f975e17d6a
+closed (recovered)  high      cdn_country  cdn=birch, country=FR         8.79 %  5.69 %     2026-11-02 23:00  1        8         -        6       8         63d519f975e17d6a
   └ cdn=birch, country=FR: 8 sessions affected, 70 % of the excess in player=<img src=x onerror=alert(2)>
-closed (recovered)  high      cdn_country  cdn=birch, country=DE         2026-11-02 17:00  3        183       -        177     26        4c07b99f730be766
+closed (recovered)  high      cdn_country  cdn=birch, country=DE         66 %    6.34 %     2026-11-02 17:00  3        183       -        177     26        4c07b99f730be766
   └ cdn=birch, country=DE: 183 sessions affected, the excess 52 % in site=sport; 48 % in site=news
-closed (recovered)  medium    site         site=news                     2026-11-02 16:30  6        107       -        90      15        4c07b99f730be766
+closed (recovered)  medium    site         site=news                     15.4 %  5.11 %     2026-11-02 16:30  6        107       -        90      15        4c07b99f730be766
   └ site=news: 107 sessions affected, 95 % of the excess in cdn=birch, country=DE
-closed (recovered)  medium    site         site=sport                    2026-11-02 16:30  6        104       -        86      15        4c07b99f730be766
+closed (recovered)  medium    site         site=sport                    14.7 %  5.68 %     2026-11-02 16:30  6        104       -        86      15        4c07b99f730be766
   └ site=sport: 104 sessions affected, all of the excess in cdn=birch, country=DE
 """
 
 INCIDENTS = """\
-incident          status  severity  opened            closed            cause                              alerts  affected  viewers
-----------------  ------  --------  ----------------  ----------------  ---------------------------------  ------  --------  -------
-3a44a3b20dcbabd9  open    high      2026-11-03 08:00  -                 cdn_country cdn=cedar, country=FR  3       34        -
+incident          status  severity  opened            closed            cause                              worst   threshold  alerts  affected  viewers
+----------------  ------  --------  ----------------  ----------------  ---------------------------------  ------  ---------  ------  --------  -------
+3a44a3b20dcbabd9  open    high      2026-11-03 08:00  -                 cdn_country cdn=cedar, country=FR  19.1 %  5.2 %      3       34        -
   └ cdn=cedar, country=FR: 34 sessions affected, all of the excess in player=<img src=x onerror=alert(2)>
-54f1a9fe05d4bea6  open    medium    2026-11-03 08:00  -                 site site=news                     1       21        -
+54f1a9fe05d4bea6  open    medium    2026-11-03 08:00  -                 site site=news                     8.21 %  5.21 %     1       21        -
   └ site=news: 21 sessions affected, 76 % of the excess in country=FR, player=<img src=x onerror=alert(2)>
-63d519f975e17d6a  closed  high      2026-11-02 23:00  2026-11-03 01:00  cdn_country cdn=birch, country=FR  1       8         -
+63d519f975e17d6a  closed  high      2026-11-02 23:00  2026-11-03 01:00  cdn_country cdn=birch, country=FR  8.79 %  5.69 %     1       8         -
   └ cdn=birch, country=FR: 8 sessions affected, 70 % of the excess in player=<img src=x onerror=alert(2)>
-4c07b99f730be766  closed  high      2026-11-02 16:30  2026-11-03 01:00  cdn_country cdn=birch, country=DE  3       183       -
+4c07b99f730be766  closed  high      2026-11-02 16:30  2026-11-03 01:00  cdn_country cdn=birch, country=DE  66 %    6.34 %     3       183       -
   └ cdn=birch, country=DE: 183 sessions affected, the excess 52 % in site=sport; 48 % in site=news
 """
 

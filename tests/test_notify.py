@@ -37,7 +37,7 @@ from toolkit.engine.runner import run
 PAYLOAD_KEYS = {"idempotency_key", "event", "occurred_at", "check", "severity", "alert_id", "fingerprint", "key",
                 "key_text", "split_value", "opened_at", "closed_at", "close_reason", "value", "threshold",
                 "affected_sessions", "affected_viewers", "excess_sessions", "breach_windows", "incident_id", "causes",
-                "run_id", "sender"}
+                "run_id", "sender", "measure", "unit", "value_text", "threshold_text", "summary"}
 
 
 @dataclass
@@ -237,7 +237,14 @@ def test_the_payload_carries_keys_and_counts_only(tmp_path: Path, hook: Hook) ->
         "event": "opened", "occurred_at": "2026-11-02T00:49:00Z", "check": "title_errors",
         "key": {"site": "kids", "title_id": "t-1"}, "value": 0.6, "threshold": 0.1, "affected_sessions": 6,
         "breach_windows": 1, "closed_at": None}
+    # the words people read: check, key, value against threshold in the measure's unit, who was hit
+    assert (opened["measure"], opened["unit"], opened["value_text"], opened["threshold_text"]) == (
+        "rate", None, "60 %", "10 %")
+    assert opened["summary"] == ("high opened: title_errors site=kids, title_id=t-1: 60 % against a threshold "
+                                 "of 10 %; 6 sessions affected in 1 breaching window")
     closed = json.loads(hook.received[3].body)
+    assert closed["summary"] == ("high closed (recovered): title_errors site=kids, title_id=t-1: 0 % against a "
+                                 "threshold of 10 %; 13 sessions affected in 2 breaching windows")
     assert (closed["event"], closed["close_reason"], closed["closed_at"], closed["affected_sessions"],
             closed["breach_windows"]) == ("closed", "recovered", "2026-11-02T01:09:00Z", 13, 2)
     # the known lake's source names no viewers; every bad session is above a baseline rate of 0
@@ -380,7 +387,7 @@ def test_without_webhooks_there_is_nothing_to_send(tmp_path: Path) -> None:
     project = built(tmp_path, "")
     result = CliRunner().invoke(main, ["notify", "-p", str(project.file)])
     assert result.exit_code == 0, result.output
-    assert result.output == "notify: no webhooks in the project file; nothing to send\n"
+    assert result.output == "notify: no webhooks or email in the project file; nothing to send\n"
     assert outbox(project) == []
 
 

@@ -23,7 +23,7 @@ from toolkit.outputs.delivery import notify
 
 INCIDENT_KEYS = {"idempotency_key", "event", "occurred_at", "incident_id", "status", "opened_at", "closed_at",
                  "merged_into", "cause", "alert_ids", "alerts", "severity", "affected_sessions", "affected_viewers",
-                 "causes", "run_id", "sender"}
+                 "causes", "run_id", "sender", "summary"}
 # the incidents of the lake (tests/incident_lake.py): the CDN in DE, the site incident that merged
 # into it, a short CDN alert in FR, and at the end the open CDN incident in FR, its merged site one
 # and a site alert of its own (its answer did not narrow to the CDN)
@@ -111,13 +111,17 @@ def test_a_webhook_per_incident_gets_each_incident_event_once(made, hook: Hook) 
         "closed_at": "2026-11-03T01:00:00Z", "merged_into": None,
         "cause": {"check": "cdn_country", "key": {"cdn": "birch", "country": "FR"},
                   "key_text": "cdn=birch, country=FR", "split_value": None, "alert_id": alert_id,
-                  "alarm": None},  # a check's, not a source alarm
+                  "alarm": None,  # a check's, not a source alarm
+                  "peak_value": bodies[10]["cause"]["peak_value"], "threshold": bodies[10]["cause"]["threshold"]},
         "alert_ids": [alert_id], "alerts": 1, "severity": "high", "affected_sessions": 8,
         "affected_viewers": None,
         "causes": [{"rank": 1, "key": {"player": HOSTILE_PLAYER}, "key_text": f"player={HOSTILE_PLAYER}",
                     "bad": 5.0, "expected": 0.52, "excess_share": 0.7028}],
-        "run_id": bodies[10]["run_id"], "sender": bodies[10]["sender"],
+        "run_id": bodies[10]["run_id"], "sender": bodies[10]["sender"], "summary": bodies[10]["summary"],
     }
+    assert bodies[10]["summary"] == ("high incident closed: cause cdn_country cdn=birch, country=FR: at worst "
+                                     "8.79 % against a threshold of 5.69 %; 1 alert; 8 sessions affected")
+    assert 0 < bodies[10]["cause"]["threshold"] < bodies[10]["cause"]["peak_value"] < 1
     assert [(e, s, i) for _, e, s, i in outbox_incidents(project)] == [(e, "delivered", i) for i, e, _ in EVENTS]
     # nothing queued or sent twice
     again = notify(project, clock=PretendClock())

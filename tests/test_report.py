@@ -125,10 +125,16 @@ def test_open_alerts_come_first(project: Path, tmp_path: Path) -> None:
 def test_report_filters(project: Path, tmp_path: Path) -> None:
     out = tmp_path / "late.html"
     result = invoke("report", "--out", str(out), "--since", "2026-11-02 00:50:00", "-p", str(project))
-    assert result.exit_code == 0 and "1 alerts (1 open), 1 incidents" in result.output
+    assert result.exit_code == 0 and "1 alert (1 open), 1 incident" in result.output
     assert parse(out.read_text()).charts == 2  # its incident's cause, and the alert
-    result = invoke("report", "--out", str(out), "--check", "other", "-p", str(project))
+    result = invoke("report", "--out", str(out), "--since", "2030-01-01", "-p", str(project))
     assert "0 alerts" in result.output and "No alerts match." in out.read_text()
+    # a check no one has is a mistake, not an empty page: exit 2 naming the checks, the page left as it was
+    before = out.read_text()
+    result = invoke("report", "--out", str(out), "--check", "other", "-p", str(project))
+    assert result.exit_code == 2 and result.output.endswith("--check: no check named 'other'; the checks are: "
+                                                            "title_errors\n")
+    assert out.read_text() == before
 
 
 def test_report_before_any_run_says_so(tmp_path: Path) -> None:
@@ -149,7 +155,8 @@ def test_chart_data_comes_from_the_windows_with_the_ewma_statistic(tmp_path: Pat
     series = series_for(con, ids)
     for alert_id in ids:
         expected = con.execute(
-            "SELECT w.window_end, w.statistic, w.value, w.breach FROM windows w JOIN alerts a "
+            "SELECT w.window_end, w.statistic, w.value, w.breach AND w.window_end BETWEEN a.opened_at AND "
+            "a.last_breach_at FROM windows w JOIN alerts a "
             "ON a.key = w.key AND a.check_name = w.check_name WHERE a.alert_id = $a ORDER BY w.window_number",
             {"a": alert_id}).fetchall()
         s = series[alert_id]
@@ -159,6 +166,27 @@ def test_chart_data_comes_from_the_windows_with_the_ewma_statistic(tmp_path: Pat
         assert any(r[1] is not None and r[1] != r[2] for r in expected)  # the statistic, not the value
         assert s.breach == [bool(r[3]) for r in expected]   # no verdict (NULL) is drawn as no breach
     con.close()
+
+
+def test_each_chart_marks_only_its_own_alerts_breaching_windows(tmp_path: Path) -> None:
+    # one series with two alerts (no reopening): each chart spans the other's windows too
+    from known_lake import SCHEMA, session_rows
+    bad = [0, 0, 0, 0, 6, 7, 0, 0, 0, 0, 0, 0, 8, 9, 0, 0]
+    lake = write_rows(tmp_path / "lake", SCHEMA, session_rows({"t-1": bad}))
+    check = CHECK.replace("lifecycle: {recover_after: 1, expire_after: 7d}",
+                          "lifecycle: {recover_after: 1, expire_after: 7d, reopen_within: 0s}")
+    project = load_project(write_project(tmp_path, {"c.yml": check}, PLAIN_PROJECT.format(lake=lake)))
+    assert invoke("run", "-p", str(project.file)).exit_code == 0
+    con = duckdb.connect(str(project.warehouse), read_only=True)
+    alerts = con.execute("SELECT alert_id, opened_at, last_breach_at FROM alerts ORDER BY opened_at").fetchall()
+    assert len(alerts) == 2
+    series = series_for(con, [a[0] for a in alerts])
+    con.close()
+    for alert_id, opened, last in alerts:
+        marked = [end for end, hit in zip(series[alert_id].window_end, series[alert_id].breach) if hit]
+        assert len(series[alert_id].window_end) == len(bad)   # both alerts' windows are drawn
+        assert marked and all(opened <= end <= last for end in marked), (alert_id, marked)
+        assert len(marked) == 2
 
 
 def test_a_long_series_is_thinned_and_keeps_its_spikes(tmp_path: Path) -> None:
@@ -310,3 +338,20 @@ def test_the_incidents_page_in_a_headless_browser(with_incidents: Path, tmp_path
     assert dom.charts == 4 + 8
     assert "script" not in dom.tags and "img" not in dom.tags
     assert any(HOSTILE_PLAYER in t for t in dom.text)
+
+
+def test_figures_and_charts_read_in_the_checks_unit(tmp_path: Path) -> None:
+    ratio = CHECK.replace("measure: {kind: rate, bad: error_code IS NOT NULL}",
+                          "measure: {kind: ratio, numerator: 'CASE WHEN error_code IS NULL THEN 0 ELSE 1000 END', "
+                          "denominator: '1', unit: ms}").replace("guard: {min_sessions: 5, min_bad: 2}",
+                                                                  "guard: {min_sessions: 5}").replace(
+        "floor: 0.1", "floor: 100")
+    project = known_project(tmp_path, checks={"c.yml": ratio})
+    assert invoke("run", "-p", str(project)).exit_code == 0
+    out = tmp_path / "r.html"
+    assert invoke("report", "--out", str(out), "-p", str(project)).exit_code == 0
+    page = out.read_text()
+    assert "peak value</dt><dd>800 ms<" in page and "threshold at opening</dt><dd>100 ms<" in page
+    assert "window value (ms)" in page
+    listed = invoke("alerts", "-p", str(project)).output
+    assert "800 ms" in listed and "100 ms" in listed

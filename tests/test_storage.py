@@ -277,8 +277,9 @@ STORAGE_CASES = {
                     "(did you mean 'endpoint_url'?)"),
     "a secret instead of a variable name": (
         "storage:\n  access_key_env: AKIA/not+a-name\n  secret_key_env: FERNHILL_LAKE_SECRET\n",
-        "plimsoll.yml:3: storage.access_key_env: 'AKIA/not+a-name' is not an environment variable name: "
-        "write the variable's name, not its value"),
+        # the value is not repeated: it may be the secret itself
+        "plimsoll.yml:3: storage.access_key_env: this is not an environment variable name (letters, digits "
+        "and _): write the variable's name, not its value"),
     "key without secret": ("storage:\n  access_key_env: FERNHILL_LAKE_KEY\n",
                            "plimsoll.yml:3: storage: access_key_env and secret_key_env go together; give both"),
     "addressing style": ("storage:\n  addressing_style: sideways\n",

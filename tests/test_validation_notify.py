@@ -58,6 +58,54 @@ CASES = [
     ("webhook-header-twice",
      "webhooks:\n  - url: http://x\n    headers:\n      X-Team: A\n      x-team: B\n", 11,
      "webhooks.0.headers.x-team: this header is given twice"),
+    # body templates: each rendered against sample events whose keys hold quotes and a newline
+    ("template-syntax", "webhooks:\n  - url: http://x\n    body: '{\"text\": \"{{ summary }\"}'\n", 9,
+     "webhooks.0.body: template line 1: unexpected '}'"),
+    ("template-unknown-variable", "webhooks:\n  - url: http://x\n    body: '{\"text\": \"{{ sumary }}\"}'\n", 9,
+     "webhooks.0.body: rendered for an alert's opening (its key holding quotes and a newline): 'sumary' is undefined"),
+    ("template-json-filter-inside-quotes",
+     "webhooks:\n  - url: http://x\n    body: '{\"text\": \"{{ summary | json }}\"}'\n", 9,
+     "webhooks.0.body: rendered for an alert's opening (its key holding quotes and a newline): the body is not JSON"),
+    ("template-bare-number-that-can-be-null",
+     "webhooks:\n  - url: http://x\n    body: '{\"viewers\": {{ affected_viewers }}}'\n", 9,
+     "rendered for an expiry without a value (its key holding quotes and a newline): the body is not JSON"),
+    ("template-incident-fields-on-alerts",
+     "webhooks:\n  - url: http://x\n    body: '{\"n\": {{ alerts | json }}}'\n", 9, "'alerts' is undefined"),
+    ("template-unknown-content-type",
+     "webhooks:\n  - url: http://x\n    body: 'a={{ summary }}'\n    content_type: application/x-www-form-urlencoded\n",
+     10, "webhooks.0.content_type: 'application/x-www-form-urlencoded' is neither a JSON type"),
+    ("template-text-type-without-body", "webhooks:\n  - url: http://x\n    content_type: text/plain\n", 9,
+     "webhooks.0.content_type: the default body is JSON; give a body template for text/plain"),
+    ("template-body-and-file", "webhooks:\n  - url: http://x\n    body: '{}'\n    body_file: chat.json.j2\n", 10,
+     "webhooks.0: give body or body_file, not both"),
+    ("template-file-missing", "webhooks:\n  - url: http://x\n    body_file: chat.json.j2\n", 9,
+     "webhooks.0.body_file: cannot read"),
+    ("report-url-not-http", "report_url: file:///srv/report.html\n", 7,
+     "report_url: 'file:///srv/report.html' is not an http:// or https:// URL"),
+    # mail
+    ("email-without-smtp", "email:\n  - {name: on-call, to: [oncall@fernhill.example]}\n", 7,
+     "email: give the mail server under smtp"),
+    ("email-bad-address", "smtp: {host: mail.fernhill.example, from: plimsoll@fernhill.example}\n"
+     "email:\n  - name: on-call\n    to: [oncall@fernhill.example, 'Ops <ops@fernhill.example>']\n", 10,
+     "email.0.to: 'Ops <ops@fernhill.example>' is not one mail address"),
+    ("email-no-recipient", "smtp: {host: mail.fernhill.example, from: plimsoll@fernhill.example}\n"
+     "email:\n  - {name: on-call, to: []}\n", 9, "email.0.to: give at least one address"),
+    ("email-name-of-a-webhook", "webhooks:\n  - {name: on-call, url: 'http://x'}\n"
+     "smtp: {host: mail.fernhill.example, from: plimsoll@fernhill.example}\n"
+     "email:\n  - {name: on-call, to: [oncall@fernhill.example]}\n", 11,
+     "email.0: the name 'on-call' is already used by webhooks.0"),
+    ("smtp-missing-from", "smtp:\n  host: mail.fernhill.example\n", 7, "missing key 'from' in smtp"),
+    ("smtp-password-in-clear", "smtp:\n  host: mail.fernhill.example\n  from: plimsoll@fernhill.example\n"
+     "  security: none\n  user: plimsoll\n  password_env: FERNHILL_SMTP_PASSWORD\n", 10,
+     "smtp.security: none with a user would send the password in clear"),
+    ("smtp-password-not-a-variable", "smtp:\n  host: mail.fernhill.example\n  from: plimsoll@fernhill.example\n"
+     "  user: plimsoll\n  password_env: hunter2 hunter2\n", 11, "smtp.password_env"),
+    ("smtp-user-without-password", "smtp:\n  host: mail.fernhill.example\n  from: plimsoll@fernhill.example\n"
+     "  user: plimsoll\n", 7, "smtp: user and password_env go together; password_env is missing"),
+    ("smtp-bad-security", "smtp:\n  host: mail.fernhill.example\n  from: plimsoll@fernhill.example\n"
+     "  security: ssl\n", 10, "smtp.security: 'ssl' is not one of starttls, tls, none"),
+    ("smtp-ca-file-missing", "smtp:\n  host: mail.fernhill.example\n  from: plimsoll@fernhill.example\n"
+     "  ca_file: ca.pem\n", 10, "smtp.ca_file:"),
     ("notify-unknown-key", "notify:\n  grow: 0.5\n", 8, "unknown key 'grow' in notify (did you mean 'growth'?)"),
     ("notify-negative-growth", "notify:\n  growth: -1\n", 8, "notify.growth: must be at least 0"),
     ("notify-attempts-zero", "notify:\n  max_attempts: 0\n", 8, "notify.max_attempts: must be at least 1"),

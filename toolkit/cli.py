@@ -19,7 +19,9 @@ from toolkit import __version__
 from toolkit.sql.plans import check_plan
 from toolkit.outputs.listings import (alerts_json, alerts_table, incidents_json, incidents_table, list_alerts,
                                       list_incidents)
-from toolkit.problems import PlimsollError
+from toolkit.problems import PlimsollError, display_path
+from toolkit.words import plural, readings
+from toolkit.config.judging import judging_warnings
 from toolkit.config.project import load_project
 from toolkit.sql.script import with_after_checks
 from toolkit.engine.explain import (after_checks_sql, explain_alert, explain_at, explanation_json, explanation_table,
@@ -30,7 +32,7 @@ from toolkit.warehouse_demo.generate import MAX_SESSIONS, MIN_SESSIONS
 
 project_option = click.option(
     "-p", "--project", "project_file", default="plimsoll.yml", show_default=True,
-    type=click.Path(dir_okay=False, path_type=Path), help="The project file.",
+    type=click.Path(path_type=Path), help="The project file, or a folder holding plimsoll.yml.",
 )
 
 DATA_TIME = click.DateTime(["%Y-%m-%d", "%Y-%m-%d %H:%M", "%Y-%m-%d %H:%M:%S", "%Y-%m-%dT%H:%M",
@@ -103,7 +105,10 @@ def validate(project_file: Path) -> None:
     One line per problem, file:line: message; exit 2 if there is any.
     """
     project = load_project(project_file)
-    click.echo(f"{project_file}: {_plural(len(project.checks), 'check')}, {_plural(len(project.sources), 'source')}: ok")
+    for warning in judging_warnings(project):  # valid, but a check that judges nothing for a long time
+        click.echo(str(warning))
+    click.echo(f"{display_path(project.file)}: {plural(len(project.checks), 'check')}, "
+               f"{plural(len(project.sources), 'source')}: ok")
 
 
 @main.command("sql")
@@ -143,11 +148,11 @@ def run(project_file: Path, checks: tuple[str, ...], rebuild: bool, wait: float,
         click.echo(f"warning: {warning}", err=True)
     closed = sum(c.alerts_closed for c in result.checks)
     click.echo(
-        f"{_runs(result)}: {_plural(result.files_read, 'new file')}, "
-        f"{_plural(sum(c.windows_written for c in result.checks), 'window')}, "
-        f"{_plural(result.alerts_opened, 'alert')} opened, {closed} closed"
+        f"{_runs(result)}: {plural(result.files_read, 'new file')}, "
+        f"{plural(sum(c.windows_written for c in result.checks), 'window')}, "
+        f"{plural(result.alerts_opened, 'alert')} opened, {closed} closed"
         + (f"; WARNING: {len(result.warnings)} (see above)" if result.warnings else "")
-        + (f"; {_plural(len(result.skipped), 'changed check')} not run" if result.skipped else "")
+        + (f"; {plural(len(result.skipped), 'changed check')} not run" if result.skipped else "")
     )
     for alarm in result.alarms:  # the sources' silent and lagging alerts (wall clock)
         click.echo(alarm.line)
@@ -187,14 +192,15 @@ def explain(target: str, at: datetime | None, key_text: str, by_text: str, as_js
 @click.option("--status", type=click.Choice(["open", "closed", "all"]), default="all", show_default=True,
               help="Only open or only closed alerts.")
 @click.option("--check", "checks", multiple=True, help="Only alerts of this check (repeatable).")
-@click.option("--since", type=click.DateTime(), default=None, help="Only alerts opened at or after this data time.")
+@click.option("--since", type=DATA_TIME, default=None, metavar="TIME",
+              help="Only alerts opened at or after this data time (UTC, YYYY-MM-DD[ HH:MM[:SS]]).")
 @click.option("--json", "as_json", is_flag=True, help="JSON for scripts.")
 @reports_errors
 def alerts(project_file: Path, status: str, checks: tuple[str, ...], since: datetime | None, as_json: bool) -> None:
     """List alerts, open ones first."""
     project = load_project(project_file, check_schema=False)
     found = list_alerts(project, status, checks, since)
-    click.echo(alerts_json(found) if as_json else alerts_table(found))
+    click.echo(alerts_json(found) if as_json else alerts_table(found, readings(project)))
 
 
 @main.command()
@@ -211,7 +217,7 @@ def incidents(project_file: Path, status: str, as_json: bool) -> None:
     """
     project = load_project(project_file, check_schema=False)
     found = list_incidents(project, status)
-    click.echo(incidents_json(found) if as_json else incidents_table(found))
+    click.echo(incidents_json(found) if as_json else incidents_table(found, readings(project)))
 
 
 @main.command()
@@ -219,7 +225,8 @@ def incidents(project_file: Path, status: str, as_json: bool) -> None:
 @click.option("--out", "out", required=True, type=click.Path(dir_okay=False, path_type=Path),
               help="The HTML file to write.")
 @click.option("--check", "checks", multiple=True, help="Only alerts of this check (repeatable).")
-@click.option("--since", type=click.DateTime(), default=None, help="Only alerts opened at or after this data time.")
+@click.option("--since", type=DATA_TIME, default=None, metavar="TIME",
+              help="Only alerts opened at or after this data time (UTC, YYYY-MM-DD[ HH:MM[:SS]]).")
 @reports_errors
 def report(project_file: Path, out: Path, checks: tuple[str, ...], since: datetime | None) -> None:
     """Write one static HTML page of incidents, alerts and their series.
@@ -231,7 +238,8 @@ def report(project_file: Path, out: Path, checks: tuple[str, ...], since: dateti
 
     project = load_project(project_file, check_schema=False)
     done = write_report(project, out, checks, since)
-    click.echo(f"{done.path}: {done.alerts} alerts ({done.open_alerts} open), {done.incidents} incidents, "
+    click.echo(f"{done.path}: {plural(done.alerts, 'alert')} ({done.open_alerts} open), "
+               f"{plural(done.incidents, 'incident')}, "
                f"{done.bytes / 1024:,.0f} KiB")
 
 
@@ -242,9 +250,9 @@ def report(project_file: Path, out: Path, checks: tuple[str, ...], since: dateti
 @click.option("--retry-abandoned", is_flag=True, help="Queue abandoned deliveries again, from attempt 1.")
 @reports_errors
 def notify(project_file: Path, retry_text: str, retry_abandoned: bool) -> None:
-    """POST new alert and incident events to the project's webhooks.
+    """Send new alert and incident events to webhooks and by mail.
 
-    Alert events by default; a webhook with per: incident gets its incidents' events.
+    Alert events by default; a webhook or mail list with per: incident gets its incidents' events.
 
     Exit 1 while a delivery fails or waits for a retry.
     """
@@ -331,11 +339,6 @@ def _run_json(project_file: Path, checks: tuple[str, ...], rebuild: bool, wait: 
         click.echo(line, err=True)
     click.echo(records_json(records))
     sys.exit(records.exit_code)
-
-
-def _plural(n: int, noun: str) -> str:
-    """'1 alert', '2 alerts'."""
-    return f"{n:,} {noun}{'' if n == 1 else 's'}"
 
 
 def _runs(result: RunResult) -> str:

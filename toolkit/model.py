@@ -119,6 +119,7 @@ class Measure:
     denominator: Expr | None = None
     of: Expr | None = None
     q: float | None = None
+    unit: str | None = None          # ratio, quantile: how values read ('ms', 'kbps', '%'); display only
 
 
 @dataclass(frozen=True)
@@ -210,10 +211,48 @@ class Webhook:
     headers: tuple[tuple[str, str], ...] = ()   # (header name, environment variable name)
     catch_up: timedelta = timedelta(days=1)     # first notify: events older than this in data time are skipped
     per: str = "alert"                          # 'alert': alert events; 'incident': incident events
+    body: str | None = None                     # a Jinja2 template of the body; None: the JSON payload
+    content_type: str = "application/json"
+    body_origin: str = ""                       # where the template is written, for messages: 'plimsoll.yml:12'
 
     @property
     def endpoint(self) -> str:
         return endpoint(self.url)
+
+
+@dataclass(frozen=True)
+class Smtp:
+    """The mail server ``plimsoll notify`` sends through. ``password_env`` is the *name* of the
+    environment variable holding the password, read when sending."""
+
+    host: str
+    port: int
+    security: str = "starttls"                  # 'starttls' | 'tls' | 'none'
+    sender: str = ""
+    user: str | None = None
+    password_env: str | None = None
+    timeout: timedelta = timedelta(seconds=10)
+    ca_file: Path | None = None                 # certificate authorities to trust; None: the system's
+
+    @property
+    def endpoint(self) -> str:
+        return f"smtp://{self.host}:{self.port}"
+
+
+@dataclass(frozen=True)
+class Mailbox:
+    """Mail recipients ``plimsoll notify`` sends one plain-text message per event to; ``name`` is its
+    identity in the outbox, shared with the webhooks'."""
+
+    name: str
+    to: tuple[str, ...]
+    smtp: Smtp
+    catch_up: timedelta = timedelta(days=1)
+    per: str = "alert"
+
+    @property
+    def endpoint(self) -> str:
+        return self.smtp.endpoint
 
 
 def endpoint(url: str) -> str:
@@ -257,6 +296,8 @@ class Project:
     notify: Notify = field(default_factory=Notify)
     engine: Engine = field(default_factory=Engine)
     storage: Storage | None = None
+    mailboxes: tuple[Mailbox, ...] = ()
+    report_url: str | None = None         # where the team publishes `plimsoll report`'s page: messages link to it
 
     @property
     def remote(self) -> bool:

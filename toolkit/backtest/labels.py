@@ -18,6 +18,7 @@ from toolkit.problems import DataError
 LABEL_FIELDS = ("kind", "check", "key", "start", "end", "note")
 LABEL_KINDS = ("incident", "decoy")
 TIME_FORMAT = "%Y-%m-%d %H:%M:%S"
+READ_FORMATS = ("%Y-%m-%d %H:%M:%S", "%Y-%m-%d %H:%M", "%Y-%m-%d")  # what --from, --to and --since take too
 # A decoy disturbs the data for a while after it ends: an alert opened up to a day later is its too.
 DECOY_SLACK = timedelta(days=1)
 
@@ -95,13 +96,23 @@ def _parse_label(path: Path, line: int, row: list[str]) -> Label:
         raise DataError(f"{where}: key: {exc}") from None
     times = []
     for column, text in (("start", start), ("end", end)):
-        try:
-            times.append(datetime.strptime(text, TIME_FORMAT))
-        except ValueError:
-            raise DataError(f"{where}: {column} {text!r} is not YYYY-MM-DD HH:MM:SS") from None
+        found = _time(text.strip())
+        if found is None:
+            raise DataError(f"{where}: {column} {text!r} is not YYYY-MM-DD, YYYY-MM-DD HH:MM or "
+                            "YYYY-MM-DD HH:MM:SS") from None
+        times.append(found)
     if times[1] <= times[0]:
         raise DataError(f"{where}: end {end} is not after start {start}")
     return Label(kind, check, key, times[0], times[1], note)
+
+
+def _time(text: str) -> datetime | None:
+    for form in READ_FORMATS:
+        try:
+            return datetime.strptime(text, form)
+        except ValueError:
+            continue
+    return None
 
 
 def key_pairs(text: str) -> dict[str, str]:

@@ -58,7 +58,11 @@ def load_check(doc: Located, sources: dict[str, Source], con: duckdb.DuckDBPyCon
     by = top.get("by") or []
     if binder and source.columns:
         for index, column in enumerate(by):
-            if column not in source.columns:
+            parts = [p.strip() for p in column.strip("[]").split(",")]
+            if column not in source.columns and len(parts) > 1 and all(p in source.columns for p in parts):
+                top.error(("by", index), f"by: '{column}' reads as one column name; write a list: "
+                                         f"[{', '.join(parts)}]")
+            elif column not in source.columns:
                 top.error(("by", index), f"by: {unknown_column(column, source.columns)} in source '{source.name}'")
     attributes = top.get("attributes") or (source.attributes if source is not None else [])
     if binder and source.columns:
@@ -108,6 +112,11 @@ def _measure(doc: Located, raw: Any, binder: Binder | None, problems: list[Probl
         elif key.type == "column":
             value = binder.column(section, value, key.name)
         values[key.name] = value
+    unit = values.get("unit")
+    if unit is not None and (not unit.strip() or len(unit) > 16 or not unit.isprintable()):
+        section.error(("measure", "unit"), "measure.unit: write a short unit such as ms, kbps or % "
+                                           "(at most 16 characters, no line breaks)")
+        return None
     if any(values.get(k.name) is None for k in kind.keys if k.required):
         return None
     return Measure(**values)
@@ -200,7 +209,9 @@ def _peers(top: Section, baseline: Baseline, by: list[str], window: Window | Non
                   "count windows (window.sessions) share no common time: use window.every")
     outside = [c for c in shared if c not in by]
     if outside:
-        top.error(("baseline", "peers_by"), f"baseline.peers_by: {', '.join(map(repr, outside))} not in 'by'")
+        hints = [difflib.get_close_matches(c, by, n=1) for c in outside]
+        said = ", ".join(f"{c!r}" + (f" (did you mean '{h[0]}'?)" if h else "") for c, h in zip(outside, hints))
+        top.error(("baseline", "peers_by"), f"baseline.peers_by: {said} not in 'by'")
     elif not shared or len(shared) >= len(by):
         top.error(("baseline", "peers_by"), "baseline.peers_by must name some of the columns of 'by', not none "
                   "and not all: a series' peers share those and differ in the rest")

@@ -33,7 +33,10 @@ _DURATION = re.compile(r"^(?:(\d+)w)?(?:(\d+)d)?(?:(\d+)h)?(?:(\d+)m)?(?:(\d+)s)
 
 
 def parse_duration(text: Any) -> timedelta:
-    """``90m``, ``2h``, ``3d``, ``1w``, ``1h30m``: a whole number of seconds or more."""
+    """``90m``, ``2h``, ``3d``, ``1w``, ``1h30m``: a whole number of seconds or more; a bare ``0`` is
+    no time at all, as it reads in any unit."""
+    if not isinstance(text, bool) and isinstance(text, (str, int)) and str(text).strip() == "0":
+        return timedelta(0)
     match = _DURATION.match(str(text).strip()) if isinstance(text, (str, int)) else None
     if not match or not str(text).strip() or not any(match.groups()):
         raise ValueError(f"bad duration {text!r}: write a number and a unit, e.g. 90m, 2h, 3d, 1w")
@@ -104,8 +107,9 @@ def typed(key: Key, value: Any) -> Any:
             raise ValueError(f"expected text, got {kind_of(value)}")
         value = str(value)
         if t == "envvar" and not ENV_NAME.match(value):
-            raise ValueError(f"'{value}' is not an environment variable name: write the variable's name, "
-                             "not its value")
+            # the value is never repeated: it may be the secret itself, pasted by mistake
+            raise ValueError("this is not an environment variable name (letters, digits and _): write the "
+                             "variable's name, not its value")
         if t == "name" and not NAME.match(value):
             raise ValueError(f"'{value}' is not a valid name: use [a-z][a-z0-9_]*")
         if t == "choice" and value not in key.choices:

@@ -35,6 +35,9 @@ class Kind:
     rate_only: bool = False
 
 
+_UNIT = Key("unit", "text", "how values read in listings and messages: a unit written after the number "
+           "(ms, kbps), or % for a fraction shown as a percentage; rates always read as %")
+
 MEASURES: dict[str, Kind] = {
     k.name: k
     for k in (
@@ -52,6 +55,7 @@ MEASURES: dict[str, Kind] = {
             (
                 Key("numerator", "expr", "SQL numeric expression summed over sessions", True),
                 Key("denominator", "expr", "SQL numeric expression summed over sessions", True),
+                _UNIT,
             ),
         ),
         Kind(
@@ -60,6 +64,7 @@ MEASURES: dict[str, Kind] = {
             (
                 Key("of", "expr", "SQL numeric expression per session", True),
                 Key("q", "fraction", "the quantile, between 0 and 1", True),
+                _UNIT,
             ),
         ),
     )
@@ -172,6 +177,10 @@ PROJECT_KEYS = (
     Key("spark_conf", "mapping", "engine spark: Spark settings for the session, e.g. spark.executor.memory: 4g"),
     Key("storage", "mapping", "how s3:// sources are reached: endpoint, region, credentials"),
     Key("iceberg_catalog", "mapping", "the Iceberg catalog that format: iceberg sources' tables are in"),
+    Key("report_url", "text", "the http(s) URL where the team publishes the page `plimsoll report` writes: "
+        "messages link each alert's card there"),
+    Key("smtp", "mapping", "the mail server `plimsoll notify` sends mail through (below)"),
+    Key("email", "list", "mail recipients `plimsoll notify` sends alert or incident events to (below)"),
 )
 
 
@@ -198,6 +207,38 @@ WEBHOOK_KEYS = (
         "holding its value (e.g. Authorization: FERNHILL_HOOK_AUTH)"),
     Key("per", "choice", "alert: one POST per alert event; incident: one per incident event (opened, updated, "
         "closed)", False, "alert", ("alert", "incident")),
+    Key("body", "text", "a Jinja2 template of the request's body, rendered from the event (see Message "
+        "templates); without it, the JSON payload"),
+    Key("body_file", "text", "the body template in a file, relative to plimsoll.yml, instead of body"),
+    Key("content_type", "text", "the body's media type: application/json or another JSON type (values escaped "
+        "as JSON, the body checked to parse), or a text/ type", False, "application/json"),
+)
+
+
+SMTP_KEYS = (
+    Key("host", "text", "the mail server's host name or address", True),
+    Key("port", "int", "its port (default: 587 with starttls, 465 with tls, 25 with none)", minimum=1),
+    Key("security", "choice", "starttls: upgrade the connection to TLS; tls: TLS from the start; none: plain "
+        "(no user then: the password would cross the network in clear)", False, "starttls",
+        ("starttls", "tls", "none")),
+    Key("from", "text", "the sender's address", True),
+    Key("user", "text", "the user to log in as (with password_env)"),
+    Key("password_env", "envvar", "the NAME of the environment variable holding the password"),
+    Key("timeout", "duration", "how long sending one message may take, from connecting to the server's answer",
+        False, "10s"),
+    Key("ca_file", "text", "a PEM file of the certificate authorities to trust, relative to plimsoll.yml "
+        "(default: the system's)"),
+)
+
+
+EMAIL_KEYS = (
+    Key("name", "text", "the recipients' identity in the outbox and in idempotency keys, unique among the "
+        "webhooks' and email's names", True),
+    Key("to", "list", "the addresses to send to", True),
+    Key("per", "choice", "alert: one message per alert event; incident: one per incident event", False, "alert",
+        ("alert", "incident")),
+    Key("catch_up", "duration", "on the first notify, events older than this (in data time) are skipped, "
+        "except the opening of an alert still open", False, "1d"),
 )
 
 

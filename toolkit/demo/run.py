@@ -17,6 +17,7 @@ from typing import Any
 from toolkit.backtest.labels import Label, match_label, overlapping
 from toolkit.outputs.listings import alerts_from, cause_line, incidents_from
 from toolkit.problems import PlimsollError
+from toolkit.words import Reading, against_text, plural, readings
 from toolkit.config.project import load_project
 from toolkit.engine.runner import RunResult, run
 from toolkit.engine.warehouse import connect
@@ -59,6 +60,7 @@ class DemoOutcome:
     labels: list[Label]
     matches: list[Match] = field(default_factory=list)
     incidents: list[dict[str, Any]] = field(default_factory=list)
+    readings: dict[str, Reading] = field(default_factory=dict)   # how each check's figures read
 
     @property
     def found(self) -> list[Label]:
@@ -119,7 +121,7 @@ def build_and_run(workdir: Path, sessions: int = 2_000_000, seed: int = 7,
     project = load_project(write_project(workdir))
     result = run(project, progress=say)
     t2 = time.perf_counter()
-    outcome = DemoOutcome(workdir, sessions, t1 - t0, t2 - t1, result, labels)
+    outcome = DemoOutcome(workdir, sessions, t1 - t0, t2 - t1, result, labels, readings=readings(project))
     con = connect(project, read_only=True)
     try:
         outcome.matches = [Match(a, match_label(a, labels), overlapping(a, labels)) for a in alerts_from(con)]
@@ -140,9 +142,9 @@ def _incident_lines(o: DemoOutcome) -> list[str]:
                    else "DECOY (should not alert)" if cause and cause.label
                    else f"during the labelled {cause.during.check} problem" if cause and cause.during
                    else "not labelled")
-        viewers = "" if i["affected_viewers"] is None else f" ({i['affected_viewers']:,} viewers)"
+        viewers = "" if i["affected_viewers"] is None else f" ({plural(i['affected_viewers'], 'viewer')})"
         lines.append(f"  {i['opened_at']:%Y-%m-%d %H:%M}  {i['cause_check']} {i['cause_key_text']}: "
-                     f"{i['affected_sessions'] or 0:,} sessions affected{viewers}, "
+                     f"{plural(i['affected_sessions'] or 0, 'session')} affected{viewers}, "
                      f"{i['alerts']} alert{'s' if i['alerts'] != 1 else ''}, {i['status']} - {verdict}")
         where = cause_line(None, i["causes"])
         if where:
@@ -187,10 +189,10 @@ def summary(outcome: DemoOutcome) -> str:
     lines = [
         f"Fernhill Broadcasting demo in {o.workdir}/",
         f"  lake: {o.sessions:,} sessions generated in {o.seconds_lake:.1f} s; "
-        f"run {o.result.run_id}: {len(o.result.checks)} checks over {o.result.files_read} files "
+        f"run {o.result.run_id}: {plural(len(o.result.checks), 'check')} over {plural(o.result.files_read, 'file')} "
         f"in {o.seconds_run:.1f} s",
         "",
-        f"{len(o.incidents)} incident{'s' if len(o.incidents) != 1 else ''}, {len(o.matches)} alerts: "
+        f"{plural(len(o.incidents), 'incident')}, {plural(len(o.matches), 'alert')}: "
         "each incident is the alerts of one problem, its cause the alert whose key explains the others",
         *_incident_lines(o),
         "",
@@ -205,8 +207,9 @@ def summary(outcome: DemoOutcome) -> str:
         split = f" [{a['split_value']}]" if a["split_value"] else ""
         lines.append(
             f"  {a['opened_at']:%Y-%m-%d %H:%M}  {a['check_name']:<{width}}  {a['key_text']}{split}: "
-            f"{a['affected_sessions']:,} sessions affected"
-            f"{'' if a.get('affected_viewers') is None else ' (' + format(a['affected_viewers'], ',') + ' viewers)'}"
+            f"at worst {against_text(a['peak_value'], a['threshold'], o.readings.get(a['check_name'], Reading()))}; "
+            f"{plural(a['affected_sessions'], 'session')} affected"
+            f"{'' if a.get('affected_viewers') is None else ' (' + plural(a['affected_viewers'], 'viewer') + ')'}"
             f" over {a['breach_windows']} "
             f"window{'s' if a['breach_windows'] != 1 else ''}, "
             f"{a['status']}{' (' + a['close_reason'] + ')' if a['close_reason'] else ''} - {verdict}"

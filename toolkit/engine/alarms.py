@@ -27,6 +27,7 @@ from toolkit.lake.files import LakeFile
 from toolkit.model import Check, Project
 from toolkit.sql.script import alarm_statements
 from toolkit.sql.templates import Statement
+from toolkit.words import spoken
 
 # runs one statement on a connection, giving every row (the runner's helper, so it is timed and named)
 Executor = Callable[[duckdb.DuckDBPyConnection, Statement, dict[str, Any]], Any]
@@ -72,21 +73,6 @@ class SourceAlarm:
         if self.close_reason == "caught up":
             return f"{head}{state}, within {limit}: caught up, alert closed"
         return f"{head}{state}, within {limit}: alert closed ({self.close_reason})"
-
-
-def spoken(seconds: float | None) -> str:
-    """A wall-clock stretch for people: '45 s', '47 min', '2 h 05 min', '3 d 04 h'."""
-    if seconds is None:
-        return "?"
-    whole = max(0, int(seconds))
-    if whole < 60:
-        return f"{whole} s"
-    minutes, hours, days = whole // 60, whole // 3600, whole // 86400
-    if whole < 3600:
-        return f"{minutes} min"
-    if whole < 86400:
-        return f"{hours} h {minutes % 60:02d} min"
-    return f"{days} d {hours % 24:02d} h"
 
 
 def watched(check: Check) -> bool:

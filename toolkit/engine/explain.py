@@ -19,6 +19,7 @@ from datetime import datetime
 from typing import Any
 
 import duckdb
+from toolkit.config.expressions import unknown_column
 
 from toolkit.engine import warehouse
 from toolkit.lake import files as lake
@@ -435,8 +436,8 @@ def _check(project: Project, name: str) -> Check:
 def _attributes(check: Check, by: tuple[str, ...]) -> tuple[str, ...]:
     unknown = [c for c in by or check.attributes if check.source.columns and c not in check.source.columns]
     if unknown:
-        raise ExplainError(f"check '{check.name}': --by: no column {', '.join(unknown)} in source "
-                           f"'{check.source.name}'")
+        said = "; ".join(unknown_column(c, check.source.columns) for c in unknown)
+        raise ExplainError(f"check '{check.name}': --by: {said} in source '{check.source.name}'")
     return cause_attributes(check, by)
 
 

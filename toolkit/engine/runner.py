@@ -163,7 +163,7 @@ def run(project: Project, names: list[str] | None = None, rebuild: bool = False,
                 outcome = _together(done)
                 outcome.skipped = skipped
                 return outcome
-            say(f"run {run_id} read {result.files_read} files, up to max_read_per_run; "
+            say(f"run {run_id} read {_plural(result.files_read, 'file')}, up to max_read_per_run; "
                 "the next run reads on from there")
     finally:
         con.close()
@@ -222,8 +222,7 @@ def _run(con: duckdb.DuckDBPyConnection, project: Project, run_id: int, checks: 
                 readers = [check for check, _ in group.checks]
                 progress(f"source {source.name}: reading {_plural(len(new_files), 'new file')} for "
                          f"{_plural(len(readers), 'check')}")
-                lake.check_new_files(con, source, new_files, _needed_columns(source, readers),
-                                     [c.name for c in readers])
+                lake.check_new_files(con, source, new_files, _needed_columns(source, readers), readers)
                 source_stage = source_plan(readers)
                 params = _params(project, new_files, run_id, "", readers[0].name, group.read_until, source)
                 _run_stage(con, stages, f"source {source.name}", source_stage, params)
@@ -239,7 +238,7 @@ def _run(con: duckdb.DuckDBPyConnection, project: Project, run_id: int, checks: 
                     _record_version(con, check, group.versions[check.name], run_id)
                 done = result.checks[-1]
                 progress(f"{step}: {_plural(done.files_read, 'file')}, {_plural(done.windows_written, 'window')}, "
-                         f"alerts opened {done.alerts_opened}, closed {done.alerts_closed}")
+                         f"{_plural(done.alerts_opened, 'alert')} opened, {done.alerts_closed} closed")
         result.alarms = _source_alarms(con, project, run_id, checks, started, listings, groups, progress)
         _causes_and_incidents(con, run_id, checks, listings, progress)
         repeats = _mostly_repeats(con)

@@ -16,8 +16,9 @@ from datetime import datetime, timezone
 import duckdb
 
 from toolkit.lake import storage
-from toolkit.model import Source, Storage
+from toolkit.model import Check, Source, Storage
 from toolkit.problems import DataError, engine_message
+from toolkit.sql.compiler import columns_read
 from toolkit.sql.quoting import quote_ident
 from toolkit.sql.script import lake_statements
 from toolkit.sql.templates import Named
@@ -230,7 +231,7 @@ def agreeing_files(footers: dict[str, dict[str, str]]) -> list[str]:
 
 
 def check_new_files(con: duckdb.DuckDBPyConnection, source: Source, files: list[LakeFile],
-                    needed: list[str], readers: list[str]) -> None:
+                    needed: list[str], readers: list[Check]) -> None:
     """Refuse new files that lack a column the checks read, hold one of another kind of type, or
     sit in a partition folder that contradicts their own column.
 
@@ -242,7 +243,6 @@ def check_new_files(con: duckdb.DuckDBPyConnection, source: Source, files: list[
     recorded = lake_statements(source)
     known = {name: (kind, first) for name, kind, first in _execute(con, recorded, "lake.known_columns",
                                                                     {"source": source.name})}
-    who = ", ".join(readers)
     named = {f.where: f for f in files}
     times = set(source.time_columns)
     for location, columns in sorted(file_columns(list(named), source.storage).items()):
@@ -252,8 +252,7 @@ def check_new_files(con: duckdb.DuckDBPyConnection, source: Source, files: list[
             if name in partitions:
                 continue
             if name not in columns:
-                raise DataError(f"{location}: column '{name}' is missing; source '{source.name}' needs it "
-                                f"for {who}")
+                raise DataError(f"{location}: column '{name}' is missing; {_who_reads(source, readers, name)}")
             if name not in known:
                 kind = source.columns.get(name) or columns[name]
                 known[name] = (kind, named[location].path)
@@ -262,6 +261,19 @@ def check_new_files(con: duckdb.DuckDBPyConnection, source: Source, files: list[
             if type_family(columns[name]) != type_family(known[name][0]):
                 raise DataError(f"{location}: column '{name}' is {columns[name]}, but source '{source.name}' "
                                 f"has it as {known[name][0]} (first read in {known[name][1]})")
+
+
+def _who_reads(source: Source, readers: list[Check], name: str) -> str:
+    """Who needs a column: the source itself (its session id, event time, exclude or viewer id), or
+    the checks that read it, and only those."""
+    own = [what for what, columns in (("session_id", (source.session_id,)), ("event_time", source.time_columns),
+                                      ("exclude", source.exclude.columns if source.exclude else ()),
+                                      ("viewer_id", (source.viewer_id,) if source.viewer_id else ()))
+           if name in columns]
+    if own:
+        return f"source '{source.name}' reads it for its {' and '.join(own)}"
+    checks = [c.name for c in readers if name in columns_read([c])]
+    return f"check{'s' if len(checks) != 1 else ''} {', '.join(checks)} of source '{source.name}' read{'s' if len(checks) == 1 else ''} it"
 
 
 def _check_partitions(location: str, partitions: dict[str, str], columns: dict[str, str], times: set[str],

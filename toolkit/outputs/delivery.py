@@ -17,6 +17,7 @@ from __future__ import annotations
 
 import fcntl
 import http.client
+import json
 import os
 import queue
 import socket
@@ -30,6 +31,7 @@ from contextlib import contextmanager
 from dataclasses import dataclass, field
 from datetime import datetime, timedelta, timezone
 from pathlib import Path
+from typing import Any
 
 import duckdb
 
@@ -37,8 +39,12 @@ from toolkit import __version__
 
 from toolkit.engine import warehouse
 from toolkit.sql.templates import template_folder
-from toolkit.model import Project, Webhook, endpoint
+from toolkit.config.bodies import BodyError, compile_body, is_text_type, render_body, variables
+from toolkit.model import Mailbox, Project, Webhook, endpoint
+from toolkit.outputs import mail
+from toolkit.outputs.deadline import Deadline as _Deadline
 from toolkit.outputs.listings import printable
+from toolkit.words import Reading, plural, readable_number, readings
 from toolkit.problems import PlimsollError, RunLocked
 
 
@@ -86,6 +92,7 @@ class NotifyResult:
     retried_abandoned: int = 0
     orphaned: int = 0               # queued rows of webhooks no longer configured, abandoned now
     unsent: list[str] = field(default_factory=list)  # webhooks given nothing: a header's variable is not set
+    unrendered: list[str] = field(default_factory=list)  # rows abandoned as queued: their body template failed
     attempts: list[Attempt] = field(default_factory=list)
     waiting: int = 0                # still to be sent after this call
     failing: int = 0                # of those, rows that have failed at least once
@@ -101,7 +108,7 @@ class NotifyResult:
 
     @property
     def abandoned_now(self) -> int:
-        return self.orphaned + sum(a.status == "abandoned" for a in self.attempts)
+        return self.orphaned + len(self.unrendered) + sum(a.status == "abandoned" for a in self.attempts)
 
     @property
     def exit_code(self) -> int:
@@ -115,14 +122,19 @@ def notify(project: Project, clock: Clock | None = None, retry_for: timedelta = 
     """Queue new alert events, then deliver due rows; keep retrying those due within ``retry_for``."""
     clock = clock or Clock()
     result = NotifyResult()
+    if not Path(project.warehouse).exists() and destinations(project):  # no warehouse or lock file made for it
+        raise PlimsollError(f"{project.warehouse}: no warehouse yet, so no events to send; run `plimsoll run` "
+                            "first")
+    if not Path(project.warehouse).exists():
+        return result   # nowhere to send, nothing to send: describe() says so
     with _single_notifier(project):
         with _warehouse(project) as con:
             _queue(con, project, clock.now(), retry_abandoned, result)
-            pending = _pending(con, [h.name for h in project.webhooks])
+            pending = _pending(con, [h.name for h in destinations(project)])
         headers: dict[str, dict[str, str]] = {}
-        for hook in project.webhooks:
+        for hook in destinations(project):
             try:
-                headers[hook.name] = _headers(hook)
+                headers[hook.name] = _headers(hook) if isinstance(hook, Webhook) else mail.secrets(hook)
             except PlimsollError as err:
                 result.unsent.append(str(err))
                 pending.pop(hook.name, None)
@@ -135,13 +147,13 @@ def notify(project: Project, clock: Clock | None = None, retry_for: timedelta = 
 def _queue(con: duckdb.DuckDBPyConnection, project: Project, now: datetime, retry_abandoned: bool,
            result: NotifyResult) -> None:
     """Step 1, one transaction: queue new events, give up rows of removed webhooks, requeue if asked."""
-    names = [h.name for h in project.webhooks]
+    names = [h.name for h in destinations(project)]
     con.execute("BEGIN TRANSACTION")
     try:
         _upgrade(con, project)
-        if project.webhooks:
+        if destinations(project):
             params = {"webhooks": [{"name": h.name, "url": h.endpoint, "catch_up": h.catch_up.total_seconds(),
-                                    "per": h.per} for h in project.webhooks],
+                                    "per": h.per} for h in destinations(project)],
                       "growth": project.notify.growth, "now": now, "version": __version__}
             for statement in con.extract_statements((template_folder() / "outbox.sql").read_text(encoding="utf-8")):
                 con.execute(statement.query, {k: params[k] for k in statement.named_parameters})
@@ -150,6 +162,10 @@ def _queue(con: duckdb.DuckDBPyConnection, project: Project, now: datetime, retr
                 "FROM outbox_new").fetchone()
             result.skipped_for = dict(con.execute(
                 "SELECT skip_reason, count(*) FROM outbox_new WHERE status = 'skipped' GROUP BY skip_reason").fetchall())
+            new_rows = con.execute("SELECT idempotency_key, webhook, status, payload FROM outbox_new "
+                                   "ORDER BY seq").fetchall()
+            result.unrendered = _dress(con, project, now, new_rows)
+            result.queued -= len(result.unrendered)
         result.orphaned = con.execute(
             "UPDATE outbox SET status = 'abandoned', last_error = 'webhook no longer in the project file' "
             "WHERE status = 'queued' AND NOT list_contains($h, webhook)", {"h": names}).fetchone()[0]
@@ -157,10 +173,96 @@ def _queue(con: duckdb.DuckDBPyConnection, project: Project, now: datetime, retr
             result.retried_abandoned = con.execute(
                 "UPDATE outbox SET status = 'queued', attempts = 0, next_attempt_at = $now "
                 "WHERE status = 'abandoned' AND list_contains($h, webhook)", {"h": names, "now": now}).fetchone()[0]
+            # a row abandoned because its template failed has no body: render it now, with the
+            # template as it is now (a row that was sent keeps its bytes)
+            rendered = [h.name for h in project.webhooks if h.body is not None]
+            again = con.execute(
+                "SELECT idempotency_key, webhook, status, payload FROM outbox WHERE status = 'queued' AND attempts = 0 "
+                "AND body IS NULL AND starts_with(last_error, 'body template') AND list_contains($h, webhook) "
+                "ORDER BY seq", {"h": rendered}).fetchall()
+            failed = _dress(con, project, now, again)
+            result.unrendered += failed
+            result.retried_abandoned -= len(failed)
         con.execute("COMMIT")
     except BaseException:
         con.execute("ROLLBACK")
         raise
+
+
+def destinations(project: Project) -> tuple[Webhook | Mailbox, ...]:
+    """Everything ``notify`` sends to: the webhooks, then the mail recipients. They share the outbox,
+    its queuing rules and its retries; their names are unique among them all."""
+    return (*project.webhooks, *project.mailboxes)
+
+
+def _dress(con: duckdb.DuckDBPyConnection, project: Project, now: datetime,
+           rows: list[tuple[str, str, str, str]]) -> list[str]:
+    """The rows just queued (key, destination, status, payload), in the queue's transaction: each
+    payload given its words (``summary``; a check's ``measure``, ``unit``, ``value_text`` and
+    ``threshold_text``; values without binary noise), and the bytes each destination
+    sends when not the payload (a webhook's template rendered, a mail message) fixed now, so every
+    attempt sends the same. A template that fails for an event abandons that row now, with the error.
+    Returns the lines saying which."""
+    if not rows:
+        return []
+    known = readings(project)
+    hooks = {h.name: h for h in destinations(project)}
+    templates: dict[str, Any] = {}
+    dressed, failed = [], []
+    for key, name, status, text in rows:
+        payload = json.loads(text)
+        reading = _reading(payload, known)
+        for field_name in ("value", "threshold"):
+            if isinstance(payload.get(field_name), float):
+                payload[field_name] = readable_number(payload[field_name])
+        found = variables(payload, reading, project.report_url)
+        if not payload.get("alarm") and "cause" not in payload:
+            payload.update(measure=reading.kind, unit=reading.unit, value_text=found["value_text"],
+                           threshold_text=found["threshold_text"])
+        payload["summary"] = found["summary"]
+        body, content_type, error = None, None, None
+        hook = hooks.get(name)
+        if status == "queued" and isinstance(hook, Mailbox):
+            body, content_type = mail.message(hook, payload, found, key, now), "message/rfc822"
+        elif status == "queued" and isinstance(hook, Webhook) and hook.body is not None:
+            content_type = hook.content_type
+            if is_text_type(content_type) and "charset" not in content_type.lower():
+                content_type += "; charset=utf-8"   # the body is UTF-8: say so, or a receiver may guess Latin-1
+            try:
+                if name not in templates:
+                    templates[name] = compile_body(hook.body, hook.content_type)
+                body = render_body(templates[name], hook.content_type, variables(payload, reading, project.report_url))
+            except BodyError as err:
+                error = f"body template ({hook.body_origin}): {err}"
+                what = f"incident {payload.get('incident_id')}" if "cause" in payload else f"alert {payload.get('alert_id')}"
+                failed.append(f"{name}: {payload.get('event')} of {what}: {error}")
+        dressed.append({"idempotency_key": key, "payload": json.dumps(payload, ensure_ascii=False, allow_nan=False, separators=(",", ":")),
+                        "body": body, "content_type": content_type, "error": error})
+    import pyarrow as pa
+
+    table = pa.Table.from_pylist(dressed, schema=pa.schema([(n, pa.string()) for n in
+                                                            ("idempotency_key", "payload", "body", "content_type",
+                                                             "error")]))
+    con.register("outbox_dressed", table)
+    try:
+        con.execute(
+            """
+            UPDATE outbox
+            SET payload = d.payload, body = d.body, content_type = d.content_type,
+                status = CASE WHEN d.error IS NULL THEN outbox.status ELSE 'abandoned' END,
+                last_error = coalesce(d.error, outbox.last_error),
+                next_attempt_at = CASE WHEN d.error IS NULL THEN outbox.next_attempt_at END
+            FROM outbox_dressed AS d
+            WHERE outbox.idempotency_key = d.idempotency_key
+            """)
+    finally:
+        con.unregister("outbox_dressed")
+    return failed
+
+
+def _reading(payload: dict[str, Any], known: dict[str, Reading]) -> Reading:
+    check = (payload.get("cause") or {}).get("check") if "cause" in payload else payload.get("check")
+    return known.get(check or "", Reading())
 
 
 def _upgrade(con: duckdb.DuckDBPyConnection, project: Project) -> None:
@@ -212,6 +314,8 @@ class _Row:
     key_text: str
     incident_id: str | None = None
     merged_into: str | None = None
+    body: str | None = None           # what is sent when not the payload: a rendered template, a mail message
+    content_type: str | None = None
 
 
 def _pending(con: duckdb.DuckDBPyConnection, names: list[str]) -> dict[str, list[_Row]]:
@@ -220,7 +324,7 @@ def _pending(con: duckdb.DuckDBPyConnection, names: list[str]) -> dict[str, list
         """
         SELECT o.webhook, o.idempotency_key, o.payload, o.attempts, o.next_attempt_at, o.event, o.alert_id,
                coalesce(a.key_text, ''), o.incident_id,
-               CASE WHEN o.incident_id IS NOT NULL THEN o.payload::JSON ->> 'merged_into' END
+               CASE WHEN o.incident_id IS NOT NULL THEN o.payload::JSON ->> 'merged_into' END, o.body, o.content_type
         FROM outbox AS o
         LEFT JOIN alerts AS a ON a.alert_id = o.alert_id
         WHERE o.status = 'queued' AND list_contains($h, o.webhook)
@@ -248,7 +352,7 @@ def _deliver_all(project: Project, pending: dict[str, list[_Row]], headers: dict
     workers = [threading.Thread(target=_worker, name=f"notify {hook.name}", daemon=True,
                                 args=(project, hook, headers[hook.name], pending[hook.name], clock, until,
                                       outcomes, stop))
-               for hook in project.webhooks if pending.get(hook.name)]
+               for hook in destinations(project) if pending.get(hook.name)]
     for worker in workers:
         worker.start()
     try:
@@ -287,7 +391,7 @@ def _collect(project: Project, outcomes: queue.Queue, running: int, stop: thread
         raise failure
 
 
-def _worker(project: Project, hook: Webhook, headers: dict[str, str], rows: list[_Row], clock: Clock,
+def _worker(project: Project, hook: Webhook | Mailbox, headers: dict[str, str], rows: list[_Row], clock: Clock,
             until: datetime, outcomes: queue.Queue, stop: threading.Event) -> None:
     """One webhook's deliveries: its due rows in order, resting after a failure, until nothing is due."""
     try:
@@ -321,9 +425,15 @@ def _worker(project: Project, hook: Webhook, headers: dict[str, str], rows: list
         outcomes.put(None)
 
 
-def _attempt(project: Project, hook: Webhook, headers: dict[str, str], row: _Row, clock: Clock) -> Attempt:
-    """POST one row and decide what becomes of it: delivered, retried later, or abandoned."""
-    ok, retry, error, retry_after = post(hook, row.payload.encode("utf-8"), row.key, headers)
+def _attempt(project: Project, hook: Webhook | Mailbox, headers: dict[str, str], row: _Row, clock: Clock) -> Attempt:
+    """Send one row (POST it, or mail it) and decide what becomes of it: delivered, retried later, or
+    abandoned."""
+    if isinstance(hook, Mailbox):
+        ok, retry, error = mail.send(hook, row.body or "", headers.get("password"))
+        retry_after = None
+    else:
+        ok, retry, error, retry_after = post(hook, (row.body if row.body is not None else row.payload).encode("utf-8"),
+                                             row.key, headers, row.content_type or "application/json")
     now = clock.now()
     attempts = row.attempts + 1
     settings = project.notify
@@ -342,7 +452,7 @@ def _attempt(project: Project, hook: Webhook, headers: dict[str, str], row: _Row
 
 def _record(project: Project, attempt: Attempt) -> None:
     """One committed statement per POST, so a recorded success is never sent again."""
-    url = next((h.endpoint for h in project.webhooks if h.name == attempt.webhook), None)
+    url = next((h.endpoint for h in destinations(project) if h.name == attempt.webhook), None)
     try:
         with _warehouse(project, wait=RECORD_WAIT) as con:
             con.execute(
@@ -369,53 +479,6 @@ class _NoRedirects(urllib.request.HTTPRedirectHandler):
 
     def redirect_request(self, req, fp, code, msg, headers, newurl):  # type: ignore[no-untyped-def]
         return None
-
-
-class _Deadline:
-    """A time limit for a whole request: when it passes, every socket of the request is shut down.
-
-    A socket timeout bounds each read, not the request, so a server that trickles its answer a byte
-    at a time could hold a POST for ever; shutting the socket down ends whatever the request is
-    doing (connecting through a proxy, sending, waiting for the status, reading headers or body).
-    """
-
-    def __init__(self, seconds: float) -> None:
-        self.seconds = seconds
-        self.ends = time.monotonic() + seconds
-        self.expired = False
-        self._sockets: list[socket.socket] = []
-        self._lock = threading.Lock()
-        self._timer = threading.Timer(seconds, self._expire)
-        self._timer.daemon = True
-
-    def remaining(self) -> float:
-        return max(0.001, self.ends - time.monotonic())
-
-    def watch(self, sock: socket.socket) -> None:
-        with self._lock:
-            self._sockets.append(sock)
-            if self.expired:
-                _shut(sock)
-
-    def _expire(self) -> None:
-        with self._lock:
-            self.expired = True
-            for sock in self._sockets:
-                _shut(sock)
-
-    def __enter__(self) -> "_Deadline":
-        self._timer.start()
-        return self
-
-    def __exit__(self, *exc: object) -> None:
-        self._timer.cancel()
-
-
-def _shut(sock: socket.socket) -> None:
-    try:  # the plain socket's shutdown, also for a TLS socket: its SSL object stays with the reading thread
-        socket.socket.shutdown(sock, socket.SHUT_RDWR)
-    except OSError:
-        pass  # already closed
 
 
 def _deadline_connection(base: type[http.client.HTTPConnection], deadline: _Deadline) -> type:
@@ -463,21 +526,21 @@ class _Late(Exception):
     """The request's deadline passed."""
 
 
-def post(hook: Webhook, body: bytes, key: str, headers: dict[str, str] | None = None
-         ) -> tuple[bool, bool, str | None, timedelta | None]:
+def post(hook: Webhook, body: bytes, key: str, headers: dict[str, str] | None = None,
+         content_type: str = "application/json") -> tuple[bool, bool, str | None, timedelta | None]:
     """POST ``body`` within the webhook's timeout: (delivered, worth retrying, error, the server's Retry-After).
 
     The error names the endpoint as scheme://host:port only, and never holds the URL's path or query
     or a header's value, since those often carry a secret.
     """
-    ok, retry, error, retry_after = _post(hook, body, key, headers or {})
+    ok, retry, error, retry_after = _post(hook, body, key, headers or {}, content_type)
     return ok, retry, (_hidden(error, hook, headers or {}) if error is not None else None), retry_after
 
 
-def _post(hook: Webhook, body: bytes, key: str, headers: dict[str, str]
+def _post(hook: Webhook, body: bytes, key: str, headers: dict[str, str], content_type: str = "application/json"
           ) -> tuple[bool, bool, str | None, timedelta | None]:
     request = urllib.request.Request(hook.url, data=body, method="POST", headers={
-        **headers, "Content-Type": "application/json", "Idempotency-Key": key, "User-Agent": f"plimsoll/{__version__}",
+        **headers, "Content-Type": content_type, "Idempotency-Key": key, "User-Agent": f"plimsoll/{__version__}",
     })
     seconds = hook.timeout.total_seconds()
     deadline = _Deadline(seconds)
@@ -589,17 +652,22 @@ def _skips(counts: dict[str, int]) -> list[str]:
 
 def describe(project: Project, result: NotifyResult) -> str:
     """What ``plimsoll notify`` prints: what was queued, each attempt, and what is left."""
-    if not project.webhooks and not result.orphaned:
-        return "notify: no webhooks in the project file; nothing to send"
-    lines = [f"notify: queued {result.queued} event{'s' if result.queued != 1 else ''} for "
-             f"{len(project.webhooks)} webhook{'s' if len(project.webhooks) != 1 else ''}"
+    if not destinations(project) and not result.orphaned:
+        return "notify: no webhooks or email in the project file; nothing to send"
+    receivers = [plural(len(project.webhooks), "webhook")] if project.webhooks or not project.mailboxes else []
+    receivers += [f"{plural(len(project.mailboxes), 'mail recipient list')}"] if project.mailboxes else []
+    lines = [f"notify: queued {plural(result.queued, 'event')} for {' and '.join(receivers)}"
              + (f" ({', '.join(_skips(result.skipped_for))} skipped)" if result.skipped else "")]
     if result.retried_abandoned:
-        lines.append(f"  {result.retried_abandoned} abandoned deliveries queued again")
+        lines.append(f"  {result.retried_abandoned} abandoned deliver{'y' if result.retried_abandoned == 1 else 'ies'} "
+                     "queued again")
     if result.orphaned:
-        lines.append(f"  abandoned {result.orphaned} deliveries to webhooks no longer in the project file")
+        lines.append(f"  abandoned {result.orphaned} deliver{'y' if result.orphaned == 1 else 'ies'} to webhooks no "
+                     "longer in the project file")
     for line in result.unsent:
         lines.append(f"  not sent   {line}")
+    for line in result.unrendered:
+        lines.append(f"  abandoned  {line}")
     for a in result.attempts:
         what = f"{a.webhook}: {a.event} {printable(a.key_text) or '(all sessions)'} [{a.alert_id}]"
         if a.incident_id is not None:
@@ -607,7 +675,7 @@ def describe(project: Project, result: NotifyResult) -> str:
             what = f"{a.webhook}: incident {a.event}{merged}, cause {printable(a.key_text) or '(all sessions)'} " \
                    f"[{printable(a.incident_id)}]"
         if a.ok:
-            lines.append(f"  delivered  {what}")
+            lines.append(f"  delivered  {what}" + (f" ({a.error})" if a.error else ""))
         elif a.status == "abandoned":
             lines.append(f"  abandoned  {what}: {a.error} (attempt {a.attempts})")
         else:

@@ -5,6 +5,7 @@ Listings carry keys and counts only, never a session or viewer identifier.
 
 from __future__ import annotations
 
+import difflib
 import json
 import math
 from datetime import datetime, timedelta
@@ -14,8 +15,9 @@ import duckdb
 
 from toolkit.config.fields import duration_text
 from toolkit.engine import warehouse
-from toolkit.engine.alarms import spoken
+from toolkit.words import Reading, measure_text, number_text, plural, printable, spoken
 from toolkit.model import Project
+from toolkit.problems import Problem, ProjectInvalid, display_path
 
 ALERT_COLUMNS = ("alert_id", "status", "severity", "check_name", "key", "key_text", "split_value", "opened_at",
                  "breach_started_at", "last_breach_at", "closed_at", "close_reason", "breach_windows",
@@ -37,9 +39,30 @@ def list_alerts(project: Project, status: str = "all", checks: tuple[str, ...] =
     """
     con = warehouse.open_for_reading(project)
     try:
+        refuse_unknown_checks(project, con, checks)
         return alerts_from(con, status, checks, since)
     finally:
         con.close()
+
+
+def refuse_unknown_checks(project: Project, con: duckdb.DuckDBPyConnection, checks: tuple[str, ...]) -> None:
+    """``--check NAME`` naming no check of the project and no check with alerts in the warehouse (a
+    check since removed) is a mistake, not 'no alerts': exit 2 naming the checks there are."""
+    if not checks:
+        return
+    known = set(project.checks) | {row[0] for row in con.execute(
+        "SELECT DISTINCT check_name FROM alerts WHERE check_name IS NOT NULL").fetchall()}
+    unknown = [name for name in checks if name not in known]
+    if unknown:
+        names = ", ".join(sorted(known)) or "none"
+        raise ProjectInvalid([Problem(display_path(project.file), 0,
+                                      f"--check: no check named '{printable(name)}'{_close(name, known)}; "
+                                      f"the checks are: {names}") for name in unknown])
+
+
+def _close(name: str, known: set[str]) -> str:
+    close = difflib.get_close_matches(name, sorted(known), n=1)
+    return f" (did you mean '{close[0]}'?)" if close else ""
 
 
 def has_incidents(con: duckdb.DuckDBPyConnection) -> bool:
@@ -106,7 +129,7 @@ def cause_line(key_text: str | None, causes: list[dict[str, Any]], affected: int
     answers = [c for c in causes if c["significant"]]
     if not answers:
         return None
-    count = f" {affected:,} sessions affected," if affected is not None else ""
+    count = f" {plural(affected, 'session')} affected," if affected is not None else ""
     head = f"{printable(key_text or '(all sessions)')}:{count}"
     if len(answers) == 1:
         share = excess_share_text(answers[0]["excess_share"]) or "the excess"
@@ -151,16 +174,19 @@ def alerts_json(alerts: list[dict[str, Any]]) -> str:
 JSON_CAUSE_FIELDS = ("rank", "key", "bad", "expected", "excess_share", "score", "significant")
 
 
-def alerts_table(alerts: list[dict[str, Any]]) -> str:
-    """A fixed-width table for a terminal; text from the data cannot move the cursor or add lines."""
+def alerts_table(alerts: list[dict[str, Any]], known: dict[str, Reading] | None = None) -> str:
+    """A fixed-width table for a terminal; text from the data cannot move the cursor or add lines.
+    ``worst`` and ``threshold`` are in each check's unit (``known``: how each check's figures read)."""
     if not alerts:
         return "no alerts"
-    head = ("status", "severity", "check", "key", "split", "opened", "windows", "affected", "viewers", "excess",
-            "per hour", "incident")
+    known = known or {}
+    head = ("status", "severity", "check", "key", "split", "worst", "threshold", "opened", "windows", "affected",
+            "viewers", "excess", "per hour", "incident")
     body = [
         (
             a["status"] if a["status"] == "open" else f"closed ({a['close_reason']})",
             a["severity"], check_label(a), printable(a["key_text"] or "(all)"), printable(a["split_value"] or ""),
+            *figures(a, known.get(a["check_name"] or "", Reading())),
             a["opened_at"].strftime("%Y-%m-%d %H:%M"), count_or_dash(a["breach_windows"]),
             count_or_dash(a["affected_sessions"]), count_or_dash(a.get("affected_viewers")),
             count_or_dash(a.get("excess_sessions")), count_or_dash(a["affected_per_hour"]),
@@ -171,6 +197,19 @@ def alerts_table(alerts: list[dict[str, Any]]) -> str:
     below = [alarm_line(a) if a.get("alarm") else cause_line(a["key_text"], a.get("causes", []), a.get("affected_sessions"))
              for a in alerts]
     return _table(head, body, below)
+
+
+def figures(alert: dict[str, Any], reading: Reading) -> tuple[str, str]:
+    """An alert's worst value and its threshold as people read them: in the measure's unit, rounded
+    (a CUSUM's threshold is its decision interval h; a source alarm's, durations)."""
+    if alert.get("alarm"):
+        return spoken(alert.get("peak_value")), spoken(alert.get("threshold"))
+    threshold = alert.get("threshold")
+    if reading.method == "cusum":
+        shown = f"h {number_text(threshold)}" if threshold is not None else "-"
+    else:
+        shown = measure_text(threshold, reading)
+    return measure_text(alert.get("peak_value"), reading), shown
 
 
 def _table(head: tuple[str, ...], body: list[tuple[str, ...]], below: list[str | None]) -> str:
@@ -189,12 +228,6 @@ def count_or_dash(value: float | int | None) -> str:
     """A count rounded to a whole number with thousands separators, or '-' where there is none (viewers
     without a source's viewer_id, excess of a ratio or quantile measure)."""
     return "-" if value is None else f"{round(value):,}"
-
-
-def printable(text: str) -> str:
-    """``text`` with control characters (newlines, terminal escapes) written as ``\\x..`` escapes."""
-    return "".join(ch if ch.isprintable() else f"\\x{ord(ch):02x}" if ord(ch) < 256 else f"\\u{ord(ch):04x}"
-                   for ch in text)
 
 
 def list_incidents(project: Project, status: str = "all") -> list[dict[str, Any]]:
@@ -225,8 +258,15 @@ def incidents_from(con: duckdb.DuckDBPyConnection, status: str = "all",
         {"status": status, "all": alert_ids is None, "ids": alert_ids or []},
     ).fetchall()
     incidents = [dict(zip(INCIDENT_COLUMNS, row)) for row in rows]
-    causes = causes_for(con, [i["cause_alert_id"] for i in incidents if i["cause_alert_id"]], significant_only=True)
+    cause_ids = [i["cause_alert_id"] for i in incidents if i["cause_alert_id"]]
+    figures_of = {alert_id: (peak, threshold) for alert_id, peak, threshold in con.execute(
+        "SELECT alert_id, peak_value, threshold FROM alerts WHERE list_contains($ids, alert_id)",
+        {"ids": cause_ids}).fetchall()} if cause_ids else {}
+    causes = causes_for(con, cause_ids, significant_only=True)
     for incident in incidents:
+        # the cause alert's worst value and threshold, for the words people read (not in --json)
+        incident["cause_peak_value"], incident["cause_threshold"] = figures_of.get(incident["cause_alert_id"],
+                                                                                   (None, None))
         incident["alert_ids"] = list(incident["alert_ids"] or [])
         incident["causes"] = causes.get(incident["cause_alert_id"], [])
     return incidents
@@ -258,17 +298,23 @@ def incidents_json(incidents: list[dict[str, Any]]) -> str:
     return json.dumps(shown, indent=2, ensure_ascii=False, allow_nan=False)
 
 
-def incidents_table(incidents: list[dict[str, Any]]) -> str:
-    """A fixed-width table for a terminal, each incident's top cause on the line below it."""
+def incidents_table(incidents: list[dict[str, Any]], known: dict[str, Reading] | None = None) -> str:
+    """A fixed-width table for a terminal, each incident's top cause on the line below it; ``worst``
+    and ``threshold`` are the cause alert's, in its check's unit."""
     if not incidents:
         return "no incidents"
-    head = ("incident", "status", "severity", "opened", "closed", "cause", "alerts", "affected", "viewers")
+    known = known or {}
+    head = ("incident", "status", "severity", "opened", "closed", "cause", "worst", "threshold", "alerts", "affected",
+            "viewers")
     body = [
         (
             printable(i["incident_id"]), i["status"], i["severity"] or "-",
             i["opened_at"].strftime("%Y-%m-%d %H:%M") if i["opened_at"] else "-",
             i["closed_at"].strftime("%Y-%m-%d %H:%M") if i["closed_at"] else "-",
-            incident_cause(i), f"{i['alerts'] or 0:,}", count_or_dash(i["affected_sessions"]),
+            incident_cause(i),
+            *figures({"alarm": i.get("cause_alarm"), "peak_value": i.get("cause_peak_value"),
+                      "threshold": i.get("cause_threshold")}, known.get(i["cause_check"] or "", Reading())),
+            f"{i['alerts'] or 0:,}", count_or_dash(i["affected_sessions"]),
             count_or_dash(i["affected_viewers"]),
         )
         for i in incidents

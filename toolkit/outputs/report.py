@@ -29,8 +29,9 @@ from toolkit.engine import warehouse
 from toolkit.sql.templates import template_folder
 from toolkit.model import Check, Project
 from toolkit.config.fields import duration_text
+from toolkit.words import Reading, measure_text
 from toolkit.outputs.listings import (alarm_line, alerts_from, cause_line, check_label, count_or_dash, excess_share_text,
-                                      incident_cause, incidents_from)
+                                      incident_cause, incidents_from, refuse_unknown_checks)
 
 CONTEXT_BEFORE = 48   # windows drawn before an alert's first breaching window
 CONTEXT_AFTER = 24    # windows drawn after the window that closed it
@@ -69,6 +70,7 @@ def write_report(project: Project, out: Path, checks: tuple[str, ...] = (),
     """Render the report of the alerts matching ``checks`` and ``since`` into ``out``."""
     con = warehouse.open_for_reading(project)  # the published copies while a run holds the file
     try:
+        refuse_unknown_checks(project, con, checks)
         alerts = alerts_from(con, "all", checks, since)
         incidents = incidents_from(con, "all", [a["alert_id"] for a in alerts])
         causes = [i["cause_alert_id"] for i in incidents if i["cause_alert_id"]]
@@ -154,7 +156,8 @@ def _incident_card(project: Project, incident: dict[str, Any], shown: dict[str, 
     chart = None
     if cause is not None and series.shown:
         chart = markupsafe.Markup(chart_svg(cause, series, None if cusum or check is None else check.measure.kind,
-                                            salt=f"incident-{incident['incident_id']}"))
+                                            salt=f"incident-{incident['incident_id']}",
+                                            unit=check.measure.unit if check is not None else None))
     return {
         "incident": incident,
         "anchor": f"incident-{incident['incident_id']}",
@@ -248,7 +251,11 @@ def _card(project: Project, alert: dict[str, Any], series: Series, earlier: int)
         return _alarm_card(alert, earlier)
     check = project.checks.get(alert["check_name"])
     kind = check.measure.kind if check else None
-    fmt = _format_for(kind)
+    reading = Reading(kind, check.measure.unit if check else None)
+
+    def fmt(value: float | None) -> str:  # in the measure's unit, rounded for reading, as the listings say it
+        return measure_text(value, reading)
+
     # a CUSUM's threshold h and statistic S count bad sessions, not a rate
     cusum = check is not None and check.baseline.method == "cusum"
     if cusum:
@@ -279,13 +286,15 @@ def _card(project: Project, alert: dict[str, Any], series: Series, earlier: int)
         ],
         "about": check.about if check else "",
         "direction": check.direction if check else None,
-        "chart": markupsafe.Markup(chart_svg(alert, series, None if cusum else kind)) if series.shown else None,
+        "chart": markupsafe.Markup(chart_svg(alert, series, None if cusum else kind, unit=reading.unit))
+        if series.shown else None,
         "no_chart": "No windows of this series are in the warehouse.",
         "series": series,
     }
 
 
-def chart_svg(alert: dict[str, Any], series: Series, kind: str | None, salt: str | None = None) -> str:
+def chart_svg(alert: dict[str, Any], series: Series, kind: str | None, salt: str | None = None,
+              unit: str | None = None) -> str:
     """One alert's series against its threshold, breaching windows marked, as an inline SVG element.
 
     ``salt`` keeps the SVG's element ids apart from another chart of the same alert on the page."""
@@ -322,11 +331,11 @@ def chart_svg(alert: dict[str, Any], series: Series, kind: str | None, salt: str
         if alert["split_value"] is not None:
             title += f" [{alert['split_value']}]"
         ax.set_title(title, loc="left", fontsize=9, parse_math=False)
-        ax.set_ylabel(label, parse_math=False)
+        ax.set_ylabel(f"{label} ({unit})" if unit and unit != "%" and kind != "rate" else label, parse_math=False)
         locator = AutoDateLocator()
         ax.xaxis.set_major_locator(locator)
         ax.xaxis.set_major_formatter(ConciseDateFormatter(locator))
-        if kind == "rate":
+        if kind == "rate" or (kind is not None and unit == "%"):  # the check's unit: a fraction read as %
             ax.yaxis.set_major_formatter(PercentFormatter(1.0))
         ax.grid(True, color="#e5e5e5", linewidth=0.6)
         fig.legend(loc="outside lower center", fontsize=8, frameon=False, ncols=3)
