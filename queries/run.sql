@@ -92,6 +92,8 @@ DELETE FROM carry WHERE check_name = $check;
 
 DELETE FROM key_state WHERE check_name = $check;
 
+DELETE FROM series_state WHERE check_name = $check;
+
 DELETE FROM check_state WHERE check_name = $check;
 
 DELETE FROM files_read WHERE check_name = $check;

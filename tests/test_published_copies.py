@@ -41,7 +41,7 @@ HOURS = 12  # the fixture lake's two days cut into this many files, each landing
 def cut_lake(lake: Path) -> list[Path]:
     """The fixture lake as HOURS files (4-hour slices of its two days), written to a spare folder."""
     spare = lake.parent / "slices"
-    spare.mkdir()
+    spare.mkdir(parents=True)
     con = duckdb.connect()
     out = []
     for i in range(HOURS):
@@ -132,6 +132,11 @@ def test_copies_equal_the_warehouse_after_runs_a_rebuild_and_a_removed_check(
     con = duckdb.connect()
     checks = con.execute(f"SELECT DISTINCT check_name FROM '{tmp_path}/warehouse_tables/windows/*.parquet'").fetchall()
     assert checks == [("title_decode_errors",)]
+    # pandas reads the folder as the README shows (the copy's bookkeeping file is hidden from it)
+    import pandas as pd
+
+    assert len(pd.read_parquet(tmp_path / "warehouse_tables" / "windows")) == con.execute(
+        f"SELECT count(*) FROM '{tmp_path}/warehouse_tables/windows/*.parquet'").fetchone()[0] > 0
     # only the latest copy and the one before it are kept beside the link
     assert len(list((tmp_path / "warehouse_tables").glob(".windows-*"))) == 2
 

@@ -4,7 +4,8 @@ writer at a time, and the Parquet copies that readers use while a run holds the 
 DuckDB lets one process write a database file and refuses every other process, readers included,
 while it does. So a run announces itself in a small file beside the warehouse (who, since when), and
 after each run the tables analysts read are published as Parquet beside it, each written to a temp
-name and renamed, so a reader never sees half a file and never waits for a run.
+name and renamed, so a reader never sees half a file and never waits for a run. The windows table,
+which grows with every run, is published as a folder of parts to which each run adds its own rows.
 """
 
 from __future__ import annotations
@@ -31,13 +32,14 @@ from toolkit.problems import DataError, RunLocked, WarehouseError, engine_messag
 
 TABLES = ("runs", "run_checks", "files_read", "changed_files", "source_columns", "session_ids",
           "check_state", "key_state", "carry", "key_windows", "windows", "alerts", "alert_events",
-          "alert_causes", "incidents", "incident_events", "table_versions", "schema_version")
+          "alert_causes", "incidents", "incident_events", "table_versions", "series_state", "schema_version")
 # The layout this release writes (the schema_version table): 2 names files relative to their
 # source, 3 renames columns (CHANGELOG.md), 4 adds the impact columns (queries/migrate_4.sql), 5
 # adds causes and incidents (new tables and alerts.incident_id; the next run fills them), 6 the
 # table versions Delta and Iceberg sources are read by, and source alarms (columns of alerts,
-# alert_events and incidents); nothing to fill.
-SCHEMA_VERSION = 6
+# alert_events and incidents); nothing to fill. 7: what the baselines read per series
+# (series_state, key_state.recent), filled from the stored windows (queries/migrate_7.sql).
+SCHEMA_VERSION = 7
 POLL_SECONDS = 0.25
 # A run's temp tables live until its one transaction commits, so without a limit its memory grows
 # with checks x sessions; at this limit DuckDB spills to disk instead. The limit bounds DuckDB's
@@ -205,7 +207,15 @@ def _layout_6(con: duckdb.DuckDBPyConnection, project: Project) -> None:
     was Parquet, read by listing, and no source was watched, so nothing is filled after the fact."""
 
 
-_MIGRATIONS = ((2, _layout_2), (3, _layout_3), (4, _layout_4), (5, _layout_5), (6, _layout_6))
+def _layout_7(con: duckdb.DuckDBPyConnection, project: Project) -> None:
+    """Layout 6 to 7: each check's series_state and its keys' recent windows made from its stored
+    windows (queries/migrate_7.sql), as its runs would have kept them, so the next run's baselines
+    read them instead of the windows. A check no longer in the project is retired by the next run."""
+    for check in project.checks.values():
+        _run_template(con, "migrate_7.sql", {}, check=check)
+
+
+_MIGRATIONS = ((2, _layout_2), (3, _layout_3), (4, _layout_4), (5, _layout_5), (6, _layout_6), (7, _layout_7))
 
 
 def _adopt_definitions(con: duckdb.DuckDBPyConnection, project: Project) -> None:
@@ -338,7 +348,6 @@ def _publish_parts(con: duckdb.DuckDBPyConnection, folder: Path, copies: Named, 
     whole = (not parts or about is None or about.get("layout") != layout or about.get("columns") != columns
              or about.get("rows") != rows_through)
     if not whole and (last_run is None or last_run <= through):
-        _forget_old_copies(folder, table, keep={current.name})
         return  # nothing new since the copy was made
     number = int(current.name.rsplit("-", 1)[1]) + 1 if current else 1
     new = folder / f".{table}-{number}"
@@ -351,7 +360,7 @@ def _publish_parts(con: duckdb.DuckDBPyConnection, folder: Path, copies: Named, 
         parts = [part]
     else:
         for part in parts:
-            os.link(current / part.name, new / part.name)
+            _link_or_copy(current / part.name, new / part.name)
         part = Part(through + 1, int(last_run), 0)
         _execute(con, copies, f"publish.{table}.runs", {"path": str(new / part.name), "after": through,
                                                        "through": part.last})
@@ -368,7 +377,7 @@ def _publish_parts(con: duckdb.DuckDBPyConnection, folder: Path, copies: Named, 
     _forget_old_copies(folder, table, keep={new.name, current.name if current else new.name})
 
 
-COPY_LAYOUT = "layout.json"  # in each copy's folder: the warehouse layout, columns and rows it was made from
+COPY_LAYOUT = ".layout.json"  # hidden, in each copy's folder: the warehouse layout, columns and rows it was made from
 
 
 def _merged(con: duckdb.DuckDBPyConnection, copies: Named, table: str, folder: Path, parts: list[Part]) -> list[Part]:
@@ -386,6 +395,15 @@ def _merged(con: duckdb.DuckDBPyConnection, copies: Named, table: str, folder: P
             (folder / p.name).unlink()
         parts = [*parts[:-MERGE_PARTS], merged]
     return parts
+
+
+def _link_or_copy(source: Path, target: Path) -> None:
+    """A part kept from the previous copy: the same file (a hard link), or a copy of it where the
+    file system has no hard links."""
+    try:
+        os.link(source, target)
+    except OSError:
+        shutil.copy2(source, target)
 
 
 def _current_copy(link: Path) -> Path | None:
