@@ -12,6 +12,9 @@ each measurement in a fresh process, so its peak memory (max RSS: VmHWM) is its 
   catalogue  `plimsoll run` of the whole catalogue on a fresh warehouse
   no_causes  the same without `attributes` (so no alert is explained), on a fresh warehouse
   increment  the catalogue over the first 30 days, then one incremental run adding the 31st
+  hourly     from the same 30 days, the 31st day landing as 24 hourly files, a run after each
+  year       the 31st day after a synthetic year of history (the 30 days' windows replayed eleven
+             times, each 30 days earlier), against `increment`, the same day after a month
 
 and prints seconds, peak MiB, DuckDB's own peak, the windows and alerts each produced, the ratios
 against their targets, and where the Plimsoll runs spend their time, stage by stage; the same
@@ -51,7 +54,13 @@ RATIOS = (
     ("catalogue", "title", 3.0, "the whole catalogue against the title check alone"),
     ("increment", "catalogue", 0.1, "one new day after 30 against a full run"),
     ("catalogue", "no_causes", 1.2, "the catalogue with its alerts' causes and incidents against it without causes"),
+    ("year", "increment", 1.3, "one new day after a year of history against the same day after a month"),
 )
+PEAK_FLAT = 1.05  # the year's peak memory against the month's: flat, within measurement noise
+HOURLY_TARGET = 2.0  # seconds: the median and the slowest of the 24 hourly runs after 30 days
+HOURS = 24
+YEAR_BLOCKS = 11  # the 30 days' history replayed this many times, each block 30 days before the last
+THIRTY_DAYS = "thirty-days"  # in WORKDIR: the warehouse after the first 30 days, kept for hourly and year
 ORACLE_SHARE = 2_500_000  # sessions the oracle holds at a time (about 3 GiB as Python dicts)
 MEMORY_TARGET_MIB = 2048  # the catalogue's peak with the default memory limit
 LIMIT_VARIABLE = "PLIMSOLL_BENCH_MEMORY_LIMIT"  # --memory-limit, passed to the children
@@ -230,6 +239,9 @@ CHILDREN = {
     "catalogue": lambda w: _plimsoll(w, None),
     "no_causes": lambda w: _plimsoll(w, None, _without_attributes(w)),
     "increment": lambda w: _plimsoll(w, None),
+    "hourly": lambda w: _plimsoll(w, None),
+    "year": lambda w: _plimsoll(w, None),
+    "year_history": lambda w: _year_history(w),
 }
 
 
@@ -301,7 +313,7 @@ def say(text: str) -> None:
     print(text, file=sys.stderr, flush=True)
 
 
-def measure_all(workdir: Path, skip: set[str]) -> dict[str, dict[str, Any]]:
+def measure_all(workdir: Path, skip: set[str], keep_thirty_days: bool = False) -> dict[str, dict[str, Any]]:
     results: dict[str, dict[str, Any]] = {}
     for name in ("floor", "by_hand", "title", "oracle", "catalogue", "no_causes"):
         if name in skip:
@@ -309,19 +321,156 @@ def measure_all(workdir: Path, skip: set[str]) -> dict[str, dict[str, Any]]:
         fresh_warehouse(workdir)
         say(f"measuring {name}")
         results[name] = measured(name, workdir)
-    if "increment" not in skip:
-        days = sorted((workdir / "lake" / "sessions").iterdir())
-        parked = workdir / "parked-day"
-        shutil.move(str(days[-1]), parked)
-        try:
+    if {"increment", "hourly", "year"} <= skip:
+        return results
+    days = sorted((workdir / "lake" / "sessions").iterdir())
+    saved = workdir / THIRTY_DAYS
+    if not (keep_thirty_days and saved.exists()):
+        with _parked(days[-1], workdir):
             fresh_warehouse(workdir)
             say(f"catalogue over the first {len(days) - 1} days")
             results["first_30_days"] = measured("catalogue", workdir)
-        finally:
-            shutil.move(str(parked), days[-1])
+        _save_state(workdir, saved)
+    if "increment" not in skip:
+        _restore_state(saved, workdir)
         say("measuring increment")
         results["increment"] = measured("increment", workdir)
+    if "hourly" not in skip:
+        _restore_state(saved, workdir)
+        results["hourly"] = measure_hourly(workdir, days[-1])
+    if "year" not in skip:
+        _restore_state(saved, workdir)
+        with _parked(days[-1], workdir):
+            say(f"a year of history: the 30 days' windows replayed {YEAR_BLOCKS} times")
+            results["year_history"] = measured("year_history", workdir)
+        say("measuring year")
+        results["year"] = measured("year", workdir)
     return results
+
+
+STATE = ("warehouse.duckdb", "warehouse.duckdb.wal", "warehouse_tables")
+
+
+def _save_state(workdir: Path, saved: Path) -> None:
+    """The warehouse and its published copies, kept to start the later measurements from."""
+    if saved.exists():
+        shutil.rmtree(saved)
+    saved.mkdir()
+    for item in STATE:
+        if (workdir / item).is_dir():
+            shutil.copytree(workdir / item, saved / item, symlinks=True)
+        elif (workdir / item).exists():
+            shutil.copy2(workdir / item, saved / item)
+
+
+def _restore_state(saved: Path, workdir: Path) -> None:
+    fresh_warehouse(workdir)
+    if (workdir / "warehouse_tables").exists():
+        shutil.rmtree(workdir / "warehouse_tables")
+    for item in STATE:
+        if (saved / item).is_dir():
+            shutil.copytree(saved / item, workdir / item, symlinks=True)
+        elif (saved / item).exists():
+            shutil.copy2(saved / item, workdir / item)
+
+
+class _parked:
+    """The lake's last day moved out of the lake for the length of a ``with``, and back after."""
+
+    def __init__(self, day: Path, workdir: Path) -> None:
+        self.day, self.place = day, workdir / "parked-day"
+
+    def __enter__(self) -> Path:
+        shutil.move(str(self.day), self.place)
+        return self.place
+
+    def __exit__(self, *exc: Any) -> None:
+        if self.day.exists():
+            shutil.rmtree(self.day)
+        shutil.move(str(self.place), self.day)
+
+
+def measure_hourly(workdir: Path, day: Path) -> dict[str, Any]:
+    """The last day cut into HOURS files by the hour of its sessions' event time, each landing in
+    the lake before a run of its own (a fresh process each, as a scheduler starts them)."""
+    import duckdb
+
+    hours = workdir / "hours"
+    if not (hours / "done").exists():
+        hours.mkdir(exist_ok=True)
+        con = duckdb.connect()
+        files = sorted(str(f) for f in day.glob("*.parquet"))
+        for hour in range(HOURS):
+            con.execute(
+                "COPY (SELECT * EXCLUDE (day) FROM read_parquet($files, hive_partitioning = true) "
+                "WHERE least(23, greatest(0, hour(ended_at))) = $hour ORDER BY ended_at) "
+                f"TO '{hours / f'hour-{hour:02d}.parquet'}' (FORMAT parquet)", {"files": files, "hour": hour})
+        con.close()
+        (hours / "done").write_text("", encoding="utf-8")
+    runs = []
+    with _parked(day, workdir):
+        day.mkdir()
+        for hour in range(HOURS):
+            shutil.copy(hours / f"hour-{hour:02d}.parquet", day / f"hour-{hour:02d}.parquet")
+            say(f"measuring hourly, hour {hour + 1} of {HOURS}")
+            runs.append(measured("hourly", workdir))
+    seconds = sorted(r["seconds"] for r in runs)
+    median = (seconds[(HOURS - 1) // 2] + seconds[HOURS // 2]) / 2
+    return {"seconds": median, "max_seconds": seconds[-1], "peak_mib": max(r["peak_mib"] for r in runs),
+            "duckdb_peak_mib": max(r.get("duckdb_peak_mib", 0) for r in runs),
+            "windows": sum(r["windows"] for r in runs), "alerts": runs[-1]["alerts"],
+            "runs": [{k: r[k] for k in ("seconds", "peak_mib", "windows", "load_seconds")} for r in runs],
+            "stages": _median_stages(runs), "checks": {}, "load_seconds": sorted(r["load_seconds"] for r in runs)[HOURS // 2],
+            "top_statements": runs[HOURS // 2]["top_statements"]}
+
+
+def _median_stages(runs: list[dict[str, Any]]) -> dict[str, float]:
+    names = {name for r in runs for name in r["stages"]}
+    return {name: sorted(r["stages"].get(name, 0.0) for r in runs)[len(runs) // 2] for name in names}
+
+
+def _year_history(workdir: Path) -> dict[str, Any]:
+    """A year of history in the warehouse of the first 30 days, made in seconds: its windows, key
+    windows and files read replayed YEAR_BLOCKS times, block k shifted 30 k days earlier (count
+    windows numbered before the first, time windows by their time, as runs would have numbered
+    them), then published once, as the runs of that year would have left the copies."""
+    import duckdb
+
+    from toolkit.config.project import load_project
+    from toolkit.engine import warehouse
+
+    project = load_project(workdir / "plimsoll.yml")
+    con = warehouse.connect(project)
+    block = timedelta(days=30)
+    steps = {name: (block // check.window.every if check.window.kind == "time" else None)
+             for name, check in project.checks.items()}
+    con.execute("BEGIN TRANSACTION")
+    con.execute("CREATE TEMP TABLE steps (check_name VARCHAR, step BIGINT)")
+    con.executemany("INSERT INTO steps VALUES (?, ?)", [[name, step] for name, step in steps.items()])
+    # what one block shifts: a time window's number by the windows in 30 days, a count window's and
+    # every key window's by the check's own count, so the replayed ones come before the first
+    con.execute("CREATE TEMP TABLE spans AS SELECT k.check_name, "
+                "coalesce(any_value(p.step), max(k.window_number) - min(k.window_number) + 1) AS numbers, "
+                "max(k.key_window) AS key_windows "
+                "FROM key_windows AS k LEFT JOIN steps AS p USING (check_name) GROUP BY k.check_name")
+    for table in ("windows", "key_windows"):
+        con.execute(f"CREATE TEMP TABLE month AS SELECT * FROM {table}")
+        for k in range(1, YEAR_BLOCKS + 1):
+            con.execute(
+                f"INSERT INTO {table} SELECT m.* REPLACE ("
+                "m.window_start - $shift AS window_start, m.window_end - $shift AS window_end, "
+                "m.window_number - $k * s.numbers AS window_number, m.key_window - $k * s.key_windows AS key_window) "
+                "FROM month AS m JOIN spans AS s USING (check_name)", {"shift": k * block, "k": k})
+        con.execute("DROP TABLE month")
+    for k in range(1, YEAR_BLOCKS + 1):
+        con.execute("INSERT INTO files_read BY NAME SELECT * REPLACE ('replayed-' || $k || '/' || path AS path) "
+                    "FROM files_read WHERE NOT starts_with(path, 'replayed-')", {"k": k})
+    con.execute("COMMIT")
+    con.execute("CHECKPOINT")
+    windows = con.execute("SELECT count(*) FROM windows").fetchone()[0]
+    warehouse.publish(con, project)
+    con.close()
+    return {"windows": windows}
 
 
 def ratios(results: dict[str, dict[str, Any]]) -> list[dict[str, Any]]:
@@ -356,7 +505,18 @@ def table(sessions: int, results: dict[str, dict[str, Any]], found: list[dict[st
         peak = results["catalogue"]["peak_mib"]
         lines.append(f"{'catalogue peak MiB':<22}{peak:>7.0f}{'<= ' + str(MEMORY_TARGET_MIB):>8}  "
                      f"{'met' if peak <= MEMORY_TARGET_MIB else 'MISSED'}")
-    for name in ("title", "catalogue", "increment"):
+    if "hourly" in results:
+        h = results["hourly"]
+        for what, value in (("median", h["seconds"]), ("max", h["max_seconds"])):
+            lines.append(f"{'hourly ' + what + ' s':<22}{value:>7.2f}{'<= ' + format(HOURLY_TARGET, 'g'):>8}  "
+                         f"{'met' if value <= HOURLY_TARGET else 'MISSED'}  (a run after each of {HOURS} hourly "
+                         "files of the 31st day, after 30 days)")
+    if "year" in results and "increment" in results:
+        year, month = results["year"]["peak_mib"], results["increment"]["peak_mib"]
+        lines.append(f"{'year/increment peak':<22}{year / month:>7.3f}{'<= ' + format(PEAK_FLAT, 'g'):>8}  "
+                     f"{'met' if year <= month * PEAK_FLAT else 'MISSED'}  (peak memory flat: {year:.0f} MiB after a "
+                     f"year, {month:.0f} MiB after a month)")
+    for name in ("title", "catalogue", "increment", "hourly", "year"):
         if name not in results:
             continue
         r = results[name]
@@ -382,6 +542,9 @@ SHOWN = {
     "no_causes": "the same without `attributes`: no alert explained (causes are the difference)",
     "first_30_days": "the catalogue over the first 30 days",
     "increment": "`plimsoll run` after one more day lands",
+    "hourly": "`plimsoll run` after each of 24 hourly files of that day lands (median; the slowest below)",
+    "year_history": "making a year of history from the 30 days (not a run: the set-up for the next row)",
+    "year": "`plimsoll run` after the same day lands, after a year of history",
 }
 
 
@@ -408,6 +571,13 @@ def results_page(figures: dict[str, Any]) -> str:
                      f"{results[bottom]['seconds']:.1f} s) | ≤ {r['target']:g} |")
     if "catalogue" in results:
         lines.append(f"| catalogue peak | {_mib(results['catalogue']['peak_mib'])} | ≤ {_mib(MEMORY_TARGET_MIB)} |")
+    if "hourly" in results:
+        h = results["hourly"]
+        lines.append(f"| hourly run, median of {len(h.get('runs', [])) or HOURS} | {h['seconds']:.2f} s | ≤ {HOURLY_TARGET:g} s |")
+        lines.append(f"| hourly run, slowest | {h['max_seconds']:.2f} s | ≤ {HOURLY_TARGET:g} s |")
+    if "year" in results and "increment" in results:
+        lines.append(f"| peak after a year / after a month | {_mib(results['year']['peak_mib'])} / "
+                     f"{_mib(results['increment']['peak_mib'])} | ≤ {PEAK_FLAT:g} |")
     if figures.get("notes"):
         lines += ["", figures["notes"]]
     return "\n".join(lines) + "\n"
@@ -422,6 +592,8 @@ def main() -> None:
                         help="leave a measurement out (repeatable), e.g. the oracle at very large sizes")
     parser.add_argument("--memory-limit", default=None,
                         help="DuckDB memory_limit for every DuckDB measurement (plimsoll.yml's key), e.g. 8GB; default: Plimsoll's default")
+    parser.add_argument("--keep-30-days", action="store_true",
+                        help="start increment, hourly and year from the warehouse WORKDIR/thirty-days kept by an earlier run")
     parser.add_argument("--page", type=Path, default=None, metavar="JSON",
                         help="print benchmarks/RESULTS.md from the figures of a run (its --json file), then stop")
     parser.add_argument("--child", nargs=2, metavar=("NAME", "WORKDIR"), help=argparse.SUPPRESS)
@@ -434,7 +606,7 @@ def main() -> None:
         return
     workdir = args.workdir or Path(tempfile.mkdtemp(prefix="plimsoll-bench-"))
     sessions = prepare(workdir, args.sessions, args.memory_limit)
-    results = measure_all(workdir, set(args.skip))
+    results = measure_all(workdir, set(args.skip), args.keep_30_days)
     found = ratios(results)
     print(table(sessions, results, found))
     target = args.json or workdir / "bench.json"

@@ -79,9 +79,8 @@ known AS (
     SELECT key, split_value, CASE WHEN bool_or(earlier) THEN NULL ELSE min(window_number) END AS since
     FROM (
         SELECT key, split_value, true AS earlier, NULL::BIGINT AS window_number
-        FROM windows
+        FROM series_state   -- a row per series with a window (persist.sql), not the windows themselves
         WHERE check_name = {{ check_lit }} AND key IN (SELECT key FROM new_key_windows)
-        GROUP BY key, split_value
         UNION ALL
         SELECT key, split_value, false, window_number FROM bad_by_value
     )

@@ -1,3 +1,4 @@
+{% import "macros.sql" as m %}
 {% set check_lit = check.name | literal %}
 -- ── stage 6 · persist ───────────────────────────────────────────────────────────────────────
 -- Everything below commits in the run's one transaction, with the files read and the run record.
@@ -14,14 +15,93 @@ SELECT {{ check_lit }} AS check_name, key, key_text, key_window, window_number, 
        $run_id AS run_id
 FROM new_key_windows;
 
+-- ┌ what the next run's baselines and measures read instead of each series' whole history
+{% set keep = baseline.history if baseline.history is not none else 0 %}
+-- Each key's state{% if measure.split %}, with its last {{ keep }} windows of at least {{ guard.min_sessions }} sessions (a split value
+-- first seen in its next windows has them as quiet history){% endif %}.
+CREATE OR REPLACE TEMP TABLE next_key_state AS
+SELECT n.key, n.last_window_number, n.last_end, n.windows, {% if measure.split and keep %}r.recent{% else %}NULL{% endif %} AS recent
+FROM (
+    SELECT key, max(window_number) AS last_window_number, max(window_end) AS last_end, max(key_window) AS windows
+    FROM new_key_windows
+    GROUP BY key
+) AS n
+{% if measure.split and keep %}
+LEFT JOIN (
+    SELECT key, list({'key_window': key_window, 'window_number': window_number, 'sessions': sessions} ORDER BY key_window) AS recent
+    FROM (
+        SELECT *
+        FROM (
+            SELECT key, key_window, window_number, sessions FROM new_key_windows WHERE sessions >= {{ guard.min_sessions }}
+            UNION ALL
+            SELECT key, unnest(recent, recursive := true)
+            FROM key_state
+            WHERE check_name = {{ check_lit }} AND key IN (SELECT key FROM new_key_windows)
+        )
+        QUALIFY row_number() OVER (PARTITION BY key ORDER BY key_window DESC) <= {{ keep }}
+    )
+    GROUP BY key
+) AS r ON r.key = n.key
+{% endif %}
+;
+
 DELETE FROM key_state
 WHERE check_name = {{ check_lit }} AND key IN (SELECT key FROM new_key_windows);
 
 INSERT INTO key_state BY NAME
-SELECT {{ check_lit }} AS check_name, key, max(window_number) AS last_window_number, max(window_end) AS last_end,
-       max(key_window) AS windows
-FROM new_key_windows
-GROUP BY key;
+SELECT {{ check_lit }} AS check_name, * FROM next_key_state;
+
+-- Each series of the new windows: its last {{ keep }} windows that are history for the next ones (this run's
+-- history and its new windows without a breach and with a value), and its statistic.
+CREATE OR REPLACE TEMP TABLE next_series_state AS
+WITH touched AS (
+    SELECT DISTINCT key, split_value FROM judged
+),
+history_rows AS (
+    SELECT key, split_value, window_number, value, sessions, bad
+    FROM (
+{% if keep %}
+        SELECT key, split_value, window_number, value, sessions, bad FROM history
+        UNION ALL
+{% endif %}
+        SELECT key, split_value, window_number, value, sessions, bad
+        FROM judged
+        WHERE coalesce(NOT breach, false) AND value IS NOT NULL
+    )
+    QUALIFY row_number() OVER (PARTITION BY key, split_value ORDER BY window_number DESC) <= {{ keep }}
+),
+recent AS (
+    SELECT key, split_value,
+           list({'window_number': window_number, 'value': value, 'sessions': sessions, 'bad': bad} ORDER BY window_number) AS recent
+    FROM history_rows
+    GROUP BY key, split_value
+),
+statistics AS (
+    -- the statistic of the series' last window that has one: the stored one, or a new window's
+    SELECT key, split_value, arg_max(statistic, window_number) AS statistic,
+           max(window_number) FILTER (WHERE statistic IS NOT NULL) AS statistic_window
+    FROM (
+        SELECT s.key, s.split_value, s.statistic, s.statistic_window AS window_number
+        FROM series_state AS s
+        SEMI JOIN touched AS t ON {{ m.same_series("s", "t") }}
+        WHERE s.check_name = {{ check_lit }}
+        UNION ALL
+        SELECT key, split_value, {% if baseline.method in ("ewma", "cusum") %}statistic{% else %}NULL::DOUBLE{% endif %}, window_number FROM judged
+    )
+    GROUP BY key, split_value
+)
+SELECT t.key, t.split_value, coalesce(r.recent, []) AS recent, s.statistic, s.statistic_window
+FROM touched AS t
+LEFT JOIN recent AS r ON {{ m.same_series("r", "t") }}
+LEFT JOIN statistics AS s ON {{ m.same_series("s", "t") }};
+
+DELETE FROM series_state AS s
+WHERE s.check_name = {{ check_lit }}
+  AND EXISTS (SELECT 1 FROM next_series_state AS n WHERE {{ m.same_series("n", "s") }});
+
+INSERT INTO series_state BY NAME
+SELECT {{ check_lit }} AS check_name, * FROM next_series_state;
+-- └
 
 DELETE FROM carry WHERE check_name = {{ check_lit }};
 

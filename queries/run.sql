@@ -92,6 +92,8 @@ DELETE FROM carry WHERE check_name = $check;
 
 DELETE FROM key_state WHERE check_name = $check;
 
+DELETE FROM series_state WHERE check_name = $check;
+
 DELETE FROM check_state WHERE check_name = $check;
 
 DELETE FROM files_read WHERE check_name = $check;
@@ -185,6 +187,17 @@ RETURNING rows_read, windows_written, alerts_opened, alerts_closed;
 DELETE FROM table_versions WHERE check_name = $check;
 
 INSERT INTO table_versions VALUES ($check, $source, $format, $version, $snapshot_id, $complete, $run_id);
+
+-- @statement end.forget_ids
+-- Session ids of $source more than its dedup_horizon ($horizon) behind the data every check of the
+-- source ($source_checks) has read, now that this run's checks have moved their watermarks: no
+-- session read later can be told from a repeat of them (it would be late), so they go at once
+-- rather than at the next run's source stage. The id memory so holds about dedup_horizon of
+-- sessions after every run, however many days one run read.
+DELETE FROM session_ids
+WHERE source_name = $source
+  AND event_time < (SELECT min(watermark) FROM check_state WHERE list_contains($source_checks, check_name))
+                   - $horizon;
 
 -- @statement end.repeats
 -- Valid sessions read, and those that repeated sessions already counted: a run of mostly repeats

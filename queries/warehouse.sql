@@ -302,6 +302,22 @@ ALTER TABLE incidents ADD COLUMN IF NOT EXISTS cause_alarm VARCHAR;     -- the c
 ALTER TABLE outbox ADD COLUMN IF NOT EXISTS body VARCHAR;
 ALTER TABLE outbox ADD COLUMN IF NOT EXISTS content_type VARCHAR;   -- of body: the webhook's, or message/rfc822 for mail
 
+-- ── layout 7: what the next windows' baselines read, per series ─────────────────────────────────
+-- A run's baselines and measures read a row per series that changed, never the series' whole
+-- history in `windows`: persist.sql keeps these up to date from each run's windows.
+CREATE TABLE IF NOT EXISTS series_state (    -- every series (check, key, split value) with a window
+    check_name VARCHAR,
+    key MAP(VARCHAR, VARCHAR),
+    split_value VARCHAR,
+    recent STRUCT(window_number BIGINT, value DOUBLE, sessions BIGINT, bad BIGINT)[],  -- its last `history` windows that are history (no breach, a value; and a split value's quiet windows), oldest first
+    statistic DOUBLE,                -- EWMA and CUSUM: the statistic of its last window that has one
+    statistic_window BIGINT          -- that window's window_number
+);
+-- the key's last `history` closed windows of at least guard.min_sessions sessions: the quiet
+-- history of a split value first seen in the key's next windows
+ALTER TABLE key_state ADD COLUMN IF NOT EXISTS recent STRUCT(key_window BIGINT, window_number BIGINT, sessions BIGINT)[];
+-- ── end of layout 7 ───────────────────────────────────────────────────────────────────────────
+
 -- The warehouse's layout, so a later release can migrate a file written by an earlier one and a
 -- file written by a later one is refused with a clear message. Paths in files_read,
 -- changed_files, session_ids and source_columns are relative to their source's path from version 2.

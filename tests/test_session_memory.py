@@ -88,10 +88,10 @@ def test_the_session_id_memory_stays_bounded_over_a_month_of_daily_runs(tmp_path
         write_rows(lake, SCHEMA, day(n), f"day-{n:02d}.parquet")
         run(load_project(project_file))
         remembered.append(query(tmp_path / "w.duckdb", "SELECT count(*) FROM session_ids")[0][0])
-    # dedup_horizon 3d: what lies within three days behind the data read before the run (from the
-    # last session of day n-4 on), and the day being read
-    assert max(remembered) == 4 * 200 + 1 and remembered[-1] == remembered[10]
-    assert query(tmp_path / "w.duckdb", "SELECT min(event_time) FROM session_ids") == [(day(25)[-1][1],)]
+    # dedup_horizon 3d: what lies within three days behind the data read, forgotten by the run that
+    # moved the watermark past it (from the last session of day n-3 on)
+    assert max(remembered) == 3 * 200 + 1 and remembered[-1] == remembered[10]
+    assert query(tmp_path / "w.duckdb", "SELECT min(event_time) FROM session_ids") == [(day(26)[-1][1],)]
 
     # a session sent again within the horizon is a repeat; one sent again beyond it is late; neither counts twice
     write_rows(lake, SCHEMA, day(30) + day(28)[:7] + day(20)[:5], "day-30.parquet")
@@ -99,3 +99,19 @@ def test_the_session_id_memory_stays_bounded_over_a_month_of_daily_runs(tmp_path
     assert query(tmp_path / "w.duckdb", "SELECT duplicate_rows, late_rows FROM runs ORDER BY run_id DESC LIMIT 1") == [(7, 5)]
     # every session of days 0-29 once, and day 30's first three quarters (its last is still open)
     assert query(tmp_path / "w.duckdb", "SELECT sum(sessions) FROM windows") == [(30 * 200 + 150,)]
+
+
+def test_ids_beyond_the_horizon_are_forgotten_by_the_run_that_read_them(tmp_path: Path) -> None:
+    # a first run over ten days keeps only the ids within dedup_horizon of the data it read, not ten
+    # days of them until a next run
+    lake = tmp_path / "lake"
+    project_file = write_project(tmp_path, {"d.yml": DAILY}, PLAIN_PROJECT.format(lake=lake))
+    for n in range(10):
+        write_rows(lake, SCHEMA, day(n), f"day-{n:02d}.parquet")
+    run(load_project(project_file))
+    assert query(tmp_path / "w.duckdb", "SELECT count(*), min(event_time) FROM session_ids") == [
+        (3 * 200 + 1, day(6)[-1][1])]
+    # and still none counted twice: day 8 again is a repeat, day 2 again is late
+    write_rows(lake, SCHEMA, day(10) + day(8)[:6] + day(2)[:4], "day-10.parquet")
+    run(load_project(project_file))
+    assert query(tmp_path / "w.duckdb", "SELECT duplicate_rows, late_rows FROM runs ORDER BY run_id DESC LIMIT 1") == [(6, 4)]

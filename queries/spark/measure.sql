@@ -5,11 +5,10 @@
 -- DuckDB's statements, translated; the key windows and windows go back to the warehouse, where the
 -- baselines and the life cycle run as with DuckDB.
 {% if measure.split %}
--- @to-spark windows
+-- @to-spark series_state
 SELECT check_name, {{ m.from_map("key", check.by) }} AS key, split_value
-FROM windows
-WHERE check_name = {{ check_lit }}
-GROUP BY ALL;
+FROM series_state
+WHERE check_name = {{ check_lit }};
 {% endif %}
 {% if measure.kind == "rate" and measure.split %}
 -- @translate split_counts

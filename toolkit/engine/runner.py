@@ -241,6 +241,7 @@ def _run(con: duckdb.DuckDBPyConnection, project: Project, run_id: int, checks: 
                          f"{_plural(done.alerts_opened, 'alert')} opened, {done.alerts_closed} closed")
         result.alarms = _source_alarms(con, project, run_id, checks, started, listings, groups, progress)
         _causes_and_incidents(con, run_id, checks, listings, progress)
+        _forget_ids(con, project, groups)
         repeats = _mostly_repeats(con)
         if repeats:
             result.warnings.append(repeats)
@@ -270,6 +271,16 @@ def _run(con: duckdb.DuckDBPyConnection, project: Project, run_id: int, checks: 
     finally:
         _close(stages)
     return result
+
+
+def _forget_ids(con: duckdb.DuckDBPyConnection, project: Project, groups: list[Group]) -> None:
+    """The session ids each source that was read no longer needs, forgotten after its checks moved
+    their watermarks (queries/run.sql, end.forget_ids)."""
+    read = {group.checks[0][0].source.name: group.checks[0][0].source for group in groups if group.files}
+    for name, source in sorted(read.items()):
+        _run_named(con, "end.forget_ids", {
+            "source": name, "horizon": source.dedup_horizon,
+            "source_checks": sorted(c.name for c in project.checks.values() if c.source.name == name)})
 
 
 def _source_alarms(con: duckdb.DuckDBPyConnection, project: Project, run_id: int, checks: list[Check],

@@ -4,17 +4,21 @@ writer at a time, and the Parquet copies that readers use while a run holds the 
 DuckDB lets one process write a database file and refuses every other process, readers included,
 while it does. So a run announces itself in a small file beside the warehouse (who, since when), and
 after each run the tables analysts read are published as Parquet beside it, each written to a temp
-name and renamed, so a reader never sees half a file and never waits for a run.
+name and renamed, so a reader never sees half a file and never waits for a run. The windows table,
+which grows with every run, is published as a folder of parts to which each run adds its own rows.
 """
 
 from __future__ import annotations
 
 import json
 import os
+import re
+import shutil
 import socket
 import time
 from collections.abc import Iterator
 from contextlib import contextmanager
+from dataclasses import dataclass
 from datetime import datetime, timezone
 from pathlib import Path
 
@@ -28,12 +32,13 @@ from toolkit.problems import DataError, RunLocked, WarehouseError, engine_messag
 
 TABLES = ("runs", "run_checks", "files_read", "changed_files", "source_columns", "session_ids",
           "check_state", "key_state", "carry", "key_windows", "windows", "alerts", "alert_events",
-          "alert_causes", "incidents", "incident_events", "table_versions", "schema_version")
+          "alert_causes", "incidents", "incident_events", "table_versions", "series_state", "schema_version")
 # The layout this release writes (the schema_version table): 2 names files relative to their
 # source, 3 renames columns (CHANGELOG.md), 4 adds the impact columns (queries/migrate_4.sql), 5
 # adds causes and incidents (new tables and alerts.incident_id; the next run fills them), 6 the
 # table versions Delta and Iceberg sources are read by, and source alarms (columns of alerts,
-# alert_events and incidents); nothing to fill.
+# alert_events and incidents); nothing to fill. 7: what the baselines read per series
+# (series_state, key_state.recent), filled from the stored windows (queries/migrate_7.sql).
 SCHEMA_VERSION = 7
 POLL_SECONDS = 0.25
 # A run's temp tables live until its one transaction commits, so without a limit its memory grows
@@ -203,10 +208,14 @@ def _layout_6(con: duckdb.DuckDBPyConnection, project: Project) -> None:
 
 
 def _layout_7(con: duckdb.DuckDBPyConnection, project: Project) -> None:
-    """Layout 6 to 7: no table changes. The count-window and verdict SQL was rewritten to do the same
-    work faster (a series sorted by its key's hash, only the windows a breach can move judged again),
-    so an unchanged check compiles to a new definition hash; the step exists so that
-    `_adopt_definitions` takes the new hashes instead of asking for a rebuild of every check."""
+    """Layout 6 to 7: each check's series_state and its keys' recent windows made from its stored
+    windows (queries/migrate_7.sql), as its runs would have kept them, so the next run's baselines
+    read them instead of the windows. A check no longer in the project is retired by the next run.
+    The count-window and verdict SQL also changed (series sorted by number and event time, only
+    the windows a breach can move judged again): `_adopt_definitions` takes each unchanged check's
+    new definition hash instead of asking for a rebuild of every check."""
+    for check in project.checks.values():
+        _run_template(con, "migrate_7.sql", {}, check=check)
 
 
 _MIGRATIONS = ((2, _layout_2), (3, _layout_3), (4, _layout_4), (5, _layout_5), (6, _layout_6), (7, _layout_7))
@@ -279,15 +288,166 @@ def snapshot_folder(project: Project) -> Path:
 
 
 def publish(con: duckdb.DuckDBPyConnection, project: Project) -> None:
-    """Copy the tables analysts read to Parquet beside the warehouse, each file replaced whole."""
+    """Copy the tables analysts read to Parquet beside the warehouse: each small table's file replaced
+    whole, and ``windows`` as a folder of parts to which a run adds its own rows (:func:`_publish_parts`)."""
     folder = snapshot_folder(project)
     folder.mkdir(parents=True, exist_ok=True)
     copies = publish_statements()
     for table in PUBLISHED:
+        if table in PARTED:
+            _publish_parts(con, folder, copies, table)
+            continue
         final = folder / f"{table}.parquet"
         temp = folder / f".{table}.parquet.{os.getpid()}.tmp"
         _execute(con, copies, f"publish.{table}", {"path": str(temp)})
         os.replace(temp, final)
+
+
+# Tables published as a folder of parts (``windows/``), each run adding a part of its own rows; the
+# others, small, are copied whole after every run.
+PARTED = ("windows",)
+# This many parts of one level are merged into one part of the next: a copy of n runs holds at most
+# (MERGE_PARTS - 1) parts per level, about log(n) / log(MERGE_PARTS) levels, and each row is written
+# again once per level.
+MERGE_PARTS = 8
+BASE_LEVEL = 99  # a part copying the whole table: never merged, replaced only by another whole copy
+
+
+@dataclass(frozen=True, order=True)
+class Part:
+    """One file of a parted copy: the rows of runs ``first`` to ``last``, made at ``level`` (0: one
+    run's part; n + 1: MERGE_PARTS parts of level n merged; BASE_LEVEL: the whole table)."""
+
+    first: int
+    last: int
+    level: int
+
+    @property
+    def name(self) -> str:
+        return f"part-{self.first:010d}-{self.last:010d}-{self.level:02d}.parquet"
+
+    @staticmethod
+    def parse(name: str) -> "Part | None":
+        match = re.fullmatch(r"part-(\d{10})-(\d{10})-(\d{2})\.parquet", name)
+        return Part(*(int(g) for g in match.groups())) if match else None
+
+
+def _publish_parts(con: duckdb.DuckDBPyConnection, folder: Path, copies: Named, table: str) -> None:
+    """Publish ``table`` as a folder of parts, ``folder/table``: a link to the folder of the latest
+    copy (``.table-N``), replaced in one rename, so a reader that lists the folder sees one copy
+    whole, the previous or the new one, and never half a file.
+
+    A new copy is the previous one's parts (hard links) plus a part of the rows of the runs since; a
+    run that took rows away (fewer rows of those runs than the copy holds: a rebuild, a removed check
+    or source), a new layout or new columns make it whole again. The copy before the latest is kept
+    for a reader that listed it just before the link moved; older ones are deleted."""
+    link = folder / table
+    current = _current_copy(link)
+    parts = sorted(p for p in (Part.parse(f.name) for f in current.iterdir()) if p) if current else []
+    about = _read_json(current / COPY_LAYOUT) if current else None
+    through = max((p.last for p in parts), default=0)
+    rows_now, rows_through, last_run, layout, columns = _execute(
+        con, copies, f"publish.{table}.published", {"through": through})
+    whole = (not parts or about is None or about.get("layout") != layout or about.get("columns") != columns
+             or about.get("rows") != rows_through)
+    if not whole and (last_run is None or last_run <= through):
+        return  # nothing new since the copy was made
+    number = int(current.name.rsplit("-", 1)[1]) + 1 if current else 1
+    new = folder / f".{table}-{number}"
+    if new.exists():
+        shutil.rmtree(new)  # a copy a failed publish left half made
+    new.mkdir()
+    if whole:
+        part = Part(0, int(last_run or 0), BASE_LEVEL)
+        _execute(con, copies, f"publish.{table}.whole", {"path": str(new / part.name)})
+        parts = [part]
+    else:
+        for part in parts:
+            _link_or_copy(current / part.name, new / part.name)
+        part = Part(through + 1, int(last_run), 0)
+        _execute(con, copies, f"publish.{table}.runs", {"path": str(new / part.name), "after": through,
+                                                       "through": part.last})
+        parts = _merged(con, copies, table, new, [*parts, part])
+    (new / COPY_LAYOUT).write_text(json.dumps({"layout": layout, "columns": columns, "rows": rows_now}),
+                                   encoding="utf-8")
+    pointer = folder / f".{table}.link.{os.getpid()}.tmp"
+    pointer.unlink(missing_ok=True)
+    os.symlink(new.name, pointer)
+    if link.exists() and not link.is_symlink():
+        _remove(link)  # a copy of an earlier release: one file, or a folder
+    os.replace(pointer, link)
+    (folder / f"{table}.parquet").unlink(missing_ok=True)  # the single file earlier releases wrote
+    _forget_old_copies(folder, table, keep={new.name, current.name if current else new.name})
+
+
+COPY_LAYOUT = ".layout.json"  # hidden, in each copy's folder: the warehouse layout, columns and rows it was made from
+
+
+def _merged(con: duckdb.DuckDBPyConnection, copies: Named, table: str, folder: Path, parts: list[Part]) -> list[Part]:
+    """``parts`` after merging each run of MERGE_PARTS parts of one level at the end into one part of
+    the next level, as often as that happens (a counter in base MERGE_PARTS)."""
+    while len(parts) >= MERGE_PARTS:
+        tail = parts[-MERGE_PARTS:]
+        level = tail[0].level
+        if level == BASE_LEVEL or any(p.level != level for p in tail):
+            break
+        merged = Part(tail[0].first, tail[-1].last, level + 1)
+        _execute(con, copies, f"publish.{table}.merge",
+                 {"path": str(folder / merged.name), "parts": [str(folder / p.name) for p in tail]})
+        for p in tail:
+            (folder / p.name).unlink()
+        parts = [*parts[:-MERGE_PARTS], merged]
+    return parts
+
+
+def _link_or_copy(source: Path, target: Path) -> None:
+    """A part kept from the previous copy: the same file (a hard link), or a copy of it where the
+    file system has no hard links."""
+    try:
+        os.link(source, target)
+    except OSError:
+        shutil.copy2(source, target)
+
+
+def _current_copy(link: Path) -> Path | None:
+    """The folder ``link`` points to, if it is one of our copies."""
+    if not link.is_symlink():
+        return None
+    target = link.parent / os.readlink(link)
+    if not target.is_dir() or not re.fullmatch(rf"\.{re.escape(link.name)}-\d+", target.name):
+        return None
+    return target
+
+
+def _forget_old_copies(folder: Path, table: str, keep: set[str]) -> None:
+    for old in folder.glob(f".{table}-*"):
+        if old.name not in keep and old.is_dir() and not old.is_symlink():
+            shutil.rmtree(old, ignore_errors=True)
+
+
+def _remove(path: Path) -> None:
+    if path.is_dir() and not path.is_symlink():
+        shutil.rmtree(path)
+    else:
+        path.unlink()
+
+
+def _read_json(path: Path) -> dict[str, object] | None:
+    try:
+        value = json.loads(path.read_text(encoding="utf-8"))
+    except (OSError, ValueError):
+        return None
+    return value if isinstance(value, dict) else None
+
+
+def published_path(folder: Path, table: str) -> Path:
+    """Where readers find ``table``'s copy: ``table.parquet``, or a parted table's folder of parts."""
+    return folder / table if table in PARTED else folder / f"{table}.parquet"
+
+
+def published_glob(folder: Path, table: str) -> str:
+    """What to read for ``table``'s copy: its file, or every part in its folder."""
+    return str(folder / table / "*.parquet") if table in PARTED else str(folder / f"{table}.parquet")
 
 
 def open_for_reading(project: Project) -> duckdb.DuckDBPyConnection:
@@ -300,13 +460,13 @@ def open_for_reading(project: Project) -> duckdb.DuckDBPyConnection:
         return connect(project, read_only=True)
     except RunLocked:
         folder = snapshot_folder(project)
-        missing = [t for t in PUBLISHED if not (folder / f"{t}.parquet").exists()]
+        missing = [t for t in PUBLISHED if not published_path(folder, t).exists()]
         if missing:
             raise RunLocked(f"{project.warehouse}: in use by {holder(project)}, and no published copy "
                             f"of it in {folder} yet") from None
         con = duckdb.connect()
         _execute(con, connection_statements(), "connection.time_zone")
-        views = publish_statements(tuple((table, str(folder / f"{table}.parquet")) for table in PUBLISHED))
+        views = publish_statements(tuple((table, published_glob(folder, table)) for table in PUBLISHED))
         for table in PUBLISHED:
             _execute(con, views, f"read.{table}")
         return con

@@ -139,7 +139,7 @@ def script(source: Source, stages: tuple[Stage, ...]) -> str:
         run.text("check."),
         *([run.text("end.table_version")] if source.format in ("delta", "iceberg") else []),
         _heading(RUN_ENDS, "its record, and the commit"),
-        run.text("end.repeats", "end.record", "end.files_read", "end.commit"),
+        run.text("end.forget_ids", "end.repeats", "end.record", "end.files_read", "end.commit"),
         _note("a run that fails rolls back, then writes its 'failed' record alone: begin.transaction, "
               "end.record, end.commit"),
         run.text("end.roll_back"),

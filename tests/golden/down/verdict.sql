@@ -17,19 +17,20 @@
 -- the verdicts before them: the statements between '@loop' and '@end' are one round, repeated until
 -- no breach flag changes. A round recomputes only the series still changing, all of them at once.
 
--- history: the series' earlier windows in the warehouse that did not breach (and, for a split value
--- seen late, its key's quiet windows before it), the last 10 of each series.
+-- history: the series' earlier windows that did not breach (and, for a split value seen late, its
+-- key's quiet windows before it), the last 10 of each series. Read from series_state, where the
+-- run that wrote them kept each series' last 10 (persist.sql), never from its whole history.
 CREATE OR REPLACE TEMP TABLE history AS
-WITH earlier AS (
-    SELECT w.key, w.split_value, w.window_number, w.key_window, w.value, w.sessions, w.bad, w.breach
-    FROM windows AS w
+WITH stored AS (
+    SELECT s.key, s.split_value, unnest(s.recent, recursive := true)
+    FROM series_state AS s
     SEMI JOIN (SELECT DISTINCT key, split_value FROM new_windows) AS n
-        ON w.key = n.key AND w.split_value IS NOT DISTINCT FROM n.split_value
-    WHERE w.check_name = 'golden'
+        ON s.key = n.key AND s.split_value IS NOT DISTINCT FROM n.split_value
+    WHERE s.check_name = 'golden'
 )
 SELECT key, split_value, window_number, value, sessions, bad
 FROM (
-    SELECT key, split_value, window_number, value, sessions, bad FROM earlier WHERE NOT breach AND value IS NOT NULL
+    SELECT key, split_value, window_number, value, sessions, bad FROM stored
 )
 QUALIFY row_number() OVER (PARTITION BY key, split_value ORDER BY window_number DESC) <= 10;
 

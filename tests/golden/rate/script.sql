@@ -108,6 +108,8 @@ DELETE FROM carry WHERE check_name = $check;
 
 DELETE FROM key_state WHERE check_name = $check;
 
+DELETE FROM series_state WHERE check_name = $check;
+
 DELETE FROM check_state WHERE check_name = $check;
 
 DELETE FROM files_read WHERE check_name = $check;
@@ -546,6 +548,17 @@ DROP TABLE incidents_next;
 -- ══ the run ends ═════════════════════════════════════════════════════════════════════════
 -- its record, and the commit
 
+-- @statement end.forget_ids
+-- Session ids of $source more than its dedup_horizon ($horizon) behind the data every check of the
+-- source ($source_checks) has read, now that this run's checks have moved their watermarks: no
+-- session read later can be told from a repeat of them (it would be late), so they go at once
+-- rather than at the next run's source stage. The id memory so holds about dedup_horizon of
+-- sessions after every run, however many days one run read.
+DELETE FROM session_ids
+WHERE source_name = $source
+  AND event_time < (SELECT min(watermark) FROM check_state WHERE list_contains($source_checks, check_name))
+                   - $horizon;
+
 -- @statement end.repeats
 -- Valid sessions read, and those that repeated sessions already counted: a run of mostly repeats
 -- (the lake copied or sent again) says so.
@@ -598,8 +611,30 @@ COPY (SELECT * FROM "alerts") TO $path (FORMAT parquet);
 -- @statement publish.alert_events
 COPY (SELECT * FROM "alert_events") TO $path (FORMAT parquet);
 
--- @statement publish.windows
+-- @statement publish.windows.published
+-- What the copy must hold now ($through: the last run whose rows it holds): every row, the rows of
+-- runs up to $through still here (fewer than the copy holds: a rebuild or a removed check took some
+-- away, and the copy is made whole again), the last run with rows, and the table's layout.
+SELECT
+    count(*) AS rows_now,
+    count(*) FILTER (WHERE NOT coalesce(run_id > $through, false)) AS rows_through,
+    max(run_id) AS last_run,
+    (SELECT max(version) FROM schema_version) AS layout,
+    (SELECT list(column_name || ' ' || data_type ORDER BY column_index)
+     FROM duckdb_columns() WHERE database_name = current_database() AND schema_name = 'main' AND table_name = 'windows') AS columns
+FROM "windows";
+
+-- @statement publish.windows.whole
+-- The whole table, as the copy's one part.
 COPY (SELECT * FROM "windows") TO $path (FORMAT parquet);
+
+-- @statement publish.windows.runs
+-- The rows of the runs after $after, up to $through: the part a run adds.
+COPY (SELECT * FROM "windows" WHERE run_id > $after AND run_id <= $through) TO $path (FORMAT parquet);
+
+-- @statement publish.windows.merge
+-- Parts of the same size made one ($parts), so a copy stays a few files however many runs it holds.
+COPY (SELECT * FROM read_parquet($parts)) TO $path (FORMAT parquet);
 
 -- @statement publish.runs
 COPY (SELECT * FROM "runs") TO $path (FORMAT parquet);

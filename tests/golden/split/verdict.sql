@@ -20,34 +20,40 @@
 -- the verdicts before them: the statements between '@loop' and '@end' are one round, repeated until
 -- no breach flag changes. A round recomputes only the series still changing, all of them at once.
 
--- history: the series' earlier windows in the warehouse that did not breach (and, for a split value
--- seen late, its key's quiet windows before it), the last 10 of each series.
+-- history: the series' earlier windows that did not breach (and, for a split value seen late, its
+-- key's quiet windows before it), the last 10 of each series. Read from series_state, where the
+-- run that wrote them kept each series' last 10 (persist.sql), never from its whole history.
 CREATE OR REPLACE TEMP TABLE history AS
-WITH earlier AS (
-    SELECT w.key, w.split_value, w.window_number, w.key_window, w.value, w.sessions, w.bad, w.breach
-    FROM windows AS w
+WITH stored AS (
+    SELECT s.key, s.split_value, unnest(s.recent, recursive := true)
+    FROM series_state AS s
     SEMI JOIN (SELECT DISTINCT key, split_value FROM new_windows) AS n
-        ON w.key = n.key AND w.split_value IS NOT DISTINCT FROM n.split_value
-    WHERE w.check_name = 'golden'
+        ON s.key = n.key AND s.split_value IS NOT DISTINCT FROM n.split_value
+    WHERE s.check_name = 'golden'
 ),
 first_seen AS (
-    SELECT key, split_value, min(key_window) AS first_window
-    FROM (SELECT key, split_value, key_window FROM earlier
-          UNION ALL SELECT key, split_value, key_window FROM new_windows)
-    GROUP BY key, split_value
+    -- a split value without a window before this run: its first window
+    SELECT n.key, n.split_value, min(n.key_window) AS first_window
+    FROM new_windows AS n
+    ANTI JOIN (SELECT key, split_value FROM series_state WHERE check_name = 'golden') AS s
+        ON s.key = n.key AND s.split_value IS NOT DISTINCT FROM n.split_value
+    GROUP BY n.key, n.split_value
 ),
 quiet AS (
-    -- a split value first seen in its key's n-th window had no bad session in the n-1 before
+    -- a split value first seen in its key's n-th window had no bad session in the n-1 before (the
+    -- key's last 10 stored ones with data enough to be history are in key_state)
     SELECT f.key, f.split_value, k.window_number, 0.0::DOUBLE AS value, k.sessions, 0::BIGINT AS bad
     FROM first_seen AS f
-    JOIN (SELECT key, key_window, window_number, sessions FROM key_windows WHERE check_name = 'golden'
-          UNION ALL SELECT key, key_window, window_number, sessions FROM new_key_windows) AS k
+    JOIN (SELECT key, unnest(recent, recursive := true) FROM key_state
+          WHERE check_name = 'golden' AND key IN (SELECT key FROM first_seen)
+          UNION ALL
+          SELECT key, key_window, window_number, sessions FROM new_key_windows
+          WHERE sessions >= 10) AS k   -- the quiet windows with data enough to be history
         ON k.key = f.key AND k.key_window < f.first_window
-        AND k.sessions >= 10   -- the quiet windows with data enough to be history
 )
 SELECT key, split_value, window_number, value, sessions, bad
 FROM (
-    SELECT key, split_value, window_number, value, sessions, bad FROM earlier WHERE NOT breach AND value IS NOT NULL
+    SELECT key, split_value, window_number, value, sessions, bad FROM stored
     UNION ALL
     SELECT key, split_value, window_number, value, sessions, bad FROM quiet
 )
