@@ -31,8 +31,8 @@ def project(tmp_path: Path) -> Path:
 TABLE = """\
 status              severity  check         key                                              split  worst  threshold  opened            windows  affected  viewers  excess  per hour  incident
 ------------------  --------  ------------  -----------------------------------------------  -----  -----  ---------  ----------------  -------  --------  -------  ------  --------  ----------------
-open                high      title_errors  site=kids, title_id="<script>alert(1)</script>"         80 %   10 %       2026-11-02 00:59  1        8         -        8       53        ce44c42a0ad10e5a
-closed (recovered)  high      title_errors  site=kids, title_id=t-1                                 70 %   10 %       2026-11-02 00:49  2        13        -        13      41        8834930618bfc11a
+open                high      title_errors  site=kids, title_id="<script>alert(1)</script>"         80 %   10 %       2026-11-02 00:59  1        8         -        8       53        e6d6e1916c5bf8f5
+closed (recovered)  high      title_errors  site=kids, title_id=t-1                                 70 %   10 %       2026-11-02 00:49  2        13        -        13      41        b4e378dec1372e4c
 """
 
 

@@ -48,34 +48,34 @@ def query(project: Path, sql: str) -> list[tuple]:
 ALERTS = """\
 status              severity  check        key                    split  worst   threshold  opened            windows  affected  viewers  excess  per hour  incident
 ------------------  --------  -----------  ---------------------  -----  ------  ---------  ----------------  -------  --------  -------  ------  --------  ----------------
-open                high      cdn_country  cdn=birch, country=FR         6.73 %  5.91 %     2026-11-03 09:00  1        7         -        5       7         3a44a3b20dcbabd9
+open                high      cdn_country  cdn=birch, country=FR         6.73 %  5.91 %     2026-11-03 09:00  1        7         -        5       7         61bd9d3b81aba5d2
   └ cdn=birch, country=FR: 7 sessions affected, 96 % of the excess in site=sport
-open                high      cdn_country  cdn=cedar, country=FR         19.1 %  5.2 %      2026-11-03 08:00  2        34        -        31      17        3a44a3b20dcbabd9
+open                high      cdn_country  cdn=cedar, country=FR         19.1 %  5.2 %      2026-11-03 08:00  2        34        -        31      17        61bd9d3b81aba5d2
   └ cdn=cedar, country=FR: 34 sessions affected, all of the excess in player=<img src=x onerror=alert(2)>
-open                medium    site         site=news                     8.21 %  5.21 %     2026-11-03 08:00  2        21        -        16      14        54f1a9fe05d4bea6
+open                medium    site         site=news                     8.21 %  5.21 %     2026-11-03 08:00  2        21        -        16      14        40ba49575f889cd5
   └ site=news: 21 sessions affected, 76 % of the excess in country=FR, player=<img src=x onerror=alert(2)>
-closed (recovered)  medium    site         site=sport                    8.39 %  6.2 %      2026-11-03 08:30  1        13        -        9       26        3a44a3b20dcbabd9
+closed (recovered)  medium    site         site=sport                    8.39 %  6.2 %      2026-11-03 08:30  1        13        -        9       26        61bd9d3b81aba5d2
   └ site=sport: 13 sessions affected, 73 % of the excess in cdn=cedar, country=FR, player=<img src=x onerror=alert(2)>
-closed (recovered)  high      cdn_country  cdn=birch, country=FR         8.79 %  5.69 %     2026-11-02 23:00  1        8         -        6       8         63d519f975e17d6a
+closed (recovered)  high      cdn_country  cdn=birch, country=FR         8.79 %  5.69 %     2026-11-02 23:00  1        8         -        6       8         cb22610cbf8024ec
   └ cdn=birch, country=FR: 8 sessions affected, 70 % of the excess in player=<img src=x onerror=alert(2)>
-closed (recovered)  high      cdn_country  cdn=birch, country=DE         66 %    6.34 %     2026-11-02 17:00  3        183       -        177     26        4c07b99f730be766
+closed (recovered)  high      cdn_country  cdn=birch, country=DE         66 %    6.34 %     2026-11-02 17:00  3        183       -        177     26        eb16d79ec1390c60
   └ cdn=birch, country=DE: 183 sessions affected, the excess 52 % in site=sport; 48 % in site=news
-closed (recovered)  medium    site         site=news                     15.4 %  5.11 %     2026-11-02 16:30  6        107       -        90      15        4c07b99f730be766
+closed (recovered)  medium    site         site=news                     15.4 %  5.11 %     2026-11-02 16:30  6        107       -        90      15        eb16d79ec1390c60
   └ site=news: 107 sessions affected, 95 % of the excess in cdn=birch, country=DE
-closed (recovered)  medium    site         site=sport                    14.7 %  5.68 %     2026-11-02 16:30  6        104       -        86      15        4c07b99f730be766
+closed (recovered)  medium    site         site=sport                    14.7 %  5.68 %     2026-11-02 16:30  6        104       -        86      15        eb16d79ec1390c60
   └ site=sport: 104 sessions affected, all of the excess in cdn=birch, country=DE
 """
 
 INCIDENTS = """\
 incident          status  severity  opened            closed            cause                              worst   threshold  alerts  affected  viewers
 ----------------  ------  --------  ----------------  ----------------  ---------------------------------  ------  ---------  ------  --------  -------
-3a44a3b20dcbabd9  open    high      2026-11-03 08:00  -                 cdn_country cdn=cedar, country=FR  19.1 %  5.2 %      3       34        -
-  └ cdn=cedar, country=FR: 34 sessions affected, all of the excess in player=<img src=x onerror=alert(2)>
-54f1a9fe05d4bea6  open    medium    2026-11-03 08:00  -                 site site=news                     8.21 %  5.21 %     1       21        -
+40ba49575f889cd5  open    medium    2026-11-03 08:00  -                 site site=news                     8.21 %  5.21 %     1       21        -
   └ site=news: 21 sessions affected, 76 % of the excess in country=FR, player=<img src=x onerror=alert(2)>
-63d519f975e17d6a  closed  high      2026-11-02 23:00  2026-11-03 01:00  cdn_country cdn=birch, country=FR  8.79 %  5.69 %     1       8         -
+61bd9d3b81aba5d2  open    high      2026-11-03 08:00  -                 cdn_country cdn=cedar, country=FR  19.1 %  5.2 %      3       34        -
+  └ cdn=cedar, country=FR: 34 sessions affected, all of the excess in player=<img src=x onerror=alert(2)>
+cb22610cbf8024ec  closed  high      2026-11-02 23:00  2026-11-03 01:00  cdn_country cdn=birch, country=FR  8.79 %  5.69 %     1       8         -
   └ cdn=birch, country=FR: 8 sessions affected, 70 % of the excess in player=<img src=x onerror=alert(2)>
-4c07b99f730be766  closed  high      2026-11-02 16:30  2026-11-03 01:00  cdn_country cdn=birch, country=DE  66 %    6.34 %     3       183       -
+eb16d79ec1390c60  closed  high      2026-11-02 16:30  2026-11-03 01:00  cdn_country cdn=birch, country=DE  66 %    6.34 %     3       183       -
   └ cdn=birch, country=DE: 183 sessions affected, the excess 52 % in site=sport; 48 % in site=news
 """
 
@@ -101,7 +101,7 @@ def test_alerts_json_carries_the_incident_and_every_cause(project: Path) -> None
     birch = data["cdn=birch, country=FR2026-11-02 23:00:00"]
     stored = query(project, f"SELECT rank, key, bad, expected, excess_share, score, significant FROM alert_causes "
                             f"WHERE alert_id = '{birch['alert_id']}' ORDER BY rank")
-    assert birch["incident_id"] == "63d519f975e17d6a"
+    assert birch["incident_id"] == "cb22610cbf8024ec"
     # every row, the significant one and those below it
     assert [tuple(c.values()) for c in birch["causes"]] == [(r[0], dict(r[1]), *r[2:]) for r in stored]
     assert [c["significant"] for c in birch["causes"]] == [True, False, False, False, False]
@@ -131,29 +131,29 @@ def test_incidents_table(project: Path) -> None:
     assert result.output == INCIDENTS
     only_open = invoke("incidents", "--status", "open", "-p", str(project)).output.splitlines()
     assert [line.split()[0] for line in only_open[2:] if not line.startswith(" ")] == [
-        "3a44a3b20dcbabd9", "54f1a9fe05d4bea6"]
+        "40ba49575f889cd5", "61bd9d3b81aba5d2"]
     only_closed = invoke("incidents", "--status", "closed", "-p", str(project)).output.splitlines()
     assert [line.split()[0] for line in only_closed[2:] if not line.startswith(" ")] == [
-        "63d519f975e17d6a", "4c07b99f730be766"]
+        "cb22610cbf8024ec", "eb16d79ec1390c60"]
 
 
 def test_incidents_json(project: Path) -> None:
     data = json.loads(invoke("incidents", "--json", "-p", str(project)).output)
-    assert [i["incident_id"] for i in data] == ["3a44a3b20dcbabd9", "54f1a9fe05d4bea6", "63d519f975e17d6a",
-                                                "4c07b99f730be766"]
+    assert [i["incident_id"] for i in data] == ["40ba49575f889cd5", "61bd9d3b81aba5d2", "cb22610cbf8024ec",
+                                                "eb16d79ec1390c60"]
     ids = dict(query(project, "SELECT key_text || ' ' || strftime(opened_at, '%H:%M'), alert_id FROM alerts"))
     (first_run, last_run, excess), = query(project, "SELECT first_run_id, last_run_id, excess_sessions FROM incidents "
-                                                    "WHERE incident_id = '4c07b99f730be766'")
+                                                    "WHERE incident_id = 'eb16d79ec1390c60'")
     causes = query(project, f"SELECT rank, key, bad, expected, excess_share, score FROM alert_causes "
                             f"WHERE alert_id = '{ids['cdn=birch, country=DE 17:00']}' AND significant ORDER BY rank")
     assert data[3] == {
-        "incident_id": "4c07b99f730be766", "status": "closed", "severity": "high",
+        "incident_id": "eb16d79ec1390c60", "status": "closed", "severity": "high",
         "opened_at": "2026-11-02 16:30:00", "closed_at": "2026-11-03 01:00:00",
         "cause": {"check": "cdn_country", "key": {"cdn": "birch", "country": "DE"},
                   "key_text": "cdn=birch, country=DE", "split_value": None,
                   "alert_id": ids["cdn=birch, country=DE 17:00"], "alarm": None},  # a check's, not a source alarm
         "alerts": 3,  # in order of opening; the two site alerts opened together, by id
-        "alert_ids": [ids["site=sport 16:30"], ids["site=news 16:30"], ids["cdn=birch, country=DE 17:00"]],
+        "alert_ids": [ids["site=news 16:30"], ids["site=sport 16:30"], ids["cdn=birch, country=DE 17:00"]],
         "affected_sessions": 183, "affected_viewers": None, "excess_sessions": excess,
         "causes": [{"rank": r, "key": dict(k), "bad": b, "expected": e, "excess_share": x, "score": sc,
                     "significant": True} for r, k, b, e, x, sc in causes],
@@ -162,7 +162,7 @@ def test_incidents_json(project: Path) -> None:
     # its id is made from its earliest alert, the first of alert_ids
     assert data[3]["incident_id"] == hashlib.md5(f"incident {data[3]['alert_ids'][0]}".encode()).hexdigest()[:16]
     assert [c["key"] for c in data[3]["causes"]] == [{"site": "sport"}, {"site": "news"}]
-    assert data[0]["causes"][0]["key"] == {"player": HOSTILE_PLAYER}
+    assert data[1]["causes"][0]["key"] == {"player": HOSTILE_PLAYER}
     assert json.loads(invoke("incidents", "--json", "--status", "closed", "-p", str(project)).output) == data[2:]
 
 
@@ -187,9 +187,9 @@ def test_incidents_read_the_published_copies_while_a_run_holds_the_warehouse(pro
     with warehouse_held(p.warehouse):
         result = invoke("incidents", "--status", "open", "-p", str(project))
         assert result.exit_code == 0, result.output
-        assert "3a44a3b20dcbabd9" in result.output and "4c07b99f730be766" not in result.output
+        assert "61bd9d3b81aba5d2" in result.output and "eb16d79ec1390c60" not in result.output
         assert [i["incident_id"] for i in list_incidents(p)] == [
-            "3a44a3b20dcbabd9", "54f1a9fe05d4bea6", "63d519f975e17d6a", "4c07b99f730be766"]
+            "40ba49575f889cd5", "61bd9d3b81aba5d2", "cb22610cbf8024ec", "eb16d79ec1390c60"]
 
 
 def test_incident_table_shows_control_characters_as_escapes() -> None:
