@@ -210,14 +210,14 @@ WHERE is_new AND window_number >= since;
 -- window from the series' last window before them (where the last round left it), else from where
 -- the last run left it.
 CREATE OR REPLACE TEMP TABLE cusum_chain AS
-WITH RECURSIVE designed AS (
+WITH RECURSIVE designed AS MATERIALIZED (
     SELECT j.key, j.split_value, j.window_number, j.value, j.sessions, j.bad,
            greatest(base.baseline, 0.001) AS p0,
            base.history_windows >= 3 AS enough
     FROM judged AS j
     JOIN baselines AS base ON j.key = base.key AND j.split_value IS NOT DISTINCT FROM base.split_value AND j.window_number = base.window_number
 ),
-steps AS (
+steps AS MATERIALIZED (
     SELECT d.key, d.split_value, d.window_number, d.value, d.sessions, d.bad,
            row_number() OVER (PARTITION BY d.key, d.split_value ORDER BY d.window_number) AS step,
            CASE WHEN d.enough AND g.p0 IS NOT NULL THEN
