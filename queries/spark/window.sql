@@ -8,7 +8,17 @@
 {{ move.to_spark("carry", "check_name = " ~ check_lit, check.by) }}
 -- @translate series_last
 {% if window.kind == "count" %}
--- @translate series_ids
+-- @spark series_ids
+-- On Spark a temp table is a view, computed afresh at every read, and row_number wants an order:
+-- the series are numbered in key order, so every read gives each the same number.
+CREATE OR REPLACE TEMP TABLE series_ids AS
+SELECT k.key, (row_number() OVER (ORDER BY k.key))::BIGINT AS series, s.last_window_number, s.last_end
+FROM (
+    SELECT key FROM arrivals
+    UNION
+    SELECT {{ m.from_map("key", check.by) }} FROM carry WHERE check_name = {{ check_lit }}
+) AS k
+LEFT JOIN series_last AS s ON s.key = k.key;
 -- @translate pooled
 -- @translate tie_positions
 -- @translate cuts

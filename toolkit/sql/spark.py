@@ -100,7 +100,7 @@ class SparkTarget(Spark):
 # DuckDB functions sqlglot passes through by name, and their Spark names
 # hash: a 64-bit hash in both (Spark's own HASH has 32 bits)
 _RENAMED = {"epoch_us": "UNIX_MICROS", "url_decode": "URL_DECODE", "hash": "XXHASH64"}
-_SPARK_OWN = {"ARRAYS_OVERLAP", "MONOTONICALLY_INCREASING_ID"}  # Spark functions the rewrites below write by name
+_SPARK_OWN = {"ARRAYS_OVERLAP"}  # Spark functions the rewrites below write by name
 
 
 def translate(sql: str) -> str:
@@ -155,12 +155,6 @@ def _to_spark_node(node: exp.Expression) -> exp.Expression:
                                "on epoch_us()")
     if isinstance(node, exp.Anonymous) and node.name.lower() in _RENAMED:
         return exp.Anonymous(this=_RENAMED[node.name.lower()], expressions=node.expressions)
-    if isinstance(node, exp.Window) and isinstance(node.this, exp.RowNumber) and not node.args.get("order") \
-            and not node.args.get("partition_by"):
-        # a distinct number for each row, in any order (DuckDB's row_number() OVER ()): Spark's own
-        # row_number wants an order; a series number only has to be distinct
-        return exp.paren(exp.Add(this=exp.Anonymous(this="MONOTONICALLY_INCREASING_ID", expressions=[]),
-                                 expression=exp.Literal.number(1)))
     if isinstance(node, exp.ToMap):
         return _struct_key(node)
     if isinstance(node, exp.Map) and _empty_map(node):
