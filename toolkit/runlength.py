@@ -119,8 +119,13 @@ def _sweep(p: float, g: Fraction, visit: Callable[[Callable[[int], float], int, 
     """
     a, b = g.numerator, g.denominator
     q = 1.0 - p
-    # rows[d] = (α, β₀ … β_{a−1}): L at distance d below the top is α + β·x for the current unknowns x
-    rows = np.zeros((max(4 * b, 2 * a), a + 1))
+    # rows[i] = (α, β₀ … β_{a−1}): L at distance base + i below the top is α + β·x for the current
+    # unknowns x. A step reads the rows b and a distances back, a visit the last `blocks` blocks and
+    # b before them, a restatement the last b + a: only the last `keep` distances are kept, so memory
+    # stays bounded however long the pass (the rows are slid to the front when the buffer fills).
+    keep = b + (blocks + 2) * a
+    rows = np.zeros((max(2 * keep, 4 * b, 2 * a), a + 1))
+    base = 0
     rows[:a, 1:] = np.eye(a)
     one = np.zeros(a + 1)
     one[0] = 1.0
@@ -128,29 +133,34 @@ def _sweep(p: float, g: Fraction, visit: Callable[[Callable[[int], float], int, 
     count = 0
     while top is None or d <= top:  # a block of a distances at once: each reads only d − a and d − b
         end = d + a if top is None else min(d + a, top + 1)
-        if end > len(rows):
-            rows = np.vstack([rows, np.zeros((len(rows), a + 1))])
+        if end - base > len(rows):
+            slide = d - keep - base
+            rows[:d - base - slide] = rows[slide:d - base]
+            base += slide
+        lo, hi = d - base, end - base
         if d >= b:
-            above = rows[d - b:end - b]
+            above = rows[lo - b:hi - b]
         else:
             back = np.arange(d, end) - b
             above = np.where((back >= 0)[:, None], rows[np.maximum(back, 0)], 0.0)
-        rows[d:end] = (rows[d - a:end - a] - one - p * above) / q
+        rows[lo:hi] = (rows[lo - a:hi - a] - one - p * above) / q
         d = end
         count += 1
         if count % blocks and (top is None or d <= top):
             continue
-        if visit(lambda h: _solve_top(rows, h, a, b, p, q), first, d - 1):
+        # every distance a visit asks for lies in the kept rows, at or above `base`
+        if visit(lambda h: _solve_top(rows, h - base, a, b, p, q), first, d - 1):
             return
         first = d
-        if np.abs(rows[d - a:d, 1:]).max() > 1e4:
+        if np.abs(rows[d - a - base:d - base, 1:]).max() > 1e4:
             # x = B⁻¹(y − A) for the newest values y = A + B·x: every row read later in terms of y
-            newest = rows[d - a:d]
+            newest = rows[d - a - base:d - base]
             inverse = np.linalg.inv(newest[:, 1:])
-            kept = rows[max(0, d - b - a):d]
+            start = max(0, d - b - a - base)
+            kept = rows[start:d - base]
             kept[:, 1:] = kept[:, 1:] @ inverse
             kept[:, 0] = kept[:, 0] - kept[:, 1:] @ newest[:, 0]
-            rows[max(0, d - b - a):d] = kept
+            rows[start:d - base] = kept
 
 
 def bernoulli_arl(p: float, g: Fraction, top: int) -> np.ndarray:
