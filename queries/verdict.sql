@@ -202,7 +202,9 @@ FROM (
 {% else %}
 -- A window's history is the earlier windows of its series that did not breach, so verdicts depend on
 -- the verdicts before them: the statements between '@loop' and '@end' are one round, repeated until
--- no breach flag changes. A round recomputes only the series still changing, all of them at once.
+-- no window changes between history and not (a breach and a window without a verdict are both kept
+-- out of it, so a flag moving between the two changes no baseline). A round recomputes only the
+-- series still changing, all of them at once.
 
 -- history: the series' earlier windows that did not breach (and, for a split value seen late, its
 -- key's quiet windows before it), the last {{ b.history }} of each series. Read from series_state, where the
@@ -487,7 +489,9 @@ FROM (
 {% endif %}
 );
 
--- What the round changed: only the windows whose breach flag differs from the last round's.
+-- What the round changed: only the windows that moved into or out of the history (healthy, breach
+-- false, against a breach or no verdict) since the last round. Every window recomputed takes its new
+-- flag, so a window's stored verdict is always one a round computed, not a guess.
 UPDATE judged SET changed = false WHERE changed;
 
 UPDATE judged
@@ -498,7 +502,7 @@ SET
 {% if b.method == "cusum" %}
     statistic = r.statistic,
 {% endif %}
-    changed = judged.breach IS DISTINCT FROM r.breach,
+    changed = coalesce(NOT judged.breach, false) IS DISTINCT FROM coalesce(NOT r.breach, false),
     breach = r.breach
 FROM round_verdicts AS r
 WHERE judged.key = r.key AND judged.split_value IS NOT DISTINCT FROM r.split_value AND judged.window_number = r.window_number;
@@ -508,7 +512,8 @@ WHERE judged.key = r.key AND judged.split_value IS NOT DISTINCT FROM r.split_val
 -- the first that changed whose {{ judged_on }} is {{ "at least" if check.direction == "up" else "at most" }} that of a breach this round found is taken
 -- as a breach, so a run of breaches settles in a round or two rather than a few windows a round.
 -- Every window up to the first that changed keeps its verdict, so each round still settles at least
--- one more window, and the loop ends only when a round's verdicts are those it started from.
+-- one more window; a guessed window is judged again in the next round, and the loop ends only when a
+-- round moves no window into or out of the history.
 UPDATE judged
 SET breach = true
 FROM (
@@ -522,7 +527,7 @@ WHERE {{ m.same_series("judged", "g") }} AND judged.window_number > g.frontier
   AND judged.{{ judged_on }} {{ ">=" if check.direction == "up" else "<=" }} g.edge AND judged.breach IS DISTINCT FROM true;
 
 -- @statement still_changing
--- The end of a round: how many breach flags it changed. The loop stops at 0.
+-- The end of a round: how many windows it moved into or out of the history. The loop stops at 0.
 SELECT count(*) FILTER (WHERE changed) AS still_changing FROM judged;
 -- @end
 {% endif %}

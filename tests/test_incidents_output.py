@@ -48,34 +48,34 @@ def query(project: Path, sql: str) -> list[tuple]:
 ALERTS = """\
 status              severity  check        key                    split  worst   threshold  opened            windows  affected  viewers  excess  per hour  incident
 ------------------  --------  -----------  ---------------------  -----  ------  ---------  ----------------  -------  --------  -------  ------  --------  ----------------
-open                high      cdn_country  cdn=birch, country=FR         6.73 %  5.91 %     2026-11-03 09:00  1        7         -        5       7         61bd9d3b81aba5d2
+open                high      cdn_country  cdn=birch, country=FR         6.73 %  5.91 %     2026-11-03 09:00  1        7         -        5       7         5ba65235a6aec75c
   └ cdn=birch, country=FR: 7 sessions affected, 96 % of the excess in site=sport
-open                high      cdn_country  cdn=cedar, country=FR         19.1 %  5.2 %      2026-11-03 08:00  2        34        -        31      17        61bd9d3b81aba5d2
+open                high      cdn_country  cdn=cedar, country=FR         19.1 %  5.2 %      2026-11-03 08:00  2        34        -        31      17        5ba65235a6aec75c
   └ cdn=cedar, country=FR: 34 sessions affected, all of the excess in player=<img src=x onerror=alert(2)>
-open                medium    site         site=news                     8.21 %  5.21 %     2026-11-03 08:00  2        21        -        16      14        40ba49575f889cd5
+open                medium    site         site=news                     8.21 %  5.21 %     2026-11-03 08:00  2        21        -        16      14        fdb4fe30b5f82899
   └ site=news: 21 sessions affected, 76 % of the excess in country=FR, player=<img src=x onerror=alert(2)>
-closed (recovered)  medium    site         site=sport                    8.39 %  6.2 %      2026-11-03 08:30  1        13        -        9       26        61bd9d3b81aba5d2
+closed (recovered)  medium    site         site=sport                    8.39 %  6.2 %      2026-11-03 08:30  1        13        -        9       26        5ba65235a6aec75c
   └ site=sport: 13 sessions affected, 73 % of the excess in cdn=cedar, country=FR, player=<img src=x onerror=alert(2)>
-closed (recovered)  high      cdn_country  cdn=birch, country=FR         8.79 %  5.69 %     2026-11-02 23:00  1        8         -        6       8         cb22610cbf8024ec
+closed (recovered)  high      cdn_country  cdn=birch, country=FR         8.79 %  5.69 %     2026-11-02 23:00  1        8         -        6       8         d9f1e7ec9e39f425
   └ cdn=birch, country=FR: 8 sessions affected, 70 % of the excess in player=<img src=x onerror=alert(2)>
-closed (recovered)  high      cdn_country  cdn=birch, country=DE         66 %    6.34 %     2026-11-02 17:00  3        183       -        177     26        eb16d79ec1390c60
+closed (recovered)  high      cdn_country  cdn=birch, country=DE         66 %    6.34 %     2026-11-02 17:00  3        183       -        177     26        c3a1e7d355a53142
   └ cdn=birch, country=DE: 183 sessions affected, the excess 52 % in site=sport; 48 % in site=news
-closed (recovered)  medium    site         site=news                     15.4 %  5.11 %     2026-11-02 16:30  6        107       -        90      15        eb16d79ec1390c60
+closed (recovered)  medium    site         site=news                     15.4 %  5.11 %     2026-11-02 16:30  6        107       -        90      15        c3a1e7d355a53142
   └ site=news: 107 sessions affected, 95 % of the excess in cdn=birch, country=DE
-closed (recovered)  medium    site         site=sport                    14.7 %  5.68 %     2026-11-02 16:30  6        104       -        86      15        eb16d79ec1390c60
+closed (recovered)  medium    site         site=sport                    14.7 %  5.68 %     2026-11-02 16:30  6        104       -        86      15        c3a1e7d355a53142
   └ site=sport: 104 sessions affected, all of the excess in cdn=birch, country=DE
 """
 
 INCIDENTS = """\
 incident          status  severity  opened            closed            cause                              worst   threshold  alerts  affected  viewers
 ----------------  ------  --------  ----------------  ----------------  ---------------------------------  ------  ---------  ------  --------  -------
-40ba49575f889cd5  open    medium    2026-11-03 08:00  -                 site site=news                     8.21 %  5.21 %     1       21        -
-  └ site=news: 21 sessions affected, 76 % of the excess in country=FR, player=<img src=x onerror=alert(2)>
-61bd9d3b81aba5d2  open    high      2026-11-03 08:00  -                 cdn_country cdn=cedar, country=FR  19.1 %  5.2 %      3       34        -
+5ba65235a6aec75c  open    high      2026-11-03 08:00  -                 cdn_country cdn=cedar, country=FR  19.1 %  5.2 %      3       34        -
   └ cdn=cedar, country=FR: 34 sessions affected, all of the excess in player=<img src=x onerror=alert(2)>
-cb22610cbf8024ec  closed  high      2026-11-02 23:00  2026-11-03 01:00  cdn_country cdn=birch, country=FR  8.79 %  5.69 %     1       8         -
+fdb4fe30b5f82899  open    medium    2026-11-03 08:00  -                 site site=news                     8.21 %  5.21 %     1       21        -
+  └ site=news: 21 sessions affected, 76 % of the excess in country=FR, player=<img src=x onerror=alert(2)>
+d9f1e7ec9e39f425  closed  high      2026-11-02 23:00  2026-11-03 01:00  cdn_country cdn=birch, country=FR  8.79 %  5.69 %     1       8         -
   └ cdn=birch, country=FR: 8 sessions affected, 70 % of the excess in player=<img src=x onerror=alert(2)>
-eb16d79ec1390c60  closed  high      2026-11-02 16:30  2026-11-03 01:00  cdn_country cdn=birch, country=DE  66 %    6.34 %     3       183       -
+c3a1e7d355a53142  closed  high      2026-11-02 16:30  2026-11-03 01:00  cdn_country cdn=birch, country=DE  66 %    6.34 %     3       183       -
   └ cdn=birch, country=DE: 183 sessions affected, the excess 52 % in site=sport; 48 % in site=news
 """
 
@@ -101,7 +101,7 @@ def test_alerts_json_carries_the_incident_and_every_cause(project: Path) -> None
     birch = data["cdn=birch, country=FR2026-11-02 23:00:00"]
     stored = query(project, f"SELECT rank, key, bad, expected, excess_share, score, significant FROM alert_causes "
                             f"WHERE alert_id = '{birch['alert_id']}' ORDER BY rank")
-    assert birch["incident_id"] == "cb22610cbf8024ec"
+    assert birch["incident_id"] == "d9f1e7ec9e39f425"
     # every row, the significant one and those below it
     assert [tuple(c.values()) for c in birch["causes"]] == [(r[0], dict(r[1]), *r[2:]) for r in stored]
     assert [c["significant"] for c in birch["causes"]] == [True, False, False, False, False]
@@ -131,23 +131,23 @@ def test_incidents_table(project: Path) -> None:
     assert result.output == INCIDENTS
     only_open = invoke("incidents", "--status", "open", "-p", str(project)).output.splitlines()
     assert [line.split()[0] for line in only_open[2:] if not line.startswith(" ")] == [
-        "40ba49575f889cd5", "61bd9d3b81aba5d2"]
+        "5ba65235a6aec75c", "fdb4fe30b5f82899"]
     only_closed = invoke("incidents", "--status", "closed", "-p", str(project)).output.splitlines()
     assert [line.split()[0] for line in only_closed[2:] if not line.startswith(" ")] == [
-        "cb22610cbf8024ec", "eb16d79ec1390c60"]
+        "d9f1e7ec9e39f425", "c3a1e7d355a53142"]
 
 
 def test_incidents_json(project: Path) -> None:
     data = json.loads(invoke("incidents", "--json", "-p", str(project)).output)
-    assert [i["incident_id"] for i in data] == ["40ba49575f889cd5", "61bd9d3b81aba5d2", "cb22610cbf8024ec",
-                                                "eb16d79ec1390c60"]
+    assert [i["incident_id"] for i in data] == ["5ba65235a6aec75c", "fdb4fe30b5f82899", "d9f1e7ec9e39f425",
+                                                "c3a1e7d355a53142"]
     ids = dict(query(project, "SELECT key_text || ' ' || strftime(opened_at, '%H:%M'), alert_id FROM alerts"))
     (first_run, last_run, excess), = query(project, "SELECT first_run_id, last_run_id, excess_sessions FROM incidents "
-                                                    "WHERE incident_id = 'eb16d79ec1390c60'")
+                                                    "WHERE incident_id = 'c3a1e7d355a53142'")
     causes = query(project, f"SELECT rank, key, bad, expected, excess_share, score FROM alert_causes "
                             f"WHERE alert_id = '{ids['cdn=birch, country=DE 17:00']}' AND significant ORDER BY rank")
     assert data[3] == {
-        "incident_id": "eb16d79ec1390c60", "status": "closed", "severity": "high",
+        "incident_id": "c3a1e7d355a53142", "status": "closed", "severity": "high",
         "opened_at": "2026-11-02 16:30:00", "closed_at": "2026-11-03 01:00:00",
         "cause": {"check": "cdn_country", "key": {"cdn": "birch", "country": "DE"},
                   "key_text": "cdn=birch, country=DE", "split_value": None,
@@ -162,7 +162,7 @@ def test_incidents_json(project: Path) -> None:
     # its id is made from its earliest alert, the first of alert_ids
     assert data[3]["incident_id"] == hashlib.md5(f"incident {data[3]['alert_ids'][0]}".encode()).hexdigest()[:16]
     assert [c["key"] for c in data[3]["causes"]] == [{"site": "sport"}, {"site": "news"}]
-    assert data[1]["causes"][0]["key"] == {"player": HOSTILE_PLAYER}
+    assert data[0]["causes"][0]["key"] == {"player": HOSTILE_PLAYER}
     assert json.loads(invoke("incidents", "--json", "--status", "closed", "-p", str(project)).output) == data[2:]
 
 
@@ -187,9 +187,9 @@ def test_incidents_read_the_published_copies_while_a_run_holds_the_warehouse(pro
     with warehouse_held(p.warehouse):
         result = invoke("incidents", "--status", "open", "-p", str(project))
         assert result.exit_code == 0, result.output
-        assert "61bd9d3b81aba5d2" in result.output and "eb16d79ec1390c60" not in result.output
+        assert "5ba65235a6aec75c" in result.output and "c3a1e7d355a53142" not in result.output
         assert [i["incident_id"] for i in list_incidents(p)] == [
-            "40ba49575f889cd5", "61bd9d3b81aba5d2", "cb22610cbf8024ec", "eb16d79ec1390c60"]
+            "5ba65235a6aec75c", "fdb4fe30b5f82899", "d9f1e7ec9e39f425", "c3a1e7d355a53142"]
 
 
 def test_incident_table_shows_control_characters_as_escapes() -> None:

@@ -266,10 +266,10 @@ def test_the_page_opens_with_the_incidents(with_incidents: Path, tmp_path: Path)
     assert dom.charts == 4 + 8  # each incident's cause, then each alert
     head = html[html.index('id="incidents"'):html.index('id="open"')]
     assert "Incidents (4), newest first" in head
-    order = [head.index(f'id="incident-{i}"') for i in ("40ba49575f889cd5", "61bd9d3b81aba5d2", "cb22610cbf8024ec",
-                                                        "eb16d79ec1390c60")]
+    order = [head.index(f'id="incident-{i}"') for i in ("5ba65235a6aec75c", "fdb4fe30b5f82899", "d9f1e7ec9e39f425",
+                                                        "c3a1e7d355a53142")]
     assert order == sorted(order)
-    birch = head[head.index('id="incident-eb16d79ec1390c60"'):]
+    birch = head[head.index('id="incident-c3a1e7d355a53142"'):]
     assert "cause: cdn_country cdn=birch, country=DE" in birch
     # only the cause alert's significant causes, never the rows below them
     assert "<li>site=sport: 95 failing sessions (2.1 expected), 52 % of the excess</li>" in birch
@@ -285,7 +285,7 @@ def test_the_page_opens_with_the_incidents(with_incidents: Path, tmp_path: Path)
     assert HOSTILE_PLAYER not in html and "script" not in dom.tags and "img" not in dom.tags
     # each alert's card names its incident and where its excess lies
     card = html[html.index(f'id="alert-{ids["site=news 16:30"]}"'):]
-    assert "<dt>incident</dt><dd>eb16d79ec1390c60</dd>" in card
+    assert "<dt>incident</dt><dd>c3a1e7d355a53142</dd>" in card
     assert ("<dt>excess lies in</dt><dd>site=news: 107 sessions affected, 95 % of the excess in "
             "cdn=birch, country=DE</dd>") in card
 
@@ -303,8 +303,8 @@ def test_the_incidents_follow_the_alerts_chosen(with_incidents: Path, tmp_path: 
     result = invoke("report", "--out", str(out), "--since", "2026-11-03 05:00:00", "-p", str(with_incidents))
     assert "4 alerts (3 open), 2 incidents" in result.output
     html = out.read_text()
-    assert 'id="incident-61bd9d3b81aba5d2"' in html and 'id="incident-40ba49575f889cd5"' in html
-    assert "eb16d79ec1390c60" not in html
+    assert 'id="incident-5ba65235a6aec75c"' in html and 'id="incident-fdb4fe30b5f82899"' in html
+    assert "c3a1e7d355a53142" not in html
     assert parse(html).charts == 2 + 4
 
 

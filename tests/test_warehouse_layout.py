@@ -7,6 +7,7 @@ import shutil
 from pathlib import Path
 
 import duckdb
+import pytest
 from click.testing import CliRunner
 from conftest import FIXTURE_LAKE, warehouse_contents, write_project
 from known_lake import known_project
@@ -137,17 +138,18 @@ def test_a_file_of_a_later_layout_is_refused_with_one_line(tmp_path) -> None:
                              f"reads layout {warehouse.SCHEMA_VERSION} and earlier); upgrade plimsoll\n")
 
 
-def test_a_layout_6_file_takes_the_rewritten_sql_without_a_rebuild(tmp_path) -> None:
-    """Layout 7 changed no table, but the count-window and verdict SQL did: a check unchanged in its
-    file compiles to a new definition hash. The upgrade adopts it, so no check stops for a rebuild."""
+@pytest.mark.parametrize("layout", [6, 7])
+def test_an_earlier_layout_takes_the_rewritten_sql_without_a_rebuild(tmp_path, layout) -> None:
+    """Layouts 7 and 8 rewrote the count-window and verdict SQL: a check unchanged in its file
+    compiles to a new definition hash. The upgrade adopts it, so no check stops for a rebuild."""
     project = load_project(known_project(tmp_path))
     run(project)
     con = duckdb.connect(str(project.warehouse))
     now = dict(con.execute("SELECT check_name, definition_hash FROM check_state").fetchall())
     # as the previous release's SQL hashed them
-    con.execute("UPDATE check_state SET definition_hash = 'layout6' || check_name")
-    con.execute("UPDATE alerts SET definition_hash = 'layout6' || check_name WHERE check_name IS NOT NULL")
-    con.execute("UPDATE schema_version SET version = 6")
+    con.execute("UPDATE check_state SET definition_hash = 'earlier' || check_name")
+    con.execute("UPDATE alerts SET definition_hash = 'earlier' || check_name WHERE check_name IS NOT NULL")
+    con.execute("UPDATE schema_version SET version = $v", {"v": layout})
     con.close()
     before = warehouse_contents(project.warehouse, skip=("runs", "run_checks", "schema_version", "check_state",
                                                          "alerts", "alert_events"))
@@ -156,10 +158,10 @@ def test_a_layout_6_file_takes_the_rewritten_sql_without_a_rebuild(tmp_path) -> 
     assert "--rebuild" not in result.output
     con = duckdb.connect(str(project.warehouse), read_only=True)
     try:
-        assert con.execute("SELECT version FROM schema_version").fetchall() == [(warehouse.SCHEMA_VERSION,)] == [(7,)]
+        assert con.execute("SELECT version FROM schema_version").fetchall() == [(warehouse.SCHEMA_VERSION,)] == [(8,)]
         assert dict(con.execute("SELECT check_name, definition_hash FROM check_state").fetchall()) == now
         # open alerts carry on under the new hash (closed ones keep theirs, as history)
-        assert con.execute("SELECT count(*) FROM alerts WHERE status = 'open' AND definition_hash LIKE 'layout6%'"
+        assert con.execute("SELECT count(*) FROM alerts WHERE status = 'open' AND definition_hash LIKE 'earlier%'"
                            ).fetchone() == (0,)
     finally:
         con.close()

@@ -38,8 +38,9 @@ TABLES = ("runs", "run_checks", "files_read", "changed_files", "source_columns",
 # adds causes and incidents (new tables and alerts.incident_id; the next run fills them), 6 the
 # table versions Delta and Iceberg sources are read by, and source alarms (columns of alerts,
 # alert_events and incidents); nothing to fill. 7: what the baselines read per series
-# (series_state, key_state.recent), filled from the stored windows (queries/migrate_7.sql).
-SCHEMA_VERSION = 7
+# (series_state, key_state.recent), filled from the stored windows (queries/migrate_7.sql). 8: no
+# table changed; the verdict SQL did (its loop settles on the windows' place in the history).
+SCHEMA_VERSION = 8
 POLL_SECONDS = 0.25
 # A run's temp tables live until its one transaction commits, so without a limit its memory grows
 # with checks x sessions; at this limit DuckDB spills to disk instead. The limit bounds DuckDB's
@@ -218,7 +219,15 @@ def _layout_7(con: duckdb.DuckDBPyConnection, project: Project) -> None:
         _run_template(con, "migrate_7.sql", {}, check=check)
 
 
-_MIGRATIONS = ((2, _layout_2), (3, _layout_3), (4, _layout_4), (5, _layout_5), (6, _layout_6), (7, _layout_7))
+def _layout_8(con: duckdb.DuckDBPyConnection, project: Project) -> None:
+    """Layout 7 to 8: no table changed. The verdict loop now stops when no window moves into or out
+    of a series' history (a flag moving between breach and no verdict changes no baseline), which
+    gives the same verdicts in fewer rounds; its SQL text, so every check's definition hash, changed,
+    and `_adopt_definitions` takes the new hashes instead of asking for a rebuild of every check."""
+
+
+_MIGRATIONS = ((2, _layout_2), (3, _layout_3), (4, _layout_4), (5, _layout_5), (6, _layout_6), (7, _layout_7),
+               (8, _layout_8))
 
 
 def _adopt_definitions(con: duckdb.DuckDBPyConnection, project: Project) -> None:
