@@ -194,3 +194,54 @@ def test_a_long_run_of_breaches_settles_in_a_few_rounds(tmp_path: Path) -> None:
     assert [b[0] for b in breaches] == list(range(51, 101))
     assert quiet == 50
     assert result.checks[0].rounds <= 3
+
+
+def test_windows_too_small_to_judge_inside_a_run_of_breaches_do_not_add_rounds(tmp_path: Path) -> None:
+    """One series of hourly windows: 50 quiet hours, then 40 hours in which full hours (20 sessions,
+    half failing) alternate with nearly empty ones (4 sessions, all failing: too few to judge). The
+    guess takes the empty hours, higher than any breach, for breaches; a round then finds them
+    without a verdict. Both are kept out of the history, so that changes no baseline and must not
+    start another round: the loop compares each window's place in the history, not its flag. (It
+    compared flags before, and undid one guessed hour per round: 21 rounds here.)"""
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+    from datetime import datetime, timedelta
+
+    lake = tmp_path / "lake"
+    lake.mkdir()
+    start, rows = datetime(2026, 11, 2), []
+    for hour in range(90):
+        high, full = hour >= 50, hour < 50 or hour % 2 == 0
+        sessions = 20 if full else 4
+        errors = (10 if full else 4) if high else hour % 2
+        for i in range(sessions):
+            rows.append({"session_id": f"s{hour:03d}-{i:02d}", "ended_at": start + timedelta(hours=hour, minutes=2 * i + 1),
+                         "is_bot": False, "error_code": "E1" if i < errors else None})
+    pq.write_table(pa.Table.from_pylist(rows), lake / "part-0.parquet")
+    check = """\
+        check: broken_with_gaps
+        source: sessions
+        measure:
+          kind: rate
+          bad: error_code IS NOT NULL
+        window:
+          every: 1h
+        baseline:
+          method: p_chart
+          sigmas: 3
+          history: 24
+          min_history: 4
+        guard:
+          min_sessions: 10
+          min_bad: 3
+        """
+    project = write_project(tmp_path / "p", {"broken_with_gaps.yml": check}, lake=lake)
+    result = runner.run(load_project(project))
+    con = duckdb.connect(str(project.parent / "warehouse.duckdb"), read_only=True)
+    try:
+        verdicts = dict(con.execute("SELECT window_number - min(window_number) OVER (), breach FROM windows").fetchall())
+    finally:
+        con.close()
+    assert [h for h, b in sorted(verdicts.items()) if b] == list(range(50, 90, 2))
+    assert [h for h, b in sorted(verdicts.items()) if b is None] == list(range(51, 89, 2))  # the last hour is still open
+    assert result.checks[0].rounds <= 3, result.checks[0].rounds
