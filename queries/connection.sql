@@ -5,7 +5,7 @@
 SET TimeZone = 'UTC';
 
 -- @statement connection.memory_limit
--- Beyond this ($limit, e.g. 1600MB) DuckDB spills to disk beside the warehouse.
+-- Beyond this ($limit, e.g. 1400MB) DuckDB spills to disk beside the warehouse.
 SET memory_limit = $limit;
 
 -- @statement connection.threads

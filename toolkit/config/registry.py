@@ -164,7 +164,7 @@ PROJECT_KEYS = (
     Key("warehouse", "text", "the DuckDB file holding windows, alerts, runs and state", True),
     Key("checks", "text", "folder of check files (*.yml)", False, "checks/"),
     Key("sources", "mapping", "named session tables in the lake", True),
-    Key("memory_limit", "text", "DuckDB memory limit for runs (default 1600MB); beyond it DuckDB spills to disk"),
+    Key("memory_limit", "text", "DuckDB memory limit for runs (default 1400MB); beyond it DuckDB spills to disk"),
     Key("threads", "int", "DuckDB threads for runs (default: all cores)", minimum=1),
     Key("max_read_per_run", "text", "the most Parquet (by file size) one run reads per check, e.g. 4GB "
         "(the default); a longer backlog is read by several runs in turn, each committed"),
