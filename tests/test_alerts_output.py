@@ -31,8 +31,8 @@ def project(tmp_path: Path) -> Path:
 TABLE = """\
 status              severity  check         key                                              split  worst  threshold  opened            windows  affected  viewers  excess  per hour  incident
 ------------------  --------  ------------  -----------------------------------------------  -----  -----  ---------  ----------------  -------  --------  -------  ------  --------  ----------------
-open                high      title_errors  site=kids, title_id="<script>alert(1)</script>"         80 %   10 %       2026-11-02 00:59  1        8         -        8       53        e6d6e1916c5bf8f5
-closed (recovered)  high      title_errors  site=kids, title_id=t-1                                 70 %   10 %       2026-11-02 00:49  2        13        -        13      41        b4e378dec1372e4c
+open                high      title_errors  site=kids, title_id="<script>alert(1)</script>"         80 %   10 %       2026-11-02 00:59  1        8         -        8       53        f7c009627d636618
+closed (recovered)  high      title_errors  site=kids, title_id=t-1                                 70 %   10 %       2026-11-02 00:49  2        13        -        13      41        a1cdb43977ad8f1e
 """
 
 
