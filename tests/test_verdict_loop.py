@@ -149,19 +149,14 @@ def test_a_long_run_of_breaches_settles_in_a_few_rounds(tmp_path: Path) -> None:
     breach, so a round per few windows would take about 15 rounds; a round's guess (a window after
     the first change at least as high as a breach found is taken as one) settles it in two, and
     the verdicts are those the definition gives: every high window a breach, no quiet one."""
-    import pyarrow as pa
-    import pyarrow.parquet as pq
     from datetime import datetime, timedelta
 
-    lake = tmp_path / "lake"
-    lake.mkdir()
     start, rows = datetime(2026, 11, 2), []
     for w in range(100):
         errors = 10 if w >= 50 else 1 + w % 2
         for i in range(20):
             rows.append({"session_id": f"s{w:03d}-{i:02d}", "ended_at": start + timedelta(minutes=20 * w + i),
                          "is_bot": False, "error_code": "E1" if i < errors else None})
-    pq.write_table(pa.Table.from_pylist(rows), lake / "part-0.parquet")
     check = """\
         check: steady_then_broken
         source: sessions
@@ -182,17 +177,9 @@ def test_a_long_run_of_breaches_settles_in_a_few_rounds(tmp_path: Path) -> None:
           min_sessions: 20
           min_bad: 3
         """
-    project = write_project(tmp_path / "p", {"steady_then_broken.yml": check}, lake=lake)
-    result = runner.run(load_project(project))
-    con = duckdb.connect(str(project.parent / "warehouse.duckdb"), read_only=True)
-    try:
-        breaches = con.execute("SELECT window_number FROM windows WHERE breach ORDER BY window_number").fetchall()
-        quiet = con.execute("SELECT count(*) FROM windows WHERE window_number <= 50 AND breach IS NOT DISTINCT FROM false"
-                            ).fetchone()[0]
-    finally:
-        con.close()
-    assert [b[0] for b in breaches] == list(range(51, 101))
-    assert quiet == 50
+    result, verdicts = _run_one_series(tmp_path, rows, "steady_then_broken", check)
+    assert [w for w, b in sorted(verdicts.items()) if b] == list(range(50, 100))
+    assert [w for w, b in sorted(verdicts.items()) if b is False] == list(range(50))
     assert result.checks[0].rounds <= 3
 
 
@@ -203,12 +190,8 @@ def test_windows_too_small_to_judge_inside_a_run_of_breaches_do_not_add_rounds(t
     without a verdict. Both are kept out of the history, so that changes no baseline and must not
     start another round: the loop compares each window's place in the history, not its flag. (It
     compared flags before, and undid one guessed hour per round: 21 rounds here.)"""
-    import pyarrow as pa
-    import pyarrow.parquet as pq
     from datetime import datetime, timedelta
 
-    lake = tmp_path / "lake"
-    lake.mkdir()
     start, rows = datetime(2026, 11, 2), []
     for hour in range(90):
         high, full = hour >= 50, hour < 50 or hour % 2 == 0
@@ -217,7 +200,6 @@ def test_windows_too_small_to_judge_inside_a_run_of_breaches_do_not_add_rounds(t
         for i in range(sessions):
             rows.append({"session_id": f"s{hour:03d}-{i:02d}", "ended_at": start + timedelta(hours=hour, minutes=2 * i + 1),
                          "is_bot": False, "error_code": "E1" if i < errors else None})
-    pq.write_table(pa.Table.from_pylist(rows), lake / "part-0.parquet")
     check = """\
         check: broken_with_gaps
         source: sessions
@@ -235,13 +217,25 @@ def test_windows_too_small_to_judge_inside_a_run_of_breaches_do_not_add_rounds(t
           min_sessions: 10
           min_bad: 3
         """
-    project = write_project(tmp_path / "p", {"broken_with_gaps.yml": check}, lake=lake)
-    result = runner.run(load_project(project))
-    con = duckdb.connect(str(project.parent / "warehouse.duckdb"), read_only=True)
-    try:
-        verdicts = dict(con.execute("SELECT window_number - min(window_number) OVER (), breach FROM windows").fetchall())
-    finally:
-        con.close()
+    result, verdicts = _run_one_series(tmp_path, rows, "broken_with_gaps", check)
     assert [h for h, b in sorted(verdicts.items()) if b] == list(range(50, 90, 2))
     assert [h for h, b in sorted(verdicts.items()) if b is None] == list(range(51, 89, 2))  # the last hour is still open
     assert result.checks[0].rounds <= 3, result.checks[0].rounds
+
+
+def _run_one_series(tmp_path: Path, rows: list[dict[str, Any]], name: str, check: str) -> tuple[Any, dict[int, Any]]:
+    """One run of ``check`` over ``rows`` as a lake of one file: the run's result, and each window's
+    breach flag by its place in the series (0 for the first window)."""
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    lake = tmp_path / "lake"
+    lake.mkdir()
+    pq.write_table(pa.Table.from_pylist(rows), lake / "part-0.parquet")
+    project = write_project(tmp_path / "p", {f"{name}.yml": check}, lake=lake)
+    result = runner.run(load_project(project))
+    con = duckdb.connect(str(project.parent / "warehouse.duckdb"), read_only=True)
+    try:
+        return result, dict(con.execute("SELECT window_number - min(window_number) OVER (), breach FROM windows").fetchall())
+    finally:
+        con.close()
